@@ -1,0 +1,5 @@
+"""`python -m belated`."""
+
+from belated.cli import main
+
+main()

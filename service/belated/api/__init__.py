@@ -1,0 +1,1 @@
+"""HTTP API: routers, auth dependencies, problem details."""

@@ -1,0 +1,73 @@
+"""RFC 9457 problem details for every error the API returns."""
+
+from __future__ import annotations
+
+from typing import Any
+
+import orjson
+from fastapi import FastAPI, Request
+from fastapi.exceptions import RequestValidationError
+from fastapi.responses import Response
+from sqlalchemy.exc import DBAPIError, OperationalError
+from starlette.exceptions import HTTPException
+
+from belated.errors import Problem
+
+MEDIA = "application/problem+json"
+TITLES = {400: "Bad request", 401: "Unauthorized", 403: "Forbidden", 404: "Not found",
+          405: "Method not allowed", 409: "Conflict", 413: "Payload too large",
+          422: "Invalid input", 503: "Service unavailable"}
+
+
+def problem_response(
+    status: int, detail: str, *, title: str | None = None,
+    headers: dict[str, str] | None = None, **extra: Any,
+) -> Response:
+    """A problem+json response."""
+    body: dict[str, Any] = {"type": "about:blank", "title": title or TITLES.get(status, "Error"),
+                            "status": status, "detail": detail}
+    body.update({k: v for k, v in extra.items() if v is not None})
+    return Response(orjson.dumps(body), status_code=status, media_type=MEDIA, headers=headers)
+
+
+def _loc(loc: tuple[Any, ...]) -> tuple[int | None, str]:
+    parts = [p for p in loc if p not in ("body", "query", "path")]
+    index = next((p for p in parts if isinstance(p, int)), None)
+    field = ".".join(str(p) for p in parts if not isinstance(p, int))
+    return index, field
+
+
+def install(app: FastAPI) -> None:
+    """Register the handlers that turn every error into problem details."""
+
+    @app.exception_handler(Problem)
+    async def _problem(_: Request, exc: Problem) -> Response:
+        return problem_response(exc.status, exc.detail, title=exc.title, headers=exc.headers,
+                                errors=exc.errors, **exc.extra)
+
+    @app.exception_handler(RequestValidationError)
+    async def _invalid(_: Request, exc: RequestValidationError) -> Response:
+        errors = []
+        for err in exc.errors():
+            index, field = _loc(tuple(err.get("loc", ())))
+            errors.append({"index": index, "field": field, "reason": err.get("msg", "invalid")})
+        first = errors[0] if errors else {"field": "", "reason": "invalid"}
+        detail = f"field '{first['field']}': {first['reason']}"
+        return problem_response(422, detail, errors=errors)
+
+    @app.exception_handler(HTTPException)
+    async def _http(_: Request, exc: HTTPException) -> Response:
+        return problem_response(exc.status_code, str(exc.detail), headers=exc.headers)
+
+    @app.exception_handler(OperationalError)
+    async def _store_down(_: Request, exc: OperationalError) -> Response:
+        return problem_response(
+            503, "the store is unreachable or busy; retry shortly (nothing was stored)",
+            headers={"Retry-After": "2"})
+
+    @app.exception_handler(DBAPIError)
+    async def _store_error(_: Request, exc: DBAPIError) -> Response:
+        if exc.connection_invalidated:
+            return problem_response(503, "the store connection was lost; retry shortly",
+                                    headers={"Retry-After": "2"})
+        raise exc

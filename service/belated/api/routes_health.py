@@ -1,0 +1,59 @@
+"""GET /healthz: is the store reachable, who runs the jobs, how stale are the rollups."""
+
+from __future__ import annotations
+
+from typing import Any
+
+from fastapi import APIRouter, Request
+from fastapi.responses import JSONResponse
+from sqlalchemy import func, select, text
+from sqlalchemy.exc import SQLAlchemyError
+
+from belated.clock import now
+from belated.store.tables import DirtyBucket, ServiceState
+from belated.timeutil import from_db, iso
+
+router = APIRouter(tags=["health"])
+
+
+def health(request: Request) -> dict[str, Any]:
+    """What /healthz reports, also used by /metrics."""
+    state = request.app.state
+    jobs = getattr(state, "jobs", None)
+    answer: dict[str, Any] = {
+        "status": "ok", "store": "up",
+        "jobs": {"enabled": jobs is not None, "leader": bool(jobs and jobs.is_leader())},
+        "last_refresh": None, "refresh_lag_seconds": None, "dirty_buckets": None,
+        "oldest_dirty_bucket": None, "outbox_backlog": None,
+    }
+    try:
+        with state.engine.connect() as conn:
+            conn.execute(text("SELECT 1"))
+            n, oldest = conn.execute(
+                select(func.count(), func.min(DirtyBucket.marked_at))
+            ).one()
+            last = conn.execute(
+                select(ServiceState.value).where(ServiceState.key == "last_refresh")
+            ).scalar()
+            answer["dirty_buckets"] = int(n)
+            if oldest is not None:
+                oldest_dt = from_db(oldest)
+                assert oldest_dt is not None
+                answer["oldest_dirty_bucket"] = iso(oldest_dt)
+                answer["refresh_lag_seconds"] = round((now() - oldest_dt).total_seconds(), 3)
+            else:
+                answer["refresh_lag_seconds"] = 0.0
+            if last:
+                answer["last_refresh"] = last.get("at")
+            backlog = getattr(state, "outbox_backlog", None)
+            answer["outbox_backlog"] = backlog(conn) if backlog else 0
+    except SQLAlchemyError as exc:
+        answer.update(status="degraded", store="down", error=type(exc).__name__)
+    return answer
+
+
+@router.get("/healthz")
+def healthz(request: Request) -> JSONResponse:
+    """Store reachable, jobs leader, last refresh, refresh lag, oldest dirty bucket, backlog."""
+    answer = health(request)
+    return JSONResponse(answer, status_code=200 if answer["store"] == "up" else 503)

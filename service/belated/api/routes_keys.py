@@ -1,0 +1,29 @@
+"""Routes for tokens: create (the secret is shown once) and revoke."""
+
+from __future__ import annotations
+
+from fastapi import APIRouter, Response
+
+from belated.api.deps import Admin, SessionDep
+from belated.api.schemas import KeyCreate, KeyRead
+from belated.errors import Problem
+from belated.store import keys
+
+router = APIRouter(prefix="/v1/keys", tags=["keys"])
+
+
+@router.post("", status_code=201, response_model=KeyRead)
+def create_key(body: KeyCreate, who: Admin, session: SessionDep) -> KeyRead:
+    """Create a token for this project; the answer is the only time the secret is shown."""
+    row, secret = keys.create(session=session, project_id=who.project_id,
+                              scopes=sorted(set(body.scopes)), name=body.name)
+    return KeyRead(id=row.id, scopes=row.scopes.split(","), name=row.name,
+                   created_at=row.created_at, token=secret)
+
+
+@router.delete("/{key_id}", status_code=204)
+def revoke_key(key_id: str, who: Admin, session: SessionDep) -> Response:
+    """Revoke a token of this project."""
+    if not keys.revoke(session=session, project_id=who.project_id, token_id=key_id):
+        raise Problem(404, f"no live key {key_id!r} in this project")
+    return Response(status_code=204)

@@ -1,0 +1,90 @@
+"""Routes for models: create, list, read, change, delete."""
+
+from __future__ import annotations
+
+import base64
+from typing import Any
+
+from fastapi import APIRouter, Query, Response
+
+from belated.api.deps import Admin, Read, SessionDep
+from belated.api.schemas import ModelCreate, ModelPage, ModelRead, ModelUpdate
+from belated.errors import Problem
+from belated.store import models
+from belated.store.tables import ModelRow
+from belated.timeutil import to_utc
+
+router = APIRouter(prefix="/v1/models", tags=["models"])
+
+
+def read_model(session: Any, model: ModelRow) -> ModelRead:
+    """A model with its counts, as the API answers it."""
+    return ModelRead(
+        name=model.name, kind=model.kind, classes=model.classes, positive=model.positive,
+        threshold=model.threshold, label_delay_days=model.label_delay_days,
+        min_coverage=model.min_coverage, negative_after_days=model.negative_after_days,
+        segment_keys=model.segment_keys, created_at=to_utc(model.created_at),
+        updated_at=to_utc(model.updated_at), **models.counts(session=session, model=model),
+    )
+
+
+def encode_cursor(value: str | None) -> str | None:
+    """An opaque cursor."""
+    return base64.urlsafe_b64encode(value.encode()).decode() if value else None
+
+
+def decode_cursor(value: str | None) -> str | None:
+    """Read an opaque cursor; a broken one is a 422."""
+    if not value:
+        return None
+    try:
+        return base64.urlsafe_b64decode(value.encode()).decode()
+    except (ValueError, UnicodeDecodeError):
+        raise Problem(422, "the cursor is not one this API gave out",
+                      errors=[{"index": None, "field": "cursor", "reason": "malformed"}]) from None
+
+
+@router.post("", status_code=201, response_model=ModelRead)
+def create_model(body: ModelCreate, who: Admin, session: SessionDep) -> ModelRead:
+    """Create a model."""
+    model = models.create(session=session, project_id=who.project_id,
+                          fields=body.model_dump(exclude_unset=False))
+    return read_model(session, model)
+
+
+@router.get("", response_model=ModelPage)
+def list_models(
+    who: Read, session: SessionDep, cursor: str | None = None,
+    limit: int = Query(50, ge=1, le=500),
+) -> ModelPage:
+    """List the project's models."""
+    rows, last = models.list_(session=session, project_id=who.project_id,
+                              after=decode_cursor(cursor), limit=limit)
+    return ModelPage(items=[read_model(session, m) for m in rows],
+                     next_cursor=encode_cursor(last))
+
+
+@router.get("/{model}", response_model=ModelRead)
+def get_model(model: str, who: Read, session: SessionDep) -> ModelRead:
+    """One model with its stored counts."""
+    return read_model(session, models.get(session=session, project_id=who.project_id, name=model))
+
+
+@router.patch("/{model}", response_model=ModelRead)
+def update_model(model: str, body: ModelUpdate, who: Admin, session: SessionDep) -> ModelRead:
+    """Change a model's settings (threshold changes are kept in history)."""
+    row = models.get(session=session, project_id=who.project_id, name=model)
+    fields = body.model_dump(exclude_unset=True)
+    for key in ("threshold", "label_delay_days", "min_coverage"):
+        if key in fields and fields[key] is None:
+            raise Problem(422, f"'{key}' cannot be null",
+                          errors=[{"index": None, "field": key, "reason": "cannot be null"}])
+    return read_model(session, models.update(session=session, model=row, fields=fields))
+
+
+@router.delete("/{model}", status_code=204)
+def delete_model(model: str, who: Admin, session: SessionDep) -> Response:
+    """Delete a model and all its data."""
+    row = models.get(session=session, project_id=who.project_id, name=model)
+    models.delete(session=session, model=row)
+    return Response(status_code=204)

@@ -1,0 +1,68 @@
+"""The FastAPI application: routers, problem details, body limit, lifespan of the jobs."""
+
+from __future__ import annotations
+
+from collections.abc import AsyncIterator
+from contextlib import asynccontextmanager
+from typing import Any
+
+from fastapi import FastAPI
+from sqlalchemy import Engine
+
+from belated import __version__
+from belated.api import problems, routes_health, routes_ingest, routes_keys, routes_models
+from belated.api.limits import BodyLimit
+from belated.config import Settings, get_settings
+from belated.counters import Counters
+from belated.store.db import make_engine, make_sessionmaker
+
+
+def create_app(settings: Settings | None = None, *, engine: Engine | None = None,
+               jobs: bool | None = None) -> Any:
+    """Build the ASGI app; `jobs` overrides BELATED_JOBS (the scheduler in this process)."""
+    settings = settings or get_settings()
+    engine = engine or make_engine(settings.database_url)
+    run_jobs = settings.jobs if jobs is None else jobs
+
+    @asynccontextmanager
+    async def lifespan(app: FastAPI) -> AsyncIterator[None]:
+        runner = None
+        if run_jobs:
+            from belated.jobs import JobRunner
+
+            runner = JobRunner(engine=engine, settings=settings)
+            runner.start()
+            app.state.jobs = runner
+        try:
+            yield
+        finally:
+            if runner is not None:
+                runner.stop()
+
+    app = FastAPI(title="belated", version=__version__, lifespan=lifespan,
+                  description="Monitoring for classifiers whose labels arrive late.")
+    app.state.settings = settings
+    app.state.engine = engine
+    app.state.sessions = make_sessionmaker(engine)
+    app.state.counters = Counters()
+    app.state.jobs = None
+    problems.install(app)
+    for module in (routes_models, routes_ingest, routes_keys, routes_health):
+        app.include_router(module.router)
+    _optional_routers(app)
+    return BodyLimit(app, settings.max_body_bytes)
+
+
+def _optional_routers(app: FastAPI) -> None:
+    """Routers of later capabilities, mounted when their modules exist."""
+    import importlib
+
+    for name in ("belated.api.routes_metrics", "belated.api.routes_alerts",
+                 "belated.api.routes_prometheus", "belated.web.routes"):
+        try:
+            module = importlib.import_module(name)
+        except ModuleNotFoundError as exc:
+            if exc.name != name:
+                raise
+            continue
+        app.include_router(module.router)

@@ -1,0 +1,85 @@
+"""The `belated` command: serve, worker, migrate, keys, and the tools built on the API."""
+
+from __future__ import annotations
+
+import sys
+
+import typer
+
+from belated.config import get_settings
+
+app = typer.Typer(help="belated: monitoring for classifiers whose labels arrive late.",
+                  no_args_is_help=True, add_completion=False)
+keys_app = typer.Typer(help="API tokens.", no_args_is_help=True)
+app.add_typer(keys_app, name="keys")
+
+
+def _url(database_url: str | None) -> str:
+    return database_url or get_settings().database_url
+
+
+@app.command()
+def migrate(database_url: str | None = typer.Option(None, help="Overrides BELATED_DATABASE_URL.")
+            ) -> None:
+    """Apply the database migrations."""
+    from belated.store.migrate import upgrade
+
+    upgrade(_url(database_url))
+    typer.echo("migrations applied")
+
+
+@app.command()
+def serve(
+    host: str | None = typer.Option(None, help="Overrides BELATED_HOST."),
+    port: int | None = typer.Option(None, help="Overrides BELATED_PORT."),
+    no_jobs: bool = typer.Option(False, "--no-jobs", help="Serve the API without the jobs."),
+) -> None:
+    """Run the HTTP service (and the scheduled jobs unless --no-jobs)."""
+    import uvicorn
+
+    from belated.app import create_app
+    from belated.logs import setup_logging
+    from belated.store.db import is_sqlite
+    from belated.store.migrate import upgrade
+
+    settings = get_settings()
+    setup_logging(settings.log_format)
+    if is_sqlite(settings.database_url):
+        upgrade(settings.database_url)  # the embedded store migrates itself
+    asgi = create_app(settings, jobs=settings.jobs and not no_jobs)
+    uvicorn.run(asgi, host=host or settings.host, port=port if port is not None else settings.port,
+                log_config=None, access_log=False)
+
+
+@keys_app.command("create")
+def keys_create(
+    project: str = typer.Option(..., help="Project name (created if needed)."),
+    scopes: str = typer.Option("ingest,read", help="Comma list of ingest, read, admin."),
+    name: str | None = typer.Option(None, help="A label for the token."),
+    database_url: str | None = typer.Option(None, help="Overrides BELATED_DATABASE_URL."),
+) -> None:
+    """Create a token; it is printed alone on the last line, and never again."""
+    from belated.store import keys
+    from belated.store.db import make_engine, make_sessionmaker, transaction
+    from belated.store.migrate import upgrade
+
+    try:
+        scope_list = keys.parse_scopes(scopes)
+    except ValueError as exc:
+        typer.echo(str(exc), err=True)
+        raise typer.Exit(2) from None
+    url = _url(database_url)
+    upgrade(url)
+    engine = make_engine(url)
+    with transaction(make_sessionmaker(engine)) as session:
+        proj = keys.get_or_create_project(session=session, name=project)
+        row, secret = keys.create(session=session, project_id=proj.id, scopes=scope_list,
+                                  name=name)
+    engine.dispose()
+    typer.echo(f"project: {project}\nkey id: {row.id}\nscopes: {row.scopes}")
+    typer.echo(secret)
+
+
+def main() -> None:
+    """Entry point for `python -m belated`."""
+    app(sys.argv[1:])

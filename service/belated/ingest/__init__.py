@@ -1,0 +1,1 @@
+"""Validation and storage of prediction and label batches."""

@@ -1,0 +1,1 @@
+"""The store: tables, sessions, ingest, rollups and dirty buckets."""

@@ -1,0 +1,61 @@
+"""Bulk primitives with a fast path per store: id lookups, and staging through COPY on PostgreSQL.
+
+psycopg binds at most 65,535 parameters per statement, so PostgreSQL gets arrays (`= ANY`)
+and COPY; SQLite gets chunked IN lists and executemany inside its single writer.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Iterable, Iterator, Sequence
+from typing import Any
+
+import orjson
+from sqlalchemy import ColumnElement, String, any_, bindparam
+from sqlalchemy.dialects.postgresql import ARRAY
+from sqlalchemy.orm import InstrumentedAttribute, Session
+
+SQLITE_CHUNK = 5000
+
+
+def is_pg(session: Session) -> bool:
+    """True when the session talks to PostgreSQL."""
+    return session.get_bind().dialect.name == "postgresql"
+
+
+def id_filters(
+    session: Session, column: InstrumentedAttribute[str], ids: Sequence[str]
+) -> Iterator[ColumnElement[bool]]:
+    """Filters that together match `column` against every id (one on PostgreSQL)."""
+    if is_pg(session):
+        yield column == any_(bindparam("ids_" + column.key, list(ids), type_=ARRAY(String)))
+        return
+    for start in range(0, len(ids), SQLITE_CHUNK):
+        yield column.in_(list(ids[start : start + SQLITE_CHUNK]))
+
+
+def json_text(value: Any) -> str | None:
+    """JSON for a staging column (None stays SQL NULL)."""
+    return None if value is None else orjson.dumps(value).decode()
+
+
+def copy_rows(
+    session: Session, table: str, columns: Sequence[str], rows: Iterable[Sequence[Any]]
+) -> None:
+    """COPY rows into a table on the session's own connection (PostgreSQL only)."""
+    raw = session.connection().connection.driver_connection
+    assert raw is not None
+    cols = ", ".join(columns)
+    with raw.cursor() as cur, cur.copy(f"COPY {table} ({cols}) FROM STDIN") as copy:
+        for row in rows:
+            copy.write_row(row)
+
+
+def temp_table(session: Session, name: str, ddl_columns: str) -> None:
+    """Create a per-connection staging table that empties itself at commit."""
+    raw = session.connection().connection.driver_connection
+    assert raw is not None
+    with raw.cursor() as cur:
+        cur.execute(
+            f"CREATE TEMP TABLE IF NOT EXISTS {name} ({ddl_columns}) ON COMMIT DELETE ROWS"
+        )
+        cur.execute(f"TRUNCATE {name}")

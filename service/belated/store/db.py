@@ -1,0 +1,72 @@
+"""Engines and sessions for SQLite (embedded default) and PostgreSQL."""
+
+from __future__ import annotations
+
+from collections.abc import Iterator
+from contextlib import contextmanager
+from typing import Any
+
+from sqlalchemy import Engine, create_engine, event
+from sqlalchemy.orm import Session, sessionmaker
+
+
+def is_sqlite(engine_or_url: Engine | str) -> bool:
+    """True for a SQLite store."""
+    url = engine_or_url if isinstance(engine_or_url, str) else str(engine_or_url.url)
+    return url.startswith("sqlite")
+
+
+def make_engine(url: str, **kwargs: Any) -> Engine:
+    """Create an engine with the settings each store needs for concurrent use."""
+    if is_sqlite(url):
+        engine = create_engine(
+            url, connect_args={"check_same_thread": False, "timeout": 30}, **kwargs
+        )
+        _configure_sqlite(engine)
+        return engine
+    kwargs.setdefault("pool_size", 10)
+    kwargs.setdefault("max_overflow", 20)
+    kwargs.setdefault("pool_pre_ping", True)
+    return create_engine(url, **kwargs)
+
+
+def _configure_sqlite(engine: Engine) -> None:
+    """WAL, a busy timeout, foreign keys, and BEGIN IMMEDIATE for every transaction.
+
+    A deferred transaction that reads then writes fails with SQLITE_BUSY_SNAPSHOT whatever
+    the timeout, so every transaction takes the write lock up front; SQLite serialises
+    writers anyway.
+    """
+
+    @event.listens_for(engine, "connect")
+    def _on_connect(dbapi_conn: Any, _record: Any) -> None:
+        dbapi_conn.isolation_level = None  # we issue BEGIN ourselves
+        cur = dbapi_conn.cursor()
+        cur.execute("PRAGMA journal_mode=WAL")
+        cur.execute("PRAGMA busy_timeout=30000")
+        cur.execute("PRAGMA foreign_keys=ON")
+        cur.execute("PRAGMA synchronous=NORMAL")
+        cur.close()
+
+    @event.listens_for(engine, "begin")
+    def _on_begin(conn: Any) -> None:
+        conn.exec_driver_sql("BEGIN IMMEDIATE")
+
+
+def make_sessionmaker(engine: Engine) -> sessionmaker[Session]:
+    """Sessions that keep loaded objects usable after commit."""
+    return sessionmaker(bind=engine, expire_on_commit=False)
+
+
+@contextmanager
+def transaction(factory: sessionmaker[Session]) -> Iterator[Session]:
+    """One unit of work: commit on success, roll back on error."""
+    session = factory()
+    try:
+        yield session
+        session.commit()
+    except BaseException:
+        session.rollback()
+        raise
+    finally:
+        session.close()

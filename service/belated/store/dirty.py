@@ -1,0 +1,50 @@
+"""Dirty (model, hour) marks: every write marks the hours it touched, with a fresh version.
+
+The version is a random 62-bit number rather than a counter, so that a mark cleared and made
+again is never mistaken for the one a refresh read earlier.
+"""
+
+from __future__ import annotations
+
+import secrets
+from collections.abc import Iterable
+
+from sqlalchemy import func, select
+from sqlalchemy.dialects import postgresql, sqlite
+from sqlalchemy.orm import Session
+
+from belated.clock import now
+from belated.store.tables import DirtyBucket
+
+
+def _insert(session: Session):  # type: ignore[no-untyped-def]
+    dialect = session.get_bind().dialect.name
+    return (postgresql if dialect == "postgresql" else sqlite).insert(DirtyBucket)
+
+
+def mark(*, session: Session, model_id: int, hours: Iterable[int]) -> int:
+    """Mark the hours dirty (in sorted order, so concurrent writers lock alike)."""
+    ordered = sorted(set(hours))
+    if not ordered:
+        return 0
+    stamp = now()
+    rows = [
+        {"model_id": model_id, "hour": h, "version": secrets.randbits(62), "marked_at": stamp}
+        for h in ordered
+    ]
+    stmt = _insert(session)
+    stmt = stmt.on_conflict_do_update(
+        index_elements=["model_id", "hour"],
+        set_={"version": stmt.excluded.version, "marked_at": stmt.excluded.marked_at},
+    )
+    for start in range(0, len(rows), 2000):
+        session.execute(stmt, rows[start : start + 2000])
+    return len(ordered)
+
+
+def count(*, session: Session, model_id: int | None = None) -> int:
+    """How many buckets are dirty."""
+    query = select(func.count()).select_from(DirtyBucket)
+    if model_id is not None:
+        query = query.where(DirtyBucket.model_id == model_id)
+    return int(session.scalar(query) or 0)

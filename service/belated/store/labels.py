@@ -1,0 +1,176 @@
+"""Store a validated labels batch: matches, corrections (kept in history) and pending labels."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from datetime import datetime
+from typing import Any
+
+from sqlalchemy import bindparam, delete, select, text, update
+from sqlalchemy.dialects import postgresql, sqlite
+from sqlalchemy.orm import Session
+
+from belated.clock import now
+from belated.ingest.validate import LabelIn
+from belated.store import bulk, dirty
+from belated.store.tables import Label, PendingLabel, Prediction
+from belated.timeutil import to_utc
+
+_STAGE = "stage_labels"
+_STAGE_DDL = "row_id bigint, actual text, label_ts timestamptz, delay_h float8"
+
+
+@dataclass(slots=True)
+class _Target:
+    row_id: int
+    ts: datetime
+    hour: int
+    actual: str | None
+
+
+def delay_hours(pred_ts: datetime, label_ts: datetime) -> float:
+    """Hours from prediction to outcome, never negative (clock skew is not a delay)."""
+    return max(0.0, (label_ts - pred_ts).total_seconds() / 3600.0)
+
+
+def _targets(session: Session, model_id: int, ids: list[str]) -> dict[str, _Target]:
+    found: dict[str, _Target] = {}
+    cols = (Prediction.pid, Prediction.row_id, Prediction.ts, Prediction.hour, Prediction.actual)
+    for cond in bulk.id_filters(session, Prediction.pid, ids):
+        query = select(*cols).where(Prediction.model_id == model_id, cond)
+        if bulk.is_pg(session):  # concurrent corrections of one id apply one after another
+            query = query.order_by(Prediction.row_id).with_for_update()
+        for pid, row_id, ts, hour, actual in session.execute(query):
+            found[pid] = _Target(row_id, to_utc(ts), hour, actual)
+    return found
+
+
+def _pending(session: Session, model_id: int, ids: list[str]) -> dict[str, str]:
+    found: dict[str, str] = {}
+    for cond in bulk.id_filters(session, PendingLabel.pid, ids):
+        for pid, actual in session.execute(
+            select(PendingLabel.pid, PendingLabel.actual).where(
+                PendingLabel.model_id == model_id, cond
+            )
+        ):
+            found[pid] = actual
+    return found
+
+
+def ingest(*, session: Session, model_id: int, items: list[LabelIn]) -> dict[str, int]:
+    """Apply labels in arrival order; the four counts add up to the batch size."""
+    ids = list(dict.fromkeys(label.pid for label in items))
+    targets = _targets(session, model_id, ids)
+    waiting = _pending(session, model_id, [i for i in ids if i not in targets])
+    received = now()
+    answer = {"matched": 0, "pending": 0, "corrected": 0, "unchanged": 0}
+    updates: dict[int, dict[str, Any]] = {}
+    history: list[dict[str, Any]] = []
+    pend: dict[str, LabelIn] = {}
+    hours: set[int] = set()
+    for label in items:
+        target = targets.get(label.pid)
+        if target is None:
+            answer["pending"] += 1
+            if waiting.get(label.pid) != label.actual:
+                waiting[label.pid] = label.actual
+                pend[label.pid] = label
+                history.append(_history(model_id, label, "pending", received))
+            continue
+        if target.actual == label.actual:
+            answer["unchanged"] += 1
+            continue
+        answer["corrected" if target.actual is not None else "matched"] += 1
+        history.append(_history(
+            model_id, label, "correction" if target.actual is not None else "first", received))
+        target.actual = label.actual
+        updates[target.row_id] = {
+            "row_id": target.row_id, "actual": label.actual, "label_ts": label.ts,
+            "delay_h": delay_hours(target.ts, label.ts),
+        }
+        hours.add(target.hour)
+    if updates:
+        (_update_pg if bulk.is_pg(session) else _update_sqlite)(session, list(updates.values()))
+    if history:
+        session.execute(Label.__table__.insert(), history)
+    if pend:
+        _upsert_pending(session, model_id, list(pend.values()), received)
+    dirty.mark(session=session, model_id=model_id, hours=hours)
+    return answer
+
+
+def _history(model_id: int, label: LabelIn, change: str, received: datetime) -> dict[str, Any]:
+    return {"model_id": model_id, "pid": label.pid, "actual": label.actual, "ts": label.ts,
+            "change": change, "received_at": received}
+
+
+def _update_sqlite(session: Session, rows: list[dict[str, Any]]) -> None:
+    table = Prediction.__table__
+    stmt = (
+        update(table)
+        .where(table.c.row_id == bindparam("b_row_id"))
+        .values(actual=bindparam("b_actual"), label_ts=bindparam("b_label_ts"),
+                delay_h=bindparam("b_delay_h"))
+    )
+    session.connection().execute(stmt, [{f"b_{k}": v for k, v in r.items()} for r in rows])
+
+
+def _update_pg(session: Session, rows: list[dict[str, Any]]) -> None:
+    bulk.temp_table(session, _STAGE, _STAGE_DDL)
+    bulk.copy_rows(
+        session, _STAGE, ("row_id", "actual", "label_ts", "delay_h"),
+        ((r["row_id"], r["actual"], r["label_ts"], r["delay_h"]) for r in rows),
+    )
+    session.execute(text(
+        f"UPDATE predictions p SET actual = s.actual, label_ts = s.label_ts, delay_h = s.delay_h"
+        f" FROM {_STAGE} s WHERE p.row_id = s.row_id"
+    ))
+
+
+def _upsert_pending(
+    session: Session, model_id: int, items: list[LabelIn], received: datetime
+) -> None:
+    dialect = postgresql if bulk.is_pg(session) else sqlite
+    stmt = dialect.insert(PendingLabel)
+    stmt = stmt.on_conflict_do_update(
+        index_elements=["model_id", "pid"],
+        set_={"actual": stmt.excluded.actual, "ts": stmt.excluded.ts,
+              "received_at": stmt.excluded.received_at},
+    )
+    session.execute(stmt, [
+        {"model_id": model_id, "pid": i.pid, "actual": i.actual, "ts": i.ts,
+         "received_at": received} for i in items
+    ])
+
+
+def join_pending(*, session: Session, model_id: int, ids: list[str] | None) -> set[int]:
+    """Apply pending labels whose prediction is stored; return the hours they touched.
+
+    `ids` limits the search to those predictions (the ingest path); None searches all (the
+    refresh job, which catches a label and its prediction written in concurrent transactions).
+    """
+    query = (
+        select(PendingLabel.row_id, PendingLabel.actual, PendingLabel.ts,
+               Prediction.row_id, Prediction.ts, Prediction.hour, Prediction.actual)
+        .join(Prediction, (Prediction.model_id == PendingLabel.model_id)
+              & (Prediction.pid == PendingLabel.pid))
+        .where(PendingLabel.model_id == model_id)
+    )
+    conds = [None] if ids is None else list(bulk.id_filters(session, PendingLabel.pid, ids))
+    rows = []
+    for cond in conds:
+        q = query if cond is None else query.where(cond)
+        rows.extend(session.execute(q).all())
+    if not rows:
+        return set()
+    updates = []
+    for _pl_id, actual, lts, p_id, pts, _hour, current in rows:
+        if current is None or current != actual:
+            updates.append({"row_id": p_id, "actual": actual, "label_ts": to_utc(lts),
+                            "delay_h": delay_hours(to_utc(pts), to_utc(lts))})
+    if updates:
+        (_update_pg if bulk.is_pg(session) else _update_sqlite)(session, updates)
+    done = [r[0] for r in rows]
+    for start in range(0, len(done), 5000):
+        session.execute(delete(PendingLabel).where(PendingLabel.row_id.in_(done[start:start + 5000])))
+    return {r[5] for r in rows}

@@ -1,0 +1,110 @@
+"""Service functions for models: get, list, create, update, delete, counts."""
+
+from __future__ import annotations
+
+from typing import Any
+
+from sqlalchemy import delete as sql_delete
+from sqlalchemy import func, select
+from sqlalchemy.orm import Session
+
+from belated.clock import now
+from belated.errors import Problem
+from belated.ingest.validate import ModelSpec
+from belated.store.tables import ModelRow, PendingLabel, Prediction, ThresholdChange
+from belated.timeutil import from_db
+
+DEFAULTS: dict[str, Any] = {
+    "threshold": 0.5,
+    "label_delay_days": 30.0,
+    "min_coverage": 0.9,
+    "negative_after_days": None,
+    "segment_keys": None,
+}
+
+
+def spec_of(model: ModelRow) -> ModelSpec:
+    """The part of a model that validation needs."""
+    return ModelSpec(model.kind, tuple(model.classes), model.positive, model.threshold)
+
+
+def get(*, session: Session, project_id: int, name: str, lock: bool = False) -> ModelRow:
+    """The model `name` of the project, or a 404 problem."""
+    query = select(ModelRow).where(ModelRow.project_id == project_id, ModelRow.name == name)
+    model = session.scalar(query)
+    if model is None:
+        raise Problem(404, f"no model named {name!r} in this project", title="Not found")
+    return model
+
+
+def list_(
+    *, session: Session, project_id: int, after: str | None, limit: int
+) -> tuple[list[ModelRow], str | None]:
+    """A page of the project's models ordered by name, and the cursor of the next page."""
+    query = select(ModelRow).where(ModelRow.project_id == project_id)
+    if after:
+        query = query.where(ModelRow.name > after)
+    rows = list(session.scalars(query.order_by(ModelRow.name).limit(limit + 1)))
+    more = len(rows) > limit
+    rows = rows[:limit]
+    return rows, (rows[-1].name if more and rows else None)
+
+
+def create(*, session: Session, project_id: int, fields: dict[str, Any]) -> ModelRow:
+    """Create a model; a taken name is a 409."""
+    taken = session.scalar(
+        select(ModelRow.id).where(
+            ModelRow.project_id == project_id, ModelRow.name == fields["name"]
+        )
+    )
+    if taken is not None:
+        raise Problem(409, f"a model named {fields['name']!r} exists already", title="Conflict")
+    values = {**DEFAULTS, **{k: v for k, v in fields.items() if v is not None}}
+    stamp = now()
+    model = ModelRow(project_id=project_id, created_at=stamp, updated_at=stamp, **values)
+    session.add(model)
+    session.flush()
+    session.add(ThresholdChange(model_id=model.id, threshold=model.threshold, changed_at=stamp))
+    return model
+
+
+def update(*, session: Session, model: ModelRow, fields: dict[str, Any]) -> ModelRow:
+    """Change settings; a threshold change is recorded in the history."""
+    stamp = now()
+    for key, value in fields.items():
+        setattr(model, key, value)
+    if "threshold" in fields:
+        session.add(
+            ThresholdChange(model_id=model.id, threshold=fields["threshold"], changed_at=stamp)
+        )
+    model.updated_at = stamp
+    session.flush()
+    return model
+
+
+def delete(*, session: Session, model: ModelRow) -> None:
+    """Delete a model with all its data."""
+    from belated.store import purge
+
+    purge.model_data(session=session, model_id=model.id)
+    session.execute(sql_delete(ModelRow).where(ModelRow.id == model.id))
+
+
+def counts(*, session: Session, model: ModelRow) -> dict[str, Any]:
+    """Stored predictions, labelled predictions, pending labels, first and last times."""
+    n, labelled, first, last = session.execute(
+        select(
+            func.count(),
+            func.count(Prediction.actual),
+            func.min(Prediction.ts),
+            func.max(Prediction.ts),
+        ).where(Prediction.model_id == model.id)
+    ).one()
+    pending = session.scalar(
+        select(func.count()).select_from(PendingLabel).where(PendingLabel.model_id == model.id)
+    )
+    return {
+        "counts": {"predictions": n, "labelled": labelled, "pending_labels": pending or 0},
+        "first_prediction_at": from_db(first),
+        "last_prediction_at": from_db(last),
+    }

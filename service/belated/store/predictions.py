@@ -1,0 +1,124 @@
+"""Store a validated predictions batch: all or nothing, duplicates recognised, pending labels joined."""
+
+from __future__ import annotations
+
+from datetime import datetime
+from typing import Any
+
+from sqlalchemy import select, text
+from sqlalchemy.orm import Session
+
+from belated.clock import now
+from belated.errors import Problem
+from belated.ingest.validate import PredictionIn
+from belated.store import bulk, dirty, labels
+from belated.store.tables import Prediction
+from belated.timeutil import to_utc
+
+_STAGE = "stage_predictions"
+_STAGE_DDL = (
+    "pid text, ts timestamptz, hour integer, score float8, scores text, predicted text, "
+    "tags text, received_at timestamptz"
+)
+_COLUMNS = ("pid", "ts", "hour", "score", "scores", "predicted", "tags", "received_at")
+
+
+def epoch_hour(ts: datetime) -> int:
+    """Whole hours since the Unix epoch: the bucket key of a prediction time."""
+    return int(ts.timestamp() // 3600)
+
+
+def existing(*, session: Session, model_id: int, ids: list[str]) -> dict[str, PredictionIn]:
+    """The stored predictions among `ids`, as comparable values."""
+    found: dict[str, PredictionIn] = {}
+    cols = (Prediction.pid, Prediction.ts, Prediction.score, Prediction.scores,
+            Prediction.predicted, Prediction.tags)
+    for cond in bulk.id_filters(session, Prediction.pid, ids):
+        for pid, ts, score, scores, predicted, tags in session.execute(
+            select(*cols).where(Prediction.model_id == model_id, cond)
+        ):
+            found[pid] = PredictionIn(pid, to_utc(ts), score, scores, predicted, tags or None)
+    return found
+
+
+def _conflict(ids: list[str]) -> Problem:
+    shown = ", ".join(repr(i) for i in ids[:20]) + (" ..." if len(ids) > 20 else "")
+    return Problem(
+        409,
+        f"{len(ids)} id(s) already stored with different content: {shown}. "
+        "Predictions are immutable; nothing of this batch was stored.",
+        title="Conflicting duplicate",
+        ids=ids[:100],
+    )
+
+
+def ingest(
+    *, session: Session, model_id: int, preds: list[PredictionIn], batch_size: int
+) -> dict[str, int]:
+    """Insert the new predictions; answer accepted and duplicate counts."""
+    ids = [p.pid for p in preds]
+    stored = existing(session=session, model_id=model_id, ids=ids)
+    conflicts = [p.pid for p in preds if p.pid in stored and not p.same_as(stored[p.pid])]
+    if conflicts:
+        raise _conflict(conflicts)
+    new = [p for p in preds if p.pid not in stored]
+    received = now()
+    if new:
+        inserted = (_insert_pg if bulk.is_pg(session) else _insert_sqlite)(
+            session, model_id, new, received
+        )
+        if len(inserted) < len(new):  # a concurrent writer stored some of them first
+            raced = [p for p in new if p.pid not in inserted]
+            again = existing(session=session, model_id=model_id, ids=[p.pid for p in raced])
+            bad = [p.pid for p in raced if p.pid in again and not p.same_as(again[p.pid])]
+            if bad:
+                raise _conflict(bad)
+            new = [p for p in new if p.pid in inserted]
+        hours = {epoch_hour(p.ts) for p in new}
+        hours |= labels.join_pending(
+            session=session, model_id=model_id, ids=[p.pid for p in new]
+        )
+        dirty.mark(session=session, model_id=model_id, hours=hours)
+    return {"accepted": len(new), "duplicates": batch_size - len(new)}
+
+
+def _row(model_id: int, p: PredictionIn, received: datetime) -> dict[str, Any]:
+    return {
+        "model_id": model_id, "pid": p.pid, "ts": p.ts, "hour": epoch_hour(p.ts),
+        "score": p.score, "scores": p.scores, "predicted": p.predicted, "tags": p.tags,
+        "received_at": received,
+    }
+
+
+def _insert_sqlite(
+    session: Session, model_id: int, new: list[PredictionIn], received: datetime
+) -> set[str]:
+    # SQLite has one writer (BEGIN IMMEDIATE), so the lookup above is authoritative.
+    session.execute(Prediction.__table__.insert(), [_row(model_id, p, received) for p in new])
+    return {p.pid for p in new}
+
+
+def _insert_pg(
+    session: Session, model_id: int, new: list[PredictionIn], received: datetime
+) -> set[str]:
+    bulk.temp_table(session, _STAGE, _STAGE_DDL)
+    bulk.copy_rows(
+        session,
+        _STAGE,
+        _COLUMNS,
+        (
+            (p.pid, p.ts, epoch_hour(p.ts), p.score, bulk.json_text(p.scores), p.predicted,
+             bulk.json_text(p.tags), received)
+            for p in new
+        ),
+    )
+    result = session.execute(
+        text(
+            f"INSERT INTO predictions (model_id, pid, ts, hour, score, scores, predicted, tags,"
+            f" received_at) SELECT :m, pid, ts, hour, score, scores::jsonb, predicted,"
+            f" tags::jsonb, received_at FROM {_STAGE}"
+            " ON CONFLICT (model_id, pid) DO NOTHING RETURNING pid"
+        ),
+        {"m": model_id},
+    )
+    return {row[0] for row in result}

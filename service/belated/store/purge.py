@@ -1,0 +1,20 @@
+"""Delete a model's data table by table (SQLite cascades only with foreign keys on)."""
+
+from __future__ import annotations
+
+from sqlalchemy import delete
+from sqlalchemy.orm import Session
+
+from belated.store import rollup_tables as rt
+from belated.store import tables as t
+
+_TABLES = [
+    t.Prediction, t.Label, t.PendingLabel, t.DirtyBucket, t.ThresholdChange,
+    rt.Rollup, rt.RollupBin, rt.RollupCell, rt.RollupDelay, rt.SegmentValue,
+]
+
+
+def model_data(*, session: Session, model_id: int) -> None:
+    """Remove every row that belongs to the model (the model row itself stays)."""
+    for table in _TABLES:
+        session.execute(delete(table).where(table.model_id == model_id))

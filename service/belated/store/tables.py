@@ -1,0 +1,183 @@
+"""Database tables (SQLAlchemy 2 declarative); API schemas live apart in belated.api.schemas."""
+
+from __future__ import annotations
+
+from datetime import datetime
+from typing import Any
+
+from sqlalchemy import (
+    JSON,
+    BigInteger,
+    DateTime,
+    Float,
+    ForeignKey,
+    Index,
+    Integer,
+    MetaData,
+    String,
+    UniqueConstraint,
+)
+from sqlalchemy.dialects.postgresql import JSONB
+from sqlalchemy.orm import DeclarativeBase, Mapped, mapped_column
+
+# Stable constraint names on both stores, so migrations can refer to them.
+NAMING = {
+    "ix": "ix_%(column_0_label)s",
+    "uq": "uq_%(table_name)s_%(column_0_name)s",
+    "ck": "ck_%(table_name)s_%(constraint_name)s",
+    "fk": "fk_%(table_name)s_%(column_0_name)s_%(referred_table_name)s",
+    "pk": "pk_%(table_name)s",
+}
+
+# SQLite only auto-increments INTEGER PRIMARY KEY; PostgreSQL gets a 64-bit identity.
+BigId = BigInteger().with_variant(Integer(), "sqlite")
+Json = JSON().with_variant(JSONB(), "postgresql")
+UtcDateTime = DateTime(timezone=True)
+
+
+class Base(DeclarativeBase):
+    """Declarative base with the naming convention."""
+
+    metadata = MetaData(naming_convention=NAMING)
+
+
+class Project(Base):
+    """A tenant: everything else belongs to exactly one project."""
+
+    __tablename__ = "projects"
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    name: Mapped[str] = mapped_column(String(64), unique=True)
+    created_at: Mapped[datetime] = mapped_column(UtcDateTime)
+
+
+class Token(Base):
+    """An API token; only the SHA-256 of the secret is kept."""
+
+    __tablename__ = "tokens"
+    id: Mapped[str] = mapped_column(String(32), primary_key=True)
+    project_id: Mapped[int] = mapped_column(ForeignKey("projects.id", ondelete="CASCADE"))
+    token_hash: Mapped[str] = mapped_column(String(64), unique=True)
+    scopes: Mapped[str] = mapped_column(String(64))
+    name: Mapped[str | None] = mapped_column(String(128), nullable=True)
+    created_at: Mapped[datetime] = mapped_column(UtcDateTime)
+    revoked_at: Mapped[datetime | None] = mapped_column(UtcDateTime, nullable=True)
+
+
+class ModelRow(Base):
+    """One deployed classifier and its monitoring settings."""
+
+    __tablename__ = "models"
+    __table_args__ = (UniqueConstraint("project_id", "name", name="uq_models_project_name"),)
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    project_id: Mapped[int] = mapped_column(ForeignKey("projects.id", ondelete="CASCADE"))
+    name: Mapped[str] = mapped_column(String(64))
+    kind: Mapped[str] = mapped_column(String(16))
+    classes: Mapped[list[str]] = mapped_column(Json)
+    positive: Mapped[str | None] = mapped_column(String(128), nullable=True)
+    threshold: Mapped[float] = mapped_column(Float)
+    label_delay_days: Mapped[float] = mapped_column(Float)
+    min_coverage: Mapped[float] = mapped_column(Float)
+    negative_after_days: Mapped[float | None] = mapped_column(Float, nullable=True)
+    segment_keys: Mapped[list[str] | None] = mapped_column(Json, nullable=True)
+    created_at: Mapped[datetime] = mapped_column(UtcDateTime)
+    updated_at: Mapped[datetime] = mapped_column(UtcDateTime)
+
+
+class ThresholdChange(Base):
+    """History of a model's decision threshold."""
+
+    __tablename__ = "threshold_changes"
+    id: Mapped[int] = mapped_column(BigId, primary_key=True, autoincrement=True)
+    model_id: Mapped[int] = mapped_column(ForeignKey("models.id", ondelete="CASCADE"), index=True)
+    threshold: Mapped[float] = mapped_column(Float)
+    changed_at: Mapped[datetime] = mapped_column(UtcDateTime)
+
+
+class Prediction(Base):
+    """One scored item with its current label (the label history is in `labels`).
+
+    `hour` is the prediction time in whole hours since the Unix epoch: the rollup key.
+    `delay_h` is hours from `ts` to the label's outcome time, kept for the delay histogram.
+    """
+
+    __tablename__ = "predictions"
+    __table_args__ = (
+        UniqueConstraint("model_id", "pid", name="uq_predictions_model_pid"),
+        Index("ix_predictions_model_hour", "model_id", "hour"),
+        Index("ix_predictions_model_ts", "model_id", "ts"),
+    )
+    row_id: Mapped[int] = mapped_column(BigId, primary_key=True, autoincrement=True)
+    model_id: Mapped[int] = mapped_column(ForeignKey("models.id", ondelete="CASCADE"))
+    pid: Mapped[str] = mapped_column(String(128))
+    ts: Mapped[datetime] = mapped_column(UtcDateTime)
+    hour: Mapped[int] = mapped_column(Integer)
+    score: Mapped[float | None] = mapped_column(Float, nullable=True)
+    scores: Mapped[dict[str, float] | None] = mapped_column(Json, nullable=True)
+    predicted: Mapped[str] = mapped_column(String(128))
+    tags: Mapped[dict[str, str] | None] = mapped_column(Json, nullable=True)
+    actual: Mapped[str | None] = mapped_column(String(128), nullable=True)
+    label_ts: Mapped[datetime | None] = mapped_column(UtcDateTime, nullable=True)
+    delay_h: Mapped[float | None] = mapped_column(Float, nullable=True)
+    received_at: Mapped[datetime] = mapped_column(UtcDateTime)
+
+
+class Label(Base):
+    """Every label value that changed something, in arrival order (the correction history)."""
+
+    __tablename__ = "labels"
+    __table_args__ = (Index("ix_labels_model_pid", "model_id", "pid"),)
+    row_id: Mapped[int] = mapped_column(BigId, primary_key=True, autoincrement=True)
+    model_id: Mapped[int] = mapped_column(ForeignKey("models.id", ondelete="CASCADE"))
+    pid: Mapped[str] = mapped_column(String(128))
+    actual: Mapped[str] = mapped_column(String(128))
+    ts: Mapped[datetime] = mapped_column(UtcDateTime)
+    change: Mapped[str] = mapped_column(String(16))  # first | correction | pending
+    received_at: Mapped[datetime] = mapped_column(UtcDateTime)
+
+
+class PendingLabel(Base):
+    """A label whose prediction has not arrived yet; joined when it does."""
+
+    __tablename__ = "pending_labels"
+    __table_args__ = (UniqueConstraint("model_id", "pid", name="uq_pending_labels_model_pid"),)
+    row_id: Mapped[int] = mapped_column(BigId, primary_key=True, autoincrement=True)
+    model_id: Mapped[int] = mapped_column(ForeignKey("models.id", ondelete="CASCADE"))
+    pid: Mapped[str] = mapped_column(String(128))
+    actual: Mapped[str] = mapped_column(String(128))
+    ts: Mapped[datetime] = mapped_column(UtcDateTime)
+    received_at: Mapped[datetime] = mapped_column(UtcDateTime)
+
+
+class DirtyBucket(Base):
+    """A (model, hour) whose rollups are stale; `version` grows with every write to it."""
+
+    __tablename__ = "dirty_buckets"
+    model_id: Mapped[int] = mapped_column(
+        ForeignKey("models.id", ondelete="CASCADE"), primary_key=True
+    )
+    hour: Mapped[int] = mapped_column(Integer, primary_key=True)
+    version: Mapped[int] = mapped_column(BigInteger)
+    marked_at: Mapped[datetime] = mapped_column(UtcDateTime)
+
+
+class ServiceState(Base):
+    """Small key/value facts the jobs leave for readers (last refresh, counters)."""
+
+    __tablename__ = "service_state"
+    key: Mapped[str] = mapped_column(String(64), primary_key=True)
+    value: Mapped[Any] = mapped_column(Json)
+    updated_at: Mapped[datetime] = mapped_column(UtcDateTime)
+
+
+__all__ = [
+    "Base",
+    "Project",
+    "Token",
+    "ModelRow",
+    "ThresholdChange",
+    "Prediction",
+    "Label",
+    "PendingLabel",
+    "DirtyBucket",
+    "ServiceState",
+]
