@@ -1,0 +1,107 @@
+"""Seeded bootstrap of confusion counts, vectorised over resamples with numpy.
+
+The counts of a window are resampled as one multinomial draw per resample (n fixed, cell
+probabilities = observed shares), which is the ordinary row bootstrap of the labelled
+predictions without touching the rows. The generator is seeded from the counts and the
+caller's seed, so the same data always gives the same interval, whatever ran before.
+Intervals are percentile intervals over the resamples where the measure is defined; a
+bootstrap interval need not contain the point value.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+
+import numpy as np
+
+from belated.stats.values import Value
+
+DEFAULT_RESAMPLES = 200
+MAX_RESAMPLES = 10_000
+
+BOOTSTRAPPED_BINARY: tuple[str, ...] = ("fbeta", "mcc", "balanced_accuracy")
+
+Interval = tuple[float, float] | None
+
+
+def check_resamples(resamples: int) -> int:
+    """The resample count; ValueError unless it is an integer in [0, 10,000] (0: no interval)."""
+    if isinstance(resamples, bool) or not isinstance(resamples, int | np.integer):
+        raise ValueError("resamples must be an integer")
+    if not 0 <= resamples <= MAX_RESAMPLES:
+        raise ValueError(f"resamples must lie in [0, {MAX_RESAMPLES}], got {resamples}")
+    return int(resamples)
+
+
+def generator_for(counts: Sequence[int], seed: int) -> np.random.Generator:
+    """A generator seeded by the caller's seed and the counts (same data, same stream)."""
+    if seed < 0:
+        raise ValueError(f"seed must be a non-negative integer, got {seed}")
+    return np.random.default_rng([int(seed), *(int(c) for c in counts)])
+
+
+def resample(counts: Sequence[int], resamples: int, rng: np.random.Generator) -> np.ndarray:
+    """`resamples` multinomial redraws of `counts` as a float array (resamples, len(counts))."""
+    counts_arr = np.asarray(counts, dtype=np.int64)
+    n = int(counts_arr.sum())
+    draws = rng.multinomial(n, counts_arr / n, size=resamples)
+    return draws.astype(np.float64)
+
+
+def percentile_interval(samples: np.ndarray, confidence: float) -> Interval:
+    """Percentile interval of the finite samples (linear interpolation), None if none."""
+    finite = samples[np.isfinite(samples)]
+    m = finite.size
+    if m == 0:
+        return None
+    finite.sort()
+    tail = (1.0 - confidence) / 2.0
+    return _interpolate(finite, tail * (m - 1)), _interpolate(finite, (1.0 - tail) * (m - 1))
+
+
+def _interpolate(sorted_values: np.ndarray, position: float) -> float:
+    """The value at a fractional position of a sorted array (numpy's 'linear' quantile)."""
+    below = int(position)
+    above = min(below + 1, sorted_values.size - 1)
+    weight = position - below
+    return float(sorted_values[below] * (1.0 - weight) + sorted_values[above] * weight)
+
+
+def binary_arrays(
+    tp: np.ndarray, fp: np.ndarray, fn: np.ndarray, tn: np.ndarray, beta: float
+) -> dict[str, np.ndarray]:
+    """F-beta, MCC and balanced accuracy for arrays of counts; NaN where undefined."""
+    b2 = beta * beta
+    with np.errstate(divide="ignore", invalid="ignore"):
+        fbeta = (1.0 + b2) * tp / ((1.0 + b2) * tp + b2 * fn + fp)
+        mcc = (tp * tn - fp * fn) / np.sqrt((tp + fp) * (tn + fn) * (tp + fn) * (tn + fp))
+        balanced = 0.5 * (tp / (tp + fn) + tn / (tn + fp))
+    # A zero margin makes MCC 0/0 = NaN (undefined), the same as the point rule.
+    return {"fbeta": fbeta, "mcc": mcc, "balanced_accuracy": balanced}
+
+
+def bootstrap_binary(
+    tp: int,
+    fp: int,
+    fn: int,
+    tn: int,
+    *,
+    beta: float,
+    confidence: float,
+    resamples: int = DEFAULT_RESAMPLES,
+    seed: int = 0,
+) -> dict[str, Interval]:
+    """Percentile intervals for fbeta, mcc and balanced_accuracy from resampled counts."""
+    counts = (tp, fp, fn, tn)
+    if resamples == 0 or sum(counts) == 0:
+        return dict.fromkeys(BOOTSTRAPPED_BINARY)
+    draws = resample(counts, resamples, generator_for(counts, seed))
+    arrays = binary_arrays(draws[:, 0], draws[:, 1], draws[:, 2], draws[:, 3], beta)
+    return {name: percentile_interval(arrays[name], confidence) for name in BOOTSTRAPPED_BINARY}
+
+
+def attach(value: Value, interval: Interval) -> Value:
+    """`value` with the bootstrap interval, if there is one."""
+    if interval is None:
+        return value
+    return value.with_interval(interval[0], interval[1])
