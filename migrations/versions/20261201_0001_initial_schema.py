@@ -2,7 +2,7 @@
 
 Revision ID: 0001_initial
 Revises: 
-Create Date: 2026-12-01 22:49:04.319026
+Create Date: 2026-12-01 22:53:00.223935
 """
 
 from collections.abc import Sequence
@@ -116,40 +116,10 @@ def upgrade() -> None:
         batch_op.create_index('ix_predictions_model_hour', ['model_id', 'hour'], unique=False)
         batch_op.create_index('ix_predictions_model_ts', ['model_id', 'ts'], unique=False)
 
-    op.create_table('rollup_bins',
-    sa.Column('model_id', sa.Integer(), nullable=False),
-    sa.Column('hour', sa.Integer(), nullable=False),
-    sa.Column('seg_key', sa.String(length=64), nullable=False),
-    sa.Column('seg_value', sa.String(length=64), nullable=False),
-    sa.Column('cls', sa.String(length=8), nullable=False),
-    sa.Column('bin', sa.Integer(), nullable=False),
-    sa.Column('n', sa.BigInteger(), nullable=False),
-    sa.Column('ssum', sa.Float(), nullable=False),
-    sa.ForeignKeyConstraint(['model_id'], ['models.id'], name=op.f('fk_rollup_bins_model_id_models'), ondelete='CASCADE'),
-    sa.PrimaryKeyConstraint('model_id', 'hour', 'seg_key', 'seg_value', 'cls', 'bin', name=op.f('pk_rollup_bins'))
-    )
-    op.create_table('rollup_cells',
-    sa.Column('model_id', sa.Integer(), nullable=False),
-    sa.Column('hour', sa.Integer(), nullable=False),
-    sa.Column('seg_key', sa.String(length=64), nullable=False),
-    sa.Column('seg_value', sa.String(length=64), nullable=False),
-    sa.Column('actual', sa.String(length=128), nullable=False),
-    sa.Column('predicted', sa.String(length=128), nullable=False),
-    sa.Column('n', sa.BigInteger(), nullable=False),
-    sa.ForeignKeyConstraint(['model_id'], ['models.id'], name=op.f('fk_rollup_cells_model_id_models'), ondelete='CASCADE'),
-    sa.PrimaryKeyConstraint('model_id', 'hour', 'seg_key', 'seg_value', 'actual', 'predicted', name=op.f('pk_rollup_cells'))
-    )
-    op.create_table('rollup_delays',
-    sa.Column('model_id', sa.Integer(), nullable=False),
-    sa.Column('hour', sa.Integer(), nullable=False),
-    sa.Column('bin', sa.Integer(), nullable=False),
-    sa.Column('n', sa.BigInteger(), nullable=False),
-    sa.ForeignKeyConstraint(['model_id'], ['models.id'], name=op.f('fk_rollup_delays_model_id_models'), ondelete='CASCADE'),
-    sa.PrimaryKeyConstraint('model_id', 'hour', 'bin', name=op.f('pk_rollup_delays'))
-    )
     op.create_table('rollups',
     sa.Column('model_id', sa.Integer(), nullable=False),
-    sa.Column('hour', sa.Integer(), nullable=False),
+    sa.Column('level', sa.String(length=1), nullable=False),
+    sa.Column('start', sa.Integer(), nullable=False),
     sa.Column('seg_key', sa.String(length=64), nullable=False),
     sa.Column('seg_value', sa.String(length=64), nullable=False),
     sa.Column('n_pred', sa.BigInteger(), nullable=False),
@@ -166,8 +136,18 @@ def upgrade() -> None:
     sa.Column('exp_fp', sa.Float(), nullable=False),
     sa.Column('exp_fn', sa.Float(), nullable=False),
     sa.Column('exp_tn', sa.Float(), nullable=False),
+    sa.Column('hist', sa.LargeBinary(), nullable=True),
+    sa.Column('delays', sa.LargeBinary(), nullable=True),
+    sa.Column('cells', sa.JSON().with_variant(postgresql.JSONB(astext_type=sa.Text()), 'postgresql'), nullable=True),
     sa.ForeignKeyConstraint(['model_id'], ['models.id'], name=op.f('fk_rollups_model_id_models'), ondelete='CASCADE'),
-    sa.PrimaryKeyConstraint('model_id', 'hour', 'seg_key', 'seg_value', name=op.f('pk_rollups'))
+    sa.PrimaryKeyConstraint('model_id', 'level', 'start', 'seg_key', 'seg_value', name=op.f('pk_rollups'))
+    )
+    op.create_table('segment_keys',
+    sa.Column('model_id', sa.Integer(), nullable=False),
+    sa.Column('key', sa.String(length=64), nullable=False),
+    sa.Column('admitted_at', sa.DateTime(timezone=True), nullable=False),
+    sa.ForeignKeyConstraint(['model_id'], ['models.id'], name=op.f('fk_segment_keys_model_id_models'), ondelete='CASCADE'),
+    sa.PrimaryKeyConstraint('model_id', 'key', name=op.f('pk_segment_keys'))
     )
     op.create_table('segment_values',
     sa.Column('model_id', sa.Integer(), nullable=False),
@@ -196,10 +176,8 @@ def downgrade() -> None:
 
     op.drop_table('threshold_changes')
     op.drop_table('segment_values')
+    op.drop_table('segment_keys')
     op.drop_table('rollups')
-    op.drop_table('rollup_delays')
-    op.drop_table('rollup_cells')
-    op.drop_table('rollup_bins')
     with op.batch_alter_table('predictions', schema=None) as batch_op:
         batch_op.drop_index('ix_predictions_model_ts')
         batch_op.drop_index('ix_predictions_model_hour')

@@ -49,22 +49,32 @@ def resample(counts: Sequence[int], resamples: int, rng: np.random.Generator) ->
 
 
 def percentile_interval(samples: np.ndarray, confidence: float) -> Interval:
-    """Percentile interval of the finite samples (linear interpolation), None if none."""
-    finite = samples[np.isfinite(samples)]
-    m = finite.size
-    if m == 0:
-        return None
-    finite.sort()
+    """Percentile interval of the finite samples (numpy's 'linear' quantile), None if none."""
+    return percentile_intervals(samples[np.newaxis, :], confidence)[0]
+
+
+def percentile_intervals(samples: np.ndarray, confidence: float) -> list[Interval]:
+    """`percentile_interval` of each row of a 2-D array, with one sort for all rows."""
+    # NaN sorts last, so the first `m` entries of a sorted row are its finite samples.
+    ordered = np.sort(np.where(np.isinf(samples), np.nan, samples), axis=1)
+    finite_counts = np.count_nonzero(~np.isnan(ordered), axis=1).tolist()
     tail = (1.0 - confidence) / 2.0
-    return _interpolate(finite, tail * (m - 1)), _interpolate(finite, (1.0 - tail) * (m - 1))
+    out: list[Interval] = []
+    for row, m in zip(ordered, finite_counts, strict=True):
+        if m == 0:
+            out.append(None)
+        else:
+            out.append((_interpolate(row, tail * (m - 1)), _interpolate(row, (1 - tail) * (m - 1))))
+    return out
 
 
 def _interpolate(sorted_values: np.ndarray, position: float) -> float:
     """The value at a fractional position of a sorted array (numpy's 'linear' quantile)."""
     below = int(position)
-    above = min(below + 1, sorted_values.size - 1)
     weight = position - below
-    return float(sorted_values[below] * (1.0 - weight) + sorted_values[above] * weight)
+    if weight == 0.0:
+        return float(sorted_values[below])
+    return float(sorted_values[below] * (1.0 - weight) + sorted_values[below + 1] * weight)
 
 
 def binary_arrays(
@@ -95,9 +105,11 @@ def bootstrap_binary(
     counts = (tp, fp, fn, tn)
     if resamples == 0 or sum(counts) == 0:
         return dict.fromkeys(BOOTSTRAPPED_BINARY)
-    draws = resample(counts, resamples, generator_for(counts, seed))
-    arrays = binary_arrays(draws[:, 0], draws[:, 1], draws[:, 2], draws[:, 3], beta)
-    return {name: percentile_interval(arrays[name], confidence) for name in BOOTSTRAPPED_BINARY}
+    # One row per cell, contiguous, so the arithmetic below runs on plain vectors.
+    draws = resample(counts, resamples, generator_for(counts, seed)).T.copy()
+    arrays = binary_arrays(draws[0], draws[1], draws[2], draws[3], beta)
+    stacked = np.stack([arrays[name] for name in BOOTSTRAPPED_BINARY])
+    return dict(zip(BOOTSTRAPPED_BINARY, percentile_intervals(stacked, confidence), strict=True))
 
 
 def attach(value: Value, interval: Interval) -> Value:

@@ -9,8 +9,8 @@ from __future__ import annotations
 
 import math
 
-from belated.stats.fbeta import fbeta_from_counts
 from belated.stats.fbeta import FBETA_UNDEFINED as FBETA_UNDEFINED
+from belated.stats.fbeta import fbeta_from_counts
 from belated.stats.values import Value, ratio
 
 NO_PREDICTED_POSITIVES = "no predicted positives"

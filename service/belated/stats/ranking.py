@@ -28,49 +28,56 @@ def score_bins(scores: np.ndarray) -> np.ndarray:
     return np.minimum((np.asarray(scores, dtype=np.float64) * 100).astype(np.int64), N_BINS - 1)
 
 
-def _class_totals(hist_pos: np.ndarray, hist_neg: np.ndarray) -> tuple[int, int, str | None]:
-    n_pos = int(hist_pos.sum())
-    n_neg = int(hist_neg.sum())
+def _reason(n_pos: float, n_neg: float) -> str | None:
     if n_pos == 0:
-        return n_pos, n_neg, NO_ACTUAL_POSITIVES
+        return NO_ACTUAL_POSITIVES
     if n_neg == 0:
-        return n_pos, n_neg, NO_ACTUAL_NEGATIVES
-    return n_pos, n_neg, None
+        return NO_ACTUAL_NEGATIVES
+    return None
 
 
-def roc_auc(
+def ranking_measures(
     hist_pos: np.ndarray, hist_neg: np.ndarray, *, z: float | None = None
-) -> Value:
-    """ROC AUC from the histograms, ties within a bin counted one half.
+) -> tuple[Value, Value]:
+    """(ROC AUC, average precision) from the histograms, sharing the cumulative sums.
 
-    With `z` (a normal quantile, see `intervals.z_value`) the value carries the Hanley and
-    McNeil (1982) interval. Undefined when either class is absent.
+    AUC counts a positive and a negative in the same bin as a tie (one half). With `z` (a
+    normal quantile, see `intervals.z_value`) the AUC carries the Hanley and McNeil (1982)
+    interval. Average precision is the sum over thresholds of the recall step times the
+    precision there. Both are undefined when either class is absent.
     """
-    n_pos, n_neg, reason = _class_totals(hist_pos, hist_neg)
-    if reason is not None:
-        return Value.undefined(reason)
+    pos = hist_pos.astype(np.float64)
     neg = hist_neg.astype(np.float64)
+    cum_pos = np.cumsum(pos)
+    cum_neg = np.cumsum(neg)
+    n_pos = float(cum_pos[-1])
+    n_neg = float(cum_neg[-1])
+    reason = _reason(n_pos, n_neg)
+    if reason is not None:
+        return Value.undefined(reason), Value.undefined(reason)
     # Negatives strictly below each bin, plus half of those sharing it (Mann-Whitney ties).
-    below = np.cumsum(neg) - 0.5 * neg
-    auc = float(np.dot(hist_pos.astype(np.float64), below)) / (n_pos * n_neg)
+    auc = float(np.dot(pos, cum_neg - 0.5 * neg)) / (n_pos * n_neg)
+    # Counts at or above each bin edge, i.e. called positive at threshold k/100.
+    tp_from = n_pos - cum_pos + pos
+    flagged_from = tp_from + (n_neg - cum_neg + neg)
+    precision_from = np.divide(
+        tp_from, flagged_from, out=np.zeros_like(pos), where=flagged_from > 0
+    )
+    ap = float(np.dot(pos, precision_from)) / n_pos
     if z is None:
-        return Value(auc)
-    low, high = hanley_mcneil(auc, n_pos, n_neg, z)
-    return Value(auc, low, high)
+        return Value(auc), Value(ap)
+    low, high = hanley_mcneil(auc, int(n_pos), int(n_neg), z)
+    return Value(auc, low, high), Value(ap)
+
+
+def roc_auc(hist_pos: np.ndarray, hist_neg: np.ndarray, *, z: float | None = None) -> Value:
+    """ROC AUC from the histograms (ties in a bin count one half); with `z`, its interval."""
+    return ranking_measures(hist_pos, hist_neg, z=z)[0]
 
 
 def average_precision(hist_pos: np.ndarray, hist_neg: np.ndarray) -> Value:
-    """Average precision, sum over thresholds of (recall step) x precision, from histograms."""
-    n_pos, _, reason = _class_totals(hist_pos, hist_neg)
-    if reason is not None:
-        return Value.undefined(reason)
-    pos = hist_pos.astype(np.float64)
-    # Counts at or above each bin edge, i.e. predicted positive at threshold k/100.
-    tp = np.cumsum(pos[::-1])[::-1]
-    flagged = tp + np.cumsum(hist_neg[::-1].astype(np.float64))[::-1]
-    hit = pos > 0
-    # Where a bin holds a positive, flagged >= tp > 0, so the division is safe.
-    return Value(float(np.dot(pos[hit], tp[hit] / flagged[hit])) / n_pos)
+    """Average precision from the histograms: sum of (recall step) x precision."""
+    return ranking_measures(hist_pos, hist_neg)[1]
 
 
 def auc_binning_bound(hist_pos: np.ndarray, hist_neg: np.ndarray) -> float:

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import math
 from collections.abc import Iterator
 from contextlib import contextmanager
 from typing import Any
@@ -46,6 +47,11 @@ def _configure_sqlite(engine: Engine) -> None:
         cur.execute("PRAGMA busy_timeout=30000")
         cur.execute("PRAGMA foreign_keys=ON")
         cur.execute("PRAGMA synchronous=NORMAL")
+        try:
+            cur.execute("SELECT ln(1.0), floor(1.5)")
+        except Exception:  # a SQLite built without its math functions
+            dbapi_conn.create_function("ln", 1, math.log, deterministic=True)
+            dbapi_conn.create_function("floor", 1, math.floor, deterministic=True)
         cur.close()
 
     @event.listens_for(engine, "begin")

@@ -10,7 +10,7 @@ from belated.store import tables as t
 
 _TABLES = [
     t.Prediction, t.Label, t.PendingLabel, t.DirtyBucket, t.ThresholdChange,
-    rt.Rollup, rt.RollupBin, rt.RollupCell, rt.RollupDelay, rt.SegmentValue,
+    rt.Rollup, rt.SegmentValue, rt.SegmentKey,
 ]
 
 

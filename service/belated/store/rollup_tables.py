@@ -1,27 +1,32 @@
-"""Rollup tables: sufficient statistics per (model, hour, segment), derived from raw rows.
+"""Rollup tables: sufficient statistics per (model, level, start, segment), derived from raw rows.
 
-The whole model is the segment ('', ''); a single tag is (key, value). Histogram bins and
-multiclass cells are stored sparsely, one row per non-empty cell.
+`level` is 'h' (one hour; `start` is the epoch hour) or 'd' (one UTC day; `start` is the epoch
+hour at midnight). Daily rows are sums of their hourly rows, kept so that a year of daily
+windows reads 365 rows per segment instead of 8,760. The whole model is the segment
+('', ''); a single tag is (key, value).
+
+Histograms are packed numpy arrays (see belated.store.packing): they are built from the
+database's GROUP BY output and merge by addition, never recomputed from rows in Python.
 """
 
 from __future__ import annotations
 
 from datetime import datetime
 
-from sqlalchemy import BigInteger, Float, ForeignKey, Integer, String
+from sqlalchemy import BigInteger, Float, ForeignKey, Integer, LargeBinary, String
 from sqlalchemy.orm import Mapped, mapped_column
 
-from belated.store.tables import Base, UtcDateTime
-
+from belated.store.tables import Base, Json, UtcDateTime
 
 class Rollup(Base):
-    """Scalar sufficient statistics of one (model, hour, segment)."""
+    """Sufficient statistics of one (model, level, start, segment)."""
 
     __tablename__ = "rollups"
     model_id: Mapped[int] = mapped_column(
         ForeignKey("models.id", ondelete="CASCADE"), primary_key=True
     )
-    hour: Mapped[int] = mapped_column(Integer, primary_key=True)
+    level: Mapped[str] = mapped_column(String(1), primary_key=True)
+    start: Mapped[int] = mapped_column(Integer, primary_key=True)
     seg_key: Mapped[str] = mapped_column(String(64), primary_key=True)
     seg_value: Mapped[str] = mapped_column(String(64), primary_key=True)
     n_pred: Mapped[int] = mapped_column(BigInteger)
@@ -38,53 +43,12 @@ class Rollup(Base):
     exp_fp: Mapped[float] = mapped_column(Float)
     exp_fn: Mapped[float] = mapped_column(Float)
     exp_tn: Mapped[float] = mapped_column(Float)
-
-
-class RollupBin(Base):
-    """One non-empty score-histogram bin; `cls` is 'all', 'pos' or 'neg' (actual class)."""
-
-    __tablename__ = "rollup_bins"
-    model_id: Mapped[int] = mapped_column(
-        ForeignKey("models.id", ondelete="CASCADE"), primary_key=True
-    )
-    hour: Mapped[int] = mapped_column(Integer, primary_key=True)
-    seg_key: Mapped[str] = mapped_column(String(64), primary_key=True)
-    seg_value: Mapped[str] = mapped_column(String(64), primary_key=True)
-    cls: Mapped[str] = mapped_column(String(8), primary_key=True)
-    bin: Mapped[int] = mapped_column(Integer, primary_key=True)
-    n: Mapped[int] = mapped_column(BigInteger)
-    ssum: Mapped[float] = mapped_column(Float)
-
-
-class RollupCell(Base):
-    """One non-empty cell of a multiclass confusion matrix (actual, predicted)."""
-
-    __tablename__ = "rollup_cells"
-    model_id: Mapped[int] = mapped_column(
-        ForeignKey("models.id", ondelete="CASCADE"), primary_key=True
-    )
-    hour: Mapped[int] = mapped_column(Integer, primary_key=True)
-    seg_key: Mapped[str] = mapped_column(String(64), primary_key=True)
-    seg_value: Mapped[str] = mapped_column(String(64), primary_key=True)
-    actual: Mapped[str] = mapped_column(String(128), primary_key=True)
-    predicted: Mapped[str] = mapped_column(String(128), primary_key=True)
-    n: Mapped[int] = mapped_column(BigInteger)
-
-
-class RollupDelay(Base):
-    """One non-empty bin of the label-delay histogram (whole model only)."""
-
-    __tablename__ = "rollup_delays"
-    model_id: Mapped[int] = mapped_column(
-        ForeignKey("models.id", ondelete="CASCADE"), primary_key=True
-    )
-    hour: Mapped[int] = mapped_column(Integer, primary_key=True)
-    bin: Mapped[int] = mapped_column(Integer, primary_key=True)
-    n: Mapped[int] = mapped_column(BigInteger)
-
+    hist: Mapped[bytes | None] = mapped_column(LargeBinary, nullable=True)
+    delays: Mapped[bytes | None] = mapped_column(LargeBinary, nullable=True)
+    cells: Mapped[dict[str, int] | None] = mapped_column(Json, nullable=True)
 
 class SegmentValue(Base):
-    """A tag key:value admitted to rollups (the rest roll up under '(other)')."""
+    """A tag key:value admitted to rollups (later values roll up under '(other)')."""
 
     __tablename__ = "segment_values"
     model_id: Mapped[int] = mapped_column(
@@ -93,3 +57,15 @@ class SegmentValue(Base):
     key: Mapped[str] = mapped_column(String(64), primary_key=True)
     value: Mapped[str] = mapped_column(String(64), primary_key=True)
     admitted_at: Mapped[datetime] = mapped_column(UtcDateTime)
+
+class SegmentKey(Base):
+    """A tag key admitted to rollups for a model (its `segment_keys`, or the first 8 seen)."""
+
+    __tablename__ = "segment_keys"
+    model_id: Mapped[int] = mapped_column(
+        ForeignKey("models.id", ondelete="CASCADE"), primary_key=True
+    )
+    key: Mapped[str] = mapped_column(String(64), primary_key=True)
+    admitted_at: Mapped[datetime] = mapped_column(UtcDateTime)
+
+_ = Float  # keep the import list stable for readers of the schema

@@ -1,0 +1,1 @@
+"""History queries: windows of measures, threshold sweeps and label delays."""

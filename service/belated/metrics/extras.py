@@ -1,0 +1,70 @@
+"""The threshold sweep and the label-delay answer over a time range."""
+
+from __future__ import annotations
+
+from datetime import datetime
+from typing import Any
+
+import numpy as np
+from sqlalchemy.orm import Session
+
+from belated.metrics.load import ensure_fresh, epoch_hour, load_hours
+from belated.stats.delays import km_quantiles
+from belated.stats.thresholds import sweep
+from belated.store.accumulate import Acc
+from belated.store.packing import unpack_delays
+from belated.store.tables import ModelRow
+
+
+def thresholds(session: Session, model: ModelRow, *, start: datetime, end: datetime,
+               beta: float, precision_target: float | None, recall_target: float | None,
+               now: datetime, max_values: int) -> dict[str, Any]:
+    """Measures at every bin edge over the labelled predictions of [start, end)."""
+    lo, hi = epoch_hour(start), epoch_hour(end)
+    ensure_fresh(session, model, lo, hi, max_values)
+    total = Acc()
+    for acc in load_hours(session, model, level="h", lo=lo, hi=hi, filters=(), now=now).values():
+        total.add(acc)
+    answer = sweep(total.hist[0], total.hist[1], beta=beta, precision_target=precision_target,
+                   recall_target=recall_target)
+    answer["labelled"] = int(total.hist[0].sum() + total.hist[1].sum())
+    return answer
+
+
+def delays(session: Session, model: ModelRow, *, start: datetime, end: datetime,
+           now: datetime, max_values: int) -> dict[str, Any]:
+    """Kaplan-Meier delay quantiles (unlabelled predictions censored at their age) and
+    coverage by window age in days."""
+    lo, hi = epoch_hour(start), epoch_hour(end)
+    ensure_fresh(session, model, lo, hi, max_values)
+    rows = load_hours(session, model, level="h", lo=lo, hi=hi, filters=(), now=now)
+    delay_hist = None
+    ages: list[np.ndarray] = []
+    by_age: dict[int, list[int]] = {}
+    now_h = now.timestamp() / 3600
+    for hour, acc in sorted(rows.items()):
+        if acc.delays is not None:
+            delay_hist = acc.delays.copy() if delay_hist is None else delay_hist + acc.delays
+        n = acc.scalar("n_pred")
+        # implied negatives are not label arrivals: they stay censored at their age
+        unlabelled = n - (acc.scalar("n_labelled") - acc.scalar("n_implied"))
+        age_h = max(0.0, now_h - (hour + 0.5))
+        if unlabelled > 0:
+            ages.append(np.full(unlabelled, age_h))
+        day = int(age_h // 24)
+        agg = by_age.setdefault(day, [0, 0])
+        agg[0] += n
+        agg[1] += acc.scalar("n_labelled")
+    if delay_hist is None:
+        delay_hist = unpack_delays(None)
+    censored = np.concatenate(ages) if ages else np.zeros(0)
+    return {
+        "unit": "hours",
+        "quantiles": km_quantiles(delay_hist, censored),
+        "coverage_by_age": [
+            {"age_days": d, "coverage": round(v[1] / v[0], 6), "predictions": v[0]}
+            for d, v in sorted(by_age.items()) if v[0]
+        ],
+        "start": start.isoformat().replace("+00:00", "Z"),
+        "end": end.isoformat().replace("+00:00", "Z"),
+    }

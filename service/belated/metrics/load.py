@@ -1,0 +1,66 @@
+"""Load accumulated statistics for a range: from rollups, or from raw rows for several tags."""
+
+from __future__ import annotations
+
+from collections import defaultdict
+from dataclasses import replace
+from datetime import datetime
+
+from sqlalchemy import select
+from sqlalchemy.orm import Session
+
+from belated.store import refresh, rollups, segments
+from belated.store.accumulate import Acc
+from belated.store.rollup_tables import Rollup
+from belated.store.tables import ModelRow
+
+
+def epoch_hour(dt: datetime) -> int:
+    """Whole hours since the Unix epoch."""
+    return int(dt.timestamp() // 3600)
+
+
+def ensure_fresh(session: Session, model: ModelRow, lo: int, hi: int, max_values: int) -> None:
+    """Read-your-writes: refresh the model's dirty buckets in [lo, hi) before reading."""
+    while refresh.refresh_batch(session, max_values=max_values, model_id=model.id, lo=lo,
+                                hi=hi, wait=True):
+        pass
+
+
+def _rollup_segment(session: Session, model: ModelRow,
+                    filters: tuple[tuple[str, str], ...]) -> tuple[str, str] | None:
+    """The rollup segment answering `filters`, or None when raw rows must answer."""
+    if not filters:
+        return "", ""
+    if len(filters) > 1:
+        return None
+    key, value = filters[0]
+    admitted = segments.admitted(session=session, model_id=model.id)
+    if key in admitted and value in admitted[key] and value != segments.OTHER:
+        return key, value
+    return None
+
+
+def load_hours(session: Session, model: ModelRow, *, level: str, lo: int, hi: int,
+               filters: tuple[tuple[str, str], ...], now: datetime) -> dict[int, Acc]:
+    """Accumulators keyed by row start hour (hourly or daily rows) over [lo, hi)."""
+    seg = _rollup_segment(session, model, filters)
+    if seg is None:
+        return _from_raw(session, model, level=level, lo=lo, hi=hi, filters=filters, now=now)
+    lo_q = lo - lo % 24 if level == "d" else lo
+    rows = session.execute(select(Rollup.__table__).where(
+        Rollup.model_id == model.id, Rollup.level == level, Rollup.start >= lo_q,
+        Rollup.start < hi, Rollup.seg_key == seg[0], Rollup.seg_value == seg[1]))
+    return {row.start: Acc.from_row(row) for row in rows}
+
+
+def _from_raw(session: Session, model: ModelRow, *, level: str, lo: int, hi: int,
+              filters: tuple[tuple[str, str], ...], now: datetime) -> dict[int, Acc]:
+    """The same statistics aggregated by SQL over raw rows with every tag filter applied."""
+    scope = replace(rollups.scope_of(model, range(lo, hi), now), filters=filters)
+    hourly = rollups.compute(session, scope, {})
+    out: dict[int, Acc] = defaultdict(Acc)
+    for (hour, key, _value), acc in hourly.items():
+        if key == "":
+            out[hour - hour % 24 if level == "d" else hour].add(acc)
+    return dict(out)

@@ -1,0 +1,107 @@
+"""Parse and check the query parameters of the history endpoints."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from datetime import datetime, timedelta
+
+from belated.errors import Invalid, field_error
+from belated.stats.fbeta import resolve_beta
+from belated.stats.summary import check_measures
+from belated.timeutil import GRANULARITIES, floor_window, parse_ts, window_step
+
+MAX_WINDOWS = 10_000
+DEFAULT_WINDOWS = 30
+INTERVALS = ("wilson", "clopper-pearson", "jeffreys")
+
+
+@dataclass(frozen=True)
+class Range:
+    """Aligned window starts [start, end) of one granularity."""
+
+    granularity: str
+    start: datetime
+    end: datetime
+
+    @property
+    def step(self) -> timedelta:
+        """The length of one window."""
+        return window_step(self.granularity)
+
+    def starts(self) -> list[datetime]:
+        """Every window start in the range."""
+        out, t = [], self.start
+        while t < self.end:
+            out.append(t)
+            t += self.step
+        return out
+
+
+def _bad(field: str, reason: str) -> Invalid:
+    return Invalid([field_error(None, field, reason)], detail=f"'{field}': {reason}")
+
+
+def parse_range(granularity: str, start: str | None, end: str | None, now: datetime,
+                default_windows: int = DEFAULT_WINDOWS) -> Range:
+    """Align [start, end) down to window boundaries; default the last 30 windows to now."""
+    if granularity not in GRANULARITIES:
+        raise _bad("granularity", f"must be one of {', '.join(GRANULARITIES)}")
+    step = window_step(granularity)
+    try:
+        end_dt = floor_window(parse_ts(end), granularity) if end else None
+        start_dt = floor_window(parse_ts(start), granularity) if start else None
+    except (ValueError, TypeError, OverflowError):
+        raise _bad("start" if start else "end", "not an RFC 3339 time") from None
+    if end_dt is None:
+        end_dt = floor_window(now, granularity) + step
+        if start_dt is not None and start_dt >= end_dt:
+            end_dt = start_dt + step
+    if start_dt is None:
+        start_dt = end_dt - default_windows * step
+    if start_dt >= end_dt:
+        raise _bad("start", "must be before 'end' (after aligning both to window boundaries)")
+    if (end_dt - start_dt) / step > MAX_WINDOWS:
+        raise _bad("end", f"the range covers more than {MAX_WINDOWS} windows")
+    return Range(granularity, start_dt, end_dt)
+
+
+def parse_beta(beta: float | None, precision_weight: float | None) -> float:
+    """β from either spelling (β or the precision weight α = 1/(1+β²)), never both."""
+    try:
+        return resolve_beta(beta, precision_weight)
+    except ValueError as exc:
+        raise _bad("precision_weight" if precision_weight is not None else "beta",
+                   str(exc)) from None
+
+
+def parse_segments(values: list[str] | None) -> tuple[tuple[str, str], ...]:
+    """`key:value` filters; the same key twice is refused."""
+    out: list[tuple[str, str]] = []
+    for raw in values or []:
+        key, sep, value = raw.partition(":")
+        if not sep or not key or not value or len(key) > 64 or len(value) > 64:
+            raise _bad("segment", f"{raw!r} is not key:value")
+        if any(k == key for k, _ in out):
+            raise _bad("segment", f"the key {key!r} is given twice")
+        out.append((key, value))
+    return tuple(out)
+
+
+def parse_measures(text: str | None) -> frozenset[str] | None:
+    """A comma list of measure names, or None for all."""
+    if not text:
+        return None
+    try:
+        return check_measures([m.strip() for m in text.split(",") if m.strip()])
+    except ValueError as exc:
+        raise _bad("measures", str(exc)) from None
+
+
+def check_interval(interval: str, confidence: float, resamples: int) -> None:
+    """Refuse an unknown interval method, a confidence outside (0, 1), too many resamples."""
+    if interval not in INTERVALS:
+        raise _bad("interval", f"must be one of {', '.join(INTERVALS)}")
+    if not (0 < confidence < 1):
+        raise _bad("confidence", "must lie in (0, 1)")
+    if not (1 <= resamples <= 10_000):
+        raise _bad("resamples", "must be between 1 and 10000")

@@ -1,0 +1,148 @@
+"""Assemble the windows of GET /v1/models/{model}/metrics from accumulated statistics."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from datetime import datetime, timedelta
+from typing import Any
+
+import numpy as np
+import orjson
+from sqlalchemy.orm import Session
+
+from belated.metrics.load import ensure_fresh, epoch_hour, load_hours
+from belated.metrics.params import Range
+from belated.stats.calibration import ece
+from belated.stats.multiclass import summarise_multiclass
+from belated.stats.summary import summarise
+from belated.stats.window import WindowStats
+from belated.store.accumulate import Acc
+from belated.store.packing import N_BINS
+from belated.store.tables import ModelRow
+from belated.timeutil import iso
+
+CALIBRATION_WINDOWS = 7
+
+
+@dataclass(frozen=True)
+class Options:
+    """How to compute measures."""
+
+    beta: float = 1.0
+    interval: str = "wilson"
+    confidence: float = 0.95
+    resamples: int = 200
+    measures: frozenset[str] | None = None
+    rolling: int = 1
+
+
+def to_stats(acc: Acc) -> WindowStats:
+    """The stats-package view of an accumulator."""
+    c = {n: acc.scalar(n) for n in ("n_pred", "n_labelled", "n_implied", "n_pred_pos",
+                                    "tp", "fp", "fn", "tn", "brier_sum", "logloss_sum",
+                                    "exp_tp", "exp_fp", "exp_fn", "exp_tn")}
+    delays = acc.delays if acc.delays is not None else WindowStats.empty().delay_hist
+    return WindowStats(
+        **c, hist_all=acc.hist.sum(axis=0), ssum_all=acc.hsum.sum(axis=0),
+        hist_pos=acc.hist[0].copy(), ssum_pos=acc.hsum[0].copy(),
+        hist_neg=acc.hist[1].copy(), ssum_neg=acc.hsum[1].copy(), delay_hist=delays)
+
+
+def _bucket_accs(session: Session, model: ModelRow, rng: Range, lookback: int,
+                 filters: tuple[tuple[str, str], ...], now: datetime, max_values: int
+                 ) -> tuple[list[datetime], list[Acc]]:
+    """One accumulator per base window, from `lookback` windows before the range."""
+    step = rng.step
+    first = rng.start - lookback * step
+    starts = [first + i * step for i in range(int((rng.end - first) / step))]
+    lo, hi = epoch_hour(first), epoch_hour(rng.end)
+    ensure_fresh(session, model, lo, hi, max_values)
+    level = "h" if rng.granularity == "hour" else "d"
+    rows = load_hours(session, model, level=level, lo=lo, hi=hi, filters=filters, now=now)
+    accs = [Acc() for _ in starts]
+    index = {epoch_hour(s): i for i, s in enumerate(starts)}
+    span = int(step / timedelta(hours=1))
+    base = epoch_hour(first)
+    for start, acc in rows.items():
+        i = index.get(start)
+        if i is None:
+            i = (start - base) // span
+        if 0 <= i < len(accs):
+            accs[i].add(acc)
+    return starts, accs
+
+
+def _settled(acc: Acc, end: datetime, model: ModelRow, now: datetime) -> bool:
+    if end > now:
+        return False
+    n, labelled = acc.scalar("n_pred"), acc.scalar("n_labelled")
+    if n == 0 or labelled / n >= model.min_coverage:
+        return True
+    return end + timedelta(days=model.label_delay_days) < now
+
+
+def build(session: Session, model: ModelRow, rng: Range, opts: Options,
+          filters: tuple[tuple[str, str], ...], now: datetime, max_values: int
+          ) -> list[dict[str, Any]]:
+    """The windows of the range, oldest first, contiguous (empty ones have zero counts)."""
+    lookback = opts.rolling - 1 + CALIBRATION_WINDOWS * 2
+    starts, base = _bucket_accs(session, model, rng, lookback, filters, now, max_values)
+    step = rng.step
+    settled = [_settled(a, s + step, model, now) for a, s in zip(base, starts, strict=True)]
+    out: list[dict[str, Any]] = []
+    for i in range(lookback, len(starts)):
+        parts = range(max(0, i - opts.rolling + 1), i + 1)
+        acc = Acc()
+        for j in parts:
+            acc.add(base[j])
+        start, end = starts[i], starts[i] + step
+        window = _window(model, acc, start, end, now, opts)
+        window["settled"] = all(settled[j] for j in parts)
+        if model.kind == "binary":
+            window["estimates"]["calibration_error"] = _calibration(base, settled, i)
+        out.append(window)
+    return out
+
+
+def _calibration(base: list[Acc], settled: list[bool], i: int) -> float | None:
+    """ECE of the trailing settled windows before window i (label-free estimates need it)."""
+    picked = [j for j in range(i - 1, -1, -1) if settled[j] and base[j].scalar("n_labelled")]
+    picked = picked[:CALIBRATION_WINDOWS]
+    if not picked:
+        return None
+    hist = np.zeros((3, N_BINS), np.int64)
+    hsum = np.zeros((3, N_BINS), np.float64)
+    for j in picked:
+        hist += base[j].hist
+        hsum += base[j].hsum
+    value = ece(hist[0], hsum[0], hist[1], hsum[1])
+    return value.value if hasattr(value, "value") else value  # type: ignore[return-value]
+
+
+def _window(model: ModelRow, acc: Acc, start: datetime, end: datetime, now: datetime,
+            opts: Options) -> dict[str, Any]:
+    n, labelled = acc.scalar("n_pred"), acc.scalar("n_labelled")
+    window: dict[str, Any] = {
+        "start": iso(start), "end": iso(end), "closed": end <= now,
+        "predictions": n, "labelled": labelled, "implied_negatives": acc.scalar("n_implied"),
+        "coverage": round(labelled / n, 6) if n else None,
+    }
+    seed = int(start.timestamp()) & 0x7FFFFFFF
+    if model.kind == "binary":
+        summary = summarise(to_stats(acc), beta=opts.beta, interval=opts.interval,
+                            confidence=opts.confidence, resamples=opts.resamples, seed=seed,
+                            measures=set(opts.measures) if opts.measures else None)
+        window.update(summary)
+        window["estimates"] = dict(window.get("estimates") or {})
+        return window
+    classes = list(model.classes)
+    matrix = np.zeros((len(classes), len(classes)), np.int64)
+    pos = {c: k for k, c in enumerate(classes)}
+    for key, count in (acc.cells or {}).items():
+        actual, predicted = orjson.loads(key)
+        if actual in pos and predicted in pos:
+            matrix[pos[actual], pos[predicted]] += count
+    window.update(summarise_multiclass(matrix, classes, beta=opts.beta, interval=opts.interval,
+                                       confidence=opts.confidence, resamples=opts.resamples,
+                                       seed=seed))
+    return window

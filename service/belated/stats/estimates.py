@@ -1,0 +1,88 @@
+"""Label-free estimates from scores alone; they hold only for calibrated scores.
+
+Expected confusion matrix: if p is the calibrated probability that a prediction is
+positive, each predicted positive adds p to the expected TP and 1 - p to the expected FP,
+and each predicted negative adds p to the expected FN and 1 - p to the expected TN. The
+measures of that matrix estimate precision, recall and F-beta before any label arrives.
+
+Positive prior under a prior shift: EM re-estimation of Saerens, Latinne and Decaestecker
+(2002, Neural Computation 14(1):21-41). With the training prior pi_t and a guess pi, every
+posterior is re-weighted by Bayes' rule,
+
+    p' = (pi / pi_t) p / ((pi / pi_t) p + ((1 - pi) / (1 - pi_t)) (1 - p)),
+
+and the new guess is the mean of p'; the fixed point is the maximum-likelihood prior of the
+unlabelled window. Here it runs on the 100-bin histogram of all scores with each bin's mean
+score (sum / count) standing for the scores in it.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+
+from belated.stats.fbeta import fbeta_from_counts
+from belated.stats.measures import FBETA_UNDEFINED, NO_PREDICTIONS
+from belated.stats.values import Value, ratio
+
+
+def expected_measures(
+    exp_tp: float, exp_fp: float, exp_fn: float, exp_tn: float, *, beta: float = 1.0
+) -> dict[str, Value]:
+    """Precision, recall, F-beta and prevalence of the expected confusion matrix."""
+    total = exp_tp + exp_fp + exp_fn + exp_tn
+    if total == 0:
+        undefined = Value.undefined(NO_PREDICTIONS)
+        return dict.fromkeys(("precision", "recall", "fbeta", "prevalence"), undefined)
+    f = fbeta_from_counts(exp_tp, exp_fp, exp_fn, beta)
+    return {
+        "precision": ratio(exp_tp, exp_tp + exp_fp, "no predicted positives"),
+        "recall": ratio(exp_tp, exp_tp + exp_fn, "no expected positives"),
+        "fbeta": Value.undefined(FBETA_UNDEFINED) if f is None else Value(f),
+        "prevalence": Value((exp_tp + exp_fn) / total),
+    }
+
+
+def expected_confusion(
+    scores: np.ndarray, predicted_pos: np.ndarray
+) -> tuple[float, float, float, float]:
+    """(expected TP, FP, FN, TN) of raw scores and predicted labels (the reference form)."""
+    p = np.asarray(scores, dtype=np.float64)
+    flagged = np.asarray(predicted_pos, dtype=bool)
+    exp_tp = float(p[flagged].sum())
+    exp_fn = float(p[~flagged].sum())
+    return exp_tp, float(flagged.sum()) - exp_tp, exp_fn, float((~flagged).sum()) - exp_fn
+
+
+def em_prior(
+    hist_all: np.ndarray,
+    ssum_all: np.ndarray,
+    train_prior: float,
+    *,
+    tol: float = 1e-9,
+    max_iter: int = 1000,
+) -> float | None:
+    """The window's positive prior re-estimated by EM (Saerens et al. 2002).
+
+    None when there are no predictions, or the training prior is not inside (0, 1).
+    """
+    counts = np.asarray(hist_all, dtype=np.float64)
+    total = counts.sum()
+    if total == 0 or not math.isfinite(train_prior) or not 0.0 < train_prior < 1.0:
+        return None
+    filled = counts > 0
+    weights = counts[filled] / total
+    p = np.clip(np.asarray(ssum_all, dtype=np.float64)[filled] / counts[filled], 0.0, 1.0)
+    prior = float(np.dot(weights, p))
+    for _ in range(max_iter):
+        if prior <= 0.0 or prior >= 1.0:
+            # Every score at 0 (or 1): the window is all negative (positive), a fixed point.
+            return prior
+        up = prior / train_prior * p
+        down = (1.0 - prior) / (1.0 - train_prior) * (1.0 - p)
+        updated = float(np.dot(weights, up / (up + down)))
+        if abs(updated - prior) < tol:
+            return updated
+        prior = updated
+    return prior

@@ -1,0 +1,147 @@
+"""The refresh: recompute dirty buckets, clearing a mark only if no write touched it since.
+
+One transaction per batch of buckets: a crash mid-run loses nothing (the marks are still
+there) and the next run repeats the work. On PostgreSQL the job takes marks with
+FOR UPDATE SKIP LOCKED and a read-your-writes refresh waits for them (FOR UPDATE), so a
+bucket is recomputed by one transaction at a time.
+"""
+
+from __future__ import annotations
+
+import logging
+from collections import defaultdict
+from datetime import timedelta
+from typing import Any
+
+from sqlalchemy import delete, distinct, select, tuple_
+from sqlalchemy.orm import Session, sessionmaker
+
+from belated.clock import now
+from belated.store import dirty, labels, rollups
+from belated.store.db import transaction
+from belated.store.tables import DirtyBucket, ModelRow, PendingLabel, Prediction, ServiceState
+
+log = logging.getLogger(__name__)
+BATCH_HOURS = 168
+
+
+def _claim(session: Session, model_id: int | None, lo: int | None, hi: int | None,
+           wait: bool) -> list[tuple[int, int, int]]:
+    query = select(DirtyBucket.model_id, DirtyBucket.hour, DirtyBucket.version)
+    if model_id is not None:
+        query = query.where(DirtyBucket.model_id == model_id)
+    if lo is not None:
+        query = query.where(DirtyBucket.hour >= lo)
+    if hi is not None:
+        query = query.where(DirtyBucket.hour < hi)
+    query = query.order_by(DirtyBucket.model_id, DirtyBucket.hour).limit(BATCH_HOURS)
+    if session.get_bind().dialect.name == "postgresql":
+        query = query.with_for_update(skip_locked=not wait)
+    return [tuple(r) for r in session.execute(query)]  # type: ignore[misc]
+
+
+def refresh_batch(session: Session, *, max_values: int, model_id: int | None = None,
+                  lo: int | None = None, hi: int | None = None, wait: bool = False) -> int:
+    """Refresh one batch of dirty buckets in the caller's transaction; 0 when none is left."""
+    claimed = _claim(session, model_id, lo, hi, wait)
+    if not claimed:
+        return 0
+    by_model: dict[int, list[int]] = defaultdict(list)
+    for mid, hour, _ in claimed:
+        by_model[mid].append(hour)
+    stamp = now()
+    for mid, hours in by_model.items():
+        model = session.get(ModelRow, mid)
+        if model is not None:
+            rollups.refresh_hours(session=session, model=model, hours=hours, now=stamp,
+                                  max_values=max_values)
+    # Clear only the marks whose version is the one read: a write meanwhile keeps its mark.
+    session.execute(delete(DirtyBucket).where(
+        tuple_(DirtyBucket.model_id, DirtyBucket.hour, DirtyBucket.version).in_(claimed)))
+    return len(claimed)
+
+
+def refresh_all(factory: sessionmaker[Session], *, max_values: int, model_id: int | None = None,
+                lo: int | None = None, hi: int | None = None, wait: bool = False) -> int:
+    """Refresh dirty buckets batch by batch, each in its own transaction."""
+    total = 0
+    while True:
+        with transaction(factory) as session:
+            done = refresh_batch(session, max_values=max_values, model_id=model_id, lo=lo,
+                                 hi=hi, wait=wait)
+        if not done:
+            return total
+        total += done
+
+
+def sweep(factory: sessionmaker[Session]) -> int:
+    """Before a refresh: join pending labels and mark hours crossing negative_after_days."""
+    marked = 0
+    with transaction(factory) as session:
+        pending_models = session.scalars(select(distinct(PendingLabel.model_id))).all()
+        for mid in pending_models:
+            hours = labels.join_pending(session=session, model_id=mid, ids=None)
+            marked += dirty.mark(session=session, model_id=mid, hours=hours)
+    with transaction(factory) as session:
+        for model in session.scalars(
+            select(ModelRow).where(ModelRow.negative_after_days.is_not(None))
+        ).all():
+            marked += _mark_crossed(session, model)
+    return marked
+
+
+def _mark_crossed(session: Session, model: ModelRow) -> int:
+    assert model.negative_after_days is not None
+    cut = now() - timedelta(days=model.negative_after_days)
+    cut_hour = int(cut.timestamp() // 3600)
+    key = f"implied_cut:{model.id}"
+    state = session.get(ServiceState, key)
+    last = int(state.value) if state is not None else None
+    query = select(distinct(Prediction.hour)).where(
+        Prediction.model_id == model.id, Prediction.actual.is_(None),
+        Prediction.hour <= cut_hour)
+    if last is not None:
+        query = query.where(Prediction.hour >= last)
+    hours = list(session.scalars(query))
+    n = dirty.mark(session=session, model_id=model.id, hours=hours)
+    if state is None:
+        session.add(ServiceState(key=key, value=cut_hour, updated_at=now()))
+    else:
+        state.value, state.updated_at = cut_hour, now()
+    return n
+
+
+def record_run(factory: sessionmaker[Session], summary: dict[str, Any]) -> None:
+    """Leave the last refresh's time and figures for /healthz and /metrics."""
+    with transaction(factory) as session:
+        state = session.get(ServiceState, "last_refresh")
+        value = {"at": now().isoformat().replace("+00:00", "Z"), **summary}
+        if state is None:
+            session.add(ServiceState(key="last_refresh", value=value, updated_at=now()))
+        else:
+            state.value, state.updated_at = value, now()
+
+
+def mark_model(session: Session, model_id: int) -> int:
+    """Mark every hour of a model dirty (a rebuild, or a setting that changes rollups)."""
+    hours = list(session.scalars(
+        select(distinct(Prediction.hour)).where(Prediction.model_id == model_id)))
+    return dirty.mark(session=session, model_id=model_id, hours=hours)
+
+
+def rebuild(factory: sessionmaker[Session], *, max_values: int, model_id: int | None = None
+            ) -> int:
+    """Recompute every rollup (of one model, or all) from raw rows."""
+    from belated.store.rollup_tables import Rollup
+
+    with transaction(factory) as session:
+        ids = [model_id] if model_id is not None else list(session.scalars(select(ModelRow.id)))
+        for mid in ids:
+            session.execute(delete(Rollup).where(Rollup.model_id == mid))
+            mark_model(session, mid)
+    total = 0
+    for mid in ids:
+        total += refresh_all(factory, max_values=max_values, model_id=mid, wait=True)
+    return total
+
+

@@ -1,0 +1,192 @@
+"""The GROUP BY queries that turn raw prediction rows into rollup statistics.
+
+Each query runs in the database on both stores; only aggregated rows come back. The
+effective actual class of a row is its label, or the negative class when the model has
+`negative_after_days` and the prediction is older than that without a label (an implied
+negative, counted apart).
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from dataclasses import dataclass
+from datetime import datetime
+from typing import Any
+
+import numpy as np
+from sqlalchemy import bindparam, text
+from sqlalchemy.orm import Session
+
+from belated.stats.delays import LAST_DELAY_BIN
+
+EPS = float(np.finfo(np.float64).eps)
+
+
+@dataclass(frozen=True)
+class Scope:
+    """What one refresh query covers: a model, its classes, a set of hours, the implied cutoff."""
+
+    model_id: int
+    binary: bool
+    pos: str
+    neg: str
+    hours: Sequence[int] | range
+    cutoff: datetime | None
+    filters: tuple[tuple[str, str], ...] = ()
+
+
+class _Dialect:
+    def __init__(self, session: Session) -> None:
+        self.pg = session.get_bind().dialect.name == "postgresql"
+
+    def least(self, a: str, b: str) -> str:
+        return f"LEAST({a}, {b})" if self.pg else f"min({a}, {b})"
+
+    def greatest(self, a: str, b: str) -> str:
+        return f"GREATEST({a}, {b})" if self.pg else f"max({a}, {b})"
+
+    def floor_int(self, a: str) -> str:
+        # every argument here is non-negative, where SQLite's truncating cast is floor
+        return f"CAST(floor({a}) AS INTEGER)" if self.pg else f"CAST({a} AS INTEGER)"
+
+    def tag(self) -> str:
+        return "(tags ->> :tag_key)" if self.pg else "json_extract(tags, :tag_path)"
+
+
+def _cutoff_param(session: Session, cutoff: datetime) -> Any:
+    if session.get_bind().dialect.name == "postgresql":
+        return cutoff
+    return cutoff.strftime("%Y-%m-%d %H:%M:%S.%f")  # the text form SQLAlchemy stores
+
+
+def _tag_sql(pg: bool, i: int | str) -> str:
+    return f"(tags ->> :fk{i})" if pg else f"json_extract(tags, :fp{i})"
+
+
+def _json_path(key: str) -> str:
+    return '$."' + key.replace("\\", "\\\\").replace('"', '\\"') + '"'
+
+
+def _where(scope: Scope, pg: bool = False) -> str:
+    if isinstance(scope.hours, range):
+        where = f"model_id = :m AND hour >= {scope.hours.start} AND hour < {scope.hours.stop}"
+    else:
+        where = f"model_id = :m AND hour IN ({','.join(str(int(h)) for h in scope.hours)})"
+    for i in range(len(scope.filters)):  # several tags at once: answered from raw rows
+        where += f" AND {_tag_sql(pg, i)} = :fv{i}"
+    return where
+
+
+def _actual(scope: Scope) -> tuple[str, str]:
+    if scope.cutoff is None:
+        return "actual", "0"
+    eff = "(CASE WHEN actual IS NOT NULL THEN actual WHEN ts <= :cutoff THEN :neg END)"
+    implied = "(CASE WHEN actual IS NULL AND ts <= :cutoff THEN 1 ELSE 0 END)"
+    return eff, implied
+
+
+def _segment(d: _Dialect, key: str | None) -> tuple[str, str]:
+    if key is None:
+        return "''", ""
+    t = d.tag()
+    return (f"(CASE WHEN {t} IN :tag_values THEN {t} ELSE '(other)' END)",
+            f" AND {t} IS NOT NULL")
+
+
+def _params(session: Session, scope: Scope, key: str | None, values: Sequence[str]
+            ) -> dict[str, Any]:
+    params: dict[str, Any] = {"m": scope.model_id, "pos": scope.pos, "neg": scope.neg}
+    if scope.cutoff is not None:
+        params["cutoff"] = _cutoff_param(session, scope.cutoff)
+    if key is not None:
+        params["tag_key"] = key
+        params["tag_path"] = _json_path(key)
+        params["tag_values"] = list(values) or ["\x01none"]
+    for i, (fk, fv) in enumerate(scope.filters):
+        params[f"fk{i}"], params[f"fp{i}"], params[f"fv{i}"] = fk, _json_path(fk), fv
+    return params
+
+
+def _run(session: Session, sql: str, params: dict[str, Any], key: str | None) -> list[Any]:
+    stmt = text(sql)
+    if key is not None:
+        stmt = stmt.bindparams(bindparam("tag_values", expanding=True))
+    return list(session.execute(stmt, params))
+
+
+SCALARS = ("n_pred", "n_labelled", "n_implied", "n_pred_pos", "tp", "fp", "fn", "tn",
+           "brier_sum", "logloss_sum", "exp_tp", "exp_fp", "exp_fn", "exp_tn")
+
+
+def scalars(session: Session, scope: Scope, key: str | None, values: Sequence[str]
+            ) -> list[Any]:
+    """Rows of (hour, segment value, *SCALARS) for the whole model or one tag key."""
+    d = _Dialect(session)
+    a, implied = _actual(scope)
+    seg, seg_where = _segment(d, key)
+    pp = "predicted = :pos"
+    if scope.binary:
+        clip = d.greatest(d.least("score", str(1 - EPS)), str(EPS))
+        label_cols = f"""
+          SUM(CASE WHEN {pp} AND {a} = :pos THEN 1 ELSE 0 END),
+          SUM(CASE WHEN {pp} AND {a} = :neg THEN 1 ELSE 0 END),
+          SUM(CASE WHEN NOT ({pp}) AND {a} = :pos THEN 1 ELSE 0 END),
+          SUM(CASE WHEN NOT ({pp}) AND {a} = :neg THEN 1 ELSE 0 END),
+          SUM(CASE WHEN {a} = :pos THEN (1 - score) * (1 - score)
+                   WHEN {a} = :neg THEN score * score ELSE 0 END),
+          SUM(CASE WHEN {a} = :pos THEN -ln({clip})
+                   WHEN {a} = :neg THEN -ln(1 - {clip}) ELSE 0 END),
+          SUM(CASE WHEN {pp} THEN score ELSE 0 END),
+          SUM(CASE WHEN {pp} THEN 1 - score ELSE 0 END),
+          SUM(CASE WHEN NOT ({pp}) THEN score ELSE 0 END),
+          SUM(CASE WHEN NOT ({pp}) THEN 1 - score ELSE 0 END)"""
+    else:
+        label_cols = ", ".join(["0"] * 4 + ["0.0"] * 6)
+    sql = f"""
+        SELECT hour, {seg}, COUNT(*), COUNT({a}), SUM({implied}),
+          SUM(CASE WHEN {pp} THEN 1 ELSE 0 END), {label_cols}
+        FROM predictions WHERE {_where(scope, d.pg)}{seg_where}
+        GROUP BY 1, 2"""
+    return _run(session, sql, _params(session, scope, key, values), key)
+
+
+def histograms(session: Session, scope: Scope, key: str | None, values: Sequence[str]
+               ) -> list[Any]:
+    """Rows of (hour, segment value, class 0/1/2 = pos/neg/unlabelled, bin, count, score sum)."""
+    d = _Dialect(session)
+    a, _ = _actual(scope)
+    seg, seg_where = _segment(d, key)
+    cls = f"(CASE WHEN {a} = :pos THEN 0 WHEN {a} IS NOT NULL THEN 1 ELSE 2 END)"
+    bin_ = d.least(d.floor_int("score * 100"), "99")
+    sql = f"""
+        SELECT hour, {seg}, {cls}, {bin_}, COUNT(*), SUM(score)
+        FROM predictions WHERE {_where(scope, d.pg)}{seg_where} AND score IS NOT NULL
+        GROUP BY 1, 2, 3, 4"""
+    return _run(session, sql, _params(session, scope, key, values), key)
+
+
+def cells(session: Session, scope: Scope, key: str | None, values: Sequence[str]
+          ) -> list[Any]:
+    """Rows of (hour, segment value, actual, predicted, count) over labelled predictions."""
+    d = _Dialect(session)
+    seg, seg_where = _segment(d, key)
+    sql = f"""
+        SELECT hour, {seg}, actual, predicted, COUNT(*)
+        FROM predictions WHERE {_where(scope, d.pg)}{seg_where} AND actual IS NOT NULL
+        GROUP BY 1, 2, 3, 4"""
+    return _run(session, sql, _params(session, scope, key, values), key)
+
+
+def delays(session: Session, scope: Scope) -> list[Any]:
+    """Rows of (hour, delay bin, count) over explicitly labelled predictions."""
+    d = _Dialect(session)
+    h = "delay_h"
+    bin_ = (f"(CASE WHEN {h} < 48 THEN {d.floor_int(h)}"
+            f" WHEN {h} < 168 THEN 48 + {d.floor_int(f'({h} - 48) / 6')}"
+            f" ELSE {d.least('68 + ' + d.floor_int(f'({h} - 168) / 24'), str(LAST_DELAY_BIN))}"
+            " END)")
+    sql = f"""
+        SELECT hour, {bin_}, COUNT(*) FROM predictions
+        WHERE {_where(scope, d.pg)} AND actual IS NOT NULL AND delay_h IS NOT NULL
+        GROUP BY 1, 2"""
+    return list(session.execute(text(sql), _params(session, scope, None, ())))
