@@ -51,6 +51,56 @@ def serve(
                 log_config=None, access_log=False)
 
 
+@app.command()
+def worker() -> None:
+    """Run the scheduled jobs without the API (one elected leader runs them on PostgreSQL)."""
+    import signal
+    import threading
+
+    from belated.jobs import JobRunner
+    from belated.logs import setup_logging
+    from belated.store.db import make_engine
+
+    settings = get_settings()
+    setup_logging(settings.log_format)
+    runner = JobRunner(engine=make_engine(settings.database_url), settings=settings)
+    stop = threading.Event()
+    signal.signal(signal.SIGTERM, lambda *_: stop.set())
+    signal.signal(signal.SIGINT, lambda *_: stop.set())
+    runner.start()
+    typer.echo("worker started", err=True)
+    stop.wait()
+    runner.stop()
+
+
+@app.command()
+def rebuild(model: str | None = typer.Option(None, help="Only this model (by name)."),
+            project: str | None = typer.Option(None, help="The model's project.")) -> None:
+    """Recompute every rollup from raw rows."""
+    from sqlalchemy import select
+
+    from belated.store import refresh
+    from belated.store.db import make_engine, make_sessionmaker
+    from belated.store.tables import ModelRow, Project
+
+    settings = get_settings()
+    factory = make_sessionmaker(make_engine(settings.database_url))
+    ids: list[int | None] = [None]
+    if model is not None:
+        with factory() as session:
+            query = select(ModelRow.id).where(ModelRow.name == model)
+            if project is not None:
+                query = query.join(Project, Project.id == ModelRow.project_id).where(
+                    Project.name == project)
+            ids = list(session.scalars(query))
+        if not ids:
+            typer.echo(f"no model named {model!r}", err=True)
+            raise typer.Exit(1)
+    total = sum(refresh.rebuild(factory, max_values=settings.max_segment_values, model_id=i)
+                for i in ids)
+    typer.echo(f"rebuilt {total} hour buckets")
+
+
 @keys_app.command("create")
 def keys_create(
     project: str = typer.Option(..., help="Project name (created if needed)."),
