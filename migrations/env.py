@@ -10,6 +10,7 @@ from belated.store.db import is_sqlite, make_engine
 from belated.store.tables import Base
 
 import belated.store.rollup_tables  # noqa: F401  (registers the rollup tables)
+import belated.alerts.tables  # noqa: F401  (registers the alert tables)
 
 config = context.config
 target_metadata = Base.metadata

@@ -10,7 +10,16 @@ from fastapi import FastAPI
 from sqlalchemy import Engine
 
 from belated import __version__
-from belated.api import problems, routes_health, routes_ingest, routes_keys, routes_models
+from belated.alerts import delivery
+from belated.api import (
+    problems,
+    routes_alerts,
+    routes_health,
+    routes_ingest,
+    routes_keys,
+    routes_metrics,
+    routes_models,
+)
 from belated.api.limits import BodyLimit
 from belated.config import Settings, get_settings
 from belated.counters import Counters
@@ -47,7 +56,9 @@ def create_app(settings: Settings | None = None, *, engine: Engine | None = None
     app.state.counters = Counters()
     app.state.jobs = None
     problems.install(app)
-    for module in (routes_models, routes_ingest, routes_keys, routes_health):
+    app.state.outbox_backlog = delivery.backlog
+    for module in (routes_models, routes_ingest, routes_metrics, routes_alerts, routes_keys,
+                   routes_health):
         app.include_router(module.router)
     _optional_routers(app)
     return BodyLimit(app, settings.max_body_bytes)
@@ -57,8 +68,7 @@ def _optional_routers(app: FastAPI) -> None:
     """Routers of later capabilities, mounted when their modules exist."""
     import importlib
 
-    for name in ("belated.api.routes_metrics", "belated.api.routes_alerts",
-                 "belated.api.routes_prometheus", "belated.web.routes"):
+    for name in ("belated.api.routes_prometheus", "belated.web.routes"):
         try:
             module = importlib.import_module(name)
         except ModuleNotFoundError as exc:

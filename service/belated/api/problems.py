@@ -50,7 +50,8 @@ def install(app: FastAPI) -> None:
         errors = []
         for err in exc.errors():
             index, field = _loc(tuple(err.get("loc", ())))
-            errors.append({"index": index, "field": field, "reason": err.get("msg", "invalid")})
+            reason = str(err.get("msg", "invalid")).removeprefix("Value error, ")
+            errors.append({"index": index, "field": field or "body", "reason": reason})
         first = errors[0] if errors else {"field": "", "reason": "invalid"}
         detail = f"field '{first['field']}': {first['reason']}"
         return problem_response(422, detail, errors=errors)

@@ -64,3 +64,17 @@ def _from_raw(session: Session, model: ModelRow, *, level: str, lo: int, hi: int
         if key == "":
             out[hour - hour % 24 if level == "d" else hour].add(acc)
     return dict(out)
+
+
+def segment_counts(session: Session, model: ModelRow, *, key: str, level: str, lo: int,
+                   hi: int) -> dict[int, dict[str, int]]:
+    """Predictions per admitted value of one tag key, by row start (for tag PSI)."""
+    out: dict[int, dict[str, int]] = defaultdict(dict)
+    lo_q = lo - lo % 24 if level == "d" else lo
+    for start, value, n in session.execute(
+        select(Rollup.start, Rollup.seg_value, Rollup.n_pred).where(
+            Rollup.model_id == model.id, Rollup.level == level, Rollup.start >= lo_q,
+            Rollup.start < hi, Rollup.seg_key == key)
+    ):
+        out[start][value] = int(n)
+    return dict(out)

@@ -48,7 +48,7 @@ def to_stats(acc: Acc) -> WindowStats:
         hist_neg=acc.hist[1].copy(), ssum_neg=acc.hsum[1].copy(), delay_hist=delays)
 
 
-def _bucket_accs(session: Session, model: ModelRow, rng: Range, lookback: int,
+def bucket_accs(session: Session, model: ModelRow, rng: Range, lookback: int,
                  filters: tuple[tuple[str, str], ...], now: datetime, max_values: int
                  ) -> tuple[list[datetime], list[Acc]]:
     """One accumulator per base window, from `lookback` windows before the range."""
@@ -72,7 +72,7 @@ def _bucket_accs(session: Session, model: ModelRow, rng: Range, lookback: int,
     return starts, accs
 
 
-def _settled(acc: Acc, end: datetime, model: ModelRow, now: datetime) -> bool:
+def settled_window(acc: Acc, end: datetime, model: ModelRow, now: datetime) -> bool:
     if end > now:
         return False
     n, labelled = acc.scalar("n_pred"), acc.scalar("n_labelled")
@@ -86,9 +86,9 @@ def build(session: Session, model: ModelRow, rng: Range, opts: Options,
           ) -> list[dict[str, Any]]:
     """The windows of the range, oldest first, contiguous (empty ones have zero counts)."""
     lookback = opts.rolling - 1 + CALIBRATION_WINDOWS * 2
-    starts, base = _bucket_accs(session, model, rng, lookback, filters, now, max_values)
+    starts, base = bucket_accs(session, model, rng, lookback, filters, now, max_values)
     step = rng.step
-    settled = [_settled(a, s + step, model, now) for a, s in zip(base, starts, strict=True)]
+    settled = [settled_window(a, s + step, model, now) for a, s in zip(base, starts, strict=True)]
     out: list[dict[str, Any]] = []
     for i in range(lookback, len(starts)):
         parts = range(max(0, i - opts.rolling + 1), i + 1)

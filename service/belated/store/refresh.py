@@ -13,7 +13,7 @@ from collections import defaultdict
 from datetime import timedelta
 from typing import Any
 
-from sqlalchemy import delete, distinct, select, tuple_
+from sqlalchemy import delete, select, tuple_
 from sqlalchemy.orm import Session, sessionmaker
 
 from belated.clock import now
@@ -78,7 +78,7 @@ def sweep(factory: sessionmaker[Session]) -> int:
     """Before a refresh: join pending labels and mark hours crossing negative_after_days."""
     marked = 0
     with transaction(factory) as session:
-        pending_models = session.scalars(select(distinct(PendingLabel.model_id))).all()
+        pending_models = session.scalars(select(PendingLabel.model_id).distinct()).all()
         for mid in pending_models:
             hours = labels.join_pending(session=session, model_id=mid, ids=None)
             marked += dirty.mark(session=session, model_id=mid, hours=hours)
@@ -97,7 +97,7 @@ def _mark_crossed(session: Session, model: ModelRow) -> int:
     key = f"implied_cut:{model.id}"
     state = session.get(ServiceState, key)
     last = int(state.value) if state is not None else None
-    query = select(distinct(Prediction.hour)).where(
+    query = select(Prediction.hour).distinct().where(
         Prediction.model_id == model.id, Prediction.actual.is_(None),
         Prediction.hour <= cut_hour)
     if last is not None:
@@ -125,7 +125,7 @@ def record_run(factory: sessionmaker[Session], summary: dict[str, Any]) -> None:
 def mark_model(session: Session, model_id: int) -> int:
     """Mark every hour of a model dirty (a rebuild, or a setting that changes rollups)."""
     hours = list(session.scalars(
-        select(distinct(Prediction.hour)).where(Prediction.model_id == model_id)))
+        select(Prediction.hour).distinct().where(Prediction.model_id == model_id)))
     return dirty.mark(session=session, model_id=model_id, hours=hours)
 
 

@@ -1,0 +1,1 @@
+"""Rules, their evaluation, the alert lifecycle and signed webhook delivery."""

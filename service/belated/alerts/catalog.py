@@ -1,0 +1,63 @@
+"""What each measure is to a rule: label-based or label-free, its denominator, its direction."""
+
+from __future__ import annotations
+
+from typing import Any
+
+# label-based measures whose support is a count of the confusion matrix
+DENOMINATORS: dict[str, tuple[str, ...]] = {
+    "precision": ("tp", "fp"),
+    "recall": ("tp", "fn"),
+    "fbeta": ("tp", "fp", "fn"),
+    "accuracy": ("tp", "fp", "fn", "tn"),
+    "specificity": ("tn", "fp"),
+    "npv": ("tn", "fn"),
+    "balanced_accuracy": ("tp", "fp", "fn", "tn"),
+    "mcc": ("tp", "fp", "fn", "tn"),
+    "prevalence": ("tp", "fp", "fn", "tn"),
+    "roc_auc": ("tp", "fp", "fn", "tn"),
+    "average_precision": ("tp", "fp", "fn", "tn"),
+}
+# proportions get Newcombe's interval for a difference; the rest the bootstrap
+PROPORTIONS: dict[str, tuple[tuple[str, ...], tuple[str, ...]]] = {
+    "precision": (("tp",), ("tp", "fp")),
+    "recall": (("tp",), ("tp", "fn")),
+    "accuracy": (("tp", "tn"), ("tp", "fp", "fn", "tn")),
+    "specificity": (("tn",), ("tn", "fp")),
+    "npv": (("tn",), ("tn", "fn")),
+    "prevalence": (("tp", "fn"), ("tp", "fp", "fn", "tn")),
+}
+LABEL_FREE = ("positive_rate", "estimated_precision", "estimated_recall", "estimated_fbeta")
+SHIFT_MEASURES = ("positive_rate", "score_psi")  # and tag_psi:<key>
+
+
+def is_label_based(measure: str) -> bool:
+    """Whether the measure needs labels (so only settled windows are evaluated)."""
+    return measure in DENOMINATORS
+
+
+def support(measure: str, confusion: dict[str, Any]) -> int:
+    """The count in the measure's denominator in a window."""
+    return int(sum(confusion.get(k, 0) for k in DENOMINATORS.get(measure, ())))
+
+
+def check(kind: str, measure: str | None) -> str | None:
+    """None when the (kind, measure) pair can work, else the reason it cannot."""
+    if kind in ("floor", "drop"):
+        if measure is None:
+            return f"a {kind} rule needs a measure"
+        if measure not in DENOMINATORS and measure not in LABEL_FREE:
+            return (f"unknown measure {measure!r} for a {kind} rule; choose from "
+                    f"{', '.join([*DENOMINATORS, *LABEL_FREE])}")
+        return None
+    if kind == "shift":
+        if measure is None:
+            return "a shift rule needs measure positive_rate, score_psi or tag_psi:<key>"
+        if measure in SHIFT_MEASURES or (measure.startswith("tag_psi:") and len(measure) > 8):
+            return None
+        if measure in DENOMINATORS:
+            return f"{measure!r} needs labels; a shift rule watches label-free quantities"
+        return f"unknown shift measure {measure!r}; use positive_rate, score_psi or tag_psi:<key>"
+    if kind in ("stall", "volume"):
+        return None
+    return f"unknown rule kind {kind!r}"

@@ -1,0 +1,125 @@
+"""API schemas of rules, alerts and webhooks."""
+
+from __future__ import annotations
+
+from datetime import datetime
+from typing import Any, Literal
+
+from pydantic import BaseModel, ConfigDict, Field, model_validator
+
+from belated.alerts import catalog
+
+
+class Baseline(BaseModel):
+    """The trailing N windows before the evaluated one, or a fixed range."""
+
+    model_config = ConfigDict(extra="forbid")
+    windows: int | None = Field(None, ge=1, le=365)
+    start: datetime | None = None
+    end: datetime | None = None
+
+    @model_validator(mode="after")
+    def _one(self) -> Baseline:
+        fixed = self.start is not None or self.end is not None
+        if fixed and self.windows is not None:
+            raise ValueError("give windows or start/end, not both")
+        if fixed and (self.start is None or self.end is None or self.start >= self.end):
+            raise ValueError("a fixed baseline needs start before end")
+        if not fixed and self.windows is None:
+            self.windows = 7
+        return self
+
+
+class RuleFields(BaseModel):
+    """Fields shared by create and update."""
+
+    model_config = ConfigDict(extra="forbid")
+    measure: str | None = None
+    granularity: Literal["hour", "day", "week"] | None = None
+    threshold: float | None = None
+    mode: Literal["point", "confident"] | None = None
+    tolerance: float | None = Field(None, ge=0, le=1)
+    alpha: float | None = Field(None, gt=0, lt=1)
+    min_support: int | None = Field(None, ge=0)
+    baseline: Baseline | None = None
+    segment_by: str | None = Field(None, min_length=1, max_length=64)
+    clear_after: int | None = Field(None, ge=1, le=100)
+    low: float | None = Field(None, ge=0)
+    high: float | None = Field(None, ge=0)
+    max_silence_hours: float | None = Field(None, gt=0)
+    muted_until: datetime | None = None
+
+
+DEFAULTS: dict[str, Any] = {
+    "granularity": "day", "mode": "point", "tolerance": 0.0, "alpha": 0.05,
+    "min_support": 30, "baseline": {"windows": 7}, "segment_by": None, "clear_after": 1,
+    "threshold": None, "low": None, "high": None, "max_silence_hours": None,
+}
+
+
+class RuleCreate(RuleFields):
+    """POST /v1/models/{model}/rules."""
+
+    kind: Literal["floor", "drop", "shift", "stall", "volume"]
+
+    @model_validator(mode="after")
+    def _works(self) -> RuleCreate:
+        check_rule(self.kind, self.model_dump(exclude_unset=True))
+        return self
+
+
+def check_rule(kind: str, fields: dict[str, Any]) -> None:
+    """Refuse a rule that cannot work (raised as ValueError, reported as 422)."""
+    merged = {**DEFAULTS, **{k: v for k, v in fields.items() if v is not None}}
+    reason = catalog.check(kind, merged.get("measure"))
+    if reason:
+        raise ValueError(reason)
+    if kind == "floor" and merged["threshold"] is None:
+        raise ValueError("a floor rule needs a threshold")
+    if kind == "shift" and merged["threshold"] is None:
+        raise ValueError("a shift rule needs a threshold (minimum change, or PSI)")
+    if kind == "volume" and merged["low"] is None and merged["high"] is None:
+        raise ValueError("a volume rule needs low, high or both")
+    if kind == "volume" and merged["low"] is not None and merged["high"] is not None \
+            and merged["low"] > merged["high"]:
+        raise ValueError("low must not exceed high")
+    if kind == "stall" and merged["threshold"] is None and merged["max_silence_hours"] is None:
+        raise ValueError("a stall rule needs a coverage threshold or max_silence_hours")
+    if kind == "stall" and merged["threshold"] is not None and not 0 <= merged["threshold"] <= 1:
+        raise ValueError("a stall threshold is a coverage between 0 and 1")
+
+
+class RuleUpdate(RuleFields):
+    """PATCH /v1/models/{model}/rules/{id}."""
+
+
+class RuleRead(BaseModel):
+    """A rule as the API answers it."""
+
+    id: str
+    model: str
+    kind: str
+    measure: str | None
+    granularity: str
+    threshold: float | None
+    mode: str
+    tolerance: float
+    alpha: float
+    min_support: int
+    baseline: dict[str, Any]
+    segment_by: str | None
+    clear_after: int
+    low: float | None
+    high: float | None
+    max_silence_hours: float | None
+    muted_until: datetime | None
+    muted: bool
+    created_at: datetime
+    updated_at: datetime
+
+
+class WebhookCreate(BaseModel):
+    """POST /v1/webhooks."""
+
+    model_config = ConfigDict(extra="forbid")
+    url: str = Field(min_length=8, max_length=2048)

@@ -1,0 +1,101 @@
+"""Tables of rules, evaluated windows (breaches), alerts, webhooks and the delivery outbox."""
+
+from __future__ import annotations
+
+from datetime import datetime
+from typing import Any
+
+from sqlalchemy import Boolean, Float, ForeignKey, Index, Integer, String, Text, UniqueConstraint
+from sqlalchemy.orm import Mapped, mapped_column
+
+from belated.store.tables import Base, BigId, Json, UtcDateTime
+
+
+class Rule(Base):
+    """An alert condition on a model."""
+
+    __tablename__ = "rules"
+    id: Mapped[str] = mapped_column(String(32), primary_key=True)
+    model_id: Mapped[int] = mapped_column(ForeignKey("models.id", ondelete="CASCADE"), index=True)
+    kind: Mapped[str] = mapped_column(String(16))
+    measure: Mapped[str | None] = mapped_column(String(80), nullable=True)
+    granularity: Mapped[str] = mapped_column(String(8))
+    settings: Mapped[dict[str, Any]] = mapped_column(Json)
+    muted_until: Mapped[datetime | None] = mapped_column(UtcDateTime, nullable=True)
+    created_at: Mapped[datetime] = mapped_column(UtcDateTime)
+    updated_at: Mapped[datetime] = mapped_column(UtcDateTime)
+
+
+class RuleWindow(Base):
+    """One evaluated (rule, segment, window): clean or a breach with what made it fire."""
+
+    __tablename__ = "rule_windows"
+    __table_args__ = (
+        UniqueConstraint("rule_id", "segment", "window_start", name="uq_rule_windows_key"),
+    )
+    id: Mapped[int] = mapped_column(BigId, primary_key=True, autoincrement=True)
+    rule_id: Mapped[str] = mapped_column(ForeignKey("rules.id", ondelete="CASCADE"))
+    segment: Mapped[str] = mapped_column(String(140))
+    window_start: Mapped[datetime] = mapped_column(UtcDateTime)
+    window_end: Mapped[datetime] = mapped_column(UtcDateTime)
+    breached: Mapped[bool] = mapped_column(Boolean)
+    value: Mapped[float | None] = mapped_column(Float, nullable=True)
+    low: Mapped[float | None] = mapped_column(Float, nullable=True)
+    high: Mapped[float | None] = mapped_column(Float, nullable=True)
+    baseline: Mapped[dict[str, Any] | None] = mapped_column(Json, nullable=True)
+    p_value: Mapped[float | None] = mapped_column(Float, nullable=True)
+    alert_id: Mapped[str | None] = mapped_column(String(32), nullable=True)
+    evaluated_at: Mapped[datetime] = mapped_column(UtcDateTime)
+
+
+class Alert(Base):
+    """One occurrence of a rule firing for one segment."""
+
+    __tablename__ = "alerts"
+    __table_args__ = (Index("ix_alerts_project_state", "project_id", "state"),)
+    id: Mapped[str] = mapped_column(String(32), primary_key=True)
+    seq: Mapped[int] = mapped_column(Integer)
+    project_id: Mapped[int] = mapped_column(ForeignKey("projects.id", ondelete="CASCADE"))
+    model_id: Mapped[int] = mapped_column(ForeignKey("models.id", ondelete="CASCADE"))
+    rule_id: Mapped[str] = mapped_column(ForeignKey("rules.id", ondelete="CASCADE"), index=True)
+    segment: Mapped[str] = mapped_column(String(140))
+    state: Mapped[str] = mapped_column(String(16))
+    opened_at: Mapped[datetime] = mapped_column(UtcDateTime)
+    acknowledged_at: Mapped[datetime | None] = mapped_column(UtcDateTime, nullable=True)
+    resolved_at: Mapped[datetime | None] = mapped_column(UtcDateTime, nullable=True)
+
+
+class Webhook(Base):
+    """A destination for signed events; the secret is shown once at creation."""
+
+    __tablename__ = "webhooks"
+    id: Mapped[str] = mapped_column(String(32), primary_key=True)
+    project_id: Mapped[int] = mapped_column(ForeignKey("projects.id", ondelete="CASCADE"),
+                                            index=True)
+    url: Mapped[str] = mapped_column(Text)
+    secret: Mapped[str] = mapped_column(String(128))
+    created_at: Mapped[datetime] = mapped_column(UtcDateTime)
+    disabled_at: Mapped[datetime | None] = mapped_column(UtcDateTime, nullable=True)
+    disabled_reason: Mapped[str | None] = mapped_column(Text, nullable=True)
+
+
+class Delivery(Base):
+    """One event for one webhook: the outbox row, written with the alert change."""
+
+    __tablename__ = "deliveries"
+    __table_args__ = (Index("ix_deliveries_state_next", "state", "next_attempt_at"),)
+    id: Mapped[int] = mapped_column(BigId, primary_key=True, autoincrement=True)
+    webhook_id: Mapped[str] = mapped_column(ForeignKey("webhooks.id", ondelete="CASCADE"),
+                                            index=True)
+    event_id: Mapped[str] = mapped_column(String(40))
+    event_type: Mapped[str] = mapped_column(String(32))
+    alert_id: Mapped[str] = mapped_column(String(32))
+    payload: Mapped[str] = mapped_column(Text)
+    state: Mapped[str] = mapped_column(String(16))  # pending | delivered | expired | disabled
+    attempts: Mapped[int] = mapped_column(Integer)
+    next_attempt_at: Mapped[datetime] = mapped_column(UtcDateTime)
+    last_status: Mapped[int | None] = mapped_column(Integer, nullable=True)
+    last_error: Mapped[str | None] = mapped_column(Text, nullable=True)
+    created_at: Mapped[datetime] = mapped_column(UtcDateTime)
+    delivered_at: Mapped[datetime | None] = mapped_column(UtcDateTime, nullable=True)
+    expires_at: Mapped[datetime] = mapped_column(UtcDateTime)
