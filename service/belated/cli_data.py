@@ -35,6 +35,7 @@ PROGRESS = typer.Option(None, "--progress/--no-progress",
                         help="A progress bar on stderr (default: when stderr is a terminal).")
 RETRIES = typer.Option(8, "--retries", min=0, help="Retries of a request the service missed.")
 ID_COL = typer.Option("id", "--id-column", help="The column of prediction ids.")
+SEGMENT = typer.Option(None, "--segment", help="key:value, repeatable.")
 TS_COL = typer.Option("ts", "--ts-column", help="The column of times (RFC 3339).")
 
 
@@ -287,16 +288,15 @@ def _run(kind: str, path: Path, cols: Columns, model: str, url: str, token: str,
         with bar:
             task = bar.add_task(f"{kind} to {model}", total=total)
             for frame in _frames(path, fmt, batch_size):
-                first = offset
+                # Index rows by their place in the file, so that every report names it.
+                frame.index = pd.RangeIndex(offset, offset + len(frame))
                 offset += len(frame)
                 frame = _prepare(frame, mapping, csv=fmt == "csv")
-                lines = [first + int(k) - int(frame.index[0]) if len(frame) else 0
-                         for k in frame.index]
                 try:
-                    sender.send(frame_items(frame), lines)
+                    sender.send(frame_items(frame), frame.index.tolist())
                 except BelatedError as exc:  # unreachable after every retry
                     raise _fail(f"{exc}\nbefore it: {sender.summary()}") from None
-                bar.advance(task, offset - first)
+                bar.advance(task, len(frame))
     if sender.skipped > SHOWN:
         typer.echo(f"... {sender.skipped - SHOWN} more bad rows skipped", err=True)
     typer.echo(f"{kind} from {path.name}: {offset - (1 if fmt == 'parquet' else 2)} rows; "
@@ -335,10 +335,69 @@ def send_labels(
          progress, retries)
 
 
+def _measure(frame: pd.DataFrame, name: str) -> str:
+    """The column of a measure; multiclass models answer macro averages for the plain name."""
+    for col in (name, f"{name}_macro"):
+        if col in frame.columns:
+            return col
+    known = [c for c in frame.columns if f"{c}_low" in frame.columns and "." not in c]
+    raise _fail(f"unknown measure {name!r}; choose from {', '.join(known)}", 2)
+
+
+def _cell(row: pd.Series, col: str) -> str:
+    value, low, high = row[col], row[f"{col}_low"], row[f"{col}_high"]
+    if pd.isna(value):
+        return "-"
+    if pd.isna(low) or pd.isna(high):
+        return f"{value:.3f}"
+    return f"{value:.3f} [{low:.3f}, {high:.3f}]"
+
+
+def windows(
+    model: str = MODEL, url: str = URL, token: str = TOKEN,
+    granularity: str = typer.Option("day", help="hour, day or week (UTC)."),
+    last: int = typer.Option(14, min=1, max=1000, help="How many of the latest windows."),
+    measures: str = typer.Option("precision,recall,fbeta", help="A comma list of measures."),
+    rolling: int = typer.Option(1, min=1, help="Merge each window with the N-1 before it."),
+    segment: list[str] | None = SEGMENT,
+) -> None:
+    """Print the latest windows: counts, coverage, settled, and measures with intervals."""
+    from rich.console import Console
+    from rich.table import Table
+    from rich.text import Text
+
+    from belated.timeutil import GRANULARITIES, window_step
+
+    if granularity not in GRANULARITIES:
+        raise _fail(f"--granularity must be one of {', '.join(GRANULARITIES)}", 2)
+    # The service aligns `start` down and ends at its current window; ask for a little more
+    # than needed so that a small clock difference cannot cut the range short.
+    start = datetime.now(UTC) - (last + 1) * window_step(granularity)
+    with Client(url, token, retries=3) as client:
+        try:
+            frame = client.metrics(model, granularity=granularity, start=start,
+                                   rolling=rolling, segment=segment)
+        except BelatedError as exc:
+            raise _fail(f"refused: {exc}") from None
+    frame = frame.tail(last)
+    cols = [_measure(frame, m.strip()) for m in measures.split(",") if m.strip()]
+    table = Table(title=f"{model}: latest {len(frame)} {granularity} windows (UTC)",
+                  caption=Text("provisional: not settled, may change as labels arrive; open: "
+                               "the current window; [low, high]: 95% interval"))
+    for head in ("start", "predictions", "labelled", "coverage", "state", *cols):
+        table.add_column(head, justify="left" if head in ("start", "state") else "right")
+    shape = "%Y-%m-%d %H:%M" if granularity == "hour" else "%Y-%m-%d"
+    for _, row in frame.iterrows():
+        state = "open" if not row["closed"] else "settled" if row["settled"] else "provisional"
+        coverage = "-" if pd.isna(row["coverage"]) else f"{row['coverage']:.1%}"
+        cells = [row["start"].strftime(shape), str(row["predictions"]), str(row["labelled"]),
+                 coverage, state, *(_cell(row, c) for c in cols)]
+        table.add_row(*(Text(c) for c in cells))  # Text: brackets are not markup
+    Console(width=None if sys.stdout.isatty() else 240).print(table)
+
+
 def register(app: typer.Typer) -> None:
     """Add `send` and `windows` to the `belated` app (a second call changes nothing)."""
-    from belated.cli_windows import windows
-
     if not any(g.name == "send" for g in app.registered_groups):
         app.add_typer(send_app, name="send")
     if not any((c.name or getattr(c.callback, "__name__", "")) == "windows"

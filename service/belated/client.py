@@ -148,7 +148,20 @@ def _chunks(rows: pd.DataFrame | list[dict[str, Any]], size: int
         if isinstance(rows, pd.DataFrame):
             yield frame_items(rows.iloc[start:start + size])
         else:
-            yield [plain(item) for item in rows[start:start + size]]
+            yield [dict_item(item) for item in rows[start:start + size]]
+
+
+def dict_item(row: dict[str, Any]) -> dict[str, Any]:
+    """A dict row as an API item; `score.<class>` and `tag.<key>` keys fold as in frames."""
+    item = plain(row)
+    for prefix, key in (("score.", "scores"), ("tag.", "tags")):
+        flat = [k for k in item if k.startswith(prefix)]
+        if flat:
+            found = {k[len(prefix):]: item.pop(k) for k in flat}
+            found = {k: v for k, v in found.items() if key == "scores" or v not in (None, "")}
+            if found:
+                item[key] = {**(item.get(key) or {}), **found}
+    return item
 
 
 def _retry_after(response: httpx.Response) -> float | None:

@@ -97,6 +97,8 @@ class JobRunner:
         self.leader = Leader(engine)
         self.steps = steps if steps is not None else default_steps()
         self.scheduler = BackgroundScheduler(timezone="UTC")
+        # a run still going when the next is due is skipped by design (max_instances=1)
+        logging.getLogger("apscheduler.scheduler").setLevel(logging.ERROR)
         self.runs = 0
         self.last: dict[str, Any] = {}
         self._run_lock = threading.Lock()

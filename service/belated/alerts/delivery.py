@@ -77,11 +77,17 @@ def deliver_due(factory: sessionmaker[Session], settings: Settings,
         return counts
     own_client = client is None
     client = client or httpx.Client(timeout=TIMEOUT, follow_redirects=False)
+    gone: set[str] = set()
     try:
         for delivery_id, hook_id, url, secret, event_id, payload in due:
+            if hook_id in gone:  # disabled by a 410 earlier in this batch
+                continue
             outcome = _attempt(client, url, secret, event_id, payload,
                                settings.webhook_private, own)
-            counts[_settle(factory, delivery_id, hook_id, outcome)] += 1
+            result = _settle(factory, delivery_id, hook_id, outcome)
+            if result == "disabled":
+                gone.add(hook_id)
+            counts[result] += 1
     finally:
         if own_client:
             client.close()

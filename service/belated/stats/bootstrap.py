@@ -82,10 +82,13 @@ def binary_arrays(
 ) -> dict[str, np.ndarray]:
     """F-beta, MCC and balanced accuracy for arrays of counts; NaN where undefined."""
     b2 = beta * beta
+    predicted_pos, actual_pos = tp + fp, tp + fn
+    predicted_neg, actual_neg = tn + fn, tn + fp
     with np.errstate(divide="ignore", invalid="ignore"):
-        fbeta = (1.0 + b2) * tp / ((1.0 + b2) * tp + b2 * fn + fp)
-        mcc = (tp * tn - fp * fn) / np.sqrt((tp + fp) * (tn + fn) * (tp + fn) * (tn + fp))
-        balanced = 0.5 * (tp / (tp + fn) + tn / (tn + fp))
+        # (1 + b2) TP + b2 FN + FP regrouped as b2 (TP + FN) + (TP + FP): fewer passes.
+        fbeta = (1.0 + b2) * tp / (b2 * actual_pos + predicted_pos)
+        mcc = (tp * tn - fp * fn) / np.sqrt(predicted_pos * predicted_neg * actual_pos * actual_neg)
+        balanced = 0.5 * (tp / actual_pos + tn / actual_neg)
     # A zero margin makes MCC 0/0 = NaN (undefined), the same as the point rule.
     return {"fbeta": fbeta, "mcc": mcc, "balanced_accuracy": balanced}
 
@@ -106,7 +109,7 @@ def bootstrap_binary(
     if resamples == 0 or sum(counts) == 0:
         return dict.fromkeys(BOOTSTRAPPED_BINARY)
     # One row per cell, contiguous, so the arithmetic below runs on plain vectors.
-    draws = resample(counts, resamples, generator_for(counts, seed)).T.copy()
+    draws = np.ascontiguousarray(resample(counts, resamples, generator_for(counts, seed)).T)
     arrays = binary_arrays(draws[0], draws[1], draws[2], draws[3], beta)
     stacked = np.stack([arrays[name] for name in BOOTSTRAPPED_BINARY])
     return dict(zip(BOOTSTRAPPED_BINARY, percentile_intervals(stacked, confidence), strict=True))

@@ -102,7 +102,9 @@ def summarise(
     z = z_value(confidence)
     resamples = check_resamples(resamples)
     wanted = check_measures(measures)
-    tp, fp, fn, tn = stats.tp, stats.fp, stats.fn, stats.tn
+    # Plain ints whatever the store handed over (numpy scalars would leak into the JSON).
+    tp, fp, fn, tn = int(stats.tp), int(stats.fp), int(stats.fn), int(stats.tn)
+    n_pred, n_pred_pos = int(stats.n_pred), int(stats.n_pred_pos)
     n_labelled = tp + fp + fn + tn
     # (successes, trials, reason when trials = 0) of the measures that are proportions;
     # the same definitions as belated.stats.measures, spelled out for speed.
@@ -112,7 +114,7 @@ def summarise(
         "accuracy": (tp + tn, n_labelled, NOTHING_LABELLED),
         "specificity": (tn, tn + fp, NO_ACTUAL_NEGATIVES),
         "npv": (tn, tn + fn, NO_PREDICTED_NEGATIVES),
-        "positive_rate": (stats.n_pred_pos, stats.n_pred, NO_PREDICTIONS),
+        "positive_rate": (n_pred_pos, n_pred, NO_PREDICTIONS),
         "prevalence": (tp + fn, n_labelled, NOTHING_LABELLED),
     }
     boot: dict[str, Interval] = {}
@@ -152,9 +154,7 @@ def summarise(
         "confusion": {"tp": tp, "fp": fp, "fn": fn, "tn": tn},
         "measures": out,
         "estimates": _estimates(stats, beta, baseline_prior),
-        "bounds": coverage_bounds(
-            tp, fp, fn, tn, n_pred_pos=stats.n_pred_pos, n_pred=stats.n_pred, beta=beta
-        ),
+        "bounds": coverage_bounds(tp, fp, fn, tn, n_pred_pos=n_pred_pos, n_pred=n_pred, beta=beta),
     }
 
 
@@ -162,7 +162,13 @@ def _estimates(
     stats: WindowStats, beta: float, baseline_prior: float | None
 ) -> dict[str, dict[str, Any]]:
     """Label-free estimates as {"value": ...} (plus "reason" when undefined)."""
-    estimated = expected_measures(stats.exp_tp, stats.exp_fp, stats.exp_fn, stats.exp_tn, beta=beta)
+    estimated = expected_measures(
+        float(stats.exp_tp),
+        float(stats.exp_fp),
+        float(stats.exp_fn),
+        float(stats.exp_tn),
+        beta=beta,
+    )
     out: dict[str, dict[str, Any]] = {}
     for name, value in estimated.items():
         out[name] = {"value": value.value}

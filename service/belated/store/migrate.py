@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import os
 from pathlib import Path
 
 from alembic import command
@@ -10,10 +11,22 @@ from alembic.config import Config
 ROOT = Path(__file__).resolve().parents[3]
 
 
+def migrations_dir() -> Path:
+    """The migrations folder: BELATED_MIGRATIONS_DIR, the source tree's, or ./migrations."""
+    candidates = [os.environ.get("BELATED_MIGRATIONS_DIR"), ROOT / "migrations",
+                  Path.cwd() / "migrations"]
+    for candidate in candidates:
+        if candidate and (Path(candidate) / "env.py").is_file():
+            return Path(candidate)
+    raise FileNotFoundError(
+        "cannot find the migrations folder; run from the source tree or set "
+        "BELATED_MIGRATIONS_DIR")
+
+
 def alembic_config(url: str) -> Config:
     """An Alembic config bound to `url`, independent of the working directory."""
-    cfg = Config(str(ROOT / "alembic.ini"))
-    cfg.set_main_option("script_location", str(ROOT / "migrations"))
+    cfg = Config()
+    cfg.set_main_option("script_location", str(migrations_dir()))
     cfg.attributes["url"] = url
     return cfg
 

@@ -1,0 +1,1 @@
+"""The dashboard: server-rendered pages with inline SVG charts (no script, no build)."""

@@ -1,0 +1,303 @@
+"""Pure SVG builders for the dashboard: numbers in, escaped markup out (no I/O, no web).
+
+Every chart is an <svg role="img"> with a title and one point element (class "pt") per
+defined value, carrying its number in data-value. An undefined value (None) is a gap: no
+point, no line through it, only a faint mark (class "gap") where it would be.
+"""
+
+from __future__ import annotations
+
+import math
+import re
+from collections.abc import Sequence
+from dataclasses import dataclass
+
+from markupsafe import Markup, escape
+
+W, H = 640, 220
+LEFT, RIGHT, TOP, BOTTOM = 46, 14, 14, 30
+ROW = 62  # height of one row of a strip chart
+
+
+@dataclass(frozen=True)
+class Point:
+    """One window of a series; `value` None means undefined (a gap, never zero)."""
+
+    key: str
+    label: str
+    value: float | None
+    low: float | None = None
+    high: float | None = None
+    settled: bool = True
+    note: str = ""
+
+
+def _f(x: float) -> str:
+    return f"{x:.1f}"
+
+
+def _v(x: float | None) -> str:
+    return "" if x is None else f"{x:.6g}"
+
+
+def _pct(x: float | None) -> str:
+    return "none" if x is None else f"{x:.1%}"
+
+
+def _safe_id(text: str) -> str:
+    return re.sub(r"[^a-z0-9-]+", "-", text.lower()).strip("-") or "chart"
+
+
+def nice_domain(values: Sequence[float]) -> tuple[float, float, list[float]]:
+    """A [lo, hi] range with round ticks covering the values, kept inside [0, 1] when they are."""
+    if not values:
+        return 0.0, 1.0, [0.0, 0.25, 0.5, 0.75, 1.0]
+    vmin, vmax = min(values), max(values)
+    span = max(vmax - vmin, 0.08)
+    step = next(s for s in (0.02, 0.05, 0.1, 0.2, 0.25, 0.5, 1.0) if span / s <= 5)
+    lo = math.floor((vmin - step / 4) / step) * step
+    hi = math.ceil((vmax + step / 4) / step) * step
+    if vmin >= 0:
+        lo = max(lo, 0.0)
+    if vmax <= 1:
+        hi = min(hi, 1.0)
+    ticks = [round(k * step, 6) for k in range(math.ceil(lo / step - 1e-9),
+                                                 math.floor(hi / step + 1e-9) + 1)]
+    return round(lo, 6), round(hi, 6), ticks
+
+
+@dataclass(frozen=True)
+class _Frame:
+    n: int
+    lo: float
+    hi: float
+    height: int = H
+
+    @property
+    def step(self) -> float:
+        return (W - LEFT - RIGHT) / max(self.n, 1)
+
+    def x(self, i: float) -> float:
+        return LEFT + (i + 0.5) * self.step
+
+    def y(self, v: float) -> float:
+        return TOP + (self.hi - v) / ((self.hi - self.lo) or 1) * (self.height - TOP - BOTTOM)
+
+
+def _open(cid: str, title: str, summary: str, css: str, height: int = H) -> list[str]:
+    label = escape(f"{title}. {summary}")
+    return [f'<svg class="chart {escape(css)}" id="{cid}" viewBox="0 0 {W} {height}" '
+            f'role="img" aria-label="{label}" preserveAspectRatio="xMidYMid meet">',
+            f"<title>{escape(title)}</title><desc>{escape(summary)}</desc>",
+            f'<defs><pattern id="{cid}-hatch" width="6" height="6" '
+            'patternUnits="userSpaceOnUse" patternTransform="rotate(45)">'
+            '<line x1="0" y1="0" x2="0" y2="6" class="hatch"/></pattern></defs>']
+
+
+def _grid(fr: _Frame, ticks: Sequence[float], as_pct: bool = False) -> str:
+    parts = ['<g class="grid">']
+    for t in ticks:
+        y = _f(fr.y(t))
+        text = f"{t:.0%}" if as_pct else f"{t:.2f}".rstrip("0").rstrip(".")
+        parts.append(f'<line x1="{LEFT}" x2="{W - RIGHT}" y1="{y}" y2="{y}"/>'
+                     f'<text x="{LEFT - 6}" y="{y}" class="ylab">{escape(text)}</text>')
+    parts.append("</g>")
+    return "".join(parts)
+
+
+def _xlabels(fr: _Frame, labels: Sequence[str]) -> str:
+    every = max(1, math.ceil(len(labels) / 5))
+    y = _f(fr.height - BOTTOM + 18)
+    parts = ['<g class="xaxis">']
+    for i, text in enumerate(labels):
+        if i % every == 0:
+            parts.append(f'<text x="{_f(fr.x(i))}" y="{y}">{escape(text)}</text>')
+    parts.append("</g>")
+    return "".join(parts)
+
+
+def _runs(flags: Sequence[bool]) -> list[tuple[int, int]]:
+    """[first, last] index pairs of the consecutive True stretches."""
+    out: list[tuple[int, int]] = []
+    for i, flag in enumerate(flags):
+        if flag and out and out[-1][1] == i - 1:
+            out[-1] = (out[-1][0], i)
+        elif flag:
+            out.append((i, i))
+    return out
+
+
+def _zones(fr: _Frame, cid: str, unsettled: Sequence[bool]) -> str:
+    """Hatched background behind the windows whose measures are still provisional."""
+    parts = ['<g class="prov-zone">']
+    for a, b in _runs(unsettled):
+        x0, x1 = fr.x(a) - fr.step / 2, fr.x(b) + fr.step / 2
+        parts.append(f'<rect x="{_f(x0)}" y="{TOP}" width="{_f(x1 - x0)}" '
+                     f'height="{fr.height - TOP - BOTTOM}" fill="url(#{cid}-hatch)"/>')
+    parts.append("</g>")
+    return "".join(parts)
+
+
+def _hover(p: Point, text: str) -> str:
+    state = "settled" if p.settled else "provisional"
+    extra = f"; {p.note}" if p.note else ""
+    return f"<title>{escape(f'{p.label}: {text} ({state}{extra})')}</title>"
+
+
+def line_chart(points: Sequence[Point], *, title: str, chart_id: str, css: str = "") -> Markup:
+    """A measure over windows: a line, its interval as a band, settled points filled,
+    provisional points hollow over a hatched zone; None values are gaps."""
+    cid = _safe_id(chart_id)
+    known = [v for p in points for v in (p.value, p.low, p.high) if v is not None]
+    lo, hi, ticks = nice_domain(known)
+    fr = _Frame(len(points), lo, hi)
+    defined = [p for p in points if p.value is not None]
+    latest = next((p for p in reversed(points) if p.value is not None), None)
+    summary = (f"{len(points)} windows, {len(defined)} with a value" +
+               (f"; latest {latest.label}: {_v(latest.value)}" if latest else ""))
+    out = _open(cid, title, summary, f"line {css}")
+    out += [_zones(fr, cid, [not p.settled for p in points]), _grid(fr, ticks)]
+    out.append('<g class="band">')
+    for a, b in _runs([p.low is not None and p.high is not None for p in points]):
+        highs = [(fr.x(i), fr.y(points[i].high or 0.0)) for i in range(a, b + 1)]
+        lows = [(fr.x(i), fr.y(points[i].low or 0.0)) for i in range(a, b + 1)]
+        if a == b:  # a lone window: its interval as a short bar
+            out.append(f'<rect x="{_f(highs[0][0] - 3)}" y="{_f(highs[0][1])}" width="6" '
+                       f'height="{_f(lows[0][1] - highs[0][1])}"/>')
+            continue
+        d = " L".join(f"{_f(px)},{_f(py)}" for px, py in highs + lows[::-1])
+        out.append(f'<path d="M{d} Z"/>')
+    out.append('</g><g class="trace">')
+    for i in range(len(points) - 1):
+        p, q = points[i], points[i + 1]
+        if p.value is None or q.value is None:
+            continue
+        cls = "seg" if p.settled and q.settled else "seg prov"
+        out.append(f'<line class="{cls}" x1="{_f(fr.x(i))}" y1="{_f(fr.y(p.value))}" '
+                   f'x2="{_f(fr.x(i + 1))}" y2="{_f(fr.y(q.value))}"/>')
+    out.append('</g><g class="pts">')
+    for i, p in enumerate(points):
+        if p.value is None:
+            out.append(f'<line class="gap" data-window="{escape(p.key)}" x1="{_f(fr.x(i))}" '
+                       f'x2="{_f(fr.x(i))}" y1="{_f(fr.height - BOTTOM - 6)}" '
+                       f'y2="{_f(fr.height - BOTTOM)}">'
+                       f"{_hover(p, 'no value')}</line>")
+            continue
+        band = f" [{_v(p.low)}, {_v(p.high)}]" if p.low is not None else ""
+        cls = "pt" if p.settled else "pt prov"
+        out.append(f'<circle class="{cls}" cx="{_f(fr.x(i))}" cy="{_f(fr.y(p.value))}" r="3.6" '
+                   f'data-value="{_v(p.value)}" data-low="{_v(p.low)}" '
+                   f'data-high="{_v(p.high)}" data-window="{escape(p.key)}" '
+                   f'data-settled="{str(p.settled).lower()}">'
+                   f"{_hover(p, f'{p.value:.3f}{band}')}</circle>")
+    out += ["</g>", _xlabels(fr, [p.label for p in points]), "</svg>"]
+    return Markup("".join(out))
+
+
+def strip_chart(rows: Sequence[tuple[str, Sequence[Point]]], *, title: str, chart_id: str,
+                css: str = "") -> Markup:
+    """Small rows of hollow markers on a fixed 0..1 scale, one row per label-free estimate."""
+    cid = _safe_id(chart_id)
+    n = max((len(pts) for _, pts in rows), default=0)
+    height = TOP + ROW * max(len(rows), 1) + BOTTOM
+    total = sum(1 for _, pts in rows for p in pts if p.value is not None)
+    out = _open(cid, title, f"{n} windows, {total} estimates, from scores alone",
+                f"strip {css}", height)
+    fr = _Frame(n, 0.0, 1.0, height)
+    for r, (name, pts) in enumerate(rows):
+        top = TOP + r * ROW
+        y0, y1 = top + ROW - 8, top + 16  # the row's 0 and 1
+
+        def ry(v: float, _y0: float = y0, _y1: float = y1) -> float:
+            return _y0 - v * (_y0 - _y1)
+
+        out.append(f'<g class="row" data-row="{escape(name)}">'
+                   f'<text x="{LEFT}" y="{_f(top + 8)}" class="rowlab">{escape(name)}</text>')
+        for t in (0.0, 0.5, 1.0):
+            out.append(f'<line class="rule" x1="{LEFT}" x2="{W - RIGHT}" y1="{_f(ry(t))}" '
+                       f'y2="{_f(ry(t))}"/><text class="ylab" x="{LEFT - 6}" '
+                       f'y="{_f(ry(t))}">{t:g}</text>')
+        for i, p in enumerate(pts):
+            if p.value is None:
+                continue
+            out.append(f'<circle class="pt est" cx="{_f(fr.x(i))}" cy="{_f(ry(p.value))}" '
+                       f'r="3.2" data-value="{_v(p.value)}" data-window="{escape(p.key)}">'
+                       f"{_hover(p, f'{p.value:.3f}')}</circle>")
+        out.append("</g>")
+    labels = next((pts for _, pts in rows if pts), [])
+    out += [_xlabels(fr, [p.label for p in labels]), "</svg>"]
+    return Markup("".join(out))
+
+
+def bar_chart(points: Sequence[Point], *, title: str, chart_id: str, reference: float | None
+              = None, reference_label: str = "", css: str = "") -> Markup:
+    """Shares in [0, 1] as bars (hatched when provisional), with an optional reference line."""
+    cid = _safe_id(chart_id)
+    fr = _Frame(len(points), 0.0, 1.0)
+    shown = sum(1 for p in points if p.value is not None)
+    out = _open(cid, title, f"{len(points)} bars, {shown} with a value", f"bars {css}")
+    out.append(_grid(fr, [0.0, 0.25, 0.5, 0.75, 1.0], as_pct=True))
+    out.append('<g class="pts">')
+    width = max(1.0, fr.step * 0.72)
+    for i, p in enumerate(points):
+        if p.value is None:
+            out.append(f'<line class="gap" data-window="{escape(p.key)}" x1="{_f(fr.x(i))}" '
+                       f'x2="{_f(fr.x(i))}" y1="{_f(H - BOTTOM - 6)}" y2="{_f(H - BOTTOM)}">'
+                       f"{_hover(p, 'nothing to count')}</line>")
+            continue
+        y = fr.y(min(max(p.value, 0.0), 1.0))
+        fill = "" if p.settled else f' fill="url(#{cid}-hatch)"'
+        cls = "pt bar" if p.settled else "pt bar prov"
+        out.append(f'<rect class="{cls}"{fill} x="{_f(fr.x(i) - width / 2)}" y="{_f(y)}" '
+                   f'width="{_f(width)}" height="{_f(H - BOTTOM - y)}" '
+                   f'data-value="{_v(p.value)}" data-window="{escape(p.key)}">'
+                   f"{_hover(p, _pct(p.value))}</rect>")
+    out.append("</g>")
+    if reference is not None:
+        y = _f(fr.y(reference))
+        out.append(f'<g class="ref"><line x1="{LEFT}" x2="{W - RIGHT}" y1="{y}" y2="{y}"/>'
+                   f'<text x="{W - RIGHT - 4}" y="{_f(fr.y(reference) - 5)}">'
+                   f"{escape(reference_label)}</text></g>")
+    out += [_xlabels(fr, [p.label for p in points]), "</svg>"]
+    return Markup("".join(out))
+
+
+def _tx(t: float | None) -> float:
+    """x of a threshold on the sweep chart."""
+    return LEFT + float(t or 0.0) * (W - LEFT - RIGHT)
+
+
+def sweep_chart(rows: Sequence[dict[str, float | None]], *, title: str, chart_id: str,
+                best: float | None, best_label: str, current: float | None = None,
+                series: Sequence[str] = ("precision", "recall")) -> Markup:
+    """Measures against the decision threshold, with the best-F-beta threshold marked."""
+    cid = _safe_id(chart_id)
+    fr = _Frame(1, 0.0, 1.0)
+    out = _open(cid, title, f"{len(rows)} thresholds; {best_label}", "sweep")
+    out.append(_grid(fr, [0.0, 0.25, 0.5, 0.75, 1.0]))
+    for name in series:
+        coords = [None if r.get(name) is None or r.get("threshold") is None
+                  else (_tx(r["threshold"]), fr.y(r[name])) for r in rows]  # type: ignore[arg-type]
+        out.append(f'<g class="s-{escape(name)}" data-series="{escape(name)}">')
+        for a, b in _runs([c is not None for c in coords]):
+            d = " L".join(f"{_f(c[0])},{_f(c[1])}" for c in coords[a:b + 1] if c)
+            out.append(f'<path class="seg" d="M{d}"/>')
+        for r, c in zip(rows, coords, strict=True):
+            if c is not None:
+                out.append(f'<circle class="pt" cx="{_f(c[0])}" cy="{_f(c[1])}" r="1.7" '
+                           f'data-value="{_v(r[name])}" data-threshold="{_v(r["threshold"])}"/>')
+        out.append("</g>")
+    for value, cls, text, y in ((current, "in-use", "in use", H - BOTTOM - 8),
+                                (best, "best", best_label, TOP + 14)):
+        if value is None:
+            continue
+        xx, right = _tx(value), value > 0.6
+        tx, anchor = (xx - 6, "end") if right else (xx + 6, "start")
+        out.append(f'<g class="tmark {cls}" data-threshold="{_v(value)}"><line x1="{_f(xx)}" '
+                   f'x2="{_f(xx)}" y1="{TOP}" y2="{H - BOTTOM}"/><text x="{_f(tx)}" y="{y}" '
+                   f'text-anchor="{anchor}">{escape(text)}</text></g>')
+    out.append('<g class="xaxis">')
+    for t in (0.0, 0.25, 0.5, 0.75, 1.0):
+        out.append(f'<text x="{_f(_tx(t))}" y="{H - BOTTOM + 18}">{t:g}</text>')
+    out += ["</g>", "</svg>"]
+    return Markup("".join(out))

@@ -1,0 +1,171 @@
+"""Dashboard routes: sign-in, the models overview, one model, the alerts (server-rendered)."""
+
+from __future__ import annotations
+
+from datetime import datetime
+from typing import Annotated, Any
+from urllib.parse import quote, urlsplit
+
+from fastapi import APIRouter, Form, Query, Request
+from fastapi.responses import HTMLResponse, RedirectResponse, Response
+from jinja2 import Environment, PackageLoader
+
+from belated.api.deps import SessionDep, principal
+from belated.clock import now
+from belated.errors import Problem
+from belated.store import keys
+from belated.store.keys import Principal
+from belated.timeutil import parse_ts
+from belated.web import pages
+
+router = APIRouter(include_in_schema=False)
+COOKIE = "belated_token"
+COOKIE_SECONDS = 12 * 3600
+HEADERS = {
+    # no script at all, styles inline only, no framing, forms post only here
+    "Content-Security-Policy": "default-src 'none'; style-src 'unsafe-inline'; img-src data:; "
+                               "form-action 'self'; frame-ancestors 'none'; base-uri 'none'",
+    "X-Content-Type-Options": "nosniff",
+    "Referrer-Policy": "same-origin",
+    "Cache-Control": "no-store",
+}
+
+
+def _num(value: Any, digits: int = 3) -> str:
+    return f"{value:.{digits}f}" if isinstance(value, int | float) else "—"
+
+
+def _pct(value: Any, digits: int = 0) -> str:
+    return f"{value:.{digits}%}" if isinstance(value, int | float) else "—"
+
+
+def _when(value: str | datetime | None, fmt: str = "%d %b %Y %H:%M UTC") -> str:
+    return "—" if value is None else parse_ts(value).strftime(fmt)
+
+
+def _hours(value: float | None) -> str:
+    if value is None:
+        return "not reached yet"
+    return f"{value:.0f} h" if value < 48 else f"{value / 24:.1f} days"
+
+
+ENV = Environment(loader=PackageLoader("belated.web", "templates"), autoescape=True,
+                  trim_blocks=True, lstrip_blocks=True)
+ENV.filters.update(num=_num, pct=_pct, when=_when, hours=_hours)
+ENV.globals.update(measure_name=pages.name_of)
+
+
+def render(template: str, *, status: int = 200, **context: Any) -> HTMLResponse:
+    """A page from its template, with the dashboard's security headers."""
+    html = ENV.get_template(template).render(**context)
+    return HTMLResponse(html, status_code=status, headers=HEADERS)
+
+
+def _error(problem: Problem, signed_in: bool = True) -> HTMLResponse:
+    return render("error.html", status=problem.status, problem=problem, signed_in=signed_in)
+
+
+def viewer(request: Request, session: SessionDep) -> Principal | Response:
+    """The reader (a token with the read scope), or the answer to send instead: a redirect
+    to the sign-in form without a live token, a 403 page without the read scope."""
+    try:
+        who = principal(request, session)
+    except Problem:
+        target = request.url.path + (f"?{request.url.query}" if request.url.query else "")
+        return RedirectResponse(f"/signin?next={quote(target, safe='')}", status_code=303)
+    if "read" not in who.scopes:
+        return _error(Problem(403, "This token lacks the 'read' scope, which the dashboard "
+                                   "needs. Sign in with a read token.", title="Forbidden"))
+    return who
+
+
+def _safe_next(target: str | None) -> str:
+    """Only a local path: never another site, never a scheme-relative '//host'."""
+    if not target or not target.startswith("/") or target.startswith(("//", "/\\")):
+        return "/"
+    return target
+
+
+@router.get("/signin", response_class=HTMLResponse)
+def signin_form(next: str | None = None) -> HTMLResponse:
+    """The sign-in form, which takes a read token."""
+    return render("signin.html", next=_safe_next(next), error=None, signed_in=False)
+
+
+@router.post("/signin", response_class=HTMLResponse)
+def signin(request: Request, session: SessionDep, token: Annotated[str, Form()] = "",
+           next: Annotated[str, Form()] = "/") -> Response:
+    """Check a read token and keep it in an HTTP-only, same-site cookie."""
+    origin = request.headers.get("origin")
+    if origin and origin != "null" and urlsplit(origin).netloc != request.url.netloc:
+        return _error(Problem(403, "Sign-in must come from this site's own form."), False)
+    token = token.strip()
+    found = keys.resolve(session=session, token=token) if 0 < len(token) <= 256 else None
+    error, status = None, 200
+    if found is None:
+        error, status = "That token is not one this service knows (or it was revoked).", 401
+    elif "read" not in found.scopes:
+        error, status = "That token lacks the 'read' scope; the dashboard needs a read token.", 403
+    if error:
+        return render("signin.html", status=status, next=_safe_next(next), error=error,
+                      signed_in=False)
+    answer = RedirectResponse(_safe_next(next), status_code=303)
+    answer.set_cookie(COOKIE, token, max_age=COOKIE_SECONDS, path="/", httponly=True,
+                      samesite="strict", secure=request.url.scheme == "https")
+    return answer
+
+
+@router.api_route("/signout", methods=["GET", "POST"])
+def signout(request: Request) -> Response:
+    """Forget the sign-in cookie."""
+    answer = RedirectResponse("/signin", status_code=303)
+    answer.delete_cookie(COOKIE, path="/", httponly=True, samesite="strict",
+                         secure=request.url.scheme == "https")
+    return answer
+
+
+@router.get("/", response_class=HTMLResponse)
+def overview(request: Request, session: SessionDep) -> Response:
+    """The project's models with their latest settled measures and open alerts."""
+    who = viewer(request, session)
+    if isinstance(who, Response):
+        return who
+    page = pages.overview(session=session, who=who, now=now(),
+                          max_values=request.app.state.settings.max_segment_values)
+    return render("index.html", signed_in=True, section="models", **page)
+
+
+@router.get("/models/{name}", response_class=HTMLResponse)
+def model_page(
+    name: str, request: Request, session: SessionDep, granularity: str = "day",
+    start: str | None = None, end: str | None = None,
+    segment: Annotated[list[str] | None, Query()] = None,
+) -> Response:
+    """One model: measures over windows, coverage, estimates, thresholds, delays, alerts."""
+    who = viewer(request, session)
+    if isinstance(who, Response):
+        return who
+    view = pages.View(granularity, start, end, tuple(s for s in segment or [] if s.strip()))
+    try:
+        page = pages.model_view(session=session, who=who, name=name, view=view, now=now(),
+                                max_values=request.app.state.settings.max_segment_values)
+    except Problem as problem:
+        return _error(problem)
+    return render("model.html", signed_in=True, section="models", **page)
+
+
+@router.get("/alerts", response_class=HTMLResponse)
+def alerts_page(request: Request, session: SessionDep, state: str | None = None,
+                model: str | None = None, after: str | None = None) -> Response:
+    """The project's alerts, newest first, with their breaches."""
+    who = viewer(request, session)
+    if isinstance(who, Response):
+        return who
+    if after is not None and not after.isdigit():
+        return _error(Problem(422, "'after' must be a position this page gave out."))
+    try:
+        page = pages.alerts_view(session=session, who=who, state=state, model=model,
+                                 after=int(after) if after else None)
+    except Problem as problem:
+        return _error(problem)
+    return render("alerts.html", signed_in=True, section="alerts", **page)
