@@ -19,6 +19,7 @@ from belated.api import (
     routes_keys,
     routes_metrics,
     routes_models,
+    routes_prometheus,
 )
 from belated.api.limits import BodyLimit
 from belated.config import Settings, get_settings
@@ -58,7 +59,7 @@ def create_app(settings: Settings | None = None, *, engine: Engine | None = None
     problems.install(app)
     app.state.outbox_backlog = delivery.backlog
     for module in (routes_models, routes_ingest, routes_metrics, routes_alerts, routes_keys,
-                   routes_health):
+                   routes_health, routes_prometheus):
         app.include_router(module.router)
     _optional_routers(app)
     return BodyLimit(app, settings.max_body_bytes)
@@ -68,7 +69,7 @@ def _optional_routers(app: FastAPI) -> None:
     """Routers of later capabilities, mounted when their modules exist."""
     import importlib
 
-    for name in ("belated.api.routes_prometheus", "belated.web.routes"):
+    for name in ("belated.web.routes",):
         try:
             module = importlib.import_module(name)
         except ModuleNotFoundError as exc:

@@ -42,4 +42,11 @@ def deliver_step(runner: Any) -> dict[str, Any]:
     return delivery.deliver_due(runner.sessions, runner.settings)
 
 
-STEPS = [("evaluate", evaluate_step), ("deliver", deliver_step)]
+def cache_step(runner: Any) -> dict[str, Any]:
+    """Cache the figures /metrics serves."""
+    from belated import prom
+
+    return prom.cache_step(runner)
+
+
+STEPS = [("evaluate", evaluate_step), ("deliver", deliver_step), ("cache", cache_step)]
