@@ -101,6 +101,17 @@ def rebuild(model: str | None = typer.Option(None, help="Only this model (by nam
     typer.echo(f"rebuilt {total} hour buckets")
 
 
+@app.command()
+def demo(days: int = typer.Option(90, min=14, max=365, help="Days of orders to generate."),
+         seed: int = typer.Option(7, help="Seed of the generator."),
+         port: int = typer.Option(8000, help="Port to serve on (0: any free port)."),
+         ) -> None:
+    """Run the furniture-shop demo on a fresh SQLite file and keep serving it."""
+    from belated import demo as demo_module
+
+    demo_module.run(days=days, seed=seed, port=port, echo=typer.echo)
+
+
 @keys_app.command("create")
 def keys_create(
     project: str = typer.Option(..., help="Project name (created if needed)."),

@@ -18,7 +18,7 @@ from typing import Any
 import pandas as pd
 import typer
 
-from belated.client import ANSWER_KEYS, BelatedError, Client, frame_items
+from belated.client import ANSWER_KEYS, BelatedError, Client, Unreachable, frame_items
 
 send_app = typer.Typer(help="Send predictions or labels from a CSV or Parquet file.",
                        no_args_is_help=True)
@@ -255,6 +255,8 @@ def _spec(client: Client, model: str) -> Any:
 
     try:
         got = client.model(model)
+    except Unreachable:
+        raise
     except BelatedError as exc:
         if exc.status == 403:
             typer.echo("note: the token cannot read the model; rows are checked by the "

@@ -5,6 +5,8 @@ from __future__ import annotations
 from collections.abc import Iterator
 from typing import Annotated, Any
 
+import json
+
 import orjson
 from fastapi import Depends, Request
 from sqlalchemy.orm import Session
@@ -27,7 +29,8 @@ def get_session(request: Request) -> Iterator[Session]:
         session.close()
 
 
-SessionDep = Annotated[Session, Depends(get_session)]
+# scope="function": the commit happens before the answer is sent, so a 2xx means stored.
+SessionDep = Annotated[Session, Depends(get_session, scope="function")]
 
 
 def bearer(request: Request) -> str | None:
@@ -71,7 +74,12 @@ async def json_body(request: Request) -> Any:
     try:
         return orjson.loads(raw)
     except orjson.JSONDecodeError as exc:
-        raise Problem(400, f"the body is not valid JSON: {exc}") from None
+        # orjson refuses numbers that overflow a double (1e400); the standard parser reads
+        # them as infinity, which validation then reports by item and field
+        try:
+            return json.loads(raw)
+        except (ValueError, UnicodeDecodeError):
+            raise Problem(400, f"the body is not valid JSON: {exc}") from None
 
 
 JsonBody = Annotated[Any, Depends(json_body)]

@@ -38,8 +38,11 @@ def decode_cursor(value: str | None) -> str | None:
     if not value:
         return None
     try:
-        return base64.urlsafe_b64decode(value.encode()).decode()
-    except (ValueError, UnicodeDecodeError):
+        decoded = base64.urlsafe_b64decode(value.encode("ascii"))
+        if base64.urlsafe_b64encode(decoded).decode() != value or not decoded:
+            raise ValueError("not a cursor")
+        return decoded.decode()
+    except (ValueError, UnicodeError):
         raise Problem(422, "the cursor is not one this API gave out",
                       errors=[{"index": None, "field": "cursor", "reason": "malformed"}]) from None
 

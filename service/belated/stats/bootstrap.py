@@ -33,14 +33,16 @@ def check_resamples(resamples: int) -> int:
     return int(resamples)
 
 
-def generator_for(counts: Sequence[int], seed: int) -> np.random.Generator:
+def generator_for(counts: Sequence[int] | np.ndarray, seed: int) -> np.random.Generator:
     """A generator seeded by the caller's seed and the counts (same data, same stream)."""
     if seed < 0:
         raise ValueError(f"seed must be a non-negative integer, got {seed}")
     return np.random.default_rng([int(seed), *(int(c) for c in counts)])
 
 
-def resample(counts: Sequence[int], resamples: int, rng: np.random.Generator) -> np.ndarray:
+def resample(
+    counts: Sequence[int] | np.ndarray, resamples: int, rng: np.random.Generator
+) -> np.ndarray:
     """`resamples` multinomial redraws of `counts` as a float array (resamples, len(counts))."""
     counts_arr = np.asarray(counts, dtype=np.int64)
     n = int(counts_arr.sum())
@@ -57,24 +59,27 @@ def percentile_intervals(samples: np.ndarray, confidence: float) -> list[Interva
     """`percentile_interval` of each row of a 2-D array, with one sort for all rows."""
     # NaN sorts last, so the first `m` entries of a sorted row are its finite samples.
     ordered = np.sort(np.where(np.isinf(samples), np.nan, samples), axis=1)
-    finite_counts = np.count_nonzero(~np.isnan(ordered), axis=1).tolist()
+    finite = (ordered.shape[1] - np.isnan(ordered).sum(axis=1)).tolist()
     tail = (1.0 - confidence) / 2.0
-    out: list[Interval] = []
-    for row, m in zip(ordered, finite_counts, strict=True):
-        if m == 0:
-            out.append(None)
-        else:
-            out.append((_interpolate(row, tail * (m - 1)), _interpolate(row, (1 - tail) * (m - 1))))
-    return out
-
-
-def _interpolate(sorted_values: np.ndarray, position: float) -> float:
-    """The value at a fractional position of a sorted array (numpy's 'linear' quantile)."""
-    below = int(position)
-    weight = position - below
-    if weight == 0.0:
-        return float(sorted_values[below])
-    return float(sorted_values[below] * (1.0 - weight) + sorted_values[below + 1] * weight)
+    # Both ends of every row in one gather: positions, then the values either side of each.
+    rows: list[int] = []
+    below: list[int] = []
+    weights: list[float] = []
+    for row, m in enumerate(finite):
+        for q in (tail, 1.0 - tail):
+            position = q * (m - 1) if m else 0.0
+            rows.append(row)
+            below.append(int(position))
+            weights.append(position - int(position))
+    lower_index = np.array(below)
+    upper_index = np.minimum(lower_index + 1, ordered.shape[1] - 1)
+    lower = ordered[rows, lower_index].tolist()
+    upper = ordered[rows, upper_index].tolist()
+    ends = [
+        lo if w == 0.0 else lo * (1.0 - w) + hi * w
+        for lo, hi, w in zip(lower, upper, weights, strict=True)
+    ]
+    return [None if m == 0 else (ends[2 * i], ends[2 * i + 1]) for i, m in enumerate(finite)]
 
 
 def binary_arrays(
@@ -105,11 +110,13 @@ def bootstrap_binary(
     seed: int = 0,
 ) -> dict[str, Interval]:
     """Percentile intervals for fbeta, mcc and balanced_accuracy from resampled counts."""
-    counts = (tp, fp, fn, tn)
-    if resamples == 0 or sum(counts) == 0:
+    n = tp + fp + fn + tn
+    if resamples == 0 or n == 0:
         return dict.fromkeys(BOOTSTRAPPED_BINARY)
-    # One row per cell, contiguous, so the arithmetic below runs on plain vectors.
-    draws = np.ascontiguousarray(resample(counts, resamples, generator_for(counts, seed)).T)
+    rng = generator_for((tp, fp, fn, tn), seed)
+    # One column per resample, one row per cell: the arithmetic below runs on plain rows.
+    cells = rng.multinomial(n, [tp / n, fp / n, fn / n, tn / n], size=resamples).T
+    draws = cells.astype(np.float64)
     arrays = binary_arrays(draws[0], draws[1], draws[2], draws[3], beta)
     stacked = np.stack([arrays[name] for name in BOOTSTRAPPED_BINARY])
     return dict(zip(BOOTSTRAPPED_BINARY, percentile_intervals(stacked, confidence), strict=True))

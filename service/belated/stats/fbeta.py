@@ -22,6 +22,7 @@ entry point takes one or the other, never both, and `resolve_beta` turns either 
 from __future__ import annotations
 
 import math
+from numbers import Real
 
 from belated.stats.values import Value
 
@@ -46,7 +47,7 @@ def resolve_beta(beta: float | None = None, precision_weight: float | None = Non
             "(precision_weight alpha = 1 / (1 + beta^2))"
         )
     if precision_weight is not None:
-        if isinstance(precision_weight, bool) or not isinstance(precision_weight, int | float):
+        if isinstance(precision_weight, bool) or not isinstance(precision_weight, Real):
             raise ValueError("precision_weight must be a number in the open interval (0, 1)")
         if not math.isfinite(precision_weight) or not 0.0 < precision_weight < 1.0:
             raise ValueError(
@@ -55,7 +56,7 @@ def resolve_beta(beta: float | None = None, precision_weight: float | None = Non
         return beta_from_precision_weight(float(precision_weight))
     if beta is None:
         return 1.0
-    if isinstance(beta, bool) or not isinstance(beta, int | float):
+    if isinstance(beta, bool) or not isinstance(beta, Real):
         raise ValueError("beta must be a positive finite number")
     if not math.isfinite(beta) or beta <= 0.0:
         raise ValueError(f"beta must be a positive finite number, got {beta}")

@@ -9,6 +9,7 @@ limit 1 when x = n). ROC AUC: Hanley and McNeil (1982, Radiology 143:29-36).
 from __future__ import annotations
 
 import math
+from numbers import Real
 from statistics import NormalDist
 
 from scipy.special import betaincinv
@@ -20,7 +21,7 @@ _STANDARD_NORMAL = NormalDist()
 
 def check_confidence(confidence: float) -> float:
     """The confidence level as a float; ValueError unless it lies in (0, 1)."""
-    if isinstance(confidence, bool) or not isinstance(confidence, int | float):
+    if isinstance(confidence, bool) or not isinstance(confidence, Real):
         raise ValueError("confidence must be a number in the open interval (0, 1)")
     if not math.isfinite(confidence) or not 0.0 < confidence < 1.0:
         raise ValueError(f"confidence must lie in the open interval (0, 1), got {confidence}")

@@ -108,6 +108,7 @@ def summarise_multiclass(
     boot = _bootstrap(m, beta, confidence, resamples, seed)
 
     def prop(successes: int, n: int, reason: str) -> Value:
+        """successes / n with its proportion interval, or undefined when n = 0."""
         if n == 0:
             return Value.undefined(reason)
         low, high = proportion_interval(successes, n, method=method, confidence=confidence)

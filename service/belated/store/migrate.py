@@ -27,6 +27,7 @@ def alembic_config(url: str) -> Config:
     """An Alembic config bound to `url`, independent of the working directory."""
     cfg = Config()
     cfg.set_main_option("script_location", str(migrations_dir()))
+    cfg.set_main_option("path_separator", "os")
     cfg.attributes["url"] = url
     return cfg
 

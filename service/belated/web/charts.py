@@ -15,8 +15,8 @@ from dataclasses import dataclass
 from markupsafe import Markup, escape
 
 W, H = 640, 220
-LEFT, RIGHT, TOP, BOTTOM = 46, 14, 14, 30
-ROW = 62  # height of one row of a strip chart
+LEFT, RIGHT, TOP, BOTTOM = 62, 14, 16, 34
+ROW = 76  # height of one row of a strip chart
 
 
 @dataclass(frozen=True)
@@ -45,7 +45,7 @@ def _pct(x: float | None) -> str:
 
 
 def _safe_id(text: str) -> str:
-    return re.sub(r"[^a-z0-9-]+", "-", text.lower()).strip("-") or "chart"
+    return re.sub(r"[^a-z0-9_-]+", "-", text.lower()).strip("-") or "chart"
 
 
 def nice_domain(values: Sequence[float]) -> tuple[float, float, list[float]]:
@@ -107,7 +107,7 @@ def _grid(fr: _Frame, ticks: Sequence[float], as_pct: bool = False) -> str:
 
 def _xlabels(fr: _Frame, labels: Sequence[str]) -> str:
     every = max(1, math.ceil(len(labels) / 5))
-    y = _f(fr.height - BOTTOM + 18)
+    y = _f(fr.height - BOTTOM + 22)
     parts = ['<g class="xaxis">']
     for i, text in enumerate(labels):
         if i % every == 0:
@@ -206,17 +206,18 @@ def strip_chart(rows: Sequence[tuple[str, Sequence[Point]]], *, title: str, char
     fr = _Frame(n, 0.0, 1.0, height)
     for r, (name, pts) in enumerate(rows):
         top = TOP + r * ROW
-        y0, y1 = top + ROW - 8, top + 16  # the row's 0 and 1
+        y0, y1 = top + ROW - 8, top + 26  # the row's 0 and 1
 
         def ry(v: float, _y0: float = y0, _y1: float = y1) -> float:
             return _y0 - v * (_y0 - _y1)
 
         out.append(f'<g class="row" data-row="{escape(name)}">'
-                   f'<text x="{LEFT}" y="{_f(top + 8)}" class="rowlab">{escape(name)}</text>')
+                   f'<text x="{LEFT}" y="{_f(top + 14)}" class="rowlab">{escape(name)}</text>')
         for t in (0.0, 0.5, 1.0):
+            label = "" if t == 0.5 else (f'<text class="ylab" x="{LEFT - 6}" '
+                                         f'y="{_f(ry(t))}">{t:g}</text>')
             out.append(f'<line class="rule" x1="{LEFT}" x2="{W - RIGHT}" y1="{_f(ry(t))}" '
-                       f'y2="{_f(ry(t))}"/><text class="ylab" x="{LEFT - 6}" '
-                       f'y="{_f(ry(t))}">{t:g}</text>')
+                       f'y2="{_f(ry(t))}"/>{label}')
         for i, p in enumerate(pts):
             if p.value is None:
                 continue
@@ -246,7 +247,7 @@ def bar_chart(points: Sequence[Point], *, title: str, chart_id: str, reference: 
                        f"{_hover(p, 'nothing to count')}</line>")
             continue
         y = fr.y(min(max(p.value, 0.0), 1.0))
-        fill = "" if p.settled else f' fill="url(#{cid}-hatch)"'
+        fill = "" if p.settled else f' style="fill: url(#{cid}-hatch)"'
         cls = "pt bar" if p.settled else "pt bar prov"
         out.append(f'<rect class="{cls}"{fill} x="{_f(fr.x(i) - width / 2)}" y="{_f(y)}" '
                    f'width="{_f(width)}" height="{_f(H - BOTTOM - y)}" '
@@ -254,8 +255,8 @@ def bar_chart(points: Sequence[Point], *, title: str, chart_id: str, reference: 
                    f"{_hover(p, _pct(p.value))}</rect>")
     out.append("</g>")
     if reference is not None:
-        y = _f(fr.y(reference))
-        out.append(f'<g class="ref"><line x1="{LEFT}" x2="{W - RIGHT}" y1="{y}" y2="{y}"/>'
+        ry = _f(fr.y(reference))
+        out.append(f'<g class="ref"><line x1="{LEFT}" x2="{W - RIGHT}" y1="{ry}" y2="{ry}"/>'
                    f'<text x="{W - RIGHT - 4}" y="{_f(fr.y(reference) - 5)}">'
                    f"{escape(reference_label)}</text></g>")
     out += [_xlabels(fr, [p.label for p in points]), "</svg>"]
@@ -276,8 +277,10 @@ def sweep_chart(rows: Sequence[dict[str, float | None]], *, title: str, chart_id
     out = _open(cid, title, f"{len(rows)} thresholds; {best_label}", "sweep")
     out.append(_grid(fr, [0.0, 0.25, 0.5, 0.75, 1.0]))
     for name in series:
-        coords = [None if r.get(name) is None or r.get("threshold") is None
-                  else (_tx(r["threshold"]), fr.y(r[name])) for r in rows]  # type: ignore[arg-type]
+        coords: list[tuple[float, float] | None] = []
+        for r in rows:
+            t, v = r.get("threshold"), r.get(name)
+            coords.append(None if t is None or v is None else (_tx(t), fr.y(v)))
         out.append(f'<g class="s-{escape(name)}" data-series="{escape(name)}">')
         for a, b in _runs([c is not None for c in coords]):
             d = " L".join(f"{_f(c[0])},{_f(c[1])}" for c in coords[a:b + 1] if c)
@@ -298,6 +301,6 @@ def sweep_chart(rows: Sequence[dict[str, float | None]], *, title: str, chart_id
                    f'text-anchor="{anchor}">{escape(text)}</text></g>')
     out.append('<g class="xaxis">')
     for t in (0.0, 0.25, 0.5, 0.75, 1.0):
-        out.append(f'<text x="{_f(_tx(t))}" y="{H - BOTTOM + 18}">{t:g}</text>')
+        out.append(f'<text x="{_f(_tx(t))}" y="{H - BOTTOM + 22}">{t:g}</text>')
     out += ["</g>", "</svg>"]
     return Markup("".join(out))

@@ -201,6 +201,19 @@ def describe_rule(rule: Any) -> str:
     return f"{text} (per {rule.granularity}{seg})"
 
 
+def baseline_text(baseline: dict[str, Any] | None) -> str:
+    """What a breach was compared with, in a few words."""
+    parts = []
+    for key, value in (baseline or {}).items():
+        if isinstance(value, dict):
+            parts.append(f"{key.replace('_', ' ')}: {len(value)} values")
+        elif isinstance(value, int | float) and not isinstance(value, bool):
+            parts.append(f"{key.replace('_', ' ')} {value:.3f}".rstrip("0").rstrip("."))
+        elif value is not None:
+            parts.append(f"{key.replace('_', ' ')} {value}")
+    return "; ".join(parts) or "—"
+
+
 def alerts_view(*, session: Session, who: Principal, state: str | None, model: str | None,
                 after: int | None) -> dict[str, Any]:
     """A page of the project's alerts, newest first, each with its rule and breaches."""
@@ -214,5 +227,6 @@ def alerts_view(*, session: Session, who: Principal, state: str | None, model: s
             rules[r.id] = describe_rule(alerts.rule_read(r, name))
     for a in items:
         a["rule_text"] = rules.get(a["rule_id"], a["rule_id"])
-        a["breaches"] = a["breaches"][::-1]
+        a["breaches"] = [{**b, "baseline_text": baseline_text(b["baseline"])}
+                         for b in a["breaches"][::-1]]
     return {"alerts": items, "state": state or "", "model": model or "", "next": more}

@@ -43,6 +43,17 @@ def _when(value: str | datetime | None, fmt: str = "%d %b %Y %H:%M UTC") -> str:
     return "—" if value is None else parse_ts(value).strftime(fmt)
 
 
+def _span(start: str, end: str) -> str:
+    """A window as a reader says it: a day, a week, or an hour."""
+    a, b = parse_ts(start), parse_ts(end)
+    hours = (b - a).total_seconds() / 3600
+    if hours == 24 and a.hour == 0:
+        return a.strftime("%a %d %b %Y")
+    if hours == 24 * 7:
+        return a.strftime("week of %d %b %Y")
+    return f"{a:%d %b %Y %H:%M}–{b:%H:%M}"
+
+
 def _hours(value: float | None) -> str:
     if value is None:
         return "not reached yet"
@@ -52,13 +63,15 @@ def _hours(value: float | None) -> str:
 ENV = Environment(loader=PackageLoader("belated.web", "templates"), autoescape=True,
                   trim_blocks=True, lstrip_blocks=True)
 ENV.filters.update(num=_num, pct=_pct, when=_when, hours=_hours)
+ENV.globals.update(span=_span)
 ENV.globals.update(measure_name=pages.name_of)
 
 
-def render(template: str, *, status: int = 200, **context: Any) -> HTMLResponse:
+def render(template: str, *, status: int = 200, headers: dict[str, str] | None = None,
+           **context: Any) -> HTMLResponse:
     """A page from its template, with the dashboard's security headers."""
     html = ENV.get_template(template).render(**context)
-    return HTMLResponse(html, status_code=status, headers=HEADERS)
+    return HTMLResponse(html, status_code=status, headers={**HEADERS, **(headers or {})})
 
 
 def _error(problem: Problem, signed_in: bool = True) -> HTMLResponse:
@@ -107,8 +120,10 @@ def signin(request: Request, session: SessionDep, token: Annotated[str, Form()] 
     elif "read" not in found.scopes:
         error, status = "That token lacks the 'read' scope; the dashboard needs a read token.", 403
     if error:
-        return render("signin.html", status=status, next=_safe_next(next), error=error,
-                      signed_in=False)
+        # a 401 must name a scheme (RFC 9110); Bearer never opens a browser's password box
+        challenge = {"WWW-Authenticate": "Bearer"} if status == 401 else None
+        return render("signin.html", status=status, headers=challenge, next=_safe_next(next),
+                      error=error, signed_in=False)
     answer = RedirectResponse(_safe_next(next), status_code=303)
     answer.set_cookie(COOKIE, token, max_age=COOKIE_SECONDS, path="/", httponly=True,
                       samesite="strict", secure=request.url.scheme == "https")

@@ -1,0 +1,176 @@
+"""Label ingest: matched, pending, corrected and unchanged; history; default times; dirty hours."""
+
+from __future__ import annotations
+
+from datetime import datetime, timedelta
+from typing import Any
+
+import pytest
+from belated.timeutil import from_db
+from sqlalchemy import Engine
+
+from tests.builders import (
+    Model,
+    base_time,
+    count,
+    create_model,
+    epoch_hour,
+    label,
+    outcome_of,
+    prediction,
+    prediction_row,
+    predictions,
+    rows,
+    utcnow,
+)
+from tests.conftest import Tenant
+
+
+@pytest.fixture()
+def model(tenant: Tenant, engine: Engine) -> Model:
+    """A binary model with the default settings."""
+    return create_model(tenant, engine)
+
+
+def send(tenant: Tenant, model: Model, kind: str, items: list[dict[str, Any]]) -> Any:
+    """POST predictions or labels and return the answer, which must be a 200."""
+    r = tenant.client.post(f"/v1/models/{model.name}/{kind}", json={kind: items})
+    assert r.status_code == 200, r.text
+    return r.json()
+
+
+def history(engine: Engine, model: Model, pid: str) -> list[tuple[str, str]]:
+    """The label history of one id, in arrival order."""
+    return [tuple(r) for r in rows(
+        engine, "SELECT actual, change FROM labels WHERE model_id = :m AND pid = :p"
+        " ORDER BY row_id", m=model.id, p=pid)]
+
+
+def test_the_four_answers_add_up_to_the_batch_size(
+    tenant: Tenant, engine: Engine, model: Model
+) -> None:
+    items = predictions(6)
+    send(tenant, model, "predictions", items)
+    ids = [p["id"] for p in items]
+    send(tenant, model, "labels", [label(ids[0], "0"), label(ids[1], "1")])
+    batch = [
+        label(ids[0], "1"),  # corrected
+        label(ids[1], "1"),  # unchanged
+        label(ids[2], "0"),  # matched
+        label(ids[3], "1"),  # matched
+        label("order-not-yet", "1"),  # pending
+        label(ids[4], 1),  # matched, integer class
+        label(ids[4], "1"),  # the same id again in the batch: unchanged
+    ]
+    answer = send(tenant, model, "labels", batch)
+    assert answer == {"matched": 3, "pending": 1, "corrected": 1, "unchanged": 2}
+    assert sum(answer.values()) == len(batch)
+    labelled = rows(engine, "SELECT pid, actual FROM predictions WHERE model_id = :m"
+                    " AND actual IS NOT NULL ORDER BY pid", m=model.id)
+    assert [tuple(r) for r in labelled] == [(ids[0], "1"), (ids[1], "1"), (ids[2], "0"),
+                                           (ids[3], "1"), (ids[4], "1")]
+    assert count(engine, "pending_labels", model.id) == 1
+
+
+def test_corrections_apply_in_arrival_order_and_keep_history(
+    tenant: Tenant, engine: Engine, model: Model
+) -> None:
+    item = prediction(0)
+    send(tenant, model, "predictions", [item])
+    pid = item["id"]
+    known = datetime.fromisoformat(item["ts"]) + timedelta(days=1)
+    send(tenant, model, "labels", [label(pid, "1", ts=known)])
+    # a correction whose outcome time is earlier still wins: arrival order decides
+    answer = send(tenant, model, "labels", [label(pid, "0", ts=known - timedelta(hours=6))])
+    assert answer == {"matched": 0, "pending": 0, "corrected": 1, "unchanged": 0}
+    assert send(tenant, model, "labels", [label(pid, "1", ts=known + timedelta(hours=2))]
+                )["corrected"] == 1
+    assert history(engine, model, pid) == [("1", "first"), ("0", "correction"),
+                                           ("1", "correction")]
+    row = prediction_row(engine, model.id, pid)
+    assert row["actual"] == "1" and row["label_ts"] == known + timedelta(hours=2)
+    got = tenant.client.get(f"/v1/models/{model.name}").json()["counts"]
+    assert got == {"predictions": 1, "labelled": 1, "pending_labels": 0}
+
+
+def test_the_same_actual_again_is_unchanged_whatever_its_time(
+    tenant: Tenant, engine: Engine, model: Model
+) -> None:
+    item = prediction(0)
+    send(tenant, model, "predictions", [item])
+    known = datetime.fromisoformat(item["ts"]) + timedelta(hours=5)
+    send(tenant, model, "labels", [label(item["id"], "1", ts=known)])
+    marks = rows(engine, "SELECT hour, version FROM dirty_buckets WHERE model_id = :m",
+                 m=model.id)
+    for later in (known + timedelta(days=1), known - timedelta(hours=4), None):
+        answer = send(tenant, model, "labels", [label(item["id"], "1", ts=later)])
+        assert answer == {"matched": 0, "pending": 0, "corrected": 0, "unchanged": 1}
+    assert prediction_row(engine, model.id, item["id"])["label_ts"] == known
+    assert history(engine, model, item["id"]) == [("1", "first")]
+    assert rows(engine, "SELECT hour, version FROM dirty_buckets WHERE model_id = :m",
+                m=model.id) == marks
+
+
+def test_a_label_without_time_is_stamped_when_received(
+    tenant: Tenant, engine: Engine, model: Model
+) -> None:
+    item = prediction(0)
+    send(tenant, model, "predictions", [item])
+    before = utcnow()
+    send(tenant, model, "labels", [label(item["id"], "0"), label("order-waiting", "1")])
+    after = utcnow()
+    row = prediction_row(engine, model.id, item["id"])
+    assert row["label_ts"] is not None and before <= row["label_ts"] <= after
+    (pending_ts,) = rows(engine, "SELECT ts FROM pending_labels WHERE model_id = :m",
+                         m=model.id)[0]
+    stamped = from_db(pending_ts)
+    assert stamped is not None and before <= stamped <= after
+    expected_delay = (row["label_ts"] - datetime.fromisoformat(item["ts"])).total_seconds()
+    (delay_h,) = rows(engine, "SELECT delay_h FROM predictions WHERE model_id = :m",
+                      m=model.id)[0]
+    assert delay_h == pytest.approx(expected_delay / 3600, abs=1e-6)
+
+
+def test_a_label_for_an_old_prediction_marks_that_old_hour_dirty(
+    tenant: Tenant, engine: Engine, model: Model
+) -> None:
+    old = prediction(0, base=base_time() - timedelta(days=19))  # three weeks before now
+    assert utcnow() - datetime.fromisoformat(old["ts"]) >= timedelta(days=21)
+    send(tenant, model, "predictions", [old])
+    old_hour = epoch_hour(datetime.fromisoformat(old["ts"]))
+    (before,) = rows(engine, "SELECT hour, version, marked_at FROM dirty_buckets"
+                     " WHERE model_id = :m", m=model.id)
+    assert before[0] == old_hour
+    now_hours = {epoch_hour(utcnow())}
+    send(tenant, model, "labels", [label(old["id"], outcome_of(0))])
+    now_hours.add(epoch_hour(utcnow()))
+    after = rows(engine, "SELECT hour, version, marked_at FROM dirty_buckets"
+                 " WHERE model_id = :m", m=model.id)
+    assert [r[0] for r in after] == [old_hour]
+    assert not now_hours & {r[0] for r in after}
+    assert after[0][1] != before[1]  # marked again with a fresh version
+    assert from_db(after[0][2]) >= from_db(before[2])
+
+
+def test_a_pending_label_can_be_corrected_before_its_prediction_arrives(
+    tenant: Tenant, engine: Engine, model: Model
+) -> None:
+    item = prediction(0)
+    assert send(tenant, model, "labels", [label(item["id"], "1")])["pending"] == 1
+    assert send(tenant, model, "labels", [label(item["id"], "0")])["pending"] == 1
+    assert count(engine, "pending_labels", model.id) == 1
+    assert history(engine, model, item["id"]) == [("1", "pending"), ("0", "pending")]
+    send(tenant, model, "predictions", [item])
+    assert prediction_row(engine, model.id, item["id"])["actual"] == "0"
+    assert count(engine, "pending_labels", model.id) == 0
+
+
+def test_labels_do_not_cross_models(tenant: Tenant, engine: Engine, model: Model) -> None:
+    other = create_model(tenant, engine)
+    item = prediction(0)
+    send(tenant, model, "predictions", [item])
+    answer = send(tenant, other, "labels", [label(item["id"], "1")])
+    assert answer["pending"] == 1
+    assert prediction_row(engine, model.id, item["id"])["actual"] is None
+    assert count(engine, "pending_labels", other.id) == 1
+    assert count(engine, "pending_labels", model.id) == 0
