@@ -5,6 +5,7 @@ from __future__ import annotations
 import tempfile
 import threading
 import time
+from datetime import timedelta
 from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
 from pathlib import Path
 from typing import Any
@@ -19,17 +20,23 @@ from belated.store.db import make_engine, make_sessionmaker, transaction
 from belated.store.migrate import upgrade
 
 MODEL = "returns-v2"
-RULES: list[dict[str, Any]] = [
-    {"kind": "drop", "measure": "recall", "segment_by": "region", "tolerance": 0.03,
-     "alpha": 0.05, "min_support": 30, "baseline": {"windows": 14}, "clear_after": 3},
-    {"kind": "drop", "measure": "precision", "segment_by": "region", "tolerance": 0.03,
-     "alpha": 0.05, "min_support": 30, "baseline": {"windows": 14}, "clear_after": 3},
-    {"kind": "shift", "measure": "positive_rate", "segment_by": "region", "threshold": 0.04,
-     "alpha": 0.01, "baseline": {"windows": 14}, "clear_after": 3},
-    {"kind": "shift", "measure": "score_psi", "threshold": 0.1, "baseline": {"windows": 14}},
-    {"kind": "volume", "low": 200},
-    {"kind": "stall", "max_silence_hours": 48},
-]
+
+
+def rules(reference_start: str, reference_end: str) -> list[dict[str, Any]]:
+    """Sensible rules for the shop: label-based drops and label-free shifts against a fixed
+    reference month, volume and label stalls."""
+    reference = {"start": reference_start, "end": reference_end}
+    return [
+        {"kind": "drop", "measure": "recall", "segment_by": "region", "tolerance": 0.05,
+         "alpha": 0.01, "min_support": 30, "baseline": reference, "clear_after": 3},
+        {"kind": "drop", "measure": "precision", "segment_by": "region", "tolerance": 0.05,
+         "alpha": 0.01, "min_support": 30, "baseline": reference, "clear_after": 3},
+        {"kind": "shift", "measure": "positive_rate", "segment_by": "region", "threshold": 0.05,
+         "alpha": 0.001, "baseline": reference, "clear_after": 3},
+        {"kind": "shift", "measure": "score_psi", "threshold": 0.1, "baseline": reference},
+        {"kind": "volume", "low": 200},
+        {"kind": "stall", "max_silence_hours": 48},
+    ]
 
 
 class _Sink(BaseHTTPRequestHandler):
@@ -73,6 +80,9 @@ def _feed(base: str, token: str, days: int, seed: int, echo: Any) -> None:
               json={"url": f"http://127.0.0.1:{sink.server_port}/returns-alerts"}
               ).raise_for_status()
     current = now()
+    first = current - timedelta(days=days)
+    reference = (first + timedelta(days=demo_data.CHANGE_DAY - 30),
+                 first + timedelta(days=demo_data.CHANGE_DAY - 2))
     preds, labels = [], []
     for order in demo_data.orders(days=days, seed=seed, end=current):
         preds.append(demo_data.prediction(order))
@@ -85,7 +95,7 @@ def _feed(base: str, token: str, days: int, seed: int, echo: Any) -> None:
         http.post(f"/v1/models/{MODEL}/labels",
                   json={"labels": labels[i:i + 10_000]}).raise_for_status()
     # rules come last, so that no evaluation sees the history half sent
-    for rule in RULES:
+    for rule in rules(reference[0].isoformat(), reference[1].isoformat()):
         http.post(f"/v1/models/{MODEL}/rules", json=rule).raise_for_status()
     echo(f"sent {len(preds)} orders and {len(labels)} outcomes", err=True)
 
