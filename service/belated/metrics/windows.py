@@ -96,31 +96,35 @@ def build(session: Session, model: ModelRow, rng: Range, opts: Options,
         for j in parts:
             acc.add(base[j])
         start, end = starts[i], starts[i] + step
-        window = _window(model, acc, start, end, now, opts)
+        ece_value, prior = _reference(base, settled, i) if model.kind == "binary" else (None, None)
+        window = _window(model, acc, start, end, now, opts, prior)
         window["settled"] = all(settled[j] for j in parts)
         if model.kind == "binary":
-            window["estimates"]["calibration_error"] = _calibration(base, settled, i)
+            window["estimates"]["calibration_error"] = ece_value
         out.append(window)
     return out
 
 
-def _calibration(base: list[Acc], settled: list[bool], i: int) -> float | None:
-    """ECE of the trailing settled windows before window i (label-free estimates need it)."""
+def _reference(base: list[Acc], settled: list[bool], i: int
+               ) -> tuple[float | None, float | None]:
+    """ECE and prevalence of the trailing settled windows before window i: label-free
+    estimates hold only for calibrated scores, and EM re-estimates the prior from there."""
     picked = [j for j in range(i - 1, -1, -1) if settled[j] and base[j].scalar("n_labelled")]
     picked = picked[:CALIBRATION_WINDOWS]
     if not picked:
-        return None
+        return None, None
     hist = np.zeros((3, N_BINS), np.int64)
     hsum = np.zeros((3, N_BINS), np.float64)
     for j in picked:
         hist += base[j].hist
         hsum += base[j].hsum
-    value = ece(hist[0], hsum[0], hist[1], hsum[1])
-    return value.value if hasattr(value, "value") else value  # type: ignore[return-value]
+    labelled = int(hist[0].sum() + hist[1].sum())
+    prior = float(hist[0].sum() / labelled) if labelled else None
+    return ece(hist[0], hsum[0], hist[1], hsum[1]).value, prior
 
 
 def _window(model: ModelRow, acc: Acc, start: datetime, end: datetime, now: datetime,
-            opts: Options) -> dict[str, Any]:
+            opts: Options, prior: float | None = None) -> dict[str, Any]:
     n, labelled = acc.scalar("n_pred"), acc.scalar("n_labelled")
     window: dict[str, Any] = {
         "start": iso(start), "end": iso(end), "closed": end <= now,
@@ -131,7 +135,8 @@ def _window(model: ModelRow, acc: Acc, start: datetime, end: datetime, now: date
     if model.kind == "binary":
         summary = summarise(to_stats(acc), beta=opts.beta, interval=opts.interval,
                             confidence=opts.confidence, resamples=opts.resamples, seed=seed,
-                            measures=set(opts.measures) if opts.measures else None)
+                            measures=set(opts.measures) if opts.measures else None,
+                            baseline_prior=prior if prior is not None and 0 < prior < 1 else None)
         window.update(summary)
         window["estimates"] = dict(window.get("estimates") or {})
         return window
