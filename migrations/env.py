@@ -5,12 +5,11 @@ from __future__ import annotations
 from alembic import context
 from sqlalchemy import text
 
+import belated.alerts.tables  # noqa: F401  (registers the alert tables)
+import belated.store.rollup_tables  # noqa: F401  (registers the rollup tables)
 from belated.config import get_settings
 from belated.store.db import is_sqlite, make_engine
 from belated.store.tables import Base
-
-import belated.store.rollup_tables  # noqa: F401  (registers the rollup tables)
-import belated.alerts.tables  # noqa: F401  (registers the alert tables)
 
 config = context.config
 target_metadata = Base.metadata

@@ -35,8 +35,9 @@ PROGRESS = typer.Option(None, "--progress/--no-progress",
                         help="A progress bar on stderr (default: when stderr is a terminal).")
 RETRIES = typer.Option(8, "--retries", min=0, help="Retries of a request the service missed.")
 ID_COL = typer.Option("id", "--id-column", help="The column of prediction ids.")
-SEGMENT = typer.Option(None, "--segment", help="key:value, repeatable.")
 TS_COL = typer.Option("ts", "--ts-column", help="The column of times (RFC 3339).")
+SEGMENT = typer.Option(None, "--segment", help="Only the predictions with this tag, key:value "
+                       "(repeatable).")
 
 
 def _fail(message: str, code: int = 1) -> typer.Exit:
@@ -164,9 +165,11 @@ class Sender:
     where: str  # "line" for CSV, "row" for Parquet
     totals: dict[str, int] = field(default_factory=dict)
     skipped: int = 0
+    noted: int = 0
 
     def _note(self, line: int, reason: str) -> None:
-        if self.skipped < SHOWN or not self.skip_bad:
+        self.noted += 1
+        if self.noted <= SHOWN:
             typer.echo(f"{self.where} {line}: {reason}", err=True)
 
     def _local(self, items: list[dict[str, Any]], lines: list[int]) -> dict[int, str]:
@@ -299,8 +302,8 @@ def _run(kind: str, path: Path, cols: Columns, model: str, url: str, token: str,
                 except BelatedError as exc:  # unreachable after every retry
                     raise _fail(f"{exc}\nbefore it: {sender.summary()}") from None
                 bar.advance(task, len(frame))
-    if sender.skipped > SHOWN:
-        typer.echo(f"... {sender.skipped - SHOWN} more bad rows skipped", err=True)
+    if sender.noted > SHOWN:
+        typer.echo(f"... and {sender.noted - SHOWN} more bad rows, skipped", err=True)
     typer.echo(f"{kind} from {path.name}: {offset - (1 if fmt == 'parquet' else 2)} rows; "
                f"{sender.summary()}")
 

@@ -85,6 +85,8 @@ def plain(value: Any) -> Any:
         return None
     if isinstance(value, np.generic):
         value = value.item()
+    if isinstance(value, pd.Timestamp):  # RFC 3339 stops at microseconds
+        value = value.floor("us").to_pydatetime()
     if isinstance(value, datetime | date):
         return rfc3339(value)
     if isinstance(value, float) and value != value:

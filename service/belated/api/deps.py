@@ -2,10 +2,9 @@
 
 from __future__ import annotations
 
+import json
 from collections.abc import Iterator
 from typing import Annotated, Any
-
-import json
 
 import orjson
 from fastapi import Depends, Request

@@ -98,6 +98,39 @@ def binary_arrays(
     return {"fbeta": fbeta, "mcc": mcc, "balanced_accuracy": balanced}
 
 
+def bootstrap_binary_many(
+    counts: Sequence[tuple[int, int, int, int]],
+    *,
+    beta: float,
+    confidence: float,
+    resamples: int = DEFAULT_RESAMPLES,
+    seed: int = 0,
+) -> list[dict[str, Interval]]:
+    """`bootstrap_binary` for many windows' (tp, fp, fn, tn): one stream per window.
+
+    Each window's generator is seeded by its own counts, so its interval does not depend
+    on the other windows; only the arithmetic and the sorting are shared.
+    """
+    if resamples == 0 or not counts:
+        return [dict.fromkeys(BOOTSTRAPPED_BINARY) for _ in counts]
+    draws = np.zeros((len(counts), resamples, 4), dtype=np.int64)
+    for i, cells in enumerate(counts):
+        n = sum(cells)
+        if n:
+            # An empty window keeps its zeros: every measure is then 0/0, i.e. undefined.
+            tp, fp, fn, tn = cells
+            rng = generator_for(cells, seed)
+            draws[i] = rng.multinomial(n, [tp / n, fp / n, fn / n, tn / n], size=resamples)
+    cells_first = np.moveaxis(draws, -1, 0).astype(np.float64)
+    arrays = binary_arrays(cells_first[0], cells_first[1], cells_first[2], cells_first[3], beta)
+    stacked = np.concatenate([arrays[name] for name in BOOTSTRAPPED_BINARY])
+    intervals = percentile_intervals(stacked, confidence)
+    w = len(counts)
+    return [
+        {name: intervals[j * w + i] for j, name in enumerate(BOOTSTRAPPED_BINARY)} for i in range(w)
+    ]
+
+
 def bootstrap_binary(
     tp: int,
     fp: int,
@@ -110,16 +143,9 @@ def bootstrap_binary(
     seed: int = 0,
 ) -> dict[str, Interval]:
     """Percentile intervals for fbeta, mcc and balanced_accuracy from resampled counts."""
-    n = tp + fp + fn + tn
-    if resamples == 0 or n == 0:
-        return dict.fromkeys(BOOTSTRAPPED_BINARY)
-    rng = generator_for((tp, fp, fn, tn), seed)
-    # One column per resample, one row per cell: the arithmetic below runs on plain rows.
-    cells = rng.multinomial(n, [tp / n, fp / n, fn / n, tn / n], size=resamples).T
-    draws = cells.astype(np.float64)
-    arrays = binary_arrays(draws[0], draws[1], draws[2], draws[3], beta)
-    stacked = np.stack([arrays[name] for name in BOOTSTRAPPED_BINARY])
-    return dict(zip(BOOTSTRAPPED_BINARY, percentile_intervals(stacked, confidence), strict=True))
+    return bootstrap_binary_many(
+        [(tp, fp, fn, tn)], beta=beta, confidence=confidence, resamples=resamples, seed=seed
+    )[0]
 
 
 def attach(value: Value, interval: Interval) -> Value:

@@ -52,14 +52,26 @@ def log_loss(logloss_sum: float, n_labelled: int) -> Value:
     return Value(float(logloss_sum) / n_labelled)
 
 
+def ece_arrays(
+    hist_pos: np.ndarray, ssum_pos: np.ndarray, hist_neg: np.ndarray, ssum_neg: np.ndarray
+) -> np.ndarray:
+    """ECE of many windows (rows of 100-bin arrays); NaN where nothing is labelled."""
+    shape = (*np.shape(hist_pos)[:-1], ECE_BINS, -1)
+    counts = np.reshape(np.add(hist_pos, hist_neg), shape).sum(axis=-1)
+    positives = np.reshape(hist_pos, shape).sum(axis=-1)
+    score_sums = np.reshape(np.add(ssum_pos, ssum_neg), shape).sum(axis=-1)
+    total = counts.sum(axis=-1)
+    # |sum p - positives| / N is n_j/N * |mean p - share|, and needs no division by n_j = 0.
+    gaps = np.abs(score_sums - positives).sum(axis=-1)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        return np.where(total == 0, np.nan, gaps / total)
+
+
 def ece(
     hist_pos: np.ndarray, ssum_pos: np.ndarray, hist_neg: np.ndarray, ssum_neg: np.ndarray
 ) -> Value:
     """Expected calibration error on 10 equal-width bins (see the module docstring)."""
-    total = int(hist_pos.sum()) + int(hist_neg.sum())
-    if total == 0:
+    value = float(ece_arrays(hist_pos, ssum_pos, hist_neg, ssum_neg))
+    if value != value:
         return Value.undefined(NOTHING_LABELLED)
-    positives = hist_pos.reshape(ECE_BINS, -1).sum(axis=1)
-    score_sums = (ssum_pos + ssum_neg).reshape(ECE_BINS, -1).sum(axis=1)
-    # |sum p - positives| / N is n_j/N * |mean p - share|, and needs no division by n_j = 0.
-    return Value(float(np.abs(score_sums - positives).sum() / total))
+    return Value(value)

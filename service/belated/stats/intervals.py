@@ -12,6 +12,7 @@ import math
 from numbers import Real
 from statistics import NormalDist
 
+import numpy as np
 from scipy.special import betaincinv
 
 INTERVAL_METHODS: tuple[str, ...] = ("wilson", "clopper-pearson", "jeffreys")
@@ -71,6 +72,39 @@ def jeffreys(successes: int, n: int, confidence: float) -> tuple[float, float]:
     return low, high
 
 
+def proportion_interval_arrays(
+    successes: np.ndarray, n: np.ndarray, *, method: str, confidence: float, z: float
+) -> tuple[np.ndarray, np.ndarray]:
+    """Elementwise proportion intervals of many proportions at once; NaN where n = 0.
+
+    The same formulas, in the same order of operations, as `wilson`, `clopper_pearson`
+    and `jeffreys`, so each element equals the scalar result.
+    """
+    x = np.asarray(successes, dtype=np.float64)
+    trials = np.asarray(n, dtype=np.float64)
+    empty = trials == 0
+    safe_n = np.where(empty, 1.0, trials)
+    if method == "wilson":
+        p = x / safe_n
+        z2 = z * z
+        denominator = 1.0 + z2 / safe_n
+        centre = (p + z2 / (2.0 * safe_n)) / denominator
+        half = z * np.sqrt(p * (1.0 - p) / safe_n + z2 / (4.0 * safe_n * safe_n)) / denominator
+        low, high = np.maximum(0.0, centre - half), np.minimum(1.0, centre + half)
+    else:
+        tail = (1.0 - confidence) / 2.0
+        if method == "clopper-pearson":
+            # Arguments nudged off 0 where the boundary rule below overrides the result.
+            low = betaincinv(np.maximum(x, 1.0), trials - x + 1.0, tail)
+            high = betaincinv(x + 1.0, np.maximum(trials - x, 1.0), 1.0 - tail)
+        else:
+            low = betaincinv(x + 0.5, trials - x + 0.5, tail)
+            high = betaincinv(x + 0.5, trials - x + 0.5, 1.0 - tail)
+    low = np.where(x == 0, 0.0, low)
+    high = np.where(x == trials, 1.0, high)
+    return np.where(empty, np.nan, low), np.where(empty, np.nan, high)
+
+
 def proportion_interval(
     successes: int, n: int, *, method: str = "wilson", confidence: float = 0.95
 ) -> tuple[float, float]:
@@ -100,6 +134,20 @@ def hanley_mcneil_se(auc: float, n_pos: int, n_neg: int) -> float:
     )
     # The variance is >= 0 in exact arithmetic; clamp the rounding at A = 0 or 1.
     return math.sqrt(max(variance, 0.0))
+
+
+def hanley_mcneil_arrays(
+    auc: np.ndarray, n_pos: np.ndarray, n_neg: np.ndarray, z: float
+) -> tuple[np.ndarray, np.ndarray]:
+    """`hanley_mcneil` elementwise, for many windows at once (n_pos, n_neg > 0)."""
+    q1 = auc / (2.0 - auc)
+    q2 = 2.0 * auc * auc / (1.0 + auc)
+    a2 = auc * auc
+    variance = (auc * (1.0 - auc) + (n_pos - 1) * (q1 - a2) + (n_neg - 1) * (q2 - a2)) / (
+        n_pos * n_neg
+    )
+    half = z * np.sqrt(np.maximum(variance, 0.0))
+    return np.maximum(0.0, auc - half), np.minimum(1.0, auc + half)
 
 
 def hanley_mcneil(auc: float, n_pos: int, n_neg: int, z: float) -> tuple[float, float]:

@@ -11,7 +11,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from belated.stats.intervals import hanley_mcneil
+from belated.stats.intervals import hanley_mcneil_arrays
 from belated.stats.measures import NO_ACTUAL_NEGATIVES, NO_ACTUAL_POSITIVES
 from belated.stats.values import Value
 
@@ -36,38 +36,51 @@ def _reason(n_pos: float, n_neg: float) -> str | None:
     return None
 
 
+def ranking_arrays(hist_pos: np.ndarray, hist_neg: np.ndarray) -> dict[str, np.ndarray]:
+    """AUC, average precision and class totals of many windows (rows of 100-bin histograms).
+
+    AUC counts a positive and a negative in the same bin as a tie (one half); average
+    precision is the sum over thresholds of the recall step times the precision there.
+    Both are NaN for a window without positives or without negatives.
+    """
+    pos = np.asarray(hist_pos, dtype=np.float64)
+    neg = np.asarray(hist_neg, dtype=np.float64)
+    cum_pos = np.cumsum(pos, axis=-1)
+    cum_neg = np.cumsum(neg, axis=-1)
+    n_pos = cum_pos[..., -1]
+    n_neg = cum_neg[..., -1]
+    # Counts at or above each bin edge, i.e. called positive at threshold k/100.
+    tp_from = n_pos[..., None] - cum_pos + pos
+    flagged_from = tp_from + (n_neg[..., None] - cum_neg + neg)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        # Negatives strictly below each bin, plus half of those sharing it (Mann-Whitney ties).
+        auc = (pos * (cum_neg - 0.5 * neg)).sum(axis=-1) / (n_pos * n_neg)
+        # Where a bin holds a positive, flagged_from >= tp_from > 0; elsewhere pos = 0.
+        precision_from = np.where(pos > 0, tp_from / flagged_from, 0.0)
+        ap = (pos * precision_from).sum(axis=-1) / n_pos
+    undefined = (n_pos == 0) | (n_neg == 0)
+    return {
+        "roc_auc": np.where(undefined, np.nan, auc),
+        "average_precision": np.where(undefined, np.nan, ap),
+        "n_pos": n_pos,
+        "n_neg": n_neg,
+    }
+
+
 def ranking_measures(
     hist_pos: np.ndarray, hist_neg: np.ndarray, *, z: float | None = None
 ) -> tuple[Value, Value]:
-    """(ROC AUC, average precision) from the histograms, sharing the cumulative sums.
-
-    AUC counts a positive and a negative in the same bin as a tie (one half). With `z` (a
-    normal quantile, see `intervals.z_value`) the AUC carries the Hanley and McNeil (1982)
-    interval. Average precision is the sum over thresholds of the recall step times the
-    precision there. Both are undefined when either class is absent.
-    """
-    pos = hist_pos.astype(np.float64)
-    neg = hist_neg.astype(np.float64)
-    cum_pos = np.cumsum(pos)
-    cum_neg = np.cumsum(neg)
-    n_pos = float(cum_pos[-1])
-    n_neg = float(cum_neg[-1])
-    reason = _reason(n_pos, n_neg)
+    """(ROC AUC, average precision) of one window; with `z`, AUC's Hanley-McNeil interval."""
+    arrays = ranking_arrays(np.asarray(hist_pos)[None, :], np.asarray(hist_neg)[None, :])
+    reason = _reason(float(arrays["n_pos"][0]), float(arrays["n_neg"][0]))
     if reason is not None:
         return Value.undefined(reason), Value.undefined(reason)
-    # Negatives strictly below each bin, plus half of those sharing it (Mann-Whitney ties).
-    auc = float(np.dot(pos, cum_neg - 0.5 * neg)) / (n_pos * n_neg)
-    # Counts at or above each bin edge, i.e. called positive at threshold k/100.
-    tp_from = n_pos - cum_pos + pos
-    flagged_from = tp_from + (n_neg - cum_neg + neg)
-    precision_from = np.divide(
-        tp_from, flagged_from, out=np.zeros_like(pos), where=flagged_from > 0
-    )
-    ap = float(np.dot(pos, precision_from)) / n_pos
+    auc = float(arrays["roc_auc"][0])
+    ap = Value(float(arrays["average_precision"][0]))
     if z is None:
-        return Value(auc), Value(ap)
-    low, high = hanley_mcneil(auc, int(n_pos), int(n_neg), z)
-    return Value(auc, low, high), Value(ap)
+        return Value(auc), ap
+    low, high = hanley_mcneil_arrays(arrays["roc_auc"], arrays["n_pos"], arrays["n_neg"], z)
+    return Value(auc, float(low[0]), float(high[0])), ap
 
 
 def roc_auc(hist_pos: np.ndarray, hist_neg: np.ndarray, *, z: float | None = None) -> Value:

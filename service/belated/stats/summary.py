@@ -1,35 +1,39 @@
-"""One window's measures, intervals, label-free estimates and coverage bounds, JSON-ready.
+"""Windows' measures, intervals, label-free estimates and coverage bounds, JSON-ready.
 
 This is what the API, the jobs, the dashboard and the CLI call. Every measure of the table
 in DESIGN.md is present, as {"value", "low", "high"} or, when undefined, with a "reason"
 and nulls. Intervals: the chosen proportion interval for proportions, a seeded bootstrap of
 the confusion counts for fbeta, mcc and balanced_accuracy, Hanley-McNeil for roc_auc, none
 for average_precision, brier, log_loss and ece.
+
+`summarise_many` does the arithmetic of many windows at once (one numpy pass per measure
+instead of one per window); `summarise` is the same for one window, and every window's
+answer is the same whichever of the two computed it, whatever the other windows are.
 """
 
 from __future__ import annotations
 
-from collections.abc import Iterable
+from collections.abc import Iterable, Sequence
 from typing import Any
+
+import numpy as np
 
 from belated.stats.bootstrap import (
     BOOTSTRAPPED_BINARY,
     DEFAULT_RESAMPLES,
     Interval,
-    attach,
-    bootstrap_binary,
+    bootstrap_binary_many,
     check_resamples,
 )
 from belated.stats.bounds import coverage_bounds
-from belated.stats.calibration import brier, ece, log_loss
+from belated.stats.calibration import ece_arrays
 from belated.stats.estimates import em_prior, expected_measures
 from belated.stats.fbeta import resolve_beta
 from belated.stats.intervals import (
     check_confidence,
     check_method,
-    clopper_pearson,
-    jeffreys,
-    wilson,
+    hanley_mcneil_arrays,
+    proportion_interval_arrays,
     z_value,
 )
 from belated.stats.measures import (
@@ -45,11 +49,31 @@ from belated.stats.measures import (
     mcc,
 )
 from belated.stats.multiclass import summarise_multiclass
-from belated.stats.ranking import ranking_measures
+from belated.stats.ranking import ranking_arrays
 from belated.stats.values import Value
 from belated.stats.window import WindowStats
 
-__all__ = ["BINARY_MEASURES", "check_measures", "summarise", "summarise_multiclass"]
+__all__ = [
+    "BINARY_MEASURES",
+    "check_measures",
+    "summarise",
+    "summarise_many",
+    "summarise_multiclass",
+]
+
+MeasureDict = dict[str, Any]
+
+# The measures that are proportions, and the reason each is undefined when its trials are 0.
+_PROPORTIONS: dict[str, str] = {
+    "precision": NO_PREDICTED_POSITIVES,
+    "recall": NO_ACTUAL_POSITIVES,
+    "accuracy": NOTHING_LABELLED,
+    "specificity": NO_ACTUAL_NEGATIVES,
+    "npv": NO_PREDICTED_NEGATIVES,
+    "positive_rate": NO_PREDICTIONS,
+    "prevalence": NOTHING_LABELLED,
+}
+_RANKED = ("roc_auc", "average_precision")
 
 
 def check_measures(measures: Iterable[str] | None) -> frozenset[str]:
@@ -65,19 +89,159 @@ def check_measures(measures: Iterable[str] | None) -> frozenset[str]:
     return wanted
 
 
-def _proportion(
-    successes: int, n: int, reason: str, method: str, confidence: float, z: float
-) -> dict[str, Any]:
-    """successes / n with its interval as a measure dict, or undefined when n = 0."""
+def _undefined(reason: str) -> MeasureDict:
+    return {"value": None, "low": None, "high": None, "reason": reason}
+
+
+def _proportion_columns(
+    counts: np.ndarray, method: str, confidence: float, z: float
+) -> dict[str, tuple[list[float], list[float], list[float], list[int]]]:
+    """Per proportion: values, lows, highs and trials of every window, as plain lists.
+
+    `counts` has one row per window: tp, fp, fn, tn, n_pred_pos, n_pred.
+    """
+    tp, fp, fn, tn, n_pred_pos, n_pred = counts.T
+    labelled = tp + fp + fn + tn
+    successes = np.stack([tp, tp, tp + tn, tn, tn, n_pred_pos, tp + fn])
+    trials = np.stack([tp + fp, tp + fn, labelled, tn + fp, tn + fn, n_pred, labelled])
+    low, high = proportion_interval_arrays(
+        successes, trials, method=method, confidence=confidence, z=z
+    )
+    # Integer counts below 2^53 convert exactly, so x / n here equals Python's x / n.
+    values = successes / np.where(trials == 0, 1, trials)
+    columns = zip(values.tolist(), low.tolist(), high.tolist(), trials.tolist(), strict=True)
+    return dict(zip(_PROPORTIONS, columns, strict=True))
+
+
+def _ranked_columns(stats: Sequence[WindowStats], z: float) -> dict[str, list[MeasureDict]]:
+    """roc_auc (with the Hanley-McNeil interval) and average_precision of every window."""
+    arrays = ranking_arrays(
+        np.stack([s.hist_pos for s in stats]), np.stack([s.hist_neg for s in stats])
+    )
+    low, high = hanley_mcneil_arrays(arrays["roc_auc"], arrays["n_pos"], arrays["n_neg"], z)
+    out: dict[str, list[MeasureDict]] = {"roc_auc": [], "average_precision": []}
+    rows = zip(
+        arrays["n_pos"].tolist(),
+        arrays["n_neg"].tolist(),
+        arrays["roc_auc"].tolist(),
+        low.tolist(),
+        high.tolist(),
+        arrays["average_precision"].tolist(),
+        strict=True,
+    )
+    for n_pos, n_neg, auc, auc_low, auc_high, ap in rows:
+        if n_pos == 0 or n_neg == 0:
+            missing = _undefined(NO_ACTUAL_POSITIVES if n_pos == 0 else NO_ACTUAL_NEGATIVES)
+            out["roc_auc"].append(missing)
+            out["average_precision"].append(dict(missing))
+        else:
+            out["roc_auc"].append({"value": auc, "low": auc_low, "high": auc_high})
+            out["average_precision"].append({"value": ap, "low": None, "high": None})
+    return out
+
+
+def _with_interval(value: Value, interval: Interval) -> MeasureDict:
+    if value.value is None:
+        return value.to_dict()
+    if interval is None:
+        return {"value": value.value, "low": None, "high": None}
+    return {"value": value.value, "low": interval[0], "high": interval[1]}
+
+
+def _mean_of_sum(total: float, n: int) -> MeasureDict:
     if n == 0:
-        return {"value": None, "low": None, "high": None, "reason": reason}
-    if method == "wilson":
-        low, high = wilson(successes, n, z)
-    elif method == "clopper-pearson":
-        low, high = clopper_pearson(successes, n, confidence)
-    else:
-        low, high = jeffreys(successes, n, confidence)
-    return {"value": successes / n, "low": low, "high": high}
+        return _undefined(NOTHING_LABELLED)
+    return {"value": float(total) / n, "low": None, "high": None}
+
+
+def summarise_many(
+    stats: Sequence[WindowStats],
+    *,
+    beta: float = 1.0,
+    interval: str = "wilson",
+    confidence: float = 0.95,
+    resamples: int = DEFAULT_RESAMPLES,
+    seed: int = 0,
+    measures: set[str] | None = None,
+    baseline_prior: float | None = None,
+) -> list[dict[str, Any]]:
+    """`summarise` of each window, computed together; the answers are the same."""
+    beta = resolve_beta(beta)
+    method = check_method(interval)
+    confidence = check_confidence(confidence)
+    z = z_value(confidence)
+    resamples = check_resamples(resamples)
+    wanted = check_measures(measures)
+    if seed < 0:
+        raise ValueError(f"seed must be a non-negative integer, got {seed}")
+    if not stats:
+        return []
+    # Plain ints whatever the store handed over (numpy scalars would leak into the JSON).
+    rows = [
+        (int(s.tp), int(s.fp), int(s.fn), int(s.tn), int(s.n_pred_pos), int(s.n_pred))
+        for s in stats
+    ]
+    proportions = _proportion_columns(np.array(rows, dtype=np.int64), method, confidence, z)
+    boot: list[dict[str, Interval]] = [{} for _ in rows]
+    if wanted.intersection(BOOTSTRAPPED_BINARY):
+        boot = bootstrap_binary_many(
+            [r[:4] for r in rows], beta=beta, confidence=confidence, resamples=resamples, seed=seed
+        )
+    ranked = _ranked_columns(stats, z) if wanted.intersection(_RANKED) else {}
+    eces = (
+        ece_arrays(
+            np.stack([s.hist_pos for s in stats]),
+            np.stack([s.ssum_pos for s in stats]),
+            np.stack([s.hist_neg for s in stats]),
+            np.stack([s.ssum_neg for s in stats]),
+        ).tolist()
+        if "ece" in wanted
+        else []
+    )
+    answers = []
+    for i, (s, (tp, fp, fn, tn, n_pred_pos, n_pred)) in enumerate(zip(stats, rows, strict=True)):
+        labelled = tp + fp + fn + tn
+        out: dict[str, MeasureDict] = {}
+        for name in BINARY_MEASURES:
+            if name not in wanted:
+                continue
+            if name in _PROPORTIONS:
+                values, lows, highs, trials = proportions[name]
+                out[name] = (
+                    _undefined(_PROPORTIONS[name])
+                    if trials[i] == 0
+                    else {"value": values[i], "low": lows[i], "high": highs[i]}
+                )
+            elif name == "fbeta":
+                out[name] = _with_interval(fbeta_value(tp, fp, fn, beta), boot[i].get(name))
+            elif name == "mcc":
+                out[name] = _with_interval(mcc(tp, fp, fn, tn), boot[i].get(name))
+            elif name == "balanced_accuracy":
+                value = balanced_accuracy(tp, fp, fn, tn)
+                out[name] = _with_interval(value, boot[i].get(name))
+            elif name in _RANKED:
+                out[name] = ranked[name][i]
+            elif name == "brier":
+                out[name] = _mean_of_sum(s.brier_sum, labelled)
+            elif name == "log_loss":
+                out[name] = _mean_of_sum(s.logloss_sum, labelled)
+            else:
+                out[name] = (
+                    _undefined(NOTHING_LABELLED)
+                    if eces[i] != eces[i]
+                    else {"value": eces[i], "low": None, "high": None}
+                )
+        answers.append(
+            {
+                "confusion": {"tp": tp, "fp": fp, "fn": fn, "tn": tn},
+                "measures": out,
+                "estimates": _estimates(s, beta, baseline_prior),
+                "bounds": coverage_bounds(
+                    tp, fp, fn, tn, n_pred_pos=n_pred_pos, n_pred=n_pred, beta=beta
+                ),
+            }
+        )
+    return answers
 
 
 def summarise(
@@ -94,68 +258,19 @@ def summarise(
     """Confusion counts, measures with intervals, estimates and bounds of one binary window.
 
     `baseline_prior` (the training or baseline share of positives), when given, adds the
-    EM re-estimated prior of the window as estimates["prior_em"].
+    EM re-estimated prior of the window as estimates["prior_em"]. The bootstrap is seeded
+    by `seed` and the confusion counts, so the same data gives the same intervals.
     """
-    beta = resolve_beta(beta)
-    method = check_method(interval)
-    confidence = check_confidence(confidence)
-    z = z_value(confidence)
-    resamples = check_resamples(resamples)
-    wanted = check_measures(measures)
-    # Plain ints whatever the store handed over (numpy scalars would leak into the JSON).
-    tp, fp, fn, tn = int(stats.tp), int(stats.fp), int(stats.fn), int(stats.tn)
-    n_pred, n_pred_pos = int(stats.n_pred), int(stats.n_pred_pos)
-    n_labelled = tp + fp + fn + tn
-    # (successes, trials, reason when trials = 0) of the measures that are proportions;
-    # the same definitions as belated.stats.measures, spelled out for speed.
-    proportions = {
-        "precision": (tp, tp + fp, NO_PREDICTED_POSITIVES),
-        "recall": (tp, tp + fn, NO_ACTUAL_POSITIVES),
-        "accuracy": (tp + tn, n_labelled, NOTHING_LABELLED),
-        "specificity": (tn, tn + fp, NO_ACTUAL_NEGATIVES),
-        "npv": (tn, tn + fn, NO_PREDICTED_NEGATIVES),
-        "positive_rate": (n_pred_pos, n_pred, NO_PREDICTIONS),
-        "prevalence": (tp + fn, n_labelled, NOTHING_LABELLED),
-    }
-    boot: dict[str, Interval] = {}
-    if wanted.intersection(BOOTSTRAPPED_BINARY):
-        boot = bootstrap_binary(
-            tp, fp, fn, tn, beta=beta, confidence=confidence, resamples=resamples, seed=seed
-        )
-    ranked: tuple[Value, Value] | None = None
-    if "roc_auc" in wanted or "average_precision" in wanted:
-        ranked = ranking_measures(stats.hist_pos, stats.hist_neg, z=z)
-    out: dict[str, dict[str, Any]] = {}
-    for name in BINARY_MEASURES:
-        if name not in wanted:
-            continue
-        spec = proportions.get(name)
-        if spec is not None:
-            out[name] = _proportion(spec[0], spec[1], spec[2], method, confidence, z)
-            continue
-        if name == "fbeta":
-            value = attach(fbeta_value(tp, fp, fn, beta), boot.get(name))
-        elif name == "mcc":
-            value = attach(mcc(tp, fp, fn, tn), boot.get(name))
-        elif name == "balanced_accuracy":
-            value = attach(balanced_accuracy(tp, fp, fn, tn), boot.get(name))
-        elif name == "roc_auc" and ranked is not None:
-            value = ranked[0]
-        elif name == "average_precision" and ranked is not None:
-            value = ranked[1]
-        elif name == "brier":
-            value = brier(stats.brier_sum, n_labelled)
-        elif name == "log_loss":
-            value = log_loss(stats.logloss_sum, n_labelled)
-        else:
-            value = ece(stats.hist_pos, stats.ssum_pos, stats.hist_neg, stats.ssum_neg)
-        out[name] = value.to_dict()
-    return {
-        "confusion": {"tp": tp, "fp": fp, "fn": fn, "tn": tn},
-        "measures": out,
-        "estimates": _estimates(stats, beta, baseline_prior),
-        "bounds": coverage_bounds(tp, fp, fn, tn, n_pred_pos=n_pred_pos, n_pred=n_pred, beta=beta),
-    }
+    return summarise_many(
+        [stats],
+        beta=beta,
+        interval=interval,
+        confidence=confidence,
+        resamples=resamples,
+        seed=seed,
+        measures=measures,
+        baseline_prior=baseline_prior,
+    )[0]
 
 
 def _estimates(

@@ -172,5 +172,6 @@ def join_pending(*, session: Session, model_id: int, ids: list[str] | None) -> s
         (_update_pg if bulk.is_pg(session) else _update_sqlite)(session, updates)
     done = [r[0] for r in rows]
     for start in range(0, len(done), 5000):
-        session.execute(delete(PendingLabel).where(PendingLabel.row_id.in_(done[start:start + 5000])))
+        chunk = done[start:start + 5000]
+        session.execute(delete(PendingLabel).where(PendingLabel.row_id.in_(chunk)))
     return {r[5] for r in rows}

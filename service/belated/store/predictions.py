@@ -1,4 +1,4 @@
-"""Store a validated predictions batch: all or nothing, duplicates recognised, pending labels joined."""
+"""Store a validated predictions batch: all or nothing, duplicates known, pending labels joined."""
 
 from __future__ import annotations
 

@@ -18,6 +18,7 @@ from sqlalchemy.orm import Mapped, mapped_column
 
 from belated.store.tables import Base, Json, UtcDateTime
 
+
 class Rollup(Base):
     """Sufficient statistics of one (model, level, start, segment)."""
 
