@@ -203,7 +203,7 @@ def decide(rule: dict[str, Any], series: list[WindowInput], first: int, *, beta:
             continue
         if kind == "floor":
             conf = 1 - 2 * float(rule["alpha"]) if rule["mode"] == "confident" else 0.95
-            value, low, high = measure_value(measure, w.stats, beta, conf)
+            value, low, high = measure_value(str(measure), w.stats, beta, conf)
             probe = high if rule["mode"] == "confident" else value
             cond = probe is not None and probe < float(rule["threshold"])
             out.append(Decision(w.start, w.end, cond, None, value, low, high,

@@ -34,7 +34,7 @@ def check(url: str, *, allow_private: bool, own: tuple[str, int] | None,
         infos = socket.getaddrinfo(parts.hostname, port, type=socket.SOCK_STREAM)
     except socket.gaierror as exc:
         raise UnsafeUrl(f"the host {parts.hostname!r} does not resolve") from exc
-    addresses = sorted({info[4][0] for info in infos})
+    addresses = sorted({str(info[4][0]) for info in infos})
     for text in addresses:
         ip = ipaddress.ip_address(text.split("%")[0])
         if isinstance(ip, ipaddress.IPv6Address) and ip.ipv4_mapped:

@@ -58,7 +58,8 @@ def install(app: FastAPI) -> None:
 
     @app.exception_handler(HTTPException)
     async def _http(_: Request, exc: HTTPException) -> Response:
-        return problem_response(exc.status_code, str(exc.detail), headers=exc.headers)
+        headers = dict(exc.headers) if exc.headers else None
+        return problem_response(exc.status_code, str(exc.detail), headers=headers)
 
     @app.exception_handler(OperationalError)
     async def _store_down(_: Request, exc: OperationalError) -> Response:

@@ -45,16 +45,16 @@ def delays(session: Session, model: ModelRow, *, start: datetime, end: datetime,
     for hour, acc in sorted(rows.items()):
         if acc.delays is not None:
             delay_hist = acc.delays.copy() if delay_hist is None else delay_hist + acc.delays
-        n = acc.scalar("n_pred")
+        n = int(acc.scalar("n_pred"))
         # implied negatives are not label arrivals: they stay censored at their age
-        unlabelled = n - (acc.scalar("n_labelled") - acc.scalar("n_implied"))
+        unlabelled = n - int(acc.scalar("n_labelled") - acc.scalar("n_implied"))
         age_h = max(0.0, now_h - (hour + 0.5))
         if unlabelled > 0:
             ages.append(np.full(unlabelled, age_h))
         day = int(age_h // 24)
         agg = by_age.setdefault(day, [0, 0])
         agg[0] += n
-        agg[1] += acc.scalar("n_labelled")
+        agg[1] += int(acc.scalar("n_labelled"))
     if delay_hist is None:
         delay_hist = unpack_delays(None)
     censored = np.concatenate(ages) if ages else np.zeros(0)

@@ -17,6 +17,7 @@ from belated.stats.multiclass import summarise_multiclass
 from belated.stats.summary import summarise
 from belated.stats.window import WindowStats
 from belated.store.accumulate import Acc
+from belated.store.rollup_sql import SCALARS
 from belated.store.packing import N_BINS
 from belated.store.tables import ModelRow
 from belated.timeutil import iso
@@ -38,9 +39,7 @@ class Options:
 
 def to_stats(acc: Acc) -> WindowStats:
     """The stats-package view of an accumulator."""
-    c = {n: acc.scalar(n) for n in ("n_pred", "n_labelled", "n_implied", "n_pred_pos",
-                                    "tp", "fp", "fn", "tn", "brier_sum", "logloss_sum",
-                                    "exp_tp", "exp_fp", "exp_fn", "exp_tn")}
+    c: dict[str, Any] = {n: acc.scalar(n) for n in SCALARS}
     delays = acc.delays if acc.delays is not None else WindowStats.empty().delay_hist
     return WindowStats(
         **c, hist_all=acc.hist.sum(axis=0), ssum_all=acc.hsum.sum(axis=0),

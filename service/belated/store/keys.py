@@ -89,4 +89,4 @@ def revoke(*, session: Session, project_id: int, token_id: str) -> bool:
         .where(Token.id == token_id, Token.project_id == project_id, Token.revoked_at.is_(None))
         .values(revoked_at=now())
     )
-    return bool(result.rowcount)
+    return bool(getattr(result, "rowcount", 0))

@@ -6,7 +6,7 @@ from dataclasses import dataclass
 from datetime import datetime
 from typing import Any
 
-from sqlalchemy import bindparam, delete, select, text, update
+from sqlalchemy import bindparam, delete, insert, select, text, update
 from sqlalchemy.dialects import postgresql, sqlite
 from sqlalchemy.orm import Session
 
@@ -92,7 +92,7 @@ def ingest(*, session: Session, model_id: int, items: list[LabelIn]) -> dict[str
     if updates:
         (_update_pg if bulk.is_pg(session) else _update_sqlite)(session, list(updates.values()))
     if history:
-        session.execute(Label.__table__.insert(), history)
+        session.execute(insert(Label), history)
     if pend:
         _upsert_pending(session, model_id, list(pend.values()), received)
     dirty.mark(session=session, model_id=model_id, hours=hours)
@@ -107,7 +107,7 @@ def _history(model_id: int, label: LabelIn, change: str, received: datetime) -> 
 def _update_sqlite(session: Session, rows: list[dict[str, Any]]) -> None:
     table = Prediction.__table__
     stmt = (
-        update(table)
+        update(table)  # type: ignore[arg-type]
         .where(table.c.row_id == bindparam("b_row_id"))
         .values(actual=bindparam("b_actual"), label_ts=bindparam("b_label_ts"),
                 delay_h=bindparam("b_delay_h"))
@@ -157,7 +157,7 @@ def join_pending(*, session: Session, model_id: int, ids: list[str] | None) -> s
         .where(PendingLabel.model_id == model_id)
     )
     conds = [None] if ids is None else list(bulk.id_filters(session, PendingLabel.pid, ids))
-    rows = []
+    rows: list[Any] = []
     for cond in conds:
         q = query if cond is None else query.where(cond)
         rows.extend(session.execute(q).all())

@@ -5,7 +5,7 @@ from __future__ import annotations
 from datetime import datetime
 from typing import Any
 
-from sqlalchemy import select, text
+from sqlalchemy import insert, select, text
 from sqlalchemy.orm import Session
 
 from belated.clock import now
@@ -94,7 +94,7 @@ def _insert_sqlite(
     session: Session, model_id: int, new: list[PredictionIn], received: datetime
 ) -> set[str]:
     # SQLite has one writer (BEGIN IMMEDIATE), so the lookup above is authoritative.
-    session.execute(Prediction.__table__.insert(), [_row(model_id, p, received) for p in new])
+    session.execute(insert(Prediction), [_row(model_id, p, received) for p in new])
     return {p.pid for p in new}
 
 

@@ -8,7 +8,7 @@ from sqlalchemy.orm import Session
 from belated.store import rollup_tables as rt
 from belated.store import tables as t
 
-_TABLES = [
+_TABLES: list[type] = [
     t.Prediction, t.Label, t.PendingLabel, t.DirtyBucket, t.ThresholdChange,
     rt.Rollup, rt.SegmentValue, rt.SegmentKey,
 ]
@@ -17,4 +17,4 @@ _TABLES = [
 def model_data(*, session: Session, model_id: int) -> None:
     """Remove every row that belongs to the model (the model row itself stays)."""
     for table in _TABLES:
-        session.execute(delete(table).where(table.model_id == model_id))
+        session.execute(delete(table).where(table.model_id == model_id))  # type: ignore[attr-defined]

@@ -27,7 +27,7 @@ def tag_expr(key: str) -> ColumnElement[str]:
 
 def admitted(*, session: Session, model_id: int) -> dict[str, list[str]]:
     """Admitted keys, each with its admitted values."""
-    keys = {k: [] for k in session.scalars(
+    keys: dict[str, list[str]] = {k: [] for k in session.scalars(
         select(SegmentKey.key).where(SegmentKey.model_id == model_id).order_by(SegmentKey.key))}
     for key, value in session.execute(
         select(SegmentValue.key, SegmentValue.value).where(SegmentValue.model_id == model_id)
