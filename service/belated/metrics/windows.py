@@ -17,8 +17,8 @@ from belated.stats.multiclass import summarise_multiclass
 from belated.stats.summary import summarise
 from belated.stats.window import WindowStats
 from belated.store.accumulate import Acc
-from belated.store.rollup_sql import SCALARS
 from belated.store.packing import N_BINS
+from belated.store.rollup_sql import SCALARS
 from belated.store.tables import ModelRow
 from belated.timeutil import iso
 

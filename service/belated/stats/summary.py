@@ -89,6 +89,11 @@ def check_measures(measures: Iterable[str] | None) -> frozenset[str]:
     return wanted
 
 
+def _stacked(arrays: list[np.ndarray]) -> np.ndarray:
+    """Rows of a 2-D array; a view for a single window (np.stack copies, and costs more)."""
+    return arrays[0][None, :] if len(arrays) == 1 else np.stack(arrays)
+
+
 def _undefined(reason: str) -> MeasureDict:
     return {"value": None, "low": None, "high": None, "reason": reason}
 
@@ -116,7 +121,7 @@ def _proportion_columns(
 def _ranked_columns(stats: Sequence[WindowStats], z: float) -> dict[str, list[MeasureDict]]:
     """roc_auc (with the Hanley-McNeil interval) and average_precision of every window."""
     arrays = ranking_arrays(
-        np.stack([s.hist_pos for s in stats]), np.stack([s.hist_neg for s in stats])
+        _stacked([s.hist_pos for s in stats]), _stacked([s.hist_neg for s in stats])
     )
     low, high = hanley_mcneil_arrays(arrays["roc_auc"], arrays["n_pos"], arrays["n_neg"], z)
     out: dict[str, list[MeasureDict]] = {"roc_auc": [], "average_precision": []}
@@ -190,10 +195,10 @@ def summarise_many(
     ranked = _ranked_columns(stats, z) if wanted.intersection(_RANKED) else {}
     eces = (
         ece_arrays(
-            np.stack([s.hist_pos for s in stats]),
-            np.stack([s.ssum_pos for s in stats]),
-            np.stack([s.hist_neg for s in stats]),
-            np.stack([s.ssum_neg for s in stats]),
+            _stacked([s.hist_pos for s in stats]),
+            _stacked([s.ssum_pos for s in stats]),
+            _stacked([s.hist_neg for s in stats]),
+            _stacked([s.ssum_neg for s in stats]),
         ).tolist()
         if "ece" in wanted
         else []
