@@ -13,8 +13,9 @@ from dataclasses import dataclass
 from datetime import UTC, datetime, timedelta
 from typing import Any
 
-from belated.timeutil import from_db
 from sqlalchemy import Engine, text
+
+from belated.timeutil import from_db
 
 # Tables that hold a model's data, each with a model_id column (asserted counts read these).
 MODEL_TABLES = ("predictions", "labels", "pending_labels", "dirty_buckets", "threshold_changes")

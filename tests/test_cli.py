@@ -11,14 +11,14 @@ from pathlib import Path
 
 import httpx
 import pytest
+from fastapi.testclient import TestClient
+
 from belated.app import create_app
 from belated.config import Settings
 from belated.store import keys
 from belated.store.db import make_engine, make_sessionmaker, transaction
 from belated.store.keys import hash_token
 from belated.store.migrate import upgrade
-from fastapi.testclient import TestClient
-
 from tests.builders import model_body, predictions
 from tests.conftest import REPO, free_port
 

@@ -141,6 +141,15 @@ def keys_create(
     typer.echo(secret)
 
 
+def _register_data_commands() -> None:
+    from belated.cli_data import register
+
+    register(app)
+
+
+_register_data_commands()
+
+
 def main() -> None:
     """Entry point for `python -m belated`."""
     app(sys.argv[1:])

@@ -5,14 +5,13 @@ from __future__ import annotations
 from datetime import timedelta
 from typing import Any
 
+import numpy as np
 from sqlalchemy import text
 
 from belated.jobs import JobRunner
 from tests.alerts.receiver import Receiver
 from tests.alerts.test_alerts_e2e import DROP_RULE, START, _feed, _model
 from tests.conftest import Tenant
-
-import numpy as np
 
 
 def _ticks(runner: JobRunner, frozen: Any, n: int, step_seconds: float = 5.0) -> None:

@@ -10,11 +10,11 @@ from typing import Any
 
 import httpx
 import pytest
-from belated.app import create_app
-from belated.config import Settings
 from fastapi.testclient import TestClient
 from sqlalchemy import Engine
 
+from belated.app import create_app
+from belated.config import Settings
 from tests.builders import (
     Model,
     create_model,

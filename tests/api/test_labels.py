@@ -6,9 +6,9 @@ from datetime import datetime, timedelta
 from typing import Any
 
 import pytest
-from belated.timeutil import from_db
 from sqlalchemy import Engine
 
+from belated.timeutil import from_db
 from tests.builders import (
     Model,
     base_time,

@@ -10,10 +10,10 @@ from datetime import datetime, timedelta
 from typing import Any
 
 import httpx
-from belated.app import create_app
-from belated.config import Settings
 from sqlalchemy import Engine
 
+from belated.app import create_app
+from belated.config import Settings
 from tests.builders import (
     base_time,
     count,

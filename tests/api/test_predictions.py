@@ -8,9 +8,9 @@ from datetime import UTC, datetime, timedelta, timezone
 from typing import Any
 
 import pytest
-from belated.timeutil import from_db
 from sqlalchemy import Engine
 
+from belated.timeutil import from_db
 from tests.builders import (
     Model,
     base_time,

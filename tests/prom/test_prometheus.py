@@ -27,7 +27,8 @@ def _samples(text: str) -> dict[tuple[str, tuple[tuple[str, str], ...]], float]:
 def fed(tenant: Tenant, engine: Any, settings: Any) -> Any:
     clock.set(datetime(2026, 11, 12, 12, tzinfo=UTC))
     c = tenant.client
-    assert c.post("/v1/models", json={"name": "returns-v2", "label_delay_days": 2}).status_code == 201
+    made = c.post("/v1/models", json={"name": "returns-v2", "label_delay_days": 2})
+    assert made.status_code == 201
     rng = np.random.default_rng(5)
     for d in range(10):
         preds, labels = day_rows(rng, datetime(2026, 11, 1, tzinfo=UTC) + timedelta(days=d),

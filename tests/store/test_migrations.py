@@ -9,16 +9,16 @@ from collections.abc import Iterator
 from pathlib import Path
 from typing import Any
 
-import belated
-import belated.store.rollup_tables  # noqa: F401  (registers the rollup tables)
 import pytest
 from alembic.autogenerate import compare_metadata
 from alembic.migration import MigrationContext
+from sqlalchemy import MetaData, inspect
+
+import belated
+import belated.store.rollup_tables  # noqa: F401  (registers the rollup tables)
 from belated.store.db import make_engine
 from belated.store.migrate import downgrade, upgrade
 from belated.store.tables import Base
-from sqlalchemy import MetaData, inspect
-
 from tests.conftest import STORES, create_pg_database, drop_pg_database, pg_url
 
 

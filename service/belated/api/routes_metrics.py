@@ -28,9 +28,9 @@ def get_metrics(
     rng = params.parse_range(granularity, start, end, now())
     b = params.parse_beta(beta, precision_weight)
     params.check_interval(interval, confidence, resamples)
-    wanted = params.parse_measures(measures)
     filters = params.parse_segments(segment)
     row = models.get(session=session, project_id=who.project_id, name=model)
+    wanted = params.parse_measures(measures, row.kind)
     opts = Options(beta=b, interval=interval, confidence=confidence, resamples=resamples,
                    measures=wanted, rolling=rolling)
     windows = build(session, row, rng, opts, filters, now(),

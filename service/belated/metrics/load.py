@@ -21,7 +21,9 @@ def epoch_hour(dt: datetime) -> int:
 
 
 def ensure_fresh(session: Session, model: ModelRow, lo: int, hi: int, max_values: int) -> None:
-    """Read-your-writes: refresh the model's dirty buckets in [lo, hi) before reading."""
+    """Read-your-writes: join raced pending labels, mark hours whose predictions crossed
+    `negative_after_days` by now, and refresh the model's dirty buckets in [lo, hi)."""
+    refresh.sweep_model(session, model)
     while refresh.refresh_batch(session, max_values=max_values, model_id=model.id, lo=lo,
                                 hi=hi, wait=True):
         pass
@@ -36,7 +38,7 @@ def _rollup_segment(session: Session, model: ModelRow,
         return None
     key, value = filters[0]
     admitted = segments.admitted(session=session, model_id=model.id)
-    if key in admitted and value in admitted[key] and value != segments.OTHER:
+    if key in admitted and (value in admitted[key] or value == segments.OTHER):
         return key, value
     return None
 

@@ -47,11 +47,8 @@ def parse_range(granularity: str, start: str | None, end: str | None, now: datet
     if granularity not in GRANULARITIES:
         raise _bad("granularity", f"must be one of {', '.join(GRANULARITIES)}")
     step = window_step(granularity)
-    try:
-        end_dt = floor_window(parse_ts(end), granularity) if end else None
-        start_dt = floor_window(parse_ts(start), granularity) if start else None
-    except (ValueError, TypeError, OverflowError):
-        raise _bad("start" if start else "end", "not an RFC 3339 time") from None
+    end_dt = _aligned("end", end, granularity)
+    start_dt = _aligned("start", start, granularity)
     if end_dt is None:
         end_dt = floor_window(now, granularity) + step
         if start_dt is not None and start_dt >= end_dt:
@@ -63,6 +60,15 @@ def parse_range(granularity: str, start: str | None, end: str | None, now: datet
     if (end_dt - start_dt) / step > MAX_WINDOWS:
         raise _bad("end", f"the range covers more than {MAX_WINDOWS} windows")
     return Range(granularity, start_dt, end_dt)
+
+
+def _aligned(field: str, value: str | None, granularity: str) -> datetime | None:
+    if not value:
+        return None
+    try:
+        return floor_window(parse_ts(value), granularity)
+    except (ValueError, TypeError, OverflowError):
+        raise _bad(field, "not an RFC 3339 time") from None
 
 
 def parse_beta(beta: float | None, precision_weight: float | None) -> float:
@@ -87,12 +93,24 @@ def parse_segments(values: list[str] | None) -> tuple[tuple[str, str], ...]:
     return tuple(out)
 
 
-def parse_measures(text: str | None) -> frozenset[str] | None:
-    """A comma list of measure names, or None for all."""
+MULTICLASS_MEASURES = ("accuracy",) + tuple(
+    f"{m}_{avg}" for m in ("precision", "recall", "fbeta") for avg in ("macro", "micro",
+                                                                      "weighted"))
+
+
+def parse_measures(text: str | None, kind: str = "binary") -> frozenset[str] | None:
+    """A comma list of measure names of the model's kind, or None for all."""
     if not text:
         return None
+    names = [m.strip() for m in text.split(",") if m.strip()]
+    if kind == "multiclass":
+        unknown = sorted(set(names) - set(MULTICLASS_MEASURES))
+        if unknown:
+            raise _bad("measures", f"unknown measures for a multiclass model: "
+                       f"{', '.join(unknown)}; choose from {', '.join(MULTICLASS_MEASURES)}")
+        return frozenset(names)
     try:
-        return check_measures([m.strip() for m in text.split(",") if m.strip()])
+        return check_measures(names)
     except ValueError as exc:
         raise _bad("measures", str(exc)) from None
 

@@ -149,4 +149,6 @@ def _window(model: ModelRow, acc: Acc, start: datetime, end: datetime, now: date
     window.update(summarise_multiclass(matrix, classes, beta=opts.beta, interval=opts.interval,
                                        confidence=opts.confidence, resamples=opts.resamples,
                                        seed=seed))
+    if opts.measures:
+        window["measures"] = {k: v for k, v in window["measures"].items() if k in opts.measures}
     return window

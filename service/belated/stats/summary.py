@@ -13,6 +13,7 @@ answer is the same whichever of the two computed it, whatever the other windows 
 
 from __future__ import annotations
 
+import math
 from collections.abc import Iterable, Sequence
 from typing import Any
 
@@ -27,29 +28,30 @@ from belated.stats.bootstrap import (
 )
 from belated.stats.bounds import coverage_bounds
 from belated.stats.calibration import ece_arrays
+from belated.stats.columns import (
+    PROPORTIONS,
+    RANKED,
+    MeasureDict,
+    proportion_columns,
+    ranked_columns,
+    stacked,
+    undefined,
+)
 from belated.stats.estimates import em_prior, expected_measures
 from belated.stats.fbeta import resolve_beta
 from belated.stats.intervals import (
     check_confidence,
     check_method,
-    hanley_mcneil_arrays,
-    proportion_interval_arrays,
     z_value,
 )
 from belated.stats.measures import (
     BINARY_MEASURES,
-    NO_ACTUAL_NEGATIVES,
-    NO_ACTUAL_POSITIVES,
-    NO_PREDICTED_NEGATIVES,
-    NO_PREDICTED_POSITIVES,
-    NO_PREDICTIONS,
     NOTHING_LABELLED,
     balanced_accuracy,
     fbeta_value,
     mcc,
 )
 from belated.stats.multiclass import summarise_multiclass
-from belated.stats.ranking import ranking_arrays
 from belated.stats.values import Value
 from belated.stats.window import WindowStats
 
@@ -60,20 +62,6 @@ __all__ = [
     "summarise_many",
     "summarise_multiclass",
 ]
-
-MeasureDict = dict[str, Any]
-
-# The measures that are proportions, and the reason each is undefined when its trials are 0.
-_PROPORTIONS: dict[str, str] = {
-    "precision": NO_PREDICTED_POSITIVES,
-    "recall": NO_ACTUAL_POSITIVES,
-    "accuracy": NOTHING_LABELLED,
-    "specificity": NO_ACTUAL_NEGATIVES,
-    "npv": NO_PREDICTED_NEGATIVES,
-    "positive_rate": NO_PREDICTIONS,
-    "prevalence": NOTHING_LABELLED,
-}
-_RANKED = ("roc_auc", "average_precision")
 
 
 def check_measures(measures: Iterable[str] | None) -> frozenset[str]:
@@ -89,62 +77,6 @@ def check_measures(measures: Iterable[str] | None) -> frozenset[str]:
     return wanted
 
 
-def _stacked(arrays: list[np.ndarray]) -> np.ndarray:
-    """Rows of a 2-D array; a view for a single window (np.stack copies, and costs more)."""
-    return arrays[0][None, :] if len(arrays) == 1 else np.stack(arrays)
-
-
-def _undefined(reason: str) -> MeasureDict:
-    return {"value": None, "low": None, "high": None, "reason": reason}
-
-
-def _proportion_columns(
-    counts: np.ndarray, method: str, confidence: float, z: float
-) -> dict[str, tuple[list[float], list[float], list[float], list[int]]]:
-    """Per proportion: values, lows, highs and trials of every window, as plain lists.
-
-    `counts` has one row per window: tp, fp, fn, tn, n_pred_pos, n_pred.
-    """
-    tp, fp, fn, tn, n_pred_pos, n_pred = counts.T
-    labelled = tp + fp + fn + tn
-    successes = np.stack([tp, tp, tp + tn, tn, tn, n_pred_pos, tp + fn])
-    trials = np.stack([tp + fp, tp + fn, labelled, tn + fp, tn + fn, n_pred, labelled])
-    low, high = proportion_interval_arrays(
-        successes, trials, method=method, confidence=confidence, z=z
-    )
-    # Integer counts below 2^53 convert exactly, so x / n here equals Python's x / n.
-    values = successes / np.where(trials == 0, 1, trials)
-    columns = zip(values.tolist(), low.tolist(), high.tolist(), trials.tolist(), strict=True)
-    return dict(zip(_PROPORTIONS, columns, strict=True))
-
-
-def _ranked_columns(stats: Sequence[WindowStats], z: float) -> dict[str, list[MeasureDict]]:
-    """roc_auc (with the Hanley-McNeil interval) and average_precision of every window."""
-    arrays = ranking_arrays(
-        _stacked([s.hist_pos for s in stats]), _stacked([s.hist_neg for s in stats])
-    )
-    low, high = hanley_mcneil_arrays(arrays["roc_auc"], arrays["n_pos"], arrays["n_neg"], z)
-    out: dict[str, list[MeasureDict]] = {"roc_auc": [], "average_precision": []}
-    rows = zip(
-        arrays["n_pos"].tolist(),
-        arrays["n_neg"].tolist(),
-        arrays["roc_auc"].tolist(),
-        low.tolist(),
-        high.tolist(),
-        arrays["average_precision"].tolist(),
-        strict=True,
-    )
-    for n_pos, n_neg, auc, auc_low, auc_high, ap in rows:
-        if n_pos == 0 or n_neg == 0:
-            missing = _undefined(NO_ACTUAL_POSITIVES if n_pos == 0 else NO_ACTUAL_NEGATIVES)
-            out["roc_auc"].append(missing)
-            out["average_precision"].append(dict(missing))
-        else:
-            out["roc_auc"].append({"value": auc, "low": auc_low, "high": auc_high})
-            out["average_precision"].append({"value": ap, "low": None, "high": None})
-    return out
-
-
 def _with_interval(value: Value, interval: Interval) -> MeasureDict:
     if value.value is None:
         return value.to_dict()
@@ -155,7 +87,7 @@ def _with_interval(value: Value, interval: Interval) -> MeasureDict:
 
 def _mean_of_sum(total: float, n: int) -> MeasureDict:
     if n == 0:
-        return _undefined(NOTHING_LABELLED)
+        return undefined(NOTHING_LABELLED)
     return {"value": float(total) / n, "low": None, "high": None}
 
 
@@ -186,19 +118,19 @@ def summarise_many(
         (int(s.tp), int(s.fp), int(s.fn), int(s.tn), int(s.n_pred_pos), int(s.n_pred))
         for s in stats
     ]
-    proportions = _proportion_columns(np.array(rows, dtype=np.int64), method, confidence, z)
+    proportions = proportion_columns(np.array(rows, dtype=np.int64), method, confidence, z)
     boot: list[dict[str, Interval]] = [{} for _ in rows]
     if wanted.intersection(BOOTSTRAPPED_BINARY):
         boot = bootstrap_binary_many(
             [r[:4] for r in rows], beta=beta, confidence=confidence, resamples=resamples, seed=seed
         )
-    ranked = _ranked_columns(stats, z) if wanted.intersection(_RANKED) else {}
+    ranked = ranked_columns(stats, z) if wanted.intersection(RANKED) else {}
     eces = (
         ece_arrays(
-            _stacked([s.hist_pos for s in stats]),
-            _stacked([s.ssum_pos for s in stats]),
-            _stacked([s.hist_neg for s in stats]),
-            _stacked([s.ssum_neg for s in stats]),
+            stacked([s.hist_pos for s in stats]),
+            stacked([s.ssum_pos for s in stats]),
+            stacked([s.hist_neg for s in stats]),
+            stacked([s.ssum_neg for s in stats]),
         ).tolist()
         if "ece" in wanted
         else []
@@ -210,10 +142,10 @@ def summarise_many(
         for name in BINARY_MEASURES:
             if name not in wanted:
                 continue
-            if name in _PROPORTIONS:
+            if name in PROPORTIONS:
                 values, lows, highs, trials = proportions[name]
                 out[name] = (
-                    _undefined(_PROPORTIONS[name])
+                    undefined(PROPORTIONS[name])
                     if trials[i] == 0
                     else {"value": values[i], "low": lows[i], "high": highs[i]}
                 )
@@ -224,7 +156,7 @@ def summarise_many(
             elif name == "balanced_accuracy":
                 value = balanced_accuracy(tp, fp, fn, tn)
                 out[name] = _with_interval(value, boot[i].get(name))
-            elif name in _RANKED:
+            elif name in RANKED:
                 out[name] = ranked[name][i]
             elif name == "brier":
                 out[name] = _mean_of_sum(s.brier_sum, labelled)
@@ -232,8 +164,8 @@ def summarise_many(
                 out[name] = _mean_of_sum(s.logloss_sum, labelled)
             else:
                 out[name] = (
-                    _undefined(NOTHING_LABELLED)
-                    if eces[i] != eces[i]
+                    undefined(NOTHING_LABELLED)
+                    if math.isnan(eces[i])
                     else {"value": eces[i], "low": None, "high": None}
                 )
         answers.append(

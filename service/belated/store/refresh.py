@@ -90,6 +90,15 @@ def sweep(factory: sessionmaker[Session]) -> int:
     return marked
 
 
+def sweep_model(session: Session, model: ModelRow) -> int:
+    """The sweep for one model in the caller's transaction (a read that must be current)."""
+    hours = labels.join_pending(session=session, model_id=model.id, ids=None)
+    marked = dirty.mark(session=session, model_id=model.id, hours=hours)
+    if model.negative_after_days is not None:
+        marked += _mark_crossed(session, model)
+    return marked
+
+
 def _mark_crossed(session: Session, model: ModelRow) -> int:
     assert model.negative_after_days is not None
     cut = now() - timedelta(days=model.negative_after_days)

@@ -64,7 +64,6 @@ ENV = Environment(loader=PackageLoader("belated.web", "templates"), autoescape=T
                   trim_blocks=True, lstrip_blocks=True)
 ENV.filters.update(num=_num, pct=_pct, when=_when, hours=_hours)
 ENV.globals.update(span=_span)
-ENV.globals.update(measure_name=pages.name_of)
 
 
 def render(template: str, *, status: int = 200, headers: dict[str, str] | None = None,

@@ -1,0 +1,1 @@
+"""The scheduled refresh and the leader lock."""

@@ -1,0 +1,1 @@
+"""Windows, measures, thresholds and delays through the API, checked against scikit-learn."""
