@@ -1,0 +1,152 @@
+"""The dashboard in a real browser: Debian's chromium, headless, driven through chromedriver
+(selenium) against uvicorn on loopback.
+
+The reader signs in through the form, then each page is loaded at a laptop width (1280) and
+a phone width (390): titles, charts with the expected number of points, no console error, no
+sideways overflow on the phone, and a full-page screenshot under the test's tmp_path.
+"""
+
+from __future__ import annotations
+
+import base64
+import shutil
+from collections.abc import Iterator
+from pathlib import Path
+from typing import Any
+
+import httpx
+import pytest
+from selenium import webdriver
+from selenium.webdriver.chrome.service import Service
+from selenium.webdriver.common.by import By
+from selenium.webdriver.support import expected_conditions as ec
+from selenium.webdriver.support.ui import WebDriverWait
+from sqlalchemy import Engine
+
+from tests.conftest import LiveServer, make_tenant
+from tests.web.test_pages import DAYS, NOW, WINDOWS, by_day, raise_alert, send_shop, shop_orders
+
+CHROMIUM = shutil.which("chromium") or shutil.which("chromium-browser")
+CHROMEDRIVER = shutil.which("chromedriver")
+WIDTHS = {"laptop": 1280, "phone": 390}
+
+# Skipped only where there is no browser at all; with chromium present, a missing driver fails.
+pytestmark = pytest.mark.skipif(
+    CHROMIUM is None, reason="chromium is not installed (apt-get install chromium chromium-driver)")
+
+
+@pytest.fixture()
+def browser(tmp_path: Path) -> Iterator[webdriver.Chrome]:
+    """Headless chromium with its own profile, nothing fetched from outside loopback."""
+    assert CHROMEDRIVER, "chromium is here but chromedriver is not: apt-get install chromium-driver"
+    options = webdriver.ChromeOptions()
+    options.binary_location = str(CHROMIUM)
+    for flag in ("--headless=new", "--no-sandbox", "--disable-gpu", "--disable-quic",
+                 "--no-first-run", "--disable-background-networking",
+                 "--disable-component-update", "--disable-sync", "--disable-dev-shm-usage",
+                 f"--user-data-dir={tmp_path / 'profile'}", "--window-size=1280,900"):
+        options.add_argument(flag)
+    options.set_capability("goog:loggingPrefs", {"browser": "ALL"})
+    driver = webdriver.Chrome(options=options, service=Service(executable_path=CHROMEDRIVER))
+    driver.set_page_load_timeout(60)
+    try:
+        yield driver
+    finally:
+        driver.quit()
+
+
+def console_errors(driver: webdriver.Chrome) -> list[dict[str, Any]]:
+    """Console entries of level SEVERE since the last call (the log is drained on read)."""
+    return [e for e in driver.get_log("browser") if e.get("level") == "SEVERE"]
+
+
+def shoot(driver: webdriver.Chrome, folder: Path, name: str, width: int) -> Path:
+    """A full-page screenshot at `width` CSS pixels (a phone width emulates a phone)."""
+    driver.execute_cdp_cmd("Emulation.setDeviceMetricsOverride", {
+        "width": width, "height": 900, "deviceScaleFactor": 1, "mobile": width < 600})
+    driver.refresh()
+    height = int(driver.execute_script("return document.documentElement.scrollHeight"))
+    overflow = int(driver.execute_script("return document.documentElement.scrollWidth"))
+    assert overflow <= width, f"{name} is {overflow}px wide on a {width}px screen"
+    shot = driver.execute_cdp_cmd("Page.captureScreenshot", {
+        "format": "png", "captureBeyondViewport": True,
+        "clip": {"x": 0, "y": 0, "width": width, "height": height, "scale": 1}})
+    path = folder / f"{name}-{width}.png"
+    path.write_bytes(base64.b64decode(shot["data"]))
+    assert path.stat().st_size > 10_000  # a page, not a blank
+    return path
+
+
+def count(driver: webdriver.Chrome, selector: str) -> int:
+    """How many elements match a CSS selector."""
+    return len(driver.find_elements(By.CSS_SELECTOR, selector))
+
+
+def test_every_page_renders_in_a_real_browser(live: LiveServer, sessions: Any, engine: Engine,
+                                              browser: webdriver.Chrome, tmp_path: Path) -> None:
+    from belated.clock import clock
+
+    clock.set(NOW)  # the server runs in this process and reads the same clock
+    try:
+        with httpx.Client(base_url=live.url, timeout=60) as http:
+            tenant = make_tenant(sessions, http)
+            orders = shop_orders()
+            name = send_shop(tenant, engine, orders)
+            raise_alert(tenant, sessions, name)
+        check_pages(browser, live.url, tenant.tokens["read"], name, orders, tmp_path)
+    finally:
+        clock.set(None)
+
+
+def check_pages(driver: webdriver.Chrome, url: str, token: str, name: str, orders: list[Any],
+                tmp_path: Path) -> None:
+    """Sign in through the form, then load and check each page."""
+    shots = tmp_path / "screens"
+    shots.mkdir()
+    driver.get(url + "/")
+    assert driver.current_url.startswith(url + "/signin")
+    assert driver.title == "Sign in · belated"
+    shoot(driver, shots, "signin", WIDTHS["phone"])
+    driver.find_element(By.ID, "token").send_keys("blt_wrong")
+    driver.find_element(By.CSS_SELECTOR, "form[action='/signin'] button").click()
+    error = WebDriverWait(driver, 20).until(
+        ec.presence_of_element_located((By.CSS_SELECTOR, ".error")))
+    assert "not one this service knows" in error.text
+    # the browser logs the refused sign-in's 401 as a failed load, and nothing else
+    assert all(e["source"] == "network" and "/signin" in e["message"] and "401" in e["message"]
+               for e in console_errors(driver))
+    driver.find_element(By.ID, "token").send_keys(token)
+    driver.find_element(By.CSS_SELECTOR, "form[action='/signin'] button").click()
+    WebDriverWait(driver, 20).until(ec.url_to_be(url + "/"))
+    assert driver.title == "Models · belated"
+    assert driver.find_element(By.CSS_SELECTOR, f"[data-model='{name}'] h2").text == name
+    assert driver.find_element(
+        By.CSS_SELECTOR, f"[data-model='{name}'] [data-open-alerts]").text == "1 open alert"
+    assert console_errors(driver) == []
+    for width in WIDTHS.values():
+        shoot(driver, shots, "models", width)
+
+    days = by_day(orders)
+    driver.get(f"{url}/models/{name}?start=2026-03-02")
+    assert driver.title == f"{name} · belated"
+    assert count(driver, "svg[role='img']") == 8  # 4 measures, coverage, estimates, sweep, delays
+    # every day has orders and so a positive rate; the current day has none (a gap)
+    assert count(driver, "svg#m-positive_rate circle.pt") == DAYS
+    assert count(driver, "svg#m-positive_rate .gap") == WINDOWS - DAYS
+    assert count(driver, "svg#coverage rect.pt") == len(days)
+    assert count(driver, "svg#sweep [data-series='recall'] circle.pt") == 100
+    assert count(driver, "svg#m-precision circle.pt.prov") > 0
+    assert "Read these numbers with care" in driver.find_element(By.CSS_SELECTOR, ".care").text
+    assert count(driver, "[data-alert]") == 1
+    assert console_errors(driver) == []
+    for width in WIDTHS.values():
+        shoot(driver, shots, "model", width)
+
+    driver.get(f"{url}/alerts")
+    assert driver.title == "Alerts · belated"
+    assert count(driver, "article.alert") == 1 and count(driver, "tr.breach") > 0
+    assert console_errors(driver) == []
+    for width in WIDTHS.values():
+        shoot(driver, shots, "alerts", width)
+    assert console_errors(driver) == []
+    print(f"screenshots in {shots}")
