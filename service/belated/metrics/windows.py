@@ -13,8 +13,9 @@ from sqlalchemy.orm import Session
 from belated.metrics.load import ensure_fresh, epoch_hour, load_hours
 from belated.metrics.params import Range
 from belated.stats.calibration import ece
+from belated.stats.estimates import em_prior
 from belated.stats.multiclass import summarise_multiclass
-from belated.stats.summary import summarise
+from belated.stats.summary import summarise_many
 from belated.stats.window import WindowStats
 from belated.store.accumulate import Acc
 from belated.store.packing import N_BINS
@@ -89,18 +90,35 @@ def build(session: Session, model: ModelRow, rng: Range, opts: Options,
     step = rng.step
     settled = [settled_window(a, s + step, model, now) for a, s in zip(base, starts, strict=True)]
     out: list[dict[str, Any]] = []
+    binary: list[tuple[dict[str, Any], WindowStats, float | None]] = []
     for i in range(lookback, len(starts)):
         parts = range(max(0, i - opts.rolling + 1), i + 1)
         acc = Acc()
         for j in parts:
             acc.add(base[j])
         start, end = starts[i], starts[i] + step
-        ece_value, prior = _reference(base, settled, i) if model.kind == "binary" else (None, None)
-        window = _window(model, acc, start, end, now, opts, prior)
+        window = _head(acc, start, end, now)
         window["settled"] = all(settled[j] for j in parts)
         if model.kind == "binary":
-            window["estimates"]["calibration_error"] = ece_value
+            ece_value, prior = _reference(base, settled, i)
+            window["estimates"] = {"calibration_error": ece_value}
+            binary.append((window, to_stats(acc), prior))
+        else:
+            window.update(_multiclass(model, acc, start, opts))
         out.append(window)
+    if binary:
+        # every binary window in one vectorised pass; each answer equals summarise() alone
+        summaries = summarise_many(
+            [b[1] for b in binary], beta=opts.beta, interval=opts.interval,
+            confidence=opts.confidence, resamples=opts.resamples,
+            measures=set(opts.measures) if opts.measures else None)
+        for (window, stats, prior), summary in zip(binary, summaries, strict=True):
+            estimates = {**summary.pop("estimates", {}), **window["estimates"]}
+            if prior is not None and 0 < prior < 1:
+                estimates["prior_em"] = {"value": em_prior(stats.hist_all, stats.ssum_all,
+                                                           prior)}
+            window.update(summary)
+            window["estimates"] = estimates
     return out
 
 
@@ -122,23 +140,16 @@ def _reference(base: list[Acc], settled: list[bool], i: int
     return ece(hist[0], hsum[0], hist[1], hsum[1]).value, prior
 
 
-def _window(model: ModelRow, acc: Acc, start: datetime, end: datetime, now: datetime,
-            opts: Options, prior: float | None = None) -> dict[str, Any]:
+def _head(acc: Acc, start: datetime, end: datetime, now: datetime) -> dict[str, Any]:
     n, labelled = acc.scalar("n_pred"), acc.scalar("n_labelled")
-    window: dict[str, Any] = {
+    return {
         "start": iso(start), "end": iso(end), "closed": end <= now,
         "predictions": n, "labelled": labelled, "implied_negatives": acc.scalar("n_implied"),
         "coverage": round(labelled / n, 6) if n else None,
     }
-    seed = int(start.timestamp()) & 0x7FFFFFFF
-    if model.kind == "binary":
-        summary = summarise(to_stats(acc), beta=opts.beta, interval=opts.interval,
-                            confidence=opts.confidence, resamples=opts.resamples, seed=seed,
-                            measures=set(opts.measures) if opts.measures else None,
-                            baseline_prior=prior if prior is not None and 0 < prior < 1 else None)
-        window.update(summary)
-        window["estimates"] = dict(window.get("estimates") or {})
-        return window
+
+
+def _multiclass(model: ModelRow, acc: Acc, start: datetime, opts: Options) -> dict[str, Any]:
     classes = list(model.classes)
     matrix = np.zeros((len(classes), len(classes)), np.int64)
     pos = {c: k for k, c in enumerate(classes)}
@@ -146,9 +157,9 @@ def _window(model: ModelRow, acc: Acc, start: datetime, end: datetime, now: date
         actual, predicted = orjson.loads(key)
         if actual in pos and predicted in pos:
             matrix[pos[actual], pos[predicted]] += count
-    window.update(summarise_multiclass(matrix, classes, beta=opts.beta, interval=opts.interval,
-                                       confidence=opts.confidence, resamples=opts.resamples,
-                                       seed=seed))
+    summary = summarise_multiclass(matrix, classes, beta=opts.beta, interval=opts.interval,
+                                   confidence=opts.confidence, resamples=opts.resamples)
     if opts.measures:
-        window["measures"] = {k: v for k, v in window["measures"].items() if k in opts.measures}
-    return window
+        summary["measures"] = {k: v for k, v in summary["measures"].items()
+                               if k in opts.measures}
+    return summary

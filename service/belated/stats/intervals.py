@@ -11,6 +11,7 @@ from __future__ import annotations
 import math
 from numbers import Real
 from statistics import NormalDist
+from typing import Any
 
 import numpy as np
 from scipy.special import betaincinv
@@ -120,11 +121,12 @@ def proportion_interval(
     return jeffreys(successes, n, confidence)
 
 
-def hanley_mcneil_se(auc: float, n_pos: int, n_neg: int) -> float:
+def hanley_mcneil_se(auc: Any, n_pos: Any, n_neg: Any) -> Any:
     """Hanley-McNeil standard error of an AUC from n_pos positives and n_neg negatives.
 
     Their formula (1982, eq. 1 with the exponential approximations Q1 = A / (2 - A) and
     Q2 = 2A^2 / (1 + A)): SE^2 = [A(1-A) + (n_pos-1)(Q1-A^2) + (n_neg-1)(Q2-A^2)] / (n_pos n_neg).
+    Works elementwise on numpy arrays as on floats.
     """
     q1 = auc / (2.0 - auc)
     q2 = 2.0 * auc * auc / (1.0 + auc)
@@ -133,24 +135,18 @@ def hanley_mcneil_se(auc: float, n_pos: int, n_neg: int) -> float:
         n_pos * n_neg
     )
     # The variance is >= 0 in exact arithmetic; clamp the rounding at A = 0 or 1.
-    return math.sqrt(max(variance, 0.0))
+    return np.sqrt(np.maximum(variance, 0.0))
 
 
 def hanley_mcneil_arrays(
     auc: np.ndarray, n_pos: np.ndarray, n_neg: np.ndarray, z: float
 ) -> tuple[np.ndarray, np.ndarray]:
-    """`hanley_mcneil` elementwise, for many windows at once (n_pos, n_neg > 0)."""
-    q1 = auc / (2.0 - auc)
-    q2 = 2.0 * auc * auc / (1.0 + auc)
-    a2 = auc * auc
-    variance = (auc * (1.0 - auc) + (n_pos - 1) * (q1 - a2) + (n_neg - 1) * (q2 - a2)) / (
-        n_pos * n_neg
-    )
-    half = z * np.sqrt(np.maximum(variance, 0.0))
+    """Wald intervals AUC +- z SE with the Hanley-McNeil SE, clipped to [0, 1], elementwise."""
+    half = z * hanley_mcneil_se(auc, n_pos, n_neg)
     return np.maximum(0.0, auc - half), np.minimum(1.0, auc + half)
 
 
 def hanley_mcneil(auc: float, n_pos: int, n_neg: int, z: float) -> tuple[float, float]:
     """Wald interval AUC +- z SE with the Hanley-McNeil SE, clipped to [0, 1]."""
-    half = z * hanley_mcneil_se(auc, n_pos, n_neg)
+    half = z * float(hanley_mcneil_se(float(auc), float(n_pos), float(n_neg)))
     return max(0.0, auc - half), min(1.0, auc + half)

@@ -108,27 +108,6 @@ def fbeta_value(tp: int, fp: int, fn: int, beta: float) -> Value:
     return Value(value)
 
 
-def proportion_parts(
-    name: str, tp: int, fp: int, fn: int, tn: int, n_pred_pos: int, n_pred: int
-) -> tuple[int, int] | None:
-    """(successes, trials) of a measure that is a proportion, or None for other measures."""
-    if name == "precision":
-        return tp, tp + fp
-    if name == "recall":
-        return tp, tp + fn
-    if name == "accuracy":
-        return tp + tn, tp + fp + fn + tn
-    if name == "specificity":
-        return tn, tn + fp
-    if name == "npv":
-        return tn, tn + fn
-    if name == "positive_rate":
-        return n_pred_pos, n_pred
-    if name == "prevalence":
-        return tp + fn, tp + fp + fn + tn
-    return None
-
-
 def binary_measures(
     tp: int,
     fp: int,

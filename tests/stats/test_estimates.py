@@ -1,0 +1,105 @@
+"""Label-free estimates (belated/stats/estimates.py)."""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pytest
+
+from belated.stats.estimates import em_prior, expected_confusion, expected_measures
+from belated.stats.summary import summarise
+from belated.stats.window import WindowStats
+
+
+def _unlabelled_window(p: np.ndarray, threshold: float) -> WindowStats:
+    return WindowStats.from_rows(p, p >= threshold, [None] * p.size)
+
+
+@pytest.mark.parametrize("seed", [1, 2, 3, 4, 5])
+def test_expected_precision_is_within_four_standard_errors_of_the_truth(seed: int) -> None:
+    # Seeded simulation: scores p ~ Beta(2, 3) are calibrated by construction (actual ~
+    # Bernoulli(p)); with p >= 0.4 flagged there are about 26,000 predicted positives.
+    rng = np.random.default_rng(seed)
+    p = rng.beta(2.0, 3.0, size=50_000)
+    y = rng.random(p.size) < p
+    flagged = p >= 0.4
+    assert flagged.sum() >= 10_000
+    stats = _unlabelled_window(p, 0.4)
+    estimated = summarise(stats)["estimates"]["precision"]["value"]
+    truth = (y & flagged).sum() / flagged.sum()
+    # Given the scores, TP is a sum of independent Bernoulli(p): SE = sqrt(sum p(1-p)) / n_pp.
+    se = math.sqrt(float((p[flagged] * (1 - p[flagged])).sum())) / flagged.sum()
+    assert abs(estimated - truth) < 4 * se
+    # The same check for prevalence over all predictions.
+    prevalence = summarise(stats)["estimates"]["prevalence"]["value"]
+    assert abs(prevalence - y.mean()) < 4 * math.sqrt(float((p * (1 - p)).sum())) / p.size
+
+
+def _shifted_window(
+    seed: int, train_prior: float, window_prior: float
+) -> tuple[WindowStats, float]:
+    """Scores from a model calibrated at `train_prior`, on a window whose prior has moved.
+
+    Classes: x ~ N(+1, 1) for positives, N(-1, 1) for negatives, so the log-likelihood ratio
+    is 2x and the calibrated posterior at the training prior is sigmoid(2x + logit(prior))."""
+    rng = np.random.default_rng(seed)
+    y = rng.random(40_000) < window_prior
+    x = rng.normal(np.where(y, 1.0, -1.0), 1.0)
+    p = 1.0 / (1.0 + np.exp(-(2.0 * x + math.log(train_prior / (1.0 - train_prior)))))
+    return _unlabelled_window(p, 0.5), float(y.mean())
+
+
+def test_under_a_prior_shift_the_naive_estimate_is_biased_and_em_is_not() -> None:
+    # Saerens, Latinne and Decaestecker (2002), Neural Computation 14(1): EM recovers the
+    # new prior from the unlabelled window; the plain mean score stays near the old one.
+    stats, truth = _shifted_window(seed=8, train_prior=0.3, window_prior=0.1)
+    naive = summarise(stats)["estimates"]["prevalence"]["value"]
+    em = em_prior(stats.hist_all, stats.ssum_all, 0.3)
+    assert em is not None
+    assert abs(naive - truth) > 0.04
+    assert abs(em - truth) < 0.01
+    assert summarise(stats, baseline_prior=0.3)["estimates"]["prior_em"]["value"] == em
+
+
+def test_without_a_shift_both_agree_with_the_truth() -> None:
+    stats, truth = _shifted_window(seed=9, train_prior=0.3, window_prior=0.3)
+    naive = summarise(stats)["estimates"]["prevalence"]["value"]
+    em = em_prior(stats.hist_all, stats.ssum_all, 0.3)
+    assert abs(naive - truth) < 0.01
+    assert em is not None and abs(em - truth) < 0.01
+
+
+def test_binned_em_agrees_with_em_on_raw_scores() -> None:
+    # EM of Saerens et al. (2002) written plainly on the raw scores, against the histogram form.
+    rng = np.random.default_rng(10)
+    p = rng.beta(1.0, 3.0, size=20_000)
+    stats = _unlabelled_window(p, 0.5)
+    prior = p.mean()
+    for _ in range(2000):
+        up = prior / 0.4 * p
+        down = (1 - prior) / 0.6 * (1 - p)
+        prior = float(np.mean(up / (up + down)))
+    got = em_prior(stats.hist_all, stats.ssum_all, 0.4)
+    assert got == pytest.approx(prior, abs=2e-3)
+
+
+def test_em_prior_undefined_inputs() -> None:
+    zeros = np.zeros(100)
+    assert em_prior(zeros, zeros, 0.3) is None
+    hist = np.zeros(100)
+    hist[20] = 10
+    assert em_prior(hist, hist * 0.205, 0.0) is None
+    assert em_prior(hist, hist * 0.205, 1.0) is None
+    assert em_prior(hist, hist * 0.205, math.nan) is None
+
+
+def test_expected_confusion_definitions() -> None:
+    p = np.array([0.9, 0.6, 0.2, 0.1])
+    flagged = np.array([True, True, False, False])
+    assert expected_confusion(p, flagged) == pytest.approx((1.5, 0.5, 0.3, 1.7))
+    got = expected_measures(1.5, 0.5, 0.3, 1.7)
+    assert got["precision"].value == pytest.approx(0.75)
+    assert got["recall"].value == pytest.approx(1.5 / 1.8)
+    assert got["prevalence"].value == pytest.approx(1.8 / 4)
+    assert expected_measures(0.0, 0.0, 0.0, 0.0)["precision"].reason == "no predictions"
