@@ -129,16 +129,22 @@ def run(*, days: int, seed: int, port: int, echo: Any, serve_forever: bool = Tru
     while not server.started:
         time.sleep(0.05)
     base = f"http://127.0.0.1:{server.servers[0].sockets[0].getsockname()[1]}"
+    echo(f"generating {days} days of furniture-shop orders and sending them...", err=True)
     _feed(base, admin, days, seed, echo)
+    echo("waiting for the jobs to refresh the rollups and evaluate the rules...", err=True)
     _wait_for_jobs(app)
     echo(f"url: {base}/")
     echo(f"token: {read}")
-    alerts = httpx.get(f"{base}/v1/alerts", headers={"Authorization": f"Bearer {read}"},
-                       params={"limit": 100}).json()["items"]
-    for a in sorted(alerts, key=lambda a: a["opened_at"]):
+    auth = {"Authorization": f"Bearer {read}"}
+    alerts = httpx.get(f"{base}/v1/alerts", headers=auth, params={"limit": 100}).json()["items"]
+    rules = {r["id"]: r for r in httpx.get(f"{base}/v1/models/{MODEL}/rules",
+                                           headers=auth).json()["items"]}
+    for a in sorted(alerts, key=lambda a: (a["segment"] or "", a["rule_id"])):
+        rule = rules.get(a["rule_id"], {})
+        what = " ".join(x for x in (rule.get("kind"), rule.get("measure")) if x)
         first = min((b["window_start"] for b in a["breaches"]), default="")
-        echo(f"alert: {a['state']} rule {a['rule_id']} {a['segment'] or 'all orders'} "
-             f"first breach window {first[:10]}")
+        echo(f"alert: {a['state']} {what} on {a['segment'] or 'all orders'}, "
+             f"first breach in the window of {first[:10]} ({a['id']})")
     if not alerts:
         echo("alert: none raised")
     if serve_forever:
