@@ -12,6 +12,7 @@ from sqlalchemy import Engine
 from belated import __version__
 from belated.alerts import delivery
 from belated.api import (
+    openapi,
     problems,
     routes_alerts,
     routes_health,
@@ -62,6 +63,7 @@ def create_app(settings: Settings | None = None, *, engine: Engine | None = None
                    routes_health, routes_prometheus):
         app.include_router(module.router)
     _optional_routers(app)
+    openapi.install(app)
     return BodyLimit(app, settings.max_body_bytes)
 
 

@@ -46,9 +46,13 @@ def serve(
     setup_logging(settings.log_format)
     if is_sqlite(settings.database_url):
         upgrade(settings.database_url)  # the embedded store migrates itself
+    # the options become the settings, so the service knows its own address (webhooks
+    # must never point back at it)
+    settings = settings.model_copy(update={"host": host or settings.host,
+                                           "port": port if port is not None else settings.port})
     asgi = create_app(settings, jobs=settings.jobs and not no_jobs)
-    uvicorn.run(asgi, host=host or settings.host, port=port if port is not None else settings.port,
-                log_config=None, access_log=False)
+    uvicorn.run(asgi, host=settings.host, port=settings.port, log_config=None,
+                access_log=False)
 
 
 @app.command()

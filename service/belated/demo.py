@@ -128,7 +128,9 @@ def run(*, days: int, seed: int, port: int, echo: Any, serve_forever: bool = Tru
     thread.start()
     while not server.started:
         time.sleep(0.05)
-    base = f"http://127.0.0.1:{server.servers[0].sockets[0].getsockname()[1]}"
+    bound = int(server.servers[0].sockets[0].getsockname()[1])
+    app.app.state.settings = settings.model_copy(update={"port": bound})
+    base = f"http://127.0.0.1:{bound}"
     echo(f"generating {days} days of furniture-shop orders and sending them...", err=True)
     _feed(base, admin, days, seed, echo)
     echo("waiting for the jobs to refresh the rollups and evaluate the rules...", err=True)

@@ -21,8 +21,11 @@ class _Redact(logging.Filter):
 
 class _Json(logging.Formatter):
     def format(self, record: logging.LogRecord) -> str:
-        return orjson.dumps({"ts": self.formatTime(record), "level": record.levelname,
-                             "logger": record.name, "message": record.getMessage()}).decode()
+        doc = {"ts": self.formatTime(record), "level": record.levelname,
+               "logger": record.name, "message": record.getMessage()}
+        if record.exc_info:
+            doc["exception"] = _SECRET.sub(r"\1[redacted]", self.formatException(record.exc_info))
+        return orjson.dumps(doc).decode()
 
 
 def setup_logging(fmt: str = "text", level: int = logging.INFO) -> None:
@@ -34,5 +37,5 @@ def setup_logging(fmt: str = "text", level: int = logging.INFO) -> None:
     root = logging.getLogger()
     root.handlers[:] = [handler]
     root.setLevel(level)
-    for noisy in ("apscheduler", "uvicorn.access"):
+    for noisy in ("apscheduler", "uvicorn.access", "httpx", "httpcore"):
         logging.getLogger(noisy).setLevel(logging.WARNING)

@@ -99,6 +99,7 @@ def _attempt(client: httpx.Client, url: str, secret: str, event_id: str, payload
     try:
         urls.check(url, allow_private=allow_private, own=own)
     except urls.UnsafeUrl as exc:
+        log.warning("webhook delivery refused: %s", exc)
         return {"status": None, "error": f"refused: {exc}", "retry_after": None}
     # The header carries the real time of the attempt, which receivers check against their
     # own clocks; the service clock (which tests may freeze) only schedules attempts.

@@ -41,12 +41,13 @@ def check(url: str, *, allow_private: bool, own: tuple[str, int] | None,
             ip = ip.ipv4_mapped
         if ip in METADATA or ip.is_link_local:
             raise UnsafeUrl(f"{parts.hostname} resolves to a link-local or metadata address")
-        if ip.is_multicast or ip.is_unspecified or ip.is_reserved:
+        local = (ip.is_loopback or ip.is_private) and not ip.is_unspecified
+        if ip.is_unspecified or ((ip.is_multicast or ip.is_reserved) and not local):
             raise UnsafeUrl(f"{parts.hostname} resolves to an address that cannot be called")
         if own is not None and port == own[1] and (ip.is_loopback or text == own[0]
                                                    or own[0] in ("0.0.0.0", "::")):
             raise UnsafeUrl("the URL points at this service itself")
-        if not allow_private and (ip.is_loopback or ip.is_private):
+        if not allow_private and local:
             raise UnsafeUrl(
                 f"{parts.hostname} resolves to a loopback or private address, refused while "
                 "BELATED_WEBHOOK_PRIVATE is off")

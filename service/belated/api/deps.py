@@ -74,10 +74,13 @@ async def json_body(request: Request) -> Any:
         return orjson.loads(raw)
     except orjson.JSONDecodeError as exc:
         # orjson refuses numbers that overflow a double (1e400); the standard parser reads
-        # them as infinity, which validation then reports by item and field
+        # them as infinity, which validation then reports by item and field. Nothing else
+        # falls back: deep nesting and lone surrogates stay a 400.
+        if "infinity" not in str(exc):
+            raise Problem(400, f"the body is not valid JSON: {exc}") from None
         try:
             return json.loads(raw)
-        except (ValueError, UnicodeDecodeError):
+        except (ValueError, UnicodeDecodeError, RecursionError):
             raise Problem(400, f"the body is not valid JSON: {exc}") from None
 
 

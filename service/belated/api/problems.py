@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import logging
 from typing import Any
 
 import orjson
@@ -12,6 +13,8 @@ from sqlalchemy.exc import DBAPIError, OperationalError
 from starlette.exceptions import HTTPException
 
 from belated.errors import Problem
+
+log = logging.getLogger(__name__)
 
 MEDIA = "application/problem+json"
 TITLES = {400: "Bad request", 401: "Unauthorized", 403: "Forbidden", 404: "Not found",
@@ -63,6 +66,7 @@ def install(app: FastAPI) -> None:
 
     @app.exception_handler(OperationalError)
     async def _store_down(_: Request, exc: OperationalError) -> Response:
+        log.warning("answered 503: %s: %s", type(exc.orig).__name__, str(exc.orig)[:200])
         return problem_response(
             503, "the store is unreachable or busy; retry shortly (nothing was stored)",
             headers={"Retry-After": "2"})

@@ -127,7 +127,10 @@ def _check_ts(
 def _finite_prob(value: Any) -> float | None:
     if isinstance(value, bool) or not isinstance(value, int | float):
         return None
-    v = float(value)
+    try:
+        v = float(value)
+    except OverflowError:  # an integer too large for a double
+        return None
     return v if math.isfinite(v) and 0.0 <= v <= 1.0 else None
 
 
@@ -146,6 +149,9 @@ def _check_tags(i: int, value: Any, errors: list[dict[str, Any]]) -> dict[str, s
             errors.append(
                 field_error(i, f"tags.{k[:64]}", "tag key must be 1-64 characters without ':'")
             )
+            return None
+        if isinstance(v, float) and not math.isfinite(v):
+            errors.append(field_error(i, f"tags.{k}", "a number that is not finite"))
             return None
         if isinstance(v, int | float) and not isinstance(v, bool):
             v = str(v)

@@ -24,9 +24,11 @@ def ensure_fresh(session: Session, model: ModelRow, lo: int, hi: int, max_values
     """Read-your-writes: join raced pending labels, mark hours whose predictions crossed
     `negative_after_days` by now, and refresh the model's dirty buckets in [lo, hi)."""
     refresh.sweep_model(session, model)
-    while refresh.refresh_batch(session, max_values=max_values, model_id=model.id, lo=lo,
-                                hi=hi, wait=True):
-        pass
+    # one transaction takes its locks in ascending hour order, as writers mark them, so a
+    # read and a writer never wait on each other in a cycle
+    while claimed := refresh.refresh_claimed(session, max_values=max_values,
+                                             model_id=model.id, lo=lo, hi=hi, wait=True):
+        lo = max(hour for _, hour, _ in claimed) + 1
 
 
 def _rollup_segment(session: Session, model: ModelRow,

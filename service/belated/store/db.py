@@ -7,6 +7,7 @@ from collections.abc import Iterator
 from contextlib import contextmanager
 from typing import Any
 
+import orjson
 from sqlalchemy import Engine, create_engine, event
 from sqlalchemy.orm import Session, sessionmaker
 
@@ -20,8 +21,11 @@ def is_sqlite(engine_or_url: Engine | str) -> bool:
 def make_engine(url: str, **kwargs: Any) -> Engine:
     """Create an engine with the settings each store needs for concurrent use."""
     if is_sqlite(url):
+        # JSON is written as UTF-8 (not ASCII escapes) so that json_extract paths match keys
+        # such as 'région' as sent
         engine = create_engine(
-            url, connect_args={"check_same_thread": False, "timeout": 30}, **kwargs
+            url, connect_args={"check_same_thread": False, "timeout": 30},
+            json_serializer=lambda obj: orjson.dumps(obj).decode(), **kwargs
         )
         _configure_sqlite(engine)
         return engine

@@ -6,7 +6,7 @@ from dataclasses import dataclass
 from datetime import datetime
 from typing import Any
 
-from sqlalchemy import bindparam, delete, insert, select, text, update
+from sqlalchemy import bindparam, delete, func, insert, select, text, update
 from sqlalchemy.dialects import postgresql, sqlite
 from sqlalchemy.orm import Session
 
@@ -91,6 +91,10 @@ def ingest(*, session: Session, model_id: int, items: list[LabelIn]) -> dict[str
         hours.add(target.hour)
     if updates:
         (_update_pg if bulk.is_pg(session) else _update_sqlite)(session, list(updates.values()))
+    found = [pid for pid in ids if pid in targets]
+    if found:  # a pending label left by a race is older than this one: drop it
+        for cond in bulk.id_filters(session, PendingLabel.pid, found):
+            session.execute(delete(PendingLabel).where(PendingLabel.model_id == model_id, cond))
     if history:
         session.execute(insert(Label), history)
     if pend:
@@ -143,6 +147,19 @@ def _upsert_pending(
     ])
 
 
+def _latest_received(session: Session, model_id: int, pids: list[str]) -> dict[str, datetime]:
+    """When the current label of each id arrived (from the label history)."""
+    out: dict[str, datetime] = {}
+    for cond in bulk.id_filters(session, Label.pid, pids) if pids else ():
+        for pid, received in session.execute(
+            select(Label.pid, func.max(Label.received_at)).where(
+                Label.model_id == model_id, Label.change != "pending", cond
+            ).group_by(Label.pid)
+        ):
+            out[pid] = to_utc(received)
+    return out
+
+
 def join_pending(*, session: Session, model_id: int, ids: list[str] | None) -> set[int]:
     """Apply pending labels whose prediction is stored; return the hours they touched.
 
@@ -151,11 +168,16 @@ def join_pending(*, session: Session, model_id: int, ids: list[str] | None) -> s
     """
     query = (
         select(PendingLabel.row_id, PendingLabel.actual, PendingLabel.ts,
-               Prediction.row_id, Prediction.ts, Prediction.hour, Prediction.actual)
+               Prediction.row_id, Prediction.ts, Prediction.hour, Prediction.actual,
+               PendingLabel.received_at, PendingLabel.pid)
         .join(Prediction, (Prediction.model_id == PendingLabel.model_id)
               & (Prediction.pid == PendingLabel.pid))
         .where(PendingLabel.model_id == model_id)
     )
+    if bulk.is_pg(session):
+        # lock both rows, so that a label written meanwhile for this id (which deletes the
+        # pending row) is seen before deciding; in id order, as ingest locks predictions
+        query = query.order_by(Prediction.row_id).with_for_update()
     conds = [None] if ids is None else list(bulk.id_filters(session, PendingLabel.pid, ids))
     rows: list[Any] = []
     for cond in conds:
@@ -163,11 +185,14 @@ def join_pending(*, session: Session, model_id: int, ids: list[str] | None) -> s
         rows.extend(session.execute(q).all())
     if not rows:
         return set()
+    latest = _latest_received(session, model_id, [r[8] for r in rows if r[6] is not None])
     updates = []
-    for _pl_id, actual, lts, p_id, pts, _hour, current in rows:
-        if current is None or current != actual:
-            updates.append({"row_id": p_id, "actual": actual, "label_ts": to_utc(lts),
-                            "delay_h": delay_hours(to_utc(pts), to_utc(lts))})
+    for _pl_id, actual, lts, p_id, pts, _hour, current, received, pid in rows:
+        if current is not None and (current == actual or latest.get(pid) is None
+                                    or to_utc(received) <= latest[pid]):
+            continue  # the current label arrived after the pending one: it stands
+        updates.append({"row_id": p_id, "actual": actual, "label_ts": to_utc(lts),
+                        "delay_h": delay_hours(to_utc(pts), to_utc(lts))})
     if updates:
         (_update_pg if bulk.is_pg(session) else _update_sqlite)(session, updates)
     done = [r[0] for r in rows]

@@ -43,9 +43,17 @@ def _claim(session: Session, model_id: int | None, lo: int | None, hi: int | Non
 def refresh_batch(session: Session, *, max_values: int, model_id: int | None = None,
                   lo: int | None = None, hi: int | None = None, wait: bool = False) -> int:
     """Refresh one batch of dirty buckets in the caller's transaction; 0 when none is left."""
+    return len(refresh_claimed(session, max_values=max_values, model_id=model_id, lo=lo,
+                               hi=hi, wait=wait))
+
+
+def refresh_claimed(session: Session, *, max_values: int, model_id: int | None = None,
+                    lo: int | None = None, hi: int | None = None, wait: bool = False
+                    ) -> list[tuple[int, int, int]]:
+    """Refresh one batch of dirty buckets; return the (model, hour, version) marks taken."""
     claimed = _claim(session, model_id, lo, hi, wait)
     if not claimed:
-        return 0
+        return []
     by_model: dict[int, list[int]] = defaultdict(list)
     for mid, hour, _ in claimed:
         by_model[mid].append(hour)
@@ -58,7 +66,7 @@ def refresh_batch(session: Session, *, max_values: int, model_id: int | None = N
     # Clear only the marks whose version is the one read: a write meanwhile keeps its mark.
     session.execute(delete(DirtyBucket).where(
         tuple_(DirtyBucket.model_id, DirtyBucket.hour, DirtyBucket.version).in_(claimed)))
-    return len(claimed)
+    return claimed
 
 
 def refresh_all(factory: sessionmaker[Session], *, max_values: int, model_id: int | None = None,

@@ -49,8 +49,8 @@ class _Dialect:
         # every argument here is non-negative, where SQLite's truncating cast is floor
         return f"CAST(floor({a}) AS INTEGER)" if self.pg else f"CAST({a} AS INTEGER)"
 
-    def tag(self) -> str:
-        return "(tags ->> :tag_key)" if self.pg else "json_extract(tags, :tag_path)"
+    def tag(self, key: str) -> str:
+        return _tag_sql(self.pg, "", key).replace(":fk", ":tag_key").replace(":fp", ":tag_path")
 
 
 def _cutoff_param(session: Session, cutoff: datetime) -> Any:
@@ -59,8 +59,17 @@ def _cutoff_param(session: Session, cutoff: datetime) -> Any:
     return cutoff.strftime("%Y-%m-%d %H:%M:%S.%f")  # the text form SQLAlchemy stores
 
 
-def _tag_sql(pg: bool, i: int | str) -> str:
-    return f"(tags ->> :fk{i})" if pg else f"json_extract(tags, :fp{i})"
+def _plain(key: str) -> bool:
+    return not any(c in key for c in '"\\') and all(ord(c) >= 32 for c in key)
+
+
+def _tag_sql(pg: bool, i: int | str, key: str = "") -> str:
+    if pg:
+        return f"(tags ->> :fk{i})"
+    if _plain(key):
+        return f"json_extract(tags, :fp{i})"
+    # a key with quotes, backslashes or control characters cannot be spelled in a path
+    return f"(SELECT j.value FROM json_each(predictions.tags) AS j WHERE j.key = :fk{i})"
 
 
 def _json_path(key: str) -> str:
@@ -72,8 +81,8 @@ def _where(scope: Scope, pg: bool = False) -> str:
         where = f"model_id = :m AND hour >= {scope.hours.start} AND hour < {scope.hours.stop}"
     else:
         where = f"model_id = :m AND hour IN ({','.join(str(int(h)) for h in scope.hours)})"
-    for i in range(len(scope.filters)):  # several tags at once: answered from raw rows
-        where += f" AND {_tag_sql(pg, i)} = :fv{i}"
+    for i, (key, _) in enumerate(scope.filters):  # several tags at once: from raw rows
+        where += f" AND {_tag_sql(pg, i, key)} = :fv{i}"
     return where
 
 
@@ -88,7 +97,7 @@ def _actual(scope: Scope) -> tuple[str, str]:
 def _segment(d: _Dialect, key: str | None) -> tuple[str, str]:
     if key is None:
         return "''", ""
-    t = d.tag()
+    t = d.tag(key)
     return (f"(CASE WHEN {t} IN :tag_values THEN {t} ELSE '(other)' END)",
             f" AND {t} IS NOT NULL")
 

@@ -6,7 +6,7 @@ from collections import defaultdict
 from collections.abc import Sequence
 from datetime import datetime, timedelta
 
-from sqlalchemy import and_, delete, insert, select
+from sqlalchemy import and_, delete, insert, select, text
 from sqlalchemy.orm import Session
 
 from belated.store import rollup_sql as q
@@ -93,6 +93,12 @@ def refresh_days(*, session: Session, model_id: int, days: set[int]) -> None:
     if not days:
         return
     ordered = sorted(days)
+    if session.get_bind().dialect.name == "postgresql":
+        # a read-side refresh and the job may touch different hours of the same day: the
+        # second waits here, then sums the hourly rows the first committed
+        for day in ordered:
+            session.execute(text("SELECT pg_advisory_xact_lock(:m, :d)"),
+                            {"m": model_id, "d": day // 24})
     accs: dict[Key, Acc] = defaultdict(Acc)
     for i in range(0, len(ordered), 200):
         chunk = ordered[i : i + 200]

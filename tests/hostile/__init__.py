@@ -1,0 +1,1 @@
+"""Hostile input, fuzzing, security and outage tests."""

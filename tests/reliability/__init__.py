@@ -1,0 +1,1 @@
+"""Reliability under real processes: concurrent writers, SIGKILL mid-write, leader failover."""
