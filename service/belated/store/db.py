@@ -29,6 +29,9 @@ def make_engine(url: str, **kwargs: Any) -> Engine:
         )
         _configure_sqlite(engine)
         return engine
+    # per-row id lookups and updates want index plans; the default random_page_cost of 4
+    # (spinning disks) makes the planner hash-join whole tables instead
+    kwargs.setdefault("connect_args", {"options": "-c random_page_cost=1.1"})
     kwargs.setdefault("pool_size", 10)
     kwargs.setdefault("max_overflow", 20)
     kwargs.setdefault("pool_pre_ping", True)

@@ -96,7 +96,11 @@ def ingest(*, session: Session, model_id: int, items: list[LabelIn]) -> dict[str
         for cond in bulk.id_filters(session, PendingLabel.pid, found):
             session.execute(delete(PendingLabel).where(PendingLabel.model_id == model_id, cond))
     if history:
-        session.execute(insert(Label), history)
+        if bulk.is_pg(session):  # one INSERT per row would cost more than the rest together
+            cols = ("model_id", "pid", "actual", "ts", "change", "received_at")
+            bulk.copy_rows(session, "labels", cols, ([h[c] for c in cols] for h in history))
+        else:
+            session.execute(insert(Label), history)
     if pend:
         _upsert_pending(session, model_id, list(pend.values()), received)
     dirty.mark(session=session, model_id=model_id, hours=hours)

@@ -56,24 +56,26 @@ def ingest(
     *, session: Session, model_id: int, preds: list[PredictionIn], batch_size: int
 ) -> dict[str, int]:
     """Insert the new predictions; answer accepted and duplicate counts."""
-    ids = [p.pid for p in preds]
-    stored = existing(session=session, model_id=model_id, ids=ids)
-    conflicts = [p.pid for p in preds if p.pid in stored and not p.same_as(stored[p.pid])]
+    received = now()
+    if bulk.is_pg(session):
+        # insert first (ON CONFLICT DO NOTHING) and compare only the ids already stored; a
+        # conflict raises, and the request's transaction rolls the whole batch back
+        inserted = _insert_pg(session, model_id, preds, received) if preds else set()
+        rest = [p for p in preds if p.pid not in inserted]
+    else:
+        inserted, rest = set(), preds
+    stored = existing(session=session, model_id=model_id, ids=[p.pid for p in rest]) \
+        if rest else {}
+    conflicts = [p.pid for p in rest if p.pid in stored and not p.same_as(stored[p.pid])]
     if conflicts:
         raise _conflict(conflicts)
-    new = [p for p in preds if p.pid not in stored]
-    received = now()
+    if bulk.is_pg(session):
+        new = [p for p in preds if p.pid in inserted]
+    else:  # SQLite has one writer (BEGIN IMMEDIATE): the lookup above is authoritative
+        new = [p for p in preds if p.pid not in stored]
+        if new:
+            _insert_sqlite(session, model_id, new, received)
     if new:
-        inserted = (_insert_pg if bulk.is_pg(session) else _insert_sqlite)(
-            session, model_id, new, received
-        )
-        if len(inserted) < len(new):  # a concurrent writer stored some of them first
-            raced = [p for p in new if p.pid not in inserted]
-            again = existing(session=session, model_id=model_id, ids=[p.pid for p in raced])
-            bad = [p.pid for p in raced if p.pid in again and not p.same_as(again[p.pid])]
-            if bad:
-                raise _conflict(bad)
-            new = [p for p in new if p.pid in inserted]
         hours = {epoch_hour(p.ts) for p in new}
         hours |= labels.join_pending(
             session=session, model_id=model_id, ids=[p.pid for p in new]
@@ -92,10 +94,8 @@ def _row(model_id: int, p: PredictionIn, received: datetime) -> dict[str, Any]:
 
 def _insert_sqlite(
     session: Session, model_id: int, new: list[PredictionIn], received: datetime
-) -> set[str]:
-    # SQLite has one writer (BEGIN IMMEDIATE), so the lookup above is authoritative.
+) -> None:
     session.execute(insert(Prediction), [_row(model_id, p, received) for p in new])
-    return {p.pid for p in new}
 
 
 def _insert_pg(

@@ -1,0 +1,1 @@
+"""Benchmarks: scripts that print tables; they are not tests."""
