@@ -91,6 +91,7 @@ def build(session: Session, model: ModelRow, rng: Range, opts: Options,
     settled = [settled_window(a, s + step, model, now) for a, s in zip(base, starts, strict=True)]
     out: list[dict[str, Any]] = []
     binary: list[tuple[dict[str, Any], WindowStats, float | None]] = []
+    references = _references(base, settled) if model.kind == "binary" else []
     for i in range(lookback, len(starts)):
         parts = range(max(0, i - opts.rolling + 1), i + 1)
         acc = Acc()
@@ -100,7 +101,7 @@ def build(session: Session, model: ModelRow, rng: Range, opts: Options,
         window = _head(acc, start, end, now)
         window["settled"] = all(settled[j] for j in parts)
         if model.kind == "binary":
-            ece_value, prior = _reference(base, settled, i)
+            ece_value, prior = references[i]
             window["estimates"] = {"calibration_error": ece_value}
             binary.append((window, to_stats(acc), prior))
         else:
@@ -114,7 +115,8 @@ def build(session: Session, model: ModelRow, rng: Range, opts: Options,
             measures=set(opts.measures) if opts.measures else None)
         for (window, stats, prior), summary in zip(binary, summaries, strict=True):
             estimates = {**summary.pop("estimates", {}), **window["estimates"]}
-            if prior is not None and 0 < prior < 1:
+            # the EM prior is of use where outcomes are missing; skip it where all are in
+            if prior is not None and 0 < prior < 1 and stats.n_labelled < stats.n_pred:
                 estimates["prior_em"] = {"value": em_prior(stats.hist_all, stats.ssum_all,
                                                            prior)}
             window.update(summary)
@@ -122,12 +124,21 @@ def build(session: Session, model: ModelRow, rng: Range, opts: Options,
     return out
 
 
-def _reference(base: list[Acc], settled: list[bool], i: int
-               ) -> tuple[float | None, float | None]:
-    """ECE and prevalence of the trailing settled windows before window i: label-free
-    estimates hold only for calibrated scores, and EM re-estimates the prior from there."""
-    picked = [j for j in range(i - 1, -1, -1) if settled[j] and base[j].scalar("n_labelled")]
-    picked = picked[:CALIBRATION_WINDOWS]
+def _references(base: list[Acc], settled: list[bool]
+                ) -> list[tuple[float | None, float | None]]:
+    """For each window, the ECE and prevalence of the trailing settled windows before it:
+    label-free estimates hold only for calibrated scores, and EM re-estimates the prior
+    from there. One pass, keeping the last few settled windows' histograms."""
+    out: list[tuple[float | None, float | None]] = []
+    recent: list[int] = []
+    for i, acc in enumerate(base):
+        out.append(_reference_of(base, recent))
+        if settled[i] and acc.counts[1]:  # counts[1] is n_labelled
+            recent = (recent + [i])[-CALIBRATION_WINDOWS:]
+    return out
+
+
+def _reference_of(base: list[Acc], picked: list[int]) -> tuple[float | None, float | None]:
     if not picked:
         return None, None
     hist = np.zeros((3, N_BINS), np.int64)
