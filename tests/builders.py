@@ -18,7 +18,8 @@ from sqlalchemy import Engine, text
 from belated.timeutil import from_db
 
 # Tables that hold a model's data, each with a model_id column (asserted counts read these).
-MODEL_TABLES = ("predictions", "labels", "pending_labels", "dirty_buckets", "threshold_changes")
+MODEL_TABLES = ("predictions", "labels", "pending_labels", "dirty_buckets", "threshold_changes",
+                "label_changes")
 
 
 def utcnow() -> datetime:

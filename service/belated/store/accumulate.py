@@ -44,6 +44,22 @@ class Acc:
             for k, v in other.cells.items():
                 self.cells[k] = self.cells.get(k, 0) + v
 
+    def valid(self) -> bool:
+        """No count below zero (after differences were added)."""
+        ok = bool((self.counts >= 0).all() and (self.hist >= 0).all())
+        ok = ok and (self.delays is None or bool((self.delays >= 0).all()))
+        return ok and all(v >= 0 for v in (self.cells or {}).values())
+
+    def tidy(self) -> None:
+        """After differences: sums of empty groups are exactly 0, empty maps are absent."""
+        self.hsum[self.hist == 0] = 0.0
+        if self.counts[COUNTS.index("n_labelled")] + self.counts[COUNTS.index("n_implied")] == 0:
+            self.sums[SUMS.index("brier_sum")] = self.sums[SUMS.index("logloss_sum")] = 0.0
+        if self.delays is not None and not self.delays.any():
+            self.delays = None
+        if self.cells is not None:
+            self.cells = {k: v for k, v in self.cells.items() if v} or None
+
     def scalar(self, name: str) -> int | float:
         """One scalar statistic by name."""
         if name in COUNTS:

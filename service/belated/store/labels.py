@@ -13,7 +13,7 @@ from sqlalchemy.orm import Session
 from belated.clock import now
 from belated.ingest.validate import LabelIn
 from belated.store import bulk, dirty
-from belated.store.tables import Label, PendingLabel, Prediction
+from belated.store.tables import Label, LabelChange, PendingLabel, Prediction
 from belated.timeutil import to_utc
 
 _STAGE = "stage_labels"
@@ -26,6 +26,7 @@ class _Target:
     ts: datetime
     hour: int
     actual: str | None
+    delay_h: float | None
 
 
 def delay_hours(pred_ts: datetime, label_ts: datetime) -> float:
@@ -35,13 +36,14 @@ def delay_hours(pred_ts: datetime, label_ts: datetime) -> float:
 
 def _targets(session: Session, model_id: int, ids: list[str]) -> dict[str, _Target]:
     found: dict[str, _Target] = {}
-    cols = (Prediction.pid, Prediction.row_id, Prediction.ts, Prediction.hour, Prediction.actual)
+    cols = (Prediction.pid, Prediction.row_id, Prediction.ts, Prediction.hour, Prediction.actual,
+            Prediction.delay_h)
     for cond in bulk.id_filters(session, Prediction.pid, ids):
         query = select(*cols).where(Prediction.model_id == model_id, cond)
         if bulk.is_pg(session):  # concurrent corrections of one id apply one after another
             query = query.order_by(Prediction.row_id).with_for_update()
-        for pid, row_id, ts, hour, actual in session.execute(query):
-            found[pid] = _Target(row_id, to_utc(ts), hour, actual)
+        for pid, row_id, ts, hour, actual, delay in session.execute(query):
+            found[pid] = _Target(row_id, to_utc(ts), hour, actual, delay)
     return found
 
 
@@ -66,6 +68,7 @@ def ingest(*, session: Session, model_id: int, items: list[LabelIn]) -> dict[str
     answer = {"matched": 0, "pending": 0, "corrected": 0, "unchanged": 0}
     updates: dict[int, dict[str, Any]] = {}
     history: list[dict[str, Any]] = []
+    changes: list[tuple[Any, ...]] = []
     pend: dict[str, LabelIn] = {}
     hours: set[int] = set()
     for label in items:
@@ -83,10 +86,13 @@ def ingest(*, session: Session, model_id: int, items: list[LabelIn]) -> dict[str
         answer["corrected" if target.actual is not None else "matched"] += 1
         history.append(_history(
             model_id, label, "correction" if target.actual is not None else "first", received))
-        target.actual = label.actual
+        delay = delay_hours(target.ts, label.ts)
+        changes.append((model_id, target.hour, target.row_id, target.actual, target.delay_h,
+                        label.actual, delay))
+        target.actual, target.delay_h = label.actual, delay
         updates[target.row_id] = {
             "row_id": target.row_id, "actual": label.actual, "label_ts": label.ts,
-            "delay_h": delay_hours(target.ts, label.ts),
+            "delay_h": delay,
         }
         hours.add(target.hour)
     if updates:
@@ -103,8 +109,27 @@ def ingest(*, session: Session, model_id: int, items: list[LabelIn]) -> dict[str
             session.execute(insert(Label), history)
     if pend:
         _upsert_pending(session, model_id, list(pend.values()), received)
-    dirty.mark(session=session, model_id=model_id, hours=hours)
+    record_changes(session, changes)
+    dirty.mark(session=session, model_id=model_id, hours=hours, recompute=False)
     return answer
+
+
+_CHANGE_COLS = ("model_id", "hour", "row_id", "old_actual", "old_delay_h", "new_actual",
+                "new_delay_h")
+
+
+def record_changes(session: Session, changes: list[tuple[Any, ...]]) -> None:
+    """Log label changes (model, hour, row, old actual, old delay, new actual, new delay).
+
+    The refresh folds them into the rollups of their hours and deletes them.
+    """
+    if not changes:
+        return
+    if bulk.is_pg(session):
+        bulk.copy_rows(session, "label_changes", _CHANGE_COLS, changes)
+    else:
+        session.execute(insert(LabelChange), [dict(zip(_CHANGE_COLS, c, strict=True))
+                                               for c in changes])
 
 
 def _history(model_id: int, label: LabelIn, change: str, received: datetime) -> dict[str, Any]:
@@ -173,7 +198,7 @@ def join_pending(*, session: Session, model_id: int, ids: list[str] | None) -> s
     query = (
         select(PendingLabel.row_id, PendingLabel.actual, PendingLabel.ts,
                Prediction.row_id, Prediction.ts, Prediction.hour, Prediction.actual,
-               PendingLabel.received_at, PendingLabel.pid)
+               PendingLabel.received_at, PendingLabel.pid, Prediction.delay_h)
         .join(Prediction, (Prediction.model_id == PendingLabel.model_id)
               & (Prediction.pid == PendingLabel.pid))
         .where(PendingLabel.model_id == model_id)
@@ -190,15 +215,18 @@ def join_pending(*, session: Session, model_id: int, ids: list[str] | None) -> s
     if not rows:
         return set()
     latest = _latest_received(session, model_id, [r[8] for r in rows if r[6] is not None])
-    updates = []
-    for _pl_id, actual, lts, p_id, pts, _hour, current, received, pid in rows:
+    updates, changes = [], []
+    for _pl_id, actual, lts, p_id, pts, hour, current, received, pid, old_delay in rows:
         if current is not None and (current == actual or latest.get(pid) is None
                                     or to_utc(received) <= latest[pid]):
             continue  # the current label arrived after the pending one: it stands
+        delay = delay_hours(to_utc(pts), to_utc(lts))
         updates.append({"row_id": p_id, "actual": actual, "label_ts": to_utc(lts),
-                        "delay_h": delay_hours(to_utc(pts), to_utc(lts))})
+                        "delay_h": delay})
+        changes.append((model_id, hour, p_id, current, old_delay, actual, delay))
     if updates:
         (_update_pg if bulk.is_pg(session) else _update_sqlite)(session, updates)
+        record_changes(session, changes)
     done = [r[0] for r in rows]
     for start in range(0, len(done), 5000):
         chunk = done[start:start + 5000]

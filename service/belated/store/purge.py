@@ -9,7 +9,7 @@ from belated.store import rollup_tables as rt
 from belated.store import tables as t
 
 _TABLES: list[type] = [
-    t.Prediction, t.Label, t.PendingLabel, t.DirtyBucket, t.ThresholdChange,
+    t.Prediction, t.Label, t.PendingLabel, t.DirtyBucket, t.LabelChange, t.ThresholdChange,
     rt.Rollup, rt.SegmentValue, rt.SegmentKey,
 ]
 

@@ -26,8 +26,9 @@ BATCH_HOURS = 168
 
 
 def _claim(session: Session, model_id: int | None, lo: int | None, hi: int | None,
-           wait: bool) -> list[tuple[int, int, int]]:
-    query = select(DirtyBucket.model_id, DirtyBucket.hour, DirtyBucket.version)
+           wait: bool) -> list[tuple[int, int, int, bool]]:
+    query = select(DirtyBucket.model_id, DirtyBucket.hour, DirtyBucket.version,
+                   DirtyBucket.recompute)
     if model_id is not None:
         query = query.where(DirtyBucket.model_id == model_id)
     if lo is not None:
@@ -51,18 +52,20 @@ def refresh_claimed(session: Session, *, max_values: int, model_id: int | None =
                     lo: int | None = None, hi: int | None = None, wait: bool = False
                     ) -> list[tuple[int, int, int]]:
     """Refresh one batch of dirty buckets; return the (model, hour, version) marks taken."""
-    claimed = _claim(session, model_id, lo, hi, wait)
-    if not claimed:
+    marks = _claim(session, model_id, lo, hi, wait)
+    if not marks:
         return []
-    by_model: dict[int, list[int]] = defaultdict(list)
-    for mid, hour, _ in claimed:
-        by_model[mid].append(hour)
+    whole: dict[int, list[int]] = defaultdict(list)
+    changed: dict[int, list[int]] = defaultdict(list)
+    for mid, hour, _, recompute in marks:
+        (whole if recompute else changed)[mid].append(hour)
     stamp = now()
-    for mid, hours in by_model.items():
+    for mid in sorted(set(whole) | set(changed)):
         model = session.get(ModelRow, mid)
         if model is not None:
-            rollups.refresh_hours(session=session, model=model, hours=hours, now=stamp,
-                                  max_values=max_values)
+            rollups.refresh_hours(session=session, model=model, hours=whole[mid], now=stamp,
+                                  max_values=max_values, changed=changed[mid])
+    claimed = [(mid, hour, version) for mid, hour, version, _ in marks]
     # Clear only the marks whose version is the one read: a write meanwhile keeps its mark.
     session.execute(delete(DirtyBucket).where(
         tuple_(DirtyBucket.model_id, DirtyBucket.hour, DirtyBucket.version).in_(claimed)))
@@ -89,7 +92,7 @@ def sweep(factory: sessionmaker[Session]) -> int:
         pending_models = session.scalars(select(PendingLabel.model_id).distinct()).all()
         for mid in pending_models:
             hours = labels.join_pending(session=session, model_id=mid, ids=None)
-            marked += dirty.mark(session=session, model_id=mid, hours=hours)
+            marked += dirty.mark(session=session, model_id=mid, hours=hours, recompute=False)
     with transaction(factory) as session:
         for model in session.scalars(
             select(ModelRow).where(ModelRow.negative_after_days.is_not(None))
@@ -101,7 +104,7 @@ def sweep(factory: sessionmaker[Session]) -> int:
 def sweep_model(session: Session, model: ModelRow) -> int:
     """The sweep for one model in the caller's transaction (a read that must be current)."""
     hours = labels.join_pending(session=session, model_id=model.id, ids=None)
-    marked = dirty.mark(session=session, model_id=model.id, hours=hours)
+    marked = dirty.mark(session=session, model_id=model.id, hours=hours, recompute=False)
     if model.negative_after_days is not None:
         marked += _mark_crossed(session, model)
     return marked

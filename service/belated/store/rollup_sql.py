@@ -33,6 +33,8 @@ class Scope:
     hours: Sequence[int] | range
     cutoff: datetime | None
     filters: tuple[tuple[str, str], ...] = ()
+    # aggregate logged label changes (old state weighted -1, new state +1) instead of rows
+    changes: bool = False
 
 
 class _Dialect:
@@ -76,11 +78,14 @@ def _json_path(key: str) -> str:
     return '$."' + key.replace("\\", "\\\\").replace('"', '\\"') + '"'
 
 
-def _where(scope: Scope, pg: bool = False) -> str:
+def _hour_filter(scope: Scope) -> str:
     if isinstance(scope.hours, range):
-        where = f"model_id = :m AND hour >= {scope.hours.start} AND hour < {scope.hours.stop}"
-    else:
-        where = f"model_id = :m AND hour IN ({','.join(str(int(h)) for h in scope.hours)})"
+        return f"model_id = :m AND hour >= {scope.hours.start} AND hour < {scope.hours.stop}"
+    return f"model_id = :m AND hour IN ({','.join(str(int(h)) for h in scope.hours)})"
+
+
+def _where(scope: Scope, pg: bool = False) -> str:
+    where = _hour_filter(scope)
     for i, (key, _) in enumerate(scope.filters):  # several tags at once: from raw rows
         where += f" AND {_tag_sql(pg, i, key)} = :fv{i}"
     return where
@@ -89,9 +94,27 @@ def _where(scope: Scope, pg: bool = False) -> str:
 def _actual(scope: Scope) -> tuple[str, str]:
     if scope.cutoff is None:
         return "actual", "0"
-    eff = "(CASE WHEN actual IS NOT NULL THEN actual WHEN ts <= :cutoff THEN :neg END)"
-    implied = "(CASE WHEN actual IS NULL AND ts <= :cutoff THEN 1 ELSE 0 END)"
+    # a change's old state was implied negative if its hour's rollup was aggregated so
+    cut = "cut" if scope.changes else ":cutoff"
+    eff = f"(CASE WHEN actual IS NOT NULL THEN actual WHEN ts <= {cut} THEN :neg END)"
+    implied = f"(CASE WHEN actual IS NULL AND ts <= {cut} THEN 1 ELSE 0 END)"
     return eff, implied
+
+
+def _source(scope: Scope) -> tuple[str, str, str]:
+    """The FROM clause, the weight of a row, and the row count, for rows or for changes."""
+    if not scope.changes:
+        return "predictions", "1", "COUNT(*)"
+    hours = _hour_filter(scope)
+    side = ("SELECT row_id, {w} AS w, {p}_actual AS actual, {p}_delay_h AS delay_h"
+            f" FROM label_changes WHERE {hours}")
+    src = f"""(SELECT p.model_id, p.hour, p.ts, p.score, p.predicted, p.tags, c.actual,
+          c.delay_h, c.w, r.cut
+        FROM ({side.format(w=-1, p="old")} UNION ALL {side.format(w=1, p="new")}) AS c
+        JOIN predictions p ON p.row_id = c.row_id
+        LEFT JOIN rollups r ON r.model_id = p.model_id AND r.level = 'h'
+          AND r.start = p.hour AND r.seg_key = '' AND r.seg_value = '') AS predictions"""
+    return src, "w", "SUM(w)"
 
 
 def _segment(d: _Dialect, key: str | None) -> tuple[str, str]:
@@ -133,28 +156,31 @@ def scalars(session: Session, scope: Scope, key: str | None, values: Sequence[st
     d = _Dialect(session)
     a, implied = _actual(scope)
     seg, seg_where = _segment(d, key)
+    src, w, count = _source(scope)
+    m = "" if w == "1" else f"{w} * "
     pp = "predicted = :pos"
     if scope.binary:
         clip = d.greatest(d.least("score", str(1 - EPS)), str(EPS))
         label_cols = f"""
-          SUM(CASE WHEN {pp} AND {a} = :pos THEN 1 ELSE 0 END),
-          SUM(CASE WHEN {pp} AND {a} = :neg THEN 1 ELSE 0 END),
-          SUM(CASE WHEN NOT ({pp}) AND {a} = :pos THEN 1 ELSE 0 END),
-          SUM(CASE WHEN NOT ({pp}) AND {a} = :neg THEN 1 ELSE 0 END),
-          SUM(CASE WHEN {a} = :pos THEN (1 - score) * (1 - score)
-                   WHEN {a} = :neg THEN score * score ELSE 0 END),
-          SUM(CASE WHEN {a} = :pos THEN -ln({clip})
-                   WHEN {a} = :neg THEN -ln(1 - {clip}) ELSE 0 END),
-          SUM(CASE WHEN {pp} THEN score ELSE 0 END),
-          SUM(CASE WHEN {pp} THEN 1 - score ELSE 0 END),
-          SUM(CASE WHEN NOT ({pp}) THEN score ELSE 0 END),
-          SUM(CASE WHEN NOT ({pp}) THEN 1 - score ELSE 0 END)"""
+          SUM(CASE WHEN {pp} AND {a} = :pos THEN {w} ELSE 0 END),
+          SUM(CASE WHEN {pp} AND {a} = :neg THEN {w} ELSE 0 END),
+          SUM(CASE WHEN NOT ({pp}) AND {a} = :pos THEN {w} ELSE 0 END),
+          SUM(CASE WHEN NOT ({pp}) AND {a} = :neg THEN {w} ELSE 0 END),
+          SUM(CASE WHEN {a} = :pos THEN {m}(1 - score) * (1 - score)
+                   WHEN {a} = :neg THEN {m}score * score ELSE 0 END),
+          SUM(CASE WHEN {a} = :pos THEN {m}(-ln({clip}))
+                   WHEN {a} = :neg THEN {m}(-ln(1 - {clip})) ELSE 0 END),
+          SUM(CASE WHEN {pp} THEN {m}score ELSE 0 END),
+          SUM(CASE WHEN {pp} THEN {m}(1 - score) ELSE 0 END),
+          SUM(CASE WHEN NOT ({pp}) THEN {m}score ELSE 0 END),
+          SUM(CASE WHEN NOT ({pp}) THEN {m}(1 - score) ELSE 0 END)"""
     else:
         label_cols = ", ".join(["0"] * 4 + ["0.0"] * 6)
+    labelled = f"COUNT({a})" if w == "1" else f"SUM(CASE WHEN {a} IS NOT NULL THEN w ELSE 0 END)"
     sql = f"""
-        SELECT hour, {seg}, COUNT(*), COUNT({a}), SUM({implied}),
-          SUM(CASE WHEN {pp} THEN 1 ELSE 0 END), {label_cols}
-        FROM predictions WHERE {_where(scope, d.pg)}{seg_where}
+        SELECT hour, {seg}, {count}, {labelled}, SUM({m}{implied}),
+          SUM(CASE WHEN {pp} THEN {w} ELSE 0 END), {label_cols}
+        FROM {src} WHERE {_where(scope, d.pg)}{seg_where}
         GROUP BY 1, 2"""
     return _run(session, sql, _params(session, scope, key, values), key)
 
@@ -167,9 +193,11 @@ def histograms(session: Session, scope: Scope, key: str | None, values: Sequence
     seg, seg_where = _segment(d, key)
     cls = f"(CASE WHEN {a} = :pos THEN 0 WHEN {a} IS NOT NULL THEN 1 ELSE 2 END)"
     bin_ = d.least(d.floor_int("score * 100"), "99")
+    src, w, count = _source(scope)
+    ssum = "SUM(score)" if w == "1" else f"SUM({w} * score)"
     sql = f"""
-        SELECT hour, {seg}, {cls}, {bin_}, COUNT(*), SUM(score)
-        FROM predictions WHERE {_where(scope, d.pg)}{seg_where} AND score IS NOT NULL
+        SELECT hour, {seg}, {cls}, {bin_}, {count}, {ssum}
+        FROM {src} WHERE {_where(scope, d.pg)}{seg_where} AND score IS NOT NULL
         GROUP BY 1, 2, 3, 4"""
     return _run(session, sql, _params(session, scope, key, values), key)
 
@@ -179,9 +207,10 @@ def cells(session: Session, scope: Scope, key: str | None, values: Sequence[str]
     """Rows of (hour, segment value, actual, predicted, count) over labelled predictions."""
     d = _Dialect(session)
     seg, seg_where = _segment(d, key)
+    src, _, count = _source(scope)
     sql = f"""
-        SELECT hour, {seg}, actual, predicted, COUNT(*)
-        FROM predictions WHERE {_where(scope, d.pg)}{seg_where} AND actual IS NOT NULL
+        SELECT hour, {seg}, actual, predicted, {count}
+        FROM {src} WHERE {_where(scope, d.pg)}{seg_where} AND actual IS NOT NULL
         GROUP BY 1, 2, 3, 4"""
     return _run(session, sql, _params(session, scope, key, values), key)
 
@@ -194,8 +223,9 @@ def delays(session: Session, scope: Scope) -> list[Any]:
             f" WHEN {h} < 168 THEN 48 + {d.floor_int(f'({h} - 48) / 6')}"
             f" ELSE {d.least('68 + ' + d.floor_int(f'({h} - 168) / 24'), str(LAST_DELAY_BIN))}"
             " END)")
+    src, _, count = _source(scope)
     sql = f"""
-        SELECT hour, {bin_}, COUNT(*) FROM predictions
+        SELECT hour, {bin_}, {count} FROM {src}
         WHERE {_where(scope, d.pg)} AND actual IS NOT NULL AND delay_h IS NOT NULL
         GROUP BY 1, 2"""
     return list(session.execute(text(sql), _params(session, scope, None, ())))

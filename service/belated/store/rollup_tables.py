@@ -47,6 +47,8 @@ class Rollup(Base):
     hist: Mapped[bytes | None] = mapped_column(LargeBinary, nullable=True)
     delays: Mapped[bytes | None] = mapped_column(LargeBinary, nullable=True)
     cells: Mapped[dict[str, int] | None] = mapped_column(Json, nullable=True)
+    # the implied-negative cutoff an hourly row was aggregated with (NULL: none, or daily)
+    cut: Mapped[datetime | None] = mapped_column(UtcDateTime, nullable=True)
 
 class SegmentValue(Base):
     """A tag key:value admitted to rollups (later values roll up under '(other)')."""

@@ -2,9 +2,12 @@
 
 from __future__ import annotations
 
+import logging
 from collections import defaultdict
 from collections.abc import Sequence
+from dataclasses import replace
 from datetime import datetime, timedelta
+from typing import Any
 
 from sqlalchemy import and_, delete, insert, select, text
 from sqlalchemy.orm import Session
@@ -14,8 +17,9 @@ from belated.store import segments
 from belated.store.accumulate import Acc, cell_key
 from belated.store.packing import unpack_delays
 from belated.store.rollup_tables import Rollup
-from belated.store.tables import ModelRow
+from belated.store.tables import LabelChange, ModelRow
 
+log = logging.getLogger(__name__)
 Key = tuple[int, str, str]  # (start hour, segment key, segment value)
 
 
@@ -60,28 +64,129 @@ def compute(
 
 def refresh_hours(
     *, session: Session, model: ModelRow, hours: Sequence[int], now: datetime,
-    max_values: int,
+    max_values: int, changed: Sequence[int] = (),
 ) -> int:
-    """Recompute the hourly rollups of `hours` and the daily rows of their days."""
-    hours = sorted(set(hours))
-    if not hours:
+    """Bring the hourly rollups of `hours` and `changed`, and the daily rows above, up to date.
+
+    `hours` are aggregated again from raw rows. `changed` are hours where only labels
+    changed since their rollups were written: the logged changes are folded in by
+    difference (old state out, new state in), a cost that follows the number of changes.
+    An hour whose rollups cannot take the difference (never aggregated, a segment admitted
+    since) is aggregated from raw rows instead.
+    """
+    whole = sorted(set(hours))
+    changed = sorted(set(changed) - set(whole))
+    if not whole and not changed:
         return 0
-    keys = segments.admit(session=session, model=model, hours=hours, max_values=max_values)
-    accs = compute(session, scope_of(model, hours, now), keys)
-    _replace(session, model.id, "h", hours, accs)
-    refresh_days(session=session, model_id=model.id, days={h - h % 24 for h in hours})
-    return len(hours)
+    _lock_days(session, model.id, {h - h % 24 for h in (*whole, *changed)})
+    day_deltas: dict[Key, Acc] = {}
+    if changed:
+        stuck, day_deltas = _fold_changes(session, model, changed, now)
+        whole = sorted(set(whole) | stuck)
+    if whole:
+        keys = segments.admit(session=session, model=model, hours=whole, max_values=max_values)
+        scope = scope_of(model, whole, now)
+        accs = compute(session, scope, keys)
+        _replace(session, model.id, "h", whole, accs, cuts=dict.fromkeys(whole, scope.cutoff))
+    _forget_changes(session, model.id, [*whole, *changed])
+    recount = {h - h % 24 for h in whole}
+    recount |= _add_days(session, model.id, {k: v for k, v in day_deltas.items()
+                                             if k[0] not in recount})
+    refresh_days(session=session, model_id=model.id, days=recount)
+    return len(whole) + len(changed)
+
+
+def _fold_changes(session: Session, model: ModelRow, hours: list[int], now: datetime
+                  ) -> tuple[set[int], dict[Key, Acc]]:
+    """Add the logged label changes of `hours` to their hourly rows.
+
+    Returns the hours that need a recompute instead, and the per-day sums of the
+    differences applied (for the daily rows).
+    """
+    keys = segments.admit(session=session, model=model, hours=[], max_values=0)
+    delta = compute(session, replace(scope_of(model, hours, now), changes=True), keys)
+    if not delta:
+        return set(), {}
+    stored: dict[Key, Acc] = {}
+    cuts: dict[int, datetime | None] = {}
+    for row in _rows(session, model.id, "h", sorted({k[0] for k in delta})):
+        stored[(row.start, row.seg_key, row.seg_value)] = Acc.from_row(row)
+        if row.seg_key == "" and row.seg_value == "":
+            cuts[row.start] = row.cut
+    stuck = {h for (h, k, v) in delta if (h, "", "") not in stored or (h, k, v) not in stored}
+    for key, acc in delta.items():
+        if key[0] not in stuck:
+            stored[key].add(acc)
+            stored[key].tidy()
+            if not stored[key].valid():
+                stuck.add(key[0])  # cannot happen if the log is whole; recompute to be sure
+    if stuck:
+        log.warning("model %s: %d hours aggregated again instead of folding label changes",
+                    model.id, len(stuck))
+    done = sorted({k[0] for k in delta} - stuck)
+    _replace(session, model.id, "h", done,
+             {k: a for k, a in stored.items() if k[0] not in stuck}, cuts=cuts)
+    per_day: dict[Key, Acc] = defaultdict(Acc)
+    for (hour, k, v), acc in delta.items():
+        if hour not in stuck:
+            per_day[(hour - hour % 24, k, v)].add(acc)
+    return stuck, per_day
+
+
+def _add_days(session: Session, model_id: int, deltas: dict[Key, Acc]) -> set[int]:
+    """Add differences to daily rows; return the days that must be summed again instead."""
+    if not deltas:
+        return set()
+    stored = {(r.start, r.seg_key, r.seg_value): Acc.from_row(r)
+              for r in _rows(session, model_id, "d", sorted({k[0] for k in deltas}))}
+    missing = {k[0] for k in deltas if k not in stored}
+    for key, acc in deltas.items():
+        if key[0] not in missing:
+            stored[key].add(acc)
+            stored[key].tidy()
+    _replace(session, model_id, "d", sorted({k[0] for k in deltas} - missing),
+             {k: a for k, a in stored.items() if k[0] not in missing})
+    return missing
+
+
+def _rows(session: Session, model_id: int, level: str, starts: list[int]) -> list[Any]:
+    out: list[Any] = []
+    for i in range(0, len(starts), 500):
+        out.extend(session.execute(select(Rollup.__table__).where(
+            Rollup.model_id == model_id, Rollup.level == level,
+            Rollup.start.in_(starts[i : i + 500]))))
+    return out
+
+
+def _forget_changes(session: Session, model_id: int, hours: list[int]) -> None:
+    # Writers of these hours wait on the claimed marks, so no change of theirs can commit
+    # between the aggregation above and this delete.
+    for i in range(0, len(hours), 1000):
+        session.execute(delete(LabelChange).where(
+            LabelChange.model_id == model_id, LabelChange.hour.in_(hours[i : i + 1000])))
+
+
+def _lock_days(session: Session, model_id: int, days: set[int]) -> None:
+    if session.get_bind().dialect.name != "postgresql":
+        return
+    # a read-side refresh and the job may touch different hours of the same day: the
+    # second waits here, then reads the daily rows the first committed (in day order, so
+    # that two refreshes cannot wait on each other)
+    for day in sorted(days):
+        session.execute(text("SELECT pg_advisory_xact_lock(:m, :d)"),
+                        {"m": model_id, "d": day // 24})
 
 
 def _replace(session: Session, model_id: int, level: str, starts: Sequence[int],
-             accs: dict[Key, Acc]) -> None:
+             accs: dict[Key, Acc], cuts: dict[int, datetime | None] | None = None) -> None:
     for i in range(0, len(starts), 1000):
         chunk = list(starts[i : i + 1000])
         session.execute(delete(Rollup).where(
             Rollup.model_id == model_id, Rollup.level == level, Rollup.start.in_(chunk)))
+    cuts = cuts or {}
     rows = [
         {"model_id": model_id, "level": level, "start": start, "seg_key": k, "seg_value": v,
-         **acc.to_row()}
+         "cut": cuts.get(start), **acc.to_row()}
         for (start, k, v), acc in accs.items()
     ]
     for i in range(0, len(rows), 2000):
@@ -93,12 +198,7 @@ def refresh_days(*, session: Session, model_id: int, days: set[int]) -> None:
     if not days:
         return
     ordered = sorted(days)
-    if session.get_bind().dialect.name == "postgresql":
-        # a read-side refresh and the job may touch different hours of the same day: the
-        # second waits here, then sums the hourly rows the first committed
-        for day in ordered:
-            session.execute(text("SELECT pg_advisory_xact_lock(:m, :d)"),
-                            {"m": model_id, "d": day // 24})
+    _lock_days(session, model_id, days)
     accs: dict[Key, Acc] = defaultdict(Acc)
     for i in range(0, len(ordered), 200):
         chunk = ordered[i : i + 200]

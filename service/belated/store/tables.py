@@ -8,6 +8,7 @@ from typing import Any
 from sqlalchemy import (
     JSON,
     BigInteger,
+    Boolean,
     DateTime,
     Float,
     ForeignKey,
@@ -16,6 +17,7 @@ from sqlalchemy import (
     MetaData,
     String,
     UniqueConstraint,
+    true,
 )
 from sqlalchemy.dialects.postgresql import JSONB
 from sqlalchemy.orm import DeclarativeBase, Mapped, mapped_column
@@ -149,7 +151,12 @@ class PendingLabel(Base):
 
 
 class DirtyBucket(Base):
-    """A (model, hour) whose rollups are stale; `version` grows with every write to it."""
+    """A (model, hour) whose rollups are stale; `version` changes with every write to it.
+
+    `recompute` is true when the hour must be aggregated again from raw rows (new
+    predictions, implied negatives, a rebuild); false when only labels changed, whose
+    effect the refresh adds from `label_changes` instead.
+    """
 
     __tablename__ = "dirty_buckets"
     model_id: Mapped[int] = mapped_column(
@@ -158,6 +165,26 @@ class DirtyBucket(Base):
     hour: Mapped[int] = mapped_column(Integer, primary_key=True)
     version: Mapped[int] = mapped_column(BigInteger)
     marked_at: Mapped[datetime] = mapped_column(UtcDateTime)
+    recompute: Mapped[bool] = mapped_column(Boolean, default=True, server_default=true())
+
+
+class LabelChange(Base):
+    """One change of a stored prediction's label, not yet folded into its hour's rollups.
+
+    The refresh subtracts the old state's contribution and adds the new one's, so that
+    late labels cost work in proportion to their number, not to the rows of their hours.
+    """
+
+    __tablename__ = "label_changes"
+    __table_args__ = (Index("ix_label_changes_model_hour", "model_id", "hour"),)
+    id: Mapped[int] = mapped_column(BigId, primary_key=True, autoincrement=True)
+    model_id: Mapped[int] = mapped_column(ForeignKey("models.id", ondelete="CASCADE"))
+    hour: Mapped[int] = mapped_column(Integer)
+    row_id: Mapped[int] = mapped_column(BigInteger)
+    old_actual: Mapped[str | None] = mapped_column(String(128), nullable=True)
+    old_delay_h: Mapped[float | None] = mapped_column(Float, nullable=True)
+    new_actual: Mapped[str] = mapped_column(String(128))
+    new_delay_h: Mapped[float | None] = mapped_column(Float, nullable=True)
 
 
 class ServiceState(Base):
