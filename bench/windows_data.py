@@ -214,6 +214,8 @@ def ingest_labels(sa_url: str, model_id: int, d: Data, batch: int = 10_000,
 
 
 _KINDS = (
+    ("UNION ALL SELECT row_id", "label changes GROUP BY"),
+    ("DELETE FROM label_changes", "label changes: delete"),
     ("jsonb_object_keys", "segments: seen keys"),
     ("SELECT DISTINCT", "segments: seen values"),
     ("delay_h < 48", "delays GROUP BY"),
@@ -221,7 +223,7 @@ _KINDS = (
     ("COUNT(*), COUNT(", "scalars GROUP BY"),
     ("DELETE FROM rollups", "rollups: delete"),
     ("INSERT INTO rollups", "rollups: insert"),
-    ("FROM rollups", "daily: read hourly rows"),
+    ("FROM rollups", "rollups: read stored rows"),
     ("dirty_buckets", "dirty marks"),
 )
 

@@ -18,12 +18,20 @@ from typing import Any
 
 import numpy as np
 import pytest
-from sqlalchemy import Engine
+from sqlalchemy import Engine, text
 
 from belated.clock import clock
 from belated.store import refresh, rollups
 from belated.store.tables import PendingLabel
-from tests.builders import count, create_model, rows
+from tests.builders import (
+    base_time,
+    count,
+    create_model,
+    label,
+    predictions,
+    rows,
+    three_class_scores,
+)
 from tests.conftest import Tenant
 from tests.metrics.datasets import (
     NOW,
@@ -197,3 +205,62 @@ def test_an_hour_whose_segments_grew_since_is_aggregated_again(
     rebuilt = _rollups(engine, model.id)
     whole = {k: v for k, v in folded.items() if k[2] == ""}
     assert_close(_without_cut({k: rebuilt[k] for k in whole}), _without_cut(whole))
+
+
+COLS = ("n_pred", "n_labelled", "n_implied", "tp", "fp", "fn", "tn", "cells")
+
+
+@pytest.fixture()
+def hour0() -> Iterator[Any]:
+    """An hour five days ago, with the clock where a one-day cutoff falls inside it."""
+    h = (base_time() - timedelta(days=5)).replace(minute=0)
+    clock.set(h + timedelta(days=1, minutes=30))
+    yield h
+    clock.set(None)
+
+
+def _overall_hour(engine: Engine, model_id: int) -> dict[str, Any]:
+    found = [r for k, r in _rollups(engine, model_id).items() if k[0] == "h" and k[2] == ""]
+    assert len(found) == 1
+    return {c: found[0][c] for c in COLS}
+
+
+@pytest.mark.parametrize("how", ["setting dropped", "hour aggregated before cutoffs stored"])
+@pytest.mark.parametrize("kind", ["binary", "multiclass"])
+def test_an_old_implied_negative_is_judged_as_its_hour_counted_it(
+    tenant: Tenant, engine: Engine, sessions: Any, hour0: Any, how: str, kind: str
+) -> None:
+    classes = ("a", "b", "c")
+    if kind == "binary":
+        model = create_model(tenant, engine, negative_after_days=1)
+        items = predictions(2, base=hour0) + predictions(2, start=50, base=hour0)
+        for it in items:
+            it["score"] = 0.42  # one histogram bin, kept non-empty by the later rows
+        outcome = "1"
+    else:
+        model = create_model(tenant, engine, kind="multiclass", classes=list(classes),
+                             negative_after_days=1)
+        items = predictions(3, base=hour0)
+        for it in items:
+            it.pop("score")
+            it["scores"] = three_class_scores("b", 0.6, classes)
+        outcome = "c"
+    r = tenant.client.post(f"/v1/models/{model.name}/predictions", json={"predictions": items})
+    assert r.status_code == 200, r.text
+    refresh.refresh_all(sessions, max_values=100, model_id=model.id)
+    assert _overall_hour(engine, model.id)["n_implied"] > 0  # the first rows are past the cut
+    if how == "setting dropped":
+        r = tenant.client.patch(f"/v1/models/{model.name}", json={"negative_after_days": None})
+        assert r.status_code == 200, r.text
+    else:  # what an upgrade to revision 0003 leaves: hourly rows without their cutoff
+        with engine.begin() as conn:
+            conn.execute(text("UPDATE rollups SET cut = NULL WHERE model_id = :m"),
+                         {"m": model.id})
+    r = tenant.client.post(f"/v1/models/{model.name}/labels",
+                           json={"labels": [label(items[0]["id"], outcome)]})
+    assert r.status_code == 200, r.text
+    refresh.refresh_all(sessions, max_values=100, model_id=model.id)
+    folded = _overall_hour(engine, model.id)
+    assert folded["n_labelled"] <= folded["n_pred"]
+    refresh.rebuild(sessions, max_values=100, model_id=model.id)
+    assert folded == _overall_hour(engine, model.id)

@@ -53,8 +53,12 @@ class Acc:
     def tidy(self) -> None:
         """After differences: sums of empty groups are exactly 0, empty maps are absent."""
         self.hsum[self.hist == 0] = 0.0
+        losses = [SUMS.index("brier_sum"), SUMS.index("logloss_sum")]
         if self.counts[COUNTS.index("n_labelled")] + self.counts[COUNTS.index("n_implied")] == 0:
-            self.sums[SUMS.index("brier_sum")] = self.sums[SUMS.index("logloss_sum")] = 0.0
+            self.sums[losses] = 0.0
+        # sums of non-negative terms: a rounding remainder below zero is zero
+        self.sums[losses] = np.maximum(self.sums[losses], 0.0)
+        self.hsum[self.hsum < 0] = 0.0
         if self.delays is not None and not self.delays.any():
             self.delays = None
         if self.cells is not None:

@@ -69,8 +69,16 @@ def create(*, session: Session, project_id: int, fields: dict[str, Any]) -> Mode
 
 
 def update(*, session: Session, model: ModelRow, fields: dict[str, Any]) -> ModelRow:
-    """Change settings; a threshold change is recorded in the history."""
+    """Change settings; a threshold change is recorded in the history.
+
+    A setting the rollups depend on (implied negatives, segment keys) marks every hour of
+    the model for aggregation from raw rows, so that stored rows never mix old and new.
+    """
+    from belated.store import refresh
+
     stamp = now()
+    reshape = any(key in _ROLLUP_SETTINGS and getattr(model, key) != value
+                  for key, value in fields.items())
     for key, value in fields.items():
         setattr(model, key, value)
     if "threshold" in fields:
@@ -79,7 +87,12 @@ def update(*, session: Session, model: ModelRow, fields: dict[str, Any]) -> Mode
         )
     model.updated_at = stamp
     session.flush()
+    if reshape:
+        refresh.mark_model(session, model.id)
     return model
+
+
+_ROLLUP_SETTINGS = ("negative_after_days", "segment_keys", "positive", "classes")
 
 
 def delete(*, session: Session, model: ModelRow) -> None:

@@ -92,12 +92,16 @@ def _where(scope: Scope, pg: bool = False) -> str:
 
 
 def _actual(scope: Scope) -> tuple[str, str]:
-    if scope.cutoff is None:
+    if scope.changes:
+        # a change's old state was an implied negative if its hour was aggregated with a
+        # cutoff after it, whatever the model's setting is now
+        cut = "cut IS NOT NULL AND ts <= cut"
+    elif scope.cutoff is None:
         return "actual", "0"
-    # a change's old state was implied negative if its hour's rollup was aggregated so
-    cut = "cut" if scope.changes else ":cutoff"
-    eff = f"(CASE WHEN actual IS NOT NULL THEN actual WHEN ts <= {cut} THEN :neg END)"
-    implied = f"(CASE WHEN actual IS NULL AND ts <= {cut} THEN 1 ELSE 0 END)"
+    else:
+        cut = "ts <= :cutoff"
+    eff = f"(CASE WHEN actual IS NOT NULL THEN actual WHEN {cut} THEN :neg END)"
+    implied = f"(CASE WHEN actual IS NULL AND {cut} THEN 1 ELSE 0 END)"
     return eff, implied
 
 

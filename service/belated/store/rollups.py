@@ -9,13 +9,14 @@ from dataclasses import replace
 from datetime import datetime, timedelta
 from typing import Any
 
+import numpy as np
 from sqlalchemy import and_, delete, insert, select, text
 from sqlalchemy.orm import Session
 
 from belated.store import rollup_sql as q
 from belated.store import segments
 from belated.store.accumulate import Acc, cell_key
-from belated.store.packing import unpack_delays
+from belated.store.packing import N_BINS, unpack_delays
 from belated.store.rollup_tables import Rollup
 from belated.store.tables import LabelChange, ModelRow
 
@@ -45,10 +46,7 @@ def compute(
         for row in q.scalars(session, scope, key, values):
             accs[(row[0], skey, row[1])].set_scalars(row[2:])
         if scope.binary:
-            for hour, seg, cls, bin_, n, ssum in q.histograms(session, scope, key, values):
-                acc = accs[(hour, skey, seg)]
-                acc.hist[cls, bin_] += n
-                acc.hsum[cls, bin_] += ssum or 0.0
+            _add_histograms(accs, skey, q.histograms(session, scope, key, values))
         else:
             for hour, seg, actual, predicted, n in q.cells(session, scope, key, values):
                 acc = accs[(hour, skey, seg)]
@@ -60,6 +58,21 @@ def compute(
             acc.delays = unpack_delays(None)
         acc.delays[bin_] += n
     return accs
+
+
+def _add_histograms(accs: dict[Key, Acc], skey: str, rows: list[Any]) -> None:
+    """Histogram rows (hour, segment, class, bin, count, score sum) into the accumulators,
+    one numpy scatter per (hour, segment) rather than one item assignment per row."""
+    grouped: dict[tuple[int, str], list[Any]] = defaultdict(list)
+    for row in rows:
+        grouped[(row[0], row[1])].append(row)
+    for (hour, seg), group in grouped.items():
+        acc = accs[(hour, skey, seg)]
+        _, _, cls, bins, n, ssum = zip(*group, strict=True)
+        flat = np.asarray(cls, np.int64) * N_BINS + np.asarray(bins, np.int64)
+        np.add.at(acc.hist.reshape(-1), flat, np.asarray(n, np.int64))
+        np.add.at(acc.hsum.reshape(-1), flat,
+                  np.asarray([v or 0.0 for v in ssum], np.float64))
 
 
 def refresh_hours(
@@ -93,7 +106,7 @@ def refresh_hours(
     recount |= _add_days(session, model.id, {k: v for k, v in day_deltas.items()
                                              if k[0] not in recount})
     refresh_days(session=session, model_id=model.id, days=recount)
-    return len(whole) + len(changed)
+    return len(set(whole) | set(changed))
 
 
 def _fold_changes(session: Session, model: ModelRow, hours: list[int], now: datetime
@@ -114,6 +127,10 @@ def _fold_changes(session: Session, model: ModelRow, hours: list[int], now: date
         if row.seg_key == "" and row.seg_value == "":
             cuts[row.start] = row.cut
     stuck = {h for (h, k, v) in delta if (h, "", "") not in stored or (h, k, v) not in stored}
+    if model.negative_after_days is not None:
+        # aggregated before cutoffs were stored with rows: how its unlabelled rows were
+        # counted is unknown, so a difference cannot be taken
+        stuck |= {h for h in cuts if cuts[h] is None}
     for key, acc in delta.items():
         if key[0] not in stuck:
             stored[key].add(acc)
