@@ -154,13 +154,9 @@ SCALARS = ("n_pred", "n_labelled", "n_implied", "n_pred_pos", "tp", "fp", "fn", 
            "brier_sum", "logloss_sum", "exp_tp", "exp_fp", "exp_fn", "exp_tn")
 
 
-def scalars(session: Session, scope: Scope, key: str | None, values: Sequence[str]
-            ) -> list[Any]:
-    """Rows of (hour, segment value, *SCALARS) for the whole model or one tag key."""
-    d = _Dialect(session)
+def _scalar_cols(d: _Dialect, scope: Scope) -> str:
     a, implied = _actual(scope)
-    seg, seg_where = _segment(d, key)
-    src, w, count = _source(scope)
+    _, w, count = _source(scope)
     m = "" if w == "1" else f"{w} * "
     pp = "predicted = :pos"
     if scope.binary:
@@ -181,42 +177,104 @@ def scalars(session: Session, scope: Scope, key: str | None, values: Sequence[st
     else:
         label_cols = ", ".join(["0"] * 4 + ["0.0"] * 6)
     labelled = f"COUNT({a})" if w == "1" else f"SUM(CASE WHEN {a} IS NOT NULL THEN w ELSE 0 END)"
+    return (f"{count}, {labelled}, SUM({m}{implied}),"
+            f" SUM(CASE WHEN {pp} THEN {w} ELSE 0 END), {label_cols}")
+
+
+def _hist_parts(d: _Dialect, scope: Scope) -> tuple[list[str], str, str]:
+    a, _ = _actual(scope)
+    cls = f"(CASE WHEN {a} = :pos THEN 0 WHEN {a} IS NOT NULL THEN 1 ELSE 2 END)"
+    bin_ = d.least(d.floor_int("score * 100"), "99")
+    _, w, count = _source(scope)
+    ssum = "SUM(score)" if w == "1" else f"SUM({w} * score)"
+    return [cls, bin_], f"{count}, {ssum}", " AND score IS NOT NULL"
+
+
+def _cell_parts(scope: Scope) -> tuple[list[str], str, str]:
+    _, _, count = _source(scope)
+    return ["actual", "predicted"], count, " AND actual IS NOT NULL"
+
+
+def _per_key(session: Session, scope: Scope, key: str | None, values: Sequence[str],
+             extra: list[str], cols: str, where: str) -> list[Any]:
+    d = _Dialect(session)
+    seg, seg_where = _segment(d, key)
+    src, _, _ = _source(scope)
+    lead = ", ".join(["hour", seg, *extra])
     sql = f"""
-        SELECT hour, {seg}, {count}, {labelled}, SUM({m}{implied}),
-          SUM(CASE WHEN {pp} THEN {w} ELSE 0 END), {label_cols}
-        FROM {src} WHERE {_where(scope, d.pg)}{seg_where}
-        GROUP BY 1, 2"""
+        SELECT {lead}, {cols}
+        FROM {src} WHERE {_where(scope, d.pg)}{seg_where}{where}
+        GROUP BY {", ".join(str(i + 1) for i in range(2 + len(extra)))}"""
     return _run(session, sql, _params(session, scope, key, values), key)
+
+
+def scalars(session: Session, scope: Scope, key: str | None, values: Sequence[str]
+            ) -> list[Any]:
+    """Rows of (hour, segment value, *SCALARS) for the whole model or one tag key."""
+    return _per_key(session, scope, key, values, [], _scalar_cols(_Dialect(session), scope), "")
 
 
 def histograms(session: Session, scope: Scope, key: str | None, values: Sequence[str]
                ) -> list[Any]:
     """Rows of (hour, segment value, class 0/1/2 = pos/neg/unlabelled, bin, count, score sum)."""
-    d = _Dialect(session)
-    a, _ = _actual(scope)
-    seg, seg_where = _segment(d, key)
-    cls = f"(CASE WHEN {a} = :pos THEN 0 WHEN {a} IS NOT NULL THEN 1 ELSE 2 END)"
-    bin_ = d.least(d.floor_int("score * 100"), "99")
-    src, w, count = _source(scope)
-    ssum = "SUM(score)" if w == "1" else f"SUM({w} * score)"
-    sql = f"""
-        SELECT hour, {seg}, {cls}, {bin_}, {count}, {ssum}
-        FROM {src} WHERE {_where(scope, d.pg)}{seg_where} AND score IS NOT NULL
-        GROUP BY 1, 2, 3, 4"""
-    return _run(session, sql, _params(session, scope, key, values), key)
+    extra, cols, where = _hist_parts(_Dialect(session), scope)
+    return _per_key(session, scope, key, values, extra, cols, where)
 
 
 def cells(session: Session, scope: Scope, key: str | None, values: Sequence[str]
           ) -> list[Any]:
     """Rows of (hour, segment value, actual, predicted, count) over labelled predictions."""
+    extra, cols, where = _cell_parts(scope)
+    return _per_key(session, scope, key, values, extra, cols, where)
+
+
+def grouped(session: Session, scope: Scope, keys: dict[str, list[str]], what: str
+            ) -> list[tuple[Any, ...]]:
+    """One PostgreSQL scan for the whole model and every tag key (GROUPING SETS).
+
+    `what` is 'scalars', 'histograms' or 'cells'. Rows are (hour, segment key, segment
+    value, *the per-key function's columns after the segment value).
+    """
     d = _Dialect(session)
-    seg, seg_where = _segment(d, key)
-    src, _, count = _source(scope)
+    assert d.pg
+    extra: list[str]
+    if what == "scalars":
+        extra, cols, where = [], _scalar_cols(d, scope), ""
+    elif what == "histograms":
+        extra, cols, where = _hist_parts(d, scope)
+    else:
+        extra, cols, where = _cell_parts(scope)
+    names = list(keys)
+    segs = [f"(CASE WHEN (tags ->> :k{i}) IN :v{i} THEN (tags ->> :k{i})"
+            f" WHEN (tags ->> :k{i}) IS NOT NULL THEN '(other)' END) AS s{i}"
+            for i in range(len(names))]
+    inner = ", ".join([*segs, *(f"{e} AS e{i}" for i, e in enumerate(extra))])
+    s_list = [f"s{i}" for i in range(len(names))]
+    e_list = [f"e{i}" for i in range(len(extra))]
+    sets = ", ".join(f"({', '.join(['hour', *group, *e_list])})"
+                     for group in [[], *([s] for s in s_list)])
+    src, _, _ = _source(scope)
     sql = f"""
-        SELECT hour, {seg}, actual, predicted, {count}
-        FROM {src} WHERE {_where(scope, d.pg)}{seg_where} AND actual IS NOT NULL
-        GROUP BY 1, 2, 3, 4"""
-    return _run(session, sql, _params(session, scope, key, values), key)
+        SELECT {", ".join(["hour", f"GROUPING({', '.join(s_list)})", *s_list, *e_list])},
+          {cols}
+        FROM (SELECT *, {inner} FROM {src} WHERE {_where(scope, True)}{where}) AS predictions
+        GROUP BY GROUPING SETS ({sets})"""
+    params = _params(session, scope, None, ())
+    stmt = text(sql)
+    for i, key in enumerate(names):
+        params[f"k{i}"], params[f"v{i}"] = key, list(keys[key]) or ["\x01none"]
+        stmt = stmt.bindparams(bindparam(f"v{i}", expanding=True))
+    n = len(names)
+    out: list[tuple[Any, ...]] = []
+    for row in session.execute(stmt, params):
+        g, rest = row[1], tuple(row[2 + n:])
+        if g == (1 << n) - 1:
+            out.append((row[0], "", "", *rest))
+            continue
+        i = next(i for i in range(n) if not g & (1 << (n - 1 - i)))
+        if row[2 + i] is not None:  # predictions without the tag are in no segment of it
+            out.append((row[0], names[i], row[2 + i], *rest))
+    return out
 
 
 def delays(session: Session, scope: Scope) -> list[Any]:

@@ -40,18 +40,26 @@ def compute(
 ) -> dict[Key, Acc]:
     """Aggregate the scope's raw rows into accumulators per (hour, segment)."""
     accs: dict[Key, Acc] = defaultdict(Acc)
-    for key in [None, *keys]:
-        values = keys.get(key, []) if key else []
-        skey = key or ""
-        for row in q.scalars(session, scope, key, values):
-            accs[(row[0], skey, row[1])].set_scalars(row[2:])
-        if scope.binary:
-            _add_histograms(accs, skey, q.histograms(session, scope, key, values))
-        else:
-            for hour, seg, actual, predicted, n in q.cells(session, scope, key, values):
-                acc = accs[(hour, skey, seg)]
-                acc.cells = acc.cells or {}
-                acc.cells[cell_key(actual, predicted)] = int(n)
+    if keys and session.get_bind().dialect.name == "postgresql":
+        # one scan for the whole model and every tag key
+        sets = {what: q.grouped(session, scope, keys, what)
+                for what in ("scalars", "histograms" if scope.binary else "cells")}
+    else:
+        sets = defaultdict(list)
+        kinds = [("scalars", q.scalars), ("histograms", q.histograms) if scope.binary
+                 else ("cells", q.cells)]
+        for key in [None, *keys]:
+            values, skey = (keys.get(key, []) if key else []), key or ""
+            for what, query in kinds:
+                sets[what] += [(r[0], skey, *r[1:]) for r in query(session, scope, key, values)]
+    for hour, skey, seg, *values in sets["scalars"]:
+        accs[(hour, skey, seg)].set_scalars(values)
+    if scope.binary:
+        _add_histograms(accs, sets["histograms"])
+    for hour, skey, seg, actual, predicted, n in sets.get("cells", ()):
+        acc = accs[(hour, skey, seg)]
+        acc.cells = acc.cells or {}
+        acc.cells[cell_key(actual, predicted)] = int(n)
     for hour, bin_, n in q.delays(session, scope):
         acc = accs[(hour, "", "")]
         if acc.delays is None:
@@ -60,15 +68,15 @@ def compute(
     return accs
 
 
-def _add_histograms(accs: dict[Key, Acc], skey: str, rows: list[Any]) -> None:
-    """Histogram rows (hour, segment, class, bin, count, score sum) into the accumulators,
-    one numpy scatter per (hour, segment) rather than one item assignment per row."""
-    grouped: dict[tuple[int, str], list[Any]] = defaultdict(list)
+def _add_histograms(accs: dict[Key, Acc], rows: list[Any]) -> None:
+    """Histogram rows (hour, segment key, segment value, class, bin, count, score sum) into
+    the accumulators, one numpy scatter per segment rather than one assignment per row."""
+    grouped: dict[Key, list[Any]] = defaultdict(list)
     for row in rows:
-        grouped[(row[0], row[1])].append(row)
-    for (hour, seg), group in grouped.items():
-        acc = accs[(hour, skey, seg)]
-        _, _, cls, bins, n, ssum = zip(*group, strict=True)
+        grouped[(row[0], row[1], row[2])].append(row)
+    for key, group in grouped.items():
+        acc = accs[key]
+        _, _, _, cls, bins, n, ssum = zip(*group, strict=True)
         flat = np.asarray(cls, np.int64) * N_BINS + np.asarray(bins, np.int64)
         np.add.at(acc.hist.reshape(-1), flat, np.asarray(n, np.int64))
         np.add.at(acc.hsum.reshape(-1), flat,
