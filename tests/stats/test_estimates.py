@@ -103,3 +103,28 @@ def test_expected_confusion_definitions() -> None:
     assert got["recall"].value == pytest.approx(1.5 / 1.8)
     assert got["prevalence"].value == pytest.approx(1.8 / 4)
     assert expected_measures(0.0, 0.0, 0.0, 0.0)["precision"].reason == "no predictions"
+
+
+def test_em_over_many_windows_equals_em_window_by_window() -> None:
+    # The vectorised form runs the same iteration per window (seeded windows from the
+    # shifted-prior simulation above, plus the undefined and boundary cases).
+    from belated.stats.estimates import em_prior_many
+
+    windows = [_shifted_window(seed=20 + k, train_prior=0.3, window_prior=w)[0]
+               for k, w in enumerate((0.05, 0.1, 0.3, 0.5, 0.7))]
+    hists = [s.hist_all for s in windows]
+    sums = [s.ssum_all for s in windows]
+    priors = [0.3, 0.3, 0.2, 0.6, 0.3]
+    edge = np.zeros(100)
+    edge[0] = 5  # every score at 0: the prior is 0 at once
+    hists += [np.zeros(100), edge, hists[0]]
+    sums += [np.zeros(100), edge * 0.0, sums[0]]
+    priors += [0.3, 0.3, math.nan]
+    got = em_prior_many(np.array(hists), np.array(sums), np.array(priors))
+    for h, s, p, g in zip(hists, sums, priors, got, strict=True):
+        alone = em_prior(h, s, p)
+        if alone is None:
+            assert g is None
+        else:
+            assert g == pytest.approx(alone, abs=1e-9)
+    assert got[5] is None and got[6] == 0.0 and got[7] is None

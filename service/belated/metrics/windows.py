@@ -13,7 +13,7 @@ from sqlalchemy.orm import Session
 from belated.metrics.load import ensure_fresh, epoch_hour, load_hours
 from belated.metrics.params import Range
 from belated.stats.calibration import ece
-from belated.stats.estimates import em_prior
+from belated.stats.estimates import em_prior_many
 from belated.stats.multiclass import summarise_multiclass
 from belated.stats.summary import summarise_many
 from belated.stats.window import WindowStats
@@ -113,12 +113,18 @@ def build(session: Session, model: ModelRow, rng: Range, opts: Options,
             [b[1] for b in binary], beta=opts.beta, interval=opts.interval,
             confidence=opts.confidence, resamples=opts.resamples,
             measures=set(opts.measures) if opts.measures else None)
-        for (window, stats, prior), summary in zip(binary, summaries, strict=True):
+        # the EM prior is of use where outcomes are missing; skip it where all are in
+        wanted = [i for i, (_, stats, prior) in enumerate(binary)
+                  if prior is not None and 0 < prior < 1 and stats.n_labelled < stats.n_pred]
+        priors = dict(zip(wanted, em_prior_many(
+            np.array([binary[i][1].hist_all for i in wanted]),
+            np.array([binary[i][1].ssum_all for i in wanted]),
+            np.array([binary[i][2] for i in wanted], dtype=np.float64)), strict=True)
+        ) if wanted else {}
+        for i, ((window, _, _), summary) in enumerate(zip(binary, summaries, strict=True)):
             estimates = {**summary.pop("estimates", {}), **window["estimates"]}
-            # the EM prior is of use where outcomes are missing; skip it where all are in
-            if prior is not None and 0 < prior < 1 and stats.n_labelled < stats.n_pred:
-                estimates["prior_em"] = {"value": em_prior(stats.hist_all, stats.ssum_all,
-                                                           prior)}
+            if i in priors:
+                estimates["prior_em"] = {"value": priors[i]}
             window.update(summary)
             window["estimates"] = estimates
     return out

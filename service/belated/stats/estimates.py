@@ -86,3 +86,56 @@ def em_prior(
             return updated
         prior = updated
     return prior
+
+
+def em_prior_many(
+    hists: np.ndarray,
+    ssums: np.ndarray,
+    train_priors: np.ndarray,
+    *,
+    tol: float = 1e-9,
+    max_iter: int = 1000,
+) -> list[float | None]:
+    """`em_prior` for many windows at once (rows of `hists` and `ssums`).
+
+    The same iteration runs for every window side by side; a window stops when its own
+    step is below `tol`, so each answer is what `em_prior` gives alone (up to the order of
+    floating-point summation).
+    """
+    if not len(train_priors):
+        return []
+    counts = np.asarray(hists, dtype=np.float64).reshape(len(train_priors), -1)
+    sums = np.asarray(ssums, dtype=np.float64).reshape(counts.shape)
+    base = np.asarray(train_priors, dtype=np.float64)
+    total = counts.sum(axis=1)
+    with np.errstate(invalid="ignore"):
+        valid = (total > 0) & np.isfinite(base) & (base > 0.0) & (base < 1.0)
+    out: list[float | None] = [None] * len(base)
+    idx = np.flatnonzero(valid)
+    if not idx.size:
+        return out
+    c = counts[idx]
+    weights = c / total[idx, None]
+    filled = c > 0
+    p = np.where(filled, np.clip(sums[idx] / np.where(filled, c, 1.0), 0.0, 1.0), 0.0)
+    pt = base[idx, None]
+    prior = (weights * p).sum(axis=1)
+    result = prior.copy()
+    active = np.ones(idx.size, dtype=bool)
+    for _ in range(max_iter):
+        # every score at 0 (or 1): the window is all negative (positive), a fixed point
+        active &= (prior > 0.0) & (prior < 1.0)
+        if not active.any():
+            break
+        a = np.flatnonzero(active)
+        pr = prior[a, None]
+        up = pr / pt[a] * p[a]
+        down = (1.0 - pr) / (1.0 - pt[a]) * (1.0 - p[a])
+        updated = (weights[a] * (up / (up + down))).sum(axis=1)
+        converged = np.abs(updated - prior[a]) < tol
+        prior[a] = updated
+        result[a] = updated
+        active[a[converged]] = False
+    for j, i in enumerate(idx):
+        out[int(i)] = float(result[j])
+    return out
