@@ -39,15 +39,33 @@ def json_text(value: Any) -> str | None:
 
 
 def copy_rows(
-    session: Session, table: str, columns: Sequence[str], rows: Iterable[Sequence[Any]]
+    session: Session, table: str, columns: Sequence[str], rows: Iterable[Sequence[Any]],
+    types: Sequence[str] | None = None,
 ) -> None:
-    """COPY rows into a table on the session's own connection (PostgreSQL only)."""
+    """COPY rows into a table on the session's own connection (PostgreSQL only).
+
+    With `types` (PostgreSQL type names, one per column) the binary format is used: no
+    text escaping, which matters for bytea.
+    """
     raw = session.connection().connection.driver_connection
     assert raw is not None
     cols = ", ".join(columns)
-    with raw.cursor() as cur, cur.copy(f"COPY {table} ({cols}) FROM STDIN") as copy:
+    binary = " (FORMAT BINARY)" if types else ""
+    with raw.cursor() as cur, cur.copy(f"COPY {table} ({cols}) FROM STDIN{binary}") as copy:
+        if types:
+            copy.set_types(list(types))
         for row in rows:
             copy.write_row(row)
+
+
+def fetch_binary(session: Session, sql: str, params: Sequence[Any]) -> list[Any]:
+    """Rows (named tuples) of a query with results in binary format (PostgreSQL only)."""
+    from psycopg.rows import namedtuple_row
+
+    raw = session.connection().connection.driver_connection
+    assert raw is not None
+    with raw.cursor(binary=True, row_factory=namedtuple_row) as cur:
+        return cur.execute(sql, params).fetchall()
 
 
 def temp_table(session: Session, name: str, ddl_columns: str) -> None:

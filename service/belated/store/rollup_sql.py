@@ -112,12 +112,14 @@ def _source(scope: Scope) -> tuple[str, str, str]:
     hours = _hour_filter(scope)
     side = ("SELECT row_id, {w} AS w, {p}_actual AS actual, {p}_delay_h AS delay_h"
             f" FROM label_changes WHERE {hours}")
+    # the cutoff by a lookup per row: with the change log not yet analysed, a join let
+    # PostgreSQL scan every hourly rollup row of the model for each change
     src = f"""(SELECT p.model_id, p.hour, p.ts, p.score, p.predicted, p.tags, c.actual,
-          c.delay_h, c.w, r.cut
+          c.delay_h, c.w,
+          (SELECT r.cut FROM rollups r WHERE r.model_id = :m AND r.level = 'h'
+             AND r.start = p.hour AND r.seg_key = '' AND r.seg_value = '') AS cut
         FROM ({side.format(w=-1, p="old")} UNION ALL {side.format(w=1, p="new")}) AS c
-        JOIN predictions p ON p.row_id = c.row_id
-        LEFT JOIN rollups r ON r.model_id = p.model_id AND r.level = 'h'
-          AND r.start = p.hour AND r.seg_key = '' AND r.seg_value = '') AS predictions"""
+        JOIN predictions p ON p.row_id = c.row_id) AS predictions"""
     return src, "w", "SUM(w)"
 
 

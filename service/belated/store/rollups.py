@@ -10,11 +10,12 @@ from datetime import datetime, timedelta
 from typing import Any
 
 import numpy as np
-from sqlalchemy import and_, delete, insert, select, text
+from psycopg.types.json import Jsonb
+from sqlalchemy import and_, delete, insert, select, text, tuple_
 from sqlalchemy.orm import Session
 
+from belated.store import bulk, segments
 from belated.store import rollup_sql as q
-from belated.store import segments
 from belated.store.accumulate import Acc, cell_key
 from belated.store.packing import N_BINS, unpack_delays
 from belated.store.rollup_tables import Rollup
@@ -148,9 +149,7 @@ def _fold_changes(session: Session, model: ModelRow, hours: list[int], now: date
     if stuck:
         log.warning("model %s: %d hours aggregated again instead of folding label changes",
                     model.id, len(stuck))
-    done = sorted({k[0] for k in delta} - stuck)
-    _replace(session, model.id, "h", done,
-             {k: a for k, a in stored.items() if k[0] not in stuck}, cuts=cuts)
+    _rewrite(session, model.id, "h", {k: stored[k] for k in delta if k[0] not in stuck}, cuts)
     per_day: dict[Key, Acc] = defaultdict(Acc)
     for (hour, k, v), acc in delta.items():
         if hour not in stuck:
@@ -169,12 +168,41 @@ def _add_days(session: Session, model_id: int, deltas: dict[Key, Acc]) -> set[in
         if key[0] not in missing:
             stored[key].add(acc)
             stored[key].tidy()
-    _replace(session, model_id, "d", sorted({k[0] for k in deltas} - missing),
-             {k: a for k, a in stored.items() if k[0] not in missing})
+    _rewrite(session, model_id, "d", {k: stored[k] for k in deltas if k[0] not in missing}, {})
     return missing
 
 
+def _rewrite(session: Session, model_id: int, level: str, accs: dict[Key, Acc],
+             cuts: dict[int, datetime | None]) -> None:
+    """Replace exactly these rows (the other rows of their hours or days did not change)."""
+    keys = list(accs)
+    if keys and bulk.is_pg(session):  # a join on the key: IN over row values scans instead
+        starts, skeys, values = (list(x) for x in zip(*keys, strict=True))
+        session.execute(text(
+            "DELETE FROM rollups r USING unnest(CAST(:s AS int4[]), CAST(:k AS text[]),"
+            " CAST(:v AS text[])) AS d(start, seg_key, seg_value) WHERE r.model_id = :m"
+            " AND r.level = :l AND r.start = d.start AND r.seg_key = d.seg_key"
+            " AND r.seg_value = d.seg_value"),
+            {"s": starts, "k": skeys, "v": values, "m": model_id, "l": level})
+        keys = []
+    for i in range(0, len(keys), 1000):
+        session.execute(delete(Rollup).where(
+            Rollup.model_id == model_id, Rollup.level == level,
+            tuple_(Rollup.start, Rollup.seg_key, Rollup.seg_value).in_(keys[i : i + 1000])))
+    _insert(session, model_id, level, accs, cuts)
+
+
+_PG_TYPES = {"model_id": "int4", "level": "varchar", "start": "int4", "seg_key": "varchar",
+             "seg_value": "varchar", **dict.fromkeys(q.SCALARS[:8], "int8"),
+             **dict.fromkeys(q.SCALARS[8:], "float8"), "hist": "bytea", "delays": "bytea",
+             "cells": "jsonb", "cut": "timestamptz"}
+
+
 def _rows(session: Session, model_id: int, level: str, starts: list[int]) -> list[Any]:
+    if bulk.is_pg(session):  # bytea in binary: no hex to decode
+        return bulk.fetch_binary(
+            session, "SELECT * FROM rollups WHERE model_id = %s AND level = %s"
+            " AND start = ANY(%s)", (model_id, level, starts))
     out: list[Any] = []
     for i in range(0, len(starts), 500):
         out.extend(session.execute(select(Rollup.__table__).where(
@@ -208,12 +236,24 @@ def _replace(session: Session, model_id: int, level: str, starts: Sequence[int],
         chunk = list(starts[i : i + 1000])
         session.execute(delete(Rollup).where(
             Rollup.model_id == model_id, Rollup.level == level, Rollup.start.in_(chunk)))
-    cuts = cuts or {}
+    _insert(session, model_id, level, accs, cuts or {})
+
+
+def _insert(session: Session, model_id: int, level: str, accs: dict[Key, Acc],
+            cuts: dict[int, datetime | None]) -> None:
     rows = [
         {"model_id": model_id, "level": level, "start": start, "seg_key": k, "seg_value": v,
          "cut": cuts.get(start), **acc.to_row()}
         for (start, k, v), acc in accs.items()
     ]
+    if not rows:
+        return
+    if bulk.is_pg(session):  # the ORM sent these one statement per row
+        cols = list(rows[0])
+        bulk.copy_rows(session, "rollups", cols, (
+            [Jsonb(r[c]) if c == "cells" and r[c] is not None else r[c]
+             for c in cols] for r in rows), types=[_PG_TYPES[c] for c in cols])
+        return
     for i in range(0, len(rows), 2000):
         session.execute(insert(Rollup), rows[i : i + 2000])
 
