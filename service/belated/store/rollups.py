@@ -11,7 +11,7 @@ from typing import Any
 
 import numpy as np
 from psycopg.types.json import Jsonb
-from sqlalchemy import and_, delete, insert, select, text, tuple_
+from sqlalchemy import delete, insert, select, text, tuple_
 from sqlalchemy.orm import Session
 
 from belated.store import bulk, segments
@@ -105,6 +105,7 @@ def refresh_hours(
     if changed:
         stuck, day_deltas = _fold_changes(session, model, changed, now)
         whole = sorted(set(whole) | stuck)
+    accs: dict[Key, Acc] = {}
     if whole:
         keys = segments.admit(session=session, model=model, hours=whole, max_values=max_values)
         scope = scope_of(model, whole, now)
@@ -114,7 +115,7 @@ def refresh_hours(
     recount = {h - h % 24 for h in whole}
     recount |= _add_days(session, model.id, {k: v for k, v in day_deltas.items()
                                              if k[0] not in recount})
-    refresh_days(session=session, model_id=model.id, days=recount)
+    refresh_days(session=session, model_id=model.id, days=recount, known=accs, known_hours=whole)
     return len(set(whole) | set(changed))
 
 
@@ -258,21 +259,24 @@ def _insert(session: Session, model_id: int, level: str, accs: dict[Key, Acc],
         session.execute(insert(Rollup), rows[i : i + 2000])
 
 
-def refresh_days(*, session: Session, model_id: int, days: set[int]) -> None:
-    """Rebuild the daily rows of `days` (epoch hours at midnight) from their hourly rows."""
+def refresh_days(*, session: Session, model_id: int, days: set[int],
+                 known: dict[Key, Acc] | None = None, known_hours: Sequence[int] = ()) -> None:
+    """Rebuild the daily rows of `days` (epoch hours at midnight) from their hourly rows.
+
+    `known` holds the complete hourly rows of `known_hours` just written by the caller;
+    only the other hours of those days are read back from the store.
+    """
     if not days:
         return
     ordered = sorted(days)
     _lock_days(session, model_id, days)
     accs: dict[Key, Acc] = defaultdict(Acc)
-    for i in range(0, len(ordered), 200):
-        chunk = ordered[i : i + 200]
-        rows = session.execute(select(Rollup.__table__).where(
-            Rollup.model_id == model_id, Rollup.level == "h",
-            and_(Rollup.start >= chunk[0], Rollup.start < chunk[-1] + 24)))
-        wanted = set(chunk)
-        for row in rows:
-            day = row.start - row.start % 24
-            if day in wanted:
-                accs[(day, row.seg_key, row.seg_value)].add(Acc.from_row(row))
+    wanted = set(ordered)
+    for (hour, k, v), acc in (known or {}).items():
+        if hour - hour % 24 in wanted:
+            accs[(hour - hour % 24, k, v)].add(acc)
+    skip = set(known_hours)
+    needed = sorted({d + h for d in ordered for h in range(24)} - skip)
+    for row in _rows(session, model_id, "h", needed):
+        accs[(row.start - row.start % 24, row.seg_key, row.seg_value)].add(Acc.from_row(row))
     _replace(session, model_id, "d", ordered, accs)
