@@ -46,8 +46,10 @@ def _rollup_segment(session: Session, model: ModelRow,
 
 
 def load_hours(session: Session, model: ModelRow, *, level: str, lo: int, hi: int,
-               filters: tuple[tuple[str, str], ...], now: datetime) -> dict[int, Acc]:
-    """Accumulators keyed by row start hour (hourly or daily rows) over [lo, hi)."""
+               filters: tuple[tuple[str, str], ...], now: datetime, delays: bool = True
+               ) -> dict[int, Acc]:
+    """Accumulators keyed by row start hour (hourly or daily rows) over [lo, hi);
+    `delays=False` leaves out the label-delay bins (the windows do not use them)."""
     seg = _rollup_segment(session, model, filters)
     if seg is None:
         return _from_raw(session, model, level=level, lo=lo, hi=hi, filters=filters, now=now)
@@ -55,7 +57,7 @@ def load_hours(session: Session, model: ModelRow, *, level: str, lo: int, hi: in
     rows = session.execute(select(Rollup.__table__).where(
         Rollup.model_id == model.id, Rollup.level == level, Rollup.start >= lo_q,
         Rollup.start < hi, Rollup.seg_key == seg[0], Rollup.seg_value == seg[1]))
-    return {row.start: Acc.from_row(row) for row in rows}
+    return {row.start: Acc.from_row(row, delays) for row in rows}
 
 
 def _from_raw(session: Session, model: ModelRow, *, level: str, lo: int, hi: int,

@@ -12,7 +12,7 @@ from sqlalchemy.orm import Session
 
 from belated.metrics.load import ensure_fresh, epoch_hour, load_hours
 from belated.metrics.params import Range
-from belated.stats.calibration import ece
+from belated.stats.calibration import ece_arrays
 from belated.stats.estimates import em_prior_many
 from belated.stats.multiclass import summarise_multiclass
 from belated.stats.summary import summarise_many
@@ -58,7 +58,8 @@ def bucket_accs(session: Session, model: ModelRow, rng: Range, lookback: int,
     lo, hi = epoch_hour(first), epoch_hour(rng.end)
     ensure_fresh(session, model, lo, hi, max_values)
     level = "h" if rng.granularity == "hour" else "d"
-    rows = load_hours(session, model, level=level, lo=lo, hi=hi, filters=filters, now=now)
+    rows = load_hours(session, model, level=level, lo=lo, hi=hi, filters=filters, now=now,
+                      delays=False)
     accs = [Acc() for _ in starts]
     index = {epoch_hour(s): i for i, s in enumerate(starts)}
     span = int(step / timedelta(hours=1))
@@ -134,27 +135,31 @@ def _references(base: list[Acc], settled: list[bool]
                 ) -> list[tuple[float | None, float | None]]:
     """For each window, the ECE and prevalence of the trailing settled windows before it:
     label-free estimates hold only for calibrated scores, and EM re-estimates the prior
-    from there. One pass, keeping the last few settled windows' histograms."""
+    from there. All windows at once: each one's last few settled, labelled windows are
+    gathered into a (windows, CALIBRATION_WINDOWS) index and summed."""
+    if not base:
+        return []
+    hist = np.stack([np.zeros((3, N_BINS), np.int64), *(a.hist for a in base)])
+    hsum = np.stack([np.zeros((3, N_BINS), np.float64), *(a.hsum for a in base)])
+    useful = np.array([i + 1 for i, a in enumerate(base) if settled[i] and a.counts[1]],
+                      dtype=np.int64)  # +1: row 0 of the stacks is the empty window
+    before = np.searchsorted(useful, np.arange(1, len(base) + 1), side="left")
+    offsets = np.arange(-CALIBRATION_WINDOWS, 0)
+    pick = before[:, None] + offsets[None, :]
+    index = np.where(pick >= 0, np.concatenate([[0], useful])[np.maximum(pick, -1) + 1], 0)
+    h = hist[index].sum(axis=1)
+    s = hsum[index].sum(axis=1)
+    labelled = h[:, 0].sum(axis=-1) + h[:, 1].sum(axis=-1)
+    values = ece_arrays(h[:, 0], s[:, 0], h[:, 1], s[:, 1])
     out: list[tuple[float | None, float | None]] = []
-    recent: list[int] = []
-    for i, acc in enumerate(base):
-        out.append(_reference_of(base, recent))
-        if settled[i] and acc.counts[1]:  # counts[1] is n_labelled
-            recent = (recent + [i])[-CALIBRATION_WINDOWS:]
+    for i in range(len(base)):
+        if before[i] == 0:
+            out.append((None, None))
+            continue
+        value = float(values[i])
+        prior = float(h[i, 0].sum() / labelled[i]) if labelled[i] else None
+        out.append((None if value != value else value, prior))
     return out
-
-
-def _reference_of(base: list[Acc], picked: list[int]) -> tuple[float | None, float | None]:
-    if not picked:
-        return None, None
-    hist = np.zeros((3, N_BINS), np.int64)
-    hsum = np.zeros((3, N_BINS), np.float64)
-    for j in picked:
-        hist += base[j].hist
-        hsum += base[j].hsum
-    labelled = int(hist[0].sum() + hist[1].sum())
-    prior = float(hist[0].sum() / labelled) if labelled else None
-    return ece(hist[0], hsum[0], hist[1], hsum[1]).value, prior
 
 
 def _head(acc: Acc, start: datetime, end: datetime, now: datetime) -> dict[str, Any]:

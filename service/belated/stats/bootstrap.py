@@ -14,6 +14,7 @@ from collections.abc import Sequence
 
 import numpy as np
 
+from belated.stats.memo import Memo
 from belated.stats.values import Value
 
 DEFAULT_RESAMPLES = 200
@@ -113,6 +114,32 @@ def bootstrap_binary_many(
     """
     if resamples == 0 or not counts:
         return [dict.fromkeys(BOOTSTRAPPED_BINARY) for _ in counts]
+    keys = [(tuple(int(c) for c in cells), float(beta), float(confidence), resamples, seed)
+            for cells in counts]
+    out: list[dict[str, Interval] | None] = [None] * len(keys)
+    missing: list[int] = []
+    for i, key in enumerate(keys):
+        found, value = _MEMO.get(key)
+        if found:
+            out[i] = value
+        else:
+            missing.append(i)
+    if missing:
+        fresh = _bootstrap_binary_many([counts[i] for i in missing], beta=beta,
+                                       confidence=confidence, resamples=resamples, seed=seed)
+        for i, value in zip(missing, fresh, strict=True):
+            _MEMO.put(keys[i], value)
+            out[i] = value
+    return [dict(o) for o in out if o is not None]
+
+
+_MEMO = Memo(50_000)
+
+
+def _bootstrap_binary_many(
+    counts: Sequence[tuple[int, int, int, int]], *, beta: float, confidence: float,
+    resamples: int, seed: int,
+) -> list[dict[str, Interval]]:
     draws = np.zeros((len(counts), resamples, 4), dtype=np.int64)
     for i, cells in enumerate(counts):
         n = sum(cells)

@@ -24,6 +24,7 @@ import numpy as np
 
 from belated.stats.fbeta import fbeta_from_counts
 from belated.stats.measures import FBETA_UNDEFINED, NO_PREDICTIONS
+from belated.stats.memo import Memo, digest
 from belated.stats.values import Value, ratio
 
 
@@ -107,6 +108,22 @@ def em_prior_many(
     counts = np.asarray(hists, dtype=np.float64).reshape(len(train_priors), -1)
     sums = np.asarray(ssums, dtype=np.float64).reshape(counts.shape)
     base = np.asarray(train_priors, dtype=np.float64)
+    keys = [(digest(counts[i], sums[i]), float(base[i]), tol, max_iter)
+            for i in range(len(base))]
+    known = [_EM_MEMO.get(key) for key in keys]
+    todo = [i for i, (found, _) in enumerate(known) if not found]
+    fresh = _em_many(counts[todo], sums[todo], base[todo], tol, max_iter) if todo else []
+    for i, value in zip(todo, fresh, strict=True):
+        _EM_MEMO.put(keys[i], value)
+        known[i] = (True, value)
+    return [value for _, value in known]
+
+
+_EM_MEMO = Memo(50_000)
+
+
+def _em_many(counts: np.ndarray, sums: np.ndarray, base: np.ndarray, tol: float,
+             max_iter: int) -> list[float | None]:
     total = counts.sum(axis=1)
     with np.errstate(invalid="ignore"):
         valid = (total > 0) & np.isfinite(base) & (base > 0.0) & (base < 1.0)

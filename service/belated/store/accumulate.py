@@ -80,17 +80,15 @@ class Acc:
         return row
 
     @classmethod
-    def from_row(cls, row: Any) -> Acc:
-        """An accumulator from a stored rollup row."""
-        acc = cls()
-        acc.counts[:] = [getattr(row, n) for n in COUNTS]
-        acc.sums[:] = [getattr(row, n) for n in SUMS]
-        if row.hist:
-            acc.hist, acc.hsum = unpack_hist(row.hist)
-        if row.delays:
-            acc.delays = unpack_delays(row.delays)
-        acc.cells = dict(row.cells) if row.cells else None
-        return acc
+    def from_row(cls, row: Any, delays: bool = True) -> Acc:
+        """An accumulator from a stored rollup row (`delays=False`: leave the delay bins)."""
+        hist, hsum = unpack_hist(row.hist)
+        return cls(
+            counts=np.array([getattr(row, n) for n in COUNTS], np.int64),
+            sums=np.array([getattr(row, n) for n in SUMS], np.float64),
+            hist=hist, hsum=hsum,
+            delays=unpack_delays(row.delays) if delays and row.delays else None,
+            cells=dict(row.cells) if row.cells else None)
 
 
 def cell_key(actual: str, predicted: str) -> str:
