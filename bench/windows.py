@@ -117,10 +117,12 @@ def check_rollups(url: str, model_id: int, expected: dict[int, tuple]) -> str:
     return f"{bad} bad hours" + ("" if flat else f", daily n_pred by key {sums}")
 
 
-def latency(service: Service, token: str, n: int = 50) -> tuple[list[float], dict[str, Any]]:
-    """Seconds per metrics request (after 3 warm-ups) and the last answer."""
+def latency(service: Service, token: str, n: int = 50
+            ) -> tuple[list[float], dict[str, Any], float]:
+    """Seconds per metrics request (after 3 warm-ups), the last answer, and the first
+    request's seconds (a fresh server: nothing memoised, pools empty)."""
     url = f"{service.url}/v1/models/{wd.MODEL}/metrics"
-    times = []
+    times, cold = [], 0.0
     with httpx.Client(headers={"Authorization": f"Bearer {token}"}, timeout=120) as client:
         for i in range(n + 3):
             t0 = time.perf_counter()
@@ -129,16 +131,20 @@ def latency(service: Service, token: str, n: int = 50) -> tuple[list[float], dic
             resp.raise_for_status()
             if i >= 3:
                 times.append(elapsed)
-    return times, resp.json()
+            elif i == 0:
+                cold = elapsed
+    return times, resp.json(), cold
 
 
-def serve_and_time(sa_url: str, token: str) -> tuple[list[float], dict[str, Any], float]:
-    """Latencies and last answer of the metrics query, and the server's peak RSS in MiB."""
+def serve_and_time(sa_url: str, token: str
+                   ) -> tuple[list[float], dict[str, Any], float, float]:
+    """Latencies and last answer of the metrics query, the server's peak RSS in MiB, and
+    the first request's seconds."""
     service = Service(sa_url, extra_env={"BELATED_LOG_FORMAT": "text"})
     try:
         service.wait_ready()
-        times, answer = latency(service, token)
-        return times, answer, peak_rss_mib(service.pid)
+        times, answer, cold = latency(service, token)
+        return times, answer, peak_rss_mib(service.pid), cold
     finally:
         service.stop()
 
@@ -209,14 +215,15 @@ def run_scale(n: int, recomputes: int, explain: bool, keep: bool = False
         res["check_rebuild"] = check_rollups(url, model_id, expected)
         # Before the late labels every day still has unlabelled predictions (1%), which the
         # label-free estimates work on; after them the year is fully labelled.
-        res["lat_early"], _, res["server_early_mib"] = serve_and_time(sa_url, token)
+        res["lat_early"], _, res["server_early_mib"], res["cold_early"] = serve_and_time(
+            sa_url, token)
         res["ingest_s"], res["ingest"] = wd.ingest_labels(sa_url, model_id, data)
         with psycopg.connect(url) as conn:
             res["dirty"] = conn.execute("SELECT count(*) FROM dirty_buckets").fetchone()[0]
         res["refresh"], res["refresh_mib"] = run_child("refresh", sa_url, model_id)
         res["floor2_s"], expected = floor(url, model_id, repeats=1)
         res["check_refresh"] = check_rollups(url, model_id, expected)
-        res["lat"], answer, res["server_mib"] = serve_and_time(sa_url, token)
+        res["lat"], answer, res["server_mib"], res["cold"] = serve_and_time(sa_url, token)
         times, ref = [], {}
         for _ in range(recomputes):
             t0 = time.perf_counter()
@@ -279,6 +286,10 @@ def table(small: dict[str, Any], big: dict[str, Any]) -> str:
         ["metrics, 365 daily windows, 1% unlabelled, p95 ms",
          *both(lambda r: f"{1000 * percentile(r['lat_early'], 0.95):.0f}"), "< 100 ms",
          _ok(percentile(big["lat_early"], 0.95) < 0.1)],
+        ["metrics, 365 daily windows, first request on a fresh server, ms (1% unlabelled /"
+         " all labelled)",
+         *both(lambda r: f"{1000 * r['cold_early']:.0f} / {1000 * r['cold']:.0f}"),
+         "", ""],
         ["metrics, 365 daily windows, all labelled, p50 ms (50 requests)",
          *both(lambda r: f"{1000 * p50(r):.0f}"), "", ""],
         ["metrics, 365 daily windows, all labelled, p95 ms",
