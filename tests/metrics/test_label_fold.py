@@ -54,13 +54,6 @@ RANGE = (START, START + timedelta(days=25))
 
 
 @pytest.fixture()
-def frozen() -> Iterator[None]:
-    clock.set(NOW)
-    yield
-    clock.set(None)
-
-
-@pytest.fixture()
 def spy(monkeypatch: pytest.MonkeyPatch) -> list[tuple[bool, int]]:
     """(changes?, hours) of every aggregation the refresh runs (the real one runs)."""
     calls: list[tuple[bool, int]] = []

@@ -9,7 +9,6 @@ from __future__ import annotations
 
 import threading
 import time
-from collections.abc import Iterator
 from datetime import timedelta
 from typing import Any
 
@@ -41,14 +40,6 @@ from tests.metrics.datasets import (
 
 SETTINGS = {"label_delay_days": 14, "min_coverage": 0.8}
 RANGE = (START, START + timedelta(days=25))
-
-
-@pytest.fixture()
-def frozen() -> Iterator[None]:
-    """The process clock frozen at NOW, let go after the test (tests move it)."""
-    clock.set(NOW)
-    yield
-    clock.set(None)
 
 
 def check_days(tenant: Tenant, model: str, sc: Any, sent: np.ndarray, labelled: np.ndarray,

@@ -11,7 +11,6 @@ proportion_confint (Wilson, Clopper-Pearson) and the Jeffreys interval from scip
 
 from __future__ import annotations
 
-from collections.abc import Iterator
 from dataclasses import dataclass
 from datetime import timedelta
 from typing import Any
@@ -24,7 +23,6 @@ from sklearn.metrics import accuracy_score, confusion_matrix, precision_recall_f
 from sqlalchemy import Engine
 from statsmodels.stats.proportion import proportion_confint
 
-from belated.clock import clock
 from tests.builders import counts, create_model, predictions
 from tests.conftest import Tenant
 from tests.metrics.datasets import (
@@ -141,14 +139,6 @@ def wine(days: int = 8) -> Wine:
     classes = tuple(str(c) for c in data.target_names)
     return Wine([f"wine-{i:03d}" for i in range(n)], ts, proba, data.target.copy(), classes,
                 rng.random(n) < 0.9)
-
-
-@pytest.fixture()
-def frozen() -> Iterator[None]:
-    """The process clock frozen at NOW, let go after the test."""
-    clock.set(NOW)
-    yield
-    clock.set(None)
 
 
 def check_multiclass(window: dict[str, Any], w: Wine, rows: np.ndarray, beta: float) -> None:

@@ -7,7 +7,6 @@ segments at once (answered from raw rows) the rows carrying both.
 
 from __future__ import annotations
 
-from collections.abc import Iterator
 from datetime import datetime, timedelta
 from typing import Any
 
@@ -16,7 +15,6 @@ import pytest
 from sqlalchemy import Engine
 
 from belated.app import create_app
-from belated.clock import clock
 from belated.config import Settings
 from belated.store import refresh
 from tests.builders import create_model, rows
@@ -39,14 +37,6 @@ from tests.metrics.datasets import (
 )
 
 SETTINGS = {"label_delay_days": 14, "min_coverage": 0.8}
-
-
-@pytest.fixture()
-def frozen() -> Iterator[None]:
-    """The process clock frozen at NOW, let go after the test."""
-    clock.set(NOW)
-    yield
-    clock.set(None)
 
 
 def _settled_part(sc: object, mask: np.ndarray, labelled: np.ndarray, start: datetime,

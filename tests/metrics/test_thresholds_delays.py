@@ -15,7 +15,6 @@ from __future__ import annotations
 
 import dataclasses
 import math
-from collections.abc import Iterator
 from datetime import timedelta
 from typing import Any
 
@@ -40,14 +39,6 @@ from tests.metrics.datasets import (
 )
 
 EDGES = np.array([*range(0, 49), *range(54, 169, 6), *range(192, 9601, 24), math.inf], float)
-
-
-@pytest.fixture()
-def frozen() -> Iterator[None]:
-    """The process clock frozen at NOW, let go after the test."""
-    clock.set(NOW)
-    yield
-    clock.set(None)
 
 
 def _get(tenant: Tenant, model: str, what: str, **params: Any) -> dict[str, Any]:
