@@ -18,6 +18,7 @@ import httpx
 import numpy as np
 import pytest
 
+from belated.store.packing import unpack_delays, unpack_hist
 from tests.conftest import STORES
 from tests.reliability.procs import (
     Service,
@@ -121,16 +122,15 @@ def per_batch(store: Store, mid: int, table: str, column: str) -> dict[int, int]
 
 
 def rollup_snapshot(store: Store, mid: int) -> dict[tuple[Any, ...], dict[str, Any]]:
-    """Every rollup row of a model, histograms unpacked (int64 counts then float64 sums)."""
+    """Every rollup row of a model, histograms unpacked (belated.store.packing)."""
     cols = ", ".join(INT_COLUMNS + FLOAT_COLUMNS)
     out = {}
     for r in store.rows(f"SELECT level, start, seg_key, seg_value, {cols}, hist, delays"
                         " FROM rollups WHERE model_id = ?", mid):
-        blob = bytes(r[18]) if r[18] else bytes(4800)
+        hist, sums = unpack_hist(bytes(r[18]) if r[18] else None)
         out[r[:4]] = {"ints": r[4:12], "floats": np.array(r[12:18], dtype=float),
-                      "hist": np.frombuffer(blob[:2400], "<i8"),
-                      "sums": np.frombuffer(blob[2400:], "<f8"),
-                      "delays": np.frombuffer(bytes(r[19] or b""), "<i8")}
+                      "hist": hist, "sums": sums,
+                      "delays": unpack_delays(bytes(r[19]) if r[19] else None)}
     return out
 
 

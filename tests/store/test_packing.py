@@ -46,3 +46,10 @@ def test_truncated_blobs_are_refused() -> None:
         unpack_hist(blob[:-1])
     with pytest.raises(ValueError):
         unpack_delays(b"x" * 17)
+
+
+def test_a_cell_index_out_of_range_is_refused() -> None:
+    blob = bytearray(pack_hist(*_hist(5, 2)))
+    blob[3:5] = (3 * N_BINS).to_bytes(2, "little")  # the first index, one past the last cell
+    with pytest.raises(ValueError):
+        unpack_hist(bytes(blob))

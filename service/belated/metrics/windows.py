@@ -147,8 +147,12 @@ def _references(base: list[Acc], settled: list[bool]
     offsets = np.arange(-CALIBRATION_WINDOWS, 0)
     pick = before[:, None] + offsets[None, :]
     index = np.where(pick >= 0, np.concatenate([[0], useful])[np.maximum(pick, -1) + 1], 0)
-    h = hist[index].sum(axis=1)
-    s = hsum[index].sum(axis=1)
+    # oldest first, one column at a time: memory of one (windows, 3, 100) array, not seven
+    h = np.zeros((len(base), 3, N_BINS), np.int64)
+    s = np.zeros((len(base), 3, N_BINS), np.float64)
+    for k in range(CALIBRATION_WINDOWS):
+        h += hist[index[:, k]]
+        s += hsum[index[:, k]]
     labelled = h[:, 0].sum(axis=-1) + h[:, 1].sum(axis=-1)
     values = ece_arrays(h[:, 0], s[:, 0], h[:, 1], s[:, 1])
     out: list[tuple[float | None, float | None]] = []

@@ -108,7 +108,8 @@ def em_prior_many(
     counts = np.asarray(hists, dtype=np.float64).reshape(len(train_priors), -1)
     sums = np.asarray(ssums, dtype=np.float64).reshape(counts.shape)
     base = np.asarray(train_priors, dtype=np.float64)
-    keys = [(digest(counts[i], sums[i]), float(base[i]), tol, max_iter)
+    # NaN never equals itself: spell it, so that an undefined prior is one key, not many
+    keys = [(digest(counts[i], sums[i]), repr(float(base[i])), tol, max_iter)
             for i in range(len(base))]
     known = [_EM_MEMO.get(key) for key in keys]
     todo = [i for i, (found, _) in enumerate(known) if not found]

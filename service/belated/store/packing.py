@@ -47,6 +47,8 @@ def unpack_hist(blob: bytes | None) -> tuple[np.ndarray, np.ndarray]:
         if blob[:1] != _SPARSE or len(blob) != 3 + 18 * k:
             raise ValueError("corrupt histogram blob")
         idx = np.frombuffer(blob, "<u2", k, 3)
+        if k and int(idx.max()) >= 3 * N_BINS:
+            raise ValueError("corrupt histogram blob")
         counts[idx] = np.frombuffer(blob, "<i8", k, 3 + 2 * k)
         sums[idx] = np.frombuffer(blob, "<f8", k, 3 + 10 * k)
         return counts.reshape(3, N_BINS), sums.reshape(3, N_BINS)
@@ -73,6 +75,9 @@ def unpack_delays(blob: bytes | None) -> np.ndarray:
         k = int(np.frombuffer(blob, "<u2", 1, 1)[0]) if len(blob) >= 3 else -1
         if blob[:1] != _SPARSE or len(blob) != 3 + 10 * k:
             raise ValueError("corrupt delay histogram blob")
-        out[np.frombuffer(blob, "<u2", k, 3)] = np.frombuffer(blob, "<i8", k, 3 + 2 * k)
+        idx = np.frombuffer(blob, "<u2", k, 3)
+        if k and int(idx.max()) >= N_DELAY_BINS:
+            raise ValueError("corrupt delay histogram blob")
+        out[idx] = np.frombuffer(blob, "<i8", k, 3 + 2 * k)
         return out
     return np.frombuffer(blob, dtype="<i8").astype(np.int64)
