@@ -126,7 +126,7 @@ def _fold_changes(session: Session, model: ModelRow, hours: list[int], now: date
     Returns the hours that need a recompute instead, and the per-day sums of the
     differences applied (for the daily rows).
     """
-    keys = segments.admit(session=session, model=model, hours=[], max_values=0)
+    keys = segments.current(session=session, model=model)
     delta = compute(session, replace(scope_of(model, hours, now), changes=True), keys)
     if not delta:
         return set(), {}

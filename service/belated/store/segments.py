@@ -36,6 +36,14 @@ def admitted(*, session: Session, model_id: int) -> dict[str, list[str]]:
     return keys
 
 
+def current(*, session: Session, model: ModelRow) -> dict[str, list[str]]:
+    """The admitted keys and values the model's rollups use now (admits nothing)."""
+    keys = admitted(session=session, model_id=model.id)
+    if model.segment_keys is not None:
+        keys = {k: v for k, v in keys.items() if k in model.segment_keys}
+    return keys
+
+
 def _hours_filter(hours: Sequence[int]) -> ColumnElement[bool]:
     return Prediction.hour.in_(list(hours))
 
