@@ -57,12 +57,19 @@ class Service:
         # A directory of its own, so no stray .env or SQLite file is picked up or left behind.
         self.workdir = Path(tempfile.mkdtemp(prefix="belated_bench_"))
         self.log_path = self.workdir / "service.log"
-        env = {**os.environ, "BELATED_DATABASE_URL": database_url, "BELATED_JOBS": "false",
-               **(extra_env or {})}
+        env = {
+            **os.environ,
+            "BELATED_DATABASE_URL": database_url,
+            "BELATED_JOBS": "false",
+            **(extra_env or {}),
+        }
         self._log = self.log_path.open("wb")
         self.proc = subprocess.Popen(
             [str(BELATED), "serve", "--host", "127.0.0.1", "--port", str(self.port), "--no-jobs"],
-            cwd=self.workdir, env=env, stdout=self._log, stderr=subprocess.STDOUT,
+            cwd=self.workdir,
+            env=env,
+            stdout=self._log,
+            stderr=subprocess.STDOUT,
         )
 
     @property
@@ -75,8 +82,10 @@ class Service:
         deadline = time.monotonic() + timeout
         while time.monotonic() < deadline:
             if self.proc.poll() is not None:
-                raise RuntimeError(f"the service exited early; see {self.log_path}:\n"
-                                   + self.log_path.read_text()[-4000:])
+                raise RuntimeError(
+                    f"the service exited early; see {self.log_path}:\n"
+                    + self.log_path.read_text()[-4000:]
+                )
             try:
                 if httpx.get(self.url + "/healthz", timeout=2.0).status_code == 200:
                     return
@@ -103,9 +112,11 @@ class Service:
 
 def code_version() -> str:
     """The commit of the working tree, with a mark when files under service/ differ from it."""
+
     def git(*args: str) -> str:
-        return subprocess.run(["git", "-C", str(ROOT), *args], capture_output=True,
-                              text=True, check=False).stdout.strip()
+        return subprocess.run(
+            ["git", "-C", str(ROOT), *args], capture_output=True, text=True, check=False
+        ).stdout.strip()
 
     head = git("rev-parse", "--short", "HEAD") or "unknown"
     dirty = git("status", "--porcelain", "--", "service")
@@ -154,12 +165,20 @@ def markdown_table(headers: Sequence[str], rows: Sequence[Sequence[Any]]) -> str
     numeric = [all(_is_number(r[i]) for r in cells[1:]) for i in range(len(headers))]
 
     def fmt(row: list[str]) -> str:
-        parts = [c.rjust(w) if num else c.ljust(w)
-                 for c, w, num in zip(row, widths, numeric, strict=True)]
+        parts = [
+            c.rjust(w) if num else c.ljust(w)
+            for c, w, num in zip(row, widths, numeric, strict=True)
+        ]
         return "| " + " | ".join(parts) + " |"
 
-    rule = "| " + " | ".join(("-" * (w - 1) + ":") if num else "-" * w
-                             for w, num in zip(widths, numeric, strict=True)) + " |"
+    rule = (
+        "| "
+        + " | ".join(
+            ("-" * (w - 1) + ":") if num else "-" * w
+            for w, num in zip(widths, numeric, strict=True)
+        )
+        + " |"
+    )
     return "\n".join([fmt(cells[0]), rule, *(fmt(r) for r in cells[1:])])
 
 
@@ -184,8 +203,9 @@ def setup_store(db_url: str) -> tuple[str, int]:
     engine = make_engine(sa_url)
     with transaction(make_sessionmaker(engine)) as session:
         project = keys.get_or_create_project(session=session, name="furniture-shop")
-        _, token = keys.create(session=session, project_id=project.id,
-                               scopes=["admin", "ingest", "read"], name="bench")
+        _, token = keys.create(
+            session=session, project_id=project.id, scopes=["admin", "ingest", "read"], name="bench"
+        )
         project_id = project.id
     engine.dispose()
     return token, project_id
@@ -194,9 +214,25 @@ def setup_store(db_url: str) -> tuple[str, int]:
 def start_profiler(pid: int, out: Path) -> subprocess.Popen[bytes]:
     """py-spy sampling the service (all threads, idle ones too) into collapsed stacks."""
     spy = ROOT / ".venv" / "bin" / "py-spy"
-    proc = subprocess.Popen([str(spy), "record", "--pid", str(pid), "--format", "raw", "--idle",
-                             "--threads", "--rate", "200", "--nonblocking", "-o", str(out)],
-                            stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+    proc = subprocess.Popen(
+        [
+            str(spy),
+            "record",
+            "--pid",
+            str(pid),
+            "--format",
+            "raw",
+            "--idle",
+            "--threads",
+            "--rate",
+            "200",
+            "--nonblocking",
+            "-o",
+            str(out),
+        ],
+        stdout=subprocess.DEVNULL,
+        stderr=subprocess.DEVNULL,
+    )
     time.sleep(1.5)  # let it attach before the clock starts
     return proc
 

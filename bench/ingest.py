@@ -106,8 +106,18 @@ def build_workload(rows: int, batch: int, model_id: int, seed: int) -> Workload:
             actual = "1" if rng.random() < score else "0"
             preds.append({"id": pid, "ts": iso_z(ts), "score": score, "tags": tags})
             labs.append({"id": pid, "actual": actual, "ts": iso_z(lts)})
-            prow.append((model_id, pid, ts, int(ts.timestamp() // 3600), score,
-                         "1" if score >= 0.5 else "0", orjson.dumps(tags).decode(), received))
+            prow.append(
+                (
+                    model_id,
+                    pid,
+                    ts,
+                    int(ts.timestamp() // 3600),
+                    score,
+                    "1" if score >= 0.5 else "0",
+                    orjson.dumps(tags).decode(),
+                    received,
+                )
+            )
             lrow.append((actual, lts, max(0.0, (lts - ts).total_seconds() / 3600.0), pid))
         w.pred_bodies.append(orjson.dumps({"predictions": preds}))
         w.label_bodies.append(orjson.dumps({"labels": labs}))
@@ -121,8 +131,9 @@ def _backend_cpu(conn: psycopg.Connection[Any]) -> float:
 
 
 def _send(kind: str, body: bytes, client: httpx.Client) -> int:
-    resp = client.post(f"/v1/models/{MODEL}/{kind}", content=body,
-                       headers={"content-type": "application/json"})
+    resp = client.post(
+        f"/v1/models/{MODEL}/{kind}", content=body, headers={"content-type": "application/json"}
+    )
     if resp.status_code != 200:
         raise RuntimeError(f"{kind}: HTTP {resp.status_code}: {resp.text[:500]}")
     answer = resp.json()
@@ -140,8 +151,9 @@ def _client(k: int) -> dict[str, Any]:
     http: httpx.Client | None = None
     method, kind, table, model_id = job["method"], job["kind"], job["table"], job["model_id"]
     if method == "http":
-        http = httpx.Client(base_url=job["url"], timeout=300.0,
-                            headers={"Authorization": f"Bearer {job['token']}"})
+        http = httpx.Client(
+            base_url=job["url"], timeout=300.0, headers={"Authorization": f"Bearer {job['token']}"}
+        )
     else:
         conn = psycopg.connect(job["db_url"])
         if method == "copy" and kind == "labels":
@@ -154,8 +166,9 @@ def _client(k: int) -> dict[str, Any]:
     for b in mine:
         t0 = time.perf_counter()
         if http is not None:
-            done += _send(kind, (w.pred_bodies if kind == "predictions" else w.label_bodies)[b],
-                          http)
+            done += _send(
+                kind, (w.pred_bodies if kind == "predictions" else w.label_bodies)[b], http
+            )
         else:
             assert conn is not None
             done += _write(conn, method, kind, table, model_id, w, b)
@@ -167,12 +180,25 @@ def _client(k: int) -> dict[str, Any]:
         conn.close()
     if http is not None:
         http.close()
-    return {"start": t_start, "end": t_end, "lat": lat, "done": done, "client_cpu": cpu,
-            "db_cpu": db_cpu}
+    return {
+        "start": t_start,
+        "end": t_end,
+        "lat": lat,
+        "done": done,
+        "client_cpu": cpu,
+        "db_cpu": db_cpu,
+    }
 
 
-def _write(conn: psycopg.Connection[Any], method: str, kind: str, table: str, model_id: int,
-           w: Workload, b: int) -> int:
+def _write(
+    conn: psycopg.Connection[Any],
+    method: str,
+    kind: str,
+    table: str,
+    model_id: int,
+    w: Workload,
+    b: int,
+) -> int:
     """One batch straight into PostgreSQL, committed on its own like an API request."""
     with conn.cursor() as cur:
         if kind == "predictions":
@@ -191,8 +217,10 @@ def _write(conn: psycopg.Connection[Any], method: str, kind: str, table: str, mo
                         cp.write_row(row)
                 cur.execute(UPDATE_FROM_STAGE.format(t=table), (model_id,))
             else:
-                cur.executemany(UPDATE_LABEL.format(t=table),
-                                [(a, lts, d, model_id, pid) for a, lts, d, pid in rows])
+                cur.executemany(
+                    UPDATE_LABEL.format(t=table),
+                    [(a, lts, d, model_id, pid) for a, lts, d, pid in rows],
+                )
     conn.commit()
     return len(rows)
 
@@ -211,8 +239,7 @@ def run_phase(job: dict[str, Any], service: Service, dbname: str) -> dict[str, A
     if job["method"] == "http":
         # A 2xx must mean stored: the clock stops only when every acknowledged row is
         # visible to another connection (an answer sent before the commit would flatter).
-        committed = wait_committed(job["db_url"], job["model_id"], job["kind"],
-                                   job["expected"])
+        committed = wait_committed(job["db_url"], job["model_id"], job["kind"], job["expected"])
         lag = max(0.0, committed - end)
         end = max(end, committed)
     wall = end - min(p["start"] for p in parts)
@@ -223,9 +250,17 @@ def run_phase(job: dict[str, Any], service: Service, dbname: str) -> dict[str, A
         svc_cpu = 0.0
         db_cpu = sum(p["db_cpu"] for p in parts)
     lat = [x for p in parts for x in p["lat"]]
-    return {"method": job["method"], "kind": job["kind"], "rows": sum(p["done"] for p in parts),
-            "wall": wall, "lat": lat, "client_cpu": sum(p["client_cpu"] for p in parts),
-            "service_cpu": svc_cpu, "db_cpu": db_cpu, "commit_lag": lag}
+    return {
+        "method": job["method"],
+        "kind": job["kind"],
+        "rows": sum(p["done"] for p in parts),
+        "wall": wall,
+        "lat": lat,
+        "client_cpu": sum(p["client_cpu"] for p in parts),
+        "service_cpu": svc_cpu,
+        "db_cpu": db_cpu,
+        "commit_lag": lag,
+    }
 
 
 def wait_committed(db_url: str, model_id: int, kind: str, expected: int) -> float:
@@ -234,8 +269,11 @@ def wait_committed(db_url: str, model_id: int, kind: str, expected: int) -> floa
     That is the start of the first count, on another connection, that sees them all; a
     service that commits before answering passes at the first count.
     """
-    sql = ("SELECT count(*) FROM predictions WHERE model_id = %s" if kind == "predictions"
-           else "SELECT count(actual) FROM predictions WHERE model_id = %s")
+    sql = (
+        "SELECT count(*) FROM predictions WHERE model_id = %s"
+        if kind == "predictions"
+        else "SELECT count(actual) FROM predictions WHERE model_id = %s"
+    )
     deadline = time.perf_counter() + 120
     with psycopg.connect(db_url, autocommit=True) as conn:
         while True:
@@ -267,31 +305,57 @@ def make_tables(db_url: str) -> None:
             conn.execute(f"CREATE SEQUENCE {t}_seq OWNED BY {t}.row_id")
             conn.execute(f"ALTER TABLE {t} ALTER COLUMN row_id SET DEFAULT nextval('{t}_seq')")
             # LIKE leaves foreign keys out; the service's table checks one on every row.
-            conn.execute(f"ALTER TABLE {t} ADD FOREIGN KEY (model_id) REFERENCES models (id)"
-                         " ON DELETE CASCADE")
+            conn.execute(
+                f"ALTER TABLE {t} ADD FOREIGN KEY (model_id) REFERENCES models (id)"
+                " ON DELETE CASCADE"
+            )
 
 
 def report(results: list[dict[str, Any]], kind: str) -> str:
     """The markdown table of one kind: rate, ratios, batch latencies, CPU seconds."""
     by = {r["method"]: r for r in results if r["kind"] == kind}
-    names = {"predictions": ("HTTP POST /predictions", "COPY", "executemany INSERT"),
-             "labels": ("HTTP POST /labels", "COPY + UPDATE ... FROM", "executemany UPDATE")}
+    names = {
+        "predictions": ("HTTP POST /predictions", "COPY", "executemany INSERT"),
+        "labels": ("HTTP POST /labels", "COPY + UPDATE ... FROM", "executemany UPDATE"),
+    }
     copy_rate = by["copy"]["rows"] / by["copy"]["wall"]
     many_rate = by["many"]["rows"] / by["many"]["wall"]
     rows = []
     for method, name in zip(("http", "copy", "many"), names[kind], strict=True):
         r = by[method]
         rate = r["rows"] / r["wall"]
-        rows.append([
-            name, f"{r['rows']:,}", f"{r['wall']:.1f}", f"{rate:,.0f}",
-            f"{rate / copy_rate:.2f}x", f"{rate / many_rate:.2f}x",
-            f"{percentile(r['lat'], 0.5) * 1000:.0f}", f"{percentile(r['lat'], 0.95) * 1000:.0f}",
-            f"{max(r['lat']) * 1000:.0f}", f"{r['service_cpu']:.1f}" if method == "http" else "-",
-            f"{r['db_cpu']:.1f}", f"{r['client_cpu']:.1f}", f"{r['rows'] / cpu_total(r):,.0f}",
-        ])
-    headers = ["path", "rows", "s", "rows/s", "vs COPY", "vs executemany", "batch p50 ms",
-               "p95 ms", "max ms", "service CPU s", "postgres CPU s", "client CPU s",
-               "rows per CPU s"]
+        rows.append(
+            [
+                name,
+                f"{r['rows']:,}",
+                f"{r['wall']:.1f}",
+                f"{rate:,.0f}",
+                f"{rate / copy_rate:.2f}x",
+                f"{rate / many_rate:.2f}x",
+                f"{percentile(r['lat'], 0.5) * 1000:.0f}",
+                f"{percentile(r['lat'], 0.95) * 1000:.0f}",
+                f"{max(r['lat']) * 1000:.0f}",
+                f"{r['service_cpu']:.1f}" if method == "http" else "-",
+                f"{r['db_cpu']:.1f}",
+                f"{r['client_cpu']:.1f}",
+                f"{r['rows'] / cpu_total(r):,.0f}",
+            ]
+        )
+    headers = [
+        "path",
+        "rows",
+        "s",
+        "rows/s",
+        "vs COPY",
+        "vs executemany",
+        "batch p50 ms",
+        "p95 ms",
+        "max ms",
+        "service CPU s",
+        "postgres CPU s",
+        "client CPU s",
+        "rows per CPU s",
+    ]
     return markdown_table(headers, rows)
 
 
@@ -307,10 +371,12 @@ def verdict(results: list[dict[str, Any]], kind: str, target: float) -> str:
     share = http / (by["copy"]["rows"] / by["copy"]["wall"])
     ok_abs, ok_rel = http >= target, share >= 0.40
     ceiling = by["http"]["rows"] / cpu_total(by["http"]) * mp.cpu_count()
-    return (f"{kind}: HTTP {http:,.0f} rows/s vs target {target:,.0f}: "
-            f"{'met' if ok_abs else 'MISSED'}; {share:.0%} of COPY vs target 40%: "
-            f"{'met' if ok_rel else 'MISSED'}; at its measured CPU cost per row, "
-            f"{mp.cpu_count()} idle cores would allow at most {ceiling:,.0f} rows/s")
+    return (
+        f"{kind}: HTTP {http:,.0f} rows/s vs target {target:,.0f}: "
+        f"{'met' if ok_abs else 'MISSED'}; {share:.0%} of COPY vs target 40%: "
+        f"{'met' if ok_rel else 'MISSED'}; at its measured CPU cost per row, "
+        f"{mp.cpu_count()} idle cores would allow at most {ceiling:,.0f} rows/s"
+    )
 
 
 def check_counts(db_url: str, model_id: int, rows: int) -> list[str]:
@@ -333,10 +399,18 @@ def main() -> int:
     ap.add_argument("--batch", type=int, default=10_000)
     ap.add_argument("--clients", type=int, default=2, help="concurrent clients (processes)")
     ap.add_argument("--seed", type=int, default=20261201)
-    ap.add_argument("--random-page-cost", type=float, default=None,
-                    help="set random_page_cost on the benchmark database (default: the server's)")
-    ap.add_argument("--profile", type=Path, default=None,
-                    help="directory for py-spy collapsed stacks of the service (slows it)")
+    ap.add_argument(
+        "--random-page-cost",
+        type=float,
+        default=None,
+        help="set random_page_cost on the benchmark database (default: the server's)",
+    )
+    ap.add_argument(
+        "--profile",
+        type=Path,
+        default=None,
+        help="directory for py-spy collapsed stacks of the service (slows it)",
+    )
     args = ap.parse_args()
 
     dbname = create_database("belated_bench")
@@ -345,16 +419,22 @@ def main() -> int:
     try:
         if args.random_page_cost is not None:
             with psycopg.connect(PG_ADMIN, autocommit=True) as conn:
-                conn.execute(f'ALTER DATABASE "{dbname}" SET random_page_cost = '
-                             f"{float(args.random_page_cost)}")
+                conn.execute(
+                    f'ALTER DATABASE "{dbname}" SET random_page_cost = '
+                    f"{float(args.random_page_cost)}"
+                )
         with psycopg.connect(db_url) as conn:
             rpc = conn.execute("SHOW random_page_cost").fetchone()[0]  # type: ignore[index]
         load0 = os.getloadavg()
         token, _project = setup_store(db_url)
         service = Service(db_url)
         service.wait_ready()
-        resp = httpx.post(service.url + "/v1/models", json={"name": MODEL, "kind": "binary"},
-                          headers={"Authorization": f"Bearer {token}"}, timeout=30)
+        resp = httpx.post(
+            service.url + "/v1/models",
+            json={"name": MODEL, "kind": "binary"},
+            headers={"Authorization": f"Bearer {token}"},
+            timeout=30,
+        )
         resp.raise_for_status()
         model_id = wait_model(db_url)
         make_tables(db_url)
@@ -363,64 +443,98 @@ def main() -> int:
         prep = time.perf_counter() - t0
         body_mb = sum(map(len, work.pred_bodies)) / len(work.pred_bodies) / 2**20
         label_mb = sum(map(len, work.label_bodies)) / len(work.label_bodies) / 2**20
-        base = {"clients": args.clients, "expected": args.rows, "workload": work,
-                "url": service.url, "token": token, "db_url": db_url, "model_id": model_id}
+        base = {
+            "clients": args.clients,
+            "expected": args.rows,
+            "workload": work,
+            "url": service.url,
+            "token": token,
+            "db_url": db_url,
+            "model_id": model_id,
+        }
         results: list[dict[str, Any]] = []
         rss: dict[str, float] = {}
         for kind in ("predictions", "labels"):
             if kind == "labels":  # fresh statistics for all three, as autovacuum would leave them
                 with psycopg.connect(db_url, autocommit=True) as conn:
                     conn.execute("ANALYZE predictions, bench_copy, bench_many")
-            for method, table in (("http", "predictions"), ("copy", "bench_copy"),
-                                  ("many", "bench_many")):
+            for method, table in (
+                ("http", "predictions"),
+                ("copy", "bench_copy"),
+                ("many", "bench_many"),
+            ):
                 spy = None
                 if method == "http" and args.profile is not None:
                     args.profile.mkdir(parents=True, exist_ok=True)
                     spy = start_profiler(service.pid, args.profile / f"{kind}.txt")
-                results.append(run_phase({**base, "method": method, "kind": kind,
-                                          "table": table}, service, dbname))
+                results.append(
+                    run_phase(
+                        {**base, "method": method, "kind": kind, "table": table}, service, dbname
+                    )
+                )
                 if spy is not None:
                     stop_profiler(spy)
                 if method == "http":
                     rss[kind] = peak_rss_mib(service.pid)
-                print(f"  done: {kind} via {method}: {results[-1]['wall']:.1f} s",
-                      file=sys.stderr, flush=True)
+                print(
+                    f"  done: {kind} via {method}: {results[-1]['wall']:.1f} s",
+                    file=sys.stderr,
+                    flush=True,
+                )
         problems = check_counts(db_url, model_id, args.rows)
         load1 = os.getloadavg()
 
         print(f"# belated ingest benchmark ({datetime.now(UTC):%Y-%m-%d %H:%M} UTC)\n")
         print(f"- code: {code_version()}")
-        print(f"- {args.rows:,} rows in batches of {args.batch:,}; {args.clients} concurrent "
-              "client process(es) on every path, each with its own HTTP or database connection;"
-              " one transaction per batch on every path")
-        print(f"- service: `belated serve --no-jobs` (one uvicorn process) on PostgreSQL "
-              f"127.0.0.1:5432; request bodies pre-serialised with orjson "
-              f"({body_mb:.2f} MiB per predictions batch, {label_mb:.2f} MiB per labels batch;"
-              f" preparing the workload took {prep:.1f} s, untimed)")
-        print("- COPY / executemany write into tables shaped like `predictions` (columns, "
-              "unique (model_id, pid), indexes, foreign key); labels update those rows")
-        print(f"- service peak RSS (VmHWM): {rss['predictions']:.0f} MiB after predictions, "
-              f"{rss['labels']:.0f} MiB after labels")
-        print("- CPU seconds: service process, PostgreSQL backends of the path, client "
-              "processes (not counted: parallel query workers, autovacuum, WAL writer, "
-              f"checkpointer); the machine has {mp.cpu_count()} cores"
-              + ("; the service was sampled by py-spy (figures are slowed)" if args.profile
-                 else ""))
-        print(f"- PostgreSQL random_page_cost {rpc} for this database"
-              + (" (set by --random-page-cost)" if args.random_page_cost is not None else
-                 " (the server's setting)")
-              + "; the three tables are ANALYZEd between the predictions and the labels phases")
-        print(f"- 1-minute load average {load0[0]:.1f} at the start and {load1[0]:.1f} at the end "
-              "(other work on this machine inflates every figure; compare within a run)")
+        print(
+            f"- {args.rows:,} rows in batches of {args.batch:,}; {args.clients} concurrent "
+            "client process(es) on every path, each with its own HTTP or database connection;"
+            " one transaction per batch on every path"
+        )
+        print(
+            f"- service: `belated serve --no-jobs` (one uvicorn process) on PostgreSQL "
+            f"127.0.0.1:5432; request bodies pre-serialised with orjson "
+            f"({body_mb:.2f} MiB per predictions batch, {label_mb:.2f} MiB per labels batch;"
+            f" preparing the workload took {prep:.1f} s, untimed)"
+        )
+        print(
+            "- COPY / executemany write into tables shaped like `predictions` (columns, "
+            "unique (model_id, pid), indexes, foreign key); labels update those rows"
+        )
+        print(
+            f"- service peak RSS (VmHWM): {rss['predictions']:.0f} MiB after predictions, "
+            f"{rss['labels']:.0f} MiB after labels"
+        )
+        print(
+            "- CPU seconds: service process, PostgreSQL backends of the path, client "
+            "processes (not counted: parallel query workers, autovacuum, WAL writer, "
+            f"checkpointer); the machine has {mp.cpu_count()} cores"
+            + ("; the service was sampled by py-spy (figures are slowed)" if args.profile else "")
+        )
+        print(
+            f"- PostgreSQL random_page_cost {rpc} for this database"
+            + (
+                " (set by --random-page-cost)"
+                if args.random_page_cost is not None
+                else " (the server's setting)"
+            )
+            + "; the three tables are ANALYZEd between the predictions and the labels phases"
+        )
+        print(
+            f"- 1-minute load average {load0[0]:.1f} at the start and {load1[0]:.1f} at the end "
+            "(other work on this machine inflates every figure; compare within a run)"
+        )
         for kind in ("predictions", "labels"):
             print(f"\n## {kind}\n")
             print(report(results, kind))
         print()
         lags = {r["kind"]: r["commit_lag"] for r in results if r["method"] == "http"}
-        print("- HTTP wall time runs until another connection sees every acknowledged row: "
-              "the first count that saw them all started "
-              f"{lags['predictions'] * 1000:.0f} ms (predictions) and "
-              f"{lags['labels'] * 1000:.0f} ms (labels) after the last answer")
+        print(
+            "- HTTP wall time runs until another connection sees every acknowledged row: "
+            "the first count that saw them all started "
+            f"{lags['predictions'] * 1000:.0f} ms (predictions) and "
+            f"{lags['labels'] * 1000:.0f} ms (labels) after the last answer"
+        )
         for kind in ("predictions", "labels"):
             print("- " + verdict(results, kind, 50_000))
         if problems:

@@ -39,14 +39,21 @@ MODEL = "returns-bench"
 
 def measure(kind: str, writers: int, seconds: float, refresh: float) -> dict[str, Any]:
     """One run on a fresh store: n writers for `seconds`; figures from their logs."""
-    with tempfile.TemporaryDirectory(prefix="belated_load_") as tmp, \
-            make_store(kind, Path(tmp)) as store:
+    with (
+        tempfile.TemporaryDirectory(prefix="belated_load_") as tmp,
+        make_store(kind, Path(tmp)) as store,
+    ):
         token = create_token(store)
         service = Service(store, Path(tmp), jobs=True, refresh_seconds=refresh)
         try:
             create_model(service.url, token, MODEL)
-            plan = LoadPlan(url=service.url, token=token, model=MODEL, seconds=seconds,
-                            end_hour=int(time.time() // 3600))
+            plan = LoadPlan(
+                url=service.url,
+                token=token,
+                model=MODEL,
+                seconds=seconds,
+                end_hour=int(time.time() // 3600),
+            )
             logs = run_writers(plan, Path(tmp), n=writers)
             rss = peak_rss_mib(service.proc.pid)
         finally:
@@ -55,26 +62,54 @@ def measure(kind: str, writers: int, seconds: float, refresh: float) -> dict[str
     ok = [r for r in requests if 200 <= r[1] < 300]
     elapsed = statistics.median(log["elapsed"] for log in logs)
     latencies = [r[2] * 1000 for r in requests]
-    errors = Counter(str(r[1]) if r[1] else "no answer" for r in requests
-                     if not 200 <= r[1] < 300)
-    return {"writers": writers, "seconds": elapsed, "requests": len(requests),
-            "req_s": len(requests) / elapsed, "rows_s": sum(r[4] for r in ok) / elapsed,
-            "new_s": sum(log["accepted"] for log in logs) / elapsed,
-            "p50": percentile(latencies, 0.50), "p95": percentile(latencies, 0.95),
-            "p99": percentile(latencies, 0.99), "errors": errors, "rss": rss,
-            "failures": sum(len(log["failures"]) for log in logs)}
+    errors = Counter(str(r[1]) if r[1] else "no answer" for r in requests if not 200 <= r[1] < 300)
+    return {
+        "writers": writers,
+        "seconds": elapsed,
+        "requests": len(requests),
+        "req_s": len(requests) / elapsed,
+        "rows_s": sum(r[4] for r in ok) / elapsed,
+        "new_s": sum(log["accepted"] for log in logs) / elapsed,
+        "p50": percentile(latencies, 0.50),
+        "p95": percentile(latencies, 0.95),
+        "p99": percentile(latencies, 0.99),
+        "errors": errors,
+        "rss": rss,
+        "failures": sum(len(log["failures"]) for log in logs),
+    }
 
 
 def row(m: dict[str, Any]) -> list[Any]:
     """One table row."""
     errors = ", ".join(f"{k}: {v}" for k, v in sorted(m["errors"].items())) or "none"
-    return [m["writers"], f"{m['seconds']:.1f}", m["requests"], f"{m['req_s']:.1f}",
-            f"{m['rows_s']:.0f}", f"{m['new_s']:.0f}", f"{m['p50']:.0f}", f"{m['p95']:.0f}",
-            f"{m['p99']:.0f}", errors, f"{m['rss']:.0f}"]
+    return [
+        m["writers"],
+        f"{m['seconds']:.1f}",
+        m["requests"],
+        f"{m['req_s']:.1f}",
+        f"{m['rows_s']:.0f}",
+        f"{m['new_s']:.0f}",
+        f"{m['p50']:.0f}",
+        f"{m['p95']:.0f}",
+        f"{m['p99']:.0f}",
+        errors,
+        f"{m['rss']:.0f}",
+    ]
 
 
-HEADERS = ["writers", "seconds", "requests", "requests/s", "rows/s", "new predictions/s",
-           "p50 ms", "p95 ms", "p99 ms", "errors (by status)", "service peak RSS MiB"]
+HEADERS = [
+    "writers",
+    "seconds",
+    "requests",
+    "requests/s",
+    "rows/s",
+    "new predictions/s",
+    "p50 ms",
+    "p95 ms",
+    "p99 ms",
+    "errors (by status)",
+    "service peak RSS MiB",
+]
 
 
 def main() -> None:
@@ -89,11 +124,15 @@ def main() -> None:
     for kind in args.stores.split(","):
         many = measure(kind, args.writers, args.seconds, args.refresh_seconds)
         one = measure(kind, 1, args.baseline_seconds, args.refresh_seconds)
-        print(f"\n### {kind}: {args.writers} writers for {args.seconds:.0f} s, "
-              f"1 writer for {args.baseline_seconds:.0f} s\n")
+        print(
+            f"\n### {kind}: {args.writers} writers for {args.seconds:.0f} s, "
+            f"1 writer for {args.baseline_seconds:.0f} s\n"
+        )
         print(markdown_table(HEADERS, [row(many), row(one)]))
-        print(f"\nrows/s, {args.writers} writers against 1: {many['rows_s'] / one['rows_s']:.2f}x;"
-              f" p50 latency: {many['p50'] / one['p50']:.2f}x")
+        print(
+            f"\nrows/s, {args.writers} writers against 1: {many['rows_s'] / one['rows_s']:.2f}x;"
+            f" p50 latency: {many['p50'] / one['p50']:.2f}x"
+        )
         if many["failures"] or one["failures"]:
             print(f"client-side failures logged: {many['failures'] + one['failures']}")
 

@@ -57,17 +57,20 @@ SELECT hour,
   count(*) FILTER (WHERE predicted = '0' AND actual = '1'),
   count(*) FILTER (WHERE predicted = '0' AND actual = '0')
 FROM predictions WHERE model_id = %s GROUP BY hour"""
-ROLLUP_SQL = ("SELECT start, tp, fp, fn, tn FROM rollups WHERE model_id = %s AND level = 'h'"
-              " AND seg_key = ''")
+ROLLUP_SQL = (
+    "SELECT start, tp, fp, fn, tn FROM rollups WHERE model_id = %s AND level = 'h' AND seg_key = ''"
+)
 QUERY = {"granularity": "day", "start": "2025-01-01T00:00:00Z", "end": "2026-01-01T00:00:00Z"}
 
 
-def run_child(mode: str, sa_url: str, model_id: int, explain: bool = False
-              ) -> tuple[dict[str, Any], float]:
+def run_child(
+    mode: str, sa_url: str, model_id: int, explain: bool = False
+) -> tuple[dict[str, Any], float]:
     """Run the refresh child; return its JSON answer and its peak RSS (VmHWM) in MiB."""
     cmd = [sys.executable, "-m", "bench.windows_data", mode, sa_url, str(model_id)]
-    proc = subprocess.Popen(cmd + (["--explain"] if explain else []), cwd=ROOT,
-                            stdout=subprocess.PIPE, text=True)
+    proc = subprocess.Popen(
+        cmd + (["--explain"] if explain else []), cwd=ROOT, stdout=subprocess.PIPE, text=True
+    )
     peak = [0.0]
 
     def poll() -> None:  # VmHWM is a high-water mark: the last read before exit is the peak
@@ -110,15 +113,16 @@ def check_rollups(url: str, model_id: int, expected: dict[int, tuple]) -> str:
         got = {r[0]: tuple(r[1:]) for r in conn.execute(ROLLUP_SQL, (model_id,))}
         seg = conn.execute(
             "SELECT seg_key, sum(n_pred) FROM rollups WHERE model_id = %s AND level = 'd'"
-            " GROUP BY seg_key ORDER BY seg_key", (model_id,)).fetchall()
+            " GROUP BY seg_key ORDER BY seg_key",
+            (model_id,),
+        ).fetchall()
     bad = sum(got.get(h) != v for h, v in expected.items()) + len(set(got) - set(expected))
     sums = {k or "overall": int(v) for k, v in seg}
     flat = len(set(sums.values())) == 1 and len(sums) == 3
     return f"{bad} bad hours" + ("" if flat else f", daily n_pred by key {sums}")
 
 
-def latency(service: Service, token: str, n: int = 50
-            ) -> tuple[list[float], dict[str, Any], float]:
+def latency(service: Service, token: str, n: int = 50) -> tuple[list[float], dict[str, Any], float]:
     """Seconds per metrics request (after 3 warm-ups), the last answer, and the first
     request's seconds (a fresh server: nothing memoised, pools empty)."""
     url = f"{service.url}/v1/models/{wd.MODEL}/metrics"
@@ -136,8 +140,7 @@ def latency(service: Service, token: str, n: int = 50
     return times, resp.json(), cold
 
 
-def serve_and_time(sa_url: str, token: str
-                   ) -> tuple[list[float], dict[str, Any], float, float]:
+def serve_and_time(sa_url: str, token: str) -> tuple[list[float], dict[str, Any], float, float]:
     """Latencies and last answer of the metrics query, the server's peak RSS in MiB, and
     the first request's seconds."""
     service = Service(sa_url, extra_env={"BELATED_LOG_FORMAT": "text"})
@@ -162,14 +165,27 @@ def recompute(url: str, model_id: int) -> dict[int, dict[str, float]]:
     for day, g in lab.groupby("day"):
         y, p = g["actual"].to_numpy().astype(np.int8), g["predicted"].to_numpy()
         prec, rec, f1, _ = precision_recall_fscore_support(
-            y, p, average="binary", pos_label=1, zero_division=np.nan)
+            y, p, average="binary", pos_label=1, zero_division=np.nan
+        )
         tp, fp = int(((y == 1) & (p == 1)).sum()), int(((y == 0) & (p == 1)).sum())
         fn = int(((y == 1) & (p == 0)).sum())
-        lo, hi = (proportion_confint(tp, tp + fp, alpha=0.05, method="wilson") if tp + fp
-                  else (np.nan, np.nan))
-        out[int(day)] = {"predictions": int(predictions[day]), "labelled": len(g), "tp": tp,
-                         "fp": fp, "fn": fn, "precision": prec, "recall": rec, "fbeta": f1,
-                         "precision_low": lo, "precision_high": hi}
+        lo, hi = (
+            proportion_confint(tp, tp + fp, alpha=0.05, method="wilson")
+            if tp + fp
+            else (np.nan, np.nan)
+        )
+        out[int(day)] = {
+            "predictions": int(predictions[day]),
+            "labelled": len(g),
+            "tp": tp,
+            "fp": fp,
+            "fn": fn,
+            "precision": prec,
+            "recall": rec,
+            "fbeta": f1,
+            "precision_low": lo,
+            "precision_high": hi,
+        }
     return out
 
 
@@ -181,12 +197,20 @@ def compare(api: dict[str, Any], ref: dict[int, dict[str, float]]) -> str:
         r = ref[day]
         c = w["confusion"]
         count_bad += (w["predictions"], w["labelled"], c["tp"], c["fp"], c["fn"]) != (
-            r["predictions"], r["labelled"], r["tp"], r["fp"], r["fn"])
+            r["predictions"],
+            r["labelled"],
+            r["tp"],
+            r["fp"],
+            r["fn"],
+        )
         m = w["measures"]
-        for got, want in ((m["precision"]["value"], r["precision"]),
-                          (m["recall"]["value"], r["recall"]), (m["fbeta"]["value"], r["fbeta"]),
-                          (m["precision"]["low"], r["precision_low"]),
-                          (m["precision"]["high"], r["precision_high"])):
+        for got, want in (
+            (m["precision"]["value"], r["precision"]),
+            (m["recall"]["value"], r["recall"]),
+            (m["fbeta"]["value"], r["fbeta"]),
+            (m["precision"]["low"], r["precision_low"]),
+            (m["precision"]["high"], r["precision_high"]),
+        ):
             if got is None or want != want:  # undefined (no denominator) must agree
                 worst = max(worst, 0.0 if got is None and want != want else math.inf)
             else:
@@ -194,8 +218,7 @@ def compare(api: dict[str, Any], ref: dict[int, dict[str, float]]) -> str:
     return f"{len(api['windows'])} days, {count_bad} count mismatches, max diff {worst:.1e}"
 
 
-def run_scale(n: int, recomputes: int, explain: bool, keep: bool = False
-              ) -> dict[str, Any]:
+def run_scale(n: int, recomputes: int, explain: bool, keep: bool = False) -> dict[str, Any]:
     """Every measurement at one data size, in a database of its own."""
     res: dict[str, Any] = {"rows": n}
     name = create_database("belated_bench_windows")
@@ -216,7 +239,8 @@ def run_scale(n: int, recomputes: int, explain: bool, keep: bool = False
         # Before the late labels every day still has unlabelled predictions (1%), which the
         # label-free estimates work on; after them the year is fully labelled.
         res["lat_early"], _, res["server_early_mib"], res["cold_early"] = serve_and_time(
-            sa_url, token)
+            sa_url, token
+        )
         res["ingest_s"], res["ingest"] = wd.ingest_labels(sa_url, model_id, data)
         with psycopg.connect(url) as conn:
             res["dirty"] = conn.execute("SELECT count(*) FROM dirty_buckets").fetchone()[0]
@@ -249,6 +273,7 @@ def _ok(flag: bool) -> str:
 
 def table(small: dict[str, Any], big: dict[str, Any]) -> str:
     """The markdown table of both scales, with targets for the main scale."""
+
     def both(fn: Any) -> list[str]:
         return [fn(small), fn(big)]
 
@@ -256,57 +281,128 @@ def table(small: dict[str, Any], big: dict[str, Any]) -> str:
     inc = lambda r: r["refresh"]["seconds"]  # noqa: E731
     p50 = lambda r: percentile(r["lat"], 0.5)  # noqa: E731
     p95 = lambda r: percentile(r["lat"], 0.95)  # noqa: E731
-    peak = lambda r: max(r["rebuild_mib"], r["refresh_mib"], r["server_mib"],  # noqa: E731
-                         r["server_early_mib"])
+
+    def peak(r: dict[str, Any]) -> float:
+        return max(r["rebuild_mib"], r["refresh_mib"], r["server_mib"], r["server_early_mib"])
+
     rows = [
         ["rows loaded (COPY, not a target)", *both(lambda r: f"{r['rows']:,}"), "", ""],
         ["load + index build, s (not a target)", *both(lambda r: f"{r['load_s']:.1f}"), "", ""],
-        ["aggregation floor: overall hourly confusion GROUP BY, s (median of 3)",
-         *both(lambda r: f"{r['floor_s']:.2f}"), "", ""],
+        [
+            "aggregation floor: overall hourly confusion GROUP BY, s (median of 3)",
+            *both(lambda r: f"{r['floor_s']:.2f}"),
+            "",
+            "",
+        ],
         ["full rebuild (refresh.rebuild), s", *both(lambda r: f"{rb(r):.1f}"), "", ""],
-        ["full rebuild, CPU s of the child process",
-         *both(lambda r: f"{r['rebuild']['cpu_s']:.1f}"), "", ""],
-        ["rebuild / floor", *both(lambda r: f"{rb(r) / r['floor_s']:.1f}x"), "<= 4x",
-         _ok(rb(big) / big["floor_s"] <= 4)],
-        ["hand-written aggregation of all rollup content (GROUPING SETS by week), s",
-         *both(lambda r: f"{r['same_s']:.1f}"), "", ""],
-        ["rebuild / hand-written all-content aggregation",
-         *both(lambda r: f"{rb(r) / r['same_s']:.1f}x"), "", ""],
+        [
+            "full rebuild, CPU s of the child process",
+            *both(lambda r: f"{r['rebuild']['cpu_s']:.1f}"),
+            "",
+            "",
+        ],
+        [
+            "rebuild / floor",
+            *both(lambda r: f"{rb(r) / r['floor_s']:.1f}x"),
+            "<= 4x",
+            _ok(rb(big) / big["floor_s"] <= 4),
+        ],
+        [
+            "hand-written aggregation of all rollup content (GROUPING SETS by week), s",
+            *both(lambda r: f"{r['same_s']:.1f}"),
+            "",
+            "",
+        ],
+        [
+            "rebuild / hand-written all-content aggregation",
+            *both(lambda r: f"{rb(r) / r['same_s']:.1f}x"),
+            "",
+            "",
+        ],
         ["rebuild rows/s", *both(lambda r: f"{r['rows'] / rb(r):,.0f}"), "", ""],
-        ["label ingest of 1% (labels.ingest, 10k batches), s",
-         *both(lambda r: f"{r['ingest_s']:.1f}"), "", ""],
+        [
+            "label ingest of 1% (labels.ingest, 10k batches), s",
+            *both(lambda r: f"{r['ingest_s']:.1f}"),
+            "",
+            "",
+        ],
         ["dirty hour buckets after the labels", *both(lambda r: f"{r['dirty']:,}"), "", ""],
         ["incremental refresh (refresh_all), s", *both(lambda r: f"{inc(r):.1f}"), "", ""],
-        ["incremental refresh, CPU s of the child process",
-         *both(lambda r: f"{r['refresh']['cpu_s']:.1f}"), "", ""],
-        ["incremental / full rebuild", *both(lambda r: f"{100 * inc(r) / rb(r):.0f}%"),
-         "<= 5%", _ok(inc(big) / rb(big) <= 0.05)],
-        ["metrics, 365 daily windows, 1% unlabelled, p50 ms (50 requests)",
-         *both(lambda r: f"{1000 * percentile(r['lat_early'], 0.5):.0f}"), "", ""],
-        ["metrics, 365 daily windows, 1% unlabelled, p95 ms",
-         *both(lambda r: f"{1000 * percentile(r['lat_early'], 0.95):.0f}"), "< 100 ms",
-         _ok(percentile(big["lat_early"], 0.95) < 0.1)],
-        ["metrics, 365 daily windows, first request on a fresh server, ms (1% unlabelled /"
-         " all labelled)",
-         *both(lambda r: f"{1000 * r['cold_early']:.0f} / {1000 * r['cold']:.0f}"),
-         "", ""],
-        ["metrics, 365 daily windows, all labelled, p50 ms (50 requests)",
-         *both(lambda r: f"{1000 * p50(r):.0f}"), "", ""],
-        ["metrics, 365 daily windows, all labelled, p95 ms",
-         *both(lambda r: f"{1000 * p95(r):.0f}"), "< 100 ms", _ok(p95(big) < 0.1)],
-        ["recompute pandas + scikit-learn from raw rows, s (median)",
-         *both(lambda r: f"{r['recompute_s']:.2f}"), "", ""],
-        ["recompute / metrics p50 (all labelled)",
-         *both(lambda r: f"{r['recompute_s'] / p50(r):.0f}x"), ">= 100x",
-         _ok(big["recompute_s"] / p50(big) >= 100)],
-        ["recompute / metrics p95 (all labelled)",
-         *both(lambda r: f"{r['recompute_s'] / p95(r):.0f}x"), "", ""],
+        [
+            "incremental refresh, CPU s of the child process",
+            *both(lambda r: f"{r['refresh']['cpu_s']:.1f}"),
+            "",
+            "",
+        ],
+        [
+            "incremental / full rebuild",
+            *both(lambda r: f"{100 * inc(r) / rb(r):.0f}%"),
+            "<= 5%",
+            _ok(inc(big) / rb(big) <= 0.05),
+        ],
+        [
+            "metrics, 365 daily windows, 1% unlabelled, p50 ms (50 requests)",
+            *both(lambda r: f"{1000 * percentile(r['lat_early'], 0.5):.0f}"),
+            "",
+            "",
+        ],
+        [
+            "metrics, 365 daily windows, 1% unlabelled, p95 ms",
+            *both(lambda r: f"{1000 * percentile(r['lat_early'], 0.95):.0f}"),
+            "< 100 ms",
+            _ok(percentile(big["lat_early"], 0.95) < 0.1),
+        ],
+        [
+            "metrics, 365 daily windows, first request on a fresh server, ms (1% unlabelled /"
+            " all labelled)",
+            *both(lambda r: f"{1000 * r['cold_early']:.0f} / {1000 * r['cold']:.0f}"),
+            "",
+            "",
+        ],
+        [
+            "metrics, 365 daily windows, all labelled, p50 ms (50 requests)",
+            *both(lambda r: f"{1000 * p50(r):.0f}"),
+            "",
+            "",
+        ],
+        [
+            "metrics, 365 daily windows, all labelled, p95 ms",
+            *both(lambda r: f"{1000 * p95(r):.0f}"),
+            "< 100 ms",
+            _ok(p95(big) < 0.1),
+        ],
+        [
+            "recompute pandas + scikit-learn from raw rows, s (median)",
+            *both(lambda r: f"{r['recompute_s']:.2f}"),
+            "",
+            "",
+        ],
+        [
+            "recompute / metrics p50 (all labelled)",
+            *both(lambda r: f"{r['recompute_s'] / p50(r):.0f}x"),
+            ">= 100x",
+            _ok(big["recompute_s"] / p50(big) >= 100),
+        ],
+        [
+            "recompute / metrics p95 (all labelled)",
+            *both(lambda r: f"{r['recompute_s'] / p95(r):.0f}x"),
+            "",
+            "",
+        ],
         ["peak RSS rebuild child, MiB", *both(lambda r: f"{r['rebuild_mib']:.0f}"), "", ""],
         ["peak RSS refresh child, MiB", *both(lambda r: f"{r['refresh_mib']:.0f}"), "", ""],
-        ["peak RSS server after queries, MiB",
-         *both(lambda r: f"{max(r['server_mib'], r['server_early_mib']):.0f}"), "", ""],
-        ["largest peak RSS, MiB", *both(lambda r: f"{peak(r):.0f}"), "< 500, flat",
-         _ok(peak(big) < 500 and peak(big) < 1.25 * peak(small))],
+        [
+            "peak RSS server after queries, MiB",
+            *both(lambda r: f"{max(r['server_mib'], r['server_early_mib']):.0f}"),
+            "",
+            "",
+        ],
+        [
+            "largest peak RSS, MiB",
+            *both(lambda r: f"{peak(r):.0f}"),
+            "< 500, flat",
+            _ok(peak(big) < 500 and peak(big) < 1.25 * peak(small)),
+        ],
         ["check: rollups after rebuild vs floor", *both(lambda r: r["check_rebuild"]), "", ""],
         ["check: rollups after refresh vs floor", *both(lambda r: r["check_refresh"]), "", ""],
         ["check: API vs recompute", *both(lambda r: r["check_api"]), "", ""],
@@ -325,10 +421,18 @@ def breakdown(res: dict[str, Any]) -> str:
         in_sql = sum(v["seconds"] for v in sql.values())
         for k in kinds:
             v = sql.get(k, {"seconds": 0.0, "calls": 0})
-            rows.append([label, k, v["calls"], f"{v['seconds']:.1f}",
-                         f"{100 * v['seconds'] / total:.0f}%"])
-        rows.append([label, "Python outside SQL (accumulate, pack)", "-",
-                     f"{total - in_sql:.1f}", f"{100 * (total - in_sql) / total:.0f}%"])
+            rows.append(
+                [label, k, v["calls"], f"{v['seconds']:.1f}", f"{100 * v['seconds'] / total:.0f}%"]
+            )
+        rows.append(
+            [
+                label,
+                "Python outside SQL (accumulate, pack)",
+                "-",
+                f"{total - in_sql:.1f}",
+                f"{100 * (total - in_sql) / total:.0f}%",
+            ]
+        )
     return markdown_table(["run", "statement kind", "calls", "seconds", "share"], rows)
 
 
@@ -337,24 +441,39 @@ def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--rows", type=int, default=10_000_000)
     ap.add_argument("--quick", action="store_true", help="1,000,000 rows")
-    ap.add_argument("--compare-rows", type=int, default=None,
-                    help="the smaller size for the memory comparison (default rows/10)")
+    ap.add_argument(
+        "--compare-rows",
+        type=int,
+        default=None,
+        help="the smaller size for the memory comparison (default rows/10)",
+    )
     ap.add_argument("--recomputes", type=int, default=3)
-    ap.add_argument("--keep", action="store_true",
-                    help="keep the main size's database for inspection (drop it yourself)")
-    ap.add_argument("--explain", action="store_true",
-                    help="also print EXPLAIN ANALYZE of the product's queries (main size)")
+    ap.add_argument(
+        "--keep",
+        action="store_true",
+        help="keep the main size's database for inspection (drop it yourself)",
+    )
+    ap.add_argument(
+        "--explain",
+        action="store_true",
+        help="also print EXPLAIN ANALYZE of the product's queries (main size)",
+    )
     args = ap.parse_args()
     rows = 1_000_000 if args.quick else args.rows
     t0 = time.perf_counter()
     small = run_scale(args.compare_rows or rows // 10, args.recomputes, False)
     big = run_scale(rows, args.recomputes, args.explain, args.keep)
-    rev = subprocess.run(["git", "describe", "--always", "--dirty"], cwd=ROOT,
-                         capture_output=True, text=True).stdout.strip()
-    print(f"\n## Rollups and windows at scale (PostgreSQL, {os.cpu_count()} cores,"
-          f" product at {rev}, load average {os.getloadavg()[0]:.1f})\n")
-    print(f"Data: prevalence {big['prevalence']:.3f}, predicted positive rate "
-          f"{big['pred_pos']:.3f}, 1% labelled late; label ingest answer {big['ingest']}.\n")
+    rev = subprocess.run(
+        ["git", "describe", "--always", "--dirty"], cwd=ROOT, capture_output=True, text=True
+    ).stdout.strip()
+    print(
+        f"\n## Rollups and windows at scale (PostgreSQL, {os.cpu_count()} cores,"
+        f" product at {rev}, load average {os.getloadavg()[0]:.1f})\n"
+    )
+    print(
+        f"Data: prevalence {big['prevalence']:.3f}, predicted positive rate "
+        f"{big['pred_pos']:.3f}, 1% labelled late; label ingest answer {big['ingest']}.\n"
+    )
     print(table(small, big))
     print(f"\n### Where the time goes at {rows:,} rows (time inside each kind of statement)\n")
     print(breakdown(big))

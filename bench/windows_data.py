@@ -42,8 +42,19 @@ REGIONS = ("north", "south", "east", "west")
 YEAR_START = datetime(2025, 1, 1, tzinfo=UTC)
 YEAR_SECONDS = 365 * 86400
 UNLABELLED_SHARE = 0.01
-COLS = ("model_id", "pid", "ts", "hour", "score", "predicted", "tags", "actual", "label_ts",
-        "delay_h", "received_at")
+COLS = (
+    "model_id",
+    "pid",
+    "ts",
+    "hour",
+    "score",
+    "predicted",
+    "tags",
+    "actual",
+    "label_ts",
+    "delay_h",
+    "received_at",
+)
 CHUNK = 50_000  # rows per COPY write; the late rows of a chunk follow its labelled ones
 
 
@@ -89,21 +100,33 @@ _TAG_TEXT = [json.dumps({"channel": c, "region": r}) for c in CHANNELS for r in 
 _TAG_LEN = 1 + max(len(t) for t in _TAG_TEXT)
 # jsonb's binary input is a version byte and JSON text; padding spaces keep every record the
 # same width, so a whole chunk is one numpy structured array.
-_TAGS = np.array([b"\x01" + t.ljust(_TAG_LEN - 1).encode() for t in _TAG_TEXT],
-                 dtype=f"S{_TAG_LEN}")
+_TAGS = np.array(
+    [b"\x01" + t.ljust(_TAG_LEN - 1).encode() for t in _TAG_TEXT], dtype=f"S{_TAG_LEN}"
+)
 
 
 def _record(labelled: bool) -> np.dtype:
     """One binary COPY tuple of COLS; a NULL field is a length of -1 with no data."""
+
     def field(name: str, fmt: str) -> list[tuple[str, str]]:
         return [(f"{name}_len", ">i4"), (name, fmt)]
 
     late = [("actual_len", ">i4"), ("label_ts_len", ">i4"), ("delay_h_len", ">i4")]
     label = field("actual", "S1") + field("label_ts", ">i8") + field("delay_h", ">f8")
-    return np.dtype([("nfields", ">i2"), *field("model_id", ">i4"), *field("pid", "S10"),
-                     *field("ts", ">i8"), *field("hour", ">i4"), *field("score", ">f8"),
-                     *field("predicted", "S1"), *field("tags", f"S{_TAG_LEN}"),
-                     *(label if labelled else late), *field("received_at", ">i8")])
+    return np.dtype(
+        [
+            ("nfields", ">i2"),
+            *field("model_id", ">i4"),
+            *field("pid", "S10"),
+            *field("ts", ">i8"),
+            *field("hour", ">i4"),
+            *field("score", ">f8"),
+            *field("predicted", "S1"),
+            *field("tags", f"S{_TAG_LEN}"),
+            *(label if labelled else late),
+            *field("received_at", ">i8"),
+        ]
+    )
 
 
 def _pids(lo: int, hi: int) -> np.ndarray:
@@ -124,11 +147,15 @@ def _chunk(d: Data, model_id: int, lo: int, hi: int, labelled: np.ndarray) -> by
         rec["nfields"] = len(COLS)
         us = np.round((d.ts[rows] - PG_EPOCH) * 1e6).astype(np.int64)
         values: dict[str, Any] = {
-            "model_id": model_id, "pid": _pids(lo, hi)[rows - lo], "ts": us,
-            "hour": (us // 1_000_000 + PG_EPOCH) // 3600, "score": d.score[rows],
+            "model_id": model_id,
+            "pid": _pids(lo, hi)[rows - lo],
+            "ts": us,
+            "hour": (us // 1_000_000 + PG_EPOCH) // 3600,
+            "score": d.score[rows],
             "predicted": np.where(d.score[rows] >= 0.5, b"1", b"0"),
             "tags": _TAGS[d.channel[rows].astype(np.int64) * 4 + d.region[rows]],
-            "received_at": us}
+            "received_at": us,
+        }
         if flag:
             values["actual"] = np.where(d.actual[rows] == 1, b"1", b"0")
             values["label_ts"] = us + np.round(d.delay_h[rows] * 3.6e9).astype(np.int64)
@@ -151,7 +178,8 @@ def load(url: str, model_id: int, d: Data) -> None:
         # Index builds after the load are much faster than index upkeep during it.
         idx = conn.execute(
             "SELECT indexname, indexdef FROM pg_indexes WHERE tablename = 'predictions'"
-            " AND indexname LIKE 'ix_%'").fetchall()
+            " AND indexname LIKE 'ix_%'"
+        ).fetchall()
         for name, _ in idx:
             conn.execute(f'DROP INDEX "{name}"')
         conn.execute("ALTER TABLE predictions DROP CONSTRAINT uq_predictions_model_pid")
@@ -165,8 +193,9 @@ def load(url: str, model_id: int, d: Data) -> None:
                     copy.write(_chunk(d, model_id, lo, min(lo + CHUNK, d.n), labelled))
                 copy.write(b"\xff\xff")  # trailer
         conn.execute("SET maintenance_work_mem = '1GB'")
-        conn.execute("ALTER TABLE predictions ADD CONSTRAINT uq_predictions_model_pid"
-                     " UNIQUE (model_id, pid)")
+        conn.execute(
+            "ALTER TABLE predictions ADD CONSTRAINT uq_predictions_model_pid UNIQUE (model_id, pid)"
+        )
         for _, definition in idx:
             conn.execute(definition)
         conn.execute("VACUUM (ANALYZE) predictions")  # hint bits and statistics, as in steady state
@@ -182,32 +211,46 @@ def setup_tenant(sa_url: str) -> tuple[int, str]:
     engine = make_engine(sa_url)
     with transaction(make_sessionmaker(engine)) as session:
         project = keys.get_or_create_project(session=session, name="furniture-shop")
-        model = models.create(session=session, project_id=project.id, fields={
-            "name": MODEL, "kind": "binary", "classes": ["0", "1"], "positive": "1",
-            "segment_keys": ["channel", "region"]})
+        model = models.create(
+            session=session,
+            project_id=project.id,
+            fields={
+                "name": MODEL,
+                "kind": "binary",
+                "classes": ["0", "1"],
+                "positive": "1",
+                "segment_keys": ["channel", "region"],
+            },
+        )
         _, token = keys.create(session=session, project_id=project.id, scopes=["read"])
         model_id = model.id
     engine.dispose()
     return model_id, token
 
 
-def ingest_labels(sa_url: str, model_id: int, d: Data, batch: int = 10_000,
-                  seed: int = 7) -> tuple[float, dict[str, int]]:
+def ingest_labels(
+    sa_url: str, model_id: int, d: Data, batch: int = 10_000, seed: int = 7
+) -> tuple[float, dict[str, int]]:
     """Send the late labels through belated.store.labels.ingest, in shuffled batches."""
     from belated.ingest.validate import LabelIn
     from belated.store import labels
     from belated.store.db import make_engine, make_sessionmaker, transaction
 
     order = np.random.default_rng(seed).permutation(d.late)
-    items = [LabelIn(pid(int(i)), "1" if d.actual[i] else "0",
-                     datetime.fromtimestamp(float(d.ts[i] + d.delay_h[i] * 3600), UTC))
-             for i in order]
+    items = [
+        LabelIn(
+            pid(int(i)),
+            "1" if d.actual[i] else "0",
+            datetime.fromtimestamp(float(d.ts[i] + d.delay_h[i] * 3600), UTC),
+        )
+        for i in order
+    ]
     factory = make_sessionmaker(make_engine(sa_url))
     totals: dict[str, int] = defaultdict(int)
     t0 = time.perf_counter()
     for lo in range(0, len(items), batch):
         with transaction(factory) as session:
-            answer = labels.ingest(session=session, model_id=model_id, items=items[lo:lo + batch])
+            answer = labels.ingest(session=session, model_id=model_id, items=items[lo : lo + batch])
         for k, v in answer.items():
             totals[k] += v
     return time.perf_counter() - t0, dict(totals)
@@ -249,19 +292,20 @@ def _child(mode: str, url: str, model_id: int, explain: bool) -> dict[str, Any]:
     plans: dict[str, str] = {}
 
     @event.listens_for(engine, "before_cursor_execute")
-    def _before(conn: Any, cursor: Any, statement: str, params: Any, ctx: Any, many: bool
-                ) -> None:
+    def _before(conn: Any, *_: Any) -> None:
         conn.info.setdefault("t0", []).append(time.perf_counter())
 
     @event.listens_for(engine, "after_cursor_execute")
-    def _after(conn: Any, cursor: Any, statement: str, params: Any, ctx: Any, many: bool
-               ) -> None:
+    def _after(conn: Any, _cursor: Any, statement: str, params: Any, *_: Any) -> None:
         kind = kind_of(statement)
         cell = spent[kind]
         cell[0] += time.perf_counter() - conn.info["t0"].pop()
         cell[1] += 1
-        if explain and kind not in plans and kind.endswith(("BY overall", "tag key", "values",
-                                                             "keys", "hourly rows")):
+        if (
+            explain
+            and kind not in plans
+            and kind.endswith(("BY overall", "tag key", "values", "keys", "hourly rows"))
+        ):
             plans[kind] = _explain(url, statement, params)
 
     factory = make_sessionmaker(engine)
@@ -271,9 +315,12 @@ def _child(mode: str, url: str, model_id: int, explain: bool) -> dict[str, Any]:
     else:
         buckets = refresh.refresh_all(factory, max_values=100)
     seconds = time.perf_counter() - t0
-    return {"seconds": seconds, "buckets": buckets,
-            "sql": {k: {"seconds": v[0], "calls": v[1]} for k, v in spent.items()},
-            "plans": plans}
+    return {
+        "seconds": seconds,
+        "buckets": buckets,
+        "sql": {k: {"seconds": v[0], "calls": v[1]} for k, v in spent.items()},
+        "plans": plans,
+    }
 
 
 def _explain(sa_url: str, statement: str, params: Any) -> str:
@@ -282,8 +329,11 @@ def _explain(sa_url: str, statement: str, params: Any) -> str:
     with psycopg.connect(sa_url.replace("postgresql+psycopg://", "postgresql://")) as conn:
         rows = conn.execute("EXPLAIN (ANALYZE, BUFFERS) " + statement, params).fetchall()
     plan = "\n".join(r[0] for r in rows)
-    return re.sub(r"\n{2,}", "\n", f"-- {statement.strip()[:400]}\n{plan}\n"
-                  f"-- (explain took {time.perf_counter() - t0:.2f} s)")
+    return re.sub(
+        r"\n{2,}",
+        "\n",
+        f"-- {statement.strip()[:400]}\n{plan}\n-- (explain took {time.perf_counter() - t0:.2f} s)",
+    )
 
 
 _SCALARS = """count(*), count(actual), 0, count(*) FILTER (WHERE predicted = '1'),
@@ -304,7 +354,7 @@ SAME_CONTENT_SQL = (
     f"SELECT hour, ch, rg, {_SCALARS} {_ROWS} GROUP BY {_SETS.format(x='')}",
     f"""SELECT hour, ch, rg, c, b, count(*), sum(score) FROM (SELECT *,
       CASE WHEN actual = '1' THEN 0 WHEN actual IS NOT NULL THEN 1 ELSE 2 END AS c,
-      least(floor(score * 100)::int, 99) AS b {_ROWS}) q GROUP BY {_SETS.format(x=', c, b')}""",
+      least(floor(score * 100)::int, 99) AS b {_ROWS}) q GROUP BY {_SETS.format(x=", c, b")}""",
     f"""SELECT hour, CASE WHEN delay_h < 48 THEN floor(delay_h)::int
       WHEN delay_h < 168 THEN 48 + floor((delay_h - 48) / 6)::int
       ELSE least(68 + floor((delay_h - 168) / 24)::int, 461) END AS b, count(*)
@@ -317,8 +367,9 @@ def same_content(url: str, model_id: int, week: int = 168) -> float:
     histograms, delays), week by week: one GROUPING SETS scan for the scalars, one for the
     histograms, one for the delays; rows fetched, not accumulated or written."""
     with psycopg.connect(url) as conn:
-        lo, hi = conn.execute("SELECT min(hour), max(hour) + 1 FROM predictions"
-                              " WHERE model_id = %s", (model_id,)).fetchone()
+        lo, hi = conn.execute(
+            "SELECT min(hour), max(hour) + 1 FROM predictions WHERE model_id = %s", (model_id,)
+        ).fetchone()
         conn.execute("SET work_mem = '64MB'")  # lets the planner hash the grouping sets
         t0 = time.perf_counter()
         for start in range(lo, hi, week):
@@ -331,15 +382,22 @@ def same_content(url: str, model_id: int, week: int = 168) -> float:
 def copy_rows(url: str, model_id: int) -> pd.DataFrame:
     """The raw rows a recompute needs (hour, predicted, actual), read with psycopg COPY."""
     buf = io.BytesIO()
-    with psycopg.connect(url) as conn, conn.cursor().copy(
-        "COPY (SELECT hour, predicted, actual FROM predictions WHERE model_id = %s)"
-        " TO STDOUT (FORMAT csv)", (model_id,)
-    ) as copy:
+    with (
+        psycopg.connect(url) as conn,
+        conn.cursor().copy(
+            "COPY (SELECT hour, predicted, actual FROM predictions WHERE model_id = %s)"
+            " TO STDOUT (FORMAT csv)",
+            (model_id,),
+        ) as copy,
+    ):
         for block in copy:
             buf.write(block)
     buf.seek(0)
-    return pd.read_csv(buf, names=["hour", "predicted", "actual"],
-                       dtype={"hour": "int64", "predicted": "int8", "actual": "float32"})
+    return pd.read_csv(
+        buf,
+        names=["hour", "predicted", "actual"],
+        dtype={"hour": "int64", "predicted": "int8", "actual": "float32"},
+    )
 
 
 if __name__ == "__main__":

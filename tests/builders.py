@@ -18,8 +18,14 @@ from sqlalchemy import Engine, text
 from belated.timeutil import from_db
 
 # Tables that hold a model's data, each with a model_id column (asserted counts read these).
-MODEL_TABLES = ("predictions", "labels", "pending_labels", "dirty_buckets", "threshold_changes",
-                "label_changes")
+MODEL_TABLES = (
+    "predictions",
+    "labels",
+    "pending_labels",
+    "dirty_buckets",
+    "threshold_changes",
+    "label_changes",
+)
 
 
 def utcnow() -> datetime:
@@ -57,8 +63,9 @@ def score_of(n: int) -> float:
     return (n * 37 % 100) / 100
 
 
-def prediction(n: int, *, base: datetime | None = None, prefix: str = "order", **fields: Any
-               ) -> dict[str, Any]:
+def prediction(
+    n: int, *, base: datetime | None = None, prefix: str = "order", **fields: Any
+) -> dict[str, Any]:
     """Prediction number n: id `<prefix>-<n>`, one minute after the previous one."""
     when = (base or base_time()) + timedelta(minutes=n)
     item: dict[str, Any] = {"id": f"{prefix}-{n}", "ts": stamp(when), "score": score_of(n)}
@@ -66,12 +73,17 @@ def prediction(n: int, *, base: datetime | None = None, prefix: str = "order", *
     return item
 
 
-def predictions(count: int, *, start: int = 0, base: datetime | None = None,
-                prefix: str = "order", **fields: Any) -> list[dict[str, Any]]:
+def predictions(
+    count: int,
+    *,
+    start: int = 0,
+    base: datetime | None = None,
+    prefix: str = "order",
+    **fields: Any,
+) -> list[dict[str, Any]]:
     """`count` consecutive predictions."""
     base = base or base_time()
-    return [prediction(n, base=base, prefix=prefix, **fields)
-            for n in range(start, start + count)]
+    return [prediction(n, base=base, prefix=prefix, **fields) for n in range(start, start + count)]
 
 
 def label(pid: str, actual: str | int, ts: datetime | None = None) -> dict[str, Any]:
@@ -109,10 +121,12 @@ class Model:
 def model_id(engine: Engine, project_id: int, name: str) -> int:
     """The row id of a project's model."""
     with engine.connect() as conn:
-        return int(conn.execute(
-            text("SELECT id FROM models WHERE project_id = :p AND name = :n"),
-            {"p": project_id, "n": name},
-        ).scalar_one())
+        return int(
+            conn.execute(
+                text("SELECT id FROM models WHERE project_id = :p AND name = :n"),
+                {"p": project_id, "n": name},
+            ).scalar_one()
+        )
 
 
 def create_model(tenant: Any, engine: Engine, **fields: Any) -> Model:
@@ -144,8 +158,13 @@ def rows(engine: Engine, sql: str, **params: Any) -> list[Any]:
 
 def prediction_row(engine: Engine, model: int, pid: str) -> dict[str, Any]:
     """One stored prediction as a dict, times read back as aware UTC."""
-    found = rows(engine, "SELECT pid, ts, hour, score, scores, predicted, tags, actual, label_ts"
-                 " FROM predictions WHERE model_id = :m AND pid = :p", m=model, p=pid)
+    found = rows(
+        engine,
+        "SELECT pid, ts, hour, score, scores, predicted, tags, actual, label_ts"
+        " FROM predictions WHERE model_id = :m AND pid = :p",
+        m=model,
+        p=pid,
+    )
     assert len(found) == 1, f"{pid!r} stored {len(found)} times"
     row = dict(found[0]._mapping)
     row["ts"] = from_db(row["ts"])

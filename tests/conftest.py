@@ -50,8 +50,9 @@ def drop_pg_database(name: str) -> None:
 
 
 @pytest.fixture(scope="session", params=STORES)
-def store_url(request: pytest.FixtureRequest, tmp_path_factory: pytest.TempPathFactory
-              ) -> Iterator[str]:
+def store_url(
+    request: pytest.FixtureRequest, tmp_path_factory: pytest.TempPathFactory
+) -> Iterator[str]:
     """A migrated store, one per backend for the whole session."""
     if request.param == "sqlite":
         path = tmp_path_factory.mktemp("store") / "belated.db"
@@ -117,8 +118,9 @@ def make_tenant(sessions: Any, client: httpx.Client) -> Tenant:
 @pytest.fixture()
 def settings(store_url: str) -> Settings:
     """Settings bound to the test store, jobs off (tests that want jobs start them)."""
-    return Settings(database_url=store_url, jobs=False, max_batch=10_000,
-                    max_body_bytes=16 * 1024 * 1024)
+    return Settings(
+        database_url=store_url, jobs=False, max_batch=10_000, max_body_bytes=16 * 1024 * 1024
+    )
 
 
 @pytest.fixture()
@@ -159,8 +161,9 @@ class LiveServer:
 
         self.port = free_port()
         self.url = f"http://127.0.0.1:{self.port}"
-        config = uvicorn.Config(asgi, host="127.0.0.1", port=self.port, log_level="warning",
-                                lifespan="on")
+        config = uvicorn.Config(
+            asgi, host="127.0.0.1", port=self.port, log_level="warning", lifespan="on"
+        )
         self.server = uvicorn.Server(config)
         self.thread = threading.Thread(target=self.server.run, daemon=True)
 

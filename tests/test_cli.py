@@ -35,8 +35,15 @@ def env_for(db: Path, **extra: str) -> dict[str, str]:
 
 def run(args: list[str], db: Path, cwd: Path) -> subprocess.CompletedProcess[str]:
     """Run the command to completion."""
-    return subprocess.run([str(BELATED), *args], env=env_for(db), cwd=cwd, text=True,
-                          capture_output=True, timeout=120, check=False)
+    return subprocess.run(
+        [str(BELATED), *args],
+        env=env_for(db),
+        cwd=cwd,
+        text=True,
+        capture_output=True,
+        timeout=120,
+        check=False,
+    )
 
 
 def token_count(db: Path) -> int:
@@ -52,27 +59,34 @@ def token_count(db: Path) -> int:
 
 def test_keys_create_prints_a_working_token_alone_on_the_last_line(tmp_path: Path) -> None:
     db = tmp_path / "cli.db"
-    done = run(["keys", "create", "--project", "shop", "--scopes", "ingest,read,admin"],
-               db, tmp_path)
+    done = run(
+        ["keys", "create", "--project", "shop", "--scopes", "ingest,read,admin"], db, tmp_path
+    )
     assert done.returncode == 0, done.stderr
     token = done.stdout.rstrip("\n").splitlines()[-1]
     assert token and token == token.strip() and " " not in token
     with sqlite3.connect(db) as conn:
         stored = conn.execute(
             "SELECT t.token_hash, t.scopes FROM tokens t JOIN projects p"
-            " ON p.id = t.project_id WHERE p.name = 'shop'").fetchall()
+            " ON p.id = t.project_id WHERE p.name = 'shop'"
+        ).fetchall()
     assert stored == [(hash_token(token), "admin,ingest,read")]
     settings = Settings(database_url=f"sqlite:///{db}", jobs=False)
     with TestClient(create_app(settings, jobs=False)) as client:
         auth = {"Authorization": f"Bearer {token}"}
         body = model_body()
         assert client.post("/v1/models", json=body, headers=auth).status_code == 201
-        r = client.post(f"/v1/models/{body['name']}/predictions",
-                        json={"predictions": predictions(2)}, headers=auth)
+        r = client.post(
+            f"/v1/models/{body['name']}/predictions",
+            json={"predictions": predictions(2)},
+            headers=auth,
+        )
         assert r.json() == {"accepted": 2, "duplicates": 0}
         assert client.get("/v1/models", headers=auth).json()["items"][0]["name"] == body["name"]
-        assert client.get("/v1/models", headers={"Authorization": f"Bearer {token}x"}
-                          ).status_code == 401
+        assert (
+            client.get("/v1/models", headers={"Authorization": f"Bearer {token}x"}).status_code
+            == 401
+        )
 
 
 def test_keys_create_with_bad_scopes_fails_with_a_message(tmp_path: Path) -> None:
@@ -98,9 +112,13 @@ def served(tmp_path: Path) -> Iterator[str]:
     db = tmp_path / "serve.db"
     port = free_port()
     log = (tmp_path / "serve.log").open("w")
-    proc = subprocess.Popen([str(BELATED), "serve", "--port", str(port)], cwd=tmp_path,
-                            env=env_for(db, BELATED_JOBS="false"), stdout=log,
-                            stderr=subprocess.STDOUT)
+    proc = subprocess.Popen(
+        [str(BELATED), "serve", "--port", str(port)],
+        cwd=tmp_path,
+        env=env_for(db, BELATED_JOBS="false"),
+        stdout=log,
+        stderr=subprocess.STDOUT,
+    )
     url = f"http://127.0.0.1:{port}"
     try:
         deadline = time.monotonic() + 60
@@ -128,8 +146,11 @@ def test_serve_answers_over_http(served: str, tmp_path: Path) -> None:
     health = httpx.get(f"{served}/healthz", timeout=10).json()
     assert health["store"] == "up"
     assert health["jobs"]["enabled"] is False
-    made = run(["keys", "create", "--project", "shop", "--scopes", "admin,read"],
-               tmp_path / "serve.db", tmp_path)
+    made = run(
+        ["keys", "create", "--project", "shop", "--scopes", "admin,read"],
+        tmp_path / "serve.db",
+        tmp_path,
+    )
     assert made.returncode == 0, made.stderr
     auth = {"Authorization": f"Bearer {made.stdout.splitlines()[-1]}"}
     body = model_body()

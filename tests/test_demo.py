@@ -24,8 +24,13 @@ def test_demo_flags_the_day_60_change_in_the_north(tmp_path: Path) -> None:
     port = free_port()
     env = {**os.environ, "BELATED_LOG_FORMAT": "text"}
     out = (tmp_path / "demo.out").open("w+")
-    proc = subprocess.Popen([str(BELATED), "demo", "--days", "75", "--port", str(port)],
-                            stdout=out, stderr=subprocess.DEVNULL, env=env, cwd=tmp_path)
+    proc = subprocess.Popen(
+        [str(BELATED), "demo", "--days", "75", "--port", str(port)],
+        stdout=out,
+        stderr=subprocess.DEVNULL,
+        env=env,
+        cwd=tmp_path,
+    )
     try:
         deadline = time.monotonic() + 900
         text = ""
@@ -43,18 +48,25 @@ def test_demo_flags_the_day_60_change_in_the_north(tmp_path: Path) -> None:
         north = [x for x in alerts if "region:north" in x]
         assert north and all("region:north" in x for x in alerts), alerts
         change_day = (datetime.now(UTC) - timedelta(days=75 - 60)).date()
-        firsts = [datetime.strptime(m, "%Y-%m-%d").date()
-                  for m in re.findall(r"window of (\d{4}-\d{2}-\d{2})", " ".join(north))]
+        firsts = [
+            datetime.strptime(m, "%Y-%m-%d").date()
+            for m in re.findall(r"window of (\d{4}-\d{2}-\d{2})", " ".join(north))
+        ]
         # the label-free shift is seen on the day the change starts (or the next window)
         assert min(firsts) <= change_day + timedelta(days=1)
         assert any("shift positive_rate" in x for x in north)
-        page = httpx.get(f"{url}models/returns-v2", params={"segment": "region:north"},
-                         cookies={"belated_token": token}, timeout=60)
+        page = httpx.get(
+            f"{url}models/returns-v2",
+            params={"segment": "region:north"},
+            cookies={"belated_token": token},
+            timeout=60,
+        )
         assert page.status_code == 200
         assert "open" in page.text and "region:north" in page.text
         assert "provisional" in page.text  # the cautions and unsettled windows are shown
-        read_only = httpx.post(f"{url}v1/models", json={"name": "x"},
-                               headers={"Authorization": f"Bearer {token}"})
+        read_only = httpx.post(
+            f"{url}v1/models", json={"name": "x"}, headers={"Authorization": f"Bearer {token}"}
+        )
         assert read_only.status_code == 403  # the printed token only reads
     finally:
         proc.terminate()

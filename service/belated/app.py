@@ -28,8 +28,9 @@ from belated.counters import Counters
 from belated.store.db import make_engine, make_sessionmaker
 
 
-def create_app(settings: Settings | None = None, *, engine: Engine | None = None,
-               jobs: bool | None = None) -> Any:
+def create_app(
+    settings: Settings | None = None, *, engine: Engine | None = None, jobs: bool | None = None
+) -> Any:
     """Build the ASGI app; `jobs` overrides BELATED_JOBS (the scheduler in this process)."""
     settings = settings or get_settings()
     engine = engine or make_engine(settings.database_url)
@@ -50,8 +51,12 @@ def create_app(settings: Settings | None = None, *, engine: Engine | None = None
             if runner is not None:
                 runner.stop()
 
-    app = FastAPI(title="belated", version=__version__, lifespan=lifespan,
-                  description="Monitoring for classifiers whose labels arrive late.")
+    app = FastAPI(
+        title="belated",
+        version=__version__,
+        lifespan=lifespan,
+        description="Monitoring for classifiers whose labels arrive late.",
+    )
     app.state.settings = settings
     app.state.engine = engine
     app.state.sessions = make_sessionmaker(engine)
@@ -59,8 +64,15 @@ def create_app(settings: Settings | None = None, *, engine: Engine | None = None
     app.state.jobs = None
     problems.install(app)
     app.state.outbox_backlog = delivery.backlog
-    for module in (routes_models, routes_ingest, routes_metrics, routes_alerts, routes_keys,
-                   routes_health, routes_prometheus):
+    for module in (
+        routes_models,
+        routes_ingest,
+        routes_metrics,
+        routes_alerts,
+        routes_keys,
+        routes_health,
+        routes_prometheus,
+    ):
         app.include_router(module.router)
     _optional_routers(app)
     openapi.install(app)

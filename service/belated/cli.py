@@ -8,8 +8,11 @@ import typer
 
 from belated.config import get_settings
 
-app = typer.Typer(help="belated: monitoring for classifiers whose labels arrive late.",
-                  no_args_is_help=True, add_completion=False)
+app = typer.Typer(
+    help="belated: monitoring for classifiers whose labels arrive late.",
+    no_args_is_help=True,
+    add_completion=False,
+)
 keys_app = typer.Typer(help="API tokens.", no_args_is_help=True)
 app.add_typer(keys_app, name="keys")
 
@@ -19,8 +22,9 @@ def _url(database_url: str | None) -> str:
 
 
 @app.command()
-def migrate(database_url: str | None = typer.Option(None, help="Overrides BELATED_DATABASE_URL.")
-            ) -> None:
+def migrate(
+    database_url: str | None = typer.Option(None, help="Overrides BELATED_DATABASE_URL."),
+) -> None:
     """Apply the database migrations."""
     from belated.store.migrate import upgrade
 
@@ -48,11 +52,11 @@ def serve(
         upgrade(settings.database_url)  # the embedded store migrates itself
     # the options become the settings, so the service knows its own address (webhooks
     # must never point back at it)
-    settings = settings.model_copy(update={"host": host or settings.host,
-                                           "port": port if port is not None else settings.port})
+    settings = settings.model_copy(
+        update={"host": host or settings.host, "port": port if port is not None else settings.port}
+    )
     asgi = create_app(settings, jobs=settings.jobs and not no_jobs)
-    uvicorn.run(asgi, host=settings.host, port=settings.port, log_config=None,
-                access_log=False)
+    uvicorn.run(asgi, host=settings.host, port=settings.port, log_config=None, access_log=False)
 
 
 @app.command()
@@ -78,8 +82,10 @@ def worker() -> None:
 
 
 @app.command()
-def rebuild(model: str | None = typer.Option(None, help="Only this model (by name)."),
-            project: str | None = typer.Option(None, help="The model's project.")) -> None:
+def rebuild(
+    model: str | None = typer.Option(None, help="Only this model (by name)."),
+    project: str | None = typer.Option(None, help="The model's project."),
+) -> None:
     """Recompute every rollup from raw rows."""
     from sqlalchemy import select
 
@@ -95,21 +101,24 @@ def rebuild(model: str | None = typer.Option(None, help="Only this model (by nam
             query = select(ModelRow.id).where(ModelRow.name == model)
             if project is not None:
                 query = query.join(Project, Project.id == ModelRow.project_id).where(
-                    Project.name == project)
+                    Project.name == project
+                )
             ids = list(session.scalars(query))
         if not ids:
             typer.echo(f"no model named {model!r}", err=True)
             raise typer.Exit(1)
-    total = sum(refresh.rebuild(factory, max_values=settings.max_segment_values, model_id=i)
-                for i in ids)
+    total = sum(
+        refresh.rebuild(factory, max_values=settings.max_segment_values, model_id=i) for i in ids
+    )
     typer.echo(f"rebuilt {total} hour buckets")
 
 
 @app.command()
-def demo(days: int = typer.Option(90, min=14, max=365, help="Days of orders to generate."),
-         seed: int = typer.Option(1, help="Seed of the generator."),
-         port: int = typer.Option(8000, help="Port to serve on (0: any free port)."),
-         ) -> None:
+def demo(
+    days: int = typer.Option(90, min=14, max=365, help="Days of orders to generate."),
+    seed: int = typer.Option(1, help="Seed of the generator."),
+    port: int = typer.Option(8000, help="Port to serve on (0: any free port)."),
+) -> None:
     """Run the furniture-shop demo on a fresh SQLite file and keep serving it."""
     from belated import demo as demo_module
 
@@ -138,8 +147,7 @@ def keys_create(
     engine = make_engine(url)
     with transaction(make_sessionmaker(engine)) as session:
         proj = keys.get_or_create_project(session=session, name=project)
-        row, secret = keys.create(session=session, project_id=proj.id, scopes=scope_list,
-                                  name=name)
+        row, secret = keys.create(session=session, project_id=proj.id, scopes=scope_list, name=name)
     engine.dispose()
     typer.echo(f"project: {project}\nkey id: {row.id}\nscopes: {row.scopes}")
     typer.echo(secret)

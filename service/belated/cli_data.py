@@ -20,24 +20,33 @@ import typer
 
 from belated.client import ANSWER_KEYS, BelatedError, Client, Unreachable, frame_items
 
-send_app = typer.Typer(help="Send predictions or labels from a CSV or Parquet file.",
-                       no_args_is_help=True)
+send_app = typer.Typer(
+    help="Send predictions or labels from a CSV or Parquet file.", no_args_is_help=True
+)
 SHOWN = 50  # bad rows printed one by one; later ones are only counted
 URL = typer.Option(..., "--url", envvar="BELATED_URL", help="The service address.")
-TOKEN = typer.Option(..., "--token", envvar="BELATED_TOKEN",
-                     help="An API token: ingest scope to send, read to check rows and to show.")
+TOKEN = typer.Option(
+    ...,
+    "--token",
+    envvar="BELATED_TOKEN",
+    help="An API token: ingest scope to send, read to check rows and to show.",
+)
 MODEL = typer.Option(..., "--model", "-m", help="The model's name.")
 FILE = typer.Argument(..., exists=True, dir_okay=False, help="A .csv (.csv.gz) or .parquet file.")
 BATCH = typer.Option(10_000, "--batch-size", min=1, help="Rows per request.")
 SKIP = typer.Option(False, "--skip-bad", help="Report and skip bad rows instead of stopping.")
 FORMAT = typer.Option("auto", "--format", help="auto (by extension), csv or parquet.")
-PROGRESS = typer.Option(None, "--progress/--no-progress",
-                        help="A progress bar on stderr (default: when stderr is a terminal).")
+PROGRESS = typer.Option(
+    None,
+    "--progress/--no-progress",
+    help="A progress bar on stderr (default: when stderr is a terminal).",
+)
 RETRIES = typer.Option(8, "--retries", min=0, help="Retries of a request the service missed.")
 ID_COL = typer.Option("id", "--id-column", help="The column of prediction ids.")
 TS_COL = typer.Option("ts", "--ts-column", help="The column of times (RFC 3339).")
-SEGMENT = typer.Option(None, "--segment", help="Only the predictions with this tag, key:value "
-                       "(repeatable).")
+SEGMENT = typer.Option(
+    None, "--segment", help="Only the predictions with this tag, key:value (repeatable)."
+)
 
 
 def _fail(message: str, code: int = 1) -> typer.Exit:
@@ -63,12 +72,11 @@ class Columns:
         if self.kind == "labels":
             fixed = {self.id: "id", self.actual: "actual", self.ts: "ts"}
         else:
-            fixed = {self.id: "id", self.ts: "ts", self.score: "score",
-                     self.predicted: "predicted"}
+            fixed = {self.id: "id", self.ts: "ts", self.score: "score", self.predicted: "predicted"}
         out: dict[str, str] = {}
         unused: list[str] = []
         for name in names:
-            rest_s, rest_t = name[len(self.score_prefix):], name[len(self.tag_prefix):]
+            rest_s, rest_t = name[len(self.score_prefix) :], name[len(self.tag_prefix) :]
             if name in fixed:
                 out[name] = fixed[name]
             elif self.kind == "predictions" and name.startswith(self.score_prefix) and rest_s:
@@ -82,8 +90,11 @@ class Columns:
         if self.kind == "predictions" and not any(v.startswith("score") for v in out.values()):
             missing.append(f"{self.score} (or {self.score_prefix}<class> columns)")
         if missing:
-            raise _fail(f"the file has no column for {', '.join(missing)}; its columns are "
-                        f"{', '.join(names)}. Name them with the --*-column options.", 2)
+            raise _fail(
+                f"the file has no column for {', '.join(missing)}; its columns are "
+                f"{', '.join(names)}. Name them with the --*-column options.",
+                2,
+            )
         return out, unused
 
 
@@ -122,8 +133,9 @@ def _frames(path: Path, fmt: str, size: int) -> Iterator[pd.DataFrame]:
             yield batch.to_pandas()
         return
     # Blank lines are kept (and dropped later) so that row k is always on line k + 2.
-    yield from pd.read_csv(path, dtype=str, keep_default_na=False, skip_blank_lines=False,
-                           chunksize=size)
+    yield from pd.read_csv(
+        path, dtype=str, keep_default_na=False, skip_blank_lines=False, chunksize=size
+    )
 
 
 def _number(text: Any) -> Any:
@@ -183,8 +195,12 @@ class Sender:
         alive, found = list(range(len(items))), {}
         while alive:
             try:
-                check({self.kind: [items[i] for i in alive]}, self.spec,
-                      now=datetime.now(UTC), max_batch=len(alive))
+                check(
+                    {self.kind: [items[i] for i in alive]},
+                    self.spec,
+                    now=datetime.now(UTC),
+                    max_batch=len(alive),
+                )
                 break
             except Invalid as exc:
                 bad = self._errors(exc.errors, [lines[i] for i in alive])
@@ -200,22 +216,28 @@ class Sender:
             k = err.get("index")
             if not isinstance(k, int) or not 0 <= k < len(lines):
                 continue
-            reason = re.sub(r"at index (\d+)",
-                            lambda m: f"on {self.where} {lines[int(m[1])]}"
-                            if int(m[1]) < len(lines) else m[0], str(err.get("reason")))
+            reason = re.sub(
+                r"at index (\d+)",
+                lambda m: f"on {self.where} {lines[int(m[1])]}" if int(m[1]) < len(lines) else m[0],
+                str(err.get("reason")),
+            )
             where = f"field '{err.get('field')}': " if err.get("field") else ""
             out[k] = (out[k] + "; " if k in out else "") + where + reason
         return out
 
-    def _refused(self, exc: BelatedError, items: list[dict[str, Any]], lines: list[int]
-                 ) -> dict[int, str]:
+    def _refused(
+        self, exc: BelatedError, items: list[dict[str, Any]], lines: list[int]
+    ) -> dict[int, str]:
         """The rows a refusal names: a 422's item indexes, a 409's conflicting ids."""
         if exc.status == 422:
             return self._errors(exc.errors, lines)
         if exc.status == 409 and exc.problem.get("ids"):
             ids = {str(i) for i in exc.problem["ids"]}
-            return {k: "already stored with different content (predictions are immutable)"
-                    for k, item in enumerate(items) if str(item.get("id")) in ids}
+            return {
+                k: "already stored with different content (predictions are immutable)"
+                for k, item in enumerate(items)
+                if str(item.get("id")) in ids
+            }
         return {}
 
     def send(self, items: list[dict[str, Any]], lines: list[int]) -> None:
@@ -226,9 +248,11 @@ class Sender:
             for k in sorted(bad):
                 self._note(lines[k], bad[k])
             if bad and not self.skip_bad:
-                raise _fail(f"stopped: nothing of {self.where}s {first}-{last} was stored; "
-                            f"before them: {self.summary()}. Fix the rows, or pass --skip-bad "
-                            "to skip bad rows.")
+                raise _fail(
+                    f"stopped: nothing of {self.where}s {first}-{last} was stored; "
+                    f"before them: {self.summary()}. Fix the rows, or pass --skip-bad "
+                    "to skip bad rows."
+                )
             self.skipped += len(bad)
             items = [it for k, it in enumerate(items) if k not in bad]
             lines = [n for k, n in enumerate(lines) if k not in bad]
@@ -239,8 +263,10 @@ class Sender:
             except BelatedError as exc:
                 bad = self._refused(exc, items, lines)
                 if not bad:
-                    raise _fail(f"refused ({self.where}s {first}-{last}, nothing of them "
-                                f"stored): {exc}\nbefore them: {self.summary()}") from None
+                    raise _fail(
+                        f"refused ({self.where}s {first}-{last}, nothing of them "
+                        f"stored): {exc}\nbefore them: {self.summary()}"
+                    ) from None
                 continue
             for key in ANSWER_KEYS[self.kind]:
                 self.totals[key] = self.totals.get(key, 0) + int(answer.get(key, 0))
@@ -262,16 +288,33 @@ def _spec(client: Client, model: str) -> Any:
         raise
     except BelatedError as exc:
         if exc.status == 403:
-            typer.echo("note: the token cannot read the model; rows are checked by the "
-                       "service only", err=True)
+            typer.echo(
+                "note: the token cannot read the model; rows are checked by the service only",
+                err=True,
+            )
             return None
         raise _fail(f"refused: {exc}") from None
-    return ModelSpec(kind=got["kind"], classes=tuple(got["classes"]), positive=got["positive"],
-                     threshold=float(got["threshold"]))
+    return ModelSpec(
+        kind=got["kind"],
+        classes=tuple(got["classes"]),
+        positive=got["positive"],
+        threshold=float(got["threshold"]),
+    )
 
 
-def _run(kind: str, path: Path, cols: Columns, model: str, url: str, token: str,
-         batch_size: int, skip_bad: bool, fmt: str, progress: bool | None, retries: int) -> None:
+def _run(
+    kind: str,
+    path: Path,
+    cols: Columns,
+    model: str,
+    url: str,
+    token: str,
+    batch_size: int,
+    skip_bad: bool,
+    fmt: str,
+    progress: bool | None,
+    retries: int,
+) -> None:
     fmt = _format(path, fmt)
     names, total = _header(path, fmt)
     mapping, unused = cols.mapping(names)
@@ -288,8 +331,9 @@ def _run(kind: str, path: Path, cols: Columns, model: str, url: str, token: str,
             raise _fail(str(exc)) from None
         sender = Sender(client, model, kind, spec, skip_bad, "row" if fmt == "parquet" else "line")
         offset = 1 if fmt == "parquet" else 2  # CSV: the header is line 1
-        bar = Progress(console=console, disable=not (console.is_terminal if progress is None
-                                                     else progress))
+        bar = Progress(
+            console=console, disable=not (console.is_terminal if progress is None else progress)
+        )
         with bar:
             task = bar.add_task(f"{kind} to {model}", total=total)
             for frame in _frames(path, fmt, batch_size):
@@ -304,15 +348,24 @@ def _run(kind: str, path: Path, cols: Columns, model: str, url: str, token: str,
                 bar.advance(task, len(frame))
     if sender.noted > SHOWN:
         typer.echo(f"... and {sender.noted - SHOWN} more bad rows, skipped", err=True)
-    typer.echo(f"{kind} from {path.name}: {offset - (1 if fmt == 'parquet' else 2)} rows; "
-               f"{sender.summary()}")
+    typer.echo(
+        f"{kind} from {path.name}: {offset - (1 if fmt == 'parquet' else 2)} rows; "
+        f"{sender.summary()}"
+    )
 
 
 @send_app.command("predictions")
 def send_predictions(
-    file: Path = FILE, model: str = MODEL, url: str = URL, token: str = TOKEN,
-    batch_size: int = BATCH, skip_bad: bool = SKIP, file_format: str = FORMAT,
-    progress: bool | None = PROGRESS, retries: int = RETRIES, id_column: str = ID_COL,
+    file: Path = FILE,
+    model: str = MODEL,
+    url: str = URL,
+    token: str = TOKEN,
+    batch_size: int = BATCH,
+    skip_bad: bool = SKIP,
+    file_format: str = FORMAT,
+    progress: bool | None = PROGRESS,
+    retries: int = RETRIES,
+    id_column: str = ID_COL,
     ts_column: str = TS_COL,
     score_column: str = typer.Option("score", help="The score of a binary model."),
     score_prefix: str = typer.Option("score.", help="Prefix of per-class score columns."),
@@ -320,24 +373,60 @@ def send_predictions(
     tag_prefix: str = typer.Option("tag.", help="Prefix of tag columns: tag.<key>."),
 ) -> None:
     """Send predictions: id, ts, score (or score.<class>), optional predicted and tag.<key>."""
-    cols = Columns("predictions", id=id_column, ts=ts_column, score=score_column,
-                   score_prefix=score_prefix, predicted=predicted_column, tag_prefix=tag_prefix)
-    _run("predictions", file, cols, model, url, token, batch_size, skip_bad, file_format,
-         progress, retries)
+    cols = Columns(
+        "predictions",
+        id=id_column,
+        ts=ts_column,
+        score=score_column,
+        score_prefix=score_prefix,
+        predicted=predicted_column,
+        tag_prefix=tag_prefix,
+    )
+    _run(
+        "predictions",
+        file,
+        cols,
+        model,
+        url,
+        token,
+        batch_size,
+        skip_bad,
+        file_format,
+        progress,
+        retries,
+    )
 
 
 @send_app.command("labels")
 def send_labels(
-    file: Path = FILE, model: str = MODEL, url: str = URL, token: str = TOKEN,
-    batch_size: int = BATCH, skip_bad: bool = SKIP, file_format: str = FORMAT,
-    progress: bool | None = PROGRESS, retries: int = RETRIES, id_column: str = ID_COL,
+    file: Path = FILE,
+    model: str = MODEL,
+    url: str = URL,
+    token: str = TOKEN,
+    batch_size: int = BATCH,
+    skip_bad: bool = SKIP,
+    file_format: str = FORMAT,
+    progress: bool | None = PROGRESS,
+    retries: int = RETRIES,
+    id_column: str = ID_COL,
     ts_column: str = typer.Option("ts", "--ts-column", help="When the outcome was known."),
     actual_column: str = typer.Option("actual", help="The true class."),
 ) -> None:
     """Send labels: id, actual, optional ts (when the outcome became known)."""
     cols = Columns("labels", id=id_column, ts=ts_column, actual=actual_column)
-    _run("labels", file, cols, model, url, token, batch_size, skip_bad, file_format,
-         progress, retries)
+    _run(
+        "labels",
+        file,
+        cols,
+        model,
+        url,
+        token,
+        batch_size,
+        skip_bad,
+        file_format,
+        progress,
+        retries,
+    )
 
 
 def _measure(frame: pd.DataFrame, name: str) -> str:
@@ -359,7 +448,9 @@ def _cell(row: pd.Series, col: str) -> str:
 
 
 def windows(
-    model: str = MODEL, url: str = URL, token: str = TOKEN,
+    model: str = MODEL,
+    url: str = URL,
+    token: str = TOKEN,
     granularity: str = typer.Option("day", help="hour, day or week (UTC)."),
     last: int = typer.Option(14, min=1, max=1000, help="How many of the latest windows."),
     measures: str = typer.Option("precision,recall,fbeta", help="A comma list of measures."),
@@ -380,23 +471,34 @@ def windows(
     start = datetime.now(UTC) - (last + 1) * window_step(granularity)
     with Client(url, token, retries=3) as client:
         try:
-            frame = client.metrics(model, granularity=granularity, start=start,
-                                   rolling=rolling, segment=segment)
+            frame = client.metrics(
+                model, granularity=granularity, start=start, rolling=rolling, segment=segment
+            )
         except BelatedError as exc:
             raise _fail(f"refused: {exc}") from None
     frame = frame.tail(last)
     cols = [_measure(frame, m.strip()) for m in measures.split(",") if m.strip()]
-    table = Table(title=f"{model}: latest {len(frame)} {granularity} windows (UTC)",
-                  caption=Text("provisional: not settled, may change as labels arrive; open: "
-                               "the current window; [low, high]: 95% interval"))
+    table = Table(
+        title=f"{model}: latest {len(frame)} {granularity} windows (UTC)",
+        caption=Text(
+            "provisional: not settled, may change as labels arrive; open: "
+            "the current window; [low, high]: 95% interval"
+        ),
+    )
     for head in ("start", "predictions", "labelled", "coverage", "state", *cols):
         table.add_column(head, justify="left" if head in ("start", "state") else "right")
     shape = "%Y-%m-%d %H:%M" if granularity == "hour" else "%Y-%m-%d"
     for _, row in frame.iterrows():
         state = "open" if not row["closed"] else "settled" if row["settled"] else "provisional"
         coverage = "-" if pd.isna(row["coverage"]) else f"{row['coverage']:.1%}"
-        cells = [row["start"].strftime(shape), str(row["predictions"]), str(row["labelled"]),
-                 coverage, state, *(_cell(row, c) for c in cols)]
+        cells = [
+            row["start"].strftime(shape),
+            str(row["predictions"]),
+            str(row["labelled"]),
+            coverage,
+            state,
+            *(_cell(row, c) for c in cols),
+        ]
         table.add_row(*(Text(c) for c in cells))  # Text: brackets are not markup
     Console(width=None if sys.stdout.isatty() else 240).print(table)
 
@@ -405,6 +507,8 @@ def register(app: typer.Typer) -> None:
     """Add `send` and `windows` to the `belated` app (a second call changes nothing)."""
     if not any(g.name == "send" for g in app.registered_groups):
         app.add_typer(send_app, name="send")
-    if not any((c.name or getattr(c.callback, "__name__", "")) == "windows"
-               for c in app.registered_commands):
+    if not any(
+        (c.name or getattr(c.callback, "__name__", "")) == "windows"
+        for c in app.registered_commands
+    ):
         app.command("windows")(windows)

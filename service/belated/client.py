@@ -15,7 +15,7 @@ import random
 import time
 from collections.abc import Callable, Iterator
 from datetime import UTC, date, datetime
-from typing import Any
+from typing import Any, cast
 
 import httpx
 import numpy as np
@@ -23,13 +23,20 @@ import orjson
 import pandas as pd
 
 DEFAULT_BATCH = 10_000
-ANSWER_KEYS = {"predictions": ("accepted", "duplicates"),
-               "labels": ("matched", "pending", "corrected", "unchanged")}
+ANSWER_KEYS = {
+    "predictions": ("accepted", "duplicates"),
+    "labels": ("matched", "pending", "corrected", "unchanged"),
+}
 # Request errors raised before the request reached the service: safe to retry for any call.
 NOT_SENT = (httpx.ConnectError, httpx.ConnectTimeout, httpx.PoolTimeout)
 # Errors after the request may have reached it: retried only where a repeat is harmless.
-MAYBE_SENT = (httpx.ReadError, httpx.WriteError, httpx.ReadTimeout, httpx.WriteTimeout,
-              httpx.RemoteProtocolError)
+MAYBE_SENT = (
+    httpx.ReadError,
+    httpx.WriteError,
+    httpx.ReadTimeout,
+    httpx.WriteTimeout,
+    httpx.RemoteProtocolError,
+)
 
 Progress = Callable[[int, dict[str, int]], None]
 
@@ -37,9 +44,14 @@ Progress = Callable[[int, dict[str, int]], None]
 class BelatedError(Exception):
     """A refused request, with its problem details: status, title, detail and errors."""
 
-    def __init__(self, status: int | None, title: str, detail: str,
-                 errors: list[dict[str, Any]] | None = None,
-                 problem: dict[str, Any] | None = None) -> None:
+    def __init__(
+        self,
+        status: int | None,
+        title: str,
+        detail: str,
+        errors: list[dict[str, Any]] | None = None,
+        problem: dict[str, Any] | None = None,
+    ) -> None:
         super().__init__(f"{status or 'no answer'} {title}: {detail}")
         self.status = status
         self.title = title
@@ -59,11 +71,14 @@ class BelatedError(Exception):
         except ValueError:
             body = None
         if not isinstance(body, dict):
-            return cls(response.status_code, response.reason_phrase or "Error",
-                       response.text[:500])
-        return cls(int(body.get("status") or response.status_code),
-                   str(body.get("title") or response.reason_phrase),
-                   str(body.get("detail") or ""), body.get("errors"), body)
+            return cls(response.status_code, response.reason_phrase or "Error", response.text[:500])
+        return cls(
+            int(body.get("status") or response.status_code),
+            str(body.get("title") or response.reason_phrase),
+            str(body.get("detail") or ""),
+            body.get("errors"),
+            body,
+        )
 
 
 class Unreachable(BelatedError):
@@ -144,13 +159,12 @@ def frame_items(frame: pd.DataFrame) -> list[dict[str, Any]]:
     return items
 
 
-def _chunks(rows: pd.DataFrame | list[dict[str, Any]], size: int
-            ) -> Iterator[list[dict[str, Any]]]:
+def _chunks(rows: pd.DataFrame | list[dict[str, Any]], size: int) -> Iterator[list[dict[str, Any]]]:
     for start in range(0, len(rows), size):
         if isinstance(rows, pd.DataFrame):
-            yield frame_items(rows.iloc[start:start + size])
+            yield frame_items(rows.iloc[start : start + size])
         else:
-            yield [dict_item(item) for item in rows[start:start + size]]
+            yield [dict_item(item) for item in rows[start : start + size]]
 
 
 def dict_item(row: dict[str, Any]) -> dict[str, Any]:
@@ -159,11 +173,11 @@ def dict_item(row: dict[str, Any]) -> dict[str, Any]:
     for prefix, key in (("score.", "scores"), ("tag.", "tags")):
         flat = [k for k in item if k.startswith(prefix)]
         if flat:
-            found = {k[len(prefix):]: item.pop(k) for k in flat}
+            found = {k[len(prefix) :]: item.pop(k) for k in flat}
             found = {k: v for k, v in found.items() if key == "scores" or v not in (None, "")}
             if found:
                 item[key] = {**(item.get(key) or {}), **found}
-    return item
+    return cast(dict[str, Any], item)
 
 
 def _retry_after(response: httpx.Response) -> float | None:
@@ -183,10 +197,19 @@ def _retry_after(response: httpx.Response) -> float | None:
 class Client:
     """The belated API over HTTP, with a bearer token and bounded retries."""
 
-    def __init__(self, url: str, token: str, *, batch_size: int = DEFAULT_BATCH,
-                 retries: int = 8, backoff: float = 0.5, max_wait: float = 30.0,
-                 timeout: float = 120.0, transport: httpx.BaseTransport | None = None,
-                 sleep: Callable[[float], None] = time.sleep) -> None:
+    def __init__(
+        self,
+        url: str,
+        token: str,
+        *,
+        batch_size: int = DEFAULT_BATCH,
+        retries: int = 8,
+        backoff: float = 0.5,
+        max_wait: float = 30.0,
+        timeout: float = 120.0,
+        transport: httpx.BaseTransport | None = None,
+        sleep: Callable[[float], None] = time.sleep,
+    ) -> None:
         if batch_size < 1:
             raise ValueError("batch_size must be at least 1")
         self.batch_size = batch_size
@@ -194,9 +217,12 @@ class Client:
         self.backoff = backoff
         self.max_wait = max_wait
         self._sleep = sleep
-        self.http = httpx.Client(base_url=url.rstrip("/"), timeout=timeout, transport=transport,
-                                 headers={"Authorization": f"Bearer {token}",
-                                          "User-Agent": "belated-client"})
+        self.http = httpx.Client(
+            base_url=url.rstrip("/"),
+            timeout=timeout,
+            transport=transport,
+            headers={"Authorization": f"Bearer {token}", "User-Agent": "belated-client"},
+        )
 
     def __enter__(self) -> Client:
         return self
@@ -213,20 +239,29 @@ class Client:
         delay = self.backoff * 2**attempt * (0.5 + random.random() / 2)
         self._sleep(min(self.max_wait, asked if asked is not None else delay))
 
-    def request(self, method: str, path: str, *, body: Any = None,
-                params: dict[str, Any] | None = None, repeatable: bool = True) -> Any:
+    def request(
+        self,
+        method: str,
+        path: str,
+        *,
+        body: Any = None,
+        params: dict[str, Any] | None = None,
+        repeatable: bool = True,
+    ) -> Any:
         """Send one request, retrying connection errors and 503; answer the JSON body."""
         content = None if body is None else orjson.dumps(body)
         headers = {"Content-Type": "application/json"} if content is not None else None
         for attempt in range(self.retries + 1):
             last = attempt == self.retries
             try:
-                response = self.http.request(method, path, content=content, params=params,
-                                             headers=headers)
-            except (NOT_SENT + MAYBE_SENT) as exc:
+                response = self.http.request(
+                    method, path, content=content, params=params, headers=headers
+                )
+            except NOT_SENT + MAYBE_SENT as exc:
                 if last or (not repeatable and not isinstance(exc, NOT_SENT)):
-                    raise Unreachable(None, "Service unreachable",
-                                      f"{self.http.base_url}: {exc!r}") from exc
+                    raise Unreachable(
+                        None, "Service unreachable", f"{self.http.base_url}: {exc!r}"
+                    ) from exc
                 self._wait(attempt, None)
                 continue
             if response.status_code == 503 and not last:
@@ -240,10 +275,18 @@ class Client:
     def send_batch(self, model: str, kind: str, items: list[dict[str, Any]]) -> dict[str, int]:
         """Post one batch of `kind` ("predictions" or "labels"), all or nothing."""
         # A repeat of an ingest request is harmless: stored rows come back as duplicates.
-        return self.request("POST", f"/v1/models/{model}/{kind}", body={kind: items})
+        return cast(
+            dict[str, Any], self.request("POST", f"/v1/models/{model}/{kind}", body={kind: items})
+        )
 
-    def _send(self, model: str, kind: str, rows: pd.DataFrame | list[dict[str, Any]],
-              batch_size: int | None, progress: Progress | None) -> dict[str, int]:
+    def _send(
+        self,
+        model: str,
+        kind: str,
+        rows: pd.DataFrame | list[dict[str, Any]],
+        batch_size: int | None,
+        progress: Progress | None,
+    ) -> dict[str, int]:
         total = dict.fromkeys(ANSWER_KEYS[kind], 0)
         offset = 0
         for items in _chunks(rows, batch_size or self.batch_size):
@@ -259,29 +302,44 @@ class Client:
                 progress(len(items), answer)
         return total
 
-    def send_predictions(self, model: str, rows: pd.DataFrame | list[dict[str, Any]], *,
-                         batch_size: int | None = None, progress: Progress | None = None
-                         ) -> dict[str, int]:
+    def send_predictions(
+        self,
+        model: str,
+        rows: pd.DataFrame | list[dict[str, Any]],
+        *,
+        batch_size: int | None = None,
+        progress: Progress | None = None,
+    ) -> dict[str, int]:
         """Send predictions in batches; answer the summed {"accepted", "duplicates"}."""
         return self._send(model, "predictions", rows, batch_size, progress)
 
-    def send_labels(self, model: str, rows: pd.DataFrame | list[dict[str, Any]], *,
-                    batch_size: int | None = None, progress: Progress | None = None
-                    ) -> dict[str, int]:
+    def send_labels(
+        self,
+        model: str,
+        rows: pd.DataFrame | list[dict[str, Any]],
+        *,
+        batch_size: int | None = None,
+        progress: Progress | None = None,
+    ) -> dict[str, int]:
         """Send labels in batches; answer the summed matched, pending, corrected, unchanged."""
         return self._send(model, "labels", rows, batch_size, progress)
 
     def model(self, name: str) -> dict[str, Any]:
         """One model with its settings and stored counts."""
-        return self.request("GET", f"/v1/models/{name}")
+        return cast(dict[str, Any], self.request("GET", f"/v1/models/{name}"))
 
     def create_model(self, **fields: Any) -> dict[str, Any]:
         """Create a model (`name`, `kind`, `classes`, ... as in POST /v1/models)."""
-        return self.request("POST", "/v1/models", body=plain(fields), repeatable=False)
+        return cast(
+            dict[str, Any], self.request("POST", "/v1/models", body=plain(fields), repeatable=False)
+        )
 
     def metrics_json(self, model: str, **params: Any) -> dict[str, Any]:
         """The metrics answer as the API gives it."""
-        return self.request("GET", f"/v1/models/{model}/metrics", params=_query(params))
+        return cast(
+            dict[str, Any],
+            self.request("GET", f"/v1/models/{model}/metrics", params=_query(params)),
+        )
 
     def metrics(self, model: str, **params: Any) -> pd.DataFrame:
         """One row per window: counts, coverage, settled, closed, and each measure flattened.
@@ -291,8 +349,10 @@ class Client:
         measures `<class>.m`. `start` and `end` are UTC timestamps; undefined values are NaN.
         """
         answer = self.metrics_json(model, **params)
-        frame = pd.DataFrame([flatten_window(w) for w in answer["windows"]],
-                             columns=None if answer["windows"] else list(BASE_COLUMNS))
+        frame = pd.DataFrame(
+            [flatten_window(w) for w in answer["windows"]],
+            columns=None if answer["windows"] else list(BASE_COLUMNS),
+        )
         for col in ("start", "end"):
             frame[col] = pd.to_datetime(frame[col], utc=True)
         frame.attrs.update({k: v for k, v in answer.items() if k != "windows"})
@@ -300,15 +360,28 @@ class Client:
 
     def thresholds(self, model: str, **params: Any) -> dict[str, Any]:
         """The threshold sweep and the recommended thresholds over a time range."""
-        return self.request("GET", f"/v1/models/{model}/thresholds", params=_query(params))
+        return cast(
+            dict[str, Any],
+            self.request("GET", f"/v1/models/{model}/thresholds", params=_query(params)),
+        )
 
     def delays(self, model: str, **params: Any) -> dict[str, Any]:
         """Label delay quantiles and coverage by window age."""
-        return self.request("GET", f"/v1/models/{model}/delays", params=_query(params))
+        return cast(
+            dict[str, Any], self.request("GET", f"/v1/models/{model}/delays", params=_query(params))
+        )
 
 
-BASE_COLUMNS = ("start", "end", "closed", "settled", "predictions", "labelled",
-                "implied_negatives", "coverage")
+BASE_COLUMNS = (
+    "start",
+    "end",
+    "closed",
+    "settled",
+    "predictions",
+    "labelled",
+    "implied_negatives",
+    "coverage",
+)
 
 
 def _query(params: dict[str, Any]) -> dict[str, Any]:
@@ -340,14 +413,21 @@ def flatten_window(window: dict[str, Any]) -> dict[str, Any]:
     row.update({k: confusion[k] for k in ("tp", "fp", "fn", "tn") if k in confusion})
     for name, m in (window.get("measures") or {}).items():
         row[name], row[f"{name}_low"], row[f"{name}_high"] = (
-            _value(m, "value"), _value(m, "low"), _value(m, "high"))
+            _value(m, "value"),
+            _value(m, "low"),
+            _value(m, "high"),
+        )
     for name, m in (window.get("estimates") or {}).items():
-        row[f"estimated_{name}"] = _value(m, "value") if isinstance(m, dict) else (
-            np.nan if m is None else float(m))
+        row[f"estimated_{name}"] = (
+            _value(m, "value") if isinstance(m, dict) else (np.nan if m is None else float(m))
+        )
     for name, b in (window.get("bounds") or {}).items():
         row[f"{name}_bound_low"], row[f"{name}_bound_high"] = _value(b, "low"), _value(b, "high")
     for cls, measures in (window.get("per_class") or {}).items():
         for name, m in measures.items():
             row[f"{cls}.{name}"], row[f"{cls}.{name}_low"], row[f"{cls}.{name}_high"] = (
-                _value(m, "value"), _value(m, "low"), _value(m, "high"))
+                _value(m, "value"),
+                _value(m, "low"),
+                _value(m, "high"),
+            )
     return row

@@ -32,7 +32,7 @@ class Settings(BaseSettings):
         value = value.strip()
         for prefix in ("postgres://", "postgresql://", "postgresql+psycopg2://"):
             if value.startswith(prefix):
-                return "postgresql+psycopg://" + value[len(prefix):]
+                return "postgresql+psycopg://" + value[len(prefix) :]
         if value.startswith(("postgresql+psycopg://", "sqlite://")):
             return value
         raise ValueError(

@@ -45,11 +45,13 @@ class Order:
 
 def _logit(p: np.ndarray) -> np.ndarray:
     p = np.clip(p, 1e-6, 1 - 1e-6)
-    return np.log(p / (1 - p))
+    out: np.ndarray = np.log(p / (1 - p))
+    return out
 
 
 def _expit(x: np.ndarray) -> np.ndarray:
-    return 1.0 / (1.0 + np.exp(-x))
+    out: np.ndarray = 1.0 / (1.0 + np.exp(-x))
+    return out
 
 
 def orders(*, days: int, seed: int, end: datetime, per_day: int = 1500) -> Iterator[Order]:
@@ -57,8 +59,9 @@ def orders(*, days: int, seed: int, end: datetime, per_day: int = 1500) -> Itera
     rng = np.random.default_rng(seed)
     start = (end - timedelta(days=days)).replace(minute=0, second=0, microsecond=0)
     for day in range(days):
-        n = int(rng.poisson(per_day * (1.15 if (start + timedelta(days=day)).weekday() >= 5
-                                         else 1.0)))
+        n = int(
+            rng.poisson(per_day * (1.15 if (start + timedelta(days=day)).weekday() >= 5 else 1.0))
+        )
         region = rng.choice(REGIONS, size=n, p=[0.3, 0.25, 0.25, 0.2])
         channel = rng.choice(CHANNELS, size=n, p=[0.55, 0.35, 0.10])
         risky = rng.random(n) < 0.15
@@ -68,9 +71,11 @@ def orders(*, days: int, seed: int, end: datetime, per_day: int = 1500) -> Itera
             sofa = (region == "north") & (rng.random(n) < 0.4)
             q = np.where(sofa, rng.beta(4.0, 6.0, size=n), q)
             flagged = rng.random(n) < 0.4
-            unrelated = np.where(flagged, rng.uniform(0.35, 0.95, size=n),
-                                 _expit(_logit(rng.beta(1.0, 30.0, size=n))
-                                        + rng.normal(0, 0.5, size=n)))
+            unrelated = np.where(
+                flagged,
+                rng.uniform(0.35, 0.95, size=n),
+                _expit(_logit(rng.beta(1.0, 30.0, size=n)) + rng.normal(0, 0.5, size=n)),
+            )
             score = np.where(sofa, unrelated, score)
         returned = rng.random(n) < q
         seconds = np.sort(rng.integers(0, 86_400, size=n))
@@ -81,14 +86,25 @@ def orders(*, days: int, seed: int, end: datetime, per_day: int = 1500) -> Itera
             ts = start + timedelta(days=day, seconds=int(seconds[i]))
             delay = ret_delay[i] if returned[i] else kept_delay[i]
             outcome = None if never[i] else ts + timedelta(days=float(delay))
-            yield Order(f"ord-{day:03d}-{i:05d}", ts, float(score[i]), str(channel[i]),
-                        str(region[i]), bool(returned[i]), outcome)
+            yield Order(
+                f"ord-{day:03d}-{i:05d}",
+                ts,
+                float(score[i]),
+                str(channel[i]),
+                str(region[i]),
+                bool(returned[i]),
+                outcome,
+            )
 
 
 def prediction(o: Order) -> dict[str, Any]:
     """The prediction the shop's system posts when the order is placed."""
-    return {"id": o.pid, "ts": o.ts.isoformat(), "score": round(o.score, 6),
-            "tags": {"channel": o.channel, "region": o.region}}
+    return {
+        "id": o.pid,
+        "ts": o.ts.isoformat(),
+        "score": round(o.score, 6),
+        "tags": {"channel": o.channel, "region": o.region},
+    }
 
 
 def label(o: Order) -> dict[str, Any]:

@@ -89,8 +89,9 @@ class Leader:
 class JobRunner:
     """The scheduler of one process: refresh, then the steps that follow it."""
 
-    def __init__(self, *, engine: Engine, settings: Settings,
-                 steps: list[tuple[str, Step]] | None = None) -> None:
+    def __init__(
+        self, *, engine: Engine, settings: Settings, steps: list[tuple[str, Step]] | None = None
+    ) -> None:
         self.engine = engine
         self.settings = settings
         self.sessions = make_sessionmaker(engine)
@@ -110,12 +111,27 @@ class JobRunner:
     def start(self) -> None:
         """Schedule the jobs and start the scheduler thread."""
         period = self.settings.refresh_seconds
-        self.scheduler.add_job(self.tick, "interval", seconds=period, id="belated.refresh",
-                               replace_existing=True, coalesce=True, max_instances=1,
-                               misfire_grace_time=max(30, int(period * 2)), next_run_time=_soon())
-        self.scheduler.add_job(self.leader.check, "interval", seconds=LEADER_POLL_SECONDS,
-                               id="belated.leader", replace_existing=True, coalesce=True,
-                               max_instances=1, misfire_grace_time=30)
+        self.scheduler.add_job(
+            self.tick,
+            "interval",
+            seconds=period,
+            id="belated.refresh",
+            replace_existing=True,
+            coalesce=True,
+            max_instances=1,
+            misfire_grace_time=max(30, int(period * 2)),
+            next_run_time=_soon(),
+        )
+        self.scheduler.add_job(
+            self.leader.check,
+            "interval",
+            seconds=LEADER_POLL_SECONDS,
+            id="belated.leader",
+            replace_existing=True,
+            coalesce=True,
+            max_instances=1,
+            misfire_grace_time=30,
+        )
         self.scheduler.start()
 
     def stop(self) -> None:
@@ -154,8 +170,7 @@ class JobRunner:
 def refresh_step(runner: JobRunner) -> dict[str, Any]:
     """Join pending labels, mark crossed implied negatives, recompute dirty buckets."""
     marked = refresh.sweep(runner.sessions)
-    done = refresh.refresh_all(runner.sessions,
-                               max_values=runner.settings.max_segment_values)
+    done = refresh.refresh_all(runner.sessions, max_values=runner.settings.max_segment_values)
     return {"marked": marked, "buckets": done}
 
 

@@ -21,8 +21,12 @@ class _Redact(logging.Filter):
 
 class _Json(logging.Formatter):
     def format(self, record: logging.LogRecord) -> str:
-        doc = {"ts": self.formatTime(record), "level": record.levelname,
-               "logger": record.name, "message": record.getMessage()}
+        doc = {
+            "ts": self.formatTime(record),
+            "level": record.levelname,
+            "logger": record.name,
+            "message": record.getMessage(),
+        }
         if record.exc_info:
             doc["exception"] = _SECRET.sub(r"\1[redacted]", self.formatException(record.exc_info))
         return orjson.dumps(doc).decode()
@@ -32,8 +36,11 @@ def setup_logging(fmt: str = "text", level: int = logging.INFO) -> None:
     """Configure the root logger once."""
     handler = logging.StreamHandler()
     handler.addFilter(_Redact())
-    handler.setFormatter(_Json() if fmt == "json" else logging.Formatter(
-        "%(asctime)s %(levelname)s %(name)s: %(message)s"))
+    handler.setFormatter(
+        _Json()
+        if fmt == "json"
+        else logging.Formatter("%(asctime)s %(levelname)s %(name)s: %(message)s")
+    )
     root = logging.getLogger()
     root.handlers[:] = [handler]
     root.setLevel(level)

@@ -22,10 +22,25 @@ from belated.store.db import transaction
 from belated.store.tables import ModelRow, ServiceState
 from belated.timeutil import floor_window, parse_ts
 
-RATIOS = ("precision", "recall", "fbeta", "accuracy", "specificity", "npv",
-          "balanced_accuracy", "positive_rate", "prevalence", "roc_auc", "average_precision")
-OTHERS = {"mcc": "belated_model_mcc", "brier": "belated_model_brier_score",
-          "log_loss": "belated_model_log_loss", "ece": "belated_model_calibration_error_ratio"}
+RATIOS = (
+    "precision",
+    "recall",
+    "fbeta",
+    "accuracy",
+    "specificity",
+    "npv",
+    "balanced_accuracy",
+    "positive_rate",
+    "prevalence",
+    "roc_auc",
+    "average_precision",
+)
+OTHERS = {
+    "mcc": "belated_model_mcc",
+    "brier": "belated_model_brier_score",
+    "log_loss": "belated_model_log_loss",
+    "ece": "belated_model_calibration_error_ratio",
+}
 
 
 def _escape(value: str) -> str:
@@ -66,8 +81,9 @@ class Exposition:
 
 def service_metrics(out: Exposition, counters: dict[str, int], health: dict[str, Any]) -> None:
     """The service's own counters and health."""
-    out.family("belated_ingested_predictions_total", "counter",
-               "Predictions accepted by this process.")
+    out.family(
+        "belated_ingested_predictions_total", "counter", "Predictions accepted by this process."
+    )
     out.sample("belated_ingested_predictions_total", counters.get("predictions", 0))
     out.family("belated_ingested_labels_total", "counter", "Labels received by this process.")
     out.sample("belated_ingested_labels_total", counters.get("labels", 0))
@@ -76,11 +92,17 @@ def service_metrics(out: Exposition, counters: dict[str, int], health: dict[str,
     out.family("belated_jobs_leader", "gauge", "1 when this process runs the scheduled jobs.")
     out.sample("belated_jobs_leader", 1 if health.get("jobs", {}).get("leader") else 0)
     for key, name, text in (
-        ("refresh_lag_seconds", "belated_refresh_lag_seconds",
-         "Age of the oldest dirty bucket mark (0 when all rollups are fresh)."),
+        (
+            "refresh_lag_seconds",
+            "belated_refresh_lag_seconds",
+            "Age of the oldest dirty bucket mark (0 when all rollups are fresh).",
+        ),
         ("dirty_buckets", "belated_dirty_buckets", "Hour buckets waiting for a refresh."),
-        ("outbox_backlog", "belated_webhook_deliveries_pending",
-         "Webhook deliveries not yet delivered."),
+        (
+            "outbox_backlog",
+            "belated_webhook_deliveries_pending",
+            "Webhook deliveries not yet delivered.",
+        ),
     ):
         if health.get(key) is not None:
             out.family(name, "gauge", text)
@@ -94,19 +116,24 @@ def model_metrics(out: Exposition, cached: dict[str, Any]) -> None:
         for measure, value in m.get("measures", {}).items():
             if value is None:
                 continue
-            name = (f"belated_model_{measure}_ratio" if measure in RATIOS
-                    else OTHERS.get(measure))
+            name = f"belated_model_{measure}_ratio" if measure in RATIOS else OTHERS.get(measure)
             if name is None:
                 continue
             out.family(name, "gauge", f"{measure} of the latest settled daily window.")
             out.sample(name, value, labels)
         if m.get("coverage") is not None:
-            out.family("belated_model_label_coverage_ratio", "gauge",
-                       "Label coverage of the latest settled daily window.")
+            out.family(
+                "belated_model_label_coverage_ratio",
+                "gauge",
+                "Label coverage of the latest settled daily window.",
+            )
             out.sample("belated_model_label_coverage_ratio", m["coverage"], labels)
         if m.get("window_start") is not None:
-            out.family("belated_model_window_start_timestamp_seconds", "gauge",
-                       "Start of the latest settled daily window.")
+            out.family(
+                "belated_model_window_start_timestamp_seconds",
+                "gauge",
+                "Start of the latest settled daily window.",
+            )
             out.sample("belated_model_window_start_timestamp_seconds", m["window_start"], labels)
         out.family("belated_model_open_alerts", "gauge", "Open or acknowledged alerts.")
         out.sample("belated_model_open_alerts", m.get("open_alerts", 0), labels)
@@ -119,7 +146,8 @@ def cache_step(runner: Any) -> dict[str, Any]:
         by_project: dict[int, list[dict[str, Any]]] = {}
         for model in session.scalars(select(ModelRow).order_by(ModelRow.name)).all():
             by_project.setdefault(model.project_id, []).append(
-                _model_figures(session, model, runner.settings.max_segment_values))
+                _model_figures(session, model, runner.settings.max_segment_values)
+            )
         for project_id, models in by_project.items():
             key = f"prom:{project_id}"
             state = session.get(ServiceState, key)
@@ -138,8 +166,14 @@ def _model_figures(session: Session, model: ModelRow, max_values: int) -> dict[s
     rng = Range("day", end - timedelta(days=30), end)
     windows = build(session, model, rng, Options(resamples=1), (), at, max_values)
     latest = next((w for w in reversed(windows) if w["settled"] and w["predictions"]), None)
-    open_alerts = session.scalar(select(func.count()).select_from(Alert).where(
-        Alert.model_id == model.id, Alert.state.in_(("open", "acknowledged")))) or 0
+    open_alerts = (
+        session.scalar(
+            select(func.count())
+            .select_from(Alert)
+            .where(Alert.model_id == model.id, Alert.state.in_(("open", "acknowledged")))
+        )
+        or 0
+    )
     figures: dict[str, Any] = {"name": model.name, "open_alerts": int(open_alerts)}
     if latest is not None:
         figures["coverage"] = latest["coverage"]

@@ -22,7 +22,7 @@ class Receiver:
         self.ids: list[str] = []
         self.rejected = 0
         self.calls = 0
-        self.respond = respond or (lambda n: (200, {}))
+        self.respond = respond or (lambda _n: (200, {}))
         self.lock = threading.Lock()
         outer = self
 

@@ -16,8 +16,15 @@ from belated.alerts.decide import WindowInput, decide
 from belated.stats.window import WindowStats
 
 DAY0 = datetime(2026, 6, 1, tzinfo=UTC)
-RULE = {"kind": "drop", "measure": "recall", "tolerance": 0.0, "alpha": 0.05,
-        "min_support": 30, "baseline": {"windows": 7}, "mode": "point"}
+RULE = {
+    "kind": "drop",
+    "measure": "recall",
+    "tolerance": 0.0,
+    "alpha": 0.05,
+    "min_support": 30,
+    "baseline": {"windows": 7},
+    "mode": "point",
+}
 
 
 def _day(rng: np.random.Generator, i: int, recall: float) -> WindowInput:
@@ -40,8 +47,10 @@ def test_false_alarm_rate_stays_within_alpha_when_nothing_changes() -> None:
         fired += sum(d.breached(RULE["alpha"]) for d in decide(RULE, series, 7))
     rate = fired / runs
     se = math.sqrt(RULE["alpha"] * (1 - RULE["alpha"]) / runs)
-    print(f"false alarm rate {rate:.4f} over {runs} windows "
-          f"(alpha {RULE['alpha']}, 3 SE bound {RULE['alpha'] + 3 * se:.4f})")
+    print(
+        f"false alarm rate {rate:.4f} over {runs} windows "
+        f"(alpha {RULE['alpha']}, 3 SE bound {RULE['alpha'] + 3 * se:.4f})"
+    )
     assert rate <= RULE["alpha"] + 3 * se
 
 
@@ -49,14 +58,15 @@ def test_a_fall_from_085_to_070_fires_within_three_settled_windows() -> None:
     rng = np.random.default_rng(7)
     runs, delays = 400, []
     for _ in range(runs):
-        series = [_day(rng, i, 0.85) for i in range(7)] + [
-            _day(rng, 7 + i, 0.70) for i in range(3)]
+        series = [_day(rng, i, 0.85) for i in range(7)] + [_day(rng, 7 + i, 0.70) for i in range(3)]
         decisions = decide(RULE, series, 7)
         hits = [i for i, d in enumerate(decisions) if d.breached(RULE["alpha"])]
         delays.append(hits[0] + 1 if hits else None)
     caught = [d for d in delays if d is not None]
-    print(f"caught {len(caught)}/{runs}; windows to fire: "
-          f"{ {k: delays.count(k) for k in sorted(set(caught))} }")
+    print(
+        f"caught {len(caught)}/{runs}; windows to fire: "
+        f"{ {k: delays.count(k) for k in sorted(set(caught))} }"
+    )
     assert len(caught) == runs  # every run fires within the 3 windows after the change
 
 

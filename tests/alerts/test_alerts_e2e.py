@@ -15,8 +15,15 @@ from tests.alerts.scenario import day_rows, send
 from tests.conftest import Tenant
 
 START = datetime(2026, 11, 1, tzinfo=UTC)
-DROP_RULE = {"kind": "drop", "measure": "recall", "tolerance": 0.02, "alpha": 0.05,
-             "min_support": 50, "baseline": {"windows": 7}, "clear_after": 2}
+DROP_RULE = {
+    "kind": "drop",
+    "measure": "recall",
+    "tolerance": 0.02,
+    "alpha": 0.05,
+    "min_support": 50,
+    "baseline": {"windows": 7},
+    "clear_after": 2,
+}
 
 
 def _model(tenant: Tenant, name: str = "returns-v2", **extra: Any) -> None:
@@ -24,11 +31,25 @@ def _model(tenant: Tenant, name: str = "returns-v2", **extra: Any) -> None:
     assert tenant.client.post("/v1/models", json=body).status_code == 201
 
 
-def _feed(tenant: Tenant, rng: np.random.Generator, first: int, last: int, recall: float,
-          model: str = "returns-v2", **kw: Any) -> None:
+def _feed(
+    tenant: Tenant,
+    rng: np.random.Generator,
+    first: int,
+    last: int,
+    recall: float,
+    model: str = "returns-v2",
+    **kw: Any,
+) -> None:
     for d in range(first, last):
-        preds, labels = day_rows(rng, START + timedelta(days=d), positives=300, negatives=900,
-                                 recall=recall, prefix="o", **kw)
+        preds, labels = day_rows(
+            rng,
+            START + timedelta(days=d),
+            positives=300,
+            negatives=900,
+            recall=recall,
+            prefix="o",
+            **kw,
+        )
         send(tenant.client, model, preds, labels)
 
 
@@ -99,12 +120,16 @@ def test_muted_rule_records_breaches_and_delivers_nothing(
         runner.stop()
         assert rx.calls == 0
     with engine.connect() as conn:
-        breaches = conn.execute(text(
-            "SELECT count(*) FROM rule_windows WHERE rule_id = :r AND breached"),
-            {"r": rule["id"]}).scalar()
-        outbox = conn.execute(text(
-            "SELECT count(*) FROM deliveries d JOIN webhooks w ON w.id = d.webhook_id "
-            "JOIN projects p ON p.id = w.project_id WHERE p.name = :p"), {"p": tenant.name}
+        breaches = conn.execute(
+            text("SELECT count(*) FROM rule_windows WHERE rule_id = :r AND breached"),
+            {"r": rule["id"]},
+        ).scalar()
+        outbox = conn.execute(
+            text(
+                "SELECT count(*) FROM deliveries d JOIN webhooks w ON w.id = d.webhook_id "
+                "JOIN projects p ON p.id = w.project_id WHERE p.name = :p"
+            ),
+            {"p": tenant.name},
         ).scalar()
     assert breaches >= 1 and outbox == 0
 
@@ -116,8 +141,10 @@ def test_young_window_with_low_coverage_never_fires_a_label_based_rule(
     rng = np.random.default_rng(9)
     _model(tenant, label_delay_days=30)
     c.post("/v1/models/returns-v2/rules", json=DROP_RULE)
-    c.post("/v1/models/returns-v2/rules",
-           json={"kind": "floor", "measure": "recall", "threshold": 0.8, "min_support": 10})
+    c.post(
+        "/v1/models/returns-v2/rules",
+        json={"kind": "floor", "measure": "recall", "threshold": 0.8, "min_support": 10},
+    )
     # every window is younger than the 30-day label delay and 40% labelled
     _feed(tenant, rng, 0, 7, recall=0.85, label_share=0.4)
     _feed(tenant, rng, 7, 12, recall=0.30, label_share=0.4)
@@ -126,7 +153,8 @@ def test_young_window_with_low_coverage_never_fires_a_label_based_rule(
         summary = runner.tick()
         assert summary is not None and summary["evaluate"]["failed"] == 0
     assert c.get("/v1/alerts").json()["items"] == []
-    windows = c.get("/v1/models/returns-v2/metrics",
-                    params={"start": START.isoformat(), "end": "2026-11-12"}).json()["windows"]
+    windows = c.get(
+        "/v1/models/returns-v2/metrics", params={"start": START.isoformat(), "end": "2026-11-12"}
+    ).json()["windows"]
     assert all(not w["settled"] for w in windows)
     assert all(0.3 < w["coverage"] < 0.5 for w in windows)

@@ -26,8 +26,10 @@ def _two_alerts(tenant: Tenant, frozen: Any) -> None:
     c = tenant.client
     _model(tenant)
     c.post("/v1/models/returns-v2/rules", json=DROP_RULE)
-    c.post("/v1/models/returns-v2/rules",
-           json={"kind": "shift", "measure": "positive_rate", "threshold": 0.03, "alpha": 0.01})
+    c.post(
+        "/v1/models/returns-v2/rules",
+        json={"kind": "shift", "measure": "positive_rate", "threshold": 0.03, "alpha": 0.01},
+    )
     rng = np.random.default_rng(11)
     _feed(tenant, rng, 0, 9, recall=0.85)
     _feed(tenant, rng, 9, 12, recall=0.45)
@@ -61,7 +63,7 @@ def test_outage_then_recovery_delivers_every_event_once_in_order(
 def test_a_410_disables_the_endpoint_and_says_so(
     tenant: Tenant, frozen: Any, runner: JobRunner, engine: Any
 ) -> None:
-    with Receiver(lambda n: (410, {})) as rx:
+    with Receiver(lambda _n: (410, {})) as rx:
         hook = tenant.client.post("/v1/webhooks", json={"url": rx.url}).json()
         rx.secret = hook["secret"]
         _two_alerts(tenant, frozen)
@@ -73,9 +75,10 @@ def test_a_410_disables_the_endpoint_and_says_so(
     listed = tenant.client.get("/v1/webhooks").json()["items"]
     assert listed[0]["disabled_at"] and "410" in listed[0]["disabled_reason"]
     with engine.connect() as conn:
-        pending = conn.execute(text(
-            "SELECT count(*) FROM deliveries WHERE webhook_id = :w AND state = 'pending'"),
-            {"w": hook["id"]}).scalar()
+        pending = conn.execute(
+            text("SELECT count(*) FROM deliveries WHERE webhook_id = :w AND state = 'pending'"),
+            {"w": hook["id"]},
+        ).scalar()
     assert pending == 0
 
 
@@ -83,13 +86,21 @@ def test_webhook_urls_pointing_at_metadata_or_link_local_are_refused(
     tenant: Tenant, engine: Any
 ) -> None:
     c = tenant.client
-    for url in ("http://169.254.169.254/latest/meta-data", "http://[fe80::1]/x",
-                "ftp://example.invalid/x", "http://user:pw@127.0.0.1:9/x"):
+    for url in (
+        "http://169.254.169.254/latest/meta-data",
+        "http://[fe80::1]/x",
+        "ftp://example.invalid/x",
+        "http://user:pw@127.0.0.1:9/x",
+    ):
         r = c.post("/v1/webhooks", json={"url": url})
         assert r.status_code == 422, url
         assert r.json()["errors"][0]["field"] == "url"
     with engine.connect() as conn:
-        n = conn.execute(text(
-            "SELECT count(*) FROM webhooks w JOIN projects p ON p.id = w.project_id "
-            "WHERE p.name = :p"), {"p": tenant.name}).scalar()
+        n = conn.execute(
+            text(
+                "SELECT count(*) FROM webhooks w JOIN projects p ON p.id = w.project_id "
+                "WHERE p.name = :p"
+            ),
+            {"p": tenant.name},
+        ).scalar()
     assert n == 0

@@ -19,16 +19,16 @@ def test_every_rule_kind_fires_through_the_scheduler(
     tenant: Tenant, frozen: Any, runner: JobRunner
 ) -> None:
     c = tenant.client
-    assert c.post("/v1/models", json={"name": "returns-v2", "label_delay_days": 3}
-                  ).status_code == 201
+    assert (
+        c.post("/v1/models", json={"name": "returns-v2", "label_delay_days": 3}).status_code == 201
+    )
     rules = {
         "volume": {"kind": "volume", "low": 500},
         "stall": {"kind": "stall", "threshold": 0.5},
         "silence": {"kind": "stall", "max_silence_hours": 24},
         "psi": {"kind": "shift", "measure": "score_psi", "threshold": 0.25},
         "tag": {"kind": "shift", "measure": "tag_psi:region", "threshold": 0.25},
-        "floor": {"kind": "floor", "measure": "precision", "threshold": 0.9,
-                  "min_support": 20},
+        "floor": {"kind": "floor", "measure": "precision", "threshold": 0.9, "min_support": 20},
         "estimated": {"kind": "floor", "measure": "estimated_precision", "threshold": 0.99},
     }
     ids = {}
@@ -42,11 +42,20 @@ def test_every_rule_kind_fires_through_the_scheduler(
         # days 0-9: 800 orders from the south, labelled; from day 10 only 300 orders, from
         # the north, scored differently, and labels stop arriving
         if d < 10:
-            preds, labels = day_rows(rng, day, positives=200, negatives=600, recall=0.8,
-                                     prefix="o", region="south")
+            preds, labels = day_rows(
+                rng, day, positives=200, negatives=600, recall=0.8, prefix="o", region="south"
+            )
         else:
-            preds, labels = day_rows(rng, day, positives=150, negatives=150, recall=0.95,
-                                     prefix="o", region="north", label_share=0.0)
+            preds, labels = day_rows(
+                rng,
+                day,
+                positives=150,
+                negatives=150,
+                recall=0.95,
+                prefix="o",
+                region="north",
+                label_share=0.0,
+            )
         send(c, "returns-v2", preds, labels)
     # the last label arrived at the fixture's time (day 14.5); two days later it is silent
     frozen.set(START + timedelta(days=16, hours=12))

@@ -18,23 +18,31 @@ def model(tenant: Tenant) -> str:
 
 def _rule_count(engine: Any, tenant: Tenant) -> int:
     with engine.connect() as conn:
-        return int(conn.execute(text(
-            "SELECT count(*) FROM rules r JOIN models m ON m.id = r.model_id "
-            "JOIN projects p ON p.id = m.project_id WHERE p.name = :p"), {"p": tenant.name}
-        ).scalar())
+        return int(
+            conn.execute(
+                text(
+                    "SELECT count(*) FROM rules r JOIN models m ON m.id = r.model_id "
+                    "JOIN projects p ON p.id = m.project_id WHERE p.name = :p"
+                ),
+                {"p": tenant.name},
+            ).scalar()
+        )
 
 
-@pytest.mark.parametrize("body, field, words", [
-    ({"kind": "drop", "measure": "bogus"}, "body", "unknown measure"),
-    ({"kind": "shift", "measure": "recall", "threshold": 0.1}, "body", "needs labels"),
-    ({"kind": "drop", "measure": "recall", "alpha": 1.5}, "alpha", "less than 1"),
-    ({"kind": "drop", "measure": "recall", "alpha": 0}, "alpha", "greater than 0"),
-    ({"kind": "floor", "measure": "precision"}, "body", "needs a threshold"),
-    ({"kind": "volume"}, "body", "low, high"),
-    ({"kind": "volume", "low": 10, "high": 5}, "body", "low must not exceed high"),
-    ({"kind": "sometimes", "measure": "recall"}, "kind", ""),
-    ({"kind": "drop", "measure": "recall", "baseline": {"windows": 0}}, "baseline.windows", ""),
-])
+@pytest.mark.parametrize(
+    "body, field, words",
+    [
+        ({"kind": "drop", "measure": "bogus"}, "body", "unknown measure"),
+        ({"kind": "shift", "measure": "recall", "threshold": 0.1}, "body", "needs labels"),
+        ({"kind": "drop", "measure": "recall", "alpha": 1.5}, "alpha", "less than 1"),
+        ({"kind": "drop", "measure": "recall", "alpha": 0}, "alpha", "greater than 0"),
+        ({"kind": "floor", "measure": "precision"}, "body", "needs a threshold"),
+        ({"kind": "volume"}, "body", "low, high"),
+        ({"kind": "volume", "low": 10, "high": 5}, "body", "low must not exceed high"),
+        ({"kind": "sometimes", "measure": "recall"}, "kind", ""),
+        ({"kind": "drop", "measure": "recall", "baseline": {"windows": 0}}, "baseline.windows", ""),
+    ],
+)
 def test_a_rule_that_cannot_work_is_refused_and_nothing_is_stored(
     tenant: Tenant, model: str, engine: Any, body: dict[str, Any], field: str, words: str
 ) -> None:
@@ -49,13 +57,16 @@ def test_a_rule_that_cannot_work_is_refused_and_nothing_is_stored(
 
 def test_create_list_patch_mute_delete(tenant: Tenant, model: str, engine: Any) -> None:
     c = tenant.client
-    rule = c.post(f"/v1/models/{model}/rules", json={
-        "kind": "drop", "measure": "fbeta", "tolerance": 0.05, "segment_by": "region"}).json()
+    rule = c.post(
+        f"/v1/models/{model}/rules",
+        json={"kind": "drop", "measure": "fbeta", "tolerance": 0.05, "segment_by": "region"},
+    ).json()
     assert rule["alpha"] == 0.05 and rule["baseline"] == {"windows": 7} and not rule["muted"]
     listed = c.get(f"/v1/models/{model}/rules").json()["items"]
     assert [x["id"] for x in listed] == [rule["id"]]
-    muted = c.patch(f"/v1/models/{model}/rules/{rule['id']}",
-                    json={"muted_until": "2999-01-01T00:00:00Z"}).json()
+    muted = c.patch(
+        f"/v1/models/{model}/rules/{rule['id']}", json={"muted_until": "2999-01-01T00:00:00Z"}
+    ).json()
     assert muted["muted"] is True and muted["muted_until"].startswith("2999-01-01")
     bad = c.patch(f"/v1/models/{model}/rules/{rule['id']}", json={"measure": "nope"})
     assert bad.status_code == 422

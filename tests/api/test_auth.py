@@ -20,10 +20,17 @@ from tests.conftest import Tenant, make_tenant
 
 SCOPES = ("admin", "ingest", "read")
 # Every route the DESIGN's API table names today; the walk below must find at least these.
-KNOWN = {("POST", "/v1/models"), ("GET", "/v1/models"), ("GET", "/v1/models/{model}"),
-         ("PATCH", "/v1/models/{model}"), ("DELETE", "/v1/models/{model}"),
-         ("POST", "/v1/models/{model}/predictions"), ("POST", "/v1/models/{model}/labels"),
-         ("POST", "/v1/keys"), ("DELETE", "/v1/keys/{key_id}")}
+KNOWN = {
+    ("POST", "/v1/models"),
+    ("GET", "/v1/models"),
+    ("GET", "/v1/models/{model}"),
+    ("PATCH", "/v1/models/{model}"),
+    ("DELETE", "/v1/models/{model}"),
+    ("POST", "/v1/models/{model}/predictions"),
+    ("POST", "/v1/models/{model}/labels"),
+    ("POST", "/v1/keys"),
+    ("DELETE", "/v1/keys/{key_id}"),
+}
 
 
 def required_scope(method: str, path: str) -> str:
@@ -78,11 +85,20 @@ def victim(tenant: Tenant, engine: Engine, sessions: Any) -> tuple[Tenant, Model
     model = create_model(other, engine)
     items = predictions(3)
     h = other.headers("ingest")
-    assert other.client.post(f"/v1/models/{model.name}/predictions",
-                             json={"predictions": items}, headers=h).status_code == 200
-    assert other.client.post(f"/v1/models/{model.name}/labels",
-                             json={"labels": [label(items[0]["id"], "1")]},
-                             headers=h).status_code == 200
+    assert (
+        other.client.post(
+            f"/v1/models/{model.name}/predictions", json={"predictions": items}, headers=h
+        ).status_code
+        == 200
+    )
+    assert (
+        other.client.post(
+            f"/v1/models/{model.name}/labels",
+            json={"labels": [label(items[0]["id"], "1")]},
+            headers=h,
+        ).status_code
+        == 200
+    )
     return other, model
 
 
@@ -100,9 +116,12 @@ def test_every_v1_route_refuses_missing_and_wrong_tokens(
     wrong = "blt_" + secrets.token_urlsafe(32)
     for method, path in v1_routes(app):
         url = fill(path, model.name)
-        for headers in ({}, {"Authorization": f"Bearer {wrong}"},
-                        {"Authorization": f"Basic {tenant.tokens['admin,ingest,read']}"},
-                        {"Authorization": "Bearer "}):
+        for headers in (
+            {},
+            {"Authorization": f"Bearer {wrong}"},
+            {"Authorization": f"Basic {tenant.tokens['admin,ingest,read']}"},
+            {"Authorization": "Bearer "},
+        ):
             r = call(tenant, method, url, headers)
             assert r.status_code == 401, (method, path, headers, r.text)
             assert r.headers["content-type"].startswith("application/problem+json")
@@ -145,13 +164,16 @@ def test_another_projects_model_is_404(
         ("POST", "/labels"): {"labels": [label("order-0", "0")]},
     }
     for (method, tail), body in sends.items():
-        r = tenant.client.request(method, f"/v1/models/{model.name}{tail}", json=body,
-                                  headers=everything)
+        r = tenant.client.request(
+            method, f"/v1/models/{model.name}{tail}", json=body, headers=everything
+        )
         assert r.status_code == 404, (method, tail, r.text)
     assert_untouched(engine, model)
     assert count(engine, "threshold_changes", model.id) == 1
-    assert other.client.get(f"/v1/models/{model.name}",
-                            headers=other.headers("read")).status_code == 200
+    assert (
+        other.client.get(f"/v1/models/{model.name}", headers=other.headers("read")).status_code
+        == 200
+    )
 
 
 def token_rows(engine: Engine, project_id: int) -> list[Any]:
@@ -159,10 +181,12 @@ def token_rows(engine: Engine, project_id: int) -> list[Any]:
     return rows(engine, "SELECT * FROM tokens WHERE project_id = :p", p=project_id)
 
 
-def test_a_created_key_works_and_only_its_hash_is_stored(tenant: Tenant, engine: Engine
-                                                         ) -> None:
-    r = tenant.client.post("/v1/keys", json={"scopes": ["read"], "name": "stock dashboard"},
-                           headers=tenant.headers("admin"))
+def test_a_created_key_works_and_only_its_hash_is_stored(tenant: Tenant, engine: Engine) -> None:
+    r = tenant.client.post(
+        "/v1/keys",
+        json={"scopes": ["read"], "name": "stock dashboard"},
+        headers=tenant.headers("admin"),
+    )
     assert r.status_code == 201
     made = r.json()
     token = made["token"]
@@ -180,11 +204,17 @@ def test_a_created_key_works_and_only_its_hash_is_stored(tenant: Tenant, engine:
             assert token[-20:] not in str(value)
 
 
-@pytest.mark.parametrize("body", [{"scopes": ["write"]}, {"scopes": []}, {},
-                                  {"scopes": ["read"], "owner": "x"},
-                                  {"scopes": ["read"], "name": "stock\u0000"}],
-                         ids=["unknown-scope", "no-scopes", "missing", "extra-field",
-                              "name-with-nul"])
+@pytest.mark.parametrize(
+    "body",
+    [
+        {"scopes": ["write"]},
+        {"scopes": []},
+        {},
+        {"scopes": ["read"], "owner": "x"},
+        {"scopes": ["read"], "name": "stock\u0000"},
+    ],
+    ids=["unknown-scope", "no-scopes", "missing", "extra-field", "name-with-nul"],
+)
 def test_a_bad_key_request_is_422_and_stores_nothing(
     tenant: Tenant, engine: Engine, body: dict[str, Any]
 ) -> None:
@@ -196,8 +226,7 @@ def test_a_bad_key_request_is_422_and_stores_nothing(
 
 def test_a_revoked_key_is_401(tenant: Tenant, engine: Engine, sessions: Any) -> None:
     admin = tenant.headers("admin")
-    made = tenant.client.post("/v1/keys", json={"scopes": ["read", "ingest"]},
-                              headers=admin).json()
+    made = tenant.client.post("/v1/keys", json={"scopes": ["read", "ingest"]}, headers=admin).json()
     auth = {"Authorization": f"Bearer {made['token']}"}
     assert call(tenant, "GET", "/v1/models", auth).status_code == 200
     assert tenant.client.delete(f"/v1/keys/{made['id']}", headers=admin).status_code == 204
@@ -207,21 +236,29 @@ def test_a_revoked_key_is_401(tenant: Tenant, engine: Engine, sessions: Any) -> 
     assert tenant.client.delete(f"/v1/keys/{made['id']}", headers=admin).status_code == 404
     # one project cannot revoke another's key
     other = make_tenant(sessions, tenant.client)
-    theirs = tenant.client.post("/v1/keys", json={"scopes": ["read"]},
-                                headers=other.headers("admin")).json()
+    theirs = tenant.client.post(
+        "/v1/keys", json={"scopes": ["read"]}, headers=other.headers("admin")
+    ).json()
     assert tenant.client.delete(f"/v1/keys/{theirs['id']}", headers=admin).status_code == 404
-    assert call(tenant, "GET", "/v1/models",
-                {"Authorization": f"Bearer {theirs['token']}"}).status_code == 200
+    assert (
+        call(
+            tenant, "GET", "/v1/models", {"Authorization": f"Bearer {theirs['token']}"}
+        ).status_code
+        == 200
+    )
 
 
 def test_tokens_carry_at_least_128_random_bits(tenant: Tenant) -> None:
     """Bits = characters after the shared prefix × log2(distinct symbols seen in them)."""
-    made = [tenant.client.post("/v1/keys", json={"scopes": ["read"]},
-                               headers=tenant.headers("admin")).json()["token"]
-            for _ in range(40)]
+    made = [
+        tenant.client.post(
+            "/v1/keys", json={"scopes": ["read"]}, headers=tenant.headers("admin")
+        ).json()["token"]
+        for _ in range(40)
+    ]
     assert len(set(made)) == len(made)
     prefix = os.path.commonprefix(made)
-    bodies = [t[len(prefix):] for t in made]
+    bodies = [t[len(prefix) :] for t in made]
     symbols = set("".join(bodies))
     shortest = min(len(b) for b in bodies)
     assert shortest * math.log2(len(symbols)) >= 128, (prefix, shortest, len(symbols))

@@ -72,13 +72,22 @@ PREDICTION_CASES: list[tuple[str, Callable[[Item], Item], str]] = [
     ("score-string", lambda it: it | {"score": "0.3"}, "score"),
     ("score-true", lambda it: it | {"score": True}, "score"),
     ("score-missing", lambda it: _without_score(it), "score"),
-    ("scores-not-the-classes",
-     lambda it: _without_score(it, scores={"kept": 0.4, "returned": 0.6}), "scores"),
-    ("scores-extra-class",
-     lambda it: _without_score(it, scores={"0": 0.4, "1": 0.5, "2": 0.1}), "scores"),
+    (
+        "scores-not-the-classes",
+        lambda it: _without_score(it, scores={"kept": 0.4, "returned": 0.6}),
+        "scores",
+    ),
+    (
+        "scores-extra-class",
+        lambda it: _without_score(it, scores={"0": 0.4, "1": 0.5, "2": 0.1}),
+        "scores",
+    ),
     ("scores-sum-1.1", lambda it: _without_score(it, scores={"0": 0.5, "1": 0.6}), "scores"),
-    ("scores-sum-off-by-2e-4",
-     lambda it: _without_score(it, scores={"0": 0.3, "1": 0.7002}), "scores"),
+    (
+        "scores-sum-off-by-2e-4",
+        lambda it: _without_score(it, scores={"0": 0.3, "1": 0.7002}),
+        "scores",
+    ),
     ("predicted-not-a-class", lambda it: it | {"predicted": "2"}, "predicted"),
     ("predicted-int-not-a-class", lambda it: it | {"predicted": 2}, "predicted"),
     ("predicted-true", lambda it: it | {"predicted": True}, "predicted"),
@@ -96,8 +105,9 @@ def model(tenant: Tenant, engine: Engine) -> Model:
     return create_model(tenant, engine)
 
 
-@pytest.mark.parametrize("make_bad, field", [c[1:] for c in PREDICTION_CASES],
-                         ids=[c[0] for c in PREDICTION_CASES])
+@pytest.mark.parametrize(
+    "make_bad, field", [c[1:] for c in PREDICTION_CASES], ids=[c[0] for c in PREDICTION_CASES]
+)
 def test_bad_prediction_refused_and_batch_not_stored(
     tenant: Tenant, engine: Engine, model: Model, make_bad: Callable[[Item], Item], field: str
 ) -> None:
@@ -126,8 +136,11 @@ def test_score_overflowing_to_infinity_is_a_422(
     batch = predictions(5)
     batch[BAD_AT]["score"] = "SCORE"
     raw = json.dumps({"predictions": batch}).replace('"SCORE"', "1e400")
-    r = tenant.client.post(f"/v1/models/{model.name}/predictions", content=raw,
-                           headers={"content-type": "application/json"})
+    r = tenant.client.post(
+        f"/v1/models/{model.name}/predictions",
+        content=raw,
+        headers={"content-type": "application/json"},
+    )
     assert_refused(r, BAD_AT, "score")
     assert_nothing_stored(engine, model)
 
@@ -155,21 +168,30 @@ def test_same_id_twice_with_different_content_names_both_indexes(
     assert_nothing_stored(engine, model)
 
 
-@pytest.mark.parametrize("raw", [b"{not json", b"", b"\xff\xfe", b'{"predictions": [}'],
-                         ids=["broken", "empty", "not-utf8", "truncated"])
+@pytest.mark.parametrize(
+    "raw",
+    [b"{not json", b"", b"\xff\xfe", b'{"predictions": [}'],
+    ids=["broken", "empty", "not-utf8", "truncated"],
+)
 def test_body_that_is_not_json_is_a_400(
     tenant: Tenant, engine: Engine, model: Model, raw: bytes
 ) -> None:
-    r = tenant.client.post(f"/v1/models/{model.name}/predictions", content=raw,
-                           headers={"content-type": "application/json"})
+    r = tenant.client.post(
+        f"/v1/models/{model.name}/predictions",
+        content=raw,
+        headers={"content-type": "application/json"},
+    )
     assert r.status_code == 400
     assert r.headers["content-type"].startswith("application/problem+json")
     assert "JSON" in r.json()["detail"]
     assert_nothing_stored(engine, model)
 
 
-@pytest.mark.parametrize("body", [{"preds": []}, {"predictions": {"id": "x"}}, [], "text"],
-                         ids=["wrong-key", "not-a-list", "array", "string"])
+@pytest.mark.parametrize(
+    "body",
+    [{"preds": []}, {"predictions": {"id": "x"}}, [], "text"],
+    ids=["wrong-key", "not-a-list", "array", "string"],
+)
 def test_body_of_the_wrong_shape_is_a_422(
     tenant: Tenant, engine: Engine, model: Model, body: Any
 ) -> None:
@@ -178,9 +200,7 @@ def test_body_of_the_wrong_shape_is_a_422(
     assert_nothing_stored(engine, model)
 
 
-def test_item_that_is_not_an_object_is_named(
-    tenant: Tenant, engine: Engine, model: Model
-) -> None:
+def test_item_that_is_not_an_object_is_named(tenant: Tenant, engine: Engine, model: Model) -> None:
     batch: list[Any] = predictions(4)
     batch[BAD_AT] = ["order", 0.3]
     r = tenant.client.post(f"/v1/models/{model.name}/predictions", json={"predictions": batch})
@@ -193,25 +213,37 @@ MULTICLASS = ("chair", "sofa", "table")
 MULTICLASS_CASES: list[tuple[str, Callable[[Item], Item], str]] = [
     ("score-not-scores", lambda it: it, "score"),
     ("no-scores", lambda it: _without_score(it), "scores"),
-    ("scores-missing-a-class",
-     lambda it: _without_score(it, scores={"chair": 0.5, "sofa": 0.5}), "scores"),
-    ("scores-negative",
-     lambda it: _without_score(it, scores={"chair": 1.2, "sofa": -0.2, "table": 0.0}),
-     "scores"),
-    ("predicted-not-a-class",
-     lambda it: _without_score(it, scores=three_class_scores("sofa", 0.8, MULTICLASS),
-                               predicted="bed"), "predicted"),
+    (
+        "scores-missing-a-class",
+        lambda it: _without_score(it, scores={"chair": 0.5, "sofa": 0.5}),
+        "scores",
+    ),
+    (
+        "scores-negative",
+        lambda it: _without_score(it, scores={"chair": 1.2, "sofa": -0.2, "table": 0.0}),
+        "scores",
+    ),
+    (
+        "predicted-not-a-class",
+        lambda it: _without_score(
+            it, scores=three_class_scores("sofa", 0.8, MULTICLASS), predicted="bed"
+        ),
+        "predicted",
+    ),
 ]
 
 
-@pytest.mark.parametrize("make_bad, field", [c[1:] for c in MULTICLASS_CASES],
-                         ids=[c[0] for c in MULTICLASS_CASES])
+@pytest.mark.parametrize(
+    "make_bad, field", [c[1:] for c in MULTICLASS_CASES], ids=[c[0] for c in MULTICLASS_CASES]
+)
 def test_bad_multiclass_prediction_refused(
     tenant: Tenant, engine: Engine, make_bad: Callable[[Item], Item], field: str
 ) -> None:
     model = create_model(tenant, engine, kind="multiclass", classes=list(MULTICLASS))
-    batch = [_without_score(p, scores=three_class_scores("chair", 0.6, MULTICLASS))
-             for p in predictions(4)]
+    batch = [
+        _without_score(p, scores=three_class_scores("chair", 0.6, MULTICLASS))
+        for p in predictions(4)
+    ]
     batch[BAD_AT] = make_bad(predictions(4)[BAD_AT])
     r = tenant.client.post(f"/v1/models/{model.name}/predictions", json={"predictions": batch})
     assert_refused(r, BAD_AT, field)
@@ -230,28 +262,41 @@ LABEL_CASES: list[tuple[str, Callable[[Item], Item], str]] = [
 ]
 
 
-@pytest.mark.parametrize("make_bad, field", [c[1:] for c in LABEL_CASES],
-                         ids=[c[0] for c in LABEL_CASES])
+@pytest.mark.parametrize(
+    "make_bad, field", [c[1:] for c in LABEL_CASES], ids=[c[0] for c in LABEL_CASES]
+)
 def test_bad_label_refused_and_batch_not_stored(
     tenant: Tenant, engine: Engine, model: Model, make_bad: Callable[[Item], Item], field: str
 ) -> None:
     stored = predictions(3)
-    assert tenant.client.post(f"/v1/models/{model.name}/predictions",
-                              json={"predictions": stored}).status_code == 200
-    marks = rows(engine, "SELECT hour, version FROM dirty_buckets WHERE model_id = :m",
-                 m=model.id)
+    assert (
+        tenant.client.post(
+            f"/v1/models/{model.name}/predictions", json={"predictions": stored}
+        ).status_code
+        == 200
+    )
+    marks = rows(engine, "SELECT hour, version FROM dirty_buckets WHERE model_id = :m", m=model.id)
     # good labels for stored ids and for ids not yet seen, with the bad one among them
     batch = [label(p["id"], "1") for p in stored] + [label("order-later", "0")]
     batch[BAD_AT] = make_bad(batch[BAD_AT])
     r = tenant.client.post(f"/v1/models/{model.name}/labels", json={"labels": batch})
     assert_refused(r, BAD_AT, field)
     for table in ("labels", "pending_labels"):
-        assert rows(engine, f"SELECT count(*) FROM {table} WHERE model_id = :m",
-                    m=model.id)[0][0] == 0
-    assert rows(engine, "SELECT count(*) FROM predictions WHERE model_id = :m"
-                " AND actual IS NOT NULL", m=model.id)[0][0] == 0
-    assert rows(engine, "SELECT hour, version FROM dirty_buckets WHERE model_id = :m",
-                m=model.id) == marks
+        assert (
+            rows(engine, f"SELECT count(*) FROM {table} WHERE model_id = :m", m=model.id)[0][0] == 0
+        )
+    assert (
+        rows(
+            engine,
+            "SELECT count(*) FROM predictions WHERE model_id = :m AND actual IS NOT NULL",
+            m=model.id,
+        )[0][0]
+        == 0
+    )
+    assert (
+        rows(engine, "SELECT hour, version FROM dirty_buckets WHERE model_id = :m", m=model.id)
+        == marks
+    )
 
 
 def test_same_label_id_twice_with_different_actual_names_both_indexes(

@@ -41,9 +41,15 @@ def send(tenant: Tenant, model: Model, kind: str, items: list[dict[str, Any]]) -
 
 def history(engine: Engine, model: Model, pid: str) -> list[tuple[str, str]]:
     """The label history of one id, in arrival order."""
-    return [tuple(r) for r in rows(
-        engine, "SELECT actual, change FROM labels WHERE model_id = :m AND pid = :p"
-        " ORDER BY row_id", m=model.id, p=pid)]
+    return [
+        tuple(r)
+        for r in rows(
+            engine,
+            "SELECT actual, change FROM labels WHERE model_id = :m AND pid = :p ORDER BY row_id",
+            m=model.id,
+            p=pid,
+        )
+    ]
 
 
 def test_the_four_answers_add_up_to_the_batch_size(
@@ -65,10 +71,19 @@ def test_the_four_answers_add_up_to_the_batch_size(
     answer = send(tenant, model, "labels", batch)
     assert answer == {"matched": 3, "pending": 1, "corrected": 1, "unchanged": 2}
     assert sum(answer.values()) == len(batch)
-    labelled = rows(engine, "SELECT pid, actual FROM predictions WHERE model_id = :m"
-                    " AND actual IS NOT NULL ORDER BY pid", m=model.id)
-    assert [tuple(r) for r in labelled] == [(ids[0], "1"), (ids[1], "1"), (ids[2], "0"),
-                                           (ids[3], "1"), (ids[4], "1")]
+    labelled = rows(
+        engine,
+        "SELECT pid, actual FROM predictions WHERE model_id = :m"
+        " AND actual IS NOT NULL ORDER BY pid",
+        m=model.id,
+    )
+    assert [tuple(r) for r in labelled] == [
+        (ids[0], "1"),
+        (ids[1], "1"),
+        (ids[2], "0"),
+        (ids[3], "1"),
+        (ids[4], "1"),
+    ]
     assert count(engine, "pending_labels", model.id) == 1
 
 
@@ -83,10 +98,11 @@ def test_corrections_apply_in_arrival_order_and_keep_history(
     # a correction whose outcome time is earlier still wins: arrival order decides
     answer = send(tenant, model, "labels", [label(pid, "0", ts=known - timedelta(hours=6))])
     assert answer == {"matched": 0, "pending": 0, "corrected": 1, "unchanged": 0}
-    assert send(tenant, model, "labels", [label(pid, "1", ts=known + timedelta(hours=2))]
-                )["corrected"] == 1
-    assert history(engine, model, pid) == [("1", "first"), ("0", "correction"),
-                                           ("1", "correction")]
+    assert (
+        send(tenant, model, "labels", [label(pid, "1", ts=known + timedelta(hours=2))])["corrected"]
+        == 1
+    )
+    assert history(engine, model, pid) == [("1", "first"), ("0", "correction"), ("1", "correction")]
     row = prediction_row(engine, model.id, pid)
     assert row["actual"] == "1" and row["label_ts"] == known + timedelta(hours=2)
     got = tenant.client.get(f"/v1/models/{model.name}").json()["counts"]
@@ -100,15 +116,16 @@ def test_the_same_actual_again_is_unchanged_whatever_its_time(
     send(tenant, model, "predictions", [item])
     known = datetime.fromisoformat(item["ts"]) + timedelta(hours=5)
     send(tenant, model, "labels", [label(item["id"], "1", ts=known)])
-    marks = rows(engine, "SELECT hour, version FROM dirty_buckets WHERE model_id = :m",
-                 m=model.id)
+    marks = rows(engine, "SELECT hour, version FROM dirty_buckets WHERE model_id = :m", m=model.id)
     for later in (known + timedelta(days=1), known - timedelta(hours=4), None):
         answer = send(tenant, model, "labels", [label(item["id"], "1", ts=later)])
         assert answer == {"matched": 0, "pending": 0, "corrected": 0, "unchanged": 1}
     assert prediction_row(engine, model.id, item["id"])["label_ts"] == known
     assert history(engine, model, item["id"]) == [("1", "first")]
-    assert rows(engine, "SELECT hour, version FROM dirty_buckets WHERE model_id = :m",
-                m=model.id) == marks
+    assert (
+        rows(engine, "SELECT hour, version FROM dirty_buckets WHERE model_id = :m", m=model.id)
+        == marks
+    )
 
 
 def test_a_label_without_time_is_stamped_when_received(
@@ -121,13 +138,11 @@ def test_a_label_without_time_is_stamped_when_received(
     after = utcnow()
     row = prediction_row(engine, model.id, item["id"])
     assert row["label_ts"] is not None and before <= row["label_ts"] <= after
-    (pending_ts,) = rows(engine, "SELECT ts FROM pending_labels WHERE model_id = :m",
-                         m=model.id)[0]
+    (pending_ts,) = rows(engine, "SELECT ts FROM pending_labels WHERE model_id = :m", m=model.id)[0]
     stamped = from_db(pending_ts)
     assert stamped is not None and before <= stamped <= after
     expected_delay = (row["label_ts"] - datetime.fromisoformat(item["ts"])).total_seconds()
-    (delay_h,) = rows(engine, "SELECT delay_h FROM predictions WHERE model_id = :m",
-                      m=model.id)[0]
+    (delay_h,) = rows(engine, "SELECT delay_h FROM predictions WHERE model_id = :m", m=model.id)[0]
     assert delay_h == pytest.approx(expected_delay / 3600, abs=1e-6)
 
 
@@ -138,14 +153,16 @@ def test_a_label_for_an_old_prediction_marks_that_old_hour_dirty(
     assert utcnow() - datetime.fromisoformat(old["ts"]) >= timedelta(days=21)
     send(tenant, model, "predictions", [old])
     old_hour = epoch_hour(datetime.fromisoformat(old["ts"]))
-    (before,) = rows(engine, "SELECT hour, version, marked_at FROM dirty_buckets"
-                     " WHERE model_id = :m", m=model.id)
+    (before,) = rows(
+        engine, "SELECT hour, version, marked_at FROM dirty_buckets WHERE model_id = :m", m=model.id
+    )
     assert before[0] == old_hour
     now_hours = {epoch_hour(utcnow())}
     send(tenant, model, "labels", [label(old["id"], outcome_of(0))])
     now_hours.add(epoch_hour(utcnow()))
-    after = rows(engine, "SELECT hour, version, marked_at FROM dirty_buckets"
-                 " WHERE model_id = :m", m=model.id)
+    after = rows(
+        engine, "SELECT hour, version, marked_at FROM dirty_buckets WHERE model_id = :m", m=model.id
+    )
     assert [r[0] for r in after] == [old_hour]
     assert not now_hours & {r[0] for r in after}
     assert after[0][1] != before[1]  # marked again with a fresh version

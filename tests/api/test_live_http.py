@@ -41,11 +41,11 @@ def test_round_trip_of_5000_predictions_and_their_labels(
         assert http.post("/v1/models", json=body).status_code == 201
         name = body["name"]
         # one a minute over three and a half days, ending two days ago
-        items = predictions(TOTAL, base=base_time() - timedelta(days=4),
-                            tags={"region": "north"})
+        items = predictions(TOTAL, base=base_time() - timedelta(days=4), tags={"region": "north"})
         for start in range(0, TOTAL, BATCH):
-            r = http.post(f"/v1/models/{name}/predictions",
-                          json={"predictions": items[start:start + BATCH]})
+            r = http.post(
+                f"/v1/models/{name}/predictions", json={"predictions": items[start : start + BATCH]}
+            )
             assert r.status_code == 200, r.text
             assert r.json() == {"accepted": BATCH, "duplicates": 0}
         # a retried batch is recognised, not stored twice
@@ -56,16 +56,17 @@ def test_round_trip_of_5000_predictions_and_their_labels(
         sent = [label(p["id"], outcome_of(n)) for n, p in enumerate(labelled)]
         sent += [label(f"order-unknown-{n}", "0") for n in range(250)]
         for start in range(0, len(sent), BATCH):
-            r = http.post(f"/v1/models/{name}/labels",
-                          json={"labels": sent[start:start + BATCH]})
+            r = http.post(f"/v1/models/{name}/labels", json={"labels": sent[start : start + BATCH]})
             assert r.status_code == 200, r.text
             for key, value in r.json().items():
                 answers[key] += value
-        assert answers == {"matched": len(labelled), "pending": 250, "corrected": 0,
-                           "unchanged": 0}
+        assert answers == {"matched": len(labelled), "pending": 250, "corrected": 0, "unchanged": 0}
         got = http.get(f"/v1/models/{name}").json()
-        assert got["counts"] == {"predictions": TOTAL, "labelled": len(labelled),
-                                 "pending_labels": 250}
+        assert got["counts"] == {
+            "predictions": TOTAL,
+            "labelled": len(labelled),
+            "pending_labels": 250,
+        }
         times = [datetime.fromisoformat(p["ts"]) for p in items]
         assert datetime.fromisoformat(got["first_prediction_at"]) == min(times)
         assert datetime.fromisoformat(got["last_prediction_at"]) == max(times)
@@ -73,7 +74,8 @@ def test_round_trip_of_5000_predictions_and_their_labels(
         mid = model_id(engine, tenant.project_id, name)
         assert count(engine, "predictions", mid) == TOTAL
         assert count(engine, "predictions", mid, "actual = '1'") == sum(
-            outcome_of(n) == "1" for n in range(len(labelled)))
+            outcome_of(n) == "1" for n in range(len(labelled))
+        )
 
 
 def test_healthz_reports_the_store_up(live: LiveServer) -> None:
@@ -87,7 +89,7 @@ def test_healthz_reports_the_store_up(live: LiveServer) -> None:
 
 def _chunks(data: bytes, size: int) -> Iterator[bytes]:
     for start in range(0, len(data), size):
-        yield data[start:start + size]
+        yield data[start : start + size]
 
 
 def test_body_limit_counts_received_bytes_of_a_chunked_body(
@@ -95,8 +97,10 @@ def test_body_limit_counts_received_bytes_of_a_chunked_body(
 ) -> None:
     """No Content-Length: the limit must hold on the bytes as they arrive."""
     settings = Settings(database_url=store_url, jobs=False, max_body_bytes=2048)
-    with LiveServer(create_app(settings, engine=engine, jobs=False)) as server, \
-            httpx.Client(base_url=server.url, timeout=30) as http:
+    with (
+        LiveServer(create_app(settings, engine=engine, jobs=False)) as server,
+        httpx.Client(base_url=server.url, timeout=30) as http,
+    ):
         tenant = make_tenant(sessions, http)
         body = model_body()
         assert http.post("/v1/models", json=body).status_code == 201
@@ -104,15 +108,15 @@ def test_body_limit_counts_received_bytes_of_a_chunked_body(
         url = f"/v1/models/{body['name']}/predictions"
         big = json.dumps({"predictions": predictions(8, tags=tags(8, value_len=64))}).encode()
         assert len(big) > 2048
-        r = http.post(url, content=_chunks(big, 512),
-                      headers={"content-type": "application/json"})
+        r = http.post(url, content=_chunks(big, 512), headers={"content-type": "application/json"})
         assert r.status_code == 413
         assert r.headers["content-type"].startswith("application/problem+json")
         assert count(engine, "predictions", mid) == 0
         assert count(engine, "dirty_buckets", mid) == 0
         small = json.dumps({"predictions": predictions(3)}).encode()
-        r = http.post(url, content=_chunks(small, 100),
-                      headers={"content-type": "application/json"})
+        r = http.post(
+            url, content=_chunks(small, 100), headers={"content-type": "application/json"}
+        )
         assert r.status_code == 200, r.text
         assert count(engine, "predictions", mid) == 3
 
@@ -147,19 +151,32 @@ def test_the_answer_is_sent_only_after_the_commit(
     async def send(message: dict[str, Any]) -> None:
         if message["type"] == "http.response.start":
             seen_at_answer.append(message["status"])
-            seen_at_answer.append(_visible(
-                engine, store_url, "SELECT count(*) FROM predictions WHERE model_id = :m",
-                m=model.id))
+            seen_at_answer.append(
+                _visible(
+                    engine,
+                    store_url,
+                    "SELECT count(*) FROM predictions WHERE model_id = :m",
+                    m=model.id,
+                )
+            )
 
     token = tenant.tokens["ingest"].encode()
     scope = {
-        "type": "http", "asgi": {"version": "3.0"}, "http_version": "1.1", "method": "POST",
-        "scheme": "http", "path": f"/v1/models/{model.name}/predictions",
-        "query_string": b"", "root_path": "", "client": ("127.0.0.1", 50000),
+        "type": "http",
+        "asgi": {"version": "3.0"},
+        "http_version": "1.1",
+        "method": "POST",
+        "scheme": "http",
+        "path": f"/v1/models/{model.name}/predictions",
+        "query_string": b"",
+        "root_path": "",
+        "client": ("127.0.0.1", 50000),
         "server": ("127.0.0.1", 80),
-        "headers": [(b"authorization", b"Bearer " + token),
-                    (b"content-type", b"application/json"),
-                    (b"content-length", str(len(body)).encode())],
+        "headers": [
+            (b"authorization", b"Bearer " + token),
+            (b"content-type", b"application/json"),
+            (b"content-length", str(len(body)).encode()),
+        ],
     }
     asyncio.run(app(scope, receive, send))
     assert seen_at_answer == [200, 3]

@@ -23,8 +23,9 @@ from tests.conftest import Tenant, make_tenant
 
 def project_models(engine: Engine, project_id: int) -> int:
     """How many models the project has."""
-    return int(rows(engine, "SELECT count(*) FROM models WHERE project_id = :p",
-                    p=project_id)[0][0])
+    return int(
+        rows(engine, "SELECT count(*) FROM models WHERE project_id = :p", p=project_id)[0][0]
+    )
 
 
 def test_create_with_the_documented_defaults(tenant: Tenant) -> None:
@@ -32,25 +33,41 @@ def test_create_with_the_documented_defaults(tenant: Tenant) -> None:
     r = tenant.client.post("/v1/models", json={"name": name})
     assert r.status_code == 201
     got = r.json()
-    expected = {"name": name, "kind": "binary", "classes": ["0", "1"], "positive": "1",
-                "threshold": 0.5, "label_delay_days": 30, "min_coverage": 0.9,
-                "negative_after_days": None, "segment_keys": None,
-                "counts": {"predictions": 0, "labelled": 0, "pending_labels": 0},
-                "first_prediction_at": None, "last_prediction_at": None}
+    expected = {
+        "name": name,
+        "kind": "binary",
+        "classes": ["0", "1"],
+        "positive": "1",
+        "threshold": 0.5,
+        "label_delay_days": 30,
+        "min_coverage": 0.9,
+        "negative_after_days": None,
+        "segment_keys": None,
+        "counts": {"predictions": 0, "labelled": 0, "pending_labels": 0},
+        "first_prediction_at": None,
+        "last_prediction_at": None,
+    }
     assert {k: got[k] for k in expected} == expected
     assert tenant.client.get(f"/v1/models/{name}").json() == got
 
 
 def test_create_with_settings(tenant: Tenant) -> None:
-    body = model_body(classes=["kept", "returned"], positive="returned", threshold=0.35,
-                      label_delay_days=45, min_coverage=0.8, negative_after_days=30,
-                      segment_keys=["region", "channel"])
+    body = model_body(
+        classes=["kept", "returned"],
+        positive="returned",
+        threshold=0.35,
+        label_delay_days=45,
+        min_coverage=0.8,
+        negative_after_days=30,
+        segment_keys=["region", "channel"],
+    )
     got = tenant.client.post("/v1/models", json=body).json()
     assert {k: got[k] for k in body} == body
 
 
-def test_a_taken_name_is_409_in_its_project_only(tenant: Tenant, engine: Engine,
-                                                 sessions: Any) -> None:
+def test_a_taken_name_is_409_in_its_project_only(
+    tenant: Tenant, engine: Engine, sessions: Any
+) -> None:
     name = unique_name()
     assert tenant.client.post("/v1/models", json={"name": name}).status_code == 201
     r = tenant.client.post("/v1/models", json={"name": name, "threshold": 0.9})
@@ -64,8 +81,7 @@ def test_a_taken_name_is_409_in_its_project_only(tenant: Tenant, engine: Engine,
     assert project_models(engine, other.project_id) == 1
 
 
-BAD_NAMES = ["Returns", "-returns", ".returns", "returns v2", "", "r" * 65, "retours/2",
-             "rückgabe"]
+BAD_NAMES = ["Returns", "-returns", ".returns", "returns v2", "", "r" * 65, "retours/2", "rückgabe"]
 
 
 @pytest.mark.parametrize("name", BAD_NAMES)
@@ -77,15 +93,39 @@ def test_a_name_off_the_pattern_is_422(tenant: Tenant, engine: Engine, name: str
     assert project_models(engine, tenant.project_id) == 0
 
 
-@pytest.mark.parametrize("body", [
-    {"threshold": 1.5}, {"min_coverage": -0.1}, {"label_delay_days": 0},
-    {"classes": ["0", "1", "2"]}, {"classes": ["a", "a"]}, {"positive": "2"},
-    {"kind": "multiclass"}, {"kind": "multiclass", "classes": ["a", "b"], "positive": "a"},
-    {"kind": "regression"}, {"segment_keys": ["region:north"]}, {"colour": "red"},
-    {"classes": ["kept\u0000", "returned"]}, {"segment_keys": ["region\u0000"]},
-], ids=["threshold", "coverage", "delay", "three-binary", "repeated", "positive",
-        "multiclass-no-classes", "multiclass-positive", "kind", "segment-key", "unknown",
-        "class-with-nul", "segment-key-with-nul"])
+@pytest.mark.parametrize(
+    "body",
+    [
+        {"threshold": 1.5},
+        {"min_coverage": -0.1},
+        {"label_delay_days": 0},
+        {"classes": ["0", "1", "2"]},
+        {"classes": ["a", "a"]},
+        {"positive": "2"},
+        {"kind": "multiclass"},
+        {"kind": "multiclass", "classes": ["a", "b"], "positive": "a"},
+        {"kind": "regression"},
+        {"segment_keys": ["region:north"]},
+        {"colour": "red"},
+        {"classes": ["kept\u0000", "returned"]},
+        {"segment_keys": ["region\u0000"]},
+    ],
+    ids=[
+        "threshold",
+        "coverage",
+        "delay",
+        "three-binary",
+        "repeated",
+        "positive",
+        "multiclass-no-classes",
+        "multiclass-positive",
+        "kind",
+        "segment-key",
+        "unknown",
+        "class-with-nul",
+        "segment-key-with-nul",
+    ],
+)
 def test_bad_settings_are_422(tenant: Tenant, engine: Engine, body: dict[str, Any]) -> None:
     r = tenant.client.post("/v1/models", json=model_body(**body))
     assert r.status_code == 422, r.text
@@ -132,8 +172,11 @@ def test_patch_keeps_threshold_history(tenant: Tenant, engine: Engine) -> None:
     assert tenant.client.patch(url, json={"threshold": 0.6}).status_code == 200
     for bad in ({"threshold": 1.5}, {"threshold": None}, {"name": "renamed"}):
         assert tenant.client.patch(url, json=bad).status_code == 422
-    history = rows(engine, "SELECT threshold FROM threshold_changes WHERE model_id = :m"
-                   " ORDER BY id", m=model.id)
+    history = rows(
+        engine,
+        "SELECT threshold FROM threshold_changes WHERE model_id = :m ORDER BY id",
+        m=model.id,
+    )
     assert [r[0] for r in history] == [0.5, 0.7, 0.6]
     got = tenant.client.get(url).json()
     assert (got["threshold"], got["min_coverage"], got["name"]) == (0.6, 0.8, model.name)
@@ -144,11 +187,22 @@ def test_delete_removes_the_model_and_its_data(tenant: Tenant, engine: Engine) -
     for model in (doomed, kept):
         items = predictions(4)
         url = f"/v1/models/{model.name}"
-        assert tenant.client.post(f"{url}/predictions", json={"predictions": items}
-                                  ).status_code == 200
-        assert tenant.client.post(f"{url}/labels", json={"labels": [
-            label(items[0]["id"], "1"), label(items[0]["id"], "1"), label("order-late", "0")]}
-        ).status_code == 200
+        assert (
+            tenant.client.post(f"{url}/predictions", json={"predictions": items}).status_code == 200
+        )
+        assert (
+            tenant.client.post(
+                f"{url}/labels",
+                json={
+                    "labels": [
+                        label(items[0]["id"], "1"),
+                        label(items[0]["id"], "1"),
+                        label("order-late", "0"),
+                    ]
+                },
+            ).status_code
+            == 200
+        )
         assert tenant.client.patch(url, json={"threshold": 0.4}).status_code == 200
     before = counts(engine, kept.id)
     assert all(before[t] > 0 for t in MODEL_TABLES)

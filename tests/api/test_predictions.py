@@ -30,14 +30,19 @@ from tests.conftest import Tenant
 
 def post(tenant: Tenant, model: Model, items: list[dict[str, Any]]) -> Any:
     """POST a predictions batch."""
-    return tenant.client.post(f"/v1/models/{model.name}/predictions",
-                              json={"predictions": items})
+    return tenant.client.post(f"/v1/models/{model.name}/predictions", json={"predictions": items})
 
 
 def dirty_marks(engine: Engine, model: Model) -> list[tuple[int, int]]:
     """The model's dirty (hour, version) marks."""
-    return [tuple(r) for r in rows(engine, "SELECT hour, version FROM dirty_buckets"
-                                   " WHERE model_id = :m ORDER BY hour", m=model.id)]
+    return [
+        tuple(r)
+        for r in rows(
+            engine,
+            "SELECT hour, version FROM dirty_buckets WHERE model_id = :m ORDER BY hour",
+            m=model.id,
+        )
+    ]
 
 
 @pytest.fixture()
@@ -53,8 +58,9 @@ def test_repeats_with_the_same_content_are_duplicates(
     assert post(tenant, model, first).json() == {"accepted": 5, "duplicates": 0}
     assert post(tenant, model, first).json() == {"accepted": 0, "duplicates": 5}
     # the same time written with another offset is the same content
-    shifted = dict(first[0], ts=datetime.fromisoformat(first[0]["ts"])
-                   .astimezone(timezone_plus(2)).isoformat())
+    shifted = dict(
+        first[0], ts=datetime.fromisoformat(first[0]["ts"]).astimezone(timezone_plus(2)).isoformat()
+    )
     later = [shifted, *first[1:3], *predictions(2, start=5)]
     assert post(tenant, model, later).json() == {"accepted": 2, "duplicates": 3}
     # one id twice in a batch with the same content: stored once, the repeat is a duplicate
@@ -78,7 +84,9 @@ CHANGES: dict[str, Callable[[dict[str, Any]], dict[str, Any]]] = {
 
 @pytest.mark.parametrize("change", CHANGES.values(), ids=CHANGES.keys())
 def test_same_id_with_other_content_is_409_and_nothing_of_the_batch_is_stored(
-    tenant: Tenant, engine: Engine, model: Model,
+    tenant: Tenant,
+    engine: Engine,
+    model: Model,
     change: Callable[[dict[str, Any]], dict[str, Any]],
 ) -> None:
     stored = predictions(3)
@@ -135,10 +143,14 @@ def test_model_counts_and_first_and_last_prediction_time(
     assert empty["first_prediction_at"] is None and empty["last_prediction_at"] is None
     items = predictions(10)
     assert post(tenant, model, items[5:] + items[:5]).status_code == 200
-    labels = [label(p["id"], "1") for p in items[:4]] + [label("order-x", "0"),
-                                                          label("order-y", "1")]
-    assert tenant.client.post(f"/v1/models/{model.name}/labels",
-                              json={"labels": labels}).status_code == 200
+    labels = [label(p["id"], "1") for p in items[:4]] + [
+        label("order-x", "0"),
+        label("order-y", "1"),
+    ]
+    assert (
+        tenant.client.post(f"/v1/models/{model.name}/labels", json={"labels": labels}).status_code
+        == 200
+    )
     got = tenant.client.get(f"/v1/models/{model.name}").json()
     assert got["counts"] == {"predictions": 10, "labelled": 4, "pending_labels": 2}
     times = [datetime.fromisoformat(p["ts"]) for p in items]
@@ -151,8 +163,10 @@ def test_pending_label_is_joined_when_its_prediction_arrives(
 ) -> None:
     item = prediction(3)
     outcome_at = datetime.fromisoformat(item["ts"]) + timedelta(hours=30)
-    r = tenant.client.post(f"/v1/models/{model.name}/labels", json={"labels": [
-        label(item["id"], 1, ts=outcome_at), label("order-still-waiting", 0)]})
+    r = tenant.client.post(
+        f"/v1/models/{model.name}/labels",
+        json={"labels": [label(item["id"], 1, ts=outcome_at), label("order-still-waiting", 0)]},
+    )
     assert r.json() == {"matched": 0, "pending": 2, "corrected": 0, "unchanged": 0}
     assert count(engine, "pending_labels", model.id) == 2
     assert post(tenant, model, [item]).json() == {"accepted": 1, "duplicates": 0}
@@ -161,16 +175,19 @@ def test_pending_label_is_joined_when_its_prediction_arrives(
     row = prediction_row(engine, model.id, item["id"])
     assert row["actual"] == "1" and row["label_ts"] == outcome_at
     assert count(engine, "pending_labels", model.id, "pid = :p", p=item["id"]) == 0
-    assert rows(engine, "SELECT delay_h FROM predictions WHERE model_id = :m",
-                m=model.id)[0][0] == pytest.approx(30.0)
+    assert rows(engine, "SELECT delay_h FROM predictions WHERE model_id = :m", m=model.id)[0][
+        0
+    ] == pytest.approx(30.0)
 
 
-def test_predicted_comes_from_the_threshold_unless_given(
-    tenant: Tenant, engine: Engine
-) -> None:
+def test_predicted_comes_from_the_threshold_unless_given(tenant: Tenant, engine: Engine) -> None:
     model = create_model(tenant, engine, threshold=0.7)
-    items = [prediction(0, score=0.7), prediction(1, score=0.69),
-             prediction(2, score=0.9, predicted="0"), prediction(3, score=0.2, predicted=1)]
+    items = [
+        prediction(0, score=0.7),
+        prediction(1, score=0.69),
+        prediction(2, score=0.9, predicted="0"),
+        prediction(3, score=0.2, predicted=1),
+    ]
     assert post(tenant, model, items).status_code == 200
     got = [prediction_row(engine, model.id, p["id"])["predicted"] for p in items]
     assert got == ["1", "0", "0", "1"]
@@ -209,8 +226,7 @@ def test_multiclass_scores_give_predicted_by_argmax_and_are_renormalised(
     stored = [prediction_row(engine, model.id, p["id"]) for p in items]
     assert [s["predicted"] for s in stored] == ["sofa", "table", "sofa", "sofa"]
     total = sum(off.values())
-    assert stored[2]["scores"] == pytest.approx({c: v / total for c, v in off.items()},
-                                                rel=1e-12)
+    assert stored[2]["scores"] == pytest.approx({c: v / total for c, v in off.items()}, rel=1e-12)
     assert math.isclose(sum(stored[2]["scores"].values()), 1.0, rel_tol=1e-12)
     assert stored[1]["score"] == pytest.approx(0.8)  # the top probability
     # the stored, renormalised maps still compare equal to what was sent
@@ -242,12 +258,11 @@ def test_tags_are_stored_as_sent(tenant: Tenant, engine: Engine, model: Model) -
     assert prediction_row(engine, model.id, "order-1")["tags"] is None
 
 
-def test_received_time_is_stored_in_utc(
-    tenant: Tenant, engine: Engine, model: Model
-) -> None:
+def test_received_time_is_stored_in_utc(tenant: Tenant, engine: Engine, model: Model) -> None:
     before = datetime.now(UTC)
     assert post(tenant, model, predictions(1)).status_code == 200
-    (received,) = rows(engine, "SELECT received_at FROM predictions WHERE model_id = :m",
-                       m=model.id)[0]
+    (received,) = rows(
+        engine, "SELECT received_at FROM predictions WHERE model_id = :m", m=model.id
+    )[0]
     got = from_db(received)
     assert got is not None and before - timedelta(seconds=1) <= got <= datetime.now(UTC)

@@ -23,14 +23,17 @@ from belated.cli_data import register
 
 # The `belated` app with the data commands registered (register() is idempotent, so this
 # works before and after cli.py registers them itself).
-LAUNCH = ("from belated.cli import app; from belated.cli_data import register; "
-          "register(app); app(prog_name='belated')")
+LAUNCH = (
+    "from belated.cli import app; from belated.cli_data import register; "
+    "register(app); app(prog_name='belated')"
+)
 CHANNELS = ("web", "app", "phone")
 REGIONS = ("north", "south", "east", "west")
 
 
-def belated(*args: str, url: str | None = None, token: str | None = None,
-            timeout: float = 900) -> subprocess.CompletedProcess[str]:
+def belated(
+    *args: str, url: str | None = None, token: str | None = None, timeout: float = 900
+) -> subprocess.CompletedProcess[str]:
     """Run the `belated` command in a child process, address and token from the environment."""
     env = {k: v for k, v in os.environ.items() if not k.startswith("BELATED_")}
     if url is not None:
@@ -38,8 +41,14 @@ def belated(*args: str, url: str | None = None, token: str | None = None,
     if token is not None:
         env["BELATED_TOKEN"] = token
     env["COLUMNS"] = "240"
-    return subprocess.run([sys.executable, "-c", LAUNCH, *args], env=env, capture_output=True,
-                          text=True, timeout=timeout, check=False)
+    return subprocess.run(
+        [sys.executable, "-c", LAUNCH, *args],
+        env=env,
+        capture_output=True,
+        text=True,
+        timeout=timeout,
+        check=False,
+    )
 
 
 def invoke(*args: str, url: str | None = None, token: str | None = None) -> Result:
@@ -57,24 +66,28 @@ def shop_orders(n: int, *, seed: int, days: float = 5.0, prefix: str = "ord") ->
     ts = pd.Timestamp(end) - pd.to_timedelta(rng.uniform(0, days * 86_400, n).round(), unit="s")
     # Returned orders are a minority: scores from Beta(2, 5), mean 2/7.
     score = rng.beta(2.0, 5.0, n).round(6)
-    return pd.DataFrame({
-        "id": [f"{prefix}-{i:07d}" for i in range(n)],
-        "ts": ts,
-        "score": score,
-        "channel": rng.choice(CHANNELS, n),
-        "region": rng.choice(REGIONS, n),
-        "actual": (rng.random(n) < score).astype(np.int64),
-    })
+    return pd.DataFrame(
+        {
+            "id": [f"{prefix}-{i:07d}" for i in range(n)],
+            "ts": ts,
+            "score": score,
+            "channel": rng.choice(CHANNELS, n),
+            "region": rng.choice(REGIONS, n),
+            "actual": (rng.random(n) < score).astype(np.int64),
+        }
+    )
 
 
 def prediction_csv(frame: pd.DataFrame, path: Path) -> Path:
     """Write the orders in the file layout of `belated send predictions` (CSV)."""
-    out = pd.DataFrame({
-        "id": frame["id"],
-        "ts": frame["ts"].dt.strftime("%Y-%m-%dT%H:%M:%SZ"),
-        "score": frame["score"],
-        "tag.channel": frame["channel"],
-        "tag.region": frame["region"],
-    })
+    out = pd.DataFrame(
+        {
+            "id": frame["id"],
+            "ts": frame["ts"].dt.strftime("%Y-%m-%dT%H:%M:%SZ"),
+            "score": frame["score"],
+            "tag.channel": frame["channel"],
+            "tag.region": frame["region"],
+        }
+    )
     out.to_csv(path, index=False)
     return path

@@ -53,11 +53,16 @@ def shop(live: LiveServer, tenant: Tenant, engine: Engine) -> str:
 def test_the_table_shows_the_latest_windows_as_the_api_gives_them(
     live: LiveServer, tenant: Tenant, shop: str
 ) -> None:
-    run = belated("windows", "--model", shop, "--last", "7", url=live.url,
-                  token=tenant.tokens["read"])
+    run = belated(
+        "windows", "--model", shop, "--last", "7", url=live.url, token=tenant.tokens["read"]
+    )
     assert run.returncode == 0, run.stderr
-    by_day = {w["start"][:10]: w for w in tenant.client.get(
-        f"/v1/models/{shop}/metrics", params={"granularity": "day"}).json()["windows"]}
+    by_day = {
+        w["start"][:10]: w
+        for w in tenant.client.get(
+            f"/v1/models/{shop}/metrics", params={"granularity": "day"}
+        ).json()["windows"]
+    }
     body = table_rows(run.stdout)
     assert body[0][:5] == ["start", "predictions", "labelled", "coverage", "state"]
     assert body[0][5:] == ["precision", "recall", "fbeta"]
@@ -75,15 +80,29 @@ def test_the_table_shows_the_latest_windows_as_the_api_gives_them(
     assert states[-1] == "open" and "settled" in states and "provisional" in states
 
 
-def test_granularity_and_measures_are_chosen(live: LiveServer, tenant: Tenant, shop: str
-                                             ) -> None:
-    run = belated("windows", "--model", shop, "--granularity", "hour", "--last", "5",
-                  "--measures", "roc_auc,positive_rate", "--segment", "channel:web",
-                  url=live.url, token=tenant.tokens["read"])
+def test_granularity_and_measures_are_chosen(live: LiveServer, tenant: Tenant, shop: str) -> None:
+    run = belated(
+        "windows",
+        "--model",
+        shop,
+        "--granularity",
+        "hour",
+        "--last",
+        "5",
+        "--measures",
+        "roc_auc,positive_rate",
+        "--segment",
+        "channel:web",
+        url=live.url,
+        token=tenant.tokens["read"],
+    )
     assert run.returncode == 0, run.stderr
-    by_hour = {w["start"][:16].replace("T", " "): w for w in tenant.client.get(
-        f"/v1/models/{shop}/metrics", params={"granularity": "hour", "segment": "channel:web"}
-    ).json()["windows"]}
+    by_hour = {
+        w["start"][:16].replace("T", " "): w
+        for w in tenant.client.get(
+            f"/v1/models/{shop}/metrics", params={"granularity": "hour", "segment": "channel:web"}
+        ).json()["windows"]
+    }
     body = table_rows(run.stdout)
     assert body[0][5:] == ["roc_auc", "positive_rate"] and len(body) == 1 + 5
     for cells in body[1:]:
@@ -101,13 +120,23 @@ def test_a_multiclass_model_shows_macro_averages(
     orders = shop_orders(500, seed=32, days=2)
     probs = rng.dirichlet([4.0, 2.0, 1.0], len(orders))
     with Client(live.url, tenant.tokens[ALL]) as c:
-        c.send_predictions(model.name, [
-            {"id": i, "ts": t, "scores": dict(zip(classes, p, strict=True))}
-            for i, t, p in zip(orders["id"], orders["ts"], probs, strict=True)])
-        c.send_labels(model.name, [{"id": i, "actual": classes[rng.choice(3, p=p)]}
-                                   for i, p in zip(orders["id"], probs, strict=True)])
-    run = belated("windows", "--model", model.name, "--last", "3", url=live.url,
-                  token=tenant.tokens["read"])
+        c.send_predictions(
+            model.name,
+            [
+                {"id": i, "ts": t, "scores": dict(zip(classes, p, strict=True))}
+                for i, t, p in zip(orders["id"], orders["ts"], probs, strict=True)
+            ],
+        )
+        c.send_labels(
+            model.name,
+            [
+                {"id": i, "actual": classes[rng.choice(3, p=p)]}
+                for i, p in zip(orders["id"], probs, strict=True)
+            ],
+        )
+    run = belated(
+        "windows", "--model", model.name, "--last", "3", url=live.url, token=tenant.tokens["read"]
+    )
     assert run.returncode == 0, run.stderr
     body = table_rows(run.stdout)
     assert body[0][5:] == ["precision_macro", "recall_macro", "fbeta_macro"]
@@ -115,14 +144,13 @@ def test_a_multiclass_model_shows_macro_averages(
     assert body[-1][5] == shown(last["measures"]["precision_macro"])
 
 
-def test_mistakes_exit_2_and_refusals_exit_1(live: LiveServer, tenant: Tenant, shop: str
-                                            ) -> None:
+def test_mistakes_exit_2_and_refusals_exit_1(live: LiveServer, tenant: Tenant, shop: str) -> None:
     read = tenant.tokens["read"]
-    measure = invoke("windows", "--model", shop, "--measures", "precision,charm",
-                     url=live.url, token=read)
+    measure = invoke(
+        "windows", "--model", shop, "--measures", "precision,charm", url=live.url, token=read
+    )
     assert measure.exit_code == 2 and "unknown measure 'charm'" in measure.stderr
-    grain = invoke("windows", "--model", shop, "--granularity", "month", url=live.url,
-                   token=read)
+    grain = invoke("windows", "--model", shop, "--granularity", "month", url=live.url, token=read)
     assert grain.exit_code == 2 and "hour, day, week" in grain.stderr
     missing = invoke("windows", "--model", "no-such-model", url=live.url, token=read)
     assert missing.exit_code == 1 and "404" in missing.stderr

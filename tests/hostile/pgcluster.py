@@ -36,8 +36,9 @@ from tests.conftest import create_pg_database, drop_pg_database, free_port, pg_u
 
 def bin_dir() -> Path:
     """The newest installed PostgreSQL server binaries."""
-    found = sorted(glob.glob("/usr/lib/postgresql/*/bin/pg_ctl"),
-                   key=lambda p: int(Path(p).parent.parent.name))
+    found = sorted(
+        glob.glob("/usr/lib/postgresql/*/bin/pg_ctl"), key=lambda p: int(Path(p).parent.parent.name)
+    )
     if not found:
         raise RuntimeError("no PostgreSQL server binaries under /usr/lib/postgresql")
     return Path(found[-1]).parent
@@ -45,8 +46,13 @@ def bin_dir() -> Path:
 
 def _as_postgres(*argv: str) -> subprocess.CompletedProcess[str]:
     """Run a server binary as the `postgres` OS user (initdb and postgres refuse root)."""
-    return subprocess.run(["runuser", "-u", "postgres", "--", *argv], capture_output=True,
-                          text=True, timeout=120, check=False)
+    return subprocess.run(
+        ["runuser", "-u", "postgres", "--", *argv],
+        capture_output=True,
+        text=True,
+        timeout=120,
+        check=False,
+    )
 
 
 class PrivateCluster:
@@ -72,26 +78,50 @@ class PrivateCluster:
 
     def init(self) -> PrivateCluster:
         """Create the cluster (no fsync: it is thrown away after the test)."""
-        done = _as_postgres(str(self.bin / "initdb"), "-D", str(self.data), "-A", "trust",
-                            "-U", "postgres", "-E", "UTF8", "--no-sync")
+        done = _as_postgres(
+            str(self.bin / "initdb"),
+            "-D",
+            str(self.data),
+            "-A",
+            "trust",
+            "-U",
+            "postgres",
+            "-E",
+            "UTF8",
+            "--no-sync",
+        )
         if done.returncode != 0:
             raise RuntimeError(f"initdb failed: {done.stderr.strip()}")
         return self
 
     def start(self, timeout: float = 30.0) -> None:
         """Start the server on 127.0.0.1:port and wait until it accepts connections."""
-        opts = (f"-p {self.port} -k {self.root} -c listen_addresses=127.0.0.1 "
-                "-c fsync=off -c max_connections=60")
-        done = _as_postgres(str(self.bin / "pg_ctl"), "-D", str(self.data), "-o", opts,
-                            "-l", str(self.log), "-w", "-t", str(int(timeout)), "start")
+        opts = (
+            f"-p {self.port} -k {self.root} -c listen_addresses=127.0.0.1 "
+            "-c fsync=off -c max_connections=60"
+        )
+        done = _as_postgres(
+            str(self.bin / "pg_ctl"),
+            "-D",
+            str(self.data),
+            "-o",
+            opts,
+            "-l",
+            str(self.log),
+            "-w",
+            "-t",
+            str(int(timeout)),
+            "start",
+        )
         if done.returncode != 0:
             raise RuntimeError(f"pg_ctl start failed: {done.stderr.strip()} {self.tail()}")
         self.wait_ready(timeout)
 
     def stop(self, mode: str = "fast") -> None:
         """Stop the server (fast: disconnect clients and shut down cleanly)."""
-        done = _as_postgres(str(self.bin / "pg_ctl"), "-D", str(self.data), "-m", mode,
-                            "-w", "stop")
+        done = _as_postgres(
+            str(self.bin / "pg_ctl"), "-D", str(self.data), "-m", mode, "-w", "stop"
+        )
         if done.returncode != 0 and "server running" not in done.stderr:
             raise RuntimeError(f"pg_ctl stop failed: {done.stderr.strip()}")
 
@@ -169,14 +199,26 @@ def fresh_store(kind_of: str) -> Iterator[str]:
 class ServiceProcess:
     """`python -m belated serve` on a free loopback port, stdout and stderr to a log file."""
 
-    def __init__(self, database_url: str, log: Path, *, env: dict[str, str] | None = None,
-                 port: int | None = None, set_port_setting: bool = True) -> None:
+    def __init__(
+        self,
+        database_url: str,
+        log: Path,
+        *,
+        env: dict[str, str] | None = None,
+        port: int | None = None,
+        set_port_setting: bool = True,
+    ) -> None:
         self.port = port or free_port()
         self.url = f"http://127.0.0.1:{self.port}"
         self.log = log
-        self.env = {**os.environ, "BELATED_DATABASE_URL": database_url,
-                    "BELATED_HOST": "127.0.0.1", "BELATED_REFRESH_SECONDS": "1",
-                    "PYTHONUNBUFFERED": "1", **(env or {})}
+        self.env = {
+            **os.environ,
+            "BELATED_DATABASE_URL": database_url,
+            "BELATED_HOST": "127.0.0.1",
+            "BELATED_REFRESH_SECONDS": "1",
+            "PYTHONUNBUFFERED": "1",
+            **(env or {}),
+        }
         for key in ("BELATED_PORT", "BELATED_WEBHOOK_PRIVATE"):
             if key not in (env or {}):
                 self.env.pop(key, None)
@@ -190,7 +232,11 @@ class ServiceProcess:
         with open(self.log, "ab") as out:
             self.proc = subprocess.Popen(
                 [sys.executable, "-m", "belated", "serve", "--port", str(self.port)],
-                stdout=out, stderr=subprocess.STDOUT, env=self.env, cwd=self._cwd)
+                stdout=out,
+                stderr=subprocess.STDOUT,
+                env=self.env,
+                cwd=self._cwd,
+            )
         deadline = time.monotonic() + timeout
         while True:
             if self.proc.poll() is not None:

@@ -81,15 +81,27 @@ def _world(app: Any, engine: Engine) -> tuple[str, dict[str, str]]:
     sessions = make_sessionmaker(engine)
     with TestClient(app, base_url="http://testserver") as c:
         tenant = make_tenant(sessions, c)
-        assert c.post("/v1/models", json={"name": "returns-v2",
-                                          "segment_keys": ["region"]}).status_code == 201
+        assert (
+            c.post(
+                "/v1/models", json={"name": "returns-v2", "segment_keys": ["region"]}
+            ).status_code
+            == 201
+        )
         items = predictions(40, tags={"region": "north"})
-        assert c.post("/v1/models/returns-v2/predictions",
-                      json={"predictions": items}).status_code == 200
-        assert c.post("/v1/models/returns-v2/labels", json={"labels": [
-            label(p["id"], str(n % 2)) for n, p in enumerate(items[:30])]}).status_code == 200
-        rule = c.post("/v1/models/returns-v2/rules",
-                      json={"kind": "volume", "granularity": "hour", "low": 1}).json()
+        assert (
+            c.post("/v1/models/returns-v2/predictions", json={"predictions": items}).status_code
+            == 200
+        )
+        assert (
+            c.post(
+                "/v1/models/returns-v2/labels",
+                json={"labels": [label(p["id"], str(n % 2)) for n, p in enumerate(items[:30])]},
+            ).status_code
+            == 200
+        )
+        rule = c.post(
+            "/v1/models/returns-v2/rules", json={"kind": "volume", "granularity": "hour", "low": 1}
+        ).json()
         hook = c.post("/v1/webhooks", json={"url": "http://127.0.0.1:9/hooks/belated"}).json()
     with transaction(sessions) as session:
         row = session.get(Rule, rule["id"])
@@ -101,14 +113,20 @@ def _world(app: Any, engine: Engine) -> tuple[str, dict[str, str]]:
         c.headers["Authorization"] = f"Bearer {tenant.tokens['admin,ingest,read']}"
         alerts = c.get("/v1/alerts").json()["items"]
     assert alerts, "the volume rule should have opened an alert"
-    real = {"model": "returns-v2", "rule_id": rule["id"], "hook_id": hook["id"],
-            "alert_id": alerts[0]["id"]}
+    real = {
+        "model": "returns-v2",
+        "rule_id": rule["id"],
+        "hook_id": hook["id"],
+        "alert_id": alerts[0]["id"],
+    }
     return tenant.tokens["admin,ingest,read"], real
 
 
 def _describe(case: Any, status: int, text: str) -> str:
-    return (f"{case.operation.label} -> {status}: path={case.path_parameters} "
-            f"query={case.query} body={str(case.body)[:120]!r}: {text[:300]}")
+    return (
+        f"{case.operation.label} -> {status}: path={case.path_parameters} "
+        f"query={case.query} body={str(case.body)[:120]!r}: {text[:300]}"
+    )
 
 
 def _modes(op: Any) -> list[schemathesis.GenerationMode]:
@@ -119,18 +137,30 @@ def _modes(op: Any) -> list[schemathesis.GenerationMode]:
     """
     raw = op.definition.raw
     constrained = "requestBody" in raw or any(
-        p.get("in") == "query" for p in raw.get("parameters", []))
+        p.get("in") == "query" for p in raw.get("parameters", [])
+    )
     modes = [schemathesis.GenerationMode.POSITIVE]
     return modes + [schemathesis.GenerationMode.NEGATIVE] if constrained else modes
 
 
-def _fuzz_operation(op: Any, mode: schemathesis.GenerationMode, found: Findings,
-                    auth: dict[str, str], real: dict[str, str]) -> None:
+def _fuzz_operation(
+    op: Any,
+    mode: schemathesis.GenerationMode,
+    found: Findings,
+    auth: dict[str, str],
+    real: dict[str, str],
+) -> None:
     """Send one operation's generated requests and file what the checks say."""
     documented = {str(k) for k in (op.definition.raw.get("responses") or {})}
 
-    @settings(max_examples=EXAMPLES, deadline=None, database=None, derandomize=True,
-              phases=[Phase.generate], suppress_health_check=list(HealthCheck))
+    @settings(
+        max_examples=EXAMPLES,
+        deadline=None,
+        database=None,
+        derandomize=True,
+        phases=[Phase.generate],
+        suppress_health_check=list(HealthCheck),
+    )
     @given(case=op.as_strategy(generation_mode=mode), use_real=st.booleans())
     def run(case: Any, use_real: bool) -> None:
         if use_real:
@@ -149,8 +179,9 @@ def _fuzz_operation(op: Any, mode: schemathesis.GenerationMode, found: Findings,
         try:
             case.validate_response(response, checks=CHECKS, headers=auth)
         except FailureGroup as group:
-            text = "; ".join(f"{f.title}: {' '.join(f.message.split())[:160]}"
-                             for f in group.exceptions)
+            text = "; ".join(
+                f"{f.title}: {' '.join(f.message.split())[:160]}" for f in group.exceptions
+            )
             target = found.success_mismatches if status < 300 else found.error_mismatches
             target.append(_describe(case, status, text))
             kind = f"{op.label} -> {status}: {text}"
@@ -167,8 +198,9 @@ def _fuzz(app: Any, token: str, real: dict[str, str]) -> Findings:
     assert all(isinstance(r, Ok) for r in loaded), [r for r in loaded if not isinstance(r, Ok)]
     operations = [r.ok() for r in loaded if isinstance(r, Ok)]
     # deletions last and deepest first, so that the real objects serve every other operation
-    operations.sort(key=lambda op: (op.method.upper() == "DELETE", -op.path.count("/"),
-                                    op.path, op.method))
+    operations.sort(
+        key=lambda op: (op.method.upper() == "DELETE", -op.path.count("/"), op.path, op.method)
+    )
     started = time.monotonic()
     for op in operations:
         for mode in _modes(op):
@@ -213,4 +245,5 @@ def test_successful_answers_match_the_documented_schema(findings: Findings) -> N
 def test_error_answers_match_what_the_document_says(findings: Findings) -> None:
     """The document lists a 422 for most operations; what is served must be that shape."""
     assert findings.error_mismatches == [], (
-        findings.summary() + "\nfor example:\n" + "\n".join(findings.error_mismatches[:3]))
+        findings.summary() + "\nfor example:\n" + "\n".join(findings.error_mismatches[:3])
+    )

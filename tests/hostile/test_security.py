@@ -49,8 +49,10 @@ def test_tokens_carry_at_least_128_random_bits(sessions: Any) -> None:
     session = sessions()
     try:
         project = keys.get_or_create_project(session=session, name=random_name("entropy"))
-        made = [keys.create(session=session, project_id=project.id, scopes=["read"])[1]
-                for _ in range(1000)]
+        made = [
+            keys.create(session=session, project_id=project.id, scopes=["read"])[1]
+            for _ in range(1000)
+        ]
     finally:
         session.rollback()  # nothing of this test is kept
         session.close()
@@ -77,8 +79,9 @@ def _holding(engine: Engine, needle: str) -> list[str]:
     with engine.connect() as conn:
         for table, column in _columns(engine):
             expr = find.format(f'CAST("{column}" AS TEXT)')
-            n = conn.execute(text(f'SELECT count(*) FROM "{table}" WHERE {expr}'),
-                             {"s": needle}).scalar()
+            n = conn.execute(
+                text(f'SELECT count(*) FROM "{table}" WHERE {expr}'), {"s": needle}
+            ).scalar()
             if n:
                 found.append(f"{table}.{column}")
     return found
@@ -95,7 +98,8 @@ def test_token_secrets_are_nowhere_in_the_database_only_their_hashes(
         assert _holding(engine, random_part[:24]) == [], secret
         assert _holding(engine, random_part[-24:]) == [], secret
         assert _holding(engine, hashlib.sha256(secret.encode()).hexdigest()) == [
-            "tokens.token_hash"]
+            "tokens.token_hash"
+        ]
 
 
 def test_a_token_is_looked_up_by_its_hash_and_compared_in_constant_time(
@@ -109,8 +113,7 @@ def test_a_token_is_looked_up_by_its_hash_and_compared_in_constant_time(
 
     event.listen(engine, "before_cursor_execute", record)
     try:
-        assert tenant.client.get("/v1/models",
-                                 headers=tenant.headers("read")).status_code == 200
+        assert tenant.client.get("/v1/models", headers=tenant.headers("read")).status_code == 200
     finally:
         event.remove(engine, "before_cursor_execute", record)
     digest = hashlib.sha256(token.encode()).hexdigest()
@@ -128,15 +131,19 @@ def test_a_revoked_key_is_refused_at_once(tenant: Tenant, sessions: Any) -> None
     assert c.get("/v1/models", headers=header).status_code == 200
     other = make_tenant(sessions, c)  # resets the client's default token
     c.headers["Authorization"] = f"Bearer {tenant.tokens['admin,ingest,read']}"
-    theirs = c.post("/v1/keys", json={"scopes": ["read"]},
-                    headers=other.headers("admin")).json()
+    theirs = c.post("/v1/keys", json={"scopes": ["read"]}, headers=other.headers("admin")).json()
     # another project's key cannot be revoked from here, and stays live
     assert c.delete(f"/v1/keys/{theirs['id']}").status_code == 404
-    assert c.get("/v1/models",
-                 headers={"Authorization": f"Bearer {theirs['token']}"}).status_code == 200
+    assert (
+        c.get("/v1/models", headers={"Authorization": f"Bearer {theirs['token']}"}).status_code
+        == 200
+    )
     assert c.delete(f"/v1/keys/{made['id']}").status_code == 204
-    for method, url in (("GET", "/v1/models"), ("GET", "/v1/alerts"),
-                        ("POST", "/v1/models/any/predictions")):
+    for method, url in (
+        ("GET", "/v1/models"),
+        ("GET", "/v1/alerts"),
+        ("POST", "/v1/models/any/predictions"),
+    ):
         r = c.request(method, url, headers=header, json={"predictions": []})
         assert r.status_code == 401, (method, url, r.text)
         assert r.headers["content-type"].startswith("application/problem+json")
@@ -191,18 +198,30 @@ def victim(tenant: Tenant, engine: Engine, sessions: Any) -> dict[str, Any]:
     other = make_tenant(sessions, c)  # c now sends the victim's all-scopes token
     model = create_model(other, engine)
     items = predictions(3)
-    assert c.post(f"/v1/models/{model.name}/predictions",
-                  json={"predictions": items}).status_code == 200
-    assert c.post(f"/v1/models/{model.name}/labels",
-                  json={"labels": [label(items[0]["id"], "1")]}).status_code == 200
-    rule = c.post(f"/v1/models/{model.name}/rules",
-                  json={"kind": "volume", "granularity": "hour", "low": 1}).json()
+    assert (
+        c.post(f"/v1/models/{model.name}/predictions", json={"predictions": items}).status_code
+        == 200
+    )
+    assert (
+        c.post(
+            f"/v1/models/{model.name}/labels", json={"labels": [label(items[0]["id"], "1")]}
+        ).status_code
+        == 200
+    )
+    rule = c.post(
+        f"/v1/models/{model.name}/rules", json={"kind": "volume", "granularity": "hour", "low": 1}
+    ).json()
     hook = c.post("/v1/webhooks", json={"url": "http://127.0.0.1:9/victim"}).json()
     key = c.post("/v1/keys", json={"scopes": ["read"]}).json()
     alert = _volume_alert(sessions, rule["id"])
     c.headers["Authorization"] = f"Bearer {tenant.tokens['admin,ingest,read']}"
-    ids = {"model": model.name, "rule_id": rule["id"], "alert_id": alert,
-           "hook_id": hook["id"], "key_id": key["id"]}
+    ids = {
+        "model": model.name,
+        "rule_id": rule["id"],
+        "alert_id": alert,
+        "hook_id": hook["id"],
+        "key_id": key["id"],
+    }
     return {"tenant": other, "model": model, "ids": ids, "key_token": key["token"]}
 
 
@@ -211,8 +230,10 @@ def _snapshot(engine: Engine, victim: dict[str, Any]) -> dict[str, Any]:
     one = lambda sql, **p: [tuple(r) for r in rows(engine, sql, **p)]  # noqa: E731
     return {
         "models": one("SELECT name, threshold FROM models WHERE project_id = :p", p=pid),
-        "data": one("SELECT count(*), count(actual) FROM predictions WHERE model_id = :m",
-                    m=victim["model"].id),
+        "data": one(
+            "SELECT count(*), count(actual) FROM predictions WHERE model_id = :m",
+            m=victim["model"].id,
+        ),
         "rules": one("SELECT id, settings FROM rules WHERE model_id = :m", m=victim["model"].id),
         "alerts": one("SELECT id, state FROM alerts WHERE project_id = :p", p=pid),
         "hooks": one("SELECT id, url FROM webhooks WHERE project_id = :p", p=pid),
@@ -241,8 +262,9 @@ def test_every_operation_refuses_a_token_without_its_scope(
             for scope in SCOPES:
                 if scope == need:
                     continue
-                r = tenant.client.request(method, url, json=bodies.get((method, path)),
-                                          headers=owner.headers(scope))
+                r = tenant.client.request(
+                    method, url, json=bodies.get((method, path)), headers=owner.headers(scope)
+                )
                 assert r.status_code == 403, (method, path, scope, r.text)
                 assert f"'{need}'" in r.json()["detail"]
 
@@ -260,20 +282,27 @@ def test_every_operation_hides_another_projects_objects(
     for method, path in _operations(app):
         if (method, path) in PUBLIC:
             continue
-        needs_body = "requestBody" in app.app.openapi()["paths"][path][method.lower()] or \
-            path.endswith(("/predictions", "/labels"))
+        needs_body = "requestBody" in app.app.openapi()["paths"][path][
+            method.lower()
+        ] or path.endswith(("/predictions", "/labels"))
         assert not needs_body or (method, path) in bodies, f"add a body for {method} {path}"
         headers = tenant.headers(_scope_of(method, path))
-        r = c.request(method, path.format(**names), json=bodies.get((method, path)),
-                      headers=headers)
+        r = c.request(
+            method, path.format(**names), json=bodies.get((method, path)), headers=headers
+        )
         if "{" in path:
             assert r.status_code == 404, (method, path, r.text)
             assert r.headers["content-type"].startswith("application/problem+json")
             continue
         assert r.status_code in (200, 201), (method, path, r.text)
         answer = json.dumps(r.json())
-        for secret_name in (names["model"], names["rule_id"], names["alert_id"],
-                            names["hook_id"], names["key_id"]):
+        for secret_name in (
+            names["model"],
+            names["rule_id"],
+            names["alert_id"],
+            names["hook_id"],
+            names["key_id"],
+        ):
             assert secret_name not in answer, (method, path)
         if method == "GET" and path == "/v1/models":
             assert [m["name"] for m in r.json()["items"]] == [own.name]
@@ -326,25 +355,30 @@ class FakeDns:
     def __call__(self, host: Any, port: Any, *args: Any, **kwargs: Any) -> Any:
         name = host.decode() if isinstance(host, bytes) else str(host)
         if name in self.names:
-            return [info for ip in self.names[name]
-                    for info in self.real(ip, port, *args, **kwargs)]
+            return [
+                info for ip in self.names[name] for info in self.real(ip, port, *args, **kwargs)
+            ]
         if name == "localhost":
             return self.real(name, port, *args, **kwargs)
         kwargs["flags"] = kwargs.get("flags", 0) | socket.AI_NUMERICHOST
         try:
             return self.real(name, port, *args, **kwargs)
         except socket.gaierror:
-            raise socket.gaierror(socket.EAI_NONAME, f"{name} is not a name of this test") \
-                from None
+            raise socket.gaierror(socket.EAI_NONAME, f"{name} is not a name of this test") from None
 
 
 @pytest.fixture()
 def dns(monkeypatch: pytest.MonkeyPatch) -> FakeDns:
     fake = FakeDns(socket.getaddrinfo)
-    fake.names.update({"metadata.shop.test": ["169.254.169.254"],
-                       "mixed.shop.test": ["127.0.0.1", "169.254.169.254"],
-                       "intranet.shop.test": ["10.0.0.7"], "self.shop.test": ["127.0.0.1"],
-                       "hooks.shop.test": ["93.184.216.34"]})
+    fake.names.update(
+        {
+            "metadata.shop.test": ["169.254.169.254"],
+            "mixed.shop.test": ["127.0.0.1", "169.254.169.254"],
+            "intranet.shop.test": ["10.0.0.7"],
+            "self.shop.test": ["127.0.0.1"],
+            "hooks.shop.test": ["93.184.216.34"],
+        }
+    )
     monkeypatch.setattr(socket, "getaddrinfo", fake)
     return fake
 
@@ -352,25 +386,40 @@ def dns(monkeypatch: pytest.MonkeyPatch) -> FakeDns:
 _SECOND = timedelta(seconds=1)
 OWN_PORT = 8000  # the `settings` fixture's BELATED_PORT
 ALWAYS_REFUSED = [
-    "http://169.254.169.254/latest/meta-data/", "http://169.254.10.10:8080/hook",
-    "http://[fe80::1]/hook", "http://100.100.100.200/latest/meta-data",
-    "http://[fd00:ec2::254]/latest", "http://[::ffff:169.254.169.254]/",
-    "http://2852039166/", "http://0xa9fea9fe/", "http://0251.0376.0251.0376/",
-    "http://metadata.shop.test/computeMetadata/v1", "http://mixed.shop.test:9/hook",
-    "http://0.0.0.0:9/hook", f"http://127.0.0.1:{OWN_PORT}/v1/models",
-    f"http://localhost:{OWN_PORT}/", f"http://[::1]:{OWN_PORT}/",
-    f"http://self.shop.test:{OWN_PORT}/hook", f"http://127.0.0.2:{OWN_PORT}/hook",
+    "http://169.254.169.254/latest/meta-data/",
+    "http://169.254.10.10:8080/hook",
+    "http://[fe80::1]/hook",
+    "http://100.100.100.200/latest/meta-data",
+    "http://[fd00:ec2::254]/latest",
+    "http://[::ffff:169.254.169.254]/",
+    "http://2852039166/",
+    "http://0xa9fea9fe/",
+    "http://0251.0376.0251.0376/",
+    "http://metadata.shop.test/computeMetadata/v1",
+    "http://mixed.shop.test:9/hook",
+    "http://0.0.0.0:9/hook",
+    f"http://127.0.0.1:{OWN_PORT}/v1/models",
+    f"http://localhost:{OWN_PORT}/",
+    f"http://[::1]:{OWN_PORT}/",
+    f"http://self.shop.test:{OWN_PORT}/hook",
+    f"http://127.0.0.2:{OWN_PORT}/hook",
 ]
 PRIVATE = [
-    "http://127.0.0.1:9/hook", "http://127.8.9.10:9/", "http://localhost:9/hook",
-    "http://10.1.2.3/hook", "http://172.16.5.4/", "http://192.168.1.20:8080/",
-    "http://[fc00::1]/hook", "http://intranet.shop.test/hook",
+    "http://127.0.0.1:9/hook",
+    "http://127.8.9.10:9/",
+    "http://localhost:9/hook",
+    "http://10.1.2.3/hook",
+    "http://172.16.5.4/",
+    "http://192.168.1.20:8080/",
+    "http://[fc00::1]/hook",
+    "http://intranet.shop.test/hook",
 ]
 
 
 def _hook_count(engine: Engine, project_id: int) -> int:
-    return int(rows(engine, "SELECT count(*) FROM webhooks WHERE project_id = :p",
-                    p=project_id)[0][0])
+    return int(
+        rows(engine, "SELECT count(*) FROM webhooks WHERE project_id = :p", p=project_id)[0][0]
+    )
 
 
 @pytest.mark.parametrize("private", [True, False], ids=["private-on", "private-off"])
@@ -444,15 +493,18 @@ def test_delivery_rechecks_the_address_a_name_resolves_to_now(
             tenant = make_tenant(factory, c)
             dns.names["receiver.shop.test"] = ["127.0.0.1"]
             port = rx.server.server_port
-            hook = c.post("/v1/webhooks",
-                          json={"url": f"http://receiver.shop.test:{port}/hooks/belated"})
+            hook = c.post(
+                "/v1/webhooks", json={"url": f"http://receiver.shop.test:{port}/hooks/belated"}
+            )
             assert hook.status_code == 201, hook.text
             rx.secret = hook.json()["secret"]
             model = create_model(tenant, eng)
 
             def new_event() -> None:
-                rule = c.post(f"/v1/models/{model.name}/rules",
-                              json={"kind": "volume", "granularity": "hour", "low": 1}).json()
+                rule = c.post(
+                    f"/v1/models/{model.name}/rules",
+                    json={"kind": "volume", "granularity": "hour", "low": 1},
+                ).json()
                 _volume_alert(factory, rule["id"])
 
             new_event()
@@ -460,10 +512,11 @@ def test_delivery_rechecks_the_address_a_name_resolves_to_now(
             assert len(rx.unique()) == 1
             new_event()
             log_url = f"/v1/webhooks/{hook.json()['id']}/deliveries"
-            cases = [("169.254.169.254", allow, "link-local or metadata"),
-                     ("10.0.0.7", allow.model_copy(update={"webhook_private": False}),
-                      "private"),
-                     ("127.0.0.1", allow.model_copy(update={"port": port}), "itself")]
+            cases = [
+                ("169.254.169.254", allow, "link-local or metadata"),
+                ("10.0.0.7", allow.model_copy(update={"webhook_private": False}), "private"),
+                ("127.0.0.1", allow.model_copy(update={"port": port}), "itself"),
+            ]
             for attempt, (address, settings, reason) in enumerate(cases, start=1):
                 dns.names["receiver.shop.test"] = [address]
                 guard = Guard()
@@ -473,9 +526,10 @@ def test_delivery_rechecks_the_address_a_name_resolves_to_now(
                 assert guard.requests == [], address
                 latest = c.get(log_url).json()["items"][0]
                 assert latest["state"] == "pending" and latest["attempts"] == attempt
-                assert latest["last_error"].startswith("refused") and reason in \
-                    latest["last_error"], latest
-                clock.set(now() + delivery.BASE_DELAY * 2 ** attempt * _SECOND)
+                assert (
+                    latest["last_error"].startswith("refused") and reason in latest["last_error"]
+                ), latest
+                clock.set(now() + delivery.BASE_DELAY * 2**attempt * _SECOND)
             assert rx.calls == 1
             dns.names["receiver.shop.test"] = ["127.0.0.1"]
             assert delivery.deliver_due(factory, allow)["delivered"] == 1
@@ -495,8 +549,12 @@ def served(store_url: str, tmp_path: Path) -> Iterator[tuple[ServiceProcess, str
     the developer guide shows (the port given on the command line only)."""
     log = tmp_path / "service.log"
     with fresh_store(store_url) as url:
-        service = ServiceProcess(url, log, set_port_setting=False,
-                                 env={"BELATED_LOG_FORMAT": "json", "BELATED_JOBS": "true"})
+        service = ServiceProcess(
+            url,
+            log,
+            set_port_setting=False,
+            env={"BELATED_LOG_FORMAT": "json", "BELATED_JOBS": "true"},
+        )
         with service:
             yield service, url
 
@@ -519,8 +577,9 @@ def test_no_secret_reaches_the_log(served: tuple[ServiceProcess, str]) -> None:
     assert any("leader" in r["message"] or "Uvicorn" in r["message"] for r in lines)
     for secret in [*tenant.tokens.values(), *found]:
         body = secret.split("_", 1)[1]
-        assert secret not in text_ and body[:20] not in text_ and body[-20:] not in text_, \
+        assert secret not in text_ and body[:20] not in text_ and body[-20:] not in text_, (
             f"{secret[:8]}... is in the log"
+        )
 
 
 def _exercise(c: httpx.Client, tenant: Tenant, rx: Receiver) -> list[str]:
@@ -531,17 +590,25 @@ def _exercise(c: httpx.Client, tenant: Tenant, rx: Receiver) -> list[str]:
     name = random_name("returns")
     assert c.post("/v1/models", json={"name": name}).status_code == 201
     items = predictions(20)
-    assert c.post(f"/v1/models/{name}/predictions", json={"predictions": items},
-                  headers=bearer).status_code == 200
-    c.post(f"/v1/models/{name}/labels", json={"labels": [label(items[0]["id"], "1")]},
-           headers=bearer)
+    assert (
+        c.post(
+            f"/v1/models/{name}/predictions", json={"predictions": items}, headers=bearer
+        ).status_code
+        == 200
+    )
+    c.post(
+        f"/v1/models/{name}/labels", json={"labels": [label(items[0]["id"], "1")]}, headers=bearer
+    )
     c.get(f"/v1/models/{name}/metrics", headers=bearer)
     c.get("/v1/models", params={"token": token, "access_token": token})
     with httpx.Client(base_url=c.base_url, cookies={"belated_token": token}) as browser:
         browser.get("/")
     c.get(f"/v1/models/{token}")  # a secret in the path
-    c.post(f"/v1/models/{name}/predictions", headers=bearer,  # a secret in a refused body
-           json={"predictions": [{"id": token, "ts": "soon", "score": 2}]})
+    c.post(
+        f"/v1/models/{name}/predictions",
+        headers=bearer,  # a secret in a refused body
+        json={"predictions": [{"id": token, "ts": "soon", "score": 2}]},
+    )
     wrong = "blt_" + secrets.token_urlsafe(32)
     c.get("/v1/models", headers={"Authorization": f"Bearer {wrong}"})
     c.get("/v1/models", headers={"Authorization": f"Basic {token}"})
@@ -549,8 +616,11 @@ def _exercise(c: httpx.Client, tenant: Tenant, rx: Receiver) -> list[str]:
     # server closes a connection after such an error, so it goes on a connection of its own
     with httpx.Client(base_url=c.base_url, timeout=30) as once:
         try:
-            once.post(f"/v1/models/{name}/predictions", headers=bearer,
-                      content=b'{"predictions": ' + b"[" * 50_000 + b"]" * 50_000 + b"}")
+            once.post(
+                f"/v1/models/{name}/predictions",
+                headers=bearer,
+                content=b'{"predictions": ' + b"[" * 50_000 + b"]" * 50_000 + b"}",
+            )
         except httpx.TransportError:
             pass
     hook = c.post("/v1/webhooks", json={"url": rx.url}).json()
@@ -564,7 +634,7 @@ def _exercise(c: httpx.Client, tenant: Tenant, rx: Receiver) -> list[str]:
 
 @pytest.mark.slow
 def test_a_webhook_at_the_services_own_address_is_refused(
-    served: tuple[ServiceProcess, str]
+    served: tuple[ServiceProcess, str],
 ) -> None:
     """The service listens on the port given by --port; a webhook pointing there would
     have the service call itself, and must be refused whatever BELATED_PORT says."""
@@ -573,8 +643,10 @@ def test_a_webhook_at_the_services_own_address_is_refused(
     try:
         with httpx.Client(base_url=service.url, timeout=30) as c:
             make_tenant(make_sessionmaker(eng), c)
-            for target in (f"http://127.0.0.1:{service.port}/v1/models",
-                           f"http://localhost:{service.port}/healthz"):
+            for target in (
+                f"http://127.0.0.1:{service.port}/v1/models",
+                f"http://localhost:{service.port}/healthz",
+            ):
                 r = c.post("/v1/webhooks", json={"url": target})
                 assert r.status_code == 422, (target, r.status_code, r.text)
     finally:

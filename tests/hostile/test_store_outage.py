@@ -43,8 +43,9 @@ def served(cluster: PrivateCluster, tmp_path: Path) -> Iterator[tuple[ServicePro
     """`belated serve` with jobs on, over a migrated database of the private cluster."""
     url = cluster.create_database("belated")
     upgrade(url)
-    with ServiceProcess(url, tmp_path / "service.log",
-                        env={"BELATED_JOBS": "true", "BELATED_LOG_FORMAT": "json"}) as service:
+    with ServiceProcess(
+        url, tmp_path / "service.log", env={"BELATED_JOBS": "true", "BELATED_LOG_FORMAT": "json"}
+    ) as service:
         yield service, url
 
 
@@ -61,10 +62,13 @@ def _until(check: Callable[[], Any], timeout: float) -> tuple[Any, float]:
 
 
 def _is_503_problem(r: httpx.Response) -> bool:
-    return (r.status_code == 503
-            and r.headers["content-type"].startswith("application/problem+json")
-            and r.json()["status"] == 503 and bool(r.json()["detail"])
-            and float(r.headers["retry-after"]) > 0)
+    return (
+        r.status_code == 503
+        and r.headers["content-type"].startswith("application/problem+json")
+        and r.json()["status"] == 503
+        and bool(r.json()["detail"])
+        and float(r.headers["retry-after"]) > 0
+    )
 
 
 @pytest.mark.parametrize("mode", ["fast", "immediate"], ids=["clean-stop", "crash"])
@@ -103,8 +107,9 @@ def test_requests_get_503_while_the_store_is_down_and_recover_without_a_restart(
 def _healthy(c: httpx.Client) -> dict[str, Any] | None:
     r = c.get("/healthz")
     body = r.json()
-    return body if r.status_code == 200 and body["store"] == "up" and body["jobs"]["leader"] \
-        else None
+    return (
+        body if r.status_code == 200 and body["store"] == "up" and body["jobs"]["leader"] else None
+    )
 
 
 def _store_is_up(c: httpx.Client, tenant: Tenant, name: str, first: int) -> None:
@@ -112,11 +117,17 @@ def _store_is_up(c: httpx.Client, tenant: Tenant, name: str, first: int) -> None
     if first == 0:
         assert c.post("/v1/models", json={"name": name}).status_code == 201
     items = predictions(20, start=first)
-    r = c.post(f"/v1/models/{name}/predictions", json={"predictions": items},
-               headers=tenant.headers("ingest"))
+    r = c.post(
+        f"/v1/models/{name}/predictions",
+        json={"predictions": items},
+        headers=tenant.headers("ingest"),
+    )
     assert r.status_code == 200 and r.json()["accepted"] == 20, r.text
-    r = c.post(f"/v1/models/{name}/labels", json={"labels": [label(items[0]["id"], "1")]},
-               headers=tenant.headers("ingest"))
+    r = c.post(
+        f"/v1/models/{name}/labels",
+        json={"labels": [label(items[0]["id"], "1")]},
+        headers=tenant.headers("ingest"),
+    )
     assert r.status_code == 200, r.text
     assert c.get(f"/v1/models/{name}/metrics").status_code == 200
     health = c.get("/healthz")
@@ -129,10 +140,18 @@ def _store_is_down(c: httpx.Client, tenant: Tenant, name: str) -> None:
         ("GET", "/v1/models", None, tenant.headers("read")),
         ("GET", f"/v1/models/{name}", None, tenant.headers("read")),
         ("GET", f"/v1/models/{name}/metrics", None, tenant.headers("read")),
-        ("POST", f"/v1/models/{name}/predictions",
-         {"predictions": predictions(5, start=100)}, tenant.headers("ingest")),
-        ("POST", f"/v1/models/{name}/labels", {"labels": [label("order-1", "0")]},
-         tenant.headers("ingest")),
+        (
+            "POST",
+            f"/v1/models/{name}/predictions",
+            {"predictions": predictions(5, start=100)},
+            tenant.headers("ingest"),
+        ),
+        (
+            "POST",
+            f"/v1/models/{name}/labels",
+            {"labels": [label("order-1", "0")]},
+            tenant.headers("ingest"),
+        ),
         ("POST", "/v1/webhooks", {"url": "http://127.0.0.1:9/hook"}, tenant.headers("admin")),
         ("GET", "/v1/alerts", None, tenant.headers("read")),
         ("POST", "/v1/keys", {"scopes": ["read"]}, tenant.headers("admin")),

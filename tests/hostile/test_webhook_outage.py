@@ -91,8 +91,9 @@ class Sink:
 
 def _fire(factory: Any, c: Any, model: str) -> None:
     """A new hourly volume rule with low 1 on an idle model, evaluated now: one new event."""
-    rule = c.post(f"/v1/models/{model}/rules",
-                  json={"kind": "volume", "granularity": "hour", "low": 1})
+    rule = c.post(
+        f"/v1/models/{model}/rules", json={"kind": "volume", "granularity": "hour", "low": 1}
+    )
     assert rule.status_code == 201, rule.text
     with transaction(factory) as session:
         row = session.get(Rule, rule.json()["id"])
@@ -117,13 +118,21 @@ def world(store_url: str) -> Iterator[dict[str, Any]]:
             with TestClient(create_app(settings, engine=eng, jobs=False)) as c:
                 make_tenant(factory, c)
                 port = free_port()
-                hook = c.post("/v1/webhooks",
-                              json={"url": f"http://127.0.0.1:{port}/hooks/belated"}).json()
+                hook = c.post(
+                    "/v1/webhooks", json={"url": f"http://127.0.0.1:{port}/hooks/belated"}
+                ).json()
                 name = random_name("returns")
                 assert c.post("/v1/models", json={"name": name}).status_code == 201
                 sink = Sink(port, hook["secret"])
-                yield {"c": c, "factory": factory, "settings": settings, "sink": sink,
-                       "hook": hook, "model": name, "engine": eng}
+                yield {
+                    "c": c,
+                    "factory": factory,
+                    "settings": settings,
+                    "sink": sink,
+                    "hook": hook,
+                    "model": name,
+                    "engine": eng,
+                }
                 sink.stop()
         finally:
             clock.set(None)
@@ -196,8 +205,14 @@ def test_down_then_slow_then_gone(world: dict[str, Any]) -> None:
 
 
 def _outbox(eng: Engine, hook_id: str) -> list[tuple[str, str, int]]:
-    return [tuple(r) for r in rows(eng, "SELECT event_id, state, attempts FROM deliveries "
-                                   "WHERE webhook_id = :w ORDER BY id", w=hook_id)]
+    return [
+        tuple(r)
+        for r in rows(
+            eng,
+            "SELECT event_id, state, attempts FROM deliveries WHERE webhook_id = :w ORDER BY id",
+            w=hook_id,
+        )
+    ]
 
 
 def _wait(check: Any, timeout: float, what: str) -> Any:
@@ -229,16 +244,28 @@ def _crash_scenario(url: str, eng: Engine, tmp_path: Path) -> None:
     try:
         with httpx.Client(base_url=first.url, timeout=30) as c:
             make_tenant(make_sessionmaker(eng), c)
-            hook = c.post("/v1/webhooks",
-                          json={"url": f"http://127.0.0.1:{port}/hooks/belated"}).json()
+            hook = c.post(
+                "/v1/webhooks", json={"url": f"http://127.0.0.1:{port}/hooks/belated"}
+            ).json()
             name = random_name("returns")
             assert c.post("/v1/models", json={"name": name}).status_code == 201
             for low in (1, 2):
-                assert c.post(f"/v1/models/{name}/rules", json={
-                    "kind": "volume", "granularity": "hour", "low": low}).status_code == 201
-            tried = _wait(lambda: [o for o in _outbox(eng, hook["id"]) if o[2] >= 1]
-                          if len(_outbox(eng, hook["id"])) == 2 else None, 60,
-                          "two events tried while the receiver is down")
+                assert (
+                    c.post(
+                        f"/v1/models/{name}/rules",
+                        json={"kind": "volume", "granularity": "hour", "low": low},
+                    ).status_code
+                    == 201
+                )
+            tried = _wait(
+                lambda: (
+                    [o for o in _outbox(eng, hook["id"]) if o[2] >= 1]
+                    if len(_outbox(eng, hook["id"])) == 2
+                    else None
+                ),
+                60,
+                "two events tried while the receiver is down",
+            )
             assert all(state == "pending" for _, state, _ in tried)
     finally:
         first.stop(signal.SIGKILL)  # a crash, not a clean stop
@@ -248,8 +275,11 @@ def _crash_scenario(url: str, eng: Engine, tmp_path: Path) -> None:
     try:
         with ServiceProcess(url, tmp_path / "second.log", env=env):
             _wait(lambda: len(sink.unique()) == 2, 60, "both events after the restart")
-            _wait(lambda: all(s == "delivered" for _, s, _ in _outbox(eng, hook["id"])), 30,
-                  "the outbox marked delivered")
+            _wait(
+                lambda: all(s == "delivered" for _, s, _ in _outbox(eng, hook["id"])),
+                30,
+                "the outbox marked delivered",
+            )
     finally:
         sink.stop()
     assert sorted(sink.unique()) == sorted(e for e, _, _ in pending)
@@ -257,4 +287,3 @@ def _crash_scenario(url: str, eng: Engine, tmp_path: Path) -> None:
     alerts = {r[0] for r in rows(eng, "SELECT id FROM alerts")}
     assert {e["data"]["id"] for e in sink.events} == alerts and len(alerts) == 2
     assert all(e["type"] == "alert.opened" for e in sink.events)
-

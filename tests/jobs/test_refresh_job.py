@@ -43,16 +43,30 @@ def ingest_some(tenant: Tenant, model: str) -> list[dict[str, Any]]:
 
 def assert_rollups_match_raw_rows(engine: Engine, model_id: int) -> None:
     """Every hour's whole-model rollup equals counts over its raw rows."""
-    raw = {r[0]: tuple(r[1:]) for r in rows(engine, """
+    raw = {
+        r[0]: tuple(r[1:])
+        for r in rows(
+            engine,
+            """
         SELECT hour, count(*), count(actual),
           sum(CASE WHEN predicted = '1' AND actual = '1' THEN 1 ELSE 0 END),
           sum(CASE WHEN predicted = '1' AND actual = '0' THEN 1 ELSE 0 END),
           sum(CASE WHEN predicted = '0' AND actual = '1' THEN 1 ELSE 0 END),
           sum(CASE WHEN predicted = '0' AND actual = '0' THEN 1 ELSE 0 END)
-        FROM predictions WHERE model_id = :m GROUP BY hour""", m=model_id)}
-    rolled = {r[0]: tuple(r[1:]) for r in rows(engine, """
+        FROM predictions WHERE model_id = :m GROUP BY hour""",
+            m=model_id,
+        )
+    }
+    rolled = {
+        r[0]: tuple(r[1:])
+        for r in rows(
+            engine,
+            """
         SELECT start, n_pred, n_labelled, tp, fp, fn, tn FROM rollups
-        WHERE model_id = :m AND level = 'h' AND seg_key = ''""", m=model_id)}
+        WHERE model_id = :m AND level = 'h' AND seg_key = ''""",
+            m=model_id,
+        )
+    }
     assert raw and rolled == raw
 
 
@@ -62,8 +76,9 @@ def test_the_scheduled_refresh_empties_the_dirty_buckets(
     model = create_model(tenant, engine)
     ingest_some(tenant, model.name)
     assert count(engine, "dirty_buckets", model.id) > 0
-    runner = JobRunner(engine=engine, settings=Settings(database_url=store_url,
-                                                        refresh_seconds=0.5))
+    runner = JobRunner(
+        engine=engine, settings=Settings(database_url=store_url, refresh_seconds=0.5)
+    )
     runner.start()
     try:
         assert wait_for(lambda: count(engine, "dirty_buckets", model.id) == 0)
@@ -90,9 +105,11 @@ def test_a_failing_step_stops_neither_the_others_nor_the_schedule(
         calls["after"] += 1
         return {"ok": True}
 
-    runner = JobRunner(engine=engine, settings=Settings(database_url=store_url,
-                                                        refresh_seconds=0.5),
-                       steps=[("broken", broken), ("refresh", refresh_step), ("after", after)])
+    runner = JobRunner(
+        engine=engine,
+        settings=Settings(database_url=store_url, refresh_seconds=0.5),
+        steps=[("broken", broken), ("refresh", refresh_step), ("after", after)],
+    )
     runner.start()
     try:
         assert wait_for(lambda: calls["broken"] >= 2 and calls["after"] >= 2)

@@ -32,8 +32,10 @@ from tests.conftest import (
     pg_url,
 )
 
-pytestmark = [pytest.mark.pg, pytest.mark.skipif("postgresql" not in STORES,
-                                                 reason="needs PostgreSQL")]
+pytestmark = [
+    pytest.mark.pg,
+    pytest.mark.skipif("postgresql" not in STORES, reason="needs PostgreSQL"),
+]
 TAKEOVER_SECONDS = 15.0  # leader poll every 2 s and a tick every 0.5 s; generous on 2 cores
 AUDIT = """
 CREATE TABLE refresh_audit (level text, start integer, seg_key text);
@@ -55,8 +57,9 @@ def database() -> Iterator[tuple[str, Engine, str]]:
             conn.exec_driver_sql(AUDIT)
         with transaction(make_sessionmaker(engine)) as session:
             project = keys.get_or_create_project(session=session, name="shop")
-            _, token = keys.create(session=session, project_id=project.id,
-                                   scopes=["admin", "ingest", "read"])
+            _, token = keys.create(
+                session=session, project_id=project.id, scopes=["admin", "ingest", "read"]
+            )
         yield url, engine, token
     finally:
         engine.dispose()
@@ -69,12 +72,21 @@ class Service:
     def __init__(self, url: str, workdir: Path, name: str) -> None:
         self.port = free_port()
         self.base = f"http://127.0.0.1:{self.port}"
-        env = {**os.environ, "BELATED_DATABASE_URL": url, "BELATED_REFRESH_SECONDS": "0.5",
-               "BELATED_JOBS": "true", "BELATED_HOST": "127.0.0.1"}
+        env = {
+            **os.environ,
+            "BELATED_DATABASE_URL": url,
+            "BELATED_REFRESH_SECONDS": "0.5",
+            "BELATED_JOBS": "true",
+            "BELATED_HOST": "127.0.0.1",
+        }
         self.log = open(workdir / f"{name}.log", "w")  # noqa: SIM115 (closed in stop)
         self.proc = subprocess.Popen(
             [str(REPO / ".venv/bin/belated"), "serve", "--port", str(self.port)],
-            env=env, cwd=workdir, stdout=self.log, stderr=subprocess.STDOUT)
+            env=env,
+            cwd=workdir,
+            stdout=self.log,
+            stderr=subprocess.STDOUT,
+        )
 
     def health(self) -> dict[str, Any] | None:
         """GET /healthz, or None while the process does not answer."""
@@ -119,15 +131,20 @@ def scalar(engine: Engine, sql: str, **params: Any) -> Any:
 def refreshes_per_hour(engine: Engine) -> dict[int, int]:
     """How many times each hour's whole-model rollup was written."""
     with engine.connect() as conn:
-        found = conn.execute(text("SELECT start, count(*) FROM refresh_audit"
-                                  " WHERE level = 'h' AND seg_key = '' GROUP BY start"))
+        found = conn.execute(
+            text(
+                "SELECT start, count(*) FROM refresh_audit"
+                " WHERE level = 'h' AND seg_key = '' GROUP BY start"
+            )
+        )
         return {int(h): int(n) for h, n in found}
 
 
 def post(service: Service, token: str, path: str, body: dict[str, Any]) -> dict[str, Any]:
     """POST with the token; must be a 2xx."""
-    r = httpx.post(f"{service.base}{path}", json=body, timeout=30,
-                   headers={"Authorization": f"Bearer {token}"})
+    r = httpx.post(
+        f"{service.base}{path}", json=body, timeout=30, headers={"Authorization": f"Bearer {token}"}
+    )
     assert r.is_success, r.text
     return r.json()
 
@@ -135,10 +152,19 @@ def post(service: Service, token: str, path: str, body: dict[str, Any]) -> dict[
 def rollups_match(engine: Engine) -> bool:
     """Every hour's rollup has the raw rows' prediction and label counts."""
     with engine.connect() as conn:
-        raw = set(conn.execute(text("SELECT hour, count(*), count(actual) FROM predictions"
-                                    " GROUP BY hour")).all())
-        rolled = set(conn.execute(text("SELECT start, n_pred, n_labelled FROM rollups"
-                                       " WHERE level = 'h' AND seg_key = ''")).all())
+        raw = set(
+            conn.execute(
+                text("SELECT hour, count(*), count(actual) FROM predictions GROUP BY hour")
+            ).all()
+        )
+        rolled = set(
+            conn.execute(
+                text(
+                    "SELECT start, n_pred, n_labelled FROM rollups"
+                    " WHERE level = 'h' AND seg_key = ''"
+                )
+            ).all()
+        )
     return bool(raw) and raw == rolled
 
 
@@ -153,8 +179,10 @@ def test_one_leader_refreshes_each_bucket_once_and_the_other_takes_over(
         for _ in range(10):  # and it stays that way
             assert sum(leaders(services)) == 1
             time.sleep(0.3)
-        locks = ("SELECT count(*) FROM pg_locks WHERE locktype = 'advisory' AND granted"
-                 " AND database = (SELECT oid FROM pg_database WHERE datname = current_database())")
+        locks = (
+            "SELECT count(*) FROM pg_locks WHERE locktype = 'advisory' AND granted"
+            " AND database = (SELECT oid FROM pg_database WHERE datname = current_database())"
+        )
         assert scalar(engine, locks) == 1
         leader, follower = services if leaders(services)[0] else services[::-1]
 
@@ -170,8 +198,12 @@ def test_one_leader_refreshes_each_bucket_once_and_the_other_takes_over(
         assert wait_for(lambda: scalar(engine, dirty) == 0, 20)
         assert wait_for(lambda: rollups_match(engine), 10)
         again = refreshes_per_hour(engine)
-        touched = {int(h) for h in scalar_list(engine, "SELECT DISTINCT hour FROM predictions"
-                                               " WHERE actual IS NOT NULL")}
+        touched = {
+            int(h)
+            for h in scalar_list(
+                engine, "SELECT DISTINCT hour FROM predictions WHERE actual IS NOT NULL"
+            )
+        }
         assert again == {h: 2 if h in touched else 1 for h in hours}
 
         leader.proc.send_signal(signal.SIGKILL)

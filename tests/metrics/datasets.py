@@ -92,9 +92,15 @@ class Scenario:
     def prediction_items(self, idx: np.ndarray | None = None) -> list[dict[str, Any]]:
         """POST bodies of the predictions (all, or the rows `idx`)."""
         rows = range(len(self.pids)) if idx is None else idx.tolist()
-        return [{"id": self.pids[i], "ts": stamp(at(self.ts[i])), "score": float(self.score[i]),
-                 "tags": {"region": str(self.region[i]), "channel": str(self.channel[i])}}
-                for i in rows]
+        return [
+            {
+                "id": self.pids[i],
+                "ts": stamp(at(self.ts[i])),
+                "score": float(self.score[i]),
+                "tags": {"region": str(self.region[i]), "channel": str(self.channel[i])},
+            }
+            for i in rows
+        ]
 
     def known(self, when: datetime, after: datetime | None = None) -> np.ndarray:
         """Rows whose outcome is known by `when` (and was not yet by `after`)."""
@@ -104,13 +110,16 @@ class Scenario:
             mask &= self.label_at > epoch(after)
         return mask
 
-    def label_items(self, mask: np.ndarray, actual: np.ndarray | None = None
-                    ) -> list[dict[str, Any]]:
+    def label_items(
+        self, mask: np.ndarray, actual: np.ndarray | None = None
+    ) -> list[dict[str, Any]]:
         """POST bodies of the labels of the rows in `mask`, in outcome-time order."""
         values = self.actual if actual is None else actual
         rows = sorted(np.flatnonzero(mask).tolist(), key=lambda i: self.label_at[i])
-        return [{"id": self.pids[i], "actual": str(int(values[i])),
-                 "ts": stamp(at(self.label_at[i]))} for i in rows]
+        return [
+            {"id": self.pids[i], "actual": str(int(values[i])), "ts": stamp(at(self.label_at[i]))}
+            for i in rows
+        ]
 
 
 @lru_cache(maxsize=1)
@@ -120,8 +129,7 @@ def _breast_cancer_scores() -> tuple[np.ndarray, np.ndarray]:
     return cross_fit(data.data[:, [1, 4, 8]], y, SEED)[:, 1], y
 
 
-def breast_cancer(seed: int = SEED, prefix: str = "bc", never: float = NEVER_SHARE
-                  ) -> Scenario:
+def breast_cancer(seed: int = SEED, prefix: str = "bc", never: float = NEVER_SHARE) -> Scenario:
     """The scored breast cancer rows spread over SPREAD_DAYS days with delayed outcomes;
     a share `never` of the outcomes is never reported."""
     score, y = _breast_cancer_scores()
@@ -142,7 +150,7 @@ def send(client: Any, model: str, kind: str, items: list[dict[str, Any]]) -> dic
     """POST items in batches; every answer must be a 200; the answers are summed."""
     total: dict[str, int] = {}
     for i in range(0, len(items), BATCH):
-        r = client.post(f"/v1/models/{model}/{kind}", json={kind: items[i:i + BATCH]})
+        r = client.post(f"/v1/models/{model}/{kind}", json={kind: items[i : i + BATCH]})
         assert r.status_code == 200, r.text
         for k, v in r.json().items():
             total[k] = total.get(k, 0) + v
@@ -185,8 +193,14 @@ def ingest(client: Any, model: str, sc: Scenario, when: datetime) -> None:
     send(client, model, "labels", sc.label_items(sc.known(when)))
 
 
-def settled(n: int, n_labelled: int, end: datetime, now: datetime, min_coverage: float,
-            label_delay_days: float) -> bool | None:
+def settled(
+    n: int,
+    n_labelled: int,
+    end: datetime,
+    now: datetime,
+    min_coverage: float,
+    label_delay_days: float,
+) -> bool | None:
     """DESIGN.md: closed, and coverage >= min_coverage or the end > label_delay_days ago.
 
     None for a closed empty window, whose coverage (0/0) the design leaves open."""
@@ -200,9 +214,14 @@ def settled(n: int, n_labelled: int, end: datetime, now: datetime, min_coverage:
 # --- the reference: scikit-learn on the rows of a window -------------------------------------
 
 
-def effective(sc: Scenario, when: datetime, *, actual: np.ndarray | None = None,
-              known: np.ndarray | None = None, negative_after_days: float | None = None
-              ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+def effective(
+    sc: Scenario,
+    when: datetime,
+    *,
+    actual: np.ndarray | None = None,
+    known: np.ndarray | None = None,
+    negative_after_days: float | None = None,
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """(labelled, y, implied) at `when`: the labels sent (default: all known by `when`),
     plus implied negatives when the model has `negative_after_days`."""
     y = (sc.actual if actual is None else actual).copy()
@@ -221,7 +240,9 @@ def same(measure: dict[str, Any], expected: float, rel: float = 1e-9) -> None:
     else:
         assert measure["value"] is not None, (measure, expected)
         assert abs(measure["value"] - expected) <= rel * max(1.0, abs(expected)), (
-            measure, expected)
+            measure,
+            expected,
+        )
 
 
 def auc_tie_bound(y: np.ndarray, bins: np.ndarray) -> float:
@@ -235,9 +256,16 @@ def auc_tie_bound(y: np.ndarray, bins: np.ndarray) -> float:
     return 0.5 * float(pos @ neg) / (pos.sum() * neg.sum())
 
 
-def check_window(window: dict[str, Any], sc: Scenario, rows: np.ndarray,
-                 labelled: np.ndarray, y: np.ndarray, implied: np.ndarray,
-                 beta: float = 1.0, full: bool = True) -> None:
+def check_window(
+    window: dict[str, Any],
+    sc: Scenario,
+    rows: np.ndarray,
+    labelled: np.ndarray,
+    y: np.ndarray,
+    implied: np.ndarray,
+    beta: float = 1.0,
+    full: bool = True,
+) -> None:
     """One binary window of the API against scikit-learn on the same rows.
 
     `full=False` checks counts, coverage, precision, recall and F-beta only (hourly ranges).
@@ -259,15 +287,24 @@ def check_window(window: dict[str, Any], sc: Scenario, rows: np.ndarray,
     same(m["positive_rate"], sc.predicted[rows].mean() if n else nan)
     if not len(yt):
         assert window["confusion"] == {"tp": 0, "fp": 0, "fn": 0, "tn": 0}
-        for name in ("precision", "recall", "fbeta", "accuracy", "brier", "log_loss",
-                     "roc_auc", "prevalence"):
+        for name in (
+            "precision",
+            "recall",
+            "fbeta",
+            "accuracy",
+            "brier",
+            "log_loss",
+            "roc_auc",
+            "prevalence",
+        ):
             same(m[name], nan)
         return
     tn, fp, fn, tp = skm.confusion_matrix(yt, yp, labels=[0, 1]).ravel().tolist()
     assert window["confusion"] == {"tp": tp, "fp": fp, "fn": fn, "tn": tn}
     # per class (0, 1): precision, recall, F-beta; class 0's are npv and specificity
     prec, rec, f, _ = skm.precision_recall_fscore_support(
-        yt, yp, labels=[0, 1], beta=beta, zero_division=np.nan)
+        yt, yp, labels=[0, 1], beta=beta, zero_division=np.nan
+    )
     same(m["precision"], prec[1])
     same(m["recall"], rec[1])
     same(m["fbeta"], f[1])
@@ -297,8 +334,14 @@ def check_window(window: dict[str, Any], sc: Scenario, rows: np.ndarray,
     same(m["ece"], ece)
 
 
-def _check_bounds(window: dict[str, Any], sc: Scenario, rows: np.ndarray,
-                  labelled: np.ndarray, y: np.ndarray, beta: float) -> None:
+def _check_bounds(
+    window: dict[str, Any],
+    sc: Scenario,
+    rows: np.ndarray,
+    labelled: np.ndarray,
+    y: np.ndarray,
+    beta: float,
+) -> None:
     """Worst-case bounds (Manski 1989, cited from memory) by imputing every missing label
     both ways, then scikit-learn on all rows of the window."""
     from sklearn import metrics as skm
@@ -312,6 +355,7 @@ def _check_bounds(window: dict[str, Any], sc: Scenario, rows: np.ndarray,
     bounds = window["bounds"]
     for side, imputed in (("low", worst), ("high", best)):
         prec, rec, f, _ = skm.precision_recall_fscore_support(
-            imputed, pred, labels=[1], beta=beta, zero_division=np.nan)
+            imputed, pred, labels=[1], beta=beta, zero_division=np.nan
+        )
         for name, value in (("precision", prec[0]), ("recall", rec[0]), ("fbeta", f[0])):
             same({"value": bounds[name][side], "reason": "-"}, value)

@@ -68,8 +68,12 @@ def spy(monkeypatch: pytest.MonkeyPatch) -> list[tuple[bool, int]]:
 
 
 def _marks(engine: Engine, model_id: int) -> dict[int, bool]:
-    return {int(h): bool(r) for h, r in rows(
-        engine, "SELECT hour, recompute FROM dirty_buckets WHERE model_id = :m", m=model_id)}
+    return {
+        int(h): bool(r)
+        for h, r in rows(
+            engine, "SELECT hour, recompute FROM dirty_buckets WHERE model_id = :m", m=model_id
+        )
+    }
 
 
 def _check_days(tenant: Tenant, model: str, sc: Any, *state: np.ndarray) -> None:
@@ -110,8 +114,14 @@ def test_labels_on_implied_negatives_and_corrections_fold_into_stored_hours(
     flipped = rng.choice(np.flatnonzero(known_t1), 25, replace=False)
     corrected = sc.actual.copy()
     corrected[flipped] = 1 - corrected[flipped]
-    fixes = [{"id": sc.pids[i], "actual": str(int(corrected[i])),
-              "ts": stamp(at(sc.label_at[i]) + timedelta(hours=2))} for i in flipped]
+    fixes = [
+        {
+            "id": sc.pids[i],
+            "actual": str(int(corrected[i])),
+            "ts": stamp(at(sc.label_at[i]) + timedelta(hours=2)),
+        }
+        for i in flipped
+    ]
     assert send(tenant.client, model.name, "labels", fixes)["corrected"] == len(flipped)
 
     marks = _marks(engine, model.id)
@@ -122,8 +132,9 @@ def test_labels_on_implied_negatives_and_corrections_fold_into_stored_hours(
     assert refresh.refresh_all(sessions, max_values=100, model_id=model.id) == len(touched)
     assert spy and all(changes for changes, _ in spy)  # folded, never aggregated from rows
     assert count(engine, "label_changes", model.id) == 0
-    _check_days(tenant, model.name, sc, *effective(sc, NOW, actual=corrected,
-                                                   negative_after_days=10))
+    _check_days(
+        tenant, model.name, sc, *effective(sc, NOW, actual=corrected, negative_after_days=10)
+    )
     folded = _rollups(engine, model.id)
     refresh.rebuild(sessions, max_values=100, model_id=model.id)
     assert_close(_without_cut(_rollups(engine, model.id)), _without_cut(folded))
@@ -147,8 +158,13 @@ def test_a_pending_label_joined_by_the_sweep_is_folded(
         for i in first:
             session.execute(
                 PendingLabel.__table__.insert().values(
-                    model_id=model.id, pid=sc.pids[i], actual=str(int(sc.actual[i])),
-                    ts=at(sc.label_at[i]), received_at=NOW))
+                    model_id=model.id,
+                    pid=sc.pids[i],
+                    actual=str(int(sc.actual[i])),
+                    ts=at(sc.label_at[i]),
+                    received_at=NOW,
+                )
+            )
     spy.clear()
     refresh.sweep(sessions)
     assert count(engine, "pending_labels", model.id) == 0
@@ -174,8 +190,14 @@ def test_an_hour_whose_segments_grew_since_is_aggregated_again(
         item["ts"] = stamp(RANGE[1] + timedelta(hours=k))
     send(tenant.client, model.name, "predictions", extra)
     refresh.refresh_all(sessions, max_values=100, model_id=model.id)
-    admitted = {v for (v,) in rows(engine, "SELECT value FROM segment_values WHERE model_id = :m"
-                                   " AND key = 'region'", m=model.id)}
+    admitted = {
+        v
+        for (v,) in rows(
+            engine,
+            "SELECT value FROM segment_values WHERE model_id = :m AND key = 'region'",
+            m=model.id,
+        )
+    }
     assert len(admitted) > 1
     spy.clear()
 
@@ -231,8 +253,9 @@ def test_an_old_implied_negative_is_judged_as_its_hour_counted_it(
             it["score"] = 0.42  # one histogram bin, kept non-empty by the later rows
         outcome = "1"
     else:
-        model = create_model(tenant, engine, kind="multiclass", classes=list(classes),
-                             negative_after_days=1)
+        model = create_model(
+            tenant, engine, kind="multiclass", classes=list(classes), negative_after_days=1
+        )
         items = predictions(3, base=hour0)
         for it in items:
             it.pop("score")
@@ -247,10 +270,10 @@ def test_an_old_implied_negative_is_judged_as_its_hour_counted_it(
         assert r.status_code == 200, r.text
     else:  # what an upgrade to revision 0003 leaves: hourly rows without their cutoff
         with engine.begin() as conn:
-            conn.execute(text("UPDATE rollups SET cut = NULL WHERE model_id = :m"),
-                         {"m": model.id})
-    r = tenant.client.post(f"/v1/models/{model.name}/labels",
-                           json={"labels": [label(items[0]["id"], outcome)]})
+            conn.execute(text("UPDATE rollups SET cut = NULL WHERE model_id = :m"), {"m": model.id})
+    r = tenant.client.post(
+        f"/v1/models/{model.name}/labels", json={"labels": [label(items[0]["id"], outcome)]}
+    )
     assert r.status_code == 200, r.text
     refresh.refresh_all(sessions, max_values=100, model_id=model.id)
     folded = _overall_hour(engine, model.id)

@@ -42,14 +42,22 @@ SETTINGS = {"label_delay_days": 14, "min_coverage": 0.8}
 RANGE = (START, START + timedelta(days=25))
 
 
-def check_days(tenant: Tenant, model: str, sc: Any, sent: np.ndarray, labelled: np.ndarray,
-               y: np.ndarray, implied: np.ndarray, full: bool = False
-               ) -> list[dict[str, Any]]:
+def check_days(
+    tenant: Tenant,
+    model: str,
+    sc: Any,
+    sent: np.ndarray,
+    labelled: np.ndarray,
+    y: np.ndarray,
+    implied: np.ndarray,
+    full: bool = False,
+) -> list[dict[str, Any]]:
     """Daily windows of RANGE against the reference on the rows sent so far."""
     answer = metrics(tenant.client, model, start=stamp(RANGE[0]), end=stamp(RANGE[1]))
     for w, s in zip(answer["windows"], window_starts("day", *RANGE), strict=True):
-        check_window(w, sc, sent & in_range(sc.ts, s, s + STEPS["day"]), labelled, y, implied,
-                     full=full)
+        check_window(
+            w, sc, sent & in_range(sc.ts, s, s + STEPS["day"]), labelled, y, implied, full=full
+        )
     return answer["windows"]
 
 
@@ -74,14 +82,22 @@ def test_late_labels_and_corrections_change_windows_correctly(
     late = sc.known(NOW, after=t1)
     answer = send(tenant.client, model.name, "labels", sc.label_items(late))
     assert answer["matched"] == int(late.sum())
-    fixes = [{"id": sc.pids[i], "actual": str(int(corrected[i])),
-              "ts": stamp(at(sc.label_at[i]) + timedelta(hours=1))} for i in flipped]
+    fixes = [
+        {
+            "id": sc.pids[i],
+            "actual": str(int(corrected[i])),
+            "ts": stamp(at(sc.label_at[i]) + timedelta(hours=1)),
+        }
+        for i in flipped
+    ]
     assert send(tenant.client, model.name, "labels", fixes)["corrected"] == len(flipped)
     everything = np.ones(len(sc.pids), bool)
-    second = check_days(tenant, model.name, sc, everything,
-                        *effective(sc, NOW, actual=corrected))
-    changed = [a["start"] for a, b in zip(first, second, strict=True)
-               if a["confusion"] != b["confusion"] and a["predictions"] == b["predictions"]]
+    second = check_days(tenant, model.name, sc, everything, *effective(sc, NOW, actual=corrected))
+    changed = [
+        a["start"]
+        for a, b in zip(first, second, strict=True)
+        if a["confusion"] != b["confusion"] and a["predictions"] == b["predictions"]
+    ]
     assert changed  # windows complete at t1 still changed: late labels and corrections
 
 
@@ -95,30 +111,44 @@ def test_predictions_crossing_negative_after_days_become_implied_negatives(
     send(tenant.client, model.name, "predictions", sc.prediction_items())
     known_t1 = sc.known(t1)
     send(tenant.client, model.name, "labels", sc.label_items(known_t1))
-    before = check_days(tenant, model.name, sc, np.ones(len(sc.pids), bool),
-                        *effective(sc, t1, negative_after_days=10))
+    before = check_days(
+        tenant,
+        model.name,
+        sc,
+        np.ones(len(sc.pids), bool),
+        *effective(sc, t1, negative_after_days=10),
+    )
     assert sum(w["implied_negatives"] for w in before) > 0
 
     clock.set(NOW)  # four days later, without any write: more rows cross the ten days
     refresh.sweep(sessions)  # the job's step that marks the hours that crossed
     everything = np.ones(len(sc.pids), bool)
-    after = check_days(tenant, model.name, sc, everything,
-                       *effective(sc, NOW, known=known_t1, negative_after_days=10))
-    assert sum(w["implied_negatives"] for w in after) > sum(
-        w["implied_negatives"] for w in before)
+    after = check_days(
+        tenant,
+        model.name,
+        sc,
+        everything,
+        *effective(sc, NOW, known=known_t1, negative_after_days=10),
+    )
+    assert sum(w["implied_negatives"] for w in after) > sum(w["implied_negatives"] for w in before)
 
     # explicit labels that arrive late replace the implied negatives they meet
     late = sc.known(NOW, after=t1)
     implied_then = effective(sc, NOW, known=known_t1, negative_after_days=10)[2]
     assert (late & implied_then & (sc.actual == 1)).any()
     send(tenant.client, model.name, "labels", sc.label_items(late))
-    check_days(tenant, model.name, sc, everything,
-               *effective(sc, NOW, negative_after_days=10), full=True)
+    check_days(
+        tenant, model.name, sc, everything, *effective(sc, NOW, negative_after_days=10), full=True
+    )
 
 
 def _dirty_hours(engine: Engine, model_id: int) -> dict[int, int]:
-    return {int(h): int(v) for h, v in rows(
-        engine, "SELECT hour, version FROM dirty_buckets WHERE model_id = :m", m=model_id)}
+    return {
+        int(h): int(v)
+        for h, v in rows(
+            engine, "SELECT hour, version FROM dirty_buckets WHERE model_id = :m", m=model_id
+        )
+    }
 
 
 def test_a_read_right_after_ingest_reflects_it_with_jobs_off(
@@ -145,16 +175,22 @@ def test_a_read_right_after_ingest_reflects_it_with_jobs_off(
     flipped = sc.actual.copy()
     flipped[i] = 1 - flipped[i]
     send(tenant.client, model.name, "labels", [{"id": sc.pids[i], "actual": str(flipped[i])}])
-    day = [s for s in window_starts("day", start, end) if in_range(sc.ts[i:i + 1], s,
-                                                                   s + STEPS["day"])[0]][0]
+    day = [
+        s
+        for s in window_starts("day", start, end)
+        if in_range(sc.ts[i : i + 1], s, s + STEPS["day"])[0]
+    ][0]
     w = metrics(tenant.client, model.name, start=stamp(day), end=stamp(day + STEPS["day"]))
-    check_window(w["windows"][0], sc, in_range(sc.ts, day, day + STEPS["day"]),
-                 *effective(sc, NOW, actual=flipped))
+    check_window(
+        w["windows"][0],
+        sc,
+        in_range(sc.ts, day, day + STEPS["day"]),
+        *effective(sc, NOW, actual=flipped),
+    )
 
 
 def test_a_mark_renewed_inside_the_refresh_keeps_it_dirty(
-    tenant: Tenant, engine: Engine, sessions: Any, frozen: None,
-    monkeypatch: pytest.MonkeyPatch
+    tenant: Tenant, engine: Engine, sessions: Any, frozen: None, monkeypatch: pytest.MonkeyPatch
 ) -> None:
     sc = breast_cancer()
     model = create_model(tenant, engine, **SETTINGS)
@@ -170,7 +206,7 @@ def test_a_mark_renewed_inside_the_refresh_keeps_it_dirty(
         return done
 
     monkeypatch.setattr(rollups, "refresh_hours", refresh_then_write)
-    batch = sorted(marks)[:refresh.BATCH_HOURS]  # one batch: the earliest hours
+    batch = sorted(marks)[: refresh.BATCH_HOURS]  # one batch: the earliest hours
     with transaction(sessions) as session:
         assert refresh.refresh_batch(session, max_values=100, model_id=model.id) == len(batch)
     left = _dirty_hours(engine, model.id)
@@ -179,8 +215,7 @@ def test_a_mark_renewed_inside_the_refresh_keeps_it_dirty(
 
 
 def test_a_write_during_a_refresh_keeps_its_mark_and_shows_next_read(
-    tenant: Tenant, engine: Engine, sessions: Any, frozen: None,
-    monkeypatch: pytest.MonkeyPatch
+    tenant: Tenant, engine: Engine, sessions: Any, frozen: None, monkeypatch: pytest.MonkeyPatch
 ) -> None:
     sc = breast_cancer()
     model = create_model(tenant, engine, **SETTINGS)
@@ -192,8 +227,9 @@ def test_a_write_during_a_refresh_keeps_its_mark_and_shows_next_read(
 
     def refresh_while_writing(**kwargs: Any) -> int:
         done = real(**kwargs)
-        thread = threading.Thread(target=send, args=(tenant.client, model.name,
-                                                     "predictions", [late]))
+        thread = threading.Thread(
+            target=send, args=(tenant.client, model.name, "predictions", [late])
+        )
         thread.start()
         time.sleep(1.0)
         assert thread.is_alive()  # the writer waits for the refresh's transaction
@@ -208,12 +244,19 @@ def test_a_write_during_a_refresh_keeps_its_mark_and_shows_next_read(
     assert not writer[0].is_alive()
     marks = _dirty_hours(engine, model.id)
     assert hour in marks  # the write's mark survived the refresh that ran beside it
-    assert sorted(marks)[1:] == sorted({int(t // 3600) for t in sc.ts})[refresh.BATCH_HOURS:]
+    assert sorted(marks)[1:] == sorted({int(t // 3600) for t in sc.ts})[refresh.BATCH_HOURS :]
     start = at(hour * 3600)
-    answer = metrics(tenant.client, model.name, granularity="hour", start=stamp(start),
-                     end=stamp(start + STEPS["hour"]))
-    assert answer["windows"][0]["predictions"] == int(
-        in_range(sc.ts, start, start + STEPS["hour"]).sum()) + 1
+    answer = metrics(
+        tenant.client,
+        model.name,
+        granularity="hour",
+        start=stamp(start),
+        end=stamp(start + STEPS["hour"]),
+    )
+    assert (
+        answer["windows"][0]["predictions"]
+        == int(in_range(sc.ts, start, start + STEPS["hour"]).sum()) + 1
+    )
     assert hour not in _dirty_hours(engine, model.id)
 
 
@@ -227,8 +270,11 @@ def leave_a_raced_label(engine: Engine, sessions: Any, store_url: str, model_id:
         # the label's transaction is open while the prediction's commits: neither sees
         # the other, so the label stays pending beside its prediction
         label_tx = sessions()
-        labels.ingest(session=label_tx, model_id=model_id,
-                      items=[LabelIn("raced-1", "1", RACED_TS + timedelta(hours=5))])
+        labels.ingest(
+            session=label_tx,
+            model_id=model_id,
+            items=[LabelIn("raced-1", "1", RACED_TS + timedelta(hours=5))],
+        )
         with transaction(sessions) as session:
             predictions.ingest(session=session, model_id=model_id, preds=[pred], batch_size=1)
         label_tx.commit()
@@ -239,18 +285,24 @@ def leave_a_raced_label(engine: Engine, sessions: Any, store_url: str, model_id:
         with transaction(sessions) as session:
             predictions.ingest(session=session, model_id=model_id, preds=[pred], batch_size=1)
         with engine.begin() as conn:
-            conn.execute(text("INSERT INTO pending_labels (model_id, pid, actual, ts,"
-                              " received_at) VALUES (:m, 'raced-1', '1', :t, :t)"),
-                         {"m": model_id, "t": RACED_TS + timedelta(hours=5)})
+            conn.execute(
+                text(
+                    "INSERT INTO pending_labels (model_id, pid, actual, ts,"
+                    " received_at) VALUES (:m, 'raced-1', '1', :t, :t)"
+                ),
+                {"m": model_id, "t": RACED_TS + timedelta(hours=5)},
+            )
     assert count(engine, "pending_labels", model_id) == 1
-    assert rows(engine, "SELECT actual FROM predictions WHERE model_id = :m",
-                m=model_id)[0][0] is None
+    assert (
+        rows(engine, "SELECT actual FROM predictions WHERE model_id = :m", m=model_id)[0][0] is None
+    )
 
 
 def _raced_day(tenant: Tenant, model: str) -> dict[str, Any]:
     day = RACED_TS.replace(hour=0, minute=0)
-    return metrics(tenant.client, model, start=stamp(day),
-                   end=stamp(day + STEPS["day"]))["windows"][0]
+    return metrics(tenant.client, model, start=stamp(day), end=stamp(day + STEPS["day"]))[
+        "windows"
+    ][0]
 
 
 def test_a_pending_label_left_by_a_concurrent_write_is_joined_by_the_sweep(
@@ -289,10 +341,16 @@ def test_a_read_counts_implied_negatives_as_of_its_own_time(
     send(tenant.client, model.name, "predictions", sc.prediction_items())
     known_t1 = sc.known(t1)
     send(tenant.client, model.name, "labels", sc.label_items(known_t1))
-    check_days(tenant, model.name, sc, np.ones(len(sc.pids), bool),
-               *effective(sc, t1, negative_after_days=10))
+    check_days(
+        tenant,
+        model.name,
+        sc,
+        np.ones(len(sc.pids), bool),
+        *effective(sc, t1, negative_after_days=10),
+    )
     clock.set(NOW)  # no write, no job: only time passes
-    windows = metrics(tenant.client, model.name, start=stamp(RANGE[0]),
-                      end=stamp(RANGE[1]))["windows"]
+    windows = metrics(tenant.client, model.name, start=stamp(RANGE[0]), end=stamp(RANGE[1]))[
+        "windows"
+    ]
     implied = effective(sc, NOW, known=known_t1, negative_after_days=10)[2]
     assert sum(w["implied_negatives"] for w in windows) == int(implied.sum())

@@ -51,8 +51,12 @@ BAD: list[tuple[str, dict[str, Any], str, str]] = [
     ("metrics", {"start": "last tuesday"}, "start", "RFC 3339"),
     ("metrics", {"start": D, "end": "whenever"}, "end", "RFC 3339"),
     ("metrics", {"end": "whenever"}, "end", "RFC 3339"),
-    ("metrics", {"granularity": "hour", "start": stamp(START - timedelta(days=500)),
-                 "end": D}, "end", "10000"),
+    (
+        "metrics",
+        {"granularity": "hour", "start": stamp(START - timedelta(days=500)), "end": D},
+        "end",
+        "10000",
+    ),
     ("metrics", {"beta": 0}, "beta", "positive"),
     ("metrics", {"beta": -1}, "beta", "positive"),
     ("metrics", {"beta": "inf"}, "beta", "finite"),
@@ -137,8 +141,14 @@ def wine(days: int = 8) -> Wine:
     n = len(data.target)
     ts = np.floor(epoch(START) + rng.uniform(0, days * 86400, n))
     classes = tuple(str(c) for c in data.target_names)
-    return Wine([f"wine-{i:03d}" for i in range(n)], ts, proba, data.target.copy(), classes,
-                rng.random(n) < 0.9)
+    return Wine(
+        [f"wine-{i:03d}" for i in range(n)],
+        ts,
+        proba,
+        data.target.copy(),
+        classes,
+        rng.random(n) < 0.9,
+    )
 
 
 def check_multiclass(window: dict[str, Any], w: Wine, rows: np.ndarray, beta: float) -> None:
@@ -163,25 +173,47 @@ def check_multiclass(window: dict[str, Any], w: Wine, rows: np.ndarray, beta: fl
             if np.isnan(per[i][c]):  # left out of the averages, and named there
                 assert cls in m[f"{name}_macro"]["reason"]
         for average in ("macro", "micro", "weighted"):
-            ref = precision_recall_fscore_support(yt, yp, labels=k, beta=beta,
-                                                  average=average, zero_division=np.nan)
+            ref = precision_recall_fscore_support(
+                yt, yp, labels=k, beta=beta, average=average, zero_division=np.nan
+            )
             same(m[f"{name}_{average}"], ref[i])
 
 
 def test_multiclass_windows_equal_sklearn(tenant: Tenant, engine: Engine, frozen: None) -> None:
     w = wine()
     model = create_model(tenant, engine, kind="multiclass", classes=list(w.classes))
-    items = [{"id": p, "ts": stamp(at(w.ts[i])),
-              "scores": {c: float(w.proba[i, k]) for k, c in enumerate(w.classes)}}
-             for i, p in enumerate(w.pids)]
+    items = [
+        {
+            "id": p,
+            "ts": stamp(at(w.ts[i])),
+            "scores": {c: float(w.proba[i, k]) for k, c in enumerate(w.classes)},
+        }
+        for i, p in enumerate(w.pids)
+    ]
     send(tenant.client, model.name, "predictions", items)
-    send(tenant.client, model.name, "labels", [
-        {"id": w.pids[i], "actual": w.classes[int(w.actual[i])], "ts": stamp(at(w.ts[i] + 7200))}
-        for i in np.flatnonzero(w.labelled)])
+    send(
+        tenant.client,
+        model.name,
+        "labels",
+        [
+            {
+                "id": w.pids[i],
+                "actual": w.classes[int(w.actual[i])],
+                "ts": stamp(at(w.ts[i] + 7200)),
+            }
+            for i in np.flatnonzero(w.labelled)
+        ],
+    )
     start, end = START - timedelta(days=1), START + timedelta(days=12)
     for granularity, beta in (("day", 1.0), ("day", 2.0), ("week", 1.0)):
-        answer = metrics(tenant.client, model.name, granularity=granularity, beta=beta,
-                         start=stamp(start), end=stamp(end))
+        answer = metrics(
+            tenant.client,
+            model.name,
+            granularity=granularity,
+            beta=beta,
+            start=stamp(start),
+            end=stamp(end),
+        )
         starts = window_starts(granularity, align(start, granularity), align(end, granularity))
         assert [x["start"] for x in answer["windows"]] == [stamp(s) for s in starts]
         for window, s in zip(answer["windows"], starts, strict=True):
@@ -193,8 +225,7 @@ def test_multiclass_windows_equal_sklearn(tenant: Tenant, engine: Engine, frozen
 def test_measures_filter_binary_windows(tenant: Tenant, engine: Engine, frozen: None) -> None:
     binary = create_model(tenant, engine)
     send(tenant.client, binary.name, "predictions", predictions(20, base=START))
-    answer = metrics(tenant.client, binary.name, measures="precision,recall", start=D,
-                     end=LATER)
+    answer = metrics(tenant.client, binary.name, measures="precision,recall", start=D, end=LATER)
     assert all(set(w["measures"]) == {"precision", "recall"} for w in answer["windows"])
 
 
@@ -204,8 +235,9 @@ def test_measures_filter_multiclass_windows(
 ) -> None:
     w = wine()
     multi = create_model(tenant, engine, kind="multiclass", classes=list(w.classes))
-    r = tenant.client.get(f"/v1/models/{multi.name}/metrics",
-                          params={"measures": wanted, "start": D, "end": LATER})
+    r = tenant.client.get(
+        f"/v1/models/{multi.name}/metrics", params={"measures": wanted, "start": D, "end": LATER}
+    )
     assert r.status_code == 200, r.text  # the multiclass measure names are measures too
     for window in r.json()["windows"]:
         assert set(window["measures"]) == set(wanted.split(",")), sorted(window["measures"])
@@ -219,8 +251,9 @@ def _interval(x: int, n: int, method: str, confidence: float) -> tuple[float, fl
         low = 0.0 if x == 0 else float(beta_dist.ppf(alpha / 2, x + 0.5, n - x + 0.5))
         high = 1.0 if x == n else float(beta_dist.ppf(1 - alpha / 2, x + 0.5, n - x + 0.5))
         return low, high
-    low, high = proportion_confint(x, n, alpha=alpha,
-                                   method="wilson" if method == "wilson" else "beta")
+    low, high = proportion_confint(
+        x, n, alpha=alpha, method="wilson" if method == "wilson" else "beta"
+    )
     return float(low), float(high)
 
 
@@ -232,9 +265,18 @@ def test_interval_and_confidence_reach_the_proportions(
     ingest(tenant.client, model.name, sc, NOW)
     start, end = START, START + timedelta(days=24)
     for method in ("wilson", "clopper-pearson", "jeffreys"):
-        _check_intervals(metrics(tenant.client, model.name, start=stamp(start), end=stamp(end),
-                                 interval=method, confidence=0.9, measures="precision,recall"),
-                         method)
+        _check_intervals(
+            metrics(
+                tenant.client,
+                model.name,
+                start=stamp(start),
+                end=stamp(end),
+                interval=method,
+                confidence=0.9,
+                measures="precision,recall",
+            ),
+            method,
+        )
 
 
 def _check_intervals(answer: dict[str, Any], method: str) -> None:
@@ -242,8 +284,10 @@ def _check_intervals(answer: dict[str, Any], method: str) -> None:
     checked = 0
     for w in answer["windows"]:
         c = w["confusion"]
-        for name, x, n in (("precision", c["tp"], c["tp"] + c["fp"]),
-                           ("recall", c["tp"], c["tp"] + c["fn"])):
+        for name, x, n in (
+            ("precision", c["tp"], c["tp"] + c["fp"]),
+            ("recall", c["tp"], c["tp"] + c["fn"]),
+        ):
             if n == 0:
                 continue
             low, high = _interval(x, n, method, 0.9)

@@ -39,15 +39,23 @@ from tests.metrics.datasets import (
 SETTINGS = {"label_delay_days": 14, "min_coverage": 0.8}
 
 
-def _settled_part(sc: object, mask: np.ndarray, labelled: np.ndarray, start: datetime,
-                  step: timedelta) -> bool | None:
+def _settled_part(
+    sc: object, mask: np.ndarray, labelled: np.ndarray, start: datetime, step: timedelta
+) -> bool | None:
     rows_ = mask & in_range(sc.ts, start, start + step)  # type: ignore[attr-defined]
-    return settled(int(rows_.sum()), int((rows_ & labelled).sum()), start + step, NOW,
-                   SETTINGS["min_coverage"], SETTINGS["label_delay_days"])
+    return settled(
+        int(rows_.sum()),
+        int((rows_ & labelled).sum()),
+        start + step,
+        NOW,
+        SETTINGS["min_coverage"],
+        SETTINGS["label_delay_days"],
+    )
 
 
-@pytest.mark.parametrize(("granularity", "n", "offset"),
-                         [("day", 3, 5), ("week", 2, 1), ("hour", 24, 24 * 6)])
+@pytest.mark.parametrize(
+    ("granularity", "n", "offset"), [("day", 3, 5), ("week", 2, 1), ("hour", 24, 24 * 6)]
+)
 def test_rolling_windows_equal_the_union_of_their_rows(
     tenant: Tenant, engine: Engine, frozen: None, granularity: str, n: int, offset: int
 ) -> None:
@@ -59,8 +67,14 @@ def test_rolling_windows_equal_the_union_of_their_rows(
     base = START if granularity != "week" else START - timedelta(days=START.weekday())
     start = base + offset * step  # the first windows reach back before `start`
     end = start + (40 if granularity == "hour" else 12) * step
-    answer = metrics(tenant.client, model.name, granularity=granularity, rolling=n,
-                     start=stamp(start), end=stamp(end))
+    answer = metrics(
+        tenant.client,
+        model.name,
+        granularity=granularity,
+        rolling=n,
+        start=stamp(start),
+        end=stamp(end),
+    )
     assert answer["rolling"] == n
     starts = window_starts(granularity, start, end)
     assert [w["start"] for w in answer["windows"]] == [stamp(s) for s in starts]
@@ -72,8 +86,7 @@ def test_rolling_windows_equal_the_union_of_their_rows(
         if None not in parts:
             assert w["settled"] is all(parts)
     # the first window holds rows from before `start`
-    assert answer["windows"][0]["predictions"] > int(
-        in_range(sc.ts, start, start + step).sum())
+    assert answer["windows"][0]["predictions"] > int(in_range(sc.ts, start, start + step).sum())
 
 
 def test_one_segment_from_rollups_equals_the_rows_with_that_tag(
@@ -84,30 +97,53 @@ def test_one_segment_from_rollups_equals_the_rows_with_that_tag(
     ingest(tenant.client, model.name, sc, NOW)
     labelled, y, implied = effective(sc, NOW)
     start, end = START, START + timedelta(days=25)
-    for key, value, tagged in (("region", "north", sc.region == "north"),
-                               ("region", "west", sc.region == "west"),
-                               ("channel", "app", sc.channel == "app")):
-        answer = metrics(tenant.client, model.name, granularity="day", start=stamp(start),
-                         end=stamp(end), segment=f"{key}:{value}")
+    for key, value, tagged in (
+        ("region", "north", sc.region == "north"),
+        ("region", "west", sc.region == "west"),
+        ("channel", "app", sc.channel == "app"),
+    ):
+        answer = metrics(
+            tenant.client,
+            model.name,
+            granularity="day",
+            start=stamp(start),
+            end=stamp(end),
+            segment=f"{key}:{value}",
+        )
         assert answer["segment"] == [f"{key}:{value}"]
         assert sum(w["predictions"] for w in answer["windows"]) == int(tagged.sum())
         for w, s in zip(answer["windows"], window_starts("day", start, end), strict=True):
-            check_window(w, sc, tagged & in_range(sc.ts, s, s + STEPS["day"]), labelled, y,
-                         implied)
+            check_window(w, sc, tagged & in_range(sc.ts, s, s + STEPS["day"]), labelled, y, implied)
             part = _settled_part(sc, tagged, labelled, s, STEPS["day"])
             if part is not None:  # a segment is settled by its own coverage
                 assert w["settled"] is part
         # the answer came from rollups: the segment has rollup rows of its own
-        assert rows(engine, "SELECT count(*) FROM rollups WHERE model_id = :m AND level = 'd'"
-                    " AND seg_key = :k AND seg_value = :v", m=model.id, k=key, v=value
-                    )[0][0] > 0
+        assert (
+            rows(
+                engine,
+                "SELECT count(*) FROM rollups WHERE model_id = :m AND level = 'd'"
+                " AND seg_key = :k AND seg_value = :v",
+                m=model.id,
+                k=key,
+                v=value,
+            )[0][0]
+            > 0
+        )
     north = sc.region == "north"
-    for granularity, rolling, lo, hi in (("day", 3, start, end),
-                                         ("hour", 6, START + timedelta(days=4),
-                                          START + timedelta(days=6))):
+    for granularity, rolling, lo, hi in (
+        ("day", 3, start, end),
+        ("hour", 6, START + timedelta(days=4), START + timedelta(days=6)),
+    ):
         step = STEPS[granularity]
-        answer = metrics(tenant.client, model.name, granularity=granularity, rolling=rolling,
-                         start=stamp(lo), end=stamp(hi), segment="region:north")
+        answer = metrics(
+            tenant.client,
+            model.name,
+            granularity=granularity,
+            rolling=rolling,
+            start=stamp(lo),
+            end=stamp(hi),
+            segment="region:north",
+        )
         for w, s in zip(answer["windows"], window_starts(granularity, lo, hi), strict=True):
             union = north & in_range(sc.ts, s - (rolling - 1) * step, s + step)
             check_window(w, sc, union, labelled, y, implied, full=granularity == "day")
@@ -123,19 +159,25 @@ def test_two_segments_at_once_equal_the_rows_with_both_tags(
     start, end = START, START + timedelta(days=25)
     both = (sc.region == "south") & (sc.channel == "web")
     for granularity, rolling in (("day", 1), ("week", 1), ("day", 2)):
-        answer = metrics(tenant.client, model.name, granularity=granularity, rolling=rolling,
-                         start=stamp(start), end=stamp(end),
-                         segment=["region:south", "channel:web"])
+        answer = metrics(
+            tenant.client,
+            model.name,
+            granularity=granularity,
+            rolling=rolling,
+            start=stamp(start),
+            end=stamp(end),
+            segment=["region:south", "channel:web"],
+        )
         step = STEPS[granularity]
-        aligned = window_starts(granularity, align(start, granularity),
-                                align(end, granularity))
+        aligned = window_starts(granularity, align(start, granularity), align(end, granularity))
         assert [w["start"] for w in answer["windows"]] == [stamp(s) for s in aligned]
         for w, s in zip(answer["windows"], aligned, strict=True):
             union = both & in_range(sc.ts, s - (rolling - 1) * step, s + step)
             check_window(w, sc, union, labelled, y, implied)
     # a tag value nobody carries: contiguous windows, all empty
-    answer = metrics(tenant.client, model.name, start=stamp(start), end=stamp(end),
-                     segment=["region:nowhere"])
+    answer = metrics(
+        tenant.client, model.name, start=stamp(start), end=stamp(end), segment=["region:nowhere"]
+    )
     assert len(answer["windows"]) == 25
     assert all(w["predictions"] == 0 for w in answer["windows"])
 
@@ -148,8 +190,9 @@ def test_values_over_the_cap_roll_up_as_other_and_still_answer_exactly(
     same choice."""
     from fastapi.testclient import TestClient
 
-    app = create_app(settings.model_copy(update={"max_segment_values": 2}), engine=engine,
-                     jobs=False)
+    app = create_app(
+        settings.model_copy(update={"max_segment_values": 2}), engine=engine, jobs=False
+    )
     with TestClient(app, base_url="http://testserver") as client:
         tenant = make_tenant(sessions, client)
         sc = breast_cancer()
@@ -158,22 +201,44 @@ def test_values_over_the_cap_roll_up_as_other_and_still_answer_exactly(
         labelled, y, implied = effective(sc, NOW)
         start, end = START, START + timedelta(days=25)
         for region in REGIONS:
-            answer = metrics(client, model.name, start=stamp(start), end=stamp(end),
-                             segment=f"region:{region}")
+            answer = metrics(
+                client, model.name, start=stamp(start), end=stamp(end), segment=f"region:{region}"
+            )
             tagged = sc.region == region
             for w, s in zip(answer["windows"], window_starts("day", start, end), strict=True):
-                check_window(w, sc, tagged & in_range(sc.ts, s, s + STEPS["day"]), labelled,
-                             y, implied, full=False)
-        admitted = {r[0] for r in rows(engine, "SELECT value FROM segment_values WHERE"
-                                       " model_id = :m AND key = 'region'", m=model.id)}
+                check_window(
+                    w,
+                    sc,
+                    tagged & in_range(sc.ts, s, s + STEPS["day"]),
+                    labelled,
+                    y,
+                    implied,
+                    full=False,
+                )
+        admitted = {
+            r[0]
+            for r in rows(
+                engine,
+                "SELECT value FROM segment_values WHERE model_id = :m AND key = 'region'",
+                m=model.id,
+            )
+        }
         assert len(admitted) == 2
         other = ~np.isin(sc.region, sorted(admitted))
-        before = rows(engine, "SELECT start, n_pred FROM rollups WHERE model_id = :m AND"
-                      " level = 'd' AND seg_key = 'region' AND seg_value = '(other)'"
-                      " ORDER BY start", m=model.id)
+        before = rows(
+            engine,
+            "SELECT start, n_pred FROM rollups WHERE model_id = :m AND"
+            " level = 'd' AND seg_key = 'region' AND seg_value = '(other)'"
+            " ORDER BY start",
+            m=model.id,
+        )
         assert sum(n for _, n in before) == int(other.sum())
         refresh.rebuild(sessions, max_values=2, model_id=model.id)
-        after = rows(engine, "SELECT start, n_pred FROM rollups WHERE model_id = :m AND"
-                     " level = 'd' AND seg_key = 'region' AND seg_value = '(other)'"
-                     " ORDER BY start", m=model.id)
+        after = rows(
+            engine,
+            "SELECT start, n_pred FROM rollups WHERE model_id = :m AND"
+            " level = 'd' AND seg_key = 'region' AND seg_value = '(other)'"
+            " ORDER BY start",
+            m=model.id,
+        )
         assert [tuple(r) for r in after] == [tuple(r) for r in before]

@@ -64,8 +64,16 @@ def test_sweep_rows_and_recommendations_equal_sklearn(
 def check_sweep(tenant: Tenant, model: str, sc: Any, beta: float) -> None:
     """One sweep against scikit-learn at every bin edge."""
     start, end = START + timedelta(days=2), START + timedelta(days=20, hours=5)
-    answer = _get(tenant, model, "thresholds", start=stamp(start), end=stamp(end),
-                  beta=beta, precision_target=0.7, recall_target=0.8)
+    answer = _get(
+        tenant,
+        model,
+        "thresholds",
+        start=stamp(start),
+        end=stamp(end),
+        beta=beta,
+        precision_target=0.7,
+        recall_target=0.8,
+    )
     lab = in_range(sc.ts, start, end) & sc.known(NOW)
     y, p = sc.actual[lab], sc.score[lab]
     bins = np.minimum((p * 100).astype(int), 99)
@@ -76,7 +84,8 @@ def check_sweep(tenant: Tenant, model: str, sc: Any, beta: float) -> None:
     for k, row in enumerate(rows):
         called = (bins >= k).astype(int)
         prec, rec, f, _ = precision_recall_fscore_support(
-            y, called, labels=[1], beta=beta, zero_division=np.nan)
+            y, called, labels=[1], beta=beta, zero_division=np.nan
+        )
         assert _close(row["precision"], prec[0]), (k, row, prec)
         assert _close(row["recall"], rec[0]), (k, row, rec)
         assert _close(row["fbeta"], f[0]), (k, row, f)
@@ -96,8 +105,9 @@ def check_sweep(tenant: Tenant, model: str, sc: Any, beta: float) -> None:
 
 
 def _bin(hours: np.ndarray) -> np.ndarray:
-    return np.minimum(np.searchsorted(EDGES, np.maximum(hours, 0.0), side="right") - 1,
-                      len(EDGES) - 2)
+    return np.minimum(
+        np.searchsorted(EDGES, np.maximum(hours, 0.0), side="right") - 1, len(EDGES) - 2
+    )
 
 
 def km_reference(delays_h: np.ndarray, ages_h: np.ndarray) -> dict[str, float | None]:
@@ -109,8 +119,10 @@ def km_reference(delays_h: np.ndarray, ages_h: np.ndarray) -> dict[str, float | 
     share = 1 - np.cumprod(1 - hazard)
     # statsmodels on the same data: times are the bins' upper edges (the open bin: far away)
     upper = np.where(np.isinf(EDGES[1:]), 1e9, EDGES[1:])
-    fit = SurvfuncRight(np.concatenate([upper[_bin(delays_h)], upper[_bin(ages_h)]]),
-                        np.concatenate([np.ones(len(delays_h)), np.zeros(len(ages_h))]))
+    fit = SurvfuncRight(
+        np.concatenate([upper[_bin(delays_h)], upper[_bin(ages_h)]]),
+        np.concatenate([np.ones(len(delays_h)), np.zeros(len(ages_h))]),
+    )
     out: dict[str, float | None] = {}
     for name, q in (("p50", 0.5), ("p90", 0.9), ("p99", 0.99)):
         hit = np.flatnonzero(share >= q - 1e-12)
@@ -150,16 +162,19 @@ def test_delay_quantiles_equal_kaplan_meier_with_censoring(
         end = when.replace(minute=0) + timedelta(hours=1)
         answer = _get(tenant, model.name, "delays", start=stamp(start), end=stamp(end))
         assert answer["unit"] == "hours"
-        expected = km_reference((sc.label_at[known] - sc.ts[known]) / 3600,
-                                (epoch(when) - sc.ts[rows & ~known]) / 3600)
+        expected = km_reference(
+            (sc.label_at[known] - sc.ts[known]) / 3600, (epoch(when) - sc.ts[rows & ~known]) / 3600
+        )
         assert expected["p50"] is not None
         assert start != START or expected["p90"] is not None  # the data reach p90 here
         assert answer["quantiles"] == expected
         assert all(v is None or v in EDGES for v in answer["quantiles"].values())
         age_days = np.floor((epoch(when) - sc.ts[rows]) / 86400).astype(int)
         labelled = sc.known(when)[rows]
-        by_age = {int(d): (int((age_days == d).sum()), int(labelled[age_days == d].sum()))
-                  for d in set(age_days)}
+        by_age = {
+            int(d): (int((age_days == d).sum()), int(labelled[age_days == d].sum()))
+            for d in set(age_days)
+        }
         got = {r["age_days"]: r for r in answer["coverage_by_age"]}
         assert sorted(got) == sorted(by_age)
         for d, (n, k) in by_age.items():

@@ -42,17 +42,27 @@ from tests.metrics.datasets import (
 SETTINGS = {"label_delay_days": 14, "min_coverage": 0.8}
 
 
-def check_range(answer: dict[str, Any], granularity: str, start: Any, end: Any,
-                sc: Any, labelled: np.ndarray, y: np.ndarray, implied: np.ndarray,
-                beta: float = 1.0, full: bool = True) -> None:
+def check_range(
+    answer: dict[str, Any],
+    granularity: str,
+    start: Any,
+    end: Any,
+    sc: Any,
+    labelled: np.ndarray,
+    y: np.ndarray,
+    implied: np.ndarray,
+    beta: float = 1.0,
+    full: bool = True,
+) -> None:
     """Windows contiguous over [start, end) and each equal to the reference."""
     starts = window_starts(granularity, start, end)
     windows = answer["windows"]
     assert [w["start"] for w in windows] == [stamp(s) for s in starts]
     assert [w["end"] for w in windows] == [stamp(s + STEPS[granularity]) for s in starts]
     for w, s in zip(windows, starts, strict=True):
-        check_window(w, sc, in_range(sc.ts, s, s + STEPS[granularity]), labelled, y,
-                     implied, beta, full)
+        check_window(
+            w, sc, in_range(sc.ts, s, s + STEPS[granularity]), labelled, y, implied, beta, full
+        )
 
 
 def test_daily_windows_equal_sklearn_with_both_spellings_of_beta(
@@ -63,13 +73,24 @@ def test_daily_windows_equal_sklearn_with_both_spellings_of_beta(
     ingest(tenant.client, model.name, sc, NOW)
     labelled, y, implied = effective(sc, NOW)
     start, end = START - timedelta(days=2), align(NOW, "day") + timedelta(days=1)
-    for params, beta in (({}, 1.0), ({"beta": 2}, 2.0), ({"precision_weight": 0.2}, 2.0),
-                         ({"beta": 0.5}, 0.5)):
-        answer = metrics(tenant.client, model.name, granularity="day", start=stamp(start),
-                         end=stamp(end), **params)
+    for params, beta in (
+        ({}, 1.0),
+        ({"beta": 2}, 2.0),
+        ({"precision_weight": 0.2}, 2.0),
+        ({"beta": 0.5}, 0.5),
+    ):
+        answer = metrics(
+            tenant.client,
+            model.name,
+            granularity="day",
+            start=stamp(start),
+            end=stamp(end),
+            **params,
+        )
         assert answer["beta"] == pytest.approx(beta, rel=1e-12)
-        check_range(answer, "day", start, end, sc, labelled, y, implied, beta,
-                    full=not params)  # the other measures do not depend on beta
+        check_range(
+            answer, "day", start, end, sc, labelled, y, implied, beta, full=not params
+        )  # the other measures do not depend on beta
     windows = answer["windows"]
     # contiguous windows include empty ones: two days before the data, the outage, the tail
     empty = [w for w in windows if w["predictions"] == 0]
@@ -82,9 +103,17 @@ def test_daily_windows_equal_sklearn_with_both_spellings_of_beta(
     # only the current window is open
     assert [w["closed"] for w in windows] == [True] * (len(windows) - 1) + [False]
     assert windows[-1]["start"] == stamp(align(NOW, "day"))
-    expected = [settled(w["predictions"], w["labelled"], START - timedelta(days=2)
-                        + timedelta(days=i + 1), NOW, SETTINGS["min_coverage"],
-                        SETTINGS["label_delay_days"]) for i, w in enumerate(windows)]
+    expected = [
+        settled(
+            w["predictions"],
+            w["labelled"],
+            START - timedelta(days=2) + timedelta(days=i + 1),
+            NOW,
+            SETTINGS["min_coverage"],
+            SETTINGS["label_delay_days"],
+        )
+        for i, w in enumerate(windows)
+    ]
     got = [w["settled"] for w in windows]
     for e, g in zip(expected, got, strict=True):
         if e is not None:
@@ -103,17 +132,20 @@ def test_hourly_and_iso_weekly_windows_equal_sklearn(
     labelled, y, implied = effective(sc, NOW)
     start, end = align(START, "week"), align(NOW, "week") + timedelta(days=7)
     assert start.weekday() == 0 and start < START  # the first ISO week starts before the data
-    weekly = metrics(tenant.client, model.name, granularity="week", start=stamp(START),
-                     end=stamp(NOW))  # both ends aligned down to Mondays
+    weekly = metrics(
+        tenant.client, model.name, granularity="week", start=stamp(START), end=stamp(NOW)
+    )  # both ends aligned down to Mondays
     check_range(weekly, "week", start, align(NOW, "week"), sc, labelled, y, implied)
-    weekly = metrics(tenant.client, model.name, granularity="week", start=stamp(start),
-                     end=stamp(end), beta=2)
+    weekly = metrics(
+        tenant.client, model.name, granularity="week", start=stamp(start), end=stamp(end), beta=2
+    )
     check_range(weekly, "week", start, end, sc, labelled, y, implied, beta=2.0)
     assert weekly["windows"][-1]["closed"] is False
     assert sum(w["predictions"] for w in weekly["windows"]) == len(sc.pids)
     hstart, hend = START - timedelta(hours=3), align(NOW, "hour") + timedelta(hours=1)
-    hourly = metrics(tenant.client, model.name, granularity="hour", start=stamp(hstart),
-                     end=stamp(hend))
+    hourly = metrics(
+        tenant.client, model.name, granularity="hour", start=stamp(hstart), end=stamp(hend)
+    )
     check_range(hourly, "hour", hstart, hend, sc, labelled, y, implied, full=False)
     assert [w["closed"] for w in hourly["windows"]].count(False) == 1
     assert hourly["windows"][-1]["closed"] is False
@@ -131,8 +163,9 @@ def test_default_range_ends_with_the_open_current_window(
         end = align(NOW, granularity) + STEPS[granularity]
         start = end - 30 * STEPS[granularity]
         assert len(answer["windows"]) == 30
-        check_range(answer, granularity, start, end, sc, labelled, y, implied,
-                    full=granularity != "hour")
+        check_range(
+            answer, granularity, start, end, sc, labelled, y, implied, full=granularity != "hour"
+        )
         assert answer["windows"][-1]["closed"] is False
         assert all(w["closed"] for w in answer["windows"][:-1])
 
@@ -173,9 +206,16 @@ def assert_close(a: Any, b: Any, path: str = "") -> None:
 
 def _answers(tenant: Tenant, model: str) -> list[dict[str, Any]]:
     start, end = stamp(START - timedelta(days=1)), stamp(NOW + timedelta(days=1))
-    return [metrics(tenant.client, model, granularity=g, start=start, end=end, **extra)
-            for g, extra in (("hour", {}), ("day", {}), ("week", {}),
-                             ("day", {"segment": "region:north"}), ("day", {"rolling": 3}))]
+    return [
+        metrics(tenant.client, model, granularity=g, start=start, end=end, **extra)
+        for g, extra in (
+            ("hour", {}),
+            ("day", {}),
+            ("week", {}),
+            ("day", {"segment": "region:north"}),
+            ("day", {"rolling": 3}),
+        )
+    ]
 
 
 def test_rebuild_from_raw_rows_equals_the_incremental_path(
@@ -200,17 +240,35 @@ def test_rebuild_from_raw_rows_equals_the_incremental_path(
 
     # the command line: first spoil a stored rollup, which the rebuild must put right
     with engine.begin() as conn:
-        conn.execute(text("UPDATE rollups SET tp = tp + 100, brier_sum = brier_sum * 3"
-                          " WHERE model_id = :m AND level = 'd'"), {"m": model.id})
+        conn.execute(
+            text(
+                "UPDATE rollups SET tp = tp + 100, brier_sum = brier_sum * 3"
+                " WHERE model_id = :m AND level = 'd'"
+            ),
+            {"m": model.id},
+        )
     env = {**os.environ, "BELATED_DATABASE_URL": store_url}
-    done = subprocess.run([str(REPO / ".venv/bin/belated"), "rebuild", "--model", model.name,
-                           "--project", tenant.name], env=env, cwd=REPO / "tests",
-                          capture_output=True, text=True, timeout=120)
+    done = subprocess.run(
+        [
+            str(REPO / ".venv/bin/belated"),
+            "rebuild",
+            "--model",
+            model.name,
+            "--project",
+            tenant.name,
+        ],
+        env=env,
+        cwd=REPO / "tests",
+        capture_output=True,
+        text=True,
+        timeout=120,
+    )
     assert done.returncode == 0, done.stderr
     assert "rebuilt" in done.stdout
     assert_close(_rollups(engine, model.id), incremental_rollups)
     assert_close(_answers(tenant, model.name), incremental)
     with engine.connect() as conn:
-        left = conn.execute(text("SELECT count(*) FROM dirty_buckets WHERE model_id = :m"),
-                            {"m": model.id}).scalar_one()
+        left = conn.execute(
+            text("SELECT count(*) FROM dirty_buckets WHERE model_id = :m"), {"m": model.id}
+        ).scalar_one()
     assert left == 0

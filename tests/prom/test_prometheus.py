@@ -31,8 +31,14 @@ def fed(tenant: Tenant, engine: Any, settings: Any) -> Any:
     assert made.status_code == 201
     rng = np.random.default_rng(5)
     for d in range(10):
-        preds, labels = day_rows(rng, datetime(2026, 11, 1, tzinfo=UTC) + timedelta(days=d),
-                                 positives=50, negatives=150, recall=0.8, prefix="o")
+        preds, labels = day_rows(
+            rng,
+            datetime(2026, 11, 1, tzinfo=UTC) + timedelta(days=d),
+            positives=50,
+            negatives=150,
+            recall=0.8,
+            prefix="o",
+        )
         send(c, "returns-v2", preds, labels)
     JobRunner(engine=engine, settings=settings).tick()
     yield tenant
@@ -50,7 +56,8 @@ def test_scrape_with_a_read_token_matches_the_metrics_api(fed: Tenant) -> None:
         got = samples[(f"belated_model_{measure}_ratio", labels)]
         assert got == pytest.approx(latest["measures"][measure]["value"], rel=1e-12)
     assert samples[("belated_model_label_coverage_ratio", labels)] == pytest.approx(
-        latest["coverage"])
+        latest["coverage"]
+    )
     assert samples[("belated_model_open_alerts", labels)] == 0
     assert samples[("belated_ingested_predictions_total", ())] >= 2000
 

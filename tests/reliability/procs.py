@@ -91,39 +91,53 @@ def make_store(kind: str, tmp_path: Path) -> Iterator[Store]:
 
 def belated(store: Store, *args: str, timeout: float = 300) -> str:
     """Run a `belated` command on the store to completion and return its stdout."""
-    done = subprocess.run([str(BELATED), *args], env=store.env(), text=True,
-                          capture_output=True, timeout=timeout, check=False)
+    done = subprocess.run(
+        [str(BELATED), *args],
+        env=store.env(),
+        text=True,
+        capture_output=True,
+        timeout=timeout,
+        check=False,
+    )
     assert done.returncode == 0, f"belated {' '.join(args)} failed:\n{done.stderr[-3000:]}"
     return done.stdout
 
 
 def create_token(store: Store, project: str = "furniture-shop") -> str:
     """A token of every scope, made by the CLI (it prints the token alone on its last line)."""
-    out = belated(store, "keys", "create", "--project", project, "--scopes",
-                  "ingest,read,admin")
+    out = belated(store, "keys", "create", "--project", project, "--scopes", "ingest,read,admin")
     return out.rstrip("\n").splitlines()[-1]
 
 
 class Service:
     """`belated serve` as a subprocess on a loopback port, with its log in `workdir`."""
 
-    def __init__(self, store: Store, workdir: Path, *, jobs: bool,
-                 refresh_seconds: float = 60.0, name: str = "service", wait: bool = True
-                 ) -> None:
+    def __init__(
+        self,
+        store: Store,
+        workdir: Path,
+        *,
+        jobs: bool,
+        refresh_seconds: float = 60.0,
+        name: str = "service",
+        wait: bool = True,
+    ) -> None:
         self.store = store
         self.port = free_port()
         self.url = f"http://127.0.0.1:{self.port}"
         self.log_path = workdir / f"{name}-{self.port}.log"
-        env = store.env(BELATED_JOBS="true" if jobs else "false",
-                        BELATED_REFRESH_SECONDS=str(refresh_seconds))
+        env = store.env(
+            BELATED_JOBS="true" if jobs else "false", BELATED_REFRESH_SECONDS=str(refresh_seconds)
+        )
         args = [str(BELATED), "serve", "--host", "127.0.0.1", "--port", str(self.port)]
         if not jobs:
             args.append("--no-jobs")
         workdir.mkdir(parents=True, exist_ok=True)
         self._log = self.log_path.open("ab")
         # cwd of its own: no stray .env or default SQLite file is read or left behind
-        self.proc = subprocess.Popen(args, cwd=workdir, env=env, stdout=self._log,
-                                     stderr=subprocess.STDOUT)
+        self.proc = subprocess.Popen(
+            args, cwd=workdir, env=env, stdout=self._log, stderr=subprocess.STDOUT
+        )
         if wait:
             self.wait_ready()
 
@@ -146,8 +160,9 @@ class Service:
 
     def client(self, token: str, timeout: float = 60.0) -> httpx.Client:
         """An HTTP client with the token."""
-        return httpx.Client(base_url=self.url, timeout=timeout,
-                            headers={"Authorization": f"Bearer {token}"})
+        return httpx.Client(
+            base_url=self.url, timeout=timeout, headers={"Authorization": f"Bearer {token}"}
+        )
 
     def kill(self) -> None:
         """SIGKILL: no shutdown code of the service runs."""
@@ -174,8 +189,12 @@ class Service:
 
 def create_model(url: str, token: str, name: str, **fields: Any) -> None:
     """POST /v1/models (binary, default threshold 0.5 unless told)."""
-    r = httpx.post(url + "/v1/models", json={"name": name, **fields}, timeout=30,
-                   headers={"Authorization": f"Bearer {token}"})
+    r = httpx.post(
+        url + "/v1/models",
+        json={"name": name, **fields},
+        timeout=30,
+        headers={"Authorization": f"Bearer {token}"},
+    )
     assert r.status_code == 201, r.text
 
 
@@ -196,26 +215,37 @@ def wait_until(condition: Callable[[], bool], seconds: float, step: float = 0.1)
 
 def raw_hours(store: Store, mid: int) -> dict[int, tuple[int, ...]]:
     """Per hour from raw prediction rows: predictions, labelled, tp, fp, fn, tn."""
-    return {r[0]: tuple(int(x) for x in r[1:]) for r in store.rows("""
+    return {
+        r[0]: tuple(int(x) for x in r[1:])
+        for r in store.rows(
+            """
         SELECT hour, count(*), count(actual),
           sum(CASE WHEN predicted = '1' AND actual = '1' THEN 1 ELSE 0 END),
           sum(CASE WHEN predicted = '1' AND actual = '0' THEN 1 ELSE 0 END),
           sum(CASE WHEN predicted = '0' AND actual = '1' THEN 1 ELSE 0 END),
           sum(CASE WHEN predicted = '0' AND actual = '0' THEN 1 ELSE 0 END)
-        FROM predictions WHERE model_id = ? GROUP BY hour""", mid)}
+        FROM predictions WHERE model_id = ? GROUP BY hour""",
+            mid,
+        )
+    }
 
 
 def rollup_hours(store: Store, mid: int) -> dict[int, tuple[int, ...]]:
     """The same figures from the whole-model hourly rollups."""
-    return {r[0]: tuple(int(x) for x in r[1:]) for r in store.rows("""
+    return {
+        r[0]: tuple(int(x) for x in r[1:])
+        for r in store.rows(
+            """
         SELECT start, n_pred, n_labelled, tp, fp, fn, tn FROM rollups
-        WHERE model_id = ? AND level = 'h' AND seg_key = ''""", mid)}
+        WHERE model_id = ? AND level = 'h' AND seg_key = ''""",
+            mid,
+        )
+    }
 
 
 def dirty_hours(store: Store, mid: int) -> set[int]:
     """The model's hours marked dirty."""
-    return {int(r[0]) for r in store.rows("SELECT hour FROM dirty_buckets WHERE model_id = ?",
-                                          mid)}
+    return {int(r[0]) for r in store.rows("SELECT hour FROM dirty_buckets WHERE model_id = ?", mid)}
 
 
 # ---- client processes: the concurrent writers of the load test and bench/load.py ----------
@@ -244,18 +274,22 @@ def prediction_item(plan: LoadPlan, k: int, j: int, i: int) -> dict[str, Any]:
     rng = random.Random(f"{k}/{j}/{i}")
     second = (plan.end_hour - plan.hours) * 3600 + rng.randrange(plan.hours * 3600)
     ts = datetime.fromtimestamp(second, UTC).isoformat().replace("+00:00", "Z")
-    return {"id": f"w{k}-{j:05d}-{i:03d}", "ts": ts, "score": rng.randrange(101) / 100,
-            "tags": {"channel": rng.choice(("web", "app", "store"))}}
+    return {
+        "id": f"w{k}-{j:05d}-{i:03d}",
+        "ts": ts,
+        "score": rng.randrange(101) / 100,
+        "tags": {"channel": rng.choice(("web", "app", "store"))},
+    }
 
 
 def writer(plan: LoadPlan, k: int, out: str) -> None:
     """One client process: send batches until the time is up, then dump its log as JSON."""
-    log: dict[str, Any] = {"preds": {}, "labels": [], "accepted": 0, "requests": [],
-                           "failures": []}
+    log: dict[str, Any] = {"preds": {}, "labels": [], "accepted": 0, "requests": [], "failures": []}
     lock = threading.Lock()
     seq = iter(range(10**9))
-    client = httpx.Client(base_url=plan.url, timeout=120,
-                          headers={"Authorization": f"Bearer {plan.token}"})
+    client = httpx.Client(
+        base_url=plan.url, timeout=120, headers={"Authorization": f"Bearer {plan.token}"}
+    )
 
     def post(kind: str, body: dict[str, Any]) -> dict[str, Any] | None:
         # every batch is sent until acknowledged, so the log says exactly what is stored
@@ -272,8 +306,9 @@ def writer(plan: LoadPlan, k: int, out: str) -> None:
                 continue
             wait = r.headers.get("retry-after")
             with lock:
-                log["requests"].append([kind, r.status_code, time.perf_counter() - t0,
-                                        wait is not None, n])
+                log["requests"].append(
+                    [kind, r.status_code, time.perf_counter() - t0, wait is not None, n]
+                )
             if r.is_success:
                 return dict(r.json())
             if r.status_code == 503 and wait is not None:
@@ -306,8 +341,11 @@ def writer(plan: LoadPlan, k: int, out: str) -> None:
         while time.monotonic() < deadline:
             rng = random.Random(f"step/{k}/{j}")
             preds = [prediction_item(plan, k, j, i) for i in range(plan.batch)]
-            labels = [{"id": p["id"], "actual": "1" if rng.random() < p["score"] else "0"}
-                      for p in preds if rng.random() < plan.label_share]
+            labels = [
+                {"id": p["id"], "actual": "1" if rng.random() < p["score"] else "0"}
+                for p in preds
+                if rng.random() < plan.label_share
+            ]
             mode = (j + k) % 4
             if mode == 0:  # labels first: they wait as pending until their predictions come
                 send_labels(labels)
@@ -323,8 +361,13 @@ def writer(plan: LoadPlan, k: int, out: str) -> None:
                 send_preds(preds)
                 send_labels(labels)
             if mode == 3:  # the outcome feed corrects some labels after the race
-                send_labels([{"id": x["id"], "actual": "0" if x["actual"] == "1" else "1"}
-                             for x in labels if rng.random() < plan.correction_share])
+                send_labels(
+                    [
+                        {"id": x["id"], "actual": "0" if x["actual"] == "1" else "1"}
+                        for x in labels
+                        if rng.random() < plan.correction_share
+                    ]
+                )
             j += 1
     client.close()
     log["batches"] = j

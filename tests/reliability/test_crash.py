@@ -46,10 +46,17 @@ def batch_items(j: int, end_hour: int, hours: int, size: int) -> list[dict[str, 
     for i in range(size):
         n = j * size + i
         second = (end_hour - hours + n % hours) * 3600 + (n * 7919) % 3600
-        out.append({"id": f"b{j:05d}-{i:04d}", "score": (n * 37 % 101) / 100,
-                    "ts": datetime.fromtimestamp(second, UTC).isoformat(),
-                    "tags": {"channel": ("web", "app", "store")[n % 3],
-                             "region": ("north", "south")[n % 2]}})
+        out.append(
+            {
+                "id": f"b{j:05d}-{i:04d}",
+                "score": (n * 37 % 101) / 100,
+                "ts": datetime.fromtimestamp(second, UTC).isoformat(),
+                "tags": {
+                    "channel": ("web", "app", "store")[n % 3],
+                    "region": ("north", "south")[n % 2],
+                },
+            }
+        )
     return out
 
 
@@ -69,8 +76,10 @@ class Stream:
         self.other: list[str] = []
         self.stop = threading.Event()
         self.lock = threading.Lock()
-        self.threads = [threading.Thread(target=self._run, args=(t, threads), daemon=True)
-                        for t in range(threads)]
+        self.threads = [
+            threading.Thread(target=self._run, args=(t, threads), daemon=True)
+            for t in range(threads)
+        ]
 
     def start(self) -> None:
         """Start sending."""
@@ -101,8 +110,9 @@ class Stream:
         return True
 
     def _run(self, t: int, step: int) -> None:
-        with httpx.Client(base_url=self.url, timeout=120,
-                          headers={"Authorization": f"Bearer {self.token}"}) as client:
+        with httpx.Client(
+            base_url=self.url, timeout=120, headers={"Authorization": f"Bearer {self.token}"}
+        ) as client:
             j = t
             while not self.stop.is_set():
                 items = batch_items(j, self.end_hour, 72, BATCH)
@@ -116,28 +126,42 @@ class Stream:
 
 def per_batch(store: Store, mid: int, table: str, column: str) -> dict[int, int]:
     """Rows per batch number (ids `b<j>-<i>`): all rows, or those with `column` set."""
-    return {int(r[0][1:]): int(r[1]) for r in store.rows(
-        f"SELECT substr(pid, 1, 6), count({column}) FROM {table} WHERE model_id = ?"
-        " GROUP BY substr(pid, 1, 6)", mid)}
+    return {
+        int(r[0][1:]): int(r[1])
+        for r in store.rows(
+            f"SELECT substr(pid, 1, 6), count({column}) FROM {table} WHERE model_id = ?"
+            " GROUP BY substr(pid, 1, 6)",
+            mid,
+        )
+    }
 
 
 def rollup_snapshot(store: Store, mid: int) -> dict[tuple[Any, ...], dict[str, Any]]:
     """Every rollup row of a model, histograms unpacked (belated.store.packing)."""
     cols = ", ".join(INT_COLUMNS + FLOAT_COLUMNS)
     out = {}
-    for r in store.rows(f"SELECT level, start, seg_key, seg_value, {cols}, hist, delays"
-                        " FROM rollups WHERE model_id = ?", mid):
+    for r in store.rows(
+        f"SELECT level, start, seg_key, seg_value, {cols}, hist, delays"
+        " FROM rollups WHERE model_id = ?",
+        mid,
+    ):
         hist, sums = unpack_hist(bytes(r[18]) if r[18] else None)
-        out[r[:4]] = {"ints": r[4:12], "floats": np.array(r[12:18], dtype=float),
-                      "hist": hist, "sums": sums,
-                      "delays": unpack_delays(bytes(r[19]) if r[19] else None)}
+        out[r[:4]] = {
+            "ints": r[4:12],
+            "floats": np.array(r[12:18], dtype=float),
+            "hist": hist,
+            "sums": sums,
+            "delays": unpack_delays(bytes(r[19]) if r[19] else None),
+        }
     return out
 
 
 def assert_same_rollups(got: dict[Any, Any], want: dict[Any, Any]) -> None:
     """Counts equal exactly, float sums to 1e-9 relative (DESIGN: summation order)."""
-    assert got.keys() == want.keys(), (sorted(got.keys() - want.keys())[:5],
-                                       sorted(want.keys() - got.keys())[:5])
+    assert got.keys() == want.keys(), (
+        sorted(got.keys() - want.keys())[:5],
+        sorted(want.keys() - got.keys())[:5],
+    )
     for key, a in got.items():
         b = want[key]
         assert a["ints"] == b["ints"], (key, a["ints"], b["ints"])
@@ -145,8 +169,10 @@ def assert_same_rollups(got: dict[Any, Any], want: dict[Any, Any]) -> None:
         assert np.array_equal(a["hist"], b["hist"]), key
         assert np.allclose(a["sums"], b["sums"], rtol=1e-9, atol=1e-12), key
         n = max(len(a["delays"]), len(b["delays"]))
-        assert np.array_equal(np.pad(a["delays"], (0, n - len(a["delays"]))),
-                              np.pad(b["delays"], (0, n - len(b["delays"])))), key
+        assert np.array_equal(
+            np.pad(a["delays"], (0, n - len(a["delays"]))),
+            np.pad(b["delays"], (0, n - len(b["delays"]))),
+        ), key
 
 
 def restart_and_finish(store: Store, tmp_path: Path, mid: int) -> None:
@@ -165,8 +191,7 @@ def restart_and_finish(store: Store, tmp_path: Path, mid: int) -> None:
 
 @pytest.mark.slow
 @pytest.mark.parametrize("kind", STORES)
-def test_sigkill_mid_ingest_keeps_every_acknowledged_batch_whole(kind: str,
-                                                                  tmp_path: Path) -> None:
+def test_sigkill_mid_ingest_keeps_every_acknowledged_batch_whole(kind: str, tmp_path: Path) -> None:
     with make_store(kind, tmp_path) as store:
         token = create_token(store)
         service = Service(store, tmp_path, jobs=False)
@@ -195,10 +220,12 @@ def test_sigkill_mid_ingest_keeps_every_acknowledged_batch_whole(kind: str,
         assert set(history) <= stream.sent["labels"]
         assert store.scalar("SELECT count(*) FROM pending_labels") == 0
         unanswered = stream.sent["predictions"] - stream.acked["predictions"]
-        print(f"\n{kind}: {len(stream.acked['predictions'])} prediction and "
-              f"{len(stream.acked['labels'])} label batches acknowledged; {stream.cut} requests "
-              f"cut; of {len(unanswered)} unanswered prediction batches "
-              f"{len(unanswered & set(preds))} were stored whole, the rest not at all")
+        print(
+            f"\n{kind}: {len(stream.acked['predictions'])} prediction and "
+            f"{len(stream.acked['labels'])} label batches acknowledged; {stream.cut} requests "
+            f"cut; of {len(unanswered)} unanswered prediction batches "
+            f"{len(unanswered & set(preds))} were stored whole, the rest not at all"
+        )
         # the marks of everything written survived the crash (nothing refreshed them)
         assert dirty_hours(store, mid) == set(raw_hours(store, mid))
         restart_and_finish(store, tmp_path, mid)
@@ -229,8 +256,7 @@ def test_sigkill_mid_refresh_loses_no_dirty_mark(kind: str, tmp_path: Path) -> N
         # jobs on: the first refresh starts as the process starts; kill once it is under way
         service = Service(store, tmp_path, jobs=True, refresh_seconds=0.5, wait=False)
         try:
-            seen = wait_until(lambda: 0 < len(dirty_hours(store, mid)) < backlog, 180,
-                              step=0.01)
+            seen = wait_until(lambda: 0 < len(dirty_hours(store, mid)) < backlog, 180, step=0.01)
             service.kill()
         finally:
             service.stop()

@@ -34,8 +34,9 @@ MODEL = "returns-leader"
 # room for a loaded machine.
 TAKEOVER_SECONDS = 15.0
 
-pytestmark = pytest.mark.skipif("postgresql" not in STORES,
-                                reason="BELATED_TEST_STORES leaves PostgreSQL out")
+pytestmark = pytest.mark.skipif(
+    "postgresql" not in STORES, reason="BELATED_TEST_STORES leaves PostgreSQL out"
+)
 
 
 def leaders(services: list[Service]) -> list[bool]:
@@ -45,19 +46,32 @@ def leaders(services: list[Service]) -> list[bool]:
 
 def advisory_locks(store: Store) -> int:
     """Granted advisory locks held by sessions on the test database."""
-    return int(store.scalar(
-        "SELECT count(*) FROM pg_locks l JOIN pg_database d ON d.oid = l.database"
-        " WHERE l.locktype = 'advisory' AND l.granted AND d.datname = ?", store.dbname))
+    return int(
+        store.scalar(
+            "SELECT count(*) FROM pg_locks l JOIN pg_database d ON d.oid = l.database"
+            " WHERE l.locktype = 'advisory' AND l.granted AND d.datname = ?",
+            store.dbname,
+        )
+    )
 
 
 def send(service: Service, token: str, start: int, n: int) -> None:
     """Post n predictions spread over the 48 hours before the current one."""
     end_hour = int(time.time() // 3600)
-    items = [{"id": f"order-{k}", "score": 0.7,
-              "ts": datetime.fromtimestamp((end_hour - 1 - k % 48) * 3600, UTC).isoformat()}
-             for k in range(start, start + n)]
-    r = httpx.post(f"{service.url}/v1/models/{MODEL}/predictions", timeout=60,
-                   json={"predictions": items}, headers={"Authorization": f"Bearer {token}"})
+    items = [
+        {
+            "id": f"order-{k}",
+            "score": 0.7,
+            "ts": datetime.fromtimestamp((end_hour - 1 - k % 48) * 3600, UTC).isoformat(),
+        }
+        for k in range(start, start + n)
+    ]
+    r = httpx.post(
+        f"{service.url}/v1/models/{MODEL}/predictions",
+        timeout=60,
+        json={"predictions": items},
+        headers={"Authorization": f"Bearer {token}"},
+    )
     assert r.status_code == 200, r.text
     assert r.json()["accepted"] == n
 
@@ -72,8 +86,9 @@ def rolled_up(store: Store, mid: int) -> int:
 def test_one_leader_and_the_other_takes_over_after_a_sigkill(tmp_path: Path) -> None:
     with make_store("postgresql", tmp_path) as store:
         token = create_token(store)
-        services = [Service(store, tmp_path, jobs=True, refresh_seconds=0.5, name=n)
-                    for n in ("a", "b")]
+        services = [
+            Service(store, tmp_path, jobs=True, refresh_seconds=0.5, name=n) for n in ("a", "b")
+        ]
         try:
             create_model(services[0].url, token, MODEL)
             mid = model_id(store, MODEL)
@@ -98,8 +113,10 @@ def test_one_leader_and_the_other_takes_over_after_a_sigkill(tmp_path: Path) -> 
             assert cleared is not None, f"new dirty buckets not cleared: {dirty_hours(store, mid)}"
             assert not dirty_hours(store, mid)
             assert advisory_locks(store) == 1
-            print(f"\nleader after {took:.1f} s; new marks cleared "
-                  f"{time.monotonic() - killed_at:.1f} s after the kill")
+            print(
+                f"\nleader after {took:.1f} s; new marks cleared "
+                f"{time.monotonic() - killed_at:.1f} s after the kill"
+            )
         finally:
             for s in services:
                 s.stop()

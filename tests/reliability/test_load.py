@@ -64,8 +64,9 @@ def expected(logs: list[dict[str, Any]]) -> tuple[dict[str, list[Any]], dict[str
     return preds, final
 
 
-def recount(preds: dict[str, list[Any]], final: dict[str, str],
-            hours_per_window: int) -> dict[int, tuple[int, ...]]:
+def recount(
+    preds: dict[str, list[Any]], final: dict[str, str], hours_per_window: int
+) -> dict[int, tuple[int, ...]]:
     """Per window start (epoch hour): predictions, labelled, tp, fp, fn, tn."""
     out: dict[int, list[int]] = defaultdict(lambda: [0] * 6)
     for pid, (ts, score) in preds.items():
@@ -77,25 +78,38 @@ def recount(preds: dict[str, list[Any]], final: dict[str, str],
             continue
         predicted = "1" if score >= 0.5 else "0"  # the model's default threshold 0.5
         row[1] += 1
-        row[2 + {("1", "1"): 0, ("1", "0"): 1, ("0", "1"): 2, ("0", "0"): 3}[
-            (predicted, actual)]] += 1
+        row[
+            2 + {("1", "1"): 0, ("1", "0"): 1, ("0", "1"): 2, ("0", "0"): 3}[(predicted, actual)]
+        ] += 1
     return {k: tuple(v) for k, v in out.items()}
 
 
-def api_windows(client: httpx.Client, granularity: str, start: int, end: int
-                ) -> dict[int, tuple[int, ...]]:
+def api_windows(
+    client: httpx.Client, granularity: str, start: int, end: int
+) -> dict[int, tuple[int, ...]]:
     """The API's windows (refreshed on read) as the same tuples, empty windows left out."""
-    r = client.get(f"/v1/models/{MODEL}/metrics", params={
-        "granularity": granularity, "measures": "precision,recall",
-        "start": datetime.fromtimestamp(start * 3600, UTC).isoformat(),
-        "end": datetime.fromtimestamp(end * 3600, UTC).isoformat()})
+    r = client.get(
+        f"/v1/models/{MODEL}/metrics",
+        params={
+            "granularity": granularity,
+            "measures": "precision,recall",
+            "start": datetime.fromtimestamp(start * 3600, UTC).isoformat(),
+            "end": datetime.fromtimestamp(end * 3600, UTC).isoformat(),
+        },
+    )
     assert r.status_code == 200, r.text
     out: dict[int, tuple[int, ...]] = {}
     for w in r.json()["windows"]:
         if w["predictions"]:
             c = w["confusion"]
-            out[hour_of(w["start"])] = (w["predictions"], w["labelled"], c["tp"], c["fp"],
-                                        c["fn"], c["tn"])
+            out[hour_of(w["start"])] = (
+                w["predictions"],
+                w["labelled"],
+                c["tp"],
+                c["fp"],
+                c["fn"],
+                c["tn"],
+            )
     return out
 
 
@@ -105,19 +119,26 @@ def check_statuses(logs: list[dict[str, Any]]) -> Counter[int]:
     for log in logs:
         statuses.update(status for _k, status, _s, _ra, _n in log["requests"])
         assert not log["failures"], log["failures"][:5]
-        bad = [(s, ra) for _k, s, _t, ra, _n in log["requests"]
-               if not 200 <= s < 300 and not (s == 503 and ra)]
+        bad = [
+            (s, ra)
+            for _k, s, _t, ra, _n in log["requests"]
+            if not 200 <= s < 300 and not (s == 503 and ra)
+        ]
         assert not bad, bad[:5]
     return statuses
 
 
 def stored_pids(store: Store, mid: int) -> dict[str, str | None]:
     """Every stored prediction id of the model with its label, read with SQL."""
-    twice = store.rows("SELECT pid, count(*) FROM predictions WHERE model_id = ?"
-                       " GROUP BY pid HAVING count(*) > 1", mid)
+    twice = store.rows(
+        "SELECT pid, count(*) FROM predictions WHERE model_id = ? GROUP BY pid HAVING count(*) > 1",
+        mid,
+    )
     assert not twice, f"ids stored more than once: {twice[:5]}"
-    return {r[0]: r[1] for r in store.rows(
-        "SELECT pid, actual FROM predictions WHERE model_id = ?", mid)}
+    return {
+        r[0]: r[1]
+        for r in store.rows("SELECT pid, actual FROM predictions WHERE model_id = ?", mid)
+    }
 
 
 def last_refresh(service: Service) -> datetime | None:
@@ -135,7 +156,8 @@ def wait_for_a_full_refresh(service: Service, seconds: float = 30) -> None:
     moment = datetime.now(UTC)
     for _ in range(2):  # runs never overlap (max_instances=1): the second began after now
         assert wait_until(ended_after(moment), seconds), (
-            f"no refresh ended within {seconds} s: {service.health()}")
+            f"no refresh ended within {seconds} s: {service.health()}"
+        )
         moment = last_refresh(service) or moment
 
 
@@ -159,30 +181,42 @@ class Run:
             for granularity, span in (("hour", 1), ("day", 24)):
                 got = api_windows(client, granularity, lo, hi)
                 want = recount(self.preds, self.final, span)
-                diff = {h: (got.get(h), want.get(h)) for h in got.keys() | want.keys()
-                        if got.get(h) != want.get(h)}
-                assert not diff, (f"{granularity} windows (API, recount) differ in {len(diff)}"
-                                  f" windows: {sorted(diff.items())[:4]}; stranded labels: "
-                                  f"{stranded(self.store, self.mid)}")
+                diff = {
+                    h: (got.get(h), want.get(h))
+                    for h in got.keys() | want.keys()
+                    if got.get(h) != want.get(h)
+                }
+                assert not diff, (
+                    f"{granularity} windows (API, recount) differ in {len(diff)}"
+                    f" windows: {sorted(diff.items())[:4]}; stranded labels: "
+                    f"{stranded(self.store, self.mid)}"
+                )
 
     def stored_labels_match_the_logs(self) -> None:
         """Each stored prediction carries its last acknowledged label, read with SQL."""
         stored = stored_pids(self.store, self.mid)
         wrong = {p: (v, self.final.get(p)) for p, v in stored.items() if v != self.final.get(p)}
-        assert not wrong, (f"{len(wrong)} of {len(stored)} stored labels (stored, last "
-                           f"acknowledged) differ: {sorted(wrong.items())[:5]}")
+        assert not wrong, (
+            f"{len(wrong)} of {len(stored)} stored labels (stored, last "
+            f"acknowledged) differ: {sorted(wrong.items())[:5]}"
+        )
 
 
 def stranded(store: Store, mid: int) -> int:
     """Pending labels whose prediction is stored (written in concurrent transactions)."""
-    return int(store.scalar(
-        "SELECT count(*) FROM pending_labels l JOIN predictions p ON p.model_id = l.model_id"
-        " AND p.pid = l.pid WHERE l.model_id = ?", mid))
+    return int(
+        store.scalar(
+            "SELECT count(*) FROM pending_labels l JOIN predictions p ON p.model_id = l.model_id"
+            " AND p.pid = l.pid WHERE l.model_id = ?",
+            mid,
+        )
+    )
 
 
 @contextmanager
-def load(kind: str, tmp_path: Path, *, jobs: bool, seconds: float, corrections: float
-         ) -> Iterator[Run]:
+def load(
+    kind: str, tmp_path: Path, *, jobs: bool, seconds: float, corrections: float
+) -> Iterator[Run]:
     """Run the eight writers against one service process and check the raw rows."""
     with make_store(kind, tmp_path) as store:
         token = create_token(store)
@@ -190,17 +224,24 @@ def load(kind: str, tmp_path: Path, *, jobs: bool, seconds: float, corrections: 
         try:
             create_model(service.url, token, MODEL)
             mid = model_id(store, MODEL)
-            plan = LoadPlan(url=service.url, token=token, model=MODEL, seconds=seconds,
-                            end_hour=int(datetime.now(UTC).timestamp() // 3600),
-                            correction_share=corrections)
+            plan = LoadPlan(
+                url=service.url,
+                token=token,
+                model=MODEL,
+                seconds=seconds,
+                end_hour=int(datetime.now(UTC).timestamp() // 3600),
+                correction_share=corrections,
+            )
             logs = run_writers(plan, tmp_path)
             statuses = check_statuses(logs)
             preds, final = expected(logs)
             # each writer goes through at least two of the four orders, so all four are used
             batches = [log["batches"] for log in logs]
             assert min(batches) >= 2, f"too little traffic to mean anything: {batches}"
-            print(f"\n{kind}: {len(preds)} predictions, {len(final)} labelled, statuses "
-                  f"{dict(statuses)}, stranded labels right after: {stranded(store, mid)}")
+            print(
+                f"\n{kind}: {len(preds)} predictions, {len(final)} labelled, statuses "
+                f"{dict(statuses)}, stranded labels right after: {stranded(store, mid)}"
+            )
             # raw rows: every acknowledged prediction once, and nothing that was not
             stored = stored_pids(store, mid)
             assert set(stored) == set(preds)

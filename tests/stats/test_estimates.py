@@ -110,8 +110,10 @@ def test_em_over_many_windows_equals_em_window_by_window() -> None:
     # shifted-prior simulation above, plus the undefined and boundary cases).
     from belated.stats.estimates import em_prior_many
 
-    windows = [_shifted_window(seed=20 + k, train_prior=0.3, window_prior=w)[0]
-               for k, w in enumerate((0.05, 0.1, 0.3, 0.5, 0.7))]
+    windows = [
+        _shifted_window(seed=20 + k, train_prior=0.3, window_prior=w)[0]
+        for k, w in enumerate((0.05, 0.1, 0.3, 0.5, 0.7))
+    ]
     hists = [s.hist_all for s in windows]
     sums = [s.ssum_all for s in windows]
     priors = [0.3, 0.3, 0.2, 0.6, 0.3]

@@ -26,7 +26,7 @@ def test_sparse_histograms_round_trip_exactly(filled: int) -> None:
     got_counts, got_sums = unpack_hist(blob)
     assert np.array_equal(got_counts, counts) and np.array_equal(got_sums, sums)
     delays = np.zeros(N_DELAY_BINS, np.int64)
-    delays[: filled] = np.arange(1, filled + 1)
+    delays[:filled] = np.arange(1, filled + 1)
     assert np.array_equal(unpack_delays(pack_delays(delays)), delays)
 
 

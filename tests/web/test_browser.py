@@ -32,7 +32,8 @@ WIDTHS = {"laptop": 1280, "phone": 390}
 
 # Skipped only where there is no browser at all; with chromium present, a missing driver fails.
 pytestmark = pytest.mark.skipif(
-    CHROMIUM is None, reason="chromium is not installed (apt-get install chromium chromium-driver)")
+    CHROMIUM is None, reason="chromium is not installed (apt-get install chromium chromium-driver)"
+)
 
 
 @pytest.fixture()
@@ -41,10 +42,19 @@ def browser(tmp_path: Path) -> Iterator[webdriver.Chrome]:
     assert CHROMEDRIVER, "chromium is here but chromedriver is not: apt-get install chromium-driver"
     options = webdriver.ChromeOptions()
     options.binary_location = str(CHROMIUM)
-    for flag in ("--headless=new", "--no-sandbox", "--disable-gpu", "--disable-quic",
-                 "--no-first-run", "--disable-background-networking",
-                 "--disable-component-update", "--disable-sync", "--disable-dev-shm-usage",
-                 f"--user-data-dir={tmp_path / 'profile'}", "--window-size=1280,900"):
+    for flag in (
+        "--headless=new",
+        "--no-sandbox",
+        "--disable-gpu",
+        "--disable-quic",
+        "--no-first-run",
+        "--disable-background-networking",
+        "--disable-component-update",
+        "--disable-sync",
+        "--disable-dev-shm-usage",
+        f"--user-data-dir={tmp_path / 'profile'}",
+        "--window-size=1280,900",
+    ):
         options.add_argument(flag)
     options.set_capability("goog:loggingPrefs", {"browser": "ALL"})
     driver = webdriver.Chrome(options=options, service=Service(executable_path=CHROMEDRIVER))
@@ -62,15 +72,22 @@ def console_errors(driver: webdriver.Chrome) -> list[dict[str, Any]]:
 
 def shoot(driver: webdriver.Chrome, folder: Path, name: str, width: int) -> Path:
     """A full-page screenshot at `width` CSS pixels (a phone width emulates a phone)."""
-    driver.execute_cdp_cmd("Emulation.setDeviceMetricsOverride", {
-        "width": width, "height": 900, "deviceScaleFactor": 1, "mobile": width < 600})
+    driver.execute_cdp_cmd(
+        "Emulation.setDeviceMetricsOverride",
+        {"width": width, "height": 900, "deviceScaleFactor": 1, "mobile": width < 600},
+    )
     driver.refresh()
     height = int(driver.execute_script("return document.documentElement.scrollHeight"))
     overflow = int(driver.execute_script("return document.documentElement.scrollWidth"))
     assert overflow <= width, f"{name} is {overflow}px wide on a {width}px screen"
-    shot = driver.execute_cdp_cmd("Page.captureScreenshot", {
-        "format": "png", "captureBeyondViewport": True,
-        "clip": {"x": 0, "y": 0, "width": width, "height": height, "scale": 1}})
+    shot = driver.execute_cdp_cmd(
+        "Page.captureScreenshot",
+        {
+            "format": "png",
+            "captureBeyondViewport": True,
+            "clip": {"x": 0, "y": 0, "width": width, "height": height, "scale": 1},
+        },
+    )
     path = folder / f"{name}-{width}.png"
     path.write_bytes(base64.b64decode(shot["data"]))
     assert path.stat().st_size > 10_000  # a page, not a blank
@@ -82,8 +99,9 @@ def count(driver: webdriver.Chrome, selector: str) -> int:
     return len(driver.find_elements(By.CSS_SELECTOR, selector))
 
 
-def test_every_page_renders_in_a_real_browser(live: LiveServer, sessions: Any, engine: Engine,
-                                              browser: webdriver.Chrome, tmp_path: Path) -> None:
+def test_every_page_renders_in_a_real_browser(
+    live: LiveServer, sessions: Any, engine: Engine, browser: webdriver.Chrome, tmp_path: Path
+) -> None:
     from belated.clock import clock
 
     clock.set(NOW)  # the server runs in this process and reads the same clock
@@ -98,8 +116,9 @@ def test_every_page_renders_in_a_real_browser(live: LiveServer, sessions: Any, e
         clock.set(None)
 
 
-def check_pages(driver: webdriver.Chrome, url: str, token: str, name: str, orders: list[Any],
-                tmp_path: Path) -> None:
+def check_pages(
+    driver: webdriver.Chrome, url: str, token: str, name: str, orders: list[Any], tmp_path: Path
+) -> None:
     """Sign in through the form, then load and check each page."""
     shots = tmp_path / "screens"
     shots.mkdir()
@@ -110,18 +129,23 @@ def check_pages(driver: webdriver.Chrome, url: str, token: str, name: str, order
     driver.find_element(By.ID, "token").send_keys("blt_wrong")
     driver.find_element(By.CSS_SELECTOR, "form[action='/signin'] button").click()
     error = WebDriverWait(driver, 20).until(
-        ec.presence_of_element_located((By.CSS_SELECTOR, ".error")))
+        ec.presence_of_element_located((By.CSS_SELECTOR, ".error"))
+    )
     assert "not one this service knows" in error.text
     # the browser logs the refused sign-in's 401 as a failed load, and nothing else
-    assert all(e["source"] == "network" and "/signin" in e["message"] and "401" in e["message"]
-               for e in console_errors(driver))
+    assert all(
+        e["source"] == "network" and "/signin" in e["message"] and "401" in e["message"]
+        for e in console_errors(driver)
+    )
     driver.find_element(By.ID, "token").send_keys(token)
     driver.find_element(By.CSS_SELECTOR, "form[action='/signin'] button").click()
     WebDriverWait(driver, 20).until(ec.url_to_be(url + "/"))
     assert driver.title == "Models · belated"
     assert driver.find_element(By.CSS_SELECTOR, f"[data-model='{name}'] h2").text == name
-    assert driver.find_element(
-        By.CSS_SELECTOR, f"[data-model='{name}'] [data-open-alerts]").text == "1 open alert"
+    assert (
+        driver.find_element(By.CSS_SELECTOR, f"[data-model='{name}'] [data-open-alerts]").text
+        == "1 open alert"
+    )
     assert console_errors(driver) == []
     for width in WIDTHS.values():
         shoot(driver, shots, "models", width)

@@ -19,18 +19,29 @@ def parse(markup: str) -> ET.Element:
 
 def with_class(root: ET.Element, name: str, tag: str | None = None) -> list[ET.Element]:
     """Elements whose class list holds `name` (optionally of one tag)."""
-    return [e for e in root.iter() if name in (e.get("class") or "").split()
-            and (tag is None or e.tag == tag)]
+    return [
+        e
+        for e in root.iter()
+        if name in (e.get("class") or "").split() and (tag is None or e.tag == tag)
+    ]
 
 
-def series(values: list[float | None], settled: list[bool] | None = None,
-           width: float = 0.1) -> list[Point]:
+def series(
+    values: list[float | None], settled: list[bool] | None = None, width: float = 0.1
+) -> list[Point]:
     """Points on consecutive days, each with an interval of +-width around its value."""
     settled = settled or [True] * len(values)
-    return [Point(key=f"2026-03-{i + 1:02d}T00:00:00Z", label=f"{i + 1:02d} Mar", value=v,
-                  low=None if v is None else max(0.0, v - width),
-                  high=None if v is None else min(1.0, v + width), settled=s)
-            for i, (v, s) in enumerate(zip(values, settled, strict=True))]
+    return [
+        Point(
+            key=f"2026-03-{i + 1:02d}T00:00:00Z",
+            label=f"{i + 1:02d} Mar",
+            value=v,
+            low=None if v is None else max(0.0, v - width),
+            high=None if v is None else min(1.0, v + width),
+            settled=s,
+        )
+        for i, (v, s) in enumerate(zip(values, settled, strict=True))
+    ]
 
 
 def test_one_point_per_defined_value_and_a_gap_for_each_undefined_one() -> None:
@@ -40,8 +51,7 @@ def test_one_point_per_defined_value_and_a_gap_for_each_undefined_one() -> None:
     assert len(pts) == 4
     assert [float(p.get("data-value", "nan")) for p in pts] == [0.5, 0.7, 0.8, 0.6]
     gaps = with_class(root, "gap")
-    assert [g.get("data-window") for g in gaps] == ["2026-03-02T00:00:00Z",
-                                                     "2026-03-05T00:00:00Z"]
+    assert [g.get("data-window") for g in gaps] == ["2026-03-02T00:00:00Z", "2026-03-05T00:00:00Z"]
 
 
 def test_the_line_never_crosses_a_gap() -> None:
@@ -86,8 +96,11 @@ def test_higher_values_sit_higher() -> None:
 
 
 def test_settled_and_provisional_points_differ_and_provisional_windows_are_hatched() -> None:
-    root = parse(charts.line_chart(series([0.5, 0.6, 0.7, 0.8], [True, True, False, False]),
-                                   title="P", chart_id="p"))
+    root = parse(
+        charts.line_chart(
+            series([0.5, 0.6, 0.7, 0.8], [True, True, False, False]), title="P", chart_id="p"
+        )
+    )
     pts = with_class(root, "pt")
     assert [p.get("data-settled") for p in pts] == ["true", "true", "false", "false"]
     assert [("prov" in (p.get("class") or "")) for p in pts] == [False, False, True, True]
@@ -125,10 +138,16 @@ def test_nice_domain_covers_the_values_inside_zero_and_one() -> None:
 
 def test_bars_count_gaps_hatching_and_reference() -> None:
     values = [1.0, 0.95, None, 0.4]
-    points = [Point(key=str(i), label=str(i), value=v, settled=i < 2)
-              for i, v in enumerate(values)]
-    root = parse(charts.bar_chart(points, title="Coverage", chart_id="cov", reference=0.9,
-                                  reference_label="settles at 90%"))
+    points = [Point(key=str(i), label=str(i), value=v, settled=i < 2) for i, v in enumerate(values)]
+    root = parse(
+        charts.bar_chart(
+            points,
+            title="Coverage",
+            chart_id="cov",
+            reference=0.9,
+            reference_label="settles at 90%",
+        )
+    )
     bars = with_class(root, "pt", "rect")
     assert [float(b.get("data-value", "nan")) for b in bars] == [1.0, 0.95, 0.4]
     assert "hatch" in (bars[2].get("style") or "") and bars[0].get("style") is None
@@ -141,8 +160,10 @@ def test_bars_count_gaps_hatching_and_reference() -> None:
 
 
 def test_strip_chart_has_hollow_estimate_markers_only() -> None:
-    rows = [("estimated precision", series([0.6, None, 0.7])),
-            ("estimated recall", series([0.5, 0.55, None]))]
+    rows = [
+        ("estimated precision", series([0.6, None, 0.7])),
+        ("estimated recall", series([0.5, 0.55, None])),
+    ]
     root = parse(charts.strip_chart(rows, title="Label-free estimates", chart_id="est"))
     pts = with_class(root, "pt")
     assert len(pts) == 4 and all("est" in (p.get("class") or "") for p in pts)
@@ -151,10 +172,24 @@ def test_strip_chart_has_hollow_estimate_markers_only() -> None:
 
 
 def test_sweep_marks_the_best_threshold() -> None:
-    rows = [{"threshold": k / 100, "precision": None if k > 90 else 0.5 + k / 200,
-             "recall": 1 - k / 100} for k in range(100)]
-    root = parse(charts.sweep_chart(rows, title="Sweep", chart_id="sweep", best=0.42,
-                                    best_label="best F1 at 0.42", current=0.5))
+    rows = [
+        {
+            "threshold": k / 100,
+            "precision": None if k > 90 else 0.5 + k / 200,
+            "recall": 1 - k / 100,
+        }
+        for k in range(100)
+    ]
+    root = parse(
+        charts.sweep_chart(
+            rows,
+            title="Sweep",
+            chart_id="sweep",
+            best=0.42,
+            best_label="best F1 at 0.42",
+            current=0.5,
+        )
+    )
     precision = [e for e in root.iter() if e.get("data-series") == "precision"][0]
     recall = [e for e in root.iter() if e.get("data-series") == "recall"][0]
     assert len(with_class(precision, "pt")) == 91 and len(with_class(recall, "pt")) == 100

@@ -73,22 +73,38 @@ def shop_orders() -> list[Order]:
 
 def send_shop(tenant: Any, engine: Engine, orders: list[Order]) -> str:
     """Create the returns model and send the orders and the outcomes known by NOW."""
-    model = create_model(tenant, engine, label_delay_days=LABEL_DELAY_DAYS,
-                         min_coverage=MIN_COVERAGE)
+    model = create_model(
+        tenant, engine, label_delay_days=LABEL_DELAY_DAYS, min_coverage=MIN_COVERAGE
+    )
     http, ingest = tenant.client, tenant.headers("ingest")
-    r = http.post(f"/v1/models/{model.name}/predictions", headers=ingest, json={"predictions": [
-        {"id": o.id, "ts": stamp(o.ts), "score": o.score} for o in orders]})
+    r = http.post(
+        f"/v1/models/{model.name}/predictions",
+        headers=ingest,
+        json={"predictions": [{"id": o.id, "ts": stamp(o.ts), "score": o.score} for o in orders]},
+    )
     assert r.status_code == 200, r.text
-    r = http.post(f"/v1/models/{model.name}/labels", headers=ingest, json={"labels": [
-        {"id": o.id, "actual": o.actual, "ts": stamp(o.label_at)} for o in orders if o.label_at]})
+    r = http.post(
+        f"/v1/models/{model.name}/labels",
+        headers=ingest,
+        json={
+            "labels": [
+                {"id": o.id, "actual": o.actual, "ts": stamp(o.label_at)}
+                for o in orders
+                if o.label_at
+            ]
+        },
+    )
     assert r.status_code == 200, r.text
     return model.name
 
 
 def raise_alert(tenant: Any, sessions: Any, name: str) -> str:
     """A precision floor no day meets, evaluated once at NOW; returns the rule id."""
-    r = tenant.client.post(f"/v1/models/{name}/rules", headers=tenant.headers("admin"), json={
-        "kind": "floor", "measure": "precision", "threshold": 0.99, "min_support": 1})
+    r = tenant.client.post(
+        f"/v1/models/{name}/rules",
+        headers=tenant.headers("admin"),
+        json={"kind": "floor", "measure": "precision", "threshold": 0.99, "min_support": 1},
+    )
     assert r.status_code == 201, r.text
     with transaction(sessions) as session:
         rule = session.get(Rule, r.json()["id"])
@@ -105,8 +121,11 @@ def chart(html: str, chart_id: str) -> ET.Element:
 
 def points(root: ET.Element, tag: str | None = None) -> list[ET.Element]:
     """The point elements of a chart."""
-    return [e for e in root.iter() if "pt" in (e.get("class") or "").split()
-            and (tag is None or e.tag == tag)]
+    return [
+        e
+        for e in root.iter()
+        if "pt" in (e.get("class") or "").split() and (tag is None or e.tag == tag)
+    ]
 
 
 def by_day(orders: list[Order]) -> dict[int, list[Order]]:
@@ -133,8 +152,9 @@ def browser_client(tenant: Any) -> Any:
     return tenant.client
 
 
-def test_without_a_token_every_page_redirects_to_the_sign_in_form(tenant: Any,
-                                                                   browser_client: Any) -> None:
+def test_without_a_token_every_page_redirects_to_the_sign_in_form(
+    tenant: Any, browser_client: Any
+) -> None:
     for path in ("/", "/models/returns-v2", "/alerts?state=open"):
         r = browser_client.get(path, follow_redirects=False)
         assert r.status_code == 303, path
@@ -145,10 +165,12 @@ def test_without_a_token_every_page_redirects_to_the_sign_in_form(tenant: Any,
 
 
 def test_sign_in_sets_a_strict_http_only_cookie_and_the_pages_open(
-        tenant: Any, browser_client: Any, engine: Engine) -> None:
+    tenant: Any, browser_client: Any, engine: Engine
+) -> None:
     name = create_model(tenant, engine).name
-    r = browser_client.post("/signin", data={"token": tenant.tokens["read"], "next": "/"},
-                            follow_redirects=False)
+    r = browser_client.post(
+        "/signin", data={"token": tenant.tokens["read"], "next": "/"}, follow_redirects=False
+    )
     assert r.status_code == 303 and r.headers["location"] == "/"
     cookie = r.headers["set-cookie"].lower()
     assert "belated_token=" in cookie and "httponly" in cookie and "samesite=strict" in cookie
@@ -163,17 +185,22 @@ def test_sign_in_sets_a_strict_http_only_cookie_and_the_pages_open(
 
 
 def test_sign_in_over_https_marks_the_cookie_secure(tenant: Any, browser_client: Any) -> None:
-    r = browser_client.post("https://testserver/signin", follow_redirects=False,
-                            data={"token": tenant.tokens["read"], "next": "/alerts"})
+    r = browser_client.post(
+        "https://testserver/signin",
+        follow_redirects=False,
+        data={"token": tenant.tokens["read"], "next": "/alerts"},
+    )
     assert r.status_code == 303 and r.headers["location"] == "/alerts"
     assert "secure" in r.headers["set-cookie"].lower()
 
 
-def test_a_wrong_token_shows_the_form_again_with_an_error(tenant: Any, browser_client: Any,
-                                                          engine: Engine) -> None:
+def test_a_wrong_token_shows_the_form_again_with_an_error(
+    tenant: Any, browser_client: Any, engine: Engine
+) -> None:
     before = rows(engine, "SELECT count(*) FROM tokens")[0][0]
-    r = browser_client.post("/signin", data={"token": "blt_not-a-token", "next": "/"},
-                            follow_redirects=False)
+    r = browser_client.post(
+        "/signin", data={"token": "blt_not-a-token", "next": "/"}, follow_redirects=False
+    )
     assert r.status_code == 401 and "set-cookie" not in r.headers
     assert 'role="alert"' in r.text and 'name="token"' in r.text
     assert rows(engine, "SELECT count(*) FROM tokens")[0][0] == before
@@ -181,28 +208,31 @@ def test_a_wrong_token_shows_the_form_again_with_an_error(tenant: Any, browser_c
 
 def test_a_token_without_the_read_scope_is_refused(tenant: Any, browser_client: Any) -> None:
     for scopes in ("ingest", "admin"):
-        r = browser_client.post("/signin", data={"token": tenant.tokens[scopes], "next": "/"},
-                                follow_redirects=False)
+        r = browser_client.post(
+            "/signin", data={"token": tenant.tokens[scopes], "next": "/"}, follow_redirects=False
+        )
         assert r.status_code == 403 and "set-cookie" not in r.headers
         assert "read" in r.text and 'role="alert"' in r.text
         page = browser_client.get("/", headers=tenant.headers(scopes), follow_redirects=False)
         assert page.status_code == 403 and "read" in page.text
 
 
-def test_sign_in_never_sends_the_reader_to_another_site(tenant: Any,
-                                                         browser_client: Any) -> None:
+def test_sign_in_never_sends_the_reader_to_another_site(tenant: Any, browser_client: Any) -> None:
     for target in ("//elsewhere.example/", "https://elsewhere.example/", "/\\elsewhere"):
-        r = browser_client.post("/signin", data={"token": tenant.tokens["read"],
-                                                 "next": target}, follow_redirects=False)
+        r = browser_client.post(
+            "/signin", data={"token": tenant.tokens["read"], "next": target}, follow_redirects=False
+        )
         assert r.status_code == 303 and r.headers["location"] == "/", target
-    r = browser_client.post("/signin", data={"token": tenant.tokens["read"]},
-                            headers={"Origin": "http://elsewhere.example"},
-                            follow_redirects=False)
+    r = browser_client.post(
+        "/signin",
+        data={"token": tenant.tokens["read"]},
+        headers={"Origin": "http://elsewhere.example"},
+        follow_redirects=False,
+    )
     assert r.status_code == 403 and "set-cookie" not in r.headers
 
 
-def test_another_projects_model_is_not_found(tenant: Any, sessions: Any,
-                                              engine: Engine) -> None:
+def test_another_projects_model_is_not_found(tenant: Any, sessions: Any, engine: Engine) -> None:
     name = create_model(tenant, engine).name
     with transaction(sessions) as session:
         other = keys.get_or_create_project(session=session, name=tenant.name + "-other")
@@ -214,21 +244,23 @@ def test_another_projects_model_is_not_found(tenant: Any, sessions: Any,
 
 def test_bad_parameters_are_named_and_text_is_escaped(tenant: Any, engine: Engine) -> None:
     name = create_model(tenant, engine).name
-    r = tenant.client.get(f"/models/{name}?granularity=fortnight",
-                          headers=tenant.headers("read"))
+    r = tenant.client.get(f"/models/{name}?granularity=fortnight", headers=tenant.headers("read"))
     assert r.status_code == 422 and "granularity" in r.text
-    r = tenant.client.get(f"/models/{name}", headers=tenant.headers("read"),
-                          params={"segment": 'region:<b id="x">'})
+    r = tenant.client.get(
+        f"/models/{name}", headers=tenant.headers("read"), params={"segment": 'region:<b id="x">'}
+    )
     assert r.status_code == 200
     assert '<b id="x">' not in r.text and "&lt;b id=&#34;x&#34;&gt;" in r.text
 
 
-def test_model_page_draws_what_the_orders_say(tenant: Any, engine: Engine, sessions: Any,
-                                              frozen: datetime) -> None:
+def test_model_page_draws_what_the_orders_say(
+    tenant: Any, engine: Engine, sessions: Any, frozen: datetime
+) -> None:
     orders = shop_orders()
     name = send_shop(tenant, engine, orders)
-    html = tenant.client.get(f"/models/{name}?start=2026-03-02",
-                             headers=tenant.headers("read")).text
+    html = tenant.client.get(
+        f"/models/{name}?start=2026-03-02", headers=tenant.headers("read")
+    ).text
     days = by_day(orders)
     scorers = {"precision": precision_score, "recall": recall_score, "fbeta": f1_score}
     for measure, scorer in scorers.items():
@@ -237,16 +269,22 @@ def test_model_page_draws_what_the_orders_say(tenant: Any, engine: Engine, sessi
             known = [o for o in day if o.label_at]
             truth = [o.actual == "1" for o in known]
             guess = [o.score >= 0.5 for o in known]
-            denominator = {"precision": sum(guess), "recall": sum(truth),
-                           "fbeta": sum(t or g for t, g in zip(truth, guess, strict=True))}
+            denominator = {
+                "precision": sum(guess),
+                "recall": sum(truth),
+                "fbeta": sum(t or g for t, g in zip(truth, guess, strict=True)),
+            }
             if denominator[measure]:
                 expected[d] = scorer(truth, guess)
         pts = points(chart(html, f"m-{measure}"), "circle")
         assert len(pts) == len(expected), measure
         for p, (_, value) in zip(pts, sorted(expected.items()), strict=True):
             assert float(p.get("data-value", "nan")) == pytest.approx(value, rel=1e-5)
-        assert len(points(chart(html, f"m-{measure}"))) + len(
-            [e for e in chart(html, f"m-{measure}").iter() if e.get("class") == "gap"]) == WINDOWS
+        assert (
+            len(points(chart(html, f"m-{measure}")))
+            + len([e for e in chart(html, f"m-{measure}").iter() if e.get("class") == "gap"])
+            == WINDOWS
+        )
     # settled: closed with 90% of it labelled, or ended more than 10 days ago
     settled = []
     for d in sorted(days):
@@ -258,26 +296,29 @@ def test_model_page_draws_what_the_orders_say(tenant: Any, engine: Engine, sessi
     assert 0 < sum(settled) < DAYS  # both kinds are on the page
     bars = points(chart(html, "coverage"), "rect")
     assert [float(b.get("data-value", "nan")) for b in bars] == pytest.approx(
-        [sum(1 for o in days[d] if o.label_at) / len(days[d]) for d in sorted(days)], rel=1e-5)
+        [sum(1 for o in days[d] if o.label_at) / len(days[d]) for d in sorted(days)], rel=1e-5
+    )
     # label-free: expected TP / expected predicted positives = mean score over flagged orders
     est = [e for e in chart(html, "estimates").iter() if e.get("data-row") == "estimated precision"]
     flagged = {d: [o.score for o in day if o.score >= 0.5] for d, day in days.items()}
     assert [float(p.get("data-value", "nan")) for p in points(est[0])] == pytest.approx(
-        [float(np.mean(flagged[d])) for d in sorted(days) if flagged[d]], rel=1e-5)
+        [float(np.mean(flagged[d])) for d in sorted(days) if flagged[d]], rel=1e-5
+    )
     # the best F1 threshold, by brute force over the hundred edges
     known = [o for o in orders if o.label_at]
     truth = [o.actual == "1" for o in known]
-    f1 = [f1_score(truth, [o.score >= k / 100 for o in known], zero_division=0.0)
-          for k in range(100)]
+    f1 = [
+        f1_score(truth, [o.score >= k / 100 for o in known], zero_division=0.0) for k in range(100)
+    ]
     best = chart(html, "sweep").find(".//*[@class='tmark best']")
-    assert best is not None and float(best.get("data-threshold", "nan")) == int(
-        np.argmax(f1)) / 100
+    assert best is not None and float(best.get("data-threshold", "nan")) == int(np.argmax(f1)) / 100
     delays = tenant.client.get(f"/v1/models/{name}/delays?start=2026-03-02").json()
     assert f"{delays['quantiles']['p50'] / 24:.1f} days" in html
 
 
-def test_alerts_show_on_every_page_with_their_breaches(tenant: Any, engine: Engine,
-                                                        sessions: Any, frozen: datetime) -> None:
+def test_alerts_show_on_every_page_with_their_breaches(
+    tenant: Any, engine: Engine, sessions: Any, frozen: datetime
+) -> None:
     name = send_shop(tenant, engine, shop_orders())
     raise_alert(tenant, sessions, name)
     api = tenant.client.get("/v1/alerts", params={"model": name}).json()["items"]
@@ -295,20 +336,30 @@ def test_alerts_show_on_every_page_with_their_breaches(tenant: Any, engine: Engi
     assert bad.status_code == 422 and "state" in bad.text
 
 
-def test_a_multiclass_model_shows_its_averaged_measures(tenant: Any, engine: Engine,
-                                                        frozen: datetime) -> None:
+def test_a_multiclass_model_shows_its_averaged_measures(
+    tenant: Any, engine: Engine, frozen: datetime
+) -> None:
     # which room an order's item is for; the outcome is learnt when it is delivered
     rooms = ("bedroom", "kitchen", "office")
     model = create_model(tenant, engine, kind="multiclass", classes=list(rooms))
-    sent = [{"id": f"order-{n}", "ts": stamp(FIRST_DAY + timedelta(hours=5 * n)),
-             "scores": three_class_scores(rooms[n % 3], 0.7, rooms)} for n in range(40)]
+    sent = [
+        {
+            "id": f"order-{n}",
+            "ts": stamp(FIRST_DAY + timedelta(hours=5 * n)),
+            "scores": three_class_scores(rooms[n % 3], 0.7, rooms),
+        }
+        for n in range(40)
+    ]
     r = tenant.client.post(f"/v1/models/{model.name}/predictions", json={"predictions": sent})
     assert r.status_code == 200, r.text
     told = [{"id": f"order-{n}", "actual": rooms[(n // 4) % 3]} for n in range(40)]
-    assert tenant.client.post(f"/v1/models/{model.name}/labels",
-                              json={"labels": told}).status_code == 200
-    html = tenant.client.get(f"/models/{model.name}?start=2026-03-02",
-                             headers=tenant.headers("read")).text
+    assert (
+        tenant.client.post(f"/v1/models/{model.name}/labels", json={"labels": told}).status_code
+        == 200
+    )
+    html = tenant.client.get(
+        f"/models/{model.name}?start=2026-03-02", headers=tenant.headers("read")
+    ).text
     days: dict[int, tuple[list[str], list[str]]] = {}
     for n in range(40):
         truth, guess = days.setdefault(5 * n // 24, ([], []))
@@ -316,7 +367,8 @@ def test_a_multiclass_model_shows_its_averaged_measures(tenant: Any, engine: Eng
         guess.append(rooms[n % 3])
     pts = points(chart(html, "m-accuracy"))
     assert [float(p.get("data-value", "nan")) for p in pts] == pytest.approx(
-        [accuracy_score(*days[d]) for d in sorted(days)], rel=1e-5)
+        [accuracy_score(*days[d]) for d in sorted(days)], rel=1e-5
+    )
     assert 'id="m-fbeta_macro"' in html and 'id="sweep"' not in html
 
 
@@ -324,6 +376,7 @@ def test_breach_baselines_read_as_words() -> None:
     from belated.web.pages import baseline_text
 
     assert baseline_text({"value": 0.8123, "drop": 0.1, "tolerance": 0.05, "low": None}) == (
-        "value 0.812; drop 0.1; tolerance 0.05")
+        "value 0.812; drop 0.1; tolerance 0.05"
+    )
     assert baseline_text({"counts": {"north": 3, "south": 4}}) == "counts: 2 values"
     assert baseline_text(None) == "—"

@@ -47,8 +47,10 @@ def check(kind: str, measure: str | None) -> str | None:
         if measure is None:
             return f"a {kind} rule needs a measure"
         if measure not in DENOMINATORS and measure not in LABEL_FREE:
-            return (f"unknown measure {measure!r} for a {kind} rule; choose from "
-                    f"{', '.join([*DENOMINATORS, *LABEL_FREE])}")
+            return (
+                f"unknown measure {measure!r} for a {kind} rule; choose from "
+                f"{', '.join([*DENOMINATORS, *LABEL_FREE])}"
+            )
         return None
     if kind == "shift":
         if measure is None:

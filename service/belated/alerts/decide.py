@@ -61,8 +61,9 @@ def _confusion(s: WindowStats) -> dict[str, int]:
     return {"tp": s.tp, "fp": s.fp, "fn": s.fn, "tn": s.tn}
 
 
-def measure_value(measure: str, s: WindowStats, beta: float, confidence: float
-                  ) -> tuple[float | None, float | None, float | None]:
+def measure_value(
+    measure: str, s: WindowStats, beta: float, confidence: float
+) -> tuple[float | None, float | None, float | None]:
     """A measure's value and interval in one window (estimates for estimated_*)."""
     if measure.startswith("estimated_"):
         est = summarise(s, beta=beta, measures={"precision"}, resamples=1)["estimates"]
@@ -89,8 +90,9 @@ def pooled(windows: list[WindowInput]) -> WindowStats:
     return total
 
 
-def baseline_for(series: list[WindowInput], i: int, rule: dict[str, Any],
-                 fixed: WindowStats | None) -> tuple[WindowStats | None, list[WindowInput]]:
+def baseline_for(
+    series: list[WindowInput], i: int, rule: dict[str, Any], fixed: WindowStats | None
+) -> tuple[WindowStats | None, list[WindowInput]]:
     """The trailing baseline windows before series[i] (or the fixed range's stats)."""
     if fixed is not None:
         return fixed, []
@@ -103,6 +105,7 @@ def baseline_for(series: list[WindowInput], i: int, rule: dict[str, Any],
 
 def _p_drop_proportion(x1: int, n1: int, x2: int, n2: int, tolerance: float) -> float:
     """One-sided p-value of H0: p1 - p2 >= -tolerance by inverting Newcombe's interval."""
+
     def upper(alpha: float) -> float:
         return newcombe_diff_interval(x1, n1, x2, n2, confidence=1 - 2 * alpha)[1]
 
@@ -120,9 +123,11 @@ def _p_drop_proportion(x1: int, n1: int, x2: int, n2: int, tolerance: float) -> 
     return hi
 
 
-def _p_drop_bootstrap(measure: str, cur: WindowStats, base: WindowStats, beta: float,
-                      tolerance: float, seed: int) -> float | None:
+def _p_drop_bootstrap(
+    measure: str, cur: WindowStats, base: WindowStats, beta: float, tolerance: float, seed: int
+) -> float | None:
     """One-sided bootstrap p-value of H0: current - baseline >= -tolerance."""
+
     def draws(s: WindowStats, rng: np.random.Generator) -> np.ndarray:
         counts = np.array([s.tp, s.fp, s.fn, s.tn], dtype=np.float64)
         n = int(counts.sum())
@@ -141,8 +146,7 @@ def _p_drop_bootstrap(measure: str, cur: WindowStats, base: WindowStats, beta: f
     return float((np.count_nonzero(diff >= -tolerance) + 1) / (diff.size + 1))
 
 
-def _drop(rule: dict[str, Any], w: WindowInput, base: WindowStats, beta: float
-          ) -> Decision:
+def _drop(rule: dict[str, Any], w: WindowInput, base: WindowStats, beta: float) -> Decision:
     measure, tol = rule["measure"], float(rule["tolerance"])
     value, low, high = measure_value(measure, w.stats, beta, 1 - 2 * float(rule["alpha"]))
     base_value, _, _ = measure_value(measure, base, beta, 0.95)
@@ -152,8 +156,9 @@ def _drop(rule: dict[str, Any], w: WindowInput, base: WindowStats, beta: float
     p: float | None
     parts = catalog.PROPORTIONS.get(measure)
     if measure == "positive_rate":
-        p = _p_drop_proportion(w.stats.n_pred_pos, w.stats.n_pred, base.n_pred_pos,
-                               base.n_pred, tol)
+        p = _p_drop_proportion(
+            w.stats.n_pred_pos, w.stats.n_pred, base.n_pred_pos, base.n_pred, tol
+        )
     elif parts is not None:
         cur_c, base_c = _confusion(w.stats), _confusion(base)
         x1, n1 = sum(cur_c[k] for k in parts[0]), sum(cur_c[k] for k in parts[1])
@@ -166,34 +171,64 @@ def _drop(rule: dict[str, Any], w: WindowInput, base: WindowStats, beta: float
     return Decision(w.start, w.end, value < base_value - tol, p, value, low, high, info)
 
 
-def _shift(rule: dict[str, Any], w: WindowInput, base: WindowStats,
-           base_windows: list[WindowInput]) -> Decision:
+def _shift(
+    rule: dict[str, Any], w: WindowInput, base: WindowStats, base_windows: list[WindowInput]
+) -> Decision:
     measure, threshold = rule["measure"], float(rule["threshold"])
     if measure == "positive_rate":
         if w.stats.n_pred == 0 or base.n_pred == 0:
             return Decision(w.start, w.end, False, None)
         cur_rate, base_rate = w.stats.n_pred_pos / w.stats.n_pred, base.n_pred_pos / base.n_pred
-        test = two_proportion_test(w.stats.n_pred_pos, w.stats.n_pred, base.n_pred_pos,
-                                   base.n_pred)
-        return Decision(w.start, w.end, abs(cur_rate - base_rate) >= threshold,
-                        test.p_two_sided, cur_rate, None, None,
-                        {"value": base_rate, "change": cur_rate - base_rate})
+        test = two_proportion_test(w.stats.n_pred_pos, w.stats.n_pred, base.n_pred_pos, base.n_pred)
+        return Decision(
+            w.start,
+            w.end,
+            abs(cur_rate - base_rate) >= threshold,
+            test.p_two_sided,
+            cur_rate,
+            None,
+            None,
+            {"value": base_rate, "change": cur_rate - base_rate},
+        )
     if measure == "score_psi":
         v = psi(base.hist_all, w.stats.hist_all)
-        return Decision(w.start, w.end, v.value is not None and v.value >= threshold, None,
-                        v.value, None, None, {"predictions": base.n_pred})
+        return Decision(
+            w.start,
+            w.end,
+            v.value is not None and v.value >= threshold,
+            None,
+            v.value,
+            None,
+            None,
+            {"predictions": base.n_pred},
+        )
     base_counts: dict[str, int] = {}
     for b in base_windows:
         for k, n in b.tag_counts.items():
             base_counts[k] = base_counts.get(k, 0) + n
     v = categorical_psi(base_counts, w.tag_counts)
-    return Decision(w.start, w.end, v.value is not None and v.value >= threshold, None,
-                    v.value, None, None, {"counts": base_counts})
+    return Decision(
+        w.start,
+        w.end,
+        v.value is not None and v.value >= threshold,
+        None,
+        v.value,
+        None,
+        None,
+        {"counts": base_counts},
+    )
 
 
-def decide(rule: dict[str, Any], series: list[WindowInput], first: int, *, beta: float = 1.0,
-           fixed_baseline: WindowStats | None = None, now: datetime | None = None,
-           label_delay_days: float = 30.0) -> list[Decision]:
+def decide(
+    rule: dict[str, Any],
+    series: list[WindowInput],
+    first: int,
+    *,
+    beta: float = 1.0,
+    fixed_baseline: WindowStats | None = None,
+    now: datetime | None = None,
+    label_delay_days: float = 30.0,
+) -> list[Decision]:
     """Decisions for the eligible windows series[first:] (baselines look further back)."""
     kind, measure = rule["kind"], rule.get("measure")
     out: list[Decision] = []
@@ -206,14 +241,20 @@ def decide(rule: dict[str, Any], series: list[WindowInput], first: int, *, beta:
             value, low, high = measure_value(str(measure), w.stats, beta, conf)
             probe = high if rule["mode"] == "confident" else value
             cond = probe is not None and probe < float(rule["threshold"])
-            out.append(Decision(w.start, w.end, cond, None, value, low, high,
-                                {"threshold": rule["threshold"]}))
+            out.append(
+                Decision(
+                    w.start, w.end, cond, None, value, low, high, {"threshold": rule["threshold"]}
+                )
+            )
         elif kind == "volume":
             n = w.stats.n_pred
             low, high = rule.get("low"), rule.get("high")
             cond = (low is not None and n < low) or (high is not None and n > high)
-            out.append(Decision(w.start, w.end, cond, None, float(n), None, None,
-                                {"low": low, "high": high}))
+            out.append(
+                Decision(
+                    w.start, w.end, cond, None, float(n), None, None, {"low": low, "high": high}
+                )
+            )
         elif kind == "stall":
             if rule.get("threshold") is None or now is None:
                 continue
@@ -221,14 +262,27 @@ def decide(rule: dict[str, Any], series: list[WindowInput], first: int, *, beta:
             if not old or w.stats.n_pred == 0:
                 continue
             cov = w.stats.n_labelled / w.stats.n_pred
-            out.append(Decision(w.start, w.end, cov < float(rule["threshold"]), None, cov,
-                                None, None, {"threshold": rule["threshold"]}))
+            out.append(
+                Decision(
+                    w.start,
+                    w.end,
+                    cov < float(rule["threshold"]),
+                    None,
+                    cov,
+                    None,
+                    None,
+                    {"threshold": rule["threshold"]},
+                )
+            )
         else:
             base, base_windows = baseline_for(series, i, rule, fixed_baseline)
             if base is None:
                 continue
-            d = (_drop(rule, w, base, beta) if kind == "drop"
-                 else _shift(rule, w, base, base_windows))
+            d = (
+                _drop(rule, w, base, beta)
+                if kind == "drop"
+                else _shift(rule, w, base, base_windows)
+            )
             out.append(d)
     return out
 

@@ -37,7 +37,7 @@ def backoff(attempts: int, retry_after: float | None = None) -> float:
     if retry_after is not None:
         return min(MAX_DELAY, max(1.0, retry_after))
     ceiling = min(MAX_DELAY, BASE_DELAY * 2 ** max(0, attempts - 1))
-    return ceiling / 2 + random.uniform(0, ceiling / 2)
+    return float(ceiling / 2 + random.uniform(0, ceiling / 2))
 
 
 def _retry_after(response: httpx.Response) -> float | None:
@@ -52,8 +52,12 @@ def _retry_after(response: httpx.Response) -> float | None:
 
 def _due(session: Session, at: datetime) -> list[tuple[Delivery, Webhook]]:
     rows = session.execute(
-        select(Delivery, Webhook).join(Webhook, Webhook.id == Delivery.webhook_id)
-        .where(Delivery.state == "pending").order_by(Delivery.id).limit(BATCH * 5)).all()
+        select(Delivery, Webhook)
+        .join(Webhook, Webhook.id == Delivery.webhook_id)
+        .where(Delivery.state == "pending")
+        .order_by(Delivery.id)
+        .limit(BATCH * 5)
+    ).all()
     out, blocked = [], set()
     for d, hook in rows:
         key = (d.webhook_id, d.alert_id)
@@ -65,14 +69,17 @@ def _due(session: Session, at: datetime) -> list[tuple[Delivery, Webhook]]:
     return out[:BATCH]
 
 
-def deliver_due(factory: sessionmaker[Session], settings: Settings,
-                client: httpx.Client | None = None) -> dict[str, int]:
+def deliver_due(
+    factory: sessionmaker[Session], settings: Settings, client: httpx.Client | None = None
+) -> dict[str, int]:
     """Attempt every due delivery once."""
     counts = {"delivered": 0, "retrying": 0, "expired": 0, "disabled": 0}
     own = (settings.host, settings.port)
     with transaction(factory) as session:
-        due = [(d.id, hook.id, hook.url, hook.secret, d.event_id, d.payload)
-               for d, hook in _due(session, now())]
+        due = [
+            (d.id, hook.id, hook.url, hook.secret, d.event_id, d.payload)
+            for d, hook in _due(session, now())
+        ]
     if not due:
         return counts
     own_client = client is None
@@ -82,8 +89,9 @@ def deliver_due(factory: sessionmaker[Session], settings: Settings,
         for delivery_id, hook_id, url, secret, event_id, payload in due:
             if hook_id in gone:  # disabled by a 410 earlier in this batch
                 continue
-            outcome = _attempt(client, url, secret, event_id, payload,
-                               settings.webhook_private, own)
+            outcome = _attempt(
+                client, url, secret, event_id, payload, settings.webhook_private, own
+            )
             result = _settle(factory, delivery_id, hook_id, outcome)
             if result == "disabled":
                 gone.add(hook_id)
@@ -94,8 +102,15 @@ def deliver_due(factory: sessionmaker[Session], settings: Settings,
     return counts
 
 
-def _attempt(client: httpx.Client, url: str, secret: str, event_id: str, payload: str,
-             allow_private: bool, own: tuple[str, int]) -> dict[str, Any]:
+def _attempt(
+    client: httpx.Client,
+    url: str,
+    secret: str,
+    event_id: str,
+    payload: str,
+    allow_private: bool,
+    own: tuple[str, int],
+) -> dict[str, Any]:
     try:
         urls.check(url, allow_private=allow_private, own=own)
     except urls.UnsafeUrl as exc:
@@ -105,17 +120,21 @@ def _attempt(client: httpx.Client, url: str, secret: str, event_id: str, payload
     # own clocks; the service clock (which tests may freeze) only schedules attempts.
     stamp = int(time.time())
     try:
-        response = client.post(url, content=payload.encode(),
-                               headers=signing.headers(secret, event_id, stamp, payload))
+        response = client.post(
+            url, content=payload.encode(), headers=signing.headers(secret, event_id, stamp, payload)
+        )
     except httpx.HTTPError as exc:
-        return {"status": None, "error": f"{type(exc).__name__}: {exc}"[:500],
-                "retry_after": None}
-    return {"status": response.status_code, "error": None if response.is_success
-            else f"HTTP {response.status_code}", "retry_after": _retry_after(response)}
+        return {"status": None, "error": f"{type(exc).__name__}: {exc}"[:500], "retry_after": None}
+    return {
+        "status": response.status_code,
+        "error": None if response.is_success else f"HTTP {response.status_code}",
+        "retry_after": _retry_after(response),
+    }
 
 
-def _settle(factory: sessionmaker[Session], delivery_id: int, hook_id: str,
-            outcome: dict[str, Any]) -> str:
+def _settle(
+    factory: sessionmaker[Session], delivery_id: int, hook_id: str, outcome: dict[str, Any]
+) -> str:
     at = now()
     with transaction(factory) as session:
         d = session.get(Delivery, delivery_id)
@@ -131,9 +150,11 @@ def _settle(factory: sessionmaker[Session], delivery_id: int, hook_id: str,
             hook = session.get(Webhook, hook_id)
             if hook is not None and hook.disabled_at is None:
                 hook.disabled_at, hook.disabled_reason = at, "the receiver answered 410 Gone"
-            session.execute(update(Delivery).where(
-                Delivery.webhook_id == hook_id, Delivery.state == "pending").values(
-                state="disabled", last_error="endpoint disabled after 410 Gone"))
+            session.execute(
+                update(Delivery)
+                .where(Delivery.webhook_id == hook_id, Delivery.state == "pending")
+                .values(state="disabled", last_error="endpoint disabled after 410 Gone")
+            )
             return "disabled"
         if to_utc(d.expires_at) <= at:
             d.state = "expired"
@@ -146,5 +167,9 @@ def backlog(conn: Any) -> int:
     """Pending deliveries (for /healthz and /metrics)."""
     from sqlalchemy import func
 
-    return int(conn.execute(select(func.count()).select_from(Delivery).where(
-        Delivery.state == "pending")).scalar() or 0)
+    return int(
+        conn.execute(
+            select(func.count()).select_from(Delivery).where(Delivery.state == "pending")
+        ).scalar()
+        or 0
+    )

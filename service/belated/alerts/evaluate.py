@@ -29,8 +29,13 @@ MIN_EVALUATED = 30  # a first evaluation looks back far enough to catch what his
 
 def settings_of(rule: Rule) -> dict[str, Any]:
     """A rule's effective settings (defaults filled in)."""
-    return {**DEFAULTS, **{k: v for k, v in (rule.settings or {}).items() if v is not None},
-            "kind": rule.kind, "measure": rule.measure, "granularity": rule.granularity}
+    return {
+        **DEFAULTS,
+        **{k: v for k, v in (rule.settings or {}).items() if v is not None},
+        "kind": rule.kind,
+        "measure": rule.measure,
+        "granularity": rule.granularity,
+    }
 
 
 def _span(model: ModelRow, rule: dict[str, Any]) -> tuple[int, int]:
@@ -42,9 +47,16 @@ def _span(model: ModelRow, rule: dict[str, Any]) -> tuple[int, int]:
     return evaluated, min(MAX_EVALUATED, base * 3 + 2)
 
 
-def _series(session: Session, model: ModelRow, rule: dict[str, Any], segment: tuple[str, str]
-            | None, now: datetime, max_values: int, evaluated: int, lookback: int
-            ) -> list[WindowInput]:
+def _series(
+    session: Session,
+    model: ModelRow,
+    rule: dict[str, Any],
+    segment: tuple[str, str] | None,
+    now: datetime,
+    max_values: int,
+    evaluated: int,
+    lookback: int,
+) -> list[WindowInput]:
     g = rule["granularity"]
     end = floor_window(now, g) + window_step(g)
     rng = Range(g, end - evaluated * window_step(g), end)
@@ -55,8 +67,14 @@ def _series(session: Session, model: ModelRow, rule: dict[str, Any], segment: tu
     measure = rule.get("measure") or ""
     if measure.startswith("tag_psi:"):
         level = "h" if g == "hour" else "d"
-        raw = segment_counts(session, model, key=measure.split(":", 1)[1], level=level,
-                             lo=epoch_hour(starts[0]), hi=epoch_hour(end))
+        raw = segment_counts(
+            session,
+            model,
+            key=measure.split(":", 1)[1],
+            level=level,
+            lo=epoch_hour(starts[0]),
+            hi=epoch_hour(end),
+        )
         span = int(step / timedelta(hours=1))
         base = epoch_hour(starts[0])
         for start, counts in raw.items():
@@ -65,14 +83,26 @@ def _series(session: Session, model: ModelRow, rule: dict[str, Any], segment: tu
             for k, n in counts.items():
                 bucket[k] = bucket.get(k, 0) + n
     return [
-        WindowInput(s, s + step, s + step <= now, settled_window(a, s + step, model, now),
-                    to_stats(a), tag_counts.get(i, {}))
+        WindowInput(
+            s,
+            s + step,
+            s + step <= now,
+            settled_window(a, s + step, model, now),
+            to_stats(a),
+            tag_counts.get(i, {}),
+        )
         for i, (s, a) in enumerate(zip(starts, accs, strict=True))
     ]
 
 
-def _fixed_baseline(session: Session, model: ModelRow, rule: dict[str, Any], now: datetime,
-                    max_values: int, segment: tuple[str, str] | None) -> Any:
+def _fixed_baseline(
+    session: Session,
+    model: ModelRow,
+    rule: dict[str, Any],
+    now: datetime,
+    max_values: int,
+    segment: tuple[str, str] | None,
+) -> Any:
     b = rule["baseline"]
     if not isinstance(b, dict) or not b.get("start"):
         return None
@@ -80,20 +110,21 @@ def _fixed_baseline(session: Session, model: ModelRow, rule: dict[str, Any], now
 
     g = rule["granularity"]
     rng = Range(g, floor_window(parse_ts(b["start"]), g), floor_window(parse_ts(b["end"]), g))
-    _, accs = bucket_accs(session, model, rng, 0, (segment,) if segment else (), now,
-                          max_values)
+    _, accs = bucket_accs(session, model, rng, 0, (segment,) if segment else (), now, max_values)
     return pooled([WindowInput(rng.start, rng.end, True, True, to_stats(a)) for a in accs])
 
 
-def evaluate_rule(session: Session, rule: Rule, model: ModelRow, now: datetime,
-                  max_values: int) -> dict[str, int]:
+def evaluate_rule(
+    session: Session, rule: Rule, model: ModelRow, now: datetime, max_values: int
+) -> dict[str, int]:
     """Evaluate one rule over its segments; record windows; advance its alerts."""
     cfg = settings_of(rule)
     evaluated, lookback = _span(model, cfg)
     if cfg["segment_by"]:
         admitted = segments.admitted(session=session, model_id=model.id)
         segs: list[tuple[str, str] | None] = [
-            (cfg["segment_by"], v) for v in admitted.get(cfg["segment_by"], [])]
+            (cfg["segment_by"], v) for v in admitted.get(cfg["segment_by"], [])
+        ]
     else:
         segs = [None]
     decisions: dict[str, list[Decision]] = {}
@@ -101,8 +132,13 @@ def evaluate_rule(session: Session, rule: Rule, model: ModelRow, now: datetime,
         series = _series(session, model, cfg, seg, now, max_values, evaluated, lookback)
         fixed = _fixed_baseline(session, model, cfg, now, max_values, seg)
         decisions[f"{seg[0]}:{seg[1]}" if seg else ""] = decide(
-            cfg, series, lookback, fixed_baseline=fixed, now=now,
-            label_delay_days=model.label_delay_days)
+            cfg,
+            series,
+            lookback,
+            fixed_baseline=fixed,
+            now=now,
+            label_delay_days=model.label_delay_days,
+        )
     if cfg["kind"] == "stall" and cfg.get("max_silence_hours"):
         decisions.setdefault("", []).append(_silence(session, model, cfg, now))
     verdicts = _verdicts(decisions, float(cfg["alpha"]))
@@ -120,8 +156,16 @@ def _silence(session: Session, model: ModelRow, cfg: dict[str, Any], now: dateti
     hour = floor_hour(now)
     silent = last is None or (now - _utc(last)) > timedelta(hours=cfg["max_silence_hours"])
     age = None if last is None else (now - _utc(last)) / timedelta(hours=1)
-    return Decision(hour, hour + timedelta(hours=1), silent, None, age, None, None,
-                    {"max_silence_hours": cfg["max_silence_hours"]})
+    return Decision(
+        hour,
+        hour + timedelta(hours=1),
+        silent,
+        None,
+        age,
+        None,
+        None,
+        {"max_silence_hours": cfg["max_silence_hours"]},
+    )
 
 
 def _utc(value: Any) -> datetime:
@@ -132,8 +176,9 @@ def _utc(value: Any) -> datetime:
     return out
 
 
-def _verdicts(decisions: dict[str, list[Decision]], alpha: float) -> dict[tuple[str, datetime],
-                                                                          bool]:
+def _verdicts(
+    decisions: dict[str, list[Decision]], alpha: float
+) -> dict[tuple[str, datetime], bool]:
     """Final verdicts, with BH across the segments of each window when there are several."""
     by_window: dict[datetime, list[tuple[str, Decision]]] = {}
     for seg, ds in decisions.items():
@@ -151,23 +196,38 @@ def _verdicts(decisions: dict[str, list[Decision]], alpha: float) -> dict[tuple[
     return out
 
 
-def _record(session: Session, rule: Rule, decisions: dict[str, list[Decision]],
-            verdicts: dict[tuple[str, datetime], bool], now: datetime) -> int:
+def _record(
+    session: Session,
+    rule: Rule,
+    decisions: dict[str, list[Decision]],
+    verdicts: dict[tuple[str, datetime], bool],
+    now: datetime,
+) -> int:
     """Upsert one row per (rule, segment, window); a window changed by late labels is
     updated in place, never counted twice."""
-    existing = {(r.segment, _utc(r.window_start)): r for r in session.scalars(
-        select(RuleWindow).where(RuleWindow.rule_id == rule.id))}
+    existing = {
+        (r.segment, _utc(r.window_start)): r
+        for r in session.scalars(select(RuleWindow).where(RuleWindow.rule_id == rule.id))
+    }
     changed = 0
     for seg, ds in decisions.items():
         for d in ds:
             breached = verdicts[(seg, d.start)]
-            values = {"breached": breached, "value": finite(d.value), "low": finite(d.low),
-                      "high": finite(d.high), "baseline": _clean(d.baseline),
-                      "p_value": finite(d.p_value), "window_end": d.end, "evaluated_at": now}
+            values = {
+                "breached": breached,
+                "value": finite(d.value),
+                "low": finite(d.low),
+                "high": finite(d.high),
+                "baseline": _clean(d.baseline),
+                "p_value": finite(d.p_value),
+                "window_end": d.end,
+                "evaluated_at": now,
+            }
             row = existing.get((seg, d.start))
             if row is None:
-                session.add(RuleWindow(rule_id=rule.id, segment=seg, window_start=d.start,
-                                       **values))
+                session.add(
+                    RuleWindow(rule_id=rule.id, segment=seg, window_start=d.start, **values)
+                )
                 changed += 1
             elif row.breached != breached or row.value != values["value"]:
                 for k, v in values.items():

@@ -26,8 +26,9 @@ def evaluate_step(runner: Any) -> dict[str, Any]:
                     continue
                 model = session.get(ModelRow, rule.model_id)
                 assert model is not None
-                result = evaluate.evaluate_rule(session, rule, model, now(),
-                                                runner.settings.max_segment_values)
+                result = evaluate.evaluate_rule(
+                    session, rule, model, now(), runner.settings.max_segment_values
+                )
             totals["rules"] += 1
             totals["windows"] += result["windows"]
             totals["events"] += result["events"]

@@ -51,9 +51,18 @@ class RuleFields(BaseModel):
 
 
 DEFAULTS: dict[str, Any] = {
-    "granularity": "day", "mode": "point", "tolerance": 0.0, "alpha": 0.05,
-    "min_support": 30, "baseline": {"windows": 7}, "segment_by": None, "clear_after": 1,
-    "threshold": None, "low": None, "high": None, "max_silence_hours": None,
+    "granularity": "day",
+    "mode": "point",
+    "tolerance": 0.0,
+    "alpha": 0.05,
+    "min_support": 30,
+    "baseline": {"windows": 7},
+    "segment_by": None,
+    "clear_after": 1,
+    "threshold": None,
+    "low": None,
+    "high": None,
+    "max_silence_hours": None,
 }
 
 
@@ -80,8 +89,12 @@ def check_rule(kind: str, fields: dict[str, Any]) -> None:
         raise ValueError("a shift rule needs a threshold (minimum change, or PSI)")
     if kind == "volume" and merged["low"] is None and merged["high"] is None:
         raise ValueError("a volume rule needs low, high or both")
-    if kind == "volume" and merged["low"] is not None and merged["high"] is not None \
-            and merged["low"] > merged["high"]:
+    if (
+        kind == "volume"
+        and merged["low"] is not None
+        and merged["high"] is not None
+        and merged["low"] > merged["high"]
+    ):
         raise ValueError("low must not exceed high")
     if kind == "stall" and merged["threshold"] is None and merged["max_silence_hours"] is None:
         raise ValueError("a stall rule needs a coverage threshold or max_silence_hours")

@@ -17,8 +17,19 @@ from belated.errors import Invalid, Problem, field_error
 from belated.store.tables import ModelRow
 from belated.timeutil import iso, parse_ts, to_utc
 
-SETTING_KEYS = ("threshold", "mode", "tolerance", "alpha", "min_support", "baseline",
-                "segment_by", "clear_after", "low", "high", "max_silence_hours")
+SETTING_KEYS = (
+    "threshold",
+    "mode",
+    "tolerance",
+    "alpha",
+    "min_support",
+    "baseline",
+    "segment_by",
+    "clear_after",
+    "low",
+    "high",
+    "max_silence_hours",
+)
 
 
 def _invalid(field: str, reason: str) -> Invalid:
@@ -30,27 +41,44 @@ def rule_read(rule: Rule, model_name: str) -> RuleRead:
     cfg = {**DEFAULTS, **{k: v for k, v in rule.settings.items() if v is not None}}
     muted = rule.muted_until is not None and to_utc(rule.muted_until) > now()
     return RuleRead(
-        id=rule.id, model=model_name, kind=rule.kind, measure=rule.measure,
-        granularity=rule.granularity, muted_until=rule.muted_until and to_utc(rule.muted_until),
-        muted=muted, created_at=to_utc(rule.created_at), updated_at=to_utc(rule.updated_at),
-        **{k: cfg[k] for k in SETTING_KEYS})
+        id=rule.id,
+        model=model_name,
+        kind=rule.kind,
+        measure=rule.measure,
+        granularity=rule.granularity,
+        muted_until=rule.muted_until and to_utc(rule.muted_until),
+        muted=muted,
+        created_at=to_utc(rule.created_at),
+        updated_at=to_utc(rule.updated_at),
+        **{k: cfg[k] for k in SETTING_KEYS},
+    )
 
 
 def _settings(fields: dict[str, Any]) -> dict[str, Any]:
     out = {k: fields[k] for k in SETTING_KEYS if k in fields}
     if isinstance(out.get("baseline"), dict):
-        out["baseline"] = {k: (iso(v) if isinstance(v, datetime) else v)
-                           for k, v in out["baseline"].items() if v is not None}
+        out["baseline"] = {
+            k: (iso(v) if isinstance(v, datetime) else v)
+            for k, v in out["baseline"].items()
+            if v is not None
+        }
     return out
 
 
 def create_rule(*, session: Session, model: ModelRow, fields: dict[str, Any]) -> Rule:
     """Create a rule on a model."""
     stamp = now()
-    rule = Rule(id="rul_" + secrets.token_hex(8), model_id=model.id, kind=fields["kind"],
-                measure=fields.get("measure"), granularity=fields.get("granularity") or "day",
-                settings=_settings(fields), muted_until=fields.get("muted_until"),
-                created_at=stamp, updated_at=stamp)
+    rule = Rule(
+        id="rul_" + secrets.token_hex(8),
+        model_id=model.id,
+        kind=fields["kind"],
+        measure=fields.get("measure"),
+        granularity=fields.get("granularity") or "day",
+        settings=_settings(fields),
+        muted_until=fields.get("muted_until"),
+        created_at=stamp,
+        updated_at=stamp,
+    )
     session.add(rule)
     session.flush()
     return rule
@@ -66,8 +94,11 @@ def get_rule(*, session: Session, model: ModelRow, rule_id: str) -> Rule:
 
 def list_rules(*, session: Session, model: ModelRow) -> list[Rule]:
     """The model's rules, oldest first."""
-    return list(session.scalars(
-        select(Rule).where(Rule.model_id == model.id).order_by(Rule.created_at, Rule.id)))
+    return list(
+        session.scalars(
+            select(Rule).where(Rule.model_id == model.id).order_by(Rule.created_at, Rule.id)
+        )
+    )
 
 
 def update_rule(*, session: Session, rule: Rule, fields: dict[str, Any]) -> Rule:
@@ -98,12 +129,22 @@ def delete_rule(*, session: Session, rule: Rule) -> None:
     session.flush()
 
 
-def list_alerts(*, session: Session, project_id: int, state: str | None, model: str | None,
-                since: str | None, after: int | None, limit: int
-                ) -> tuple[list[dict[str, Any]], int | None]:
+def list_alerts(
+    *,
+    session: Session,
+    project_id: int,
+    state: str | None,
+    model: str | None,
+    since: str | None,
+    after: int | None,
+    limit: int,
+) -> tuple[list[dict[str, Any]], int | None]:
     """Alerts of the project, newest first, with their breaches; cursor is the last seq."""
-    query = select(Alert, ModelRow.name).join(ModelRow, ModelRow.id == Alert.model_id).where(
-        Alert.project_id == project_id)
+    query = (
+        select(Alert, ModelRow.name)
+        .join(ModelRow, ModelRow.id == Alert.model_id)
+        .where(Alert.project_id == project_id)
+    )
     if state:
         if state not in ("open", "acknowledged", "resolved"):
             raise _invalid("state", "must be open, acknowledged or resolved")
@@ -132,15 +173,21 @@ def get_alert(*, session: Session, project_id: int, alert_id: str) -> Alert:
     return alert
 
 
-def create_webhook(*, session: Session, project_id: int, url: str, allow_private: bool,
-                   own: tuple[str, int]) -> Webhook:
+def create_webhook(
+    *, session: Session, project_id: int, url: str, allow_private: bool, own: tuple[str, int]
+) -> Webhook:
     """A new destination with a generated secret (returned once)."""
     try:
         urls.check(url, allow_private=allow_private, own=own)
     except urls.UnsafeUrl as exc:
         raise _invalid("url", str(exc)) from None
-    hook = Webhook(id="whk_" + secrets.token_hex(8), project_id=project_id, url=url,
-                   secret=signing.new_secret(), created_at=now())
+    hook = Webhook(
+        id="whk_" + secrets.token_hex(8),
+        project_id=project_id,
+        url=url,
+        secret=signing.new_secret(),
+        created_at=now(),
+    )
     session.add(hook)
     session.flush()
     return hook
@@ -156,17 +203,36 @@ def get_webhook(*, session: Session, project_id: int, hook_id: str) -> Webhook:
 
 def webhook_dict(hook: Webhook) -> dict[str, Any]:
     """A webhook without its secret."""
-    return {"id": hook.id, "url": hook.url, "created_at": iso(hook.created_at),
-            "disabled_at": iso(hook.disabled_at) if hook.disabled_at else None,
-            "disabled_reason": hook.disabled_reason}
+    return {
+        "id": hook.id,
+        "url": hook.url,
+        "created_at": iso(hook.created_at),
+        "disabled_at": iso(hook.disabled_at) if hook.disabled_at else None,
+        "disabled_reason": hook.disabled_reason,
+    }
 
 
 def deliveries(*, session: Session, hook: Webhook, limit: int) -> list[dict[str, Any]]:
     """The delivery log of a webhook, newest first."""
-    rows = session.scalars(select(Delivery).where(Delivery.webhook_id == hook.id)
-                           .order_by(Delivery.id.desc()).limit(limit))
-    return [{"id": d.id, "event_id": d.event_id, "type": d.event_type, "alert_id": d.alert_id,
-             "state": d.state, "attempts": d.attempts, "last_status": d.last_status,
-             "last_error": d.last_error, "created_at": iso(d.created_at),
-             "next_attempt_at": iso(d.next_attempt_at) if d.state == "pending" else None,
-             "delivered_at": iso(d.delivered_at) if d.delivered_at else None} for d in rows]
+    rows = session.scalars(
+        select(Delivery)
+        .where(Delivery.webhook_id == hook.id)
+        .order_by(Delivery.id.desc())
+        .limit(limit)
+    )
+    return [
+        {
+            "id": d.id,
+            "event_id": d.event_id,
+            "type": d.event_type,
+            "alert_id": d.alert_id,
+            "state": d.state,
+            "attempts": d.attempts,
+            "last_status": d.last_status,
+            "last_error": d.last_error,
+            "created_at": iso(d.created_at),
+            "next_attempt_at": iso(d.next_attempt_at) if d.state == "pending" else None,
+            "delivered_at": iso(d.delivered_at) if d.delivered_at else None,
+        }
+        for d in rows
+    ]

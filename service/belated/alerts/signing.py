@@ -24,6 +24,9 @@ def sign(secret: str, msg_id: str, timestamp: int, body: str) -> str:
 
 def headers(secret: str, msg_id: str, timestamp: int, body: str) -> dict[str, str]:
     """The three Standard Webhooks headers plus the content type."""
-    return {"webhook-id": msg_id, "webhook-timestamp": str(timestamp),
-            "webhook-signature": sign(secret, msg_id, timestamp, body),
-            "content-type": "application/json"}
+    return {
+        "webhook-id": msg_id,
+        "webhook-timestamp": str(timestamp),
+        "webhook-signature": sign(secret, msg_id, timestamp, body),
+        "content-type": "application/json",
+    }

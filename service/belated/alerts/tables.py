@@ -70,8 +70,9 @@ class Webhook(Base):
 
     __tablename__ = "webhooks"
     id: Mapped[str] = mapped_column(String(32), primary_key=True)
-    project_id: Mapped[int] = mapped_column(ForeignKey("projects.id", ondelete="CASCADE"),
-                                            index=True)
+    project_id: Mapped[int] = mapped_column(
+        ForeignKey("projects.id", ondelete="CASCADE"), index=True
+    )
     url: Mapped[str] = mapped_column(Text)
     secret: Mapped[str] = mapped_column(String(128))
     created_at: Mapped[datetime] = mapped_column(UtcDateTime)
@@ -85,8 +86,9 @@ class Delivery(Base):
     __tablename__ = "deliveries"
     __table_args__ = (Index("ix_deliveries_state_next", "state", "next_attempt_at"),)
     id: Mapped[int] = mapped_column(BigId, primary_key=True, autoincrement=True)
-    webhook_id: Mapped[str] = mapped_column(ForeignKey("webhooks.id", ondelete="CASCADE"),
-                                            index=True)
+    webhook_id: Mapped[str] = mapped_column(
+        ForeignKey("webhooks.id", ondelete="CASCADE"), index=True
+    )
     event_id: Mapped[str] = mapped_column(String(40))
     event_type: Mapped[str] = mapped_column(String(32))
     alert_id: Mapped[str] = mapped_column(String(32))

@@ -7,8 +7,11 @@ import ipaddress
 import socket
 from urllib.parse import urlsplit
 
-METADATA = {ipaddress.ip_address("169.254.169.254"), ipaddress.ip_address("fd00:ec2::254"),
-            ipaddress.ip_address("100.100.100.200")}
+METADATA = {
+    ipaddress.ip_address("169.254.169.254"),
+    ipaddress.ip_address("fd00:ec2::254"),
+    ipaddress.ip_address("100.100.100.200"),
+}
 
 
 class UnsafeUrl(ValueError):
@@ -19,8 +22,9 @@ def _port(scheme: str, port: int | None) -> int:
     return port or (443 if scheme == "https" else 80)
 
 
-def check(url: str, *, allow_private: bool, own: tuple[str, int] | None,
-          resolve: bool = True) -> list[str]:
+def check(
+    url: str, *, allow_private: bool, own: tuple[str, int] | None, resolve: bool = True
+) -> list[str]:
     """Refuse unsafe URLs; return the resolved addresses when `resolve`."""
     parts = urlsplit(url)
     if parts.scheme not in ("http", "https") or not parts.hostname:
@@ -44,11 +48,15 @@ def check(url: str, *, allow_private: bool, own: tuple[str, int] | None,
         local = (ip.is_loopback or ip.is_private) and not ip.is_unspecified
         if ip.is_unspecified or ((ip.is_multicast or ip.is_reserved) and not local):
             raise UnsafeUrl(f"{parts.hostname} resolves to an address that cannot be called")
-        if own is not None and port == own[1] and (ip.is_loopback or text == own[0]
-                                                   or own[0] in ("0.0.0.0", "::")):
+        if (
+            own is not None
+            and port == own[1]
+            and (ip.is_loopback or text == own[0] or own[0] in ("0.0.0.0", "::"))
+        ):
             raise UnsafeUrl("the URL points at this service itself")
         if not allow_private and local:
             raise UnsafeUrl(
                 f"{parts.hostname} resolves to a loopback or private address, refused while "
-                "BELATED_WEBHOOK_PRIVATE is off")
+                "BELATED_WEBHOOK_PRIVATE is off"
+            )
     return addresses

@@ -46,8 +46,11 @@ def principal(request: Request, session: SessionDep) -> Principal:
     token = bearer(request)
     found = keys.resolve(session=session, token=token) if token else None
     if found is None:
-        raise Problem(401, "a valid bearer token is required (Authorization: Bearer <token>)",
-                      headers={"WWW-Authenticate": "Bearer"})
+        raise Problem(
+            401,
+            "a valid bearer token is required (Authorization: Bearer <token>)",
+            headers={"WWW-Authenticate": "Bearer"},
+        )
     return found
 
 

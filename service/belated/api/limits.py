@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from typing import Any
+from typing import Any, cast
 
 import orjson
 
@@ -57,15 +57,22 @@ class BodyLimit:
     async def _nul(self, send: Any, where: tuple[int | None, str]) -> None:
         index, field = where
         await _send_problem(
-            send, 422, "Invalid input",
+            send,
+            422,
+            "Invalid input",
             f"field '{field}'{f' of item {index}' if index is not None else ''} contains the "
             "NUL character (\\u0000), which no string may hold; nothing was stored",
-            errors=[{"index": index, "field": field, "reason": "contains the NUL character"}])
+            errors=[{"index": index, "field": field, "reason": "contains the NUL character"}],
+        )
 
     async def _refuse(self, send: Any) -> None:
-        await _send_problem(send, 413, "Payload too large",
-                            f"the request body exceeds {self.limit} bytes "
-                            "(BELATED_MAX_BODY_BYTES); nothing was stored")
+        await _send_problem(
+            send,
+            413,
+            "Payload too large",
+            f"the request body exceeds {self.limit} bytes "
+            "(BELATED_MAX_BODY_BYTES); nothing was stored",
+        )
 
 
 def _nul_path(body: bytes) -> tuple[int | None, str] | None:
@@ -78,8 +85,11 @@ def _nul_path(body: bytes) -> tuple[int | None, str] | None:
     def walk(node: Any, path: list[str | int]) -> list[str | int] | None:
         if isinstance(node, str):
             return path if "\x00" in node else None
-        items = node.items() if isinstance(node, dict) else (
-            enumerate(node) if isinstance(node, list) else ())
+        items = (
+            node.items()
+            if isinstance(node, dict)
+            else (enumerate(node) if isinstance(node, list) else ())
+        )
         for key, value in items:
             if isinstance(key, str) and "\x00" in key:
                 return [*path, key]
@@ -92,23 +102,39 @@ def _nul_path(body: bytes) -> tuple[int | None, str] | None:
     if path is None:
         return None
     index = next((p for p in path if isinstance(p, int)), None)
-    field = ".".join(str(p) for p in path if not isinstance(p, int)
-                     and p not in ("predictions", "labels")) or "body"
+    field = (
+        ".".join(
+            str(p) for p in path if not isinstance(p, int) and p not in ("predictions", "labels")
+        )
+        or "body"
+    )
     return index, field
 
 
-async def _send_problem(send: Any, status: int, title: str, detail: str,
-                        errors: list[dict[str, Any]] | None = None) -> None:
+async def _send_problem(
+    send: Any, status: int, title: str, detail: str, errors: list[dict[str, Any]] | None = None
+) -> None:
     """Answer with problem details straight from the middleware."""
-    doc: dict[str, Any] = {"type": "about:blank", "title": title, "status": status,
-                           "detail": detail}
+    doc: dict[str, Any] = {
+        "type": "about:blank",
+        "title": title,
+        "status": status,
+        "detail": detail,
+    }
     if errors:
         doc["errors"] = errors
     body = orjson.dumps(doc)
-    await send({"type": "http.response.start", "status": status,
-                "headers": [(b"content-type", MEDIA.encode()),
-                            (b"content-length", str(len(body)).encode()),
-                            (b"connection", b"close")]})
+    await send(
+        {
+            "type": "http.response.start",
+            "status": status,
+            "headers": [
+                (b"content-type", MEDIA.encode()),
+                (b"content-length", str(len(body)).encode()),
+                (b"connection", b"close"),
+            ],
+        }
+    )
     await send({"type": "http.response.body", "body": body})
 
 
@@ -124,6 +150,6 @@ def _replay(chunks: list[bytes], tail: dict[str, Any] | None, upstream: Any) -> 
             if tail is not None:
                 return tail
             return {"type": "http.request", "body": body, "more_body": False}
-        return await upstream()
+        return cast(dict[str, Any], await upstream())
 
     return receive

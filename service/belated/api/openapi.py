@@ -12,39 +12,83 @@ PROBLEM = {
     "type": "object",
     "required": ["title", "status", "detail"],
     "properties": {
-        "type": {"type": "string"}, "title": {"type": "string"},
-        "status": {"type": "integer"}, "detail": {"type": "string"},
-        "errors": {"type": "array", "items": {
-            "type": "object",
-            "properties": {"index": {"type": ["integer", "null"]}, "field": {"type": "string"},
-                           "reason": {"type": "string"}}}},
+        "type": {"type": "string"},
+        "title": {"type": "string"},
+        "status": {"type": "integer"},
+        "detail": {"type": "string"},
+        "errors": {
+            "type": "array",
+            "items": {
+                "type": "object",
+                "properties": {
+                    "index": {"type": ["integer", "null"]},
+                    "field": {"type": "string"},
+                    "reason": {"type": "string"},
+                },
+            },
+        },
     },
     "additionalProperties": True,
 }
-ERRORS = {"400": "Not JSON", "401": "No valid token", "403": "A scope is missing",
-          "404": "Not found in this project", "409": "Conflict", "413": "Too large",
-          "422": "Invalid input", "503": "The store is unreachable; retry"}
+ERRORS = {
+    "400": "Not JSON",
+    "401": "No valid token",
+    "403": "A scope is missing",
+    "404": "Not found in this project",
+    "409": "Conflict",
+    "413": "Too large",
+    "422": "Invalid input",
+    "503": "The store is unreachable; retry",
+}
 TAGS = {"type": ["object", "null"], "additionalProperties": {"type": "string"}}
-PREDICTIONS = {"type": "object", "required": ["predictions"], "properties": {
-    "predictions": {"type": "array", "items": {
-        "type": "object", "required": ["id", "ts"],
-        "properties": {
-            "id": {"type": "string", "minLength": 1, "maxLength": 128},
-            "ts": {"type": "string", "format": "date-time"},
-            "score": {"type": "number", "minimum": 0, "maximum": 1},
-            "scores": {"type": "object", "additionalProperties": {"type": "number"}},
-            "predicted": {"type": ["string", "integer"]}, "tags": TAGS}}}}}
-LABELS = {"type": "object", "required": ["labels"], "properties": {
-    "labels": {"type": "array", "items": {
-        "type": "object", "required": ["id", "actual"],
-        "properties": {"id": {"type": "string", "minLength": 1, "maxLength": 128},
-                       "actual": {"type": ["string", "integer"]},
-                       "ts": {"type": "string", "format": "date-time"}}}}}}
+PREDICTIONS = {
+    "type": "object",
+    "required": ["predictions"],
+    "properties": {
+        "predictions": {
+            "type": "array",
+            "items": {
+                "type": "object",
+                "required": ["id", "ts"],
+                "properties": {
+                    "id": {"type": "string", "minLength": 1, "maxLength": 128},
+                    "ts": {"type": "string", "format": "date-time"},
+                    "score": {"type": "number", "minimum": 0, "maximum": 1},
+                    "scores": {"type": "object", "additionalProperties": {"type": "number"}},
+                    "predicted": {"type": ["string", "integer"]},
+                    "tags": TAGS,
+                },
+            },
+        }
+    },
+}
+LABELS = {
+    "type": "object",
+    "required": ["labels"],
+    "properties": {
+        "labels": {
+            "type": "array",
+            "items": {
+                "type": "object",
+                "required": ["id", "actual"],
+                "properties": {
+                    "id": {"type": "string", "minLength": 1, "maxLength": 128},
+                    "actual": {"type": ["string", "integer"]},
+                    "ts": {"type": "string", "format": "date-time"},
+                },
+            },
+        }
+    },
+}
 
 
 def _problem(description: str) -> dict[str, Any]:
-    return {"description": description, "content": {"application/problem+json": {
-        "schema": {"$ref": "#/components/schemas/ProblemDetails"}}}}
+    return {
+        "description": description,
+        "content": {
+            "application/problem+json": {"schema": {"$ref": "#/components/schemas/ProblemDetails"}}
+        },
+    }
 
 
 def install(app: FastAPI) -> None:
@@ -53,8 +97,9 @@ def install(app: FastAPI) -> None:
     def build() -> dict[str, Any]:
         if app.openapi_schema:
             return app.openapi_schema
-        doc = get_openapi(title=app.title, version=app.version, description=app.description,
-                          routes=app.routes)
+        doc = get_openapi(
+            title=app.title, version=app.version, description=app.description, routes=app.routes
+        )
         components = doc.setdefault("components", {})
         components.setdefault("schemas", {})["ProblemDetails"] = PROBLEM
         for name in ("HTTPValidationError", "ValidationError"):
@@ -68,18 +113,23 @@ def install(app: FastAPI) -> None:
                     for code, text in ERRORS.items():
                         responses[code] = _problem(text)
                 elif path == "/healthz":
-                    responses["503"] = {"description": "The store is down",
-                                        "content": {"application/json": {"schema": {
-                                            "type": "object"}}}}
+                    responses["503"] = {
+                        "description": "The store is down",
+                        "content": {"application/json": {"schema": {"type": "object"}}},
+                    }
                 elif path == "/metrics":
                     responses["401"] = _problem("The token is not valid")
                     responses["403"] = _problem("A scope is missing")
                 if method == "post" and path.endswith("/predictions"):
-                    op["requestBody"] = {"required": True, "content": {
-                        "application/json": {"schema": PREDICTIONS}}}
+                    op["requestBody"] = {
+                        "required": True,
+                        "content": {"application/json": {"schema": PREDICTIONS}},
+                    }
                 if method == "post" and path.endswith("/labels"):
-                    op["requestBody"] = {"required": True, "content": {
-                        "application/json": {"schema": LABELS}}}
+                    op["requestBody"] = {
+                        "required": True,
+                        "content": {"application/json": {"schema": LABELS}},
+                    }
         app.openapi_schema = doc
         return doc
 

@@ -17,18 +17,34 @@ from belated.errors import Problem
 log = logging.getLogger(__name__)
 
 MEDIA = "application/problem+json"
-TITLES = {400: "Bad request", 401: "Unauthorized", 403: "Forbidden", 404: "Not found",
-          405: "Method not allowed", 409: "Conflict", 413: "Payload too large",
-          422: "Invalid input", 503: "Service unavailable"}
+TITLES = {
+    400: "Bad request",
+    401: "Unauthorized",
+    403: "Forbidden",
+    404: "Not found",
+    405: "Method not allowed",
+    409: "Conflict",
+    413: "Payload too large",
+    422: "Invalid input",
+    503: "Service unavailable",
+}
 
 
 def problem_response(
-    status: int, detail: str, *, title: str | None = None,
-    headers: dict[str, str] | None = None, **extra: Any,
+    status: int,
+    detail: str,
+    *,
+    title: str | None = None,
+    headers: dict[str, str] | None = None,
+    **extra: Any,
 ) -> Response:
     """A problem+json response."""
-    body: dict[str, Any] = {"type": "about:blank", "title": title or TITLES.get(status, "Error"),
-                            "status": status, "detail": detail}
+    body: dict[str, Any] = {
+        "type": "about:blank",
+        "title": title or TITLES.get(status, "Error"),
+        "status": status,
+        "detail": detail,
+    }
     body.update({k: v for k, v in extra.items() if v is not None})
     return Response(orjson.dumps(body), status_code=status, media_type=MEDIA, headers=headers)
 
@@ -45,8 +61,14 @@ def install(app: FastAPI) -> None:
 
     @app.exception_handler(Problem)
     async def _problem(_: Request, exc: Problem) -> Response:
-        return problem_response(exc.status, exc.detail, title=exc.title, headers=exc.headers,
-                                errors=exc.errors, **exc.extra)
+        return problem_response(
+            exc.status,
+            exc.detail,
+            title=exc.title,
+            headers=exc.headers,
+            errors=exc.errors,
+            **exc.extra,
+        )
 
     @app.exception_handler(RequestValidationError)
     async def _invalid(_: Request, exc: RequestValidationError) -> Response:
@@ -68,12 +90,15 @@ def install(app: FastAPI) -> None:
     async def _store_down(_: Request, exc: OperationalError) -> Response:
         log.warning("answered 503: %s: %s", type(exc.orig).__name__, str(exc.orig)[:200])
         return problem_response(
-            503, "the store is unreachable or busy; retry shortly (nothing was stored)",
-            headers={"Retry-After": "2"})
+            503,
+            "the store is unreachable or busy; retry shortly (nothing was stored)",
+            headers={"Retry-After": "2"},
+        )
 
     @app.exception_handler(DBAPIError)
     async def _store_error(_: Request, exc: DBAPIError) -> Response:
         if exc.connection_invalidated:
-            return problem_response(503, "the store connection was lost; retry shortly",
-                                    headers={"Retry-After": "2"})
+            return problem_response(
+                503, "the store connection was lost; retry shortly", headers={"Retry-After": "2"}
+            )
         raise exc

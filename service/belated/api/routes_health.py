@@ -21,17 +21,19 @@ def health(request: Request) -> dict[str, Any]:
     state = request.app.state
     jobs = getattr(state, "jobs", None)
     answer: dict[str, Any] = {
-        "status": "ok", "store": "up",
+        "status": "ok",
+        "store": "up",
         "jobs": {"enabled": jobs is not None, "leader": bool(jobs and jobs.is_leader())},
-        "last_refresh": None, "refresh_lag_seconds": None, "dirty_buckets": None,
-        "oldest_dirty_bucket": None, "outbox_backlog": None,
+        "last_refresh": None,
+        "refresh_lag_seconds": None,
+        "dirty_buckets": None,
+        "oldest_dirty_bucket": None,
+        "outbox_backlog": None,
     }
     try:
         with state.engine.connect() as conn:
             conn.execute(text("SELECT 1"))
-            n, oldest = conn.execute(
-                select(func.count(), func.min(DirtyBucket.marked_at))
-            ).one()
+            n, oldest = conn.execute(select(func.count(), func.min(DirtyBucket.marked_at))).one()
             last = conn.execute(
                 select(ServiceState.value).where(ServiceState.key == "last_refresh")
             ).scalar()

@@ -20,10 +20,10 @@ def post_predictions(
     """Store a batch of predictions; a repeat with the same content is a duplicate."""
     row = models.get(session=session, project_id=who.project_id, name=model)
     settings = request.app.state.settings
-    items = validate_predictions(body, models.spec_of(row), now=now(),
-                                 max_batch=settings.max_batch)
-    answer = predictions.ingest(session=session, model_id=row.id, preds=items,
-                                batch_size=len(body["predictions"]))
+    items = validate_predictions(body, models.spec_of(row), now=now(), max_batch=settings.max_batch)
+    answer = predictions.ingest(
+        session=session, model_id=row.id, preds=items, batch_size=len(body["predictions"])
+    )
     request.app.state.counters.add("predictions", answer["accepted"])
     return PredictionsAnswer(**answer)
 

@@ -15,10 +15,16 @@ router = APIRouter(prefix="/v1/keys", tags=["keys"])
 @router.post("", status_code=201, response_model=KeyRead)
 def create_key(body: KeyCreate, who: Admin, session: SessionDep) -> KeyRead:
     """Create a token for this project; the answer is the only time the secret is shown."""
-    row, secret = keys.create(session=session, project_id=who.project_id,
-                              scopes=sorted(set(body.scopes)), name=body.name)
-    return KeyRead(id=row.id, scopes=row.scopes.split(","), name=row.name,
-                   created_at=row.created_at, token=secret)
+    row, secret = keys.create(
+        session=session, project_id=who.project_id, scopes=sorted(set(body.scopes)), name=body.name
+    )
+    return KeyRead(
+        id=row.id,
+        scopes=row.scopes.split(","),
+        name=row.name,
+        created_at=row.created_at,
+        token=secret,
+    )
 
 
 @router.delete("/{key_id}", status_code=204)

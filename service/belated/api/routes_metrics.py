@@ -18,11 +18,20 @@ router = APIRouter(prefix="/v1/models/{model}", tags=["history"])
 
 @router.get("/metrics")
 def get_metrics(
-    model: str, who: Read, session: SessionDep, request: Request,
-    granularity: str = "day", start: str | None = None, end: str | None = None,
-    rolling: int = Query(1, ge=1, le=1000), beta: float | None = None,
-    precision_weight: float | None = None, interval: str = "wilson",
-    confidence: float = 0.95, resamples: int = 200, measures: str | None = None,
+    model: str,
+    who: Read,
+    session: SessionDep,
+    request: Request,
+    granularity: str = "day",
+    start: str | None = None,
+    end: str | None = None,
+    rolling: int = Query(1, ge=1, le=1000),
+    beta: float | None = None,
+    precision_weight: float | None = None,
+    interval: str = "wilson",
+    confidence: float = 0.95,
+    resamples: int = 200,
+    measures: str | None = None,
     segment: list[str] | None = Query(None),
 ) -> Response:
     """Windows with counts, coverage, settled, measures with intervals, estimates, bounds."""
@@ -32,21 +41,40 @@ def get_metrics(
     filters = params.parse_segments(segment)
     row = models.get(session=session, project_id=who.project_id, name=model)
     wanted = params.parse_measures(measures, row.kind)
-    opts = Options(beta=b, interval=interval, confidence=confidence, resamples=resamples,
-                   measures=wanted, rolling=rolling)
-    windows = build(session, row, rng, opts, filters, now(),
-                    request.app.state.settings.max_segment_values)
+    opts = Options(
+        beta=b,
+        interval=interval,
+        confidence=confidence,
+        resamples=resamples,
+        measures=wanted,
+        rolling=rolling,
+    )
+    windows = build(
+        session, row, rng, opts, filters, now(), request.app.state.settings.max_segment_values
+    )
     # serialised directly: FastAPI's generic encoder costs more than the measures for a year
-    body = {"model": row.name, "granularity": granularity, "rolling": rolling, "beta": b,
-            "segment": [f"{k}:{v}" for k, v in filters], "windows": windows}
-    return Response(orjson.dumps(body, option=orjson.OPT_SERIALIZE_NUMPY),
-                    media_type="application/json")
+    body = {
+        "model": row.name,
+        "granularity": granularity,
+        "rolling": rolling,
+        "beta": b,
+        "segment": [f"{k}:{v}" for k, v in filters],
+        "windows": windows,
+    }
+    return Response(
+        orjson.dumps(body, option=orjson.OPT_SERIALIZE_NUMPY), media_type="application/json"
+    )
 
 
 @router.get("/thresholds")
 def get_thresholds(
-    model: str, who: Read, session: SessionDep, request: Request,
-    start: str | None = None, end: str | None = None, beta: float | None = None,
+    model: str,
+    who: Read,
+    session: SessionDep,
+    request: Request,
+    start: str | None = None,
+    end: str | None = None,
+    beta: float | None = None,
     precision_weight: float | None = None,
     precision_target: float | None = Query(None, ge=0, le=1),
     recall_target: float | None = Query(None, ge=0, le=1),
@@ -55,22 +83,38 @@ def get_thresholds(
     rng = params.parse_range("hour", start, end, now(), default_windows=30 * 24)
     b = params.parse_beta(beta, precision_weight)
     row = models.get(session=session, project_id=who.project_id, name=model)
-    answer = extras.thresholds(session, row, start=rng.start, end=rng.end, beta=b,
-                               precision_target=precision_target, recall_target=recall_target,
-                               now=now(), max_values=request.app.state.settings.max_segment_values)
+    answer = extras.thresholds(
+        session,
+        row,
+        start=rng.start,
+        end=rng.end,
+        beta=b,
+        precision_target=precision_target,
+        recall_target=recall_target,
+        now=now(),
+        max_values=request.app.state.settings.max_segment_values,
+    )
     return {"model": row.name, "beta": b, **answer}
 
 
 @router.get("/delays")
 def get_delays(
-    model: str, who: Read, session: SessionDep, request: Request,
-    start: str | None = None, end: str | None = None,
+    model: str,
+    who: Read,
+    session: SessionDep,
+    request: Request,
+    start: str | None = None,
+    end: str | None = None,
 ) -> dict[str, Any]:
     """Label delay quantiles (Kaplan-Meier) and coverage by window age."""
     rng = params.parse_range("hour", start, end, now(), default_windows=90 * 24)
     row = models.get(session=session, project_id=who.project_id, name=model)
-    answer = extras.delays(session, row, start=rng.start, end=rng.end, now=now(),
-                           max_values=request.app.state.settings.max_segment_values)
+    answer = extras.delays(
+        session,
+        row,
+        start=rng.start,
+        end=rng.end,
+        now=now(),
+        max_values=request.app.state.settings.max_segment_values,
+    )
     return {"model": row.name, **answer}
-
-

@@ -20,11 +20,18 @@ router = APIRouter(prefix="/v1/models", tags=["models"])
 def read_model(session: Any, model: ModelRow) -> ModelRead:
     """A model with its counts, as the API answers it."""
     return ModelRead(
-        name=model.name, kind=model.kind, classes=model.classes, positive=model.positive,
-        threshold=model.threshold, label_delay_days=model.label_delay_days,
-        min_coverage=model.min_coverage, negative_after_days=model.negative_after_days,
-        segment_keys=model.segment_keys, created_at=to_utc(model.created_at),
-        updated_at=to_utc(model.updated_at), **models.counts(session=session, model=model),
+        name=model.name,
+        kind=model.kind,
+        classes=model.classes,
+        positive=model.positive,
+        threshold=model.threshold,
+        label_delay_days=model.label_delay_days,
+        min_coverage=model.min_coverage,
+        negative_after_days=model.negative_after_days,
+        segment_keys=model.segment_keys,
+        created_at=to_utc(model.created_at),
+        updated_at=to_utc(model.updated_at),
+        **models.counts(session=session, model=model),
     )
 
 
@@ -43,28 +50,34 @@ def decode_cursor(value: str | None) -> str | None:
             raise ValueError("not a cursor")
         return decoded.decode()
     except (ValueError, UnicodeError):
-        raise Problem(422, "the cursor is not one this API gave out",
-                      errors=[{"index": None, "field": "cursor", "reason": "malformed"}]) from None
+        raise Problem(
+            422,
+            "the cursor is not one this API gave out",
+            errors=[{"index": None, "field": "cursor", "reason": "malformed"}],
+        ) from None
 
 
 @router.post("", status_code=201, response_model=ModelRead)
 def create_model(body: ModelCreate, who: Admin, session: SessionDep) -> ModelRead:
     """Create a model."""
-    model = models.create(session=session, project_id=who.project_id,
-                          fields=body.model_dump(exclude_unset=False))
+    model = models.create(
+        session=session, project_id=who.project_id, fields=body.model_dump(exclude_unset=False)
+    )
     return read_model(session, model)
 
 
 @router.get("", response_model=ModelPage)
 def list_models(
-    who: Read, session: SessionDep, cursor: str | None = None,
+    who: Read,
+    session: SessionDep,
+    cursor: str | None = None,
     limit: int = Query(50, ge=1, le=500),
 ) -> ModelPage:
     """List the project's models."""
-    rows, last = models.list_(session=session, project_id=who.project_id,
-                              after=decode_cursor(cursor), limit=limit)
-    return ModelPage(items=[read_model(session, m) for m in rows],
-                     next_cursor=encode_cursor(last))
+    rows, last = models.list_(
+        session=session, project_id=who.project_id, after=decode_cursor(cursor), limit=limit
+    )
+    return ModelPage(items=[read_model(session, m) for m in rows], next_cursor=encode_cursor(last))
 
 
 @router.get("/{model}", response_model=ModelRead)
@@ -80,8 +93,11 @@ def update_model(model: str, body: ModelUpdate, who: Admin, session: SessionDep)
     fields = body.model_dump(exclude_unset=True)
     for key in ("threshold", "label_delay_days", "min_coverage"):
         if key in fields and fields[key] is None:
-            raise Problem(422, f"'{key}' cannot be null",
-                          errors=[{"index": None, "field": key, "reason": "cannot be null"}])
+            raise Problem(
+                422,
+                f"'{key}' cannot be null",
+                errors=[{"index": None, "field": key, "reason": "cannot be null"}],
+            )
     return read_model(session, models.update(session=session, model=row, fields=fields))
 
 

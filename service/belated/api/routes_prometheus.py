@@ -26,8 +26,9 @@ def metrics(request: Request) -> PlainTextResponse:
         with request.app.state.sessions() as session:
             who = keys.resolve(session=session, token=token)
             if who is None:
-                raise Problem(401, "the bearer token is not valid",
-                              headers={"WWW-Authenticate": "Bearer"})
+                raise Problem(
+                    401, "the bearer token is not valid", headers={"WWW-Authenticate": "Bearer"}
+                )
             if "read" not in who.scopes:
                 raise Problem(403, "this token lacks the 'read' scope")
             prom.model_metrics(out, prom.cached(session, who.project_id))

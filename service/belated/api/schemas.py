@@ -66,7 +66,7 @@ class ModelCreate(ModelSettings):
                 raise ValueError("a multiclass model needs its classes")
             if self.positive is not None:
                 raise ValueError("a multiclass model has no positive class")
-        self.classes = list(classes)  # type: ignore[arg-type]
+        self.classes = list(classes)
         return self
 
 

@@ -9,7 +9,7 @@ from __future__ import annotations
 import math
 from dataclasses import dataclass
 from datetime import datetime, timedelta
-from typing import Any
+from typing import Any, cast
 
 from belated.errors import Invalid, Problem, field_error
 from belated.timeutil import parse_ts
@@ -76,9 +76,7 @@ def class_value(value: Any) -> str | None:
 
 def _items(body: Any, key: str, max_batch: int) -> list[Any]:
     if not isinstance(body, dict) or not isinstance(body.get(key), list):
-        raise Invalid(
-            [field_error(None, key, f"the body must be an object with a list '{key}'")]
-        )
+        raise Invalid([field_error(None, key, f"the body must be an object with a list '{key}'")])
     items = body[key]
     if len(items) > max_batch:
         raise Problem(
@@ -87,7 +85,7 @@ def _items(body: Any, key: str, max_batch: int) -> list[Any]:
             "(BELATED_MAX_BATCH). Split the batch. Nothing was stored.",
             title="Batch too large",
         )
-    return items
+    return cast(list[Any], items)
 
 
 def _check_id(i: int, item: dict[str, Any], errors: list[dict[str, Any]]) -> str | None:
@@ -209,8 +207,12 @@ def _check_scores(
 
 
 def _predicted(
-    i: int, item: dict[str, Any], spec: ModelSpec, score: float | None,
-    scores: dict[str, float] | None, errors: list[dict[str, Any]],
+    i: int,
+    item: dict[str, Any],
+    spec: ModelSpec,
+    score: float | None,
+    scores: dict[str, float] | None,
+    errors: list[dict[str, Any]],
 ) -> str | None:
     raw = item.get("predicted")
     if raw is not None:
@@ -258,9 +260,13 @@ def validate_predictions(
         if pid in seen:
             first = out[seen[pid]]
             if not first.same_as(pred):
-                errors.append(field_error(
-                    i, "id", f"id {pid!r} also at index {_index_of(items, seen, pid)} "
-                    "with different content"))
+                errors.append(
+                    field_error(
+                        i,
+                        "id",
+                        f"id {pid!r} also at index {_index_of(items, pid)} with different content",
+                    )
+                )
             continue
         seen[pid] = len(out)
         out.append(pred)
@@ -269,16 +275,14 @@ def validate_predictions(
     return out
 
 
-def _index_of(items: list[Any], seen: dict[str, int], pid: str) -> int:
+def _index_of(items: list[Any], pid: str) -> int:
     for j, item in enumerate(items):
         if isinstance(item, dict) and str(item.get("id")) == pid:
             return j
     return -1
 
 
-def validate_labels(
-    body: Any, spec: ModelSpec, *, now: datetime, max_batch: int
-) -> list[LabelIn]:
+def validate_labels(body: Any, spec: ModelSpec, *, now: datetime, max_batch: int) -> list[LabelIn]:
     """Check a whole labels batch; `ts` defaults to the time of receipt."""
     items = _items(body, "labels", max_batch)
     errors: list[dict[str, Any]] = []
@@ -304,9 +308,14 @@ def validate_labels(
         if pid in first_at:
             earlier = out[first_at[pid]]
             if earlier.actual != label.actual:
-                errors.append(field_error(
-                    i, "id", f"id {pid!r} also at index {_index_of(items, {}, pid)} "
-                    "with a different 'actual'"))
+                errors.append(
+                    field_error(
+                        i,
+                        "id",
+                        f"id {pid!r} also at index {_index_of(items, pid)} "
+                        "with a different 'actual'",
+                    )
+                )
                 continue
         else:
             first_at[pid] = len(out)

@@ -16,23 +16,44 @@ from belated.store.packing import unpack_delays
 from belated.store.tables import ModelRow
 
 
-def thresholds(session: Session, model: ModelRow, *, start: datetime, end: datetime,
-               beta: float, precision_target: float | None, recall_target: float | None,
-               now: datetime, max_values: int) -> dict[str, Any]:
+def thresholds(
+    session: Session,
+    model: ModelRow,
+    *,
+    start: datetime,
+    end: datetime,
+    beta: float,
+    precision_target: float | None,
+    recall_target: float | None,
+    now: datetime,
+    max_values: int,
+) -> dict[str, Any]:
     """Measures at every bin edge over the labelled predictions of [start, end)."""
     lo, hi = epoch_hour(start), epoch_hour(end)
     ensure_fresh(session, model, lo, hi, max_values)
     total = Acc()
     for acc in load_hours(session, model, level="h", lo=lo, hi=hi, filters=(), now=now).values():
         total.add(acc)
-    answer = sweep(total.hist[0], total.hist[1], beta=beta, precision_target=precision_target,
-                   recall_target=recall_target)
+    answer = sweep(
+        total.hist[0],
+        total.hist[1],
+        beta=beta,
+        precision_target=precision_target,
+        recall_target=recall_target,
+    )
     answer["labelled"] = int(total.hist[0].sum() + total.hist[1].sum())
     return answer
 
 
-def delays(session: Session, model: ModelRow, *, start: datetime, end: datetime,
-           now: datetime, max_values: int) -> dict[str, Any]:
+def delays(
+    session: Session,
+    model: ModelRow,
+    *,
+    start: datetime,
+    end: datetime,
+    now: datetime,
+    max_values: int,
+) -> dict[str, Any]:
     """Kaplan-Meier delay quantiles (unlabelled predictions censored at their age) and
     coverage by window age in days."""
     lo, hi = epoch_hour(start), epoch_hour(end)
@@ -63,7 +84,8 @@ def delays(session: Session, model: ModelRow, *, start: datetime, end: datetime,
         "quantiles": km_quantiles(delay_hist, censored),
         "coverage_by_age": [
             {"age_days": d, "coverage": round(v[1] / v[0], 6), "predictions": v[0]}
-            for d, v in sorted(by_age.items()) if v[0]
+            for d, v in sorted(by_age.items())
+            if v[0]
         ],
         "start": start.isoformat().replace("+00:00", "Z"),
         "end": end.isoformat().replace("+00:00", "Z"),

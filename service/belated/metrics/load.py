@@ -26,13 +26,15 @@ def ensure_fresh(session: Session, model: ModelRow, lo: int, hi: int, max_values
     refresh.sweep_model(session, model)
     # one transaction takes its locks in ascending hour order, as writers mark them, so a
     # read and a writer never wait on each other in a cycle
-    while claimed := refresh.refresh_claimed(session, max_values=max_values,
-                                             model_id=model.id, lo=lo, hi=hi, wait=True):
+    while claimed := refresh.refresh_claimed(
+        session, max_values=max_values, model_id=model.id, lo=lo, hi=hi, wait=True
+    ):
         lo = max(hour for _, hour, _ in claimed) + 1
 
 
-def _rollup_segment(session: Session, model: ModelRow,
-                    filters: tuple[tuple[str, str], ...]) -> tuple[str, str] | None:
+def _rollup_segment(
+    session: Session, model: ModelRow, filters: tuple[tuple[str, str], ...]
+) -> tuple[str, str] | None:
     """The rollup segment answering `filters`, or None when raw rows must answer."""
     if not filters:
         return "", ""
@@ -45,23 +47,46 @@ def _rollup_segment(session: Session, model: ModelRow,
     return None
 
 
-def load_hours(session: Session, model: ModelRow, *, level: str, lo: int, hi: int,
-               filters: tuple[tuple[str, str], ...], now: datetime, delays: bool = True
-               ) -> dict[int, Acc]:
+def load_hours(
+    session: Session,
+    model: ModelRow,
+    *,
+    level: str,
+    lo: int,
+    hi: int,
+    filters: tuple[tuple[str, str], ...],
+    now: datetime,
+    delays: bool = True,
+) -> dict[int, Acc]:
     """Accumulators keyed by row start hour (hourly or daily rows) over [lo, hi);
     `delays=False` leaves out the label-delay bins (the windows do not use them)."""
     seg = _rollup_segment(session, model, filters)
     if seg is None:
         return _from_raw(session, model, level=level, lo=lo, hi=hi, filters=filters, now=now)
     lo_q = lo - lo % 24 if level == "d" else lo
-    rows = session.execute(select(Rollup.__table__).where(
-        Rollup.model_id == model.id, Rollup.level == level, Rollup.start >= lo_q,
-        Rollup.start < hi, Rollup.seg_key == seg[0], Rollup.seg_value == seg[1]))
+    rows = session.execute(
+        select(Rollup.__table__).where(
+            Rollup.model_id == model.id,
+            Rollup.level == level,
+            Rollup.start >= lo_q,
+            Rollup.start < hi,
+            Rollup.seg_key == seg[0],
+            Rollup.seg_value == seg[1],
+        )
+    )
     return {row.start: Acc.from_row(row, delays) for row in rows}
 
 
-def _from_raw(session: Session, model: ModelRow, *, level: str, lo: int, hi: int,
-              filters: tuple[tuple[str, str], ...], now: datetime) -> dict[int, Acc]:
+def _from_raw(
+    session: Session,
+    model: ModelRow,
+    *,
+    level: str,
+    lo: int,
+    hi: int,
+    filters: tuple[tuple[str, str], ...],
+    now: datetime,
+) -> dict[int, Acc]:
     """The same statistics aggregated by SQL over raw rows with every tag filter applied."""
     scope = replace(rollups.scope_of(model, range(lo, hi), now), filters=filters)
     hourly = rollups.compute(session, scope, {})
@@ -72,15 +97,20 @@ def _from_raw(session: Session, model: ModelRow, *, level: str, lo: int, hi: int
     return dict(out)
 
 
-def segment_counts(session: Session, model: ModelRow, *, key: str, level: str, lo: int,
-                   hi: int) -> dict[int, dict[str, int]]:
+def segment_counts(
+    session: Session, model: ModelRow, *, key: str, level: str, lo: int, hi: int
+) -> dict[int, dict[str, int]]:
     """Predictions per admitted value of one tag key, by row start (for tag PSI)."""
     out: dict[int, dict[str, int]] = defaultdict(dict)
     lo_q = lo - lo % 24 if level == "d" else lo
     for start, value, n in session.execute(
         select(Rollup.start, Rollup.seg_value, Rollup.n_pred).where(
-            Rollup.model_id == model.id, Rollup.level == level, Rollup.start >= lo_q,
-            Rollup.start < hi, Rollup.seg_key == key)
+            Rollup.model_id == model.id,
+            Rollup.level == level,
+            Rollup.start >= lo_q,
+            Rollup.start < hi,
+            Rollup.seg_key == key,
+        )
     ):
         out[start][value] = int(n)
     return dict(out)

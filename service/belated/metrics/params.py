@@ -41,8 +41,13 @@ def _bad(field: str, reason: str) -> Invalid:
     return Invalid([field_error(None, field, reason)], detail=f"'{field}': {reason}")
 
 
-def parse_range(granularity: str, start: str | None, end: str | None, now: datetime,
-                default_windows: int = DEFAULT_WINDOWS) -> Range:
+def parse_range(
+    granularity: str,
+    start: str | None,
+    end: str | None,
+    now: datetime,
+    default_windows: int = DEFAULT_WINDOWS,
+) -> Range:
     """Align [start, end) down to window boundaries; default the last 30 windows to now."""
     if granularity not in GRANULARITIES:
         raise _bad("granularity", f"must be one of {', '.join(GRANULARITIES)}")
@@ -76,8 +81,9 @@ def parse_beta(beta: float | None, precision_weight: float | None) -> float:
     try:
         return resolve_beta(beta, precision_weight)
     except ValueError as exc:
-        raise _bad("precision_weight" if precision_weight is not None else "beta",
-                   str(exc)) from None
+        raise _bad(
+            "precision_weight" if precision_weight is not None else "beta", str(exc)
+        ) from None
 
 
 def parse_segments(values: list[str] | None) -> tuple[tuple[str, str], ...]:
@@ -94,8 +100,8 @@ def parse_segments(values: list[str] | None) -> tuple[tuple[str, str], ...]:
 
 
 MULTICLASS_MEASURES = ("accuracy",) + tuple(
-    f"{m}_{avg}" for m in ("precision", "recall", "fbeta") for avg in ("macro", "micro",
-                                                                      "weighted"))
+    f"{m}_{avg}" for m in ("precision", "recall", "fbeta") for avg in ("macro", "micro", "weighted")
+)
 
 
 def parse_measures(text: str | None, kind: str = "binary") -> frozenset[str] | None:
@@ -106,8 +112,11 @@ def parse_measures(text: str | None, kind: str = "binary") -> frozenset[str] | N
     if kind == "multiclass":
         unknown = sorted(set(names) - set(MULTICLASS_MEASURES))
         if unknown:
-            raise _bad("measures", f"unknown measures for a multiclass model: "
-                       f"{', '.join(unknown)}; choose from {', '.join(MULTICLASS_MEASURES)}")
+            raise _bad(
+                "measures",
+                f"unknown measures for a multiclass model: "
+                f"{', '.join(unknown)}; choose from {', '.join(MULTICLASS_MEASURES)}",
+            )
         return frozenset(names)
     try:
         return check_measures(names)

@@ -43,14 +43,26 @@ def to_stats(acc: Acc) -> WindowStats:
     c: dict[str, Any] = {n: acc.scalar(n) for n in SCALARS}
     delays = acc.delays if acc.delays is not None else WindowStats.empty().delay_hist
     return WindowStats(
-        **c, hist_all=acc.hist.sum(axis=0), ssum_all=acc.hsum.sum(axis=0),
-        hist_pos=acc.hist[0].copy(), ssum_pos=acc.hsum[0].copy(),
-        hist_neg=acc.hist[1].copy(), ssum_neg=acc.hsum[1].copy(), delay_hist=delays)
+        **c,
+        hist_all=acc.hist.sum(axis=0),
+        ssum_all=acc.hsum.sum(axis=0),
+        hist_pos=acc.hist[0].copy(),
+        ssum_pos=acc.hsum[0].copy(),
+        hist_neg=acc.hist[1].copy(),
+        ssum_neg=acc.hsum[1].copy(),
+        delay_hist=delays,
+    )
 
 
-def bucket_accs(session: Session, model: ModelRow, rng: Range, lookback: int,
-                 filters: tuple[tuple[str, str], ...], now: datetime, max_values: int
-                 ) -> tuple[list[datetime], list[Acc]]:
+def bucket_accs(
+    session: Session,
+    model: ModelRow,
+    rng: Range,
+    lookback: int,
+    filters: tuple[tuple[str, str], ...],
+    now: datetime,
+    max_values: int,
+) -> tuple[list[datetime], list[Acc]]:
     """One accumulator per base window, from `lookback` windows before the range."""
     step = rng.step
     first = rng.start - lookback * step
@@ -58,8 +70,9 @@ def bucket_accs(session: Session, model: ModelRow, rng: Range, lookback: int,
     lo, hi = epoch_hour(first), epoch_hour(rng.end)
     ensure_fresh(session, model, lo, hi, max_values)
     level = "h" if rng.granularity == "hour" else "d"
-    rows = load_hours(session, model, level=level, lo=lo, hi=hi, filters=filters, now=now,
-                      delays=False)
+    rows = load_hours(
+        session, model, level=level, lo=lo, hi=hi, filters=filters, now=now, delays=False
+    )
     accs = [Acc() for _ in starts]
     index = {epoch_hour(s): i for i, s in enumerate(starts)}
     span = int(step / timedelta(hours=1))
@@ -82,9 +95,15 @@ def settled_window(acc: Acc, end: datetime, model: ModelRow, now: datetime) -> b
     return end + timedelta(days=model.label_delay_days) < now
 
 
-def build(session: Session, model: ModelRow, rng: Range, opts: Options,
-          filters: tuple[tuple[str, str], ...], now: datetime, max_values: int
-          ) -> list[dict[str, Any]]:
+def build(
+    session: Session,
+    model: ModelRow,
+    rng: Range,
+    opts: Options,
+    filters: tuple[tuple[str, str], ...],
+    now: datetime,
+    max_values: int,
+) -> list[dict[str, Any]]:
     """The windows of the range, oldest first, contiguous (empty ones have zero counts)."""
     lookback = opts.rolling - 1 + CALIBRATION_WINDOWS * 2
     starts, base = bucket_accs(session, model, rng, lookback, filters, now, max_values)
@@ -106,22 +125,39 @@ def build(session: Session, model: ModelRow, rng: Range, opts: Options,
             window["estimates"] = {"calibration_error": ece_value}
             binary.append((window, to_stats(acc), prior))
         else:
-            window.update(_multiclass(model, acc, start, opts))
+            window.update(_multiclass(model, acc, opts))
         out.append(window)
     if binary:
         # every binary window in one vectorised pass; each answer equals summarise() alone
         summaries = summarise_many(
-            [b[1] for b in binary], beta=opts.beta, interval=opts.interval,
-            confidence=opts.confidence, resamples=opts.resamples,
-            measures=set(opts.measures) if opts.measures else None)
+            [b[1] for b in binary],
+            beta=opts.beta,
+            interval=opts.interval,
+            confidence=opts.confidence,
+            resamples=opts.resamples,
+            measures=set(opts.measures) if opts.measures else None,
+        )
         # the EM prior is of use where outcomes are missing; skip it where all are in
-        wanted = [i for i, (_, stats, prior) in enumerate(binary)
-                  if prior is not None and 0 < prior < 1 and stats.n_labelled < stats.n_pred]
-        priors = dict(zip(wanted, em_prior_many(
-            np.array([binary[i][1].hist_all for i in wanted]),
-            np.array([binary[i][1].ssum_all for i in wanted]),
-            np.array([binary[i][2] for i in wanted], dtype=np.float64)), strict=True)
-        ) if wanted else {}
+        wanted = [
+            i
+            for i, (_, stats, prior) in enumerate(binary)
+            if prior is not None and 0 < prior < 1 and stats.n_labelled < stats.n_pred
+        ]
+        priors = (
+            dict(
+                zip(
+                    wanted,
+                    em_prior_many(
+                        np.array([binary[i][1].hist_all for i in wanted]),
+                        np.array([binary[i][1].ssum_all for i in wanted]),
+                        np.array([binary[i][2] for i in wanted], dtype=np.float64),
+                    ),
+                    strict=True,
+                )
+            )
+            if wanted
+            else {}
+        )
         for i, ((window, _, _), summary) in enumerate(zip(binary, summaries, strict=True)):
             estimates = {**summary.pop("estimates", {}), **window["estimates"]}
             if i in priors:
@@ -131,8 +167,7 @@ def build(session: Session, model: ModelRow, rng: Range, opts: Options,
     return out
 
 
-def _references(base: list[Acc], settled: list[bool]
-                ) -> list[tuple[float | None, float | None]]:
+def _references(base: list[Acc], settled: list[bool]) -> list[tuple[float | None, float | None]]:
     """For each window, the ECE and prevalence of the trailing settled windows before it:
     label-free estimates hold only for calibrated scores, and EM re-estimates the prior
     from there. All windows at once: each one's last few settled, labelled windows are
@@ -141,8 +176,9 @@ def _references(base: list[Acc], settled: list[bool]
         return []
     hist = np.stack([np.zeros((3, N_BINS), np.int64), *(a.hist for a in base)])
     hsum = np.stack([np.zeros((3, N_BINS), np.float64), *(a.hsum for a in base)])
-    useful = np.array([i + 1 for i, a in enumerate(base) if settled[i] and a.counts[1]],
-                      dtype=np.int64)  # +1: row 0 of the stacks is the empty window
+    useful = np.array(
+        [i + 1 for i, a in enumerate(base) if settled[i] and a.counts[1]], dtype=np.int64
+    )  # +1: row 0 of the stacks is the empty window
     before = np.searchsorted(useful, np.arange(1, len(base) + 1), side="left")
     offsets = np.arange(-CALIBRATION_WINDOWS, 0)
     pick = before[:, None] + offsets[None, :]
@@ -169,13 +205,17 @@ def _references(base: list[Acc], settled: list[bool]
 def _head(acc: Acc, start: datetime, end: datetime, now: datetime) -> dict[str, Any]:
     n, labelled = acc.scalar("n_pred"), acc.scalar("n_labelled")
     return {
-        "start": iso(start), "end": iso(end), "closed": end <= now,
-        "predictions": n, "labelled": labelled, "implied_negatives": acc.scalar("n_implied"),
+        "start": iso(start),
+        "end": iso(end),
+        "closed": end <= now,
+        "predictions": n,
+        "labelled": labelled,
+        "implied_negatives": acc.scalar("n_implied"),
         "coverage": round(labelled / n, 6) if n else None,
     }
 
 
-def _multiclass(model: ModelRow, acc: Acc, start: datetime, opts: Options) -> dict[str, Any]:
+def _multiclass(model: ModelRow, acc: Acc, opts: Options) -> dict[str, Any]:
     classes = list(model.classes)
     matrix = np.zeros((len(classes), len(classes)), np.int64)
     pos = {c: k for k, c in enumerate(classes)}
@@ -183,9 +223,14 @@ def _multiclass(model: ModelRow, acc: Acc, start: datetime, opts: Options) -> di
         actual, predicted = orjson.loads(key)
         if actual in pos and predicted in pos:
             matrix[pos[actual], pos[predicted]] += count
-    summary = summarise_multiclass(matrix, classes, beta=opts.beta, interval=opts.interval,
-                                   confidence=opts.confidence, resamples=opts.resamples)
+    summary = summarise_multiclass(
+        matrix,
+        classes,
+        beta=opts.beta,
+        interval=opts.interval,
+        confidence=opts.confidence,
+        resamples=opts.resamples,
+    )
     if opts.measures:
-        summary["measures"] = {k: v for k, v in summary["measures"].items()
-                               if k in opts.measures}
+        summary["measures"] = {k: v for k, v in summary["measures"].items() if k in opts.measures}
     return summary

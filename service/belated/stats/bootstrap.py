@@ -114,8 +114,10 @@ def bootstrap_binary_many(
     """
     if resamples == 0 or not counts:
         return [dict.fromkeys(BOOTSTRAPPED_BINARY) for _ in counts]
-    keys = [(tuple(int(c) for c in cells), float(beta), float(confidence), resamples, seed)
-            for cells in counts]
+    keys = [
+        (tuple(int(c) for c in cells), float(beta), float(confidence), resamples, seed)
+        for cells in counts
+    ]
     out: list[dict[str, Interval] | None] = [None] * len(keys)
     missing: list[int] = []
     for i, key in enumerate(keys):
@@ -125,8 +127,13 @@ def bootstrap_binary_many(
         else:
             missing.append(i)
     if missing:
-        fresh = _bootstrap_binary_many([counts[i] for i in missing], beta=beta,
-                                       confidence=confidence, resamples=resamples, seed=seed)
+        fresh = _bootstrap_binary_many(
+            [counts[i] for i in missing],
+            beta=beta,
+            confidence=confidence,
+            resamples=resamples,
+            seed=seed,
+        )
         for i, value in zip(missing, fresh, strict=True):
             _MEMO.put(keys[i], value)
             out[i] = value
@@ -137,8 +144,12 @@ _MEMO = Memo(50_000)
 
 
 def _bootstrap_binary_many(
-    counts: Sequence[tuple[int, int, int, int]], *, beta: float, confidence: float,
-    resamples: int, seed: int,
+    counts: Sequence[tuple[int, int, int, int]],
+    *,
+    beta: float,
+    confidence: float,
+    resamples: int,
+    seed: int,
 ) -> list[dict[str, Interval]]:
     draws = np.zeros((len(counts), resamples, 4), dtype=np.int64)
     for i, cells in enumerate(counts):

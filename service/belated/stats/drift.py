@@ -73,7 +73,8 @@ def merge_at(hist: np.ndarray, cuts: list[int]) -> np.ndarray:
 def _shares(counts: np.ndarray) -> np.ndarray:
     """Counts as shares, each floored at 1e-4, renormalised to sum to 1."""
     shares = np.maximum(counts / counts.sum(), SHARE_FLOOR)
-    return shares / shares.sum()
+    out: np.ndarray = shares / shares.sum()
+    return out
 
 
 def _too_few(baseline_total: float, current_total: float, min_count: int) -> Value | None:

@@ -109,8 +109,9 @@ def em_prior_many(
     sums = np.asarray(ssums, dtype=np.float64).reshape(counts.shape)
     base = np.asarray(train_priors, dtype=np.float64)
     # NaN never equals itself: spell it, so that an undefined prior is one key, not many
-    keys = [(digest(counts[i], sums[i]), repr(float(base[i])), tol, max_iter)
-            for i in range(len(base))]
+    keys = [
+        (digest(counts[i], sums[i]), repr(float(base[i])), tol, max_iter) for i in range(len(base))
+    ]
     known = [_EM_MEMO.get(key) for key in keys]
     todo = [i for i, (found, _) in enumerate(known) if not found]
     fresh = _em_many(counts[todo], sums[todo], base[todo], tol, max_iter) if todo else []
@@ -123,8 +124,9 @@ def em_prior_many(
 _EM_MEMO = Memo(50_000)
 
 
-def _em_many(counts: np.ndarray, sums: np.ndarray, base: np.ndarray, tol: float,
-             max_iter: int) -> list[float | None]:
+def _em_many(
+    counts: np.ndarray, sums: np.ndarray, base: np.ndarray, tol: float, max_iter: int
+) -> list[float | None]:
     total = counts.sum(axis=1)
     with np.errstate(invalid="ignore"):
         valid = (total > 0) & np.isfinite(base) & (base > 0.0) & (base < 1.0)

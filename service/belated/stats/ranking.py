@@ -118,4 +118,4 @@ def ap_binning_bound(hist_pos: np.ndarray, hist_neg: np.ndarray) -> float:
     hit = pos > 0
     lowest = (tp_above[hit] + 1) / (tp_above[hit] + 1 + fp_from[hit])
     highest = tp_from[hit] / (tp_from[hit] + fp_above[hit])
-    return float(np.dot(pos[hit], highest - lowest)) / n_pos
+    return float(np.dot(pos[hit], highest - lowest)) / float(n_pos)

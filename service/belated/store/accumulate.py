@@ -29,7 +29,7 @@ class Acc:
     def set_scalars(self, values: Any) -> None:
         """Take a SCALARS row from the database (NULL sums are 0)."""
         self.counts[:] = [int(v or 0) for v in values[: len(COUNTS)]]
-        self.sums[:] = [float(v or 0.0) for v in values[len(COUNTS):]]
+        self.sums[:] = [float(v or 0.0) for v in values[len(COUNTS) :]]
 
     def add(self, other: Acc) -> None:
         """Merge another accumulator into this one."""
@@ -86,9 +86,11 @@ class Acc:
         return cls(
             counts=np.array([getattr(row, n) for n in COUNTS], np.int64),
             sums=np.array([getattr(row, n) for n in SUMS], np.float64),
-            hist=hist, hsum=hsum,
+            hist=hist,
+            hsum=hsum,
             delays=unpack_delays(row.delays) if delays and row.delays else None,
-            cells=dict(row.cells) if row.cells else None)
+            cells=dict(row.cells) if row.cells else None,
+        )
 
 
 def cell_key(actual: str, predicted: str) -> str:

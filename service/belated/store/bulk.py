@@ -39,7 +39,10 @@ def json_text(value: Any) -> str | None:
 
 
 def copy_rows(
-    session: Session, table: str, columns: Sequence[str], rows: Iterable[Sequence[Any]],
+    session: Session,
+    table: str,
+    columns: Sequence[str],
+    rows: Iterable[Sequence[Any]],
     types: Sequence[str] | None = None,
 ) -> None:
     """COPY rows into a table on the session's own connection (PostgreSQL only).
@@ -65,7 +68,7 @@ def fetch_binary(session: Session, sql: str, params: Sequence[Any]) -> list[Any]
     raw = session.connection().connection.driver_connection
     assert raw is not None
     with raw.cursor(binary=True, row_factory=namedtuple_row) as cur:
-        return cur.execute(sql, params).fetchall()
+        return list(cur.execute(sql, params).fetchall())
 
 
 def temp_table(session: Session, name: str, ddl_columns: str) -> None:
@@ -73,7 +76,5 @@ def temp_table(session: Session, name: str, ddl_columns: str) -> None:
     raw = session.connection().connection.driver_connection
     assert raw is not None
     with raw.cursor() as cur:
-        cur.execute(
-            f"CREATE TEMP TABLE IF NOT EXISTS {name} ({ddl_columns}) ON COMMIT DELETE ROWS"
-        )
+        cur.execute(f"CREATE TEMP TABLE IF NOT EXISTS {name} ({ddl_columns}) ON COMMIT DELETE ROWS")
         cur.execute(f"TRUNCATE {name}")

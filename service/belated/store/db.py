@@ -24,8 +24,10 @@ def make_engine(url: str, **kwargs: Any) -> Engine:
         # JSON is written as UTF-8 (not ASCII escapes) so that json_extract paths match keys
         # such as 'région' as sent
         engine = create_engine(
-            url, connect_args={"check_same_thread": False, "timeout": 30},
-            json_serializer=lambda obj: orjson.dumps(obj).decode(), **kwargs
+            url,
+            connect_args={"check_same_thread": False, "timeout": 30},
+            json_serializer=lambda obj: orjson.dumps(obj).decode(),
+            **kwargs,
         )
         _configure_sqlite(engine)
         return engine

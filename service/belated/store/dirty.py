@@ -22,8 +22,7 @@ def _insert(session: Session):  # type: ignore[no-untyped-def]
     return (postgresql if dialect == "postgresql" else sqlite).insert(DirtyBucket)
 
 
-def mark(*, session: Session, model_id: int, hours: Iterable[int], recompute: bool = True
-         ) -> int:
+def mark(*, session: Session, model_id: int, hours: Iterable[int], recompute: bool = True) -> int:
     """Mark the hours dirty (in sorted order, so concurrent writers lock alike).
 
     `recompute=False` says only labels changed (their changes are in `label_changes`); a
@@ -34,15 +33,23 @@ def mark(*, session: Session, model_id: int, hours: Iterable[int], recompute: bo
         return 0
     stamp = now()
     rows = [
-        {"model_id": model_id, "hour": h, "version": secrets.randbits(62), "marked_at": stamp,
-         "recompute": recompute}
+        {
+            "model_id": model_id,
+            "hour": h,
+            "version": secrets.randbits(62),
+            "marked_at": stamp,
+            "recompute": recompute,
+        }
         for h in ordered
     ]
     stmt = _insert(session)
     stmt = stmt.on_conflict_do_update(
         index_elements=["model_id", "hour"],
-        set_={"version": stmt.excluded.version, "marked_at": stmt.excluded.marked_at,
-              "recompute": DirtyBucket.__table__.c.recompute | stmt.excluded.recompute},
+        set_={
+            "version": stmt.excluded.version,
+            "marked_at": stmt.excluded.marked_at,
+            "recompute": DirtyBucket.__table__.c.recompute | stmt.excluded.recompute,
+        },
     )
     for start in range(0, len(rows), 2000):
         session.execute(stmt, rows[start : start + 2000])

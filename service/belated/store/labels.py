@@ -36,8 +36,14 @@ def delay_hours(pred_ts: datetime, label_ts: datetime) -> float:
 
 def _targets(session: Session, model_id: int, ids: list[str]) -> dict[str, _Target]:
     found: dict[str, _Target] = {}
-    cols = (Prediction.pid, Prediction.row_id, Prediction.ts, Prediction.hour, Prediction.actual,
-            Prediction.delay_h)
+    cols = (
+        Prediction.pid,
+        Prediction.row_id,
+        Prediction.ts,
+        Prediction.hour,
+        Prediction.actual,
+        Prediction.delay_h,
+    )
     for cond in bulk.id_filters(session, Prediction.pid, ids):
         query = select(*cols).where(Prediction.model_id == model_id, cond)
         if bulk.is_pg(session):  # concurrent corrections of one id apply one after another
@@ -84,14 +90,28 @@ def ingest(*, session: Session, model_id: int, items: list[LabelIn]) -> dict[str
             answer["unchanged"] += 1
             continue
         answer["corrected" if target.actual is not None else "matched"] += 1
-        history.append(_history(
-            model_id, label, "correction" if target.actual is not None else "first", received))
+        history.append(
+            _history(
+                model_id, label, "correction" if target.actual is not None else "first", received
+            )
+        )
         delay = delay_hours(target.ts, label.ts)
-        changes.append((model_id, target.hour, target.row_id, target.actual, target.delay_h,
-                        label.actual, delay))
+        changes.append(
+            (
+                model_id,
+                target.hour,
+                target.row_id,
+                target.actual,
+                target.delay_h,
+                label.actual,
+                delay,
+            )
+        )
         target.actual, target.delay_h = label.actual, delay
         updates[target.row_id] = {
-            "row_id": target.row_id, "actual": label.actual, "label_ts": label.ts,
+            "row_id": target.row_id,
+            "actual": label.actual,
+            "label_ts": label.ts,
             "delay_h": delay,
         }
         hours.add(target.hour)
@@ -114,8 +134,15 @@ def ingest(*, session: Session, model_id: int, items: list[LabelIn]) -> dict[str
     return answer
 
 
-_CHANGE_COLS = ("model_id", "hour", "row_id", "old_actual", "old_delay_h", "new_actual",
-                "new_delay_h")
+_CHANGE_COLS = (
+    "model_id",
+    "hour",
+    "row_id",
+    "old_actual",
+    "old_delay_h",
+    "new_actual",
+    "new_delay_h",
+)
 
 
 def record_changes(session: Session, changes: list[tuple[Any, ...]]) -> None:
@@ -128,13 +155,20 @@ def record_changes(session: Session, changes: list[tuple[Any, ...]]) -> None:
     if bulk.is_pg(session):
         bulk.copy_rows(session, "label_changes", _CHANGE_COLS, changes)
     else:
-        session.execute(insert(LabelChange), [dict(zip(_CHANGE_COLS, c, strict=True))
-                                               for c in changes])
+        session.execute(
+            insert(LabelChange), [dict(zip(_CHANGE_COLS, c, strict=True)) for c in changes]
+        )
 
 
 def _history(model_id: int, label: LabelIn, change: str, received: datetime) -> dict[str, Any]:
-    return {"model_id": model_id, "pid": label.pid, "actual": label.actual, "ts": label.ts,
-            "change": change, "received_at": received}
+    return {
+        "model_id": model_id,
+        "pid": label.pid,
+        "actual": label.actual,
+        "ts": label.ts,
+        "change": change,
+        "received_at": received,
+    }
 
 
 def _update_sqlite(session: Session, rows: list[dict[str, Any]]) -> None:
@@ -142,8 +176,11 @@ def _update_sqlite(session: Session, rows: list[dict[str, Any]]) -> None:
     stmt = (
         update(table)  # type: ignore[arg-type]
         .where(table.c.row_id == bindparam("b_row_id"))
-        .values(actual=bindparam("b_actual"), label_ts=bindparam("b_label_ts"),
-                delay_h=bindparam("b_delay_h"))
+        .values(
+            actual=bindparam("b_actual"),
+            label_ts=bindparam("b_label_ts"),
+            delay_h=bindparam("b_delay_h"),
+        )
     )
     session.connection().execute(stmt, [{f"b_{k}": v for k, v in r.items()} for r in rows])
 
@@ -151,13 +188,17 @@ def _update_sqlite(session: Session, rows: list[dict[str, Any]]) -> None:
 def _update_pg(session: Session, rows: list[dict[str, Any]]) -> None:
     bulk.temp_table(session, _STAGE, _STAGE_DDL)
     bulk.copy_rows(
-        session, _STAGE, ("row_id", "actual", "label_ts", "delay_h"),
+        session,
+        _STAGE,
+        ("row_id", "actual", "label_ts", "delay_h"),
         ((r["row_id"], r["actual"], r["label_ts"], r["delay_h"]) for r in rows),
     )
-    session.execute(text(
-        f"UPDATE predictions p SET actual = s.actual, label_ts = s.label_ts, delay_h = s.delay_h"
-        f" FROM {_STAGE} s WHERE p.row_id = s.row_id"
-    ))
+    session.execute(
+        text(
+            "UPDATE predictions p SET actual = s.actual, label_ts = s.label_ts,"
+            f" delay_h = s.delay_h FROM {_STAGE} s WHERE p.row_id = s.row_id"
+        )
+    )
 
 
 def _upsert_pending(
@@ -167,13 +208,25 @@ def _upsert_pending(
     stmt = dialect.insert(PendingLabel)
     stmt = stmt.on_conflict_do_update(
         index_elements=["model_id", "pid"],
-        set_={"actual": stmt.excluded.actual, "ts": stmt.excluded.ts,
-              "received_at": stmt.excluded.received_at},
+        set_={
+            "actual": stmt.excluded.actual,
+            "ts": stmt.excluded.ts,
+            "received_at": stmt.excluded.received_at,
+        },
     )
-    session.execute(stmt, [
-        {"model_id": model_id, "pid": i.pid, "actual": i.actual, "ts": i.ts,
-         "received_at": received} for i in items
-    ])
+    session.execute(
+        stmt,
+        [
+            {
+                "model_id": model_id,
+                "pid": i.pid,
+                "actual": i.actual,
+                "ts": i.ts,
+                "received_at": received,
+            }
+            for i in items
+        ],
+    )
 
 
 def _latest_received(session: Session, model_id: int, pids: list[str]) -> dict[str, datetime]:
@@ -181,9 +234,9 @@ def _latest_received(session: Session, model_id: int, pids: list[str]) -> dict[s
     out: dict[str, datetime] = {}
     for cond in bulk.id_filters(session, Label.pid, pids) if pids else ():
         for pid, received in session.execute(
-            select(Label.pid, func.max(Label.received_at)).where(
-                Label.model_id == model_id, Label.change != "pending", cond
-            ).group_by(Label.pid)
+            select(Label.pid, func.max(Label.received_at))
+            .where(Label.model_id == model_id, Label.change != "pending", cond)
+            .group_by(Label.pid)
         ):
             out[pid] = to_utc(received)
     return out
@@ -196,11 +249,22 @@ def join_pending(*, session: Session, model_id: int, ids: list[str] | None) -> s
     refresh job, which catches a label and its prediction written in concurrent transactions).
     """
     query = (
-        select(PendingLabel.row_id, PendingLabel.actual, PendingLabel.ts,
-               Prediction.row_id, Prediction.ts, Prediction.hour, Prediction.actual,
-               PendingLabel.received_at, PendingLabel.pid, Prediction.delay_h)
-        .join(Prediction, (Prediction.model_id == PendingLabel.model_id)
-              & (Prediction.pid == PendingLabel.pid))
+        select(
+            PendingLabel.row_id,
+            PendingLabel.actual,
+            PendingLabel.ts,
+            Prediction.row_id,
+            Prediction.ts,
+            Prediction.hour,
+            Prediction.actual,
+            PendingLabel.received_at,
+            PendingLabel.pid,
+            Prediction.delay_h,
+        )
+        .join(
+            Prediction,
+            (Prediction.model_id == PendingLabel.model_id) & (Prediction.pid == PendingLabel.pid),
+        )
         .where(PendingLabel.model_id == model_id)
     )
     if bulk.is_pg(session):
@@ -217,18 +281,20 @@ def join_pending(*, session: Session, model_id: int, ids: list[str] | None) -> s
     latest = _latest_received(session, model_id, [r[8] for r in rows if r[6] is not None])
     updates, changes = [], []
     for _pl_id, actual, lts, p_id, pts, hour, current, received, pid, old_delay in rows:
-        if current is not None and (current == actual or latest.get(pid) is None
-                                    or to_utc(received) <= latest[pid]):
+        if current is not None and (
+            current == actual or latest.get(pid) is None or to_utc(received) <= latest[pid]
+        ):
             continue  # the current label arrived after the pending one: it stands
         delay = delay_hours(to_utc(pts), to_utc(lts))
-        updates.append({"row_id": p_id, "actual": actual, "label_ts": to_utc(lts),
-                        "delay_h": delay})
+        updates.append(
+            {"row_id": p_id, "actual": actual, "label_ts": to_utc(lts), "delay_h": delay}
+        )
         changes.append((model_id, hour, p_id, current, old_delay, actual, delay))
     if updates:
         (_update_pg if bulk.is_pg(session) else _update_sqlite)(session, updates)
         record_changes(session, changes)
     done = [r[0] for r in rows]
     for start in range(0, len(done), 5000):
-        chunk = done[start:start + 5000]
+        chunk = done[start : start + 5000]
         session.execute(delete(PendingLabel).where(PendingLabel.row_id.in_(chunk)))
     return {r[5] for r in rows}

@@ -13,14 +13,17 @@ ROOT = Path(__file__).resolve().parents[3]
 
 def migrations_dir() -> Path:
     """The migrations folder: BELATED_MIGRATIONS_DIR, the source tree's, or ./migrations."""
-    candidates = [os.environ.get("BELATED_MIGRATIONS_DIR"), ROOT / "migrations",
-                  Path.cwd() / "migrations"]
+    candidates = [
+        os.environ.get("BELATED_MIGRATIONS_DIR"),
+        ROOT / "migrations",
+        Path.cwd() / "migrations",
+    ]
     for candidate in candidates:
         if candidate and (Path(candidate) / "env.py").is_file():
             return Path(candidate)
     raise FileNotFoundError(
-        "cannot find the migrations folder; run from the source tree or set "
-        "BELATED_MIGRATIONS_DIR")
+        "cannot find the migrations folder; run from the source tree or set BELATED_MIGRATIONS_DIR"
+    )
 
 
 def alembic_config(url: str) -> Config:

@@ -28,7 +28,7 @@ def spec_of(model: ModelRow) -> ModelSpec:
     return ModelSpec(model.kind, tuple(model.classes), model.positive, model.threshold)
 
 
-def get(*, session: Session, project_id: int, name: str, lock: bool = False) -> ModelRow:
+def get(*, session: Session, project_id: int, name: str) -> ModelRow:
     """The model `name` of the project, or a 404 problem."""
     query = select(ModelRow).where(ModelRow.project_id == project_id, ModelRow.name == name)
     model = session.scalar(query)
@@ -77,8 +77,9 @@ def update(*, session: Session, model: ModelRow, fields: dict[str, Any]) -> Mode
     from belated.store import refresh
 
     stamp = now()
-    reshape = any(key in _ROLLUP_SETTINGS and getattr(model, key) != value
-                  for key, value in fields.items())
+    reshape = any(
+        key in _ROLLUP_SETTINGS and getattr(model, key) != value for key, value in fields.items()
+    )
     for key, value in fields.items():
         setattr(model, key, value)
     if "threshold" in fields:

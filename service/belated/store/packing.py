@@ -23,7 +23,7 @@ _SPARSE = b"s"
 
 
 def _head(k: int) -> bytes:
-    return _SPARSE + np.uint16(k).astype("<u2").tobytes()
+    return _SPARSE + int(k).to_bytes(2, "little")
 
 
 def pack_hist(counts: np.ndarray, sums: np.ndarray) -> bytes:
@@ -31,8 +31,12 @@ def pack_hist(counts: np.ndarray, sums: np.ndarray) -> bytes:
     c = np.asarray(counts).reshape(-1)
     s = np.asarray(sums).reshape(-1)
     idx = np.flatnonzero((c != 0) | (s != 0))
-    return (_head(idx.size) + idx.astype("<u2").tobytes() + c[idx].astype("<i8").tobytes()
-            + s[idx].astype("<f8").tobytes())
+    return (
+        _head(idx.size)
+        + idx.astype("<u2").tobytes()
+        + c[idx].astype("<i8").tobytes()
+        + s[idx].astype("<f8").tobytes()
+    )
 
 
 def unpack_hist(blob: bytes | None) -> tuple[np.ndarray, np.ndarray]:

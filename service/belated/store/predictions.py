@@ -31,8 +31,14 @@ def epoch_hour(ts: datetime) -> int:
 def existing(*, session: Session, model_id: int, ids: list[str]) -> dict[str, PredictionIn]:
     """The stored predictions among `ids`, as comparable values."""
     found: dict[str, PredictionIn] = {}
-    cols = (Prediction.pid, Prediction.ts, Prediction.score, Prediction.scores,
-            Prediction.predicted, Prediction.tags)
+    cols = (
+        Prediction.pid,
+        Prediction.ts,
+        Prediction.score,
+        Prediction.scores,
+        Prediction.predicted,
+        Prediction.tags,
+    )
     for cond in bulk.id_filters(session, Prediction.pid, ids):
         for pid, ts, score, scores, predicted, tags in session.execute(
             select(*cols).where(Prediction.model_id == model_id, cond)
@@ -64,8 +70,7 @@ def ingest(
         rest = [p for p in preds if p.pid not in inserted]
     else:
         inserted, rest = set(), preds
-    stored = existing(session=session, model_id=model_id, ids=[p.pid for p in rest]) \
-        if rest else {}
+    stored = existing(session=session, model_id=model_id, ids=[p.pid for p in rest]) if rest else {}
     conflicts = [p.pid for p in rest if p.pid in stored and not p.same_as(stored[p.pid])]
     if conflicts:
         raise _conflict(conflicts)
@@ -77,17 +82,21 @@ def ingest(
             _insert_sqlite(session, model_id, new, received)
     if new:
         hours = {epoch_hour(p.ts) for p in new}
-        hours |= labels.join_pending(
-            session=session, model_id=model_id, ids=[p.pid for p in new]
-        )
+        hours |= labels.join_pending(session=session, model_id=model_id, ids=[p.pid for p in new])
         dirty.mark(session=session, model_id=model_id, hours=hours)
     return {"accepted": len(new), "duplicates": batch_size - len(new)}
 
 
 def _row(model_id: int, p: PredictionIn, received: datetime) -> dict[str, Any]:
     return {
-        "model_id": model_id, "pid": p.pid, "ts": p.ts, "hour": epoch_hour(p.ts),
-        "score": p.score, "scores": p.scores, "predicted": p.predicted, "tags": p.tags,
+        "model_id": model_id,
+        "pid": p.pid,
+        "ts": p.ts,
+        "hour": epoch_hour(p.ts),
+        "score": p.score,
+        "scores": p.scores,
+        "predicted": p.predicted,
+        "tags": p.tags,
         "received_at": received,
     }
 
@@ -107,8 +116,16 @@ def _insert_pg(
         _STAGE,
         _COLUMNS,
         (
-            (p.pid, p.ts, epoch_hour(p.ts), p.score, bulk.json_text(p.scores), p.predicted,
-             bulk.json_text(p.tags), received)
+            (
+                p.pid,
+                p.ts,
+                epoch_hour(p.ts),
+                p.score,
+                bulk.json_text(p.scores),
+                p.predicted,
+                bulk.json_text(p.tags),
+                received,
+            )
             for p in new
         ),
     )

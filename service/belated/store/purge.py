@@ -9,8 +9,15 @@ from belated.store import rollup_tables as rt
 from belated.store import tables as t
 
 _TABLES: list[type] = [
-    t.Prediction, t.Label, t.PendingLabel, t.DirtyBucket, t.LabelChange, t.ThresholdChange,
-    rt.Rollup, rt.SegmentValue, rt.SegmentKey,
+    t.Prediction,
+    t.Label,
+    t.PendingLabel,
+    t.DirtyBucket,
+    t.LabelChange,
+    t.ThresholdChange,
+    rt.Rollup,
+    rt.SegmentValue,
+    rt.SegmentKey,
 ]
 
 

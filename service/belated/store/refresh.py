@@ -25,10 +25,12 @@ log = logging.getLogger(__name__)
 BATCH_HOURS = 168
 
 
-def _claim(session: Session, model_id: int | None, lo: int | None, hi: int | None,
-           wait: bool) -> list[tuple[int, int, int, bool]]:
-    query = select(DirtyBucket.model_id, DirtyBucket.hour, DirtyBucket.version,
-                   DirtyBucket.recompute)
+def _claim(
+    session: Session, model_id: int | None, lo: int | None, hi: int | None, wait: bool
+) -> list[tuple[int, int, int, bool]]:
+    query = select(
+        DirtyBucket.model_id, DirtyBucket.hour, DirtyBucket.version, DirtyBucket.recompute
+    )
     if model_id is not None:
         query = query.where(DirtyBucket.model_id == model_id)
     if lo is not None:
@@ -41,16 +43,30 @@ def _claim(session: Session, model_id: int | None, lo: int | None, hi: int | Non
     return [tuple(r) for r in session.execute(query)]  # type: ignore[misc]
 
 
-def refresh_batch(session: Session, *, max_values: int, model_id: int | None = None,
-                  lo: int | None = None, hi: int | None = None, wait: bool = False) -> int:
+def refresh_batch(
+    session: Session,
+    *,
+    max_values: int,
+    model_id: int | None = None,
+    lo: int | None = None,
+    hi: int | None = None,
+    wait: bool = False,
+) -> int:
     """Refresh one batch of dirty buckets in the caller's transaction; 0 when none is left."""
-    return len(refresh_claimed(session, max_values=max_values, model_id=model_id, lo=lo,
-                               hi=hi, wait=wait))
+    return len(
+        refresh_claimed(session, max_values=max_values, model_id=model_id, lo=lo, hi=hi, wait=wait)
+    )
 
 
-def refresh_claimed(session: Session, *, max_values: int, model_id: int | None = None,
-                    lo: int | None = None, hi: int | None = None, wait: bool = False
-                    ) -> list[tuple[int, int, int]]:
+def refresh_claimed(
+    session: Session,
+    *,
+    max_values: int,
+    model_id: int | None = None,
+    lo: int | None = None,
+    hi: int | None = None,
+    wait: bool = False,
+) -> list[tuple[int, int, int]]:
     """Refresh one batch of dirty buckets; return the (model, hour, version) marks taken."""
     marks = _claim(session, model_id, lo, hi, wait)
     if not marks:
@@ -63,23 +79,40 @@ def refresh_claimed(session: Session, *, max_values: int, model_id: int | None =
     for mid in sorted(set(whole) | set(changed)):
         model = session.get(ModelRow, mid)
         if model is not None:
-            rollups.refresh_hours(session=session, model=model, hours=whole[mid], now=stamp,
-                                  max_values=max_values, changed=changed[mid])
+            rollups.refresh_hours(
+                session=session,
+                model=model,
+                hours=whole[mid],
+                now=stamp,
+                max_values=max_values,
+                changed=changed[mid],
+            )
     claimed = [(mid, hour, version) for mid, hour, version, _ in marks]
     # Clear only the marks whose version is the one read: a write meanwhile keeps its mark.
-    session.execute(delete(DirtyBucket).where(
-        tuple_(DirtyBucket.model_id, DirtyBucket.hour, DirtyBucket.version).in_(claimed)))
+    session.execute(
+        delete(DirtyBucket).where(
+            tuple_(DirtyBucket.model_id, DirtyBucket.hour, DirtyBucket.version).in_(claimed)
+        )
+    )
     return claimed
 
 
-def refresh_all(factory: sessionmaker[Session], *, max_values: int, model_id: int | None = None,
-                lo: int | None = None, hi: int | None = None, wait: bool = False) -> int:
+def refresh_all(
+    factory: sessionmaker[Session],
+    *,
+    max_values: int,
+    model_id: int | None = None,
+    lo: int | None = None,
+    hi: int | None = None,
+    wait: bool = False,
+) -> int:
     """Refresh dirty buckets batch by batch, each in its own transaction."""
     total = 0
     while True:
         with transaction(factory) as session:
-            done = refresh_batch(session, max_values=max_values, model_id=model_id, lo=lo,
-                                 hi=hi, wait=wait)
+            done = refresh_batch(
+                session, max_values=max_values, model_id=model_id, lo=lo, hi=hi, wait=wait
+            )
         if not done:
             return total
         total += done
@@ -117,9 +150,15 @@ def _mark_crossed(session: Session, model: ModelRow) -> int:
     key = f"implied_cut:{model.id}"
     state = session.get(ServiceState, key)
     last = int(state.value) if state is not None else None
-    query = select(Prediction.hour).distinct().where(
-        Prediction.model_id == model.id, Prediction.actual.is_(None),
-        Prediction.hour <= cut_hour)
+    query = (
+        select(Prediction.hour)
+        .distinct()
+        .where(
+            Prediction.model_id == model.id,
+            Prediction.actual.is_(None),
+            Prediction.hour <= cut_hour,
+        )
+    )
     if last is not None:
         query = query.where(Prediction.hour >= last)
     hours = list(session.scalars(query))
@@ -144,13 +183,13 @@ def record_run(factory: sessionmaker[Session], summary: dict[str, Any]) -> None:
 
 def mark_model(session: Session, model_id: int) -> int:
     """Mark every hour of a model dirty (a rebuild, or a setting that changes rollups)."""
-    hours = list(session.scalars(
-        select(Prediction.hour).distinct().where(Prediction.model_id == model_id)))
+    hours = list(
+        session.scalars(select(Prediction.hour).distinct().where(Prediction.model_id == model_id))
+    )
     return dirty.mark(session=session, model_id=model_id, hours=hours)
 
 
-def rebuild(factory: sessionmaker[Session], *, max_values: int, model_id: int | None = None
-            ) -> int:
+def rebuild(factory: sessionmaker[Session], *, max_values: int, model_id: int | None = None) -> int:
     """Recompute every rollup (of one model, or all) from raw rows."""
     from belated.store.rollup_tables import Rollup
 
@@ -163,5 +202,3 @@ def rebuild(factory: sessionmaker[Session], *, max_values: int, model_id: int | 
     for mid in ids:
         total += refresh_all(factory, max_values=max_values, model_id=mid, wait=True)
     return total
-
-

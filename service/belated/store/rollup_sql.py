@@ -110,8 +110,10 @@ def _source(scope: Scope) -> tuple[str, str, str]:
     if not scope.changes:
         return "predictions", "1", "COUNT(*)"
     hours = _hour_filter(scope)
-    side = ("SELECT row_id, {w} AS w, {p}_actual AS actual, {p}_delay_h AS delay_h"
-            f" FROM label_changes WHERE {hours}")
+    side = (
+        "SELECT row_id, {w} AS w, {p}_actual AS actual, {p}_delay_h AS delay_h"
+        f" FROM label_changes WHERE {hours}"
+    )
     # the cutoff by a lookup per row: with the change log not yet analysed, a join let
     # PostgreSQL scan every hourly rollup row of the model for each change
     src = f"""(SELECT p.model_id, p.hour, p.ts, p.score, p.predicted, p.tags, c.actual,
@@ -127,12 +129,12 @@ def _segment(d: _Dialect, key: str | None) -> tuple[str, str]:
     if key is None:
         return "''", ""
     t = d.tag(key)
-    return (f"(CASE WHEN {t} IN :tag_values THEN {t} ELSE '(other)' END)",
-            f" AND {t} IS NOT NULL")
+    return (f"(CASE WHEN {t} IN :tag_values THEN {t} ELSE '(other)' END)", f" AND {t} IS NOT NULL")
 
 
-def _params(session: Session, scope: Scope, key: str | None, values: Sequence[str]
-            ) -> dict[str, Any]:
+def _params(
+    session: Session, scope: Scope, key: str | None, values: Sequence[str]
+) -> dict[str, Any]:
     params: dict[str, Any] = {"m": scope.model_id, "pos": scope.pos, "neg": scope.neg}
     if scope.cutoff is not None:
         params["cutoff"] = _cutoff_param(session, scope.cutoff)
@@ -152,8 +154,22 @@ def _run(session: Session, sql: str, params: dict[str, Any], key: str | None) ->
     return list(session.execute(stmt, params))
 
 
-SCALARS = ("n_pred", "n_labelled", "n_implied", "n_pred_pos", "tp", "fp", "fn", "tn",
-           "brier_sum", "logloss_sum", "exp_tp", "exp_fp", "exp_fn", "exp_tn")
+SCALARS = (
+    "n_pred",
+    "n_labelled",
+    "n_implied",
+    "n_pred_pos",
+    "tp",
+    "fp",
+    "fn",
+    "tn",
+    "brier_sum",
+    "logloss_sum",
+    "exp_tp",
+    "exp_fp",
+    "exp_fn",
+    "exp_tn",
+)
 
 
 def _scalar_cols(d: _Dialect, scope: Scope) -> str:
@@ -179,8 +195,10 @@ def _scalar_cols(d: _Dialect, scope: Scope) -> str:
     else:
         label_cols = ", ".join(["0"] * 4 + ["0.0"] * 6)
     labelled = f"COUNT({a})" if w == "1" else f"SUM(CASE WHEN {a} IS NOT NULL THEN w ELSE 0 END)"
-    return (f"{count}, {labelled}, SUM({m}{implied}),"
-            f" SUM(CASE WHEN {pp} THEN {w} ELSE 0 END), {label_cols}")
+    return (
+        f"{count}, {labelled}, SUM({m}{implied}),"
+        f" SUM(CASE WHEN {pp} THEN {w} ELSE 0 END), {label_cols}"
+    )
 
 
 def _hist_parts(d: _Dialect, scope: Scope) -> tuple[list[str], str, str]:
@@ -197,8 +215,15 @@ def _cell_parts(scope: Scope) -> tuple[list[str], str, str]:
     return ["actual", "predicted"], count, " AND actual IS NOT NULL"
 
 
-def _per_key(session: Session, scope: Scope, key: str | None, values: Sequence[str],
-             extra: list[str], cols: str, where: str) -> list[Any]:
+def _per_key(
+    session: Session,
+    scope: Scope,
+    key: str | None,
+    values: Sequence[str],
+    extra: list[str],
+    cols: str,
+    where: str,
+) -> list[Any]:
     d = _Dialect(session)
     seg, seg_where = _segment(d, key)
     src, _, _ = _source(scope)
@@ -210,28 +235,26 @@ def _per_key(session: Session, scope: Scope, key: str | None, values: Sequence[s
     return _run(session, sql, _params(session, scope, key, values), key)
 
 
-def scalars(session: Session, scope: Scope, key: str | None, values: Sequence[str]
-            ) -> list[Any]:
+def scalars(session: Session, scope: Scope, key: str | None, values: Sequence[str]) -> list[Any]:
     """Rows of (hour, segment value, *SCALARS) for the whole model or one tag key."""
     return _per_key(session, scope, key, values, [], _scalar_cols(_Dialect(session), scope), "")
 
 
-def histograms(session: Session, scope: Scope, key: str | None, values: Sequence[str]
-               ) -> list[Any]:
+def histograms(session: Session, scope: Scope, key: str | None, values: Sequence[str]) -> list[Any]:
     """Rows of (hour, segment value, class 0/1/2 = pos/neg/unlabelled, bin, count, score sum)."""
     extra, cols, where = _hist_parts(_Dialect(session), scope)
     return _per_key(session, scope, key, values, extra, cols, where)
 
 
-def cells(session: Session, scope: Scope, key: str | None, values: Sequence[str]
-          ) -> list[Any]:
+def cells(session: Session, scope: Scope, key: str | None, values: Sequence[str]) -> list[Any]:
     """Rows of (hour, segment value, actual, predicted, count) over labelled predictions."""
     extra, cols, where = _cell_parts(scope)
     return _per_key(session, scope, key, values, extra, cols, where)
 
 
-def grouped(session: Session, scope: Scope, keys: dict[str, list[str]], what: str
-            ) -> list[tuple[Any, ...]]:
+def grouped(
+    session: Session, scope: Scope, keys: dict[str, list[str]], what: str
+) -> list[tuple[Any, ...]]:
     """One PostgreSQL scan for the whole model and every tag key (GROUPING SETS).
 
     `what` is 'scalars', 'histograms' or 'cells'. Rows are (hour, segment key, segment
@@ -247,14 +270,17 @@ def grouped(session: Session, scope: Scope, keys: dict[str, list[str]], what: st
     else:
         extra, cols, where = _cell_parts(scope)
     names = list(keys)
-    segs = [f"(CASE WHEN (tags ->> :k{i}) IN :v{i} THEN (tags ->> :k{i})"
-            f" WHEN (tags ->> :k{i}) IS NOT NULL THEN '(other)' END) AS s{i}"
-            for i in range(len(names))]
+    segs = [
+        f"(CASE WHEN (tags ->> :k{i}) IN :v{i} THEN (tags ->> :k{i})"
+        f" WHEN (tags ->> :k{i}) IS NOT NULL THEN '(other)' END) AS s{i}"
+        for i in range(len(names))
+    ]
     inner = ", ".join([*segs, *(f"{e} AS e{i}" for i, e in enumerate(extra))])
     s_list = [f"s{i}" for i in range(len(names))]
     e_list = [f"e{i}" for i in range(len(extra))]
-    sets = ", ".join(f"({', '.join(['hour', *group, *e_list])})"
-                     for group in [[], *([s] for s in s_list)])
+    sets = ", ".join(
+        f"({', '.join(['hour', *group, *e_list])})" for group in [[], *([s] for s in s_list)]
+    )
     src, _, _ = _source(scope)
     sql = f"""
         SELECT {", ".join(["hour", f"GROUPING({', '.join(s_list)})", *s_list, *e_list])},
@@ -269,7 +295,7 @@ def grouped(session: Session, scope: Scope, keys: dict[str, list[str]], what: st
     n = len(names)
     out: list[tuple[Any, ...]] = []
     for row in session.execute(stmt, params):
-        g, rest = row[1], tuple(row[2 + n:])
+        g, rest = row[1], tuple(row[2 + n :])
         if g == (1 << n) - 1:
             out.append((row[0], "", "", *rest))
             continue
@@ -283,10 +309,12 @@ def delays(session: Session, scope: Scope) -> list[Any]:
     """Rows of (hour, delay bin, count) over explicitly labelled predictions."""
     d = _Dialect(session)
     h = "delay_h"
-    bin_ = (f"(CASE WHEN {h} < 48 THEN {d.floor_int(h)}"
-            f" WHEN {h} < 168 THEN 48 + {d.floor_int(f'({h} - 48) / 6')}"
-            f" ELSE {d.least('68 + ' + d.floor_int(f'({h} - 168) / 24'), str(LAST_DELAY_BIN))}"
-            " END)")
+    bin_ = (
+        f"(CASE WHEN {h} < 48 THEN {d.floor_int(h)}"
+        f" WHEN {h} < 168 THEN 48 + {d.floor_int(f'({h} - 48) / 6')}"
+        f" ELSE {d.least('68 + ' + d.floor_int(f'({h} - 168) / 24'), str(LAST_DELAY_BIN))}"
+        " END)"
+    )
     src, _, count = _source(scope)
     sql = f"""
         SELECT hour, {bin_}, {count} FROM {src}

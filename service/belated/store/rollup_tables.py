@@ -50,6 +50,7 @@ class Rollup(Base):
     # the implied-negative cutoff an hourly row was aggregated with (NULL: none, or daily)
     cut: Mapped[datetime | None] = mapped_column(UtcDateTime, nullable=True)
 
+
 class SegmentValue(Base):
     """A tag key:value admitted to rollups (later values roll up under '(other)')."""
 
@@ -61,6 +62,7 @@ class SegmentValue(Base):
     value: Mapped[str] = mapped_column(String(64), primary_key=True)
     admitted_at: Mapped[datetime] = mapped_column(UtcDateTime)
 
+
 class SegmentKey(Base):
     """A tag key admitted to rollups for a model (its `segment_keys`, or the first 8 seen)."""
 
@@ -70,5 +72,6 @@ class SegmentKey(Base):
     )
     key: Mapped[str] = mapped_column(String(64), primary_key=True)
     admitted_at: Mapped[datetime] = mapped_column(UtcDateTime)
+
 
 _ = Float  # keep the import list stable for readers of the schema

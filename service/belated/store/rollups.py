@@ -36,19 +36,21 @@ def scope_of(model: ModelRow, hours: Sequence[int], now: datetime) -> q.Scope:
     return q.Scope(model.id, binary, pos, neg, list(hours), cutoff)
 
 
-def compute(
-    session: Session, scope: q.Scope, keys: dict[str, list[str]]
-) -> dict[Key, Acc]:
+def compute(session: Session, scope: q.Scope, keys: dict[str, list[str]]) -> dict[Key, Acc]:
     """Aggregate the scope's raw rows into accumulators per (hour, segment)."""
     accs: dict[Key, Acc] = defaultdict(Acc)
     if keys and session.get_bind().dialect.name == "postgresql":
         # one scan for the whole model and every tag key
-        sets = {what: q.grouped(session, scope, keys, what)
-                for what in ("scalars", "histograms" if scope.binary else "cells")}
+        sets = {
+            what: q.grouped(session, scope, keys, what)
+            for what in ("scalars", "histograms" if scope.binary else "cells")
+        }
     else:
         sets = defaultdict(list)
-        kinds = [("scalars", q.scalars), ("histograms", q.histograms) if scope.binary
-                 else ("cells", q.cells)]
+        kinds = [
+            ("scalars", q.scalars),
+            ("histograms", q.histograms) if scope.binary else ("cells", q.cells),
+        ]
         for key in [None, *keys]:
             values, skey = (keys.get(key, []) if key else []), key or ""
             for what, query in kinds:
@@ -80,13 +82,17 @@ def _add_histograms(accs: dict[Key, Acc], rows: list[Any]) -> None:
         _, _, _, cls, bins, n, ssum = zip(*group, strict=True)
         flat = np.asarray(cls, np.int64) * N_BINS + np.asarray(bins, np.int64)
         np.add.at(acc.hist.reshape(-1), flat, np.asarray(n, np.int64))
-        np.add.at(acc.hsum.reshape(-1), flat,
-                  np.asarray([v or 0.0 for v in ssum], np.float64))
+        np.add.at(acc.hsum.reshape(-1), flat, np.asarray([v or 0.0 for v in ssum], np.float64))
 
 
 def refresh_hours(
-    *, session: Session, model: ModelRow, hours: Sequence[int], now: datetime,
-    max_values: int, changed: Sequence[int] = (),
+    *,
+    session: Session,
+    model: ModelRow,
+    hours: Sequence[int],
+    now: datetime,
+    max_values: int,
+    changed: Sequence[int] = (),
 ) -> int:
     """Bring the hourly rollups of `hours` and `changed`, and the daily rows above, up to date.
 
@@ -113,14 +119,16 @@ def refresh_hours(
         _replace(session, model.id, "h", whole, accs, cuts=dict.fromkeys(whole, scope.cutoff))
     _forget_changes(session, model.id, [*whole, *changed])
     recount = {h - h % 24 for h in whole}
-    recount |= _add_days(session, model.id, {k: v for k, v in day_deltas.items()
-                                             if k[0] not in recount})
+    recount |= _add_days(
+        session, model.id, {k: v for k, v in day_deltas.items() if k[0] not in recount}
+    )
     refresh_days(session=session, model_id=model.id, days=recount, known=accs, known_hours=whole)
     return len(set(whole) | set(changed))
 
 
-def _fold_changes(session: Session, model: ModelRow, hours: list[int], now: datetime
-                  ) -> tuple[set[int], dict[Key, Acc]]:
+def _fold_changes(
+    session: Session, model: ModelRow, hours: list[int], now: datetime
+) -> tuple[set[int], dict[Key, Acc]]:
     """Add the logged label changes of `hours` to their hourly rows.
 
     Returns the hours that need a recompute instead, and the per-day sums of the
@@ -148,8 +156,11 @@ def _fold_changes(session: Session, model: ModelRow, hours: list[int], now: date
             if not stored[key].valid():
                 stuck.add(key[0])  # cannot happen if the log is whole; recompute to be sure
     if stuck:
-        log.warning("model %s: %d hours aggregated again instead of folding label changes",
-                    model.id, len(stuck))
+        log.warning(
+            "model %s: %d hours aggregated again instead of folding label changes",
+            model.id,
+            len(stuck),
+        )
     _rewrite(session, model.id, "h", {k: stored[k] for k in delta if k[0] not in stuck}, cuts)
     per_day: dict[Key, Acc] = defaultdict(Acc)
     for (hour, k, v), acc in delta.items():
@@ -162,8 +173,10 @@ def _add_days(session: Session, model_id: int, deltas: dict[Key, Acc]) -> set[in
     """Add differences to daily rows; return the days that must be summed again instead."""
     if not deltas:
         return set()
-    stored = {(r.start, r.seg_key, r.seg_value): Acc.from_row(r)
-              for r in _rows(session, model_id, "d", sorted({k[0] for k in deltas}))}
+    stored = {
+        (r.start, r.seg_key, r.seg_value): Acc.from_row(r)
+        for r in _rows(session, model_id, "d", sorted({k[0] for k in deltas}))
+    }
     missing = {k[0] for k in deltas if k not in stored}
     for key, acc in deltas.items():
         if key[0] not in missing:
@@ -173,42 +186,71 @@ def _add_days(session: Session, model_id: int, deltas: dict[Key, Acc]) -> set[in
     return missing
 
 
-def _rewrite(session: Session, model_id: int, level: str, accs: dict[Key, Acc],
-             cuts: dict[int, datetime | None]) -> None:
+def _rewrite(
+    session: Session,
+    model_id: int,
+    level: str,
+    accs: dict[Key, Acc],
+    cuts: dict[int, datetime | None],
+) -> None:
     """Replace exactly these rows (the other rows of their hours or days did not change)."""
     keys = list(accs)
     if keys and bulk.is_pg(session):  # a join on the key: IN over row values scans instead
         starts, skeys, values = (list(x) for x in zip(*keys, strict=True))
-        session.execute(text(
-            "DELETE FROM rollups r USING unnest(CAST(:s AS int4[]), CAST(:k AS text[]),"
-            " CAST(:v AS text[])) AS d(start, seg_key, seg_value) WHERE r.model_id = :m"
-            " AND r.level = :l AND r.start = d.start AND r.seg_key = d.seg_key"
-            " AND r.seg_value = d.seg_value"),
-            {"s": starts, "k": skeys, "v": values, "m": model_id, "l": level})
+        session.execute(
+            text(
+                "DELETE FROM rollups r USING unnest(CAST(:s AS int4[]), CAST(:k AS text[]),"
+                " CAST(:v AS text[])) AS d(start, seg_key, seg_value) WHERE r.model_id = :m"
+                " AND r.level = :l AND r.start = d.start AND r.seg_key = d.seg_key"
+                " AND r.seg_value = d.seg_value"
+            ),
+            {"s": starts, "k": skeys, "v": values, "m": model_id, "l": level},
+        )
         keys = []
     for i in range(0, len(keys), 1000):
-        session.execute(delete(Rollup).where(
-            Rollup.model_id == model_id, Rollup.level == level,
-            tuple_(Rollup.start, Rollup.seg_key, Rollup.seg_value).in_(keys[i : i + 1000])))
+        session.execute(
+            delete(Rollup).where(
+                Rollup.model_id == model_id,
+                Rollup.level == level,
+                tuple_(Rollup.start, Rollup.seg_key, Rollup.seg_value).in_(keys[i : i + 1000]),
+            )
+        )
     _insert(session, model_id, level, accs, cuts)
 
 
-_PG_TYPES = {"model_id": "int4", "level": "varchar", "start": "int4", "seg_key": "varchar",
-             "seg_value": "varchar", **dict.fromkeys(q.SCALARS[:8], "int8"),
-             **dict.fromkeys(q.SCALARS[8:], "float8"), "hist": "bytea", "delays": "bytea",
-             "cells": "jsonb", "cut": "timestamptz"}
+_PG_TYPES = {
+    "model_id": "int4",
+    "level": "varchar",
+    "start": "int4",
+    "seg_key": "varchar",
+    "seg_value": "varchar",
+    **dict.fromkeys(q.SCALARS[:8], "int8"),
+    **dict.fromkeys(q.SCALARS[8:], "float8"),
+    "hist": "bytea",
+    "delays": "bytea",
+    "cells": "jsonb",
+    "cut": "timestamptz",
+}
 
 
 def _rows(session: Session, model_id: int, level: str, starts: list[int]) -> list[Any]:
     if bulk.is_pg(session):  # bytea in binary: no hex to decode
         return bulk.fetch_binary(
-            session, "SELECT * FROM rollups WHERE model_id = %s AND level = %s"
-            " AND start = ANY(%s)", (model_id, level, starts))
+            session,
+            "SELECT * FROM rollups WHERE model_id = %s AND level = %s AND start = ANY(%s)",
+            (model_id, level, starts),
+        )
     out: list[Any] = []
     for i in range(0, len(starts), 500):
-        out.extend(session.execute(select(Rollup.__table__).where(
-            Rollup.model_id == model_id, Rollup.level == level,
-            Rollup.start.in_(starts[i : i + 500]))))
+        out.extend(
+            session.execute(
+                select(Rollup.__table__).where(
+                    Rollup.model_id == model_id,
+                    Rollup.level == level,
+                    Rollup.start.in_(starts[i : i + 500]),
+                )
+            )
+        )
     return out
 
 
@@ -216,8 +258,11 @@ def _forget_changes(session: Session, model_id: int, hours: list[int]) -> None:
     # Writers of these hours wait on the claimed marks, so no change of theirs can commit
     # between the aggregation above and this delete.
     for i in range(0, len(hours), 1000):
-        session.execute(delete(LabelChange).where(
-            LabelChange.model_id == model_id, LabelChange.hour.in_(hours[i : i + 1000])))
+        session.execute(
+            delete(LabelChange).where(
+                LabelChange.model_id == model_id, LabelChange.hour.in_(hours[i : i + 1000])
+            )
+        )
 
 
 def _lock_days(session: Session, model_id: int, days: set[int]) -> None:
@@ -227,40 +272,75 @@ def _lock_days(session: Session, model_id: int, days: set[int]) -> None:
     # second waits here, then reads the daily rows the first committed (in day order, so
     # that two refreshes cannot wait on each other)
     for day in sorted(days):
-        session.execute(text("SELECT pg_advisory_xact_lock(:m, :d)"),
-                        {"m": model_id, "d": day // 24})
+        session.execute(
+            text("SELECT pg_advisory_xact_lock(:m, :d)"), {"m": model_id, "d": day // 24}
+        )
 
 
-def _replace(session: Session, model_id: int, level: str, starts: Sequence[int],
-             accs: dict[Key, Acc], cuts: dict[int, datetime | None] | None = None) -> None:
+def _replace(
+    session: Session,
+    model_id: int,
+    level: str,
+    starts: Sequence[int],
+    accs: dict[Key, Acc],
+    cuts: dict[int, datetime | None] | None = None,
+) -> None:
     for i in range(0, len(starts), 1000):
         chunk = list(starts[i : i + 1000])
-        session.execute(delete(Rollup).where(
-            Rollup.model_id == model_id, Rollup.level == level, Rollup.start.in_(chunk)))
+        session.execute(
+            delete(Rollup).where(
+                Rollup.model_id == model_id, Rollup.level == level, Rollup.start.in_(chunk)
+            )
+        )
     _insert(session, model_id, level, accs, cuts or {})
 
 
-def _insert(session: Session, model_id: int, level: str, accs: dict[Key, Acc],
-            cuts: dict[int, datetime | None]) -> None:
+def _insert(
+    session: Session,
+    model_id: int,
+    level: str,
+    accs: dict[Key, Acc],
+    cuts: dict[int, datetime | None],
+) -> None:
     rows = [
-        {"model_id": model_id, "level": level, "start": start, "seg_key": k, "seg_value": v,
-         "cut": cuts.get(start), **acc.to_row()}
+        {
+            "model_id": model_id,
+            "level": level,
+            "start": start,
+            "seg_key": k,
+            "seg_value": v,
+            "cut": cuts.get(start),
+            **acc.to_row(),
+        }
         for (start, k, v), acc in accs.items()
     ]
     if not rows:
         return
     if bulk.is_pg(session):  # the ORM sent these one statement per row
         cols = list(rows[0])
-        bulk.copy_rows(session, "rollups", cols, (
-            [Jsonb(r[c]) if c == "cells" and r[c] is not None else r[c]
-             for c in cols] for r in rows), types=[_PG_TYPES[c] for c in cols])
+        bulk.copy_rows(
+            session,
+            "rollups",
+            cols,
+            (
+                [Jsonb(r[c]) if c == "cells" and r[c] is not None else r[c] for c in cols]
+                for r in rows
+            ),
+            types=[_PG_TYPES[c] for c in cols],
+        )
         return
     for i in range(0, len(rows), 2000):
         session.execute(insert(Rollup), rows[i : i + 2000])
 
 
-def refresh_days(*, session: Session, model_id: int, days: set[int],
-                 known: dict[Key, Acc] | None = None, known_hours: Sequence[int] = ()) -> None:
+def refresh_days(
+    *,
+    session: Session,
+    model_id: int,
+    days: set[int],
+    known: dict[Key, Acc] | None = None,
+    known_hours: Sequence[int] = (),
+) -> None:
     """Rebuild the daily rows of `days` (epoch hours at midnight) from their hourly rows.
 
     `known` holds the complete hourly rows of `known_hours` just written by the caller;

@@ -22,13 +22,18 @@ OTHER = "(other)"
 
 def tag_expr(key: str) -> ColumnElement[str]:
     """The SQL expression of one tag's value (NULL when the prediction lacks it)."""
-    return Prediction.tags[key].as_string()
+    expr: ColumnElement[str] = Prediction.tags[key].as_string()
+    return expr
 
 
 def admitted(*, session: Session, model_id: int) -> dict[str, list[str]]:
     """Admitted keys, each with its admitted values."""
-    keys: dict[str, list[str]] = {k: [] for k in session.scalars(
-        select(SegmentKey.key).where(SegmentKey.model_id == model_id).order_by(SegmentKey.key))}
+    keys: dict[str, list[str]] = {
+        k: []
+        for k in session.scalars(
+            select(SegmentKey.key).where(SegmentKey.model_id == model_id).order_by(SegmentKey.key)
+        )
+    }
     for key, value in session.execute(
         select(SegmentValue.key, SegmentValue.value).where(SegmentValue.model_id == model_id)
     ):
@@ -52,12 +57,16 @@ def _seen_keys(session: Session, model_id: int, hours: Sequence[int]) -> list[st
     params = {"m": model_id}
     hour_list = ",".join(str(int(h)) for h in hours)
     if session.get_bind().dialect.name == "postgresql":
-        sql = (f"SELECT DISTINCT jsonb_object_keys(tags) FROM predictions WHERE model_id = :m"
-               f" AND hour IN ({hour_list}) AND tags IS NOT NULL")
+        sql = (
+            f"SELECT DISTINCT jsonb_object_keys(tags) FROM predictions WHERE model_id = :m"
+            f" AND hour IN ({hour_list}) AND tags IS NOT NULL"
+        )
     else:
-        sql = (f"SELECT DISTINCT j.key FROM predictions, json_each(predictions.tags) AS j"
-               f" WHERE predictions.model_id = :m AND predictions.hour IN ({hour_list})"
-               f" AND predictions.tags IS NOT NULL")
+        sql = (
+            f"SELECT DISTINCT j.key FROM predictions, json_each(predictions.tags) AS j"
+            f" WHERE predictions.model_id = :m AND predictions.hour IN ({hour_list})"
+            f" AND predictions.tags IS NOT NULL"
+        )
     return sorted(str(r[0]) for r in session.execute(text(sql), params))
 
 
@@ -85,8 +94,9 @@ def admit(
             continue
         expr = tag_expr(key)
         seen = session.scalars(
-            select(expr).distinct().where(
-                Prediction.model_id == model.id, _hours_filter(hours), expr.is_not(None))
+            select(expr)
+            .distinct()
+            .where(Prediction.model_id == model.id, _hours_filter(hours), expr.is_not(None))
         )
         fresh = sorted(v for v in seen if v not in values and v != OTHER)
         for value in fresh[: max_values - len(values)]:

@@ -61,8 +61,10 @@ def nice_domain(values: Sequence[float]) -> tuple[float, float, list[float]]:
         lo = max(lo, 0.0)
     if vmax <= 1:
         hi = min(hi, 1.0)
-    ticks = [round(k * step, 6) for k in range(math.ceil(lo / step - 1e-9),
-                                                 math.floor(hi / step + 1e-9) + 1)]
+    ticks = [
+        round(k * step, 6)
+        for k in range(math.ceil(lo / step - 1e-9), math.floor(hi / step + 1e-9) + 1)
+    ]
     return round(lo, 6), round(hi, 6), ticks
 
 
@@ -86,12 +88,14 @@ class _Frame:
 
 def _open(cid: str, title: str, summary: str, css: str, height: int = H) -> list[str]:
     label = escape(f"{title}. {summary}")
-    return [f'<svg class="chart {escape(css)}" id="{cid}" viewBox="0 0 {W} {height}" '
-            f'role="img" aria-label="{label}" preserveAspectRatio="xMidYMid meet">',
-            f"<title>{escape(title)}</title><desc>{escape(summary)}</desc>",
-            f'<defs><pattern id="{cid}-hatch" width="6" height="6" '
-            'patternUnits="userSpaceOnUse" patternTransform="rotate(45)">'
-            '<line x1="0" y1="0" x2="0" y2="6" class="hatch"/></pattern></defs>']
+    return [
+        f'<svg class="chart {escape(css)}" id="{cid}" viewBox="0 0 {W} {height}" '
+        f'role="img" aria-label="{label}" preserveAspectRatio="xMidYMid meet">',
+        f"<title>{escape(title)}</title><desc>{escape(summary)}</desc>",
+        f'<defs><pattern id="{cid}-hatch" width="6" height="6" '
+        'patternUnits="userSpaceOnUse" patternTransform="rotate(45)">'
+        '<line x1="0" y1="0" x2="0" y2="6" class="hatch"/></pattern></defs>',
+    ]
 
 
 def _grid(fr: _Frame, ticks: Sequence[float], as_pct: bool = False) -> str:
@@ -99,8 +103,10 @@ def _grid(fr: _Frame, ticks: Sequence[float], as_pct: bool = False) -> str:
     for t in ticks:
         y = _f(fr.y(t))
         text = f"{t:.0%}" if as_pct else f"{t:.2f}".rstrip("0").rstrip(".")
-        parts.append(f'<line x1="{LEFT}" x2="{W - RIGHT}" y1="{y}" y2="{y}"/>'
-                     f'<text x="{LEFT - 6}" y="{y}" class="ylab">{escape(text)}</text>')
+        parts.append(
+            f'<line x1="{LEFT}" x2="{W - RIGHT}" y1="{y}" y2="{y}"/>'
+            f'<text x="{LEFT - 6}" y="{y}" class="ylab">{escape(text)}</text>'
+        )
     parts.append("</g>")
     return "".join(parts)
 
@@ -132,8 +138,10 @@ def _zones(fr: _Frame, cid: str, unsettled: Sequence[bool]) -> str:
     parts = ['<g class="prov-zone">']
     for a, b in _runs(unsettled):
         x0, x1 = fr.x(a) - fr.step / 2, fr.x(b) + fr.step / 2
-        parts.append(f'<rect x="{_f(x0)}" y="{TOP}" width="{_f(x1 - x0)}" '
-                     f'height="{fr.height - TOP - BOTTOM}" fill="url(#{cid}-hatch)"/>')
+        parts.append(
+            f'<rect x="{_f(x0)}" y="{TOP}" width="{_f(x1 - x0)}" '
+            f'height="{fr.height - TOP - BOTTOM}" fill="url(#{cid}-hatch)"/>'
+        )
     parts.append("</g>")
     return "".join(parts)
 
@@ -153,8 +161,9 @@ def line_chart(points: Sequence[Point], *, title: str, chart_id: str, css: str =
     fr = _Frame(len(points), lo, hi)
     defined = [p for p in points if p.value is not None]
     latest = next((p for p in reversed(points) if p.value is not None), None)
-    summary = (f"{len(points)} windows, {len(defined)} with a value" +
-               (f"; latest {latest.label}: {_v(latest.value)}" if latest else ""))
+    summary = f"{len(points)} windows, {len(defined)} with a value" + (
+        f"; latest {latest.label}: {_v(latest.value)}" if latest else ""
+    )
     out = _open(cid, title, summary, f"line {css}")
     out += [_zones(fr, cid, [not p.settled for p in points]), _grid(fr, ticks)]
     out.append('<g class="band">')
@@ -162,8 +171,10 @@ def line_chart(points: Sequence[Point], *, title: str, chart_id: str, css: str =
         highs = [(fr.x(i), fr.y(points[i].high or 0.0)) for i in range(a, b + 1)]
         lows = [(fr.x(i), fr.y(points[i].low or 0.0)) for i in range(a, b + 1)]
         if a == b:  # a lone window: its interval as a short bar
-            out.append(f'<rect x="{_f(highs[0][0] - 3)}" y="{_f(highs[0][1])}" width="6" '
-                       f'height="{_f(lows[0][1] - highs[0][1])}"/>')
+            out.append(
+                f'<rect x="{_f(highs[0][0] - 3)}" y="{_f(highs[0][1])}" width="6" '
+                f'height="{_f(lows[0][1] - highs[0][1])}"/>'
+            )
             continue
         d = " L".join(f"{_f(px)},{_f(py)}" for px, py in highs + lows[::-1])
         out.append(f'<path d="M{d} Z"/>')
@@ -173,36 +184,44 @@ def line_chart(points: Sequence[Point], *, title: str, chart_id: str, css: str =
         if p.value is None or q.value is None:
             continue
         cls = "seg" if p.settled and q.settled else "seg prov"
-        out.append(f'<line class="{cls}" x1="{_f(fr.x(i))}" y1="{_f(fr.y(p.value))}" '
-                   f'x2="{_f(fr.x(i + 1))}" y2="{_f(fr.y(q.value))}"/>')
+        out.append(
+            f'<line class="{cls}" x1="{_f(fr.x(i))}" y1="{_f(fr.y(p.value))}" '
+            f'x2="{_f(fr.x(i + 1))}" y2="{_f(fr.y(q.value))}"/>'
+        )
     out.append('</g><g class="pts">')
     for i, p in enumerate(points):
         if p.value is None:
-            out.append(f'<line class="gap" data-window="{escape(p.key)}" x1="{_f(fr.x(i))}" '
-                       f'x2="{_f(fr.x(i))}" y1="{_f(fr.height - BOTTOM - 6)}" '
-                       f'y2="{_f(fr.height - BOTTOM)}">'
-                       f"{_hover(p, 'no value')}</line>")
+            out.append(
+                f'<line class="gap" data-window="{escape(p.key)}" x1="{_f(fr.x(i))}" '
+                f'x2="{_f(fr.x(i))}" y1="{_f(fr.height - BOTTOM - 6)}" '
+                f'y2="{_f(fr.height - BOTTOM)}">'
+                f"{_hover(p, 'no value')}</line>"
+            )
             continue
         band = f" [{_v(p.low)}, {_v(p.high)}]" if p.low is not None else ""
         cls = "pt" if p.settled else "pt prov"
-        out.append(f'<circle class="{cls}" cx="{_f(fr.x(i))}" cy="{_f(fr.y(p.value))}" r="3.6" '
-                   f'data-value="{_v(p.value)}" data-low="{_v(p.low)}" '
-                   f'data-high="{_v(p.high)}" data-window="{escape(p.key)}" '
-                   f'data-settled="{str(p.settled).lower()}">'
-                   f"{_hover(p, f'{p.value:.3f}{band}')}</circle>")
+        out.append(
+            f'<circle class="{cls}" cx="{_f(fr.x(i))}" cy="{_f(fr.y(p.value))}" r="3.6" '
+            f'data-value="{_v(p.value)}" data-low="{_v(p.low)}" '
+            f'data-high="{_v(p.high)}" data-window="{escape(p.key)}" '
+            f'data-settled="{str(p.settled).lower()}">'
+            f"{_hover(p, f'{p.value:.3f}{band}')}</circle>"
+        )
     out += ["</g>", _xlabels(fr, [p.label for p in points]), "</svg>"]
     return Markup("".join(out))
 
 
-def strip_chart(rows: Sequence[tuple[str, Sequence[Point]]], *, title: str, chart_id: str,
-                css: str = "") -> Markup:
+def strip_chart(
+    rows: Sequence[tuple[str, Sequence[Point]]], *, title: str, chart_id: str, css: str = ""
+) -> Markup:
     """Small rows of hollow markers on a fixed 0..1 scale, one row per label-free estimate."""
     cid = _safe_id(chart_id)
     n = max((len(pts) for _, pts in rows), default=0)
     height = TOP + ROW * max(len(rows), 1) + BOTTOM
     total = sum(1 for _, pts in rows for p in pts if p.value is not None)
-    out = _open(cid, title, f"{n} windows, {total} estimates, from scores alone",
-                f"strip {css}", height)
+    out = _open(
+        cid, title, f"{n} windows, {total} estimates, from scores alone", f"strip {css}", height
+    )
     fr = _Frame(n, 0.0, 1.0, height)
     for r, (name, pts) in enumerate(rows):
         top = TOP + r * ROW
@@ -211,27 +230,43 @@ def strip_chart(rows: Sequence[tuple[str, Sequence[Point]]], *, title: str, char
         def ry(v: float, _y0: float = y0, _y1: float = y1) -> float:
             return _y0 - v * (_y0 - _y1)
 
-        out.append(f'<g class="row" data-row="{escape(name)}">'
-                   f'<text x="{LEFT}" y="{_f(top + 14)}" class="rowlab">{escape(name)}</text>')
+        out.append(
+            f'<g class="row" data-row="{escape(name)}">'
+            f'<text x="{LEFT}" y="{_f(top + 14)}" class="rowlab">{escape(name)}</text>'
+        )
         for t in (0.0, 0.5, 1.0):
-            label = "" if t == 0.5 else (f'<text class="ylab" x="{LEFT - 6}" '
-                                         f'y="{_f(ry(t))}">{t:g}</text>')
-            out.append(f'<line class="rule" x1="{LEFT}" x2="{W - RIGHT}" y1="{_f(ry(t))}" '
-                       f'y2="{_f(ry(t))}"/>{label}')
+            label = (
+                ""
+                if t == 0.5
+                else (f'<text class="ylab" x="{LEFT - 6}" y="{_f(ry(t))}">{t:g}</text>')
+            )
+            out.append(
+                f'<line class="rule" x1="{LEFT}" x2="{W - RIGHT}" y1="{_f(ry(t))}" '
+                f'y2="{_f(ry(t))}"/>{label}'
+            )
         for i, p in enumerate(pts):
             if p.value is None:
                 continue
-            out.append(f'<circle class="pt est" cx="{_f(fr.x(i))}" cy="{_f(ry(p.value))}" '
-                       f'r="3.2" data-value="{_v(p.value)}" data-window="{escape(p.key)}">'
-                       f"{_hover(p, f'{p.value:.3f}')}</circle>")
+            out.append(
+                f'<circle class="pt est" cx="{_f(fr.x(i))}" cy="{_f(ry(p.value))}" '
+                f'r="3.2" data-value="{_v(p.value)}" data-window="{escape(p.key)}">'
+                f"{_hover(p, f'{p.value:.3f}')}</circle>"
+            )
         out.append("</g>")
     labels = next((pts for _, pts in rows if pts), [])
     out += [_xlabels(fr, [p.label for p in labels]), "</svg>"]
     return Markup("".join(out))
 
 
-def bar_chart(points: Sequence[Point], *, title: str, chart_id: str, reference: float | None
-              = None, reference_label: str = "", css: str = "") -> Markup:
+def bar_chart(
+    points: Sequence[Point],
+    *,
+    title: str,
+    chart_id: str,
+    reference: float | None = None,
+    reference_label: str = "",
+    css: str = "",
+) -> Markup:
     """Shares in [0, 1] as bars (hatched when provisional), with an optional reference line."""
     cid = _safe_id(chart_id)
     fr = _Frame(len(points), 0.0, 1.0)
@@ -242,23 +277,29 @@ def bar_chart(points: Sequence[Point], *, title: str, chart_id: str, reference: 
     width = max(1.0, fr.step * 0.72)
     for i, p in enumerate(points):
         if p.value is None:
-            out.append(f'<line class="gap" data-window="{escape(p.key)}" x1="{_f(fr.x(i))}" '
-                       f'x2="{_f(fr.x(i))}" y1="{_f(H - BOTTOM - 6)}" y2="{_f(H - BOTTOM)}">'
-                       f"{_hover(p, 'nothing to count')}</line>")
+            out.append(
+                f'<line class="gap" data-window="{escape(p.key)}" x1="{_f(fr.x(i))}" '
+                f'x2="{_f(fr.x(i))}" y1="{_f(H - BOTTOM - 6)}" y2="{_f(H - BOTTOM)}">'
+                f"{_hover(p, 'nothing to count')}</line>"
+            )
             continue
         y = fr.y(min(max(p.value, 0.0), 1.0))
         fill = "" if p.settled else f' style="fill: url(#{cid}-hatch)"'
         cls = "pt bar" if p.settled else "pt bar prov"
-        out.append(f'<rect class="{cls}"{fill} x="{_f(fr.x(i) - width / 2)}" y="{_f(y)}" '
-                   f'width="{_f(width)}" height="{_f(H - BOTTOM - y)}" '
-                   f'data-value="{_v(p.value)}" data-window="{escape(p.key)}">'
-                   f"{_hover(p, _pct(p.value))}</rect>")
+        out.append(
+            f'<rect class="{cls}"{fill} x="{_f(fr.x(i) - width / 2)}" y="{_f(y)}" '
+            f'width="{_f(width)}" height="{_f(H - BOTTOM - y)}" '
+            f'data-value="{_v(p.value)}" data-window="{escape(p.key)}">'
+            f"{_hover(p, _pct(p.value))}</rect>"
+        )
     out.append("</g>")
     if reference is not None:
         ry = _f(fr.y(reference))
-        out.append(f'<g class="ref"><line x1="{LEFT}" x2="{W - RIGHT}" y1="{ry}" y2="{ry}"/>'
-                   f'<text x="{W - RIGHT - 4}" y="{_f(fr.y(reference) - 5)}">'
-                   f"{escape(reference_label)}</text></g>")
+        out.append(
+            f'<g class="ref"><line x1="{LEFT}" x2="{W - RIGHT}" y1="{ry}" y2="{ry}"/>'
+            f'<text x="{W - RIGHT - 4}" y="{_f(fr.y(reference) - 5)}">'
+            f"{escape(reference_label)}</text></g>"
+        )
     out += [_xlabels(fr, [p.label for p in points]), "</svg>"]
     return Markup("".join(out))
 
@@ -268,9 +309,16 @@ def _tx(t: float | None) -> float:
     return LEFT + float(t or 0.0) * (W - LEFT - RIGHT)
 
 
-def sweep_chart(rows: Sequence[dict[str, float | None]], *, title: str, chart_id: str,
-                best: float | None, best_label: str, current: float | None = None,
-                series: Sequence[str] = ("precision", "recall")) -> Markup:
+def sweep_chart(
+    rows: Sequence[dict[str, float | None]],
+    *,
+    title: str,
+    chart_id: str,
+    best: float | None,
+    best_label: str,
+    current: float | None = None,
+    series: Sequence[str] = ("precision", "recall"),
+) -> Markup:
     """Measures against the decision threshold, with the best-F-beta threshold marked."""
     cid = _safe_id(chart_id)
     fr = _Frame(1, 0.0, 1.0)
@@ -283,22 +331,28 @@ def sweep_chart(rows: Sequence[dict[str, float | None]], *, title: str, chart_id
             coords.append(None if t is None or v is None else (_tx(t), fr.y(v)))
         out.append(f'<g class="s-{escape(name)}" data-series="{escape(name)}">')
         for a, b in _runs([c is not None for c in coords]):
-            d = " L".join(f"{_f(c[0])},{_f(c[1])}" for c in coords[a:b + 1] if c)
+            d = " L".join(f"{_f(c[0])},{_f(c[1])}" for c in coords[a : b + 1] if c)
             out.append(f'<path class="seg" d="M{d}"/>')
         for r, c in zip(rows, coords, strict=True):
             if c is not None:
-                out.append(f'<circle class="pt" cx="{_f(c[0])}" cy="{_f(c[1])}" r="1.7" '
-                           f'data-value="{_v(r[name])}" data-threshold="{_v(r["threshold"])}"/>')
+                out.append(
+                    f'<circle class="pt" cx="{_f(c[0])}" cy="{_f(c[1])}" r="1.7" '
+                    f'data-value="{_v(r[name])}" data-threshold="{_v(r["threshold"])}"/>'
+                )
         out.append("</g>")
-    for value, cls, text, y in ((current, "in-use", "in use", H - BOTTOM - 8),
-                                (best, "best", best_label, TOP + 14)):
+    for value, cls, text, y in (
+        (current, "in-use", "in use", H - BOTTOM - 8),
+        (best, "best", best_label, TOP + 14),
+    ):
         if value is None:
             continue
         xx, right = _tx(value), value > 0.6
         tx, anchor = (xx - 6, "end") if right else (xx + 6, "start")
-        out.append(f'<g class="tmark {cls}" data-threshold="{_v(value)}"><line x1="{_f(xx)}" '
-                   f'x2="{_f(xx)}" y1="{TOP}" y2="{H - BOTTOM}"/><text x="{_f(tx)}" y="{y}" '
-                   f'text-anchor="{anchor}">{escape(text)}</text></g>')
+        out.append(
+            f'<g class="tmark {cls}" data-threshold="{_v(value)}"><line x1="{_f(xx)}" '
+            f'x2="{_f(xx)}" y1="{TOP}" y2="{H - BOTTOM}"/><text x="{_f(tx)}" y="{y}" '
+            f'text-anchor="{anchor}">{escape(text)}</text></g>'
+        )
     out.append('<g class="xaxis">')
     for t in (0.0, 0.25, 0.5, 0.75, 1.0):
         out.append(f'<text x="{_f(_tx(t))}" y="{H - BOTTOM + 22}">{t:g}</text>')

@@ -17,14 +17,25 @@ from belated.store.tables import ModelRow
 from belated.timeutil import parse_ts
 from belated.web import charts
 
-CHARTED = {"binary": ("precision", "recall", "fbeta", "positive_rate"),
-           "multiclass": ("accuracy", "precision_macro", "recall_macro", "fbeta_macro")}
-HEADLINE = {"binary": ("precision", "recall", "fbeta"),
-            "multiclass": ("precision_macro", "recall_macro", "fbeta_macro")}
+CHARTED = {
+    "binary": ("precision", "recall", "fbeta", "positive_rate"),
+    "multiclass": ("accuracy", "precision_macro", "recall_macro", "fbeta_macro"),
+}
+HEADLINE = {
+    "binary": ("precision", "recall", "fbeta"),
+    "multiclass": ("precision_macro", "recall_macro", "fbeta_macro"),
+}
 ESTIMATED = ("precision", "recall")
-NAMES = {"precision": "Precision", "recall": "Recall", "fbeta": "F1", "accuracy": "Accuracy",
-         "positive_rate": "Predicted positive rate", "precision_macro": "Precision (macro)",
-         "recall_macro": "Recall (macro)", "fbeta_macro": "F1 (macro)"}
+NAMES = {
+    "precision": "Precision",
+    "recall": "Recall",
+    "fbeta": "F1",
+    "accuracy": "Accuracy",
+    "positive_rate": "Predicted positive rate",
+    "precision_macro": "Precision (macro)",
+    "recall_macro": "Recall (macro)",
+    "fbeta_macro": "F1 (macro)",
+}
 AXIS = {"hour": "%d %b %H:00", "day": "%d %b", "week": "wk %d %b"}
 PAGE = 500
 
@@ -52,35 +63,46 @@ def _all_models(session: Session, project_id: int) -> list[ModelRow]:
     out: list[ModelRow] = []
     after: str | None = None
     while True:
-        rows, after = models.list_(session=session, project_id=project_id, after=after,
-                                   limit=PAGE)
+        rows, after = models.list_(session=session, project_id=project_id, after=after, limit=PAGE)
         out += rows
         if after is None:
             return out
 
 
-def _alerts(session: Session, who: Principal, *, state: str | None, model: str | None
-            ) -> list[dict[str, Any]]:
+def _alerts(
+    session: Session, who: Principal, *, state: str | None, model: str | None
+) -> list[dict[str, Any]]:
     """Every alert that matches, newest first (all pages)."""
     out: list[dict[str, Any]] = []
     after: int | None = None
     while True:
-        items, after = alerts.list_alerts(session=session, project_id=who.project_id,
-                                          state=state, model=model, since=None, after=after,
-                                          limit=PAGE)
+        items, after = alerts.list_alerts(
+            session=session,
+            project_id=who.project_id,
+            state=state,
+            model=model,
+            since=None,
+            after=after,
+            limit=PAGE,
+        )
         out += items
         if after is None:
             return out
 
 
-def _windows(session: Session, row: ModelRow, rng: params.Range, now: datetime,
-             max_values: int, filters: tuple[tuple[str, str], ...] = ()) -> list[dict[str, Any]]:
+def _windows(
+    session: Session,
+    row: ModelRow,
+    rng: params.Range,
+    now: datetime,
+    max_values: int,
+    filters: tuple[tuple[str, str], ...] = (),
+) -> list[dict[str, Any]]:
     wanted = frozenset(CHARTED["binary"]) if row.kind == "binary" else None
     return build(session, row, rng, Options(measures=wanted), filters, now, max_values)
 
 
-def overview(*, session: Session, who: Principal, now: datetime, max_values: int
-             ) -> dict[str, Any]:
+def overview(*, session: Session, who: Principal, now: datetime, max_values: int) -> dict[str, Any]:
     """The project's models, each with its latest settled day and its open alerts."""
     open_by_model: dict[str, int] = {}
     for alert in _alerts(session, who, state="open", model=None):
@@ -92,96 +114,179 @@ def overview(*, session: Session, who: Principal, now: datetime, max_values: int
         settled = [w for w in windows if w["settled"] and w["predictions"]]
         latest = settled[-1] if settled else None
         newest = next((w for w in reversed(windows) if w["predictions"]), None)
-        cards.append({
-            "name": row.name, "kind": row.kind, "open_alerts": open_by_model.get(row.name, 0),
-            "stored": models.counts(session=session, model=row),
-            "window": latest, "newest": newest,
-            "headline": [(name_of(m), (latest or {}).get("measures", {}).get(m))
-                         for m in HEADLINE[row.kind]],
-        })
+        cards.append(
+            {
+                "name": row.name,
+                "kind": row.kind,
+                "open_alerts": open_by_model.get(row.name, 0),
+                "stored": models.counts(session=session, model=row),
+                "window": latest,
+                "newest": newest,
+                "headline": [
+                    (name_of(m), (latest or {}).get("measures", {}).get(m))
+                    for m in HEADLINE[row.kind]
+                ],
+            }
+        )
     return {"cards": cards, "days": params.DEFAULT_WINDOWS}
 
 
-def _series(windows: list[dict[str, Any]], measure: str, granularity: str,
-            section: str = "measures") -> list[charts.Point]:
+def _series(
+    windows: list[dict[str, Any]], measure: str, granularity: str, section: str = "measures"
+) -> list[charts.Point]:
     out = []
     for w in windows:
         m = (w.get(section) or {}).get(measure) or {}
-        out.append(charts.Point(
-            key=w["start"], label=_label(w["start"], granularity), value=m.get("value"),
-            low=m.get("low"), high=m.get("high"), settled=w["settled"],
-            note=m.get("reason") or f"{w['labelled']} of {w['predictions']} labelled"))
+        out.append(
+            charts.Point(
+                key=w["start"],
+                label=_label(w["start"], granularity),
+                value=m.get("value"),
+                low=m.get("low"),
+                high=m.get("high"),
+                settled=w["settled"],
+                note=m.get("reason") or f"{w['labelled']} of {w['predictions']} labelled",
+            )
+        )
     return out
 
 
-def model_view(*, session: Session, who: Principal, name: str, view: View, now: datetime,
-               max_values: int) -> dict[str, Any]:
+def model_view(
+    *, session: Session, who: Principal, name: str, view: View, now: datetime, max_values: int
+) -> dict[str, Any]:
     """Everything the model page shows, for the asked range and segment."""
     rng = params.parse_range(view.granularity, view.start or None, view.end or None, now)
     filters = params.parse_segments(list(view.segment))
     row = models.get(session=session, project_id=who.project_id, name=name)
     windows = _windows(session, row, rng, now, max_values, filters)
     g = view.granularity
-    measure_charts = [{
-        "measure": m, "title": name_of(m), "latest": next(
-            (w["measures"].get(m) for w in reversed(windows)
-             if w["settled"] and (w["measures"].get(m) or {}).get("value") is not None), None),
-        "svg": charts.line_chart(_series(windows, m, g), title=f"{name_of(m)} by {g}",
-                                 chart_id=f"m-{m}", css=f"m-{m}"),
-    } for m in CHARTED[row.kind]]
-    coverage = [charts.Point(key=w["start"], label=_label(w["start"], g),
-                             value=w["coverage"], settled=w["settled"],
-                             note=f"{w['labelled']} of {w['predictions']} labelled")
-                for w in windows]
+    measure_charts = [
+        {
+            "measure": m,
+            "title": name_of(m),
+            "latest": next(
+                (
+                    w["measures"].get(m)
+                    for w in reversed(windows)
+                    if w["settled"] and (w["measures"].get(m) or {}).get("value") is not None
+                ),
+                None,
+            ),
+            "svg": charts.line_chart(
+                _series(windows, m, g),
+                title=f"{name_of(m)} by {g}",
+                chart_id=f"m-{m}",
+                css=f"m-{m}",
+            ),
+        }
+        for m in CHARTED[row.kind]
+    ]
+    coverage = [
+        charts.Point(
+            key=w["start"],
+            label=_label(w["start"], g),
+            value=w["coverage"],
+            settled=w["settled"],
+            note=f"{w['labelled']} of {w['predictions']} labelled",
+        )
+        for w in windows
+    ]
     page: dict[str, Any] = {
-        "model": row, "stored": models.counts(session=session, model=row),
-        "view": view, "range": rng, "windows": windows, "charts": measure_charts,
+        "model": row,
+        "stored": models.counts(session=session, model=row),
+        "view": view,
+        "range": rng,
+        "windows": windows,
+        "charts": measure_charts,
         "provisional": sum(1 for w in windows if not w["settled"]),
         "coverage_svg": charts.bar_chart(
-            coverage, title=f"Label coverage by {g}", chart_id="coverage",
-            reference=row.min_coverage, reference_label=f"settles at {row.min_coverage:.0%}"),
+            coverage,
+            title=f"Label coverage by {g}",
+            chart_id="coverage",
+            reference=row.min_coverage,
+            reference_label=f"settles at {row.min_coverage:.0%}",
+        ),
         "alerts": _alerts(session, who, state="open", model=row.name),
-        "rules": [alerts.rule_read(r, row.name)
-                  for r in alerts.list_rules(session=session, model=row)],
-        "estimates_svg": None, "sweep": None,
+        "rules": [
+            alerts.rule_read(r, row.name) for r in alerts.list_rules(session=session, model=row)
+        ],
+        "estimates_svg": None,
+        "sweep": None,
     }
     if row.kind == "binary":
         page.update(_binary_extras(session, row, rng, windows, now, max_values))
     return page
 
 
-def _binary_extras(session: Session, row: ModelRow, rng: params.Range,
-                   windows: list[dict[str, Any]], now: datetime, max_values: int
-                   ) -> dict[str, Any]:
+def _binary_extras(
+    session: Session,
+    row: ModelRow,
+    rng: params.Range,
+    windows: list[dict[str, Any]],
+    now: datetime,
+    max_values: int,
+) -> dict[str, Any]:
     """Label-free estimates, the threshold sweep and the label delays of a binary model."""
     g = rng.granularity
-    strips = [(f"estimated {name_of(m).lower()}", _series(windows, m, g, "estimates"))
-              for m in ESTIMATED]
-    latest_cal = next((w["estimates"].get("calibration_error") for w in reversed(windows)
-                       if w["estimates"].get("calibration_error") is not None), None)
-    sweep = extras.thresholds(session, row, start=rng.start, end=rng.end, beta=1.0,
-                              precision_target=None, recall_target=None, now=now,
-                              max_values=max_values)
+    strips = [
+        (f"estimated {name_of(m).lower()}", _series(windows, m, g, "estimates")) for m in ESTIMATED
+    ]
+    latest_cal = next(
+        (
+            w["estimates"].get("calibration_error")
+            for w in reversed(windows)
+            if w["estimates"].get("calibration_error") is not None
+        ),
+        None,
+    )
+    sweep = extras.thresholds(
+        session,
+        row,
+        start=rng.start,
+        end=rng.end,
+        beta=1.0,
+        precision_target=None,
+        recall_target=None,
+        now=now,
+        max_values=max_values,
+    )
     best = sweep.get("best_fbeta")
     best_label = f"best F1 at {best['threshold']:.2f}" if best else "no best F1 yet"
-    delays = extras.delays(session, row, start=rng.start, end=rng.end, now=now,
-                           max_values=max_values)
-    ages = [charts.Point(key=str(a["age_days"]), label=f"{a['age_days']} d",
-                         value=a["coverage"], note=f"{a['predictions']} predictions")
-            for a in delays["coverage_by_age"]]
+    delays = extras.delays(
+        session, row, start=rng.start, end=rng.end, now=now, max_values=max_values
+    )
+    ages = [
+        charts.Point(
+            key=str(a["age_days"]),
+            label=f"{a['age_days']} d",
+            value=a["coverage"],
+            note=f"{a['predictions']} predictions",
+        )
+        for a in delays["coverage_by_age"]
+    ]
     return {
         "estimates_svg": charts.strip_chart(
-            strips, title="Label-free estimates from scores alone", chart_id="estimates"),
+            strips, title="Label-free estimates from scores alone", chart_id="estimates"
+        ),
         "calibration_error": latest_cal,
-        "sweep": sweep, "best": best,
+        "sweep": sweep,
+        "best": best,
         "sweep_svg": charts.sweep_chart(
-            sweep["sweep"], title="Precision and recall against the threshold",
-            chart_id="sweep", best=best["threshold"] if best else None, best_label=best_label,
-            current=row.threshold),
+            sweep["sweep"],
+            title="Precision and recall against the threshold",
+            chart_id="sweep",
+            best=best["threshold"] if best else None,
+            best_label=best_label,
+            current=row.threshold,
+        ),
         "delays": delays,
         "delays_svg": charts.bar_chart(
-            ages, title="Label coverage by age of the predictions", chart_id="delays",
-            reference=row.min_coverage, reference_label=f"{row.min_coverage:.0%}"),
+            ages,
+            title="Label coverage by age of the predictions",
+            chart_id="delays",
+            reference=row.min_coverage,
+            reference_label=f"{row.min_coverage:.0%}",
+        ),
     }
 
 
@@ -190,12 +295,15 @@ def describe_rule(rule: Any) -> str:
     m = name_of(rule.measure) if rule.measure else ""
     text = {
         "floor": f"{m} under {rule.threshold}"
-                 + (" (upper interval end)" if rule.mode == "confident" else ""),
+        + (" (upper interval end)" if rule.mode == "confident" else ""),
         "drop": f"{m} more than {rule.tolerance} under its baseline at α = {rule.alpha}",
         "shift": f"{m} moved by at least {rule.threshold} from its baseline",
         "volume": f"predictions outside [{rule.low}, {rule.high}]",
-        "stall": (f"coverage of old windows under {rule.threshold}" if rule.threshold is not None
-                  else f"no label for {rule.max_silence_hours} h"),
+        "stall": (
+            f"coverage of old windows under {rule.threshold}"
+            if rule.threshold is not None
+            else f"no label for {rule.max_silence_hours} h"
+        ),
     }.get(rule.kind, rule.kind)
     seg = f", per {rule.segment_by}" if rule.segment_by else ""
     return f"{text} (per {rule.granularity}{seg})"
@@ -214,12 +322,19 @@ def baseline_text(baseline: dict[str, Any] | None) -> str:
     return "; ".join(parts) or "—"
 
 
-def alerts_view(*, session: Session, who: Principal, state: str | None, model: str | None,
-                after: int | None) -> dict[str, Any]:
+def alerts_view(
+    *, session: Session, who: Principal, state: str | None, model: str | None, after: int | None
+) -> dict[str, Any]:
     """A page of the project's alerts, newest first, each with its rule and breaches."""
-    items, more = alerts.list_alerts(session=session, project_id=who.project_id,
-                                     state=state or None, model=model or None, since=None,
-                                     after=after, limit=50)
+    items, more = alerts.list_alerts(
+        session=session,
+        project_id=who.project_id,
+        state=state or None,
+        model=model or None,
+        since=None,
+        after=after,
+        limit=50,
+    )
     rules: dict[str, str] = {}
     for name in sorted({a["model"] for a in items}):
         row = models.get(session=session, project_id=who.project_id, name=name)
@@ -227,6 +342,7 @@ def alerts_view(*, session: Session, who: Principal, state: str | None, model: s
             rules[r.id] = describe_rule(alerts.rule_read(r, name))
     for a in items:
         a["rule_text"] = rules.get(a["rule_id"], a["rule_id"])
-        a["breaches"] = [{**b, "baseline_text": baseline_text(b["baseline"])}
-                         for b in a["breaches"][::-1]]
+        a["breaches"] = [
+            {**b, "baseline_text": baseline_text(b["baseline"])} for b in a["breaches"][::-1]
+        ]
     return {"alerts": items, "state": state or "", "model": model or "", "next": more}

@@ -24,7 +24,7 @@ COOKIE_SECONDS = 12 * 3600
 HEADERS = {
     # no script at all, styles inline only, no framing, forms post only here
     "Content-Security-Policy": "default-src 'none'; style-src 'unsafe-inline'; img-src data:; "
-                               "form-action 'self'; frame-ancestors 'none'; base-uri 'none'",
+    "form-action 'self'; frame-ancestors 'none'; base-uri 'none'",
     "X-Content-Type-Options": "nosniff",
     "Referrer-Policy": "same-origin",
     "Cache-Control": "no-store",
@@ -60,14 +60,19 @@ def _hours(value: float | None) -> str:
     return f"{value:.0f} h" if value < 48 else f"{value / 24:.1f} days"
 
 
-ENV = Environment(loader=PackageLoader("belated.web", "templates"), autoescape=True,
-                  trim_blocks=True, lstrip_blocks=True)
+ENV = Environment(
+    loader=PackageLoader("belated.web", "templates"),
+    autoescape=True,
+    trim_blocks=True,
+    lstrip_blocks=True,
+)
 ENV.filters.update(num=_num, pct=_pct, when=_when, hours=_hours)
 ENV.globals.update(span=_span)
 
 
-def render(template: str, *, status: int = 200, headers: dict[str, str] | None = None,
-           **context: Any) -> HTMLResponse:
+def render(
+    template: str, *, status: int = 200, headers: dict[str, str] | None = None, **context: Any
+) -> HTMLResponse:
     """A page from its template, with the dashboard's security headers."""
     html = ENV.get_template(template).render(**context)
     return HTMLResponse(html, status_code=status, headers={**HEADERS, **(headers or {})})
@@ -86,8 +91,14 @@ def viewer(request: Request, session: SessionDep) -> Principal | Response:
         target = request.url.path + (f"?{request.url.query}" if request.url.query else "")
         return RedirectResponse(f"/signin?next={quote(target, safe='')}", status_code=303)
     if "read" not in who.scopes:
-        return _error(Problem(403, "This token lacks the 'read' scope, which the dashboard "
-                                   "needs. Sign in with a read token.", title="Forbidden"))
+        return _error(
+            Problem(
+                403,
+                "This token lacks the 'read' scope, which the dashboard "
+                "needs. Sign in with a read token.",
+                title="Forbidden",
+            )
+        )
     return who
 
 
@@ -105,8 +116,12 @@ def signin_form(next: str | None = None) -> HTMLResponse:
 
 
 @router.post("/signin", response_class=HTMLResponse)
-def signin(request: Request, session: SessionDep, token: Annotated[str, Form()] = "",
-           next: Annotated[str, Form()] = "/") -> Response:
+def signin(
+    request: Request,
+    session: SessionDep,
+    token: Annotated[str, Form()] = "",
+    next: Annotated[str, Form()] = "/",
+) -> Response:
     """Check a read token and keep it in an HTTP-only, same-site cookie."""
     origin = request.headers.get("origin")
     if origin and origin != "null" and urlsplit(origin).netloc != request.url.netloc:
@@ -121,11 +136,24 @@ def signin(request: Request, session: SessionDep, token: Annotated[str, Form()] 
     if error:
         # a 401 must name a scheme (RFC 9110); Bearer never opens a browser's password box
         challenge = {"WWW-Authenticate": "Bearer"} if status == 401 else None
-        return render("signin.html", status=status, headers=challenge, next=_safe_next(next),
-                      error=error, signed_in=False)
+        return render(
+            "signin.html",
+            status=status,
+            headers=challenge,
+            next=_safe_next(next),
+            error=error,
+            signed_in=False,
+        )
     answer = RedirectResponse(_safe_next(next), status_code=303)
-    answer.set_cookie(COOKIE, token, max_age=COOKIE_SECONDS, path="/", httponly=True,
-                      samesite="strict", secure=request.url.scheme == "https")
+    answer.set_cookie(
+        COOKIE,
+        token,
+        max_age=COOKIE_SECONDS,
+        path="/",
+        httponly=True,
+        samesite="strict",
+        secure=request.url.scheme == "https",
+    )
     return answer
 
 
@@ -133,8 +161,9 @@ def signin(request: Request, session: SessionDep, token: Annotated[str, Form()] 
 def signout(request: Request) -> Response:
     """Forget the sign-in cookie."""
     answer = RedirectResponse("/signin", status_code=303)
-    answer.delete_cookie(COOKIE, path="/", httponly=True, samesite="strict",
-                         secure=request.url.scheme == "https")
+    answer.delete_cookie(
+        COOKIE, path="/", httponly=True, samesite="strict", secure=request.url.scheme == "https"
+    )
     return answer
 
 
@@ -144,15 +173,23 @@ def overview(request: Request, session: SessionDep) -> Response:
     who = viewer(request, session)
     if isinstance(who, Response):
         return who
-    page = pages.overview(session=session, who=who, now=now(),
-                          max_values=request.app.state.settings.max_segment_values)
+    page = pages.overview(
+        session=session,
+        who=who,
+        now=now(),
+        max_values=request.app.state.settings.max_segment_values,
+    )
     return render("index.html", signed_in=True, section="models", **page)
 
 
 @router.get("/models/{name}", response_class=HTMLResponse)
 def model_page(
-    name: str, request: Request, session: SessionDep, granularity: str = "day",
-    start: str | None = None, end: str | None = None,
+    name: str,
+    request: Request,
+    session: SessionDep,
+    granularity: str = "day",
+    start: str | None = None,
+    end: str | None = None,
     segment: Annotated[list[str] | None, Query()] = None,
 ) -> Response:
     """One model: measures over windows, coverage, estimates, thresholds, delays, alerts."""
@@ -161,16 +198,27 @@ def model_page(
         return who
     view = pages.View(granularity, start, end, tuple(s for s in segment or [] if s.strip()))
     try:
-        page = pages.model_view(session=session, who=who, name=name, view=view, now=now(),
-                                max_values=request.app.state.settings.max_segment_values)
+        page = pages.model_view(
+            session=session,
+            who=who,
+            name=name,
+            view=view,
+            now=now(),
+            max_values=request.app.state.settings.max_segment_values,
+        )
     except Problem as problem:
         return _error(problem)
     return render("model.html", signed_in=True, section="models", **page)
 
 
 @router.get("/alerts", response_class=HTMLResponse)
-def alerts_page(request: Request, session: SessionDep, state: str | None = None,
-                model: str | None = None, after: str | None = None) -> Response:
+def alerts_page(
+    request: Request,
+    session: SessionDep,
+    state: str | None = None,
+    model: str | None = None,
+    after: str | None = None,
+) -> Response:
     """The project's alerts, newest first, with their breaches."""
     who = viewer(request, session)
     if isinstance(who, Response):
@@ -178,8 +226,9 @@ def alerts_page(request: Request, session: SessionDep, state: str | None = None,
     if after is not None and not after.isdigit():
         return _error(Problem(422, "'after' must be a position this page gave out."))
     try:
-        page = pages.alerts_view(session=session, who=who, state=state, model=model,
-                                 after=int(after) if after else None)
+        page = pages.alerts_view(
+            session=session, who=who, state=state, model=model, after=int(after) if after else None
+        )
     except Problem as problem:
         return _error(problem)
     return render("alerts.html", signed_in=True, section="alerts", **page)
