@@ -124,7 +124,7 @@ def _column(series: pd.Series) -> list[Any]:
     if pd.api.types.is_float_dtype(series):
         return [None if v != v else v for v in series.to_numpy(dtype=float).tolist()]
     if pd.api.types.is_integer_dtype(series) and not series.hasnans:
-        return series.to_numpy(dtype=np.int64).tolist()
+        return list(series.to_numpy(dtype=np.int64).tolist())
     if isinstance(series.dtype, pd.StringDtype):
         return [v if isinstance(v, str) else None for v in series.tolist()]
     return [plain(v) for v in series.tolist()]
