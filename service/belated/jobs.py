@@ -169,7 +169,7 @@ class JobRunner:
 
 def refresh_step(runner: JobRunner) -> dict[str, Any]:
     """Join pending labels, mark crossed implied negatives, recompute dirty buckets."""
-    marked = refresh.sweep(runner.sessions)
+    marked = refresh.join_and_mark(runner.sessions)
     done = refresh.refresh_all(runner.sessions, max_values=runner.settings.max_segment_values)
     return {"marked": marked, "buckets": done}
 

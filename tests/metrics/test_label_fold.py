@@ -60,7 +60,7 @@ def spy(monkeypatch: pytest.MonkeyPatch) -> list[tuple[bool, int]]:
     real = rollups.compute
 
     def recording(session: Any, scope: Any, keys: Any) -> Any:
-        calls.append((scope.changes, len(scope.hours)))
+        calls.append((scope.of_changes, len(scope.hours)))
         return real(session, scope, keys)
 
     monkeypatch.setattr(rollups, "compute", recording)
@@ -85,7 +85,7 @@ def _check_days(tenant: Tenant, model: str, sc: Any, *state: np.ndarray) -> None
 
 def _without_cut(found: dict[Any, Any]) -> dict[Any, Any]:
     # the cutoff an hour was aggregated with depends on when; everything else must agree
-    return {k: {c: v for c, v in r.items() if c != "cut"} for k, r in found.items()}
+    return {k: {c: v for c, v in r.items() if c != "negative_cutoff"} for k, r in found.items()}
 
 
 def test_labels_on_implied_negatives_and_corrections_fold_into_stored_hours(
@@ -102,7 +102,7 @@ def test_labels_on_implied_negatives_and_corrections_fold_into_stored_hours(
     assert count(engine, "label_changes", model.id) == 0
 
     clock.set(NOW)
-    refresh.sweep(sessions)  # hours crossing the ten days since: aggregated again
+    refresh.join_and_mark(sessions)  # hours crossing the ten days since: aggregated again
     assert refresh.refresh_all(sessions, max_values=100, model_id=model.id) > 0
     spy.clear()
 
@@ -166,7 +166,7 @@ def test_a_pending_label_joined_by_the_sweep_is_folded(
                 )
             )
     spy.clear()
-    refresh.sweep(sessions)
+    refresh.join_and_mark(sessions)
     assert count(engine, "pending_labels", model.id) == 0
     assert count(engine, "label_changes", model.id) == len(first)
     assert not any(_marks(engine, model.id).values())
@@ -270,7 +270,10 @@ def test_an_old_implied_negative_is_judged_as_its_hour_counted_it(
         assert r.status_code == 200, r.text
     else:  # what an upgrade to revision 0003 leaves: hourly rows without their cutoff
         with engine.begin() as conn:
-            conn.execute(text("UPDATE rollups SET cut = NULL WHERE model_id = :m"), {"m": model.id})
+            conn.execute(
+                text("UPDATE rollups SET negative_cutoff = NULL WHERE model_id = :m"),
+                {"m": model.id},
+            )
     r = tenant.client.post(
         f"/v1/models/{model.name}/labels", json={"labels": [label(items[0]["id"], outcome)]}
     )

@@ -121,7 +121,7 @@ def test_predictions_crossing_negative_after_days_become_implied_negatives(
     assert sum(w["implied_negatives"] for w in before) > 0
 
     clock.set(NOW)  # four days later, without any write: more rows cross the ten days
-    refresh.sweep(sessions)  # the job's step that marks the hours that crossed
+    refresh.join_and_mark(sessions)  # the job's step that marks the hours that crossed
     everything = np.ones(len(sc.pids), bool)
     after = check_days(
         tenant,
@@ -208,7 +208,7 @@ def test_a_mark_renewed_inside_the_refresh_keeps_it_dirty(
     monkeypatch.setattr(rollups, "refresh_hours", refresh_then_write)
     batch = sorted(marks)[: refresh.BATCH_HOURS]  # one batch: the earliest hours
     with transaction(sessions) as session:
-        assert refresh.refresh_batch(session, max_values=100, model_id=model.id) == len(batch)
+        assert len(refresh.refresh_batch(session, max_values=100, model_id=model.id)) == len(batch)
     left = _dirty_hours(engine, model.id)
     assert sorted(left) == sorted({renewed} | set(marks) - set(batch))
     assert left[renewed] != marks[renewed]  # the write's mark, not the one the refresh read
@@ -310,7 +310,7 @@ def test_a_pending_label_left_by_a_concurrent_write_is_joined_by_the_sweep(
 ) -> None:
     model = create_model(tenant, engine, **SETTINGS)
     leave_a_raced_label(engine, sessions, store_url, model.id)
-    assert refresh.sweep(sessions) >= 1
+    assert refresh.join_and_mark(sessions) >= 1
     assert count(engine, "pending_labels", model.id) == 0
     window = _raced_day(tenant, model.name)
     assert window["confusion"] == {"tp": 1, "fp": 0, "fn": 0, "tn": 0}

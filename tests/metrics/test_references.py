@@ -11,19 +11,18 @@ from __future__ import annotations
 import numpy as np
 
 from belated.metrics.windows import CALIBRATION_WINDOWS, _references
-from belated.store.accumulate import Acc
+from belated.store.totals import Totals
 
 
-def _window(rng: np.random.Generator, n: int) -> tuple[Acc, np.ndarray, np.ndarray]:
+def _window(rng: np.random.Generator, n: int) -> tuple[Totals, np.ndarray, np.ndarray]:
     p = rng.beta(2.0, 5.0, n)
     y = rng.random(n) < p
-    acc = Acc()
+    totals = Totals.of({"n_labelled": n})
     bins = np.minimum((p * 100).astype(int), 99)
-    for cls, mask in ((0, y), (1, ~y)):
-        acc.hist[cls] = np.bincount(bins[mask], minlength=100)
-        acc.hsum[cls] = np.bincount(bins[mask], weights=p[mask], minlength=100)
-    acc.counts[1] = n  # n_labelled
-    return acc, p, y
+    for cls, mask in (("pos", y), ("neg", ~y)):
+        totals.score_counts(cls)[:] = np.bincount(bins[mask], minlength=100)
+        totals.score_sums(cls)[:] = np.bincount(bins[mask], weights=p[mask], minlength=100)
+    return totals, p, y
 
 
 def test_trailing_references_equal_a_computation_on_raw_rows() -> None:
@@ -44,5 +43,5 @@ def test_trailing_references_equal_a_computation_on_raw_rows() -> None:
             ece, prior = got[i]
             assert ece is not None and abs(ece - gaps / len(p)) < 1e-12
             assert prior is not None and abs(prior - y.mean()) < 1e-12
-        if settled[i] and acc.counts[1]:
+        if settled[i] and acc["n_labelled"]:
             picked = (picked + [i])[-CALIBRATION_WINDOWS:]

@@ -19,6 +19,7 @@ import numpy as np
 import pytest
 
 from belated.store.packing import unpack_delays, unpack_hist
+from belated.store.statistics import COUNTS, SUMS
 from tests.conftest import STORES
 from tests.reliability.procs import (
     Service,
@@ -36,8 +37,8 @@ from tests.reliability.procs import (
 
 MODEL = "returns-crash"
 BATCH = 200
-INT_COLUMNS = ("n_pred", "n_labelled", "n_implied", "n_pred_pos", "tp", "fp", "fn", "tn")
-FLOAT_COLUMNS = ("brier_sum", "logloss_sum", "exp_tp", "exp_fp", "exp_fn", "exp_tn")
+INT_COLUMNS = COUNTS  # the declared statistics (belated.store.statistics)
+FLOAT_COLUMNS = SUMS
 
 
 def batch_items(j: int, end_hour: int, hours: int, size: int) -> list[dict[str, Any]]:
@@ -145,13 +146,15 @@ def rollup_snapshot(store: Store, mid: int) -> dict[tuple[Any, ...], dict[str, A
         " FROM rollups WHERE model_id = ?",
         mid,
     ):
-        hist, sums = unpack_hist(bytes(r[18]) if r[18] else None)
+        ints, floats = 4 + len(INT_COLUMNS), 4 + len(INT_COLUMNS) + len(FLOAT_COLUMNS)
+        blob, delays = r[floats], r[floats + 1]
+        hist, sums = unpack_hist(bytes(blob) if blob else None)
         out[r[:4]] = {
-            "ints": r[4:12],
-            "floats": np.array(r[12:18], dtype=float),
+            "ints": r[4:ints],
+            "floats": np.array(r[ints:floats], dtype=float),
             "hist": hist,
             "sums": sums,
-            "delays": unpack_delays(bytes(r[19]) if r[19] else None),
+            "delays": unpack_delays(bytes(delays) if delays else None),
         }
     return out
 

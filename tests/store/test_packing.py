@@ -6,7 +6,8 @@ import numpy as np
 import pytest
 
 from belated.stats.delays import N_DELAY_BINS
-from belated.store.packing import N_BINS, pack_delays, pack_hist, unpack_delays, unpack_hist
+from belated.stats.ranking import N_BINS
+from belated.store.packing import pack_delays, pack_hist, unpack_delays, unpack_hist
 
 
 def _hist(seed: int, filled: int) -> tuple[np.ndarray, np.ndarray]:

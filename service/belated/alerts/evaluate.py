@@ -14,9 +14,9 @@ from belated.alerts import lifecycle
 from belated.alerts.decide import Decision, WindowInput, decide, finite, pooled
 from belated.alerts.schemas import DEFAULTS
 from belated.alerts.tables import Rule, RuleWindow
-from belated.metrics.load import epoch_hour, segment_counts
+from belated.metrics.load import ensure_fresh, epoch_hour, segment_counts
 from belated.metrics.params import Range
-from belated.metrics.windows import bucket_accs, settled_window, to_stats
+from belated.metrics.windows import settled_window, to_stats, window_totals
 from belated.stats.change import benjamini_hochberg
 from belated.store import segments
 from belated.store.tables import Label, ModelRow
@@ -61,7 +61,7 @@ def _series(
     end = floor_window(now, g) + window_step(g)
     rng = Range(g, end - evaluated * window_step(g), end)
     filters = (segment,) if segment else ()
-    starts, accs = bucket_accs(session, model, rng, lookback, filters, now, max_values)
+    starts, accs = _fresh_totals(session, model, rng, lookback, filters, now, max_values)
     step = window_step(g)
     tag_counts: dict[int, dict[str, int]] = {}
     measure = rule.get("measure") or ""
@@ -95,6 +95,20 @@ def _series(
     ]
 
 
+def _fresh_totals(
+    session: Session,
+    model: ModelRow,
+    rng: Range,
+    lookback: int,
+    filters: tuple[tuple[str, str], ...],
+    now: datetime,
+    max_values: int,
+) -> Any:
+    lo, hi = epoch_hour(rng.start - lookback * rng.step), epoch_hour(rng.end)
+    ensure_fresh(session, model, lo, hi, max_values)
+    return window_totals(session, model, rng, lookback, filters, now)
+
+
 def _fixed_baseline(
     session: Session,
     model: ModelRow,
@@ -110,7 +124,7 @@ def _fixed_baseline(
 
     g = rule["granularity"]
     rng = Range(g, floor_window(parse_ts(b["start"]), g), floor_window(parse_ts(b["end"]), g))
-    _, accs = bucket_accs(session, model, rng, 0, (segment,) if segment else (), now, max_values)
+    _, accs = _fresh_totals(session, model, rng, 0, (segment,) if segment else (), now, max_values)
     return pooled([WindowInput(rng.start, rng.end, True, True, to_stats(a)) for a in accs])
 
 

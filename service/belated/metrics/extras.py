@@ -8,12 +8,11 @@ from typing import Any
 import numpy as np
 from sqlalchemy.orm import Session
 
-from belated.metrics.load import ensure_fresh, epoch_hour, load_hours
+from belated.metrics.load import ensure_fresh, epoch_hour, load_totals
 from belated.stats.delays import km_quantiles
 from belated.stats.thresholds import sweep
-from belated.store.accumulate import Acc
-from belated.store.packing import unpack_delays
 from belated.store.tables import ModelRow
+from belated.store.totals import Totals
 
 
 def thresholds(
@@ -31,17 +30,17 @@ def thresholds(
     """Measures at every bin edge over the labelled predictions of [start, end)."""
     lo, hi = epoch_hour(start), epoch_hour(end)
     ensure_fresh(session, model, lo, hi, max_values)
-    total = Acc()
-    for acc in load_hours(session, model, level="h", lo=lo, hi=hi, filters=(), now=now).values():
+    total = Totals()
+    for acc in load_totals(session, model, level="h", lo=lo, hi=hi, filters=(), now=now).values():
         total.add(acc)
     answer = sweep(
-        total.hist[0],
-        total.hist[1],
+        total.score_counts("pos"),
+        total.score_counts("neg"),
         beta=beta,
         precision_target=precision_target,
         recall_target=recall_target,
     )
-    answer["labelled"] = int(total.hist[0].sum() + total.hist[1].sum())
+    answer["labelled"] = int(total.score_counts("pos").sum() + total.score_counts("neg").sum())
     return answer
 
 
@@ -58,26 +57,24 @@ def delays(
     coverage by window age in days."""
     lo, hi = epoch_hour(start), epoch_hour(end)
     ensure_fresh(session, model, lo, hi, max_values)
-    rows = load_hours(session, model, level="h", lo=lo, hi=hi, filters=(), now=now)
-    delay_hist = None
+    rows = load_totals(session, model, level="h", lo=lo, hi=hi, filters=(), now=now)
+    delay_hist = Totals().counts("delays")
     ages: list[np.ndarray] = []
     by_age: dict[int, list[int]] = {}
     now_h = now.timestamp() / 3600
     for hour, acc in sorted(rows.items()):
-        if acc.delays is not None:
-            delay_hist = acc.delays.copy() if delay_hist is None else delay_hist + acc.delays
-        n = int(acc.scalar("n_pred"))
+        if acc.has("delays"):
+            delay_hist = delay_hist + acc.counts("delays")
+        n = int(acc["n_pred"])
         # implied negatives are not label arrivals: they stay censored at their age
-        unlabelled = n - int(acc.scalar("n_labelled") - acc.scalar("n_implied"))
+        unlabelled = n - int(acc["n_labelled"] - acc["n_implied"])
         age_h = max(0.0, now_h - (hour + 0.5))
         if unlabelled > 0:
             ages.append(np.full(unlabelled, age_h))
         day = int(age_h // 24)
         agg = by_age.setdefault(day, [0, 0])
         agg[0] += n
-        agg[1] += int(acc.scalar("n_labelled"))
-    if delay_hist is None:
-        delay_hist = unpack_delays(None)
+        agg[1] += int(acc["n_labelled"])
     censored = np.concatenate(ages) if ages else np.zeros(0)
     return {
         "unit": "hours",

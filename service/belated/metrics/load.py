@@ -1,18 +1,17 @@
-"""Load accumulated statistics for a range: from rollups, or from raw rows for several tags."""
+"""Load the totals of a range: from rollups, or from raw rows for several tags at once."""
 
 from __future__ import annotations
 
 from collections import defaultdict
-from dataclasses import replace
 from datetime import datetime
 
 from sqlalchemy import select
 from sqlalchemy.orm import Session
 
 from belated.store import refresh, rollups, segments
-from belated.store.accumulate import Acc
 from belated.store.rollup_tables import Rollup
 from belated.store.tables import ModelRow
+from belated.store.totals import Totals
 
 
 def epoch_hour(dt: datetime) -> int:
@@ -23,13 +22,13 @@ def epoch_hour(dt: datetime) -> int:
 def ensure_fresh(session: Session, model: ModelRow, lo: int, hi: int, max_values: int) -> None:
     """Read-your-writes: join raced pending labels, mark hours whose predictions crossed
     `negative_after_days` by now, and refresh the model's dirty buckets in [lo, hi)."""
-    refresh.sweep_model(session, model)
+    refresh.join_and_mark_model(session, model)
     # one transaction takes its locks in ascending hour order, as writers mark them, so a
     # read and a writer never wait on each other in a cycle
-    while claimed := refresh.refresh_claimed(
+    while claimed := refresh.refresh_batch(
         session, max_values=max_values, model_id=model.id, lo=lo, hi=hi, wait=True
     ):
-        lo = max(hour for _, hour, _ in claimed) + 1
+        lo = max(mark.hour for mark in claimed) + 1
 
 
 def _rollup_segment(
@@ -47,7 +46,7 @@ def _rollup_segment(
     return None
 
 
-def load_hours(
+def load_totals(
     session: Session,
     model: ModelRow,
     *,
@@ -57,8 +56,9 @@ def load_hours(
     filters: tuple[tuple[str, str], ...],
     now: datetime,
     delays: bool = True,
-) -> dict[int, Acc]:
-    """Accumulators keyed by row start hour (hourly or daily rows) over [lo, hi);
+) -> dict[int, Totals]:
+    """Totals of the hourly (`level` 'h') or daily ('d') rows over [lo, hi), keyed by the
+    row's start hour;
     `delays=False` leaves out the label-delay bins (the windows do not use them)."""
     seg = _rollup_segment(session, model, filters)
     if seg is None:
@@ -74,7 +74,8 @@ def load_hours(
             Rollup.seg_value == seg[1],
         )
     )
-    return {row.start: Acc.from_row(row, delays) for row in rows}
+    skip = frozenset() if delays else frozenset({"delays"})
+    return {row.start: Totals.from_row(row, skip) for row in rows}
 
 
 def _from_raw(
@@ -86,14 +87,14 @@ def _from_raw(
     hi: int,
     filters: tuple[tuple[str, str], ...],
     now: datetime,
-) -> dict[int, Acc]:
+) -> dict[int, Totals]:
     """The same statistics aggregated by SQL over raw rows with every tag filter applied."""
-    scope = replace(rollups.scope_of(model, range(lo, hi), now), filters=filters)
+    scope = rollups.scope_of(model, range(lo, hi), now).filtered(filters)
     hourly = rollups.compute(session, scope, {})
-    out: dict[int, Acc] = defaultdict(Acc)
-    for (hour, key, _value), acc in hourly.items():
+    out: dict[int, Totals] = defaultdict(Totals)
+    for (hour, key, _value), totals in hourly.items():
         if key == "":
-            out[hour - hour % 24 if level == "d" else hour].add(acc)
+            out[hour - hour % 24 if level == "d" else hour].add(totals)
     return dict(out)
 
 
@@ -104,7 +105,7 @@ def segment_counts(
     out: dict[int, dict[str, int]] = defaultdict(dict)
     lo_q = lo - lo % 24 if level == "d" else lo
     for start, value, n in session.execute(
-        select(Rollup.start, Rollup.seg_value, Rollup.n_pred).where(
+        select(Rollup.start, Rollup.seg_value, Rollup.__table__.c.n_pred).where(
             Rollup.model_id == model.id,
             Rollup.level == level,
             Rollup.start >= lo_q,

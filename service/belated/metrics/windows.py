@@ -10,17 +10,16 @@ import numpy as np
 import orjson
 from sqlalchemy.orm import Session
 
-from belated.metrics.load import ensure_fresh, epoch_hour, load_hours
+from belated.metrics.load import ensure_fresh, epoch_hour, load_totals
 from belated.metrics.params import Range
 from belated.stats.calibration import ece_arrays
 from belated.stats.estimates import em_prior_many
 from belated.stats.multiclass import summarise_multiclass
 from belated.stats.summary import summarise_many
 from belated.stats.window import WindowStats
-from belated.store.accumulate import Acc
-from belated.store.packing import N_BINS
-from belated.store.rollup_sql import SCALARS
+from belated.store.statistics import HISTOGRAM_BY_NAME, SCALARS, SCORE_CLASSES
 from belated.store.tables import ModelRow
+from belated.store.totals import Totals
 from belated.timeutil import iso
 
 CALIBRATION_WINDOWS = 7
@@ -38,42 +37,41 @@ class Options:
     rolling: int = 1
 
 
-def to_stats(acc: Acc) -> WindowStats:
-    """The stats-package view of an accumulator."""
-    c: dict[str, Any] = {n: acc.scalar(n) for n in SCALARS}
-    delays = acc.delays if acc.delays is not None else WindowStats.empty().delay_hist
+def to_stats(totals: Totals) -> WindowStats:
+    """The pure measures' input from a window's totals, field by declared name."""
+    scalars: dict[str, Any] = {s.name: totals[s.name] for s in SCALARS}
+    scores, sums = totals.counts("hist"), totals.sums("hist")
     return WindowStats(
-        **c,
-        hist_all=acc.hist.sum(axis=0),
-        ssum_all=acc.hsum.sum(axis=0),
-        hist_pos=acc.hist[0].copy(),
-        ssum_pos=acc.hsum[0].copy(),
-        hist_neg=acc.hist[1].copy(),
-        ssum_neg=acc.hsum[1].copy(),
-        delay_hist=delays,
+        **scalars,
+        hist_all=scores.sum(axis=0),
+        ssum_all=sums.sum(axis=0),
+        hist_pos=totals.score_counts("pos").copy(),
+        ssum_pos=totals.score_sums("pos").copy(),
+        hist_neg=totals.score_counts("neg").copy(),
+        ssum_neg=totals.score_sums("neg").copy(),
+        delay_hist=totals.counts("delays").copy(),
     )
 
 
-def bucket_accs(
+def window_totals(
     session: Session,
     model: ModelRow,
     rng: Range,
     lookback: int,
     filters: tuple[tuple[str, str], ...],
     now: datetime,
-    max_values: int,
-) -> tuple[list[datetime], list[Acc]]:
-    """One accumulator per base window, from `lookback` windows before the range."""
+) -> tuple[list[datetime], list[Totals]]:
+    """The totals of each base window of the range and of `lookback` windows before it
+    (the caller has refreshed the range: see `ensure_fresh`)."""
     step = rng.step
     first = rng.start - lookback * step
     starts = [first + i * step for i in range(int((rng.end - first) / step))]
     lo, hi = epoch_hour(first), epoch_hour(rng.end)
-    ensure_fresh(session, model, lo, hi, max_values)
     level = "h" if rng.granularity == "hour" else "d"
-    rows = load_hours(
+    rows = load_totals(
         session, model, level=level, lo=lo, hi=hi, filters=filters, now=now, delays=False
     )
-    accs = [Acc() for _ in starts]
+    accs = [Totals() for _ in starts]
     index = {epoch_hour(s): i for i, s in enumerate(starts)}
     span = int(step / timedelta(hours=1))
     base = epoch_hour(first)
@@ -86,10 +84,11 @@ def bucket_accs(
     return starts, accs
 
 
-def settled_window(acc: Acc, end: datetime, model: ModelRow, now: datetime) -> bool:
+def settled_window(totals: Totals, end: datetime, model: ModelRow, now: datetime) -> bool:
+    """Whether a window's labels are in (see DESIGN.md, "settled")."""
     if end > now:
         return False
-    n, labelled = acc.scalar("n_pred"), acc.scalar("n_labelled")
+    n, labelled = totals["n_pred"], totals["n_labelled"]
     if n == 0 or labelled / n >= model.min_coverage:
         return True
     return end + timedelta(days=model.label_delay_days) < now
@@ -106,7 +105,9 @@ def build(
 ) -> list[dict[str, Any]]:
     """The windows of the range, oldest first, contiguous (empty ones have zero counts)."""
     lookback = opts.rolling - 1 + CALIBRATION_WINDOWS * 2
-    starts, base = bucket_accs(session, model, rng, lookback, filters, now, max_values)
+    lo, hi = epoch_hour(rng.start - lookback * rng.step), epoch_hour(rng.end)
+    ensure_fresh(session, model, lo, hi, max_values)
+    starts, base = window_totals(session, model, rng, lookback, filters, now)
     step = rng.step
     settled = [settled_window(a, s + step, model, now) for a, s in zip(base, starts, strict=True)]
     out: list[dict[str, Any]] = []
@@ -114,11 +115,11 @@ def build(
     references = _references(base, settled) if model.kind == "binary" else []
     for i in range(lookback, len(starts)):
         parts = range(max(0, i - opts.rolling + 1), i + 1)
-        acc = Acc()
+        acc = Totals()
         for j in parts:
             acc.add(base[j])
         start, end = starts[i], starts[i] + step
-        window = _head(acc, start, end, now)
+        window = _counts_block(acc, start, end, now)
         window["settled"] = all(settled[j] for j in parts)
         if model.kind == "binary":
             ece_value, prior = references[i]
@@ -167,55 +168,57 @@ def build(
     return out
 
 
-def _references(base: list[Acc], settled: list[bool]) -> list[tuple[float | None, float | None]]:
+def _references(base: list[Totals], settled: list[bool]) -> list[tuple[float | None, float | None]]:
     """For each window, the ECE and prevalence of the trailing settled windows before it:
     label-free estimates hold only for calibrated scores, and EM re-estimates the prior
     from there. All windows at once: each one's last few settled, labelled windows are
     gathered into a (windows, CALIBRATION_WINDOWS) index and summed."""
     if not base:
         return []
-    hist = np.stack([np.zeros((3, N_BINS), np.int64), *(a.hist for a in base)])
-    hsum = np.stack([np.zeros((3, N_BINS), np.float64), *(a.hsum for a in base)])
+    shape = HISTOGRAM_BY_NAME["hist"].shape
+    hist = np.stack([np.zeros(shape, np.int64), *(a.counts("hist") for a in base)])
+    hsum = np.stack([np.zeros(shape, np.float64), *(a.sums("hist") for a in base)])
     useful = np.array(
-        [i + 1 for i, a in enumerate(base) if settled[i] and a.counts[1]], dtype=np.int64
+        [i + 1 for i, a in enumerate(base) if settled[i] and a["n_labelled"]], dtype=np.int64
     )  # +1: row 0 of the stacks is the empty window
     before = np.searchsorted(useful, np.arange(1, len(base) + 1), side="left")
     offsets = np.arange(-CALIBRATION_WINDOWS, 0)
     pick = before[:, None] + offsets[None, :]
     index = np.where(pick >= 0, np.concatenate([[0], useful])[np.maximum(pick, -1) + 1], 0)
     # oldest first, one column at a time: memory of one (windows, 3, 100) array, not seven
-    h = np.zeros((len(base), 3, N_BINS), np.int64)
-    s = np.zeros((len(base), 3, N_BINS), np.float64)
+    h = np.zeros((len(base), *shape), np.int64)
+    s = np.zeros((len(base), *shape), np.float64)
     for k in range(CALIBRATION_WINDOWS):
         h += hist[index[:, k]]
         s += hsum[index[:, k]]
-    labelled = h[:, 0].sum(axis=-1) + h[:, 1].sum(axis=-1)
-    values = ece_arrays(h[:, 0], s[:, 0], h[:, 1], s[:, 1])
+    pos, neg = SCORE_CLASSES.index("pos"), SCORE_CLASSES.index("neg")
+    labelled = h[:, pos].sum(axis=-1) + h[:, neg].sum(axis=-1)
+    values = ece_arrays(h[:, pos], s[:, pos], h[:, neg], s[:, neg])
     out: list[tuple[float | None, float | None]] = []
     for i in range(len(base)):
         if before[i] == 0:
             out.append((None, None))
             continue
         value = float(values[i])
-        prior = float(h[i, 0].sum() / labelled[i]) if labelled[i] else None
+        prior = float(h[i, pos].sum() / labelled[i]) if labelled[i] else None
         out.append((None if value != value else value, prior))
     return out
 
 
-def _head(acc: Acc, start: datetime, end: datetime, now: datetime) -> dict[str, Any]:
-    n, labelled = acc.scalar("n_pred"), acc.scalar("n_labelled")
+def _counts_block(acc: Totals, start: datetime, end: datetime, now: datetime) -> dict[str, Any]:
+    n, labelled = acc["n_pred"], acc["n_labelled"]
     return {
         "start": iso(start),
         "end": iso(end),
         "closed": end <= now,
         "predictions": n,
         "labelled": labelled,
-        "implied_negatives": acc.scalar("n_implied"),
+        "implied_negatives": acc["n_implied"],
         "coverage": round(labelled / n, 6) if n else None,
     }
 
 
-def _multiclass(model: ModelRow, acc: Acc, opts: Options) -> dict[str, Any]:
+def _multiclass(model: ModelRow, acc: Totals, opts: Options) -> dict[str, Any]:
     classes = list(model.classes)
     matrix = np.zeros((len(classes), len(classes)), np.int64)
     pos = {c: k for k, c in enumerate(classes)}

@@ -14,19 +14,16 @@ from sqlalchemy import ColumnElement, String, any_, bindparam
 from sqlalchemy.dialects.postgresql import ARRAY
 from sqlalchemy.orm import InstrumentedAttribute, Session
 
+from belated.store.dialect import is_postgres
+
 SQLITE_CHUNK = 5000
-
-
-def is_pg(session: Session) -> bool:
-    """True when the session talks to PostgreSQL."""
-    return session.get_bind().dialect.name == "postgresql"
 
 
 def id_filters(
     session: Session, column: InstrumentedAttribute[str], ids: Sequence[str]
 ) -> Iterator[ColumnElement[bool]]:
     """Filters that together match `column` against every id (one on PostgreSQL)."""
-    if is_pg(session):
+    if is_postgres(session):
         yield column == any_(bindparam("ids_" + column.key, list(ids), type_=ARRAY(String)))
         return
     for start in range(0, len(ids), SQLITE_CHUNK):

@@ -8,18 +8,18 @@ from __future__ import annotations
 
 import secrets
 from collections.abc import Iterable
+from typing import Any
 
 from sqlalchemy import func, select
-from sqlalchemy.dialects import postgresql, sqlite
 from sqlalchemy.orm import Session
 
 from belated.clock import now
+from belated.store.dialect import upsert
 from belated.store.tables import DirtyBucket
 
 
-def _insert(session: Session):  # type: ignore[no-untyped-def]
-    dialect = session.get_bind().dialect.name
-    return (postgresql if dialect == "postgresql" else sqlite).insert(DirtyBucket)
+def _insert(session: Session) -> Any:
+    return upsert(session, DirtyBucket)
 
 
 def mark(*, session: Session, model_id: int, hours: Iterable[int], recompute: bool = True) -> int:

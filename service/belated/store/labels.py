@@ -7,12 +7,12 @@ from datetime import datetime
 from typing import Any
 
 from sqlalchemy import bindparam, delete, func, insert, select, text, update
-from sqlalchemy.dialects import postgresql, sqlite
 from sqlalchemy.orm import Session
 
 from belated.clock import now
 from belated.ingest.validate import LabelIn
 from belated.store import bulk, dirty
+from belated.store.dialect import is_postgres, upsert
 from belated.store.tables import Label, LabelChange, PendingLabel, Prediction
 from belated.timeutil import to_utc
 
@@ -46,7 +46,7 @@ def _targets(session: Session, model_id: int, ids: list[str]) -> dict[str, _Targ
     )
     for cond in bulk.id_filters(session, Prediction.pid, ids):
         query = select(*cols).where(Prediction.model_id == model_id, cond)
-        if bulk.is_pg(session):  # concurrent corrections of one id apply one after another
+        if is_postgres(session):  # concurrent corrections of one id apply one after another
             query = query.order_by(Prediction.row_id).with_for_update()
         for pid, row_id, ts, hour, actual, delay in session.execute(query):
             found[pid] = _Target(row_id, to_utc(ts), hour, actual, delay)
@@ -116,13 +116,13 @@ def ingest(*, session: Session, model_id: int, items: list[LabelIn]) -> dict[str
         }
         hours.add(target.hour)
     if updates:
-        (_update_pg if bulk.is_pg(session) else _update_sqlite)(session, list(updates.values()))
+        (_update_pg if is_postgres(session) else _update_sqlite)(session, list(updates.values()))
     found = [pid for pid in ids if pid in targets]
     if found:  # a pending label left by a race is older than this one: drop it
         for cond in bulk.id_filters(session, PendingLabel.pid, found):
             session.execute(delete(PendingLabel).where(PendingLabel.model_id == model_id, cond))
     if history:
-        if bulk.is_pg(session):  # one INSERT per row would cost more than the rest together
+        if is_postgres(session):  # one INSERT per row would cost more than the rest together
             cols = ("model_id", "pid", "actual", "ts", "change", "received_at")
             bulk.copy_rows(session, "labels", cols, ([h[c] for c in cols] for h in history))
         else:
@@ -152,7 +152,7 @@ def record_changes(session: Session, changes: list[tuple[Any, ...]]) -> None:
     """
     if not changes:
         return
-    if bulk.is_pg(session):
+    if is_postgres(session):
         bulk.copy_rows(session, "label_changes", _CHANGE_COLS, changes)
     else:
         session.execute(
@@ -204,8 +204,7 @@ def _update_pg(session: Session, rows: list[dict[str, Any]]) -> None:
 def _upsert_pending(
     session: Session, model_id: int, items: list[LabelIn], received: datetime
 ) -> None:
-    dialect = postgresql if bulk.is_pg(session) else sqlite
-    stmt = dialect.insert(PendingLabel)
+    stmt = upsert(session, PendingLabel)
     stmt = stmt.on_conflict_do_update(
         index_elements=["model_id", "pid"],
         set_={
@@ -267,7 +266,7 @@ def join_pending(*, session: Session, model_id: int, ids: list[str] | None) -> s
         )
         .where(PendingLabel.model_id == model_id)
     )
-    if bulk.is_pg(session):
+    if is_postgres(session):
         # lock both rows, so that a label written meanwhile for this id (which deletes the
         # pending row) is seen before deciding; in id order, as ingest locks predictions
         query = query.order_by(Prediction.row_id).with_for_update()
@@ -291,7 +290,7 @@ def join_pending(*, session: Session, model_id: int, ids: list[str] | None) -> s
         )
         changes.append((model_id, hour, p_id, current, old_delay, actual, delay))
     if updates:
-        (_update_pg if bulk.is_pg(session) else _update_sqlite)(session, updates)
+        (_update_pg if is_postgres(session) else _update_sqlite)(session, updates)
         record_changes(session, changes)
     done = [r[0] for r in rows]
     for start in range(0, len(done), 5000):

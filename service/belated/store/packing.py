@@ -1,87 +1,94 @@
-"""Pack and unpack the histogram arrays of a rollup row.
+"""Pack and unpack the histogram blobs of a rollup row (one per declared `Histogram`).
 
-`hist` holds int64 counts[3, 100] and float64 score sums[3, 100]; the three rows are the
-actual classes positive, negative (explicit or implied) and unlabelled. `delays` holds the
-int64 label-delay histogram over belated.stats.delays' bins. Little-endian on every machine.
+A blob holds a histogram's int64 counts and, for histograms that keep them, its float64
+score sums, over the flattened cells of its shape. Little-endian on every machine.
 
-Both are written sparse: a marker byte b"s", the number k of non-empty cells (uint16), then
-their flat indexes (uint16[k]) and values (int64[k], and for `hist` float64[k]). An hour
-of one segment fills a few dozen of the 300 histogram cells, so this is a fifth of the dense
-size or less. Dense blobs (exactly 4,800 or 3,696 bytes, written before) still read.
+Blobs are written sparse: a marker byte b"s", the number k of non-empty cells (uint16), then
+their flat indexes (uint16[k]) and counts (int64[k]), then the sums (float64[k]) if kept.
+An hour of one segment fills a few dozen of the 300 score cells, so this is a fifth of the
+dense size or less. Dense blobs (all counts, then all sums: 4,800 bytes for the score
+histogram, 3,696 for the delays), written before, still read: the length tells the format,
+since a dense length is never 3 + 18k (or 3 + 10k).
 """
 
 from __future__ import annotations
 
 import numpy as np
 
-from belated.stats.delays import N_DELAY_BINS
+from belated.store.statistics import HISTOGRAM_BY_NAME, Histogram
 
-N_BINS = 100
-CLASSES = ("pos", "neg", "unl")
-_HIST_BYTES = 3 * N_BINS * 8 * 2
 _SPARSE = b"s"
+_HEAD = 3  # the marker and the cell count
 
 
-def _head(k: int) -> bytes:
+def _sparse_head(k: int) -> bytes:
     return _SPARSE + int(k).to_bytes(2, "little")
 
 
-def pack_hist(counts: np.ndarray, sums: np.ndarray) -> bytes:
-    """counts int[3,100], sums float[3,100] → bytes (sparse)."""
+def pack(counts: np.ndarray, sums: np.ndarray | None = None) -> bytes:
+    """Counts (and score sums) of any shape → a sparse blob."""
     c = np.asarray(counts).reshape(-1)
-    s = np.asarray(sums).reshape(-1)
-    idx = np.flatnonzero((c != 0) | (s != 0))
-    return (
-        _head(idx.size)
-        + idx.astype("<u2").tobytes()
-        + c[idx].astype("<i8").tobytes()
-        + s[idx].astype("<f8").tobytes()
-    )
+    nonzero = c != 0
+    if sums is not None:
+        s = np.asarray(sums).reshape(-1)
+        nonzero |= s != 0
+    idx = np.flatnonzero(nonzero)
+    blob = _sparse_head(idx.size) + idx.astype("<u2").tobytes() + c[idx].astype("<i8").tobytes()
+    if sums is not None:
+        blob += s[idx].astype("<f8").tobytes()
+    return blob
+
+
+def unpack(hist: Histogram, blob: bytes | None) -> tuple[np.ndarray, np.ndarray | None]:
+    """A blob of `hist` → (counts int64, sums float64 or None) in the histogram's shape;
+    zeros for None. A blob of the wrong length or with a cell out of range is refused."""
+    n = hist.n_cells
+    counts = np.zeros(n, np.int64)
+    sums = np.zeros(n, np.float64) if hist.score_sums else None
+    if blob:
+        _fill(hist, bytes(blob), counts, sums)
+    return counts.reshape(hist.shape), None if sums is None else sums.reshape(hist.shape)
+
+
+def _fill(hist: Histogram, blob: bytes, counts: np.ndarray, sums: np.ndarray | None) -> None:
+    n, per_cell = hist.n_cells, 8 * (2 if sums is not None else 1)
+    if len(blob) == n * per_cell:  # dense, written before the sparse form
+        counts[:] = np.frombuffer(blob, "<i8", n, 0)
+        if sums is not None:
+            sums[:] = np.frombuffer(blob, "<f8", n, 8 * n)
+        return
+    k = int.from_bytes(blob[1:_HEAD], "little") if len(blob) >= _HEAD else -1
+    if blob[:1] != _SPARSE or len(blob) != _HEAD + (2 + per_cell) * k:
+        raise ValueError(f"corrupt {hist.name} blob")
+    idx = np.frombuffer(blob, "<u2", k, _HEAD)
+    if k and int(idx.max()) >= n:
+        raise ValueError(f"corrupt {hist.name} blob")
+    counts[idx] = np.frombuffer(blob, "<i8", k, _HEAD + 2 * k)
+    if sums is not None:
+        sums[idx] = np.frombuffer(blob, "<f8", k, _HEAD + 10 * k)
+
+
+_SCORES = HISTOGRAM_BY_NAME["hist"]
+_DELAYS = HISTOGRAM_BY_NAME["delays"]
+
+
+def pack_hist(counts: np.ndarray, sums: np.ndarray) -> bytes:
+    """The score histogram: counts int[3, N_BINS], sums float[3, N_BINS] → bytes (sparse)."""
+    return pack(counts, sums)
 
 
 def unpack_hist(blob: bytes | None) -> tuple[np.ndarray, np.ndarray]:
-    """bytes → (counts int64[3,100], sums float64[3,100]); zeros for None."""
-    counts = np.zeros(3 * N_BINS, np.int64)
-    sums = np.zeros(3 * N_BINS, np.float64)
-    if not blob:
-        return counts.reshape(3, N_BINS), sums.reshape(3, N_BINS)
-    blob = bytes(blob)
-    if len(blob) != _HIST_BYTES:  # 4,800 is never 3 + 18k: the length tells the format
-        k = int(np.frombuffer(blob, "<u2", 1, 1)[0]) if len(blob) >= 3 else -1
-        if blob[:1] != _SPARSE or len(blob) != 3 + 18 * k:
-            raise ValueError("corrupt histogram blob")
-        idx = np.frombuffer(blob, "<u2", k, 3)
-        if k and int(idx.max()) >= 3 * N_BINS:
-            raise ValueError("corrupt histogram blob")
-        counts[idx] = np.frombuffer(blob, "<i8", k, 3 + 2 * k)
-        sums[idx] = np.frombuffer(blob, "<f8", k, 3 + 10 * k)
-        return counts.reshape(3, N_BINS), sums.reshape(3, N_BINS)
-    half = _HIST_BYTES // 2
-    dense_counts = np.frombuffer(blob[:half], dtype="<i8").reshape(3, N_BINS).astype(np.int64)
-    dense_sums = np.frombuffer(blob[half:], dtype="<f8").reshape(3, N_BINS).astype(np.float64)
-    return dense_counts, dense_sums
+    """bytes → the score histogram's (counts int64[3, N_BINS], sums float64[3, N_BINS])."""
+    counts, sums = unpack(_SCORES, blob)
+    assert sums is not None
+    return counts, sums
 
 
 def pack_delays(hist: np.ndarray) -> bytes:
-    """int[N_DELAY_BINS] → bytes (sparse)."""
-    h = np.asarray(hist).reshape(-1)
-    idx = np.flatnonzero(h)
-    return _head(idx.size) + idx.astype("<u2").tobytes() + h[idx].astype("<i8").tobytes()
+    """The label-delay histogram int[N_DELAY_BINS] → bytes (sparse)."""
+    return pack(hist)
 
 
 def unpack_delays(blob: bytes | None) -> np.ndarray:
-    """bytes → int64[N_DELAY_BINS]; zeros for None."""
-    out = np.zeros(N_DELAY_BINS, np.int64)
-    if not blob:
-        return out
-    blob = bytes(blob)
-    if len(blob) != N_DELAY_BINS * 8:  # 3,696 is never 3 + 10k
-        k = int(np.frombuffer(blob, "<u2", 1, 1)[0]) if len(blob) >= 3 else -1
-        if blob[:1] != _SPARSE or len(blob) != 3 + 10 * k:
-            raise ValueError("corrupt delay histogram blob")
-        idx = np.frombuffer(blob, "<u2", k, 3)
-        if k and int(idx.max()) >= N_DELAY_BINS:
-            raise ValueError("corrupt delay histogram blob")
-        out[idx] = np.frombuffer(blob, "<i8", k, 3 + 2 * k)
-        return out
-    return np.frombuffer(blob, dtype="<i8").astype(np.int64)
+    """bytes → the label-delay histogram int64[N_DELAY_BINS]; zeros for None."""
+    return unpack(_DELAYS, blob)[0]

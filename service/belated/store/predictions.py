@@ -12,6 +12,7 @@ from belated.clock import now
 from belated.errors import Problem
 from belated.ingest.validate import PredictionIn
 from belated.store import bulk, dirty, labels
+from belated.store.dialect import is_postgres
 from belated.store.tables import Prediction
 from belated.timeutil import to_utc
 
@@ -63,7 +64,7 @@ def ingest(
 ) -> dict[str, int]:
     """Insert the new predictions; answer accepted and duplicate counts."""
     received = now()
-    if bulk.is_pg(session):
+    if is_postgres(session):
         # insert first (ON CONFLICT DO NOTHING) and compare only the ids already stored; a
         # conflict raises, and the request's transaction rolls the whole batch back
         inserted = _insert_pg(session, model_id, preds, received) if preds else set()
@@ -74,7 +75,7 @@ def ingest(
     conflicts = [p.pid for p in rest if p.pid in stored and not p.same_as(stored[p.pid])]
     if conflicts:
         raise _conflict(conflicts)
-    if bulk.is_pg(session):
+    if is_postgres(session):
         new = [p for p in preds if p.pid in inserted]
     else:  # SQLite has one writer (BEGIN IMMEDIATE): the lookup above is authoritative
         new = [p for p in preds if p.pid not in stored]

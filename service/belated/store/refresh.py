@@ -11,7 +11,7 @@ from __future__ import annotations
 import logging
 from collections import defaultdict
 from datetime import timedelta
-from typing import Any
+from typing import Any, NamedTuple
 
 from sqlalchemy import delete, select, tuple_
 from sqlalchemy.orm import Session, sessionmaker
@@ -19,6 +19,7 @@ from sqlalchemy.orm import Session, sessionmaker
 from belated.clock import now
 from belated.store import dirty, labels, rollups
 from belated.store.db import transaction
+from belated.store.dialect import is_postgres
 from belated.store.tables import DirtyBucket, ModelRow, PendingLabel, Prediction, ServiceState
 
 log = logging.getLogger(__name__)
@@ -38,9 +39,17 @@ def _claim(
     if hi is not None:
         query = query.where(DirtyBucket.hour < hi)
     query = query.order_by(DirtyBucket.model_id, DirtyBucket.hour).limit(BATCH_HOURS)
-    if session.get_bind().dialect.name == "postgresql":
+    if is_postgres(session):
         query = query.with_for_update(skip_locked=not wait)
     return [tuple(r) for r in session.execute(query)]  # type: ignore[misc]
+
+
+class Mark(NamedTuple):
+    """A dirty mark claimed by a refresh."""
+
+    model_id: int
+    hour: int
+    version: int
 
 
 def refresh_batch(
@@ -51,50 +60,38 @@ def refresh_batch(
     lo: int | None = None,
     hi: int | None = None,
     wait: bool = False,
-) -> int:
-    """Refresh one batch of dirty buckets in the caller's transaction; 0 when none is left."""
-    return len(
-        refresh_claimed(session, max_values=max_values, model_id=model_id, lo=lo, hi=hi, wait=wait)
-    )
-
-
-def refresh_claimed(
-    session: Session,
-    *,
-    max_values: int,
-    model_id: int | None = None,
-    lo: int | None = None,
-    hi: int | None = None,
-    wait: bool = False,
-) -> list[tuple[int, int, int]]:
-    """Refresh one batch of dirty buckets; return the (model, hour, version) marks taken."""
-    marks = _claim(session, model_id, lo, hi, wait)
-    if not marks:
+) -> list[Mark]:
+    """Refresh one batch of dirty buckets in the caller's transaction; return the marks
+    taken (none when no work is left)."""
+    claimed = _claim(session, model_id, lo, hi, wait)
+    if not claimed:
         return []
-    whole: dict[int, list[int]] = defaultdict(list)
-    changed: dict[int, list[int]] = defaultdict(list)
-    for mid, hour, _, recompute in marks:
-        (whole if recompute else changed)[mid].append(hour)
+    recompute: dict[int, list[int]] = defaultdict(list)
+    fold: dict[int, list[int]] = defaultdict(list)
+    for mid, hour, _, from_raw_rows in claimed:
+        (recompute if from_raw_rows else fold)[mid].append(hour)
     stamp = now()
-    for mid in sorted(set(whole) | set(changed)):
+    for mid in sorted(set(recompute) | set(fold)):
         model = session.get(ModelRow, mid)
         if model is not None:
             rollups.refresh_hours(
                 session=session,
                 model=model,
-                hours=whole[mid],
+                recompute=recompute[mid],
                 now=stamp,
                 max_values=max_values,
-                changed=changed[mid],
+                fold=fold[mid],
             )
-    claimed = [(mid, hour, version) for mid, hour, version, _ in marks]
+    marks = [Mark(mid, hour, version) for mid, hour, version, _ in claimed]
     # Clear only the marks whose version is the one read: a write meanwhile keeps its mark.
     session.execute(
         delete(DirtyBucket).where(
-            tuple_(DirtyBucket.model_id, DirtyBucket.hour, DirtyBucket.version).in_(claimed)
+            tuple_(DirtyBucket.model_id, DirtyBucket.hour, DirtyBucket.version).in_(
+                [tuple(m) for m in marks]
+            )
         )
     )
-    return claimed
+    return marks
 
 
 def refresh_all(
@@ -110,16 +107,20 @@ def refresh_all(
     total = 0
     while True:
         with transaction(factory) as session:
-            done = refresh_batch(
-                session, max_values=max_values, model_id=model_id, lo=lo, hi=hi, wait=wait
+            done = len(
+                refresh_batch(
+                    session, max_values=max_values, model_id=model_id, lo=lo, hi=hi, wait=wait
+                )
             )
         if not done:
             return total
         total += done
 
 
-def sweep(factory: sessionmaker[Session]) -> int:
-    """Before a refresh: join pending labels and mark hours crossing negative_after_days."""
+def join_and_mark(factory: sessionmaker[Session]) -> int:
+    """Before a refresh: join pending labels whose prediction has arrived since (a label and
+    its prediction written in concurrent transactions), and mark the hours whose predictions
+    have just crossed `negative_after_days`."""
     marked = 0
     with transaction(factory) as session:
         pending_models = session.scalars(select(PendingLabel.model_id).distinct()).all()
@@ -130,22 +131,24 @@ def sweep(factory: sessionmaker[Session]) -> int:
         for model in session.scalars(
             select(ModelRow).where(ModelRow.negative_after_days.is_not(None))
         ).all():
-            marked += _mark_crossed(session, model)
+            marked += _mark_newly_implied(session, model)
     return marked
 
 
-def sweep_model(session: Session, model: ModelRow) -> int:
-    """The sweep for one model in the caller's transaction (a read that must be current)."""
+def join_and_mark_model(session: Session, model: ModelRow) -> int:
+    """`join_and_mark` for one model in the caller's transaction (a read that must be
+    current)."""
     hours = labels.join_pending(session=session, model_id=model.id, ids=None)
     marked = dirty.mark(session=session, model_id=model.id, hours=hours, recompute=False)
     if model.negative_after_days is not None:
-        marked += _mark_crossed(session, model)
+        marked += _mark_newly_implied(session, model)
     return marked
 
 
-def _mark_crossed(session: Session, model: ModelRow) -> int:
+def _mark_newly_implied(session: Session, model: ModelRow) -> int:
     assert model.negative_after_days is not None
-    cut = now() - timedelta(days=model.negative_after_days)
+    stamp = now()
+    cut = stamp - timedelta(days=model.negative_after_days)
     cut_hour = int(cut.timestamp() // 3600)
     key = f"implied_cut:{model.id}"
     state = session.get(ServiceState, key)
@@ -164,9 +167,9 @@ def _mark_crossed(session: Session, model: ModelRow) -> int:
     hours = list(session.scalars(query))
     n = dirty.mark(session=session, model_id=model.id, hours=hours)
     if state is None:
-        session.add(ServiceState(key=key, value=cut_hour, updated_at=now()))
+        session.add(ServiceState(key=key, value=cut_hour, updated_at=stamp))
     else:
-        state.value, state.updated_at = cut_hour, now()
+        state.value, state.updated_at = cut_hour, stamp
     return n
 
 

@@ -16,11 +16,16 @@ from datetime import datetime
 from sqlalchemy import BigInteger, Float, ForeignKey, Integer, LargeBinary, String
 from sqlalchemy.orm import Mapped, mapped_column
 
+from belated.store.statistics import CELLS, HISTOGRAMS, SCALARS, Kind
 from belated.store.tables import Base, Json, UtcDateTime
 
 
 class Rollup(Base):
-    """Sufficient statistics of one (model, level, start, segment)."""
+    """Sufficient statistics of one (model, level, start, segment).
+
+    The statistic columns are not spelled out here: they are added below, one per declared
+    statistic of `belated.store.statistics`.
+    """
 
     __tablename__ = "rollups"
     model_id: Mapped[int] = mapped_column(
@@ -30,25 +35,18 @@ class Rollup(Base):
     start: Mapped[int] = mapped_column(Integer, primary_key=True)
     seg_key: Mapped[str] = mapped_column(String(64), primary_key=True)
     seg_value: Mapped[str] = mapped_column(String(64), primary_key=True)
-    n_pred: Mapped[int] = mapped_column(BigInteger)
-    n_labelled: Mapped[int] = mapped_column(BigInteger)
-    n_implied: Mapped[int] = mapped_column(BigInteger)
-    n_pred_pos: Mapped[int] = mapped_column(BigInteger)
-    tp: Mapped[int] = mapped_column(BigInteger)
-    fp: Mapped[int] = mapped_column(BigInteger)
-    fn: Mapped[int] = mapped_column(BigInteger)
-    tn: Mapped[int] = mapped_column(BigInteger)
-    brier_sum: Mapped[float] = mapped_column(Float)
-    logloss_sum: Mapped[float] = mapped_column(Float)
-    exp_tp: Mapped[float] = mapped_column(Float)
-    exp_fp: Mapped[float] = mapped_column(Float)
-    exp_fn: Mapped[float] = mapped_column(Float)
-    exp_tn: Mapped[float] = mapped_column(Float)
-    hist: Mapped[bytes | None] = mapped_column(LargeBinary, nullable=True)
-    delays: Mapped[bytes | None] = mapped_column(LargeBinary, nullable=True)
     cells: Mapped[dict[str, int] | None] = mapped_column(Json, nullable=True)
-    # the implied-negative cutoff an hourly row was aggregated with (NULL: none, or daily)
-    cut: Mapped[datetime | None] = mapped_column(UtcDateTime, nullable=True)
+    # the implied-negative cutoff an hourly row was aggregated with (NULL: none, or daily):
+    # a label change folded in later judges the row's old state with it
+    negative_cutoff: Mapped[datetime | None] = mapped_column(UtcDateTime, nullable=True)
+
+
+_COLUMN_TYPES = {Kind.COUNT: BigInteger, Kind.SUM: Float}
+for _scalar in SCALARS:
+    setattr(Rollup, _scalar.name, mapped_column(_COLUMN_TYPES[_scalar.kind], nullable=False))
+for _hist in HISTOGRAMS:
+    setattr(Rollup, _hist.name, mapped_column(LargeBinary, nullable=True))
+assert CELLS == "cells"
 
 
 class SegmentValue(Base):
@@ -72,6 +70,3 @@ class SegmentKey(Base):
     )
     key: Mapped[str] = mapped_column(String(64), primary_key=True)
     admitted_at: Mapped[datetime] = mapped_column(UtcDateTime)
-
-
-_ = Float  # keep the import list stable for readers of the schema

@@ -1,11 +1,31 @@
-"""Recompute rollups of chosen hours from raw rows, and the daily rows above them."""
+"""Bring the rollups of chosen hours, and the daily rows above them, up to date.
+
+dirty mark (model, hour, recompute?)          claimed by store/refresh.py
+    │
+    ├─ recompute: new predictions, an implied-negative cutoff crossed, a rebuild,
+    │  a changed rollup setting ──▶ aggregate the hour from raw rows (compute)
+    │                                 └─▶ replace its hourly rows (with the cutoff used)
+    │
+    └─ fold: only labels changed (label_changes logs old and new state)
+           ──▶ aggregate the changes, old state -1 and new +1 (compute on Scope.changes())
+           ──▶ add the difference to the stored hourly rows
+           └─ an hour that cannot take a difference (never aggregated, a segment
+              admitted since, no stored cutoff, a count that would go negative)
+              ──▶ recompute from raw rows instead, with a warning
+    │
+    ▼
+daily rows: the folded differences are added to them; days with a recomputed hour
+are summed again from their hourly rows
+    │
+    ▼
+the folded changes are deleted (writers of these hours wait on the claimed marks)
+"""
 
 from __future__ import annotations
 
 import logging
 from collections import defaultdict
 from collections.abc import Sequence
-from dataclasses import replace
 from datetime import datetime, timedelta
 from typing import Any
 
@@ -15,174 +35,183 @@ from sqlalchemy import delete, insert, select, text, tuple_
 from sqlalchemy.orm import Session
 
 from belated.store import bulk, segments
-from belated.store import rollup_sql as q
-from belated.store.accumulate import Acc, cell_key
-from belated.store.packing import N_BINS, unpack_delays
+from belated.store.dialect import Dialect, is_postgres
+from belated.store.rollup_sql import Scope, aggregate_all_keys, aggregate_one_key, parts
 from belated.store.rollup_tables import Rollup
+from belated.store.statistics import CELLS, HISTOGRAM_BY_NAME, pg_types
 from belated.store.tables import LabelChange, ModelRow
+from belated.store.totals import Totals, cell_key
 
 log = logging.getLogger(__name__)
 Key = tuple[int, str, str]  # (start hour, segment key, segment value)
 
+DELETE_CHUNK = 1000  # starts or keys per DELETE on SQLite
+INSERT_CHUNK = 2000  # rows per executemany INSERT on SQLite
+READ_CHUNK = 500  # starts per SELECT on SQLite
+_PG_TYPES = pg_types()
 
-def scope_of(model: ModelRow, hours: Sequence[int], now: datetime) -> q.Scope:
-    """The query scope of a model's hours at time `now`."""
-    binary = model.kind == "binary"
+
+def scope_of(model: ModelRow, hours: Sequence[int] | range, now: datetime) -> Scope:
+    """The query scope of a model's hours at time `now` (over raw rows)."""
     pos = model.positive or model.classes[-1]
     neg = next((c for c in model.classes if c != pos), "")
     cutoff = None
     if model.negative_after_days is not None:
         cutoff = now - timedelta(days=model.negative_after_days)
-    return q.Scope(model.id, binary, pos, neg, list(hours), cutoff)
+    binary = model.kind == "binary"
+    return Scope(
+        model.id, binary, pos, neg, hours if isinstance(hours, range) else list(hours), cutoff
+    )
 
 
-def compute(session: Session, scope: q.Scope, keys: dict[str, list[str]]) -> dict[Key, Acc]:
-    """Aggregate the scope's raw rows into accumulators per (hour, segment)."""
-    accs: dict[Key, Acc] = defaultdict(Acc)
-    if keys and session.get_bind().dialect.name == "postgresql":
-        # one scan for the whole model and every tag key
-        sets = {
-            what: q.grouped(session, scope, keys, what)
-            for what in ("scalars", "histograms" if scope.binary else "cells")
-        }
-    else:
-        sets = defaultdict(list)
-        kinds = [
-            ("scalars", q.scalars),
-            ("histograms", q.histograms) if scope.binary else ("cells", q.cells),
-        ]
-        for key in [None, *keys]:
-            values, skey = (keys.get(key, []) if key else []), key or ""
-            for what, query in kinds:
-                sets[what] += [(r[0], skey, *r[1:]) for r in query(session, scope, key, values)]
-    for hour, skey, seg, *values in sets["scalars"]:
-        accs[(hour, skey, seg)].set_scalars(values)
-    if scope.binary:
-        _add_histograms(accs, sets["histograms"])
-    for hour, skey, seg, actual, predicted, n in sets.get("cells", ()):
-        acc = accs[(hour, skey, seg)]
-        acc.cells = acc.cells or {}
-        acc.cells[cell_key(actual, predicted)] = int(n)
-    for hour, bin_, n in q.delays(session, scope):
-        acc = accs[(hour, "", "")]
-        if acc.delays is None:
-            acc.delays = unpack_delays(None)
-        acc.delays[bin_] += n
-    return accs
+def compute(session: Session, scope: Scope, keys: dict[str, list[str]]) -> dict[Key, Totals]:
+    """Aggregate the scope's raw rows (or logged changes) into totals per (hour, segment)."""
+    totals: dict[Key, Totals] = defaultdict(Totals)
+    one_scan = bool(keys) and is_postgres(session)
+    for part in parts(Dialect.of(session), scope):
+        if one_scan and not part.whole_model_only:
+            rows = aggregate_all_keys(session, scope, part, keys)
+        else:
+            rows = []
+            for key in [None] if part.whole_model_only else [None, *keys]:
+                values = keys.get(key, []) if key else []
+                rows += aggregate_one_key(session, scope, part, key, values)
+        if part.name == "scalars":
+            for hour, skey, seg, *values in rows:
+                totals[(hour, skey, seg)].set_scalars(values)
+        elif part.name == CELLS:
+            for hour, skey, seg, actual, predicted, n in rows:
+                t = totals[(hour, skey, seg)]
+                t.cells = t.cells or {}
+                t.cells[cell_key(actual, predicted)] = int(n)
+        else:
+            _scatter(totals, part.name, len(part.group), rows)
+    return totals
 
 
-def _add_histograms(accs: dict[Key, Acc], rows: list[Any]) -> None:
-    """Histogram rows (hour, segment key, segment value, class, bin, count, score sum) into
-    the accumulators, one numpy scatter per segment rather than one assignment per row."""
-    grouped: dict[Key, list[Any]] = defaultdict(list)
+def _scatter(totals: dict[Key, Totals], name: str, n_axes: int, rows: list[Any]) -> None:
+    """Histogram rows (hour, segment key, value, *cell index, count[, score sum]) into the
+    totals, one numpy scatter per segment rather than one assignment per row."""
+    hist = HISTOGRAM_BY_NAME[name]
+    by_key: dict[Key, list[Any]] = defaultdict(list)
     for row in rows:
-        grouped[(row[0], row[1], row[2])].append(row)
-    for key, group in grouped.items():
-        acc = accs[key]
-        _, _, _, cls, bins, n, ssum = zip(*group, strict=True)
-        flat = np.asarray(cls, np.int64) * N_BINS + np.asarray(bins, np.int64)
-        np.add.at(acc.hist.reshape(-1), flat, np.asarray(n, np.int64))
-        np.add.at(acc.hsum.reshape(-1), flat, np.asarray([v or 0.0 for v in ssum], np.float64))
+        by_key[(row[0], row[1], row[2])].append(row[3:])
+    for key, group in by_key.items():
+        cols = list(zip(*group, strict=True))
+        flat = np.ravel_multi_index(
+            tuple(np.asarray(c, np.int64) for c in cols[:n_axes]), hist.shape
+        )
+        t = totals[key]
+        np.add.at(t.counts(name).reshape(-1), flat, np.asarray(cols[n_axes], np.int64))
+        if hist.score_sums:
+            sums = np.asarray([v or 0.0 for v in cols[n_axes + 1]], np.float64)
+            np.add.at(t.sums(name).reshape(-1), flat, sums)
 
 
 def refresh_hours(
     *,
     session: Session,
     model: ModelRow,
-    hours: Sequence[int],
+    recompute: Sequence[int],
     now: datetime,
     max_values: int,
-    changed: Sequence[int] = (),
+    fold: Sequence[int] = (),
 ) -> int:
-    """Bring the hourly rollups of `hours` and `changed`, and the daily rows above, up to date.
+    """Bring the hourly rollups of `recompute` and `fold`, and the daily rows above, up to
+    date; return the number of hours done.
 
-    `hours` are aggregated again from raw rows. `changed` are hours where only labels
-    changed since their rollups were written: the logged changes are folded in by
-    difference (old state out, new state in), a cost that follows the number of changes.
-    An hour whose rollups cannot take the difference (never aggregated, a segment admitted
-    since) is aggregated from raw rows instead.
+    `recompute` hours are aggregated again from raw rows. `fold` hours are where only labels
+    changed since their rollups were written: the logged changes are added by difference
+    (old state out, new state in), a cost that follows the number of changes.
     """
-    whole = sorted(set(hours))
-    changed = sorted(set(changed) - set(whole))
-    if not whole and not changed:
+    raw_hours = sorted(set(recompute))
+    fold_hours = sorted(set(fold) - set(raw_hours))
+    if not raw_hours and not fold_hours:
         return 0
-    _lock_days(session, model.id, {h - h % 24 for h in (*whole, *changed)})
-    day_deltas: dict[Key, Acc] = {}
-    if changed:
-        stuck, day_deltas = _fold_changes(session, model, changed, now)
-        whole = sorted(set(whole) | stuck)
-    accs: dict[Key, Acc] = {}
-    if whole:
-        keys = segments.admit(session=session, model=model, hours=whole, max_values=max_values)
-        scope = scope_of(model, whole, now)
-        accs = compute(session, scope, keys)
-        _replace(session, model.id, "h", whole, accs, cuts=dict.fromkeys(whole, scope.cutoff))
-    _forget_changes(session, model.id, [*whole, *changed])
-    recount = {h - h % 24 for h in whole}
-    recount |= _add_days(
-        session, model.id, {k: v for k, v in day_deltas.items() if k[0] not in recount}
+    _lock_days(session, model.id, {h - h % 24 for h in (*raw_hours, *fold_hours)})
+    day_differences: dict[Key, Totals] = {}
+    if fold_hours:
+        unfoldable, day_differences = _fold_changes(session, model, fold_hours, now)
+        raw_hours = sorted(set(raw_hours) | unfoldable)
+    fresh: dict[Key, Totals] = {}
+    if raw_hours:
+        keys = segments.admit(session=session, model=model, hours=raw_hours, max_values=max_values)
+        scope = scope_of(model, raw_hours, now)
+        fresh = compute(session, scope, keys)
+        cutoffs: dict[int, datetime | None] = dict.fromkeys(raw_hours, scope.cutoff)
+        _replace(session, model.id, "h", raw_hours, fresh, cutoffs)
+    _forget_changes(session, model.id, [*raw_hours, *fold_hours])
+    days_to_sum = {h - h % 24 for h in raw_hours}
+    days_to_sum |= _add_to_days(
+        session, model.id, {k: v for k, v in day_differences.items() if k[0] not in days_to_sum}
     )
-    refresh_days(session=session, model_id=model.id, days=recount, known=accs, known_hours=whole)
-    return len(set(whole) | set(changed))
+    refresh_days(
+        session=session, model_id=model.id, days=days_to_sum, known=fresh, known_hours=raw_hours
+    )
+    return len(set(raw_hours) | set(fold_hours))
 
 
 def _fold_changes(
     session: Session, model: ModelRow, hours: list[int], now: datetime
-) -> tuple[set[int], dict[Key, Acc]]:
+) -> tuple[set[int], dict[Key, Totals]]:
     """Add the logged label changes of `hours` to their hourly rows.
 
     Returns the hours that need a recompute instead, and the per-day sums of the
     differences applied (for the daily rows).
     """
     keys = segments.current(session=session, model=model)
-    delta = compute(session, replace(scope_of(model, hours, now), changes=True), keys)
-    if not delta:
+    difference = compute(session, scope_of(model, hours, now).changes(), keys)
+    if not difference:
         return set(), {}
-    stored: dict[Key, Acc] = {}
-    cuts: dict[int, datetime | None] = {}
-    for row in _rows(session, model.id, "h", sorted({k[0] for k in delta})):
-        stored[(row.start, row.seg_key, row.seg_value)] = Acc.from_row(row)
+    stored: dict[Key, Totals] = {}
+    cutoffs: dict[int, datetime | None] = {}
+    for row in _rows(session, model.id, "h", sorted({k[0] for k in difference})):
+        stored[(row.start, row.seg_key, row.seg_value)] = Totals.from_row(row)
         if row.seg_key == "" and row.seg_value == "":
-            cuts[row.start] = row.cut
-    stuck = {h for (h, k, v) in delta if (h, "", "") not in stored or (h, k, v) not in stored}
+            cutoffs[row.start] = row.negative_cutoff
+    unfoldable = {
+        h for (h, k, v) in difference if (h, "", "") not in stored or (h, k, v) not in stored
+    }
     if model.negative_after_days is not None:
         # aggregated before cutoffs were stored with rows: how its unlabelled rows were
         # counted is unknown, so a difference cannot be taken
-        stuck |= {h for h in cuts if cuts[h] is None}
-    for key, acc in delta.items():
-        if key[0] not in stuck:
-            stored[key].add(acc)
-            stored[key].tidy()
-            if not stored[key].valid():
-                stuck.add(key[0])  # cannot happen if the log is whole; recompute to be sure
-    if stuck:
+        unfoldable |= {h for h in cutoffs if cutoffs[h] is None}
+    for key, change in difference.items():
+        if key[0] not in unfoldable:
+            stored[key].add(change)
+            stored[key].drop_remainders()
+            if not stored[key].nonnegative():
+                unfoldable.add(key[0])  # cannot happen if the log is whole; recompute to be sure
+    if unfoldable:
         log.warning(
             "model %s: %d hours aggregated again instead of folding label changes",
             model.id,
-            len(stuck),
+            len(unfoldable),
         )
-    _rewrite(session, model.id, "h", {k: stored[k] for k in delta if k[0] not in stuck}, cuts)
-    per_day: dict[Key, Acc] = defaultdict(Acc)
-    for (hour, k, v), acc in delta.items():
-        if hour not in stuck:
-            per_day[(hour - hour % 24, k, v)].add(acc)
-    return stuck, per_day
+    folded = {k: stored[k] for k in difference if k[0] not in unfoldable}
+    _rewrite(session, model.id, "h", folded, cutoffs)
+    per_day: dict[Key, Totals] = defaultdict(Totals)
+    for (hour, k, v), change in difference.items():
+        if hour not in unfoldable:
+            per_day[(hour - hour % 24, k, v)].add(change)
+    return unfoldable, per_day
 
 
-def _add_days(session: Session, model_id: int, deltas: dict[Key, Acc]) -> set[int]:
+def _add_to_days(session: Session, model_id: int, differences: dict[Key, Totals]) -> set[int]:
     """Add differences to daily rows; return the days that must be summed again instead."""
-    if not deltas:
+    if not differences:
         return set()
     stored = {
-        (r.start, r.seg_key, r.seg_value): Acc.from_row(r)
-        for r in _rows(session, model_id, "d", sorted({k[0] for k in deltas}))
+        (r.start, r.seg_key, r.seg_value): Totals.from_row(r)
+        for r in _rows(session, model_id, "d", sorted({k[0] for k in differences}))
     }
-    missing = {k[0] for k in deltas if k not in stored}
-    for key, acc in deltas.items():
+    missing = {k[0] for k in differences if k not in stored}
+    for key, change in differences.items():
         if key[0] not in missing:
-            stored[key].add(acc)
-            stored[key].tidy()
-    _rewrite(session, model_id, "d", {k: stored[k] for k in deltas if k[0] not in missing}, {})
+            stored[key].add(change)
+            stored[key].drop_remainders()
+    rewritten = {k: stored[k] for k in differences if k[0] not in missing}
+    _rewrite(session, model_id, "d", rewritten, {})
     return missing
 
 
@@ -190,12 +219,12 @@ def _rewrite(
     session: Session,
     model_id: int,
     level: str,
-    accs: dict[Key, Acc],
-    cuts: dict[int, datetime | None],
+    totals: dict[Key, Totals],
+    cutoffs: dict[int, datetime | None],
 ) -> None:
     """Replace exactly these rows (the other rows of their hours or days did not change)."""
-    keys = list(accs)
-    if keys and bulk.is_pg(session):  # a join on the key: IN over row values scans instead
+    keys = list(totals)
+    if keys and is_postgres(session):  # a join on the key: IN over row values scans instead
         starts, skeys, values = (list(x) for x in zip(*keys, strict=True))
         session.execute(
             text(
@@ -207,47 +236,34 @@ def _rewrite(
             {"s": starts, "k": skeys, "v": values, "m": model_id, "l": level},
         )
         keys = []
-    for i in range(0, len(keys), 1000):
+    for i in range(0, len(keys), DELETE_CHUNK):
         session.execute(
             delete(Rollup).where(
                 Rollup.model_id == model_id,
                 Rollup.level == level,
-                tuple_(Rollup.start, Rollup.seg_key, Rollup.seg_value).in_(keys[i : i + 1000]),
+                tuple_(Rollup.start, Rollup.seg_key, Rollup.seg_value).in_(
+                    keys[i : i + DELETE_CHUNK]
+                ),
             )
         )
-    _insert(session, model_id, level, accs, cuts)
-
-
-_PG_TYPES = {
-    "model_id": "int4",
-    "level": "varchar",
-    "start": "int4",
-    "seg_key": "varchar",
-    "seg_value": "varchar",
-    **dict.fromkeys(q.SCALARS[:8], "int8"),
-    **dict.fromkeys(q.SCALARS[8:], "float8"),
-    "hist": "bytea",
-    "delays": "bytea",
-    "cells": "jsonb",
-    "cut": "timestamptz",
-}
+    _insert(session, model_id, level, totals, cutoffs)
 
 
 def _rows(session: Session, model_id: int, level: str, starts: list[int]) -> list[Any]:
-    if bulk.is_pg(session):  # bytea in binary: no hex to decode
+    if is_postgres(session):  # bytea in binary: no hex to decode
         return bulk.fetch_binary(
             session,
             "SELECT * FROM rollups WHERE model_id = %s AND level = %s AND start = ANY(%s)",
             (model_id, level, starts),
         )
     out: list[Any] = []
-    for i in range(0, len(starts), 500):
+    for i in range(0, len(starts), READ_CHUNK):
         out.extend(
             session.execute(
                 select(Rollup.__table__).where(
                     Rollup.model_id == model_id,
                     Rollup.level == level,
-                    Rollup.start.in_(starts[i : i + 500]),
+                    Rollup.start.in_(starts[i : i + READ_CHUNK]),
                 )
             )
         )
@@ -257,16 +273,17 @@ def _rows(session: Session, model_id: int, level: str, starts: list[int]) -> lis
 def _forget_changes(session: Session, model_id: int, hours: list[int]) -> None:
     # Writers of these hours wait on the claimed marks, so no change of theirs can commit
     # between the aggregation above and this delete.
-    for i in range(0, len(hours), 1000):
+    for i in range(0, len(hours), DELETE_CHUNK):
         session.execute(
             delete(LabelChange).where(
-                LabelChange.model_id == model_id, LabelChange.hour.in_(hours[i : i + 1000])
+                LabelChange.model_id == model_id,
+                LabelChange.hour.in_(hours[i : i + DELETE_CHUNK]),
             )
         )
 
 
 def _lock_days(session: Session, model_id: int, days: set[int]) -> None:
-    if session.get_bind().dialect.name != "postgresql":
+    if not is_postgres(session):
         return
     # a read-side refresh and the job may touch different hours of the same day: the
     # second waits here, then reads the daily rows the first committed (in day order, so
@@ -282,25 +299,25 @@ def _replace(
     model_id: int,
     level: str,
     starts: Sequence[int],
-    accs: dict[Key, Acc],
-    cuts: dict[int, datetime | None] | None = None,
+    totals: dict[Key, Totals],
+    cutoffs: dict[int, datetime | None] | None = None,
 ) -> None:
-    for i in range(0, len(starts), 1000):
-        chunk = list(starts[i : i + 1000])
+    for i in range(0, len(starts), DELETE_CHUNK):
+        chunk = list(starts[i : i + DELETE_CHUNK])
         session.execute(
             delete(Rollup).where(
                 Rollup.model_id == model_id, Rollup.level == level, Rollup.start.in_(chunk)
             )
         )
-    _insert(session, model_id, level, accs, cuts or {})
+    _insert(session, model_id, level, totals, cutoffs or {})
 
 
 def _insert(
     session: Session,
     model_id: int,
     level: str,
-    accs: dict[Key, Acc],
-    cuts: dict[int, datetime | None],
+    totals: dict[Key, Totals],
+    cutoffs: dict[int, datetime | None],
 ) -> None:
     rows = [
         {
@@ -309,28 +326,28 @@ def _insert(
             "start": start,
             "seg_key": k,
             "seg_value": v,
-            "cut": cuts.get(start),
-            **acc.to_row(),
+            "negative_cutoff": cutoffs.get(start),
+            **t.to_row(),
         }
-        for (start, k, v), acc in accs.items()
+        for (start, k, v), t in totals.items()
     ]
     if not rows:
         return
-    if bulk.is_pg(session):  # the ORM sent these one statement per row
+    if is_postgres(session):  # the ORM sent these one statement per row
         cols = list(rows[0])
         bulk.copy_rows(
             session,
             "rollups",
             cols,
             (
-                [Jsonb(r[c]) if c == "cells" and r[c] is not None else r[c] for c in cols]
+                [Jsonb(r[c]) if c == CELLS and r[c] is not None else r[c] for c in cols]
                 for r in rows
             ),
             types=[_PG_TYPES[c] for c in cols],
         )
         return
-    for i in range(0, len(rows), 2000):
-        session.execute(insert(Rollup), rows[i : i + 2000])
+    for i in range(0, len(rows), INSERT_CHUNK):
+        session.execute(insert(Rollup), rows[i : i + INSERT_CHUNK])
 
 
 def refresh_days(
@@ -338,7 +355,7 @@ def refresh_days(
     session: Session,
     model_id: int,
     days: set[int],
-    known: dict[Key, Acc] | None = None,
+    known: dict[Key, Totals] | None = None,
     known_hours: Sequence[int] = (),
 ) -> None:
     """Rebuild the daily rows of `days` (epoch hours at midnight) from their hourly rows.
@@ -350,13 +367,13 @@ def refresh_days(
         return
     ordered = sorted(days)
     _lock_days(session, model_id, days)
-    accs: dict[Key, Acc] = defaultdict(Acc)
+    totals: dict[Key, Totals] = defaultdict(Totals)
     wanted = set(ordered)
-    for (hour, k, v), acc in (known or {}).items():
+    for (hour, k, v), t in (known or {}).items():
         if hour - hour % 24 in wanted:
-            accs[(hour - hour % 24, k, v)].add(acc)
+            totals[(hour - hour % 24, k, v)].add(t)
     skip = set(known_hours)
     needed = sorted({d + h for d in ordered for h in range(24)} - skip)
     for row in _rows(session, model_id, "h", needed):
-        accs[(row.start - row.start % 24, row.seg_key, row.seg_value)].add(Acc.from_row(row))
-    _replace(session, model_id, "d", ordered, accs)
+        totals[(row.start - row.start % 24, row.seg_key, row.seg_value)].add(Totals.from_row(row))
+    _replace(session, model_id, "d", ordered, totals)

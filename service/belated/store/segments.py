@@ -13,6 +13,7 @@ from sqlalchemy import ColumnElement, select, text
 from sqlalchemy.orm import Session
 
 from belated.clock import now
+from belated.store.dialect import is_postgres
 from belated.store.rollup_tables import SegmentKey, SegmentValue
 from belated.store.tables import ModelRow, Prediction
 
@@ -56,7 +57,7 @@ def _hours_filter(hours: Sequence[int]) -> ColumnElement[bool]:
 def _seen_keys(session: Session, model_id: int, hours: Sequence[int]) -> list[str]:
     params = {"m": model_id}
     hour_list = ",".join(str(int(h)) for h in hours)
-    if session.get_bind().dialect.name == "postgresql":
+    if is_postgres(session):
         sql = (
             f"SELECT DISTINCT jsonb_object_keys(tags) FROM predictions WHERE model_id = :m"
             f" AND hour IN ({hour_list}) AND tags IS NOT NULL"
