@@ -252,6 +252,14 @@ def _delay_bin(t: Terms) -> str:
     )
 
 
+# the actual class of an explicit label (implied negatives have no delay)
+DELAY_CLASSES = ("pos", "neg")
+
+
+def _delay_class(_t: Terms) -> str:
+    return f"(CASE WHEN actual = {POS} THEN 0 ELSE 1 END)"
+
+
 HISTOGRAMS: tuple[Histogram, ...] = (
     Histogram(
         "hist",
@@ -267,6 +275,13 @@ HISTOGRAMS: tuple[Histogram, ...] = (
         lambda _t: "actual IS NOT NULL AND delay_h IS NOT NULL",
         "label delays (hours from prediction to label) of explicit labels",
         whole_model_only=True,
+    ),
+    Histogram(
+        "delays_by_class",
+        (Axis("class", DELAY_CLASSES, _delay_class), Axis("bin", N_DELAY_BINS, _delay_bin)),
+        lambda _t: "actual IS NOT NULL AND delay_h IS NOT NULL",
+        "label delays of explicit labels by actual class (the arrival curves' input)",
+        binary_only=True,
     ),
 )
 HISTOGRAM_BY_NAME = {h.name: h for h in HISTOGRAMS}
