@@ -4,7 +4,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 from datetime import datetime
-from typing import Any
+from typing import Any, NamedTuple
 
 from sqlalchemy import bindparam, delete, func, insert, select, text, update
 from sqlalchemy.orm import Session
@@ -18,10 +18,25 @@ from belated.timeutil import to_utc
 
 _STAGE = "stage_labels"
 _STAGE_DDL = "row_id bigint, actual text, label_ts timestamptz, delay_h float8"
+DELETE_CHUNK = 5000  # pending rows per DELETE
+
+
+class Change(NamedTuple):
+    """One label change of a stored prediction, as logged in `label_changes`."""
+
+    model_id: int
+    hour: int
+    row_id: int
+    old_actual: str | None
+    old_delay_h: float | None
+    new_actual: str
+    new_delay_h: float
 
 
 @dataclass(slots=True)
-class _Target:
+class _Stored:
+    """A stored prediction a label is for: where it is and its current label."""
+
     row_id: int
     ts: datetime
     hour: int
@@ -34,8 +49,8 @@ def delay_hours(pred_ts: datetime, label_ts: datetime) -> float:
     return max(0.0, (label_ts - pred_ts).total_seconds() / 3600.0)
 
 
-def _targets(session: Session, model_id: int, ids: list[str]) -> dict[str, _Target]:
-    found: dict[str, _Target] = {}
+def _targets(session: Session, model_id: int, ids: list[str]) -> dict[str, _Stored]:
+    found: dict[str, _Stored] = {}
     cols = (
         Prediction.pid,
         Prediction.row_id,
@@ -48,8 +63,8 @@ def _targets(session: Session, model_id: int, ids: list[str]) -> dict[str, _Targ
         query = select(*cols).where(Prediction.model_id == model_id, cond)
         if is_postgres(session):  # concurrent corrections of one id apply one after another
             query = query.order_by(Prediction.row_id).with_for_update()
-        for pid, row_id, ts, hour, actual, delay in session.execute(query):
-            found[pid] = _Target(row_id, to_utc(ts), hour, actual, delay)
+        for row in session.execute(query):
+            found[row.pid] = _Stored(row.row_id, to_utc(row.ts), row.hour, row.actual, row.delay_h)
     return found
 
 
@@ -69,21 +84,21 @@ def ingest(*, session: Session, model_id: int, items: list[LabelIn]) -> dict[str
     """Apply labels in arrival order; the four counts add up to the batch size."""
     ids = list(dict.fromkeys(label.pid for label in items))
     targets = _targets(session, model_id, ids)
-    waiting = _pending(session, model_id, [i for i in ids if i not in targets])
+    pending_now = _pending(session, model_id, [i for i in ids if i not in targets])
     received = now()
     answer = {"matched": 0, "pending": 0, "corrected": 0, "unchanged": 0}
     updates: dict[int, dict[str, Any]] = {}
     history: list[dict[str, Any]] = []
-    changes: list[tuple[Any, ...]] = []
-    pend: dict[str, LabelIn] = {}
+    changes: list[Change] = []
+    new_pending: dict[str, LabelIn] = {}
     hours: set[int] = set()
     for label in items:
         target = targets.get(label.pid)
         if target is None:
             answer["pending"] += 1
-            if waiting.get(label.pid) != label.actual:
-                waiting[label.pid] = label.actual
-                pend[label.pid] = label
+            if pending_now.get(label.pid) != label.actual:
+                pending_now[label.pid] = label.actual
+                new_pending[label.pid] = label
                 history.append(_history(model_id, label, "pending", received))
             continue
         if target.actual == label.actual:
@@ -97,14 +112,14 @@ def ingest(*, session: Session, model_id: int, items: list[LabelIn]) -> dict[str
         )
         delay = delay_hours(target.ts, label.ts)
         changes.append(
-            (
-                model_id,
-                target.hour,
-                target.row_id,
-                target.actual,
-                target.delay_h,
-                label.actual,
-                delay,
+            Change(
+                model_id=model_id,
+                hour=target.hour,
+                row_id=target.row_id,
+                old_actual=target.actual,
+                old_delay_h=target.delay_h,
+                new_actual=label.actual,
+                new_delay_h=delay,
             )
         )
         target.actual, target.delay_h = label.actual, delay
@@ -127,37 +142,22 @@ def ingest(*, session: Session, model_id: int, items: list[LabelIn]) -> dict[str
             bulk.copy_rows(session, "labels", cols, ([h[c] for c in cols] for h in history))
         else:
             session.execute(insert(Label), history)
-    if pend:
-        _upsert_pending(session, model_id, list(pend.values()), received)
+    if new_pending:
+        _upsert_pending(session, model_id, list(new_pending.values()), received)
     record_changes(session, changes)
     dirty.mark(session=session, model_id=model_id, hours=hours, recompute=False)
     return answer
 
 
-_CHANGE_COLS = (
-    "model_id",
-    "hour",
-    "row_id",
-    "old_actual",
-    "old_delay_h",
-    "new_actual",
-    "new_delay_h",
-)
-
-
-def record_changes(session: Session, changes: list[tuple[Any, ...]]) -> None:
-    """Log label changes (model, hour, row, old actual, old delay, new actual, new delay).
-
-    The refresh folds them into the rollups of their hours and deletes them.
-    """
+def record_changes(session: Session, changes: list[Change]) -> None:
+    """Log label changes; the refresh folds them into the rollups of their hours and
+    deletes them."""
     if not changes:
         return
     if is_postgres(session):
-        bulk.copy_rows(session, "label_changes", _CHANGE_COLS, changes)
+        bulk.copy_rows(session, "label_changes", Change._fields, changes)
     else:
-        session.execute(
-            insert(LabelChange), [dict(zip(_CHANGE_COLS, c, strict=True)) for c in changes]
-        )
+        session.execute(insert(LabelChange), [c._asdict() for c in changes])
 
 
 def _history(model_id: int, label: LabelIn, change: str, received: datetime) -> dict[str, Any]:
@@ -249,16 +249,16 @@ def join_pending(*, session: Session, model_id: int, ids: list[str] | None) -> s
     """
     query = (
         select(
-            PendingLabel.row_id,
-            PendingLabel.actual,
-            PendingLabel.ts,
-            Prediction.row_id,
-            Prediction.ts,
-            Prediction.hour,
-            Prediction.actual,
-            PendingLabel.received_at,
+            PendingLabel.row_id.label("pending_row"),
             PendingLabel.pid,
-            Prediction.delay_h,
+            PendingLabel.actual.label("label"),
+            PendingLabel.ts.label("label_ts"),
+            PendingLabel.received_at,
+            Prediction.row_id.label("prediction_row"),
+            Prediction.ts.label("prediction_ts"),
+            Prediction.hour,
+            Prediction.actual.label("current"),
+            Prediction.delay_h.label("current_delay_h"),
         )
         .join(
             Prediction,
@@ -277,23 +277,37 @@ def join_pending(*, session: Session, model_id: int, ids: list[str] | None) -> s
         rows.extend(session.execute(q).all())
     if not rows:
         return set()
-    latest = _latest_received(session, model_id, [r[8] for r in rows if r[6] is not None])
-    updates, changes = [], []
-    for _pl_id, actual, lts, p_id, pts, hour, current, received, pid, old_delay in rows:
-        if current is not None and (
-            current == actual or latest.get(pid) is None or to_utc(received) <= latest[pid]
+    latest = _latest_received(session, model_id, [r.pid for r in rows if r.current is not None])
+    updates: list[dict[str, Any]] = []
+    changes: list[Change] = []
+    for r in rows:
+        if r.current is not None and (
+            r.current == r.label
+            or latest.get(r.pid) is None
+            or to_utc(r.received_at) <= latest[r.pid]
         ):
             continue  # the current label arrived after the pending one: it stands
-        delay = delay_hours(to_utc(pts), to_utc(lts))
+        label_ts = to_utc(r.label_ts)
+        delay = delay_hours(to_utc(r.prediction_ts), label_ts)
         updates.append(
-            {"row_id": p_id, "actual": actual, "label_ts": to_utc(lts), "delay_h": delay}
+            {"row_id": r.prediction_row, "actual": r.label, "label_ts": label_ts, "delay_h": delay}
         )
-        changes.append((model_id, hour, p_id, current, old_delay, actual, delay))
+        changes.append(
+            Change(
+                model_id=model_id,
+                hour=r.hour,
+                row_id=r.prediction_row,
+                old_actual=r.current,
+                old_delay_h=r.current_delay_h,
+                new_actual=r.label,
+                new_delay_h=delay,
+            )
+        )
     if updates:
         (_update_pg if is_postgres(session) else _update_sqlite)(session, updates)
         record_changes(session, changes)
-    done = [r[0] for r in rows]
-    for start in range(0, len(done), 5000):
-        chunk = done[start : start + 5000]
+    done = [r.pending_row for r in rows]
+    for start in range(0, len(done), DELETE_CHUNK):
+        chunk = done[start : start + DELETE_CHUNK]
         session.execute(delete(PendingLabel).where(PendingLabel.row_id.in_(chunk)))
-    return {r[5] for r in rows}
+    return {r.hour for r in rows}
