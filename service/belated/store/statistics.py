@@ -38,6 +38,7 @@ from belated.stats.delays import (
 from belated.stats.ranking import N_BINS
 
 EPS = float(np.finfo(np.float64).eps)  # log loss clips p to [eps, 1 - eps]
+TINY = "1e-150"  # a score whose square would underflow
 
 
 class Kind(StrEnum):
@@ -136,7 +137,9 @@ SCALARS: tuple[Scalar, ...] = (
         Kind.SUM,
         lambda t: t.sum_if(
             (f"{t.actual} = {POS}", "(1 - score) * (1 - score)"),
-            (f"{t.actual} = {NEG}", "score * score"),
+            # PostgreSQL raises an error where a product underflows to 0 (a subnormal score
+            # squared); such a term is below any float sum's resolution anyway
+            (f"{t.actual} = {NEG}", f"(CASE WHEN score < {TINY} THEN 0 ELSE score * score END)"),
         ),
         "sum of squared errors of the score over labelled predictions",
         nonnegative=True,
@@ -233,8 +236,17 @@ def _score_class(t: Terms) -> str:
 
 
 def _score_bin(t: Terms) -> str:
-    # every score lies in [0, 1]: bins [k/100, (k+1)/100), the last one closed at 1
-    return t.least(t.floor_int(f"score * {N_BINS}"), str(N_BINS - 1))
+    # Bins [k/100, (k+1)/100), the last one closed at 1, exactly as "score >= k/100" decides
+    # (every score lies in [0, 1]). floor(score * 100) alone is one bin low where the product
+    # rounds down (0.29 * 100 = 28.999...): compare with the edges k/100, each computed as the
+    # correctly rounded double quotient, as Python's k / 100 is.
+    k = t.floor_int(f"score * {N_BINS}")
+    edge = "CAST({} AS DOUBLE PRECISION) / " + str(N_BINS)
+    step = (
+        f"CASE WHEN score >= {edge.format(f'{k} + 1')} THEN 1"
+        f" WHEN score < {edge.format(k)} THEN -1 ELSE 0 END"
+    )
+    return t.least(f"{k} + {step}", str(N_BINS - 1))
 
 
 def _delay_bin(t: Terms) -> str:
