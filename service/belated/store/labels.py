@@ -10,7 +10,7 @@ from sqlalchemy import bindparam, delete, func, insert, select, text, update
 from sqlalchemy.dialects import postgresql, sqlite
 from sqlalchemy.orm import Session
 
-from belated.clock import now
+from belated.clock import clock
 from belated.ingest.validate import LabelIn
 from belated.store import bulk, dirty
 from belated.store.tables import Label, LabelChange, PendingLabel, Prediction
@@ -65,12 +65,15 @@ def _pending(session: Session, model_id: int, ids: list[str]) -> dict[str, str]:
     return found
 
 
-def ingest(*, session: Session, model_id: int, items: list[LabelIn]) -> dict[str, int]:
-    """Apply labels in arrival order; the four counts add up to the batch size."""
+def ingest(
+    *, session: Session, model_id: int, items: list[LabelIn], now: datetime | None = None
+) -> dict[str, int]:
+    """Apply labels received `now` (the clock by default) in arrival order; the four counts
+    add up to the batch size."""
     ids = list(dict.fromkeys(label.pid for label in items))
     targets = _targets(session, model_id, ids)
     waiting = _pending(session, model_id, [i for i in ids if i not in targets])
-    received = now()
+    received = now or clock.now()
     answer = {"matched": 0, "pending": 0, "corrected": 0, "unchanged": 0}
     updates: dict[int, dict[str, Any]] = {}
     history: list[dict[str, Any]] = []
