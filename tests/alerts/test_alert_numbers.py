@@ -8,9 +8,10 @@ after the first of the two (seqs [2, 2]: one alert of two listed).
 
 from __future__ import annotations
 
+import secrets
 import threading
 import time
-from datetime import timedelta
+from datetime import UTC, datetime, timedelta
 from typing import Any
 
 import numpy as np
@@ -21,9 +22,9 @@ from belated.jobs import JobRunner
 from belated.store import keys
 from belated.store.db import transaction
 from tests.alerts.scenario import day_rows, send
-from tests.alerts.test_alerts_e2e import START
 from tests.conftest import Tenant
 
+START = datetime(2026, 11, 1, tzinfo=UTC)
 # 300 orders a day; a volume rule with low=500 breaches every evaluated day
 THIN = {"kind": "volume", "low": 500}
 
@@ -99,16 +100,12 @@ def test_a_deleted_rule_frees_no_number_and_paging_sees_every_alert_once(
         assert listed[0] == third  # newest first
 
 
-def test_concurrent_transactions_take_distinct_consecutive_numbers(
-    sessions: Any, engine: Engine
-) -> None:
+def test_concurrent_transactions_take_distinct_consecutive_numbers(sessions: Any) -> None:
     """Eight transactions of one project take a number at once and hold it a while before
     committing; each gets its own, and together they are 1..8."""
     with transaction(sessions) as session:
-        project_id = keys.get_or_create_project(
-            session=session, name="t-numbers-" + str(id(engine))
-        )
-        project_id = project_id.id
+        project = keys.get_or_create_project(session=session, name="t-" + secrets.token_hex(5))
+        project_id = project.id
     got: list[int] = []
     errors: list[BaseException] = []
     start = threading.Barrier(8)
