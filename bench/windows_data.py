@@ -203,7 +203,7 @@ def load(url: str, model_id: int, d: Data) -> None:
 
 def setup_tenant(sa_url: str) -> tuple[int, str]:
     """Migrate, then create the project, the model and a read token with the store's functions."""
-    from belated.store import keys, models
+    from belated.store import keys, model_registry
     from belated.store.db import make_engine, make_sessionmaker, transaction
     from belated.store.migrate import upgrade
 
@@ -211,7 +211,7 @@ def setup_tenant(sa_url: str) -> tuple[int, str]:
     engine = make_engine(sa_url)
     with transaction(make_sessionmaker(engine)) as session:
         project = keys.get_or_create_project(session=session, name="furniture-shop")
-        model = models.create(
+        model = model_registry.create(
             session=session,
             project_id=project.id,
             fields={

@@ -43,3 +43,34 @@ class Invalid(Problem):
 def field_error(index: int | None, field: str, reason: str) -> dict[str, Any]:
     """One entry of a validation error list."""
     return {"index": index, "field": field, "reason": reason}
+
+
+def invalid_field(field: str, reason: str) -> Invalid:
+    """A 422 about one field of the request (no item index)."""
+    return Invalid([field_error(None, field, reason)], detail=f"'{field}': {reason}")
+
+
+class DomainError(Exception):
+    """A refusal by the store or a service, independent of HTTP (the API maps it)."""
+
+    def __init__(self, detail: str) -> None:
+        super().__init__(detail)
+        self.detail = detail
+
+
+class NotFound(DomainError):
+    """No `what` called `name` where the caller looked: "no rule 'x' on model 'y'"."""
+
+    def __init__(self, what: str, name: str, *, where: str = "in this project") -> None:
+        super().__init__(f"no {what} {name!r} {where}")
+        self.what = what
+        self.name = name
+
+
+class Conflict(DomainError):
+    """The request clashes with what is stored; `extra` adds fields to the answer."""
+
+    def __init__(self, detail: str, *, title: str = "Conflict", **extra: Any) -> None:
+        super().__init__(detail)
+        self.title = title
+        self.extra = extra

@@ -5,8 +5,8 @@ every threshold k/100, on both stores.
 Before binning compared with the edges, 0.29, 0.57 and 0.58 (among others) fell one bin low
 (0.29 * 100 is 28.999...), so the sweep disagreed with "score >= threshold" there.
 The smallest positive score (a subnormal double) is among them: its square underflows, which
-PostgreSQL reports as an error unless the Brier term guards it. Outcomes are seeded coin flips (invented data); the reference is
-`sklearn.metrics.confusion_matrix`.
+PostgreSQL reports as an error unless the Brier term guards it. Outcomes are seeded coin
+flips (invented data); the reference is `sklearn.metrics.confusion_matrix`.
 """
 
 from __future__ import annotations

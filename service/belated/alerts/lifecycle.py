@@ -20,6 +20,7 @@ import orjson
 from sqlalchemy import func, select
 from sqlalchemy.orm import Session
 
+from belated.alerts import numbers
 from belated.alerts.tables import Alert, Delivery, Rule, RuleWindow, Webhook
 from belated.store.tables import ModelRow
 from belated.timeutil import iso, to_utc
@@ -115,10 +116,9 @@ def advance(
     event = None
     if fresh:
         if alert is None:
-            seq = (session.scalar(select(func.count()).select_from(Alert)) or 0) + 1
             alert = Alert(
                 id="alr_" + secrets.token_hex(8),
-                seq=seq,
+                seq=numbers.next_seq(session=session, project_id=model.project_id),
                 project_id=model.project_id,
                 model_id=model.id,
                 rule_id=rule.id,

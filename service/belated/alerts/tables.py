@@ -52,8 +52,12 @@ class Alert(Base):
     """One occurrence of a rule firing for one segment."""
 
     __tablename__ = "alerts"
-    __table_args__ = (Index("ix_alerts_project_state", "project_id", "state"),)
+    __table_args__ = (
+        Index("ix_alerts_project_state", "project_id", "state"),
+        UniqueConstraint("project_id", "seq", name="uq_alerts_project_seq"),
+    )
     id: Mapped[str] = mapped_column(String(32), primary_key=True)
+    # the alert's number in its project: given by AlertSequence, never reused
     seq: Mapped[int] = mapped_column(Integer)
     project_id: Mapped[int] = mapped_column(ForeignKey("projects.id", ondelete="CASCADE"))
     model_id: Mapped[int] = mapped_column(ForeignKey("models.id", ondelete="CASCADE"))
@@ -63,6 +67,17 @@ class Alert(Base):
     opened_at: Mapped[datetime] = mapped_column(UtcDateTime)
     acknowledged_at: Mapped[datetime | None] = mapped_column(UtcDateTime, nullable=True)
     resolved_at: Mapped[datetime | None] = mapped_column(UtcDateTime, nullable=True)
+
+
+class AlertSequence(Base):
+    """The last alert number given out in a project (numbers never repeat, even after the
+    alerts that carried them are deleted with their rule)."""
+
+    __tablename__ = "alert_sequences"
+    project_id: Mapped[int] = mapped_column(
+        ForeignKey("projects.id", ondelete="CASCADE"), primary_key=True
+    )
+    last_seq: Mapped[int] = mapped_column(Integer)
 
 
 class Webhook(Base):

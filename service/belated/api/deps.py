@@ -1,18 +1,25 @@
-"""Request dependencies: the session (one transaction per request) and the caller's token."""
+"""Request dependencies: the session (one transaction per request), the caller's token, the
+model named in the path, the settings and the request's one clock reading."""
 
 from __future__ import annotations
 
 import json
 from collections.abc import Iterator
+from datetime import datetime
 from typing import Annotated, Any
 
 import orjson
 from fastapi import Depends, Request
 from sqlalchemy.orm import Session
 
+from belated.alerts import rules
+from belated.alerts.tables import Rule
+from belated.clock import clock
+from belated.config import Settings
 from belated.errors import Problem
-from belated.store import keys
+from belated.store import keys, model_registry
 from belated.store.keys import Principal
+from belated.store.tables import ModelRow
 
 
 def get_session(request: Request) -> Iterator[Session]:
@@ -54,13 +61,16 @@ def principal(request: Request, session: SessionDep) -> Principal:
     return found
 
 
+CallerDep = Annotated[Principal, Depends(principal)]
+
+
 def scope(name: str) -> Any:
     """A dependency that requires a scope; checked before any model is looked up."""
 
-    def check(who: Annotated[Principal, Depends(principal)]) -> Principal:
-        if name not in who.scopes:
+    def check(caller: CallerDep) -> Principal:
+        if name not in caller.scopes:
             raise Problem(403, f"this token lacks the '{name}' scope")
-        return who
+        return caller
 
     return Depends(check)
 
@@ -68,6 +78,43 @@ def scope(name: str) -> Any:
 Ingest = Annotated[Principal, scope("ingest")]
 Read = Annotated[Principal, scope("read")]
 Admin = Annotated[Principal, scope("admin")]
+
+
+def path_model(model: str, caller: CallerDep, session: SessionDep) -> ModelRow:
+    """The model named in the path, in the caller's project; a 404 problem when absent.
+
+    Routes declare their scope (Admin, Read, Ingest) before ModelDep: dependencies resolve
+    in that order, so a token without the scope gets a 403 before any model is looked up.
+    """
+    return model_registry.get(session=session, project_id=caller.project_id, name=model)
+
+
+ModelDep = Annotated[ModelRow, Depends(path_model)]
+
+
+def path_rule(rule_id: str, model: ModelDep, session: SessionDep) -> Rule:
+    """The rule named in the path, on the model named in the path; a 404 problem when absent."""
+    return rules.get_rule(session=session, model=model, rule_id=rule_id)
+
+
+RuleDep = Annotated[Rule, Depends(path_rule)]
+
+
+def app_settings(request: Request) -> Settings:
+    """The settings the application was built with."""
+    settings: Settings = request.app.state.settings
+    return settings
+
+
+SettingsDep = Annotated[Settings, Depends(app_settings)]
+
+
+def request_now() -> datetime:
+    """One reading of the service clock, shared by everything the request does."""
+    return clock.now()
+
+
+NowDep = Annotated[datetime, Depends(request_now)]
 
 
 async def json_body(request: Request) -> Any:

@@ -12,7 +12,7 @@ from fastapi.responses import Response
 from sqlalchemy.exc import DBAPIError, OperationalError
 from starlette.exceptions import HTTPException
 
-from belated.errors import Problem
+from belated.errors import Conflict, DomainError, NotFound, Problem
 
 log = logging.getLogger(__name__)
 
@@ -49,6 +49,15 @@ def problem_response(
     return Response(orjson.dumps(body), status_code=status, media_type=MEDIA, headers=headers)
 
 
+def as_problem(exc: DomainError) -> Problem:
+    """The problem details of a domain error: 404 for NotFound, 409 for Conflict."""
+    if isinstance(exc, NotFound):
+        return Problem(404, exc.detail, title="Not found")
+    if isinstance(exc, Conflict):
+        return Problem(409, exc.detail, title=exc.title, **exc.extra)
+    return Problem(400, exc.detail)
+
+
 def _loc(loc: tuple[Any, ...]) -> tuple[int | None, str]:
     parts = [p for p in loc if p not in ("body", "query", "path")]
     index = next((p for p in parts if isinstance(p, int)), None)
@@ -69,6 +78,10 @@ def install(app: FastAPI) -> None:
             errors=exc.errors,
             **exc.extra,
         )
+
+    @app.exception_handler(DomainError)
+    async def _domain(request: Request, exc: DomainError) -> Response:
+        return await _problem(request, as_problem(exc))
 
     @app.exception_handler(RequestValidationError)
     async def _invalid(_: Request, exc: RequestValidationError) -> Response:

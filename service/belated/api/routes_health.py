@@ -6,12 +6,10 @@ from typing import Any
 
 from fastapi import APIRouter, Request
 from fastapi.responses import JSONResponse
-from sqlalchemy import func, select, text
 from sqlalchemy.exc import SQLAlchemyError
 
-from belated.clock import now
-from belated.store.tables import DirtyBucket, ServiceState
-from belated.timeutil import from_db, iso
+from belated.clock import clock
+from belated.store import health as store_health
 
 router = APIRouter(tags=["health"])
 
@@ -32,21 +30,8 @@ def health(request: Request) -> dict[str, Any]:
     }
     try:
         with state.engine.connect() as conn:
-            conn.execute(text("SELECT 1"))
-            n, oldest = conn.execute(select(func.count(), func.min(DirtyBucket.marked_at))).one()
-            last = conn.execute(
-                select(ServiceState.value).where(ServiceState.key == "last_refresh")
-            ).scalar()
-            answer["dirty_buckets"] = int(n)
-            if oldest is not None:
-                oldest_dt = from_db(oldest)
-                assert oldest_dt is not None
-                answer["oldest_dirty_bucket"] = iso(oldest_dt)
-                answer["refresh_lag_seconds"] = round((now() - oldest_dt).total_seconds(), 3)
-            else:
-                answer["refresh_lag_seconds"] = 0.0
-            if last:
-                answer["last_refresh"] = last.get("at")
+            store_health.ping(conn=conn)
+            answer.update(store_health.refresh_state(conn=conn, now=clock.now()))
             backlog = getattr(state, "outbox_backlog", None)
             answer["outbox_backlog"] = backlog(conn) if backlog else 0
     except SQLAlchemyError as exc:

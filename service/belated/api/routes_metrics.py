@@ -5,23 +5,22 @@ from __future__ import annotations
 from typing import Any
 
 import orjson
-from fastapi import APIRouter, Query, Request, Response
+from fastapi import APIRouter, Query, Response
 
-from belated.api.deps import Read, SessionDep
-from belated.clock import now
-from belated.metrics import extras, params
+from belated.api.deps import ModelDep, NowDep, Read, SessionDep, SettingsDep
+from belated.metrics import delays, params, thresholds
 from belated.metrics.windows import Options, build
-from belated.store import models
 
 router = APIRouter(prefix="/v1/models/{model}", tags=["history"])
 
 
 @router.get("/metrics")
 def get_metrics(
-    model: str,
-    who: Read,
+    _caller: Read,
+    model: ModelDep,
     session: SessionDep,
-    request: Request,
+    settings: SettingsDep,
+    now: NowDep,
     granularity: str = "day",
     start: str | None = None,
     end: str | None = None,
@@ -35,12 +34,11 @@ def get_metrics(
     segment: list[str] | None = Query(None),
 ) -> Response:
     """Windows with counts, coverage, settled, measures with intervals, estimates, bounds."""
-    rng = params.parse_range(granularity, start, end, now())
+    rng = params.parse_range(granularity, start, end, now)
     b = params.parse_beta(beta, precision_weight)
     params.check_interval(interval, confidence, resamples)
     filters = params.parse_segments(segment)
-    row = models.get(session=session, project_id=who.project_id, name=model)
-    wanted = params.parse_measures(measures, row.kind)
+    wanted = params.parse_measures(measures, model.kind)
     opts = Options(
         beta=b,
         interval=interval,
@@ -49,12 +47,10 @@ def get_metrics(
         measures=wanted,
         rolling=rolling,
     )
-    windows = build(
-        session, row, rng, opts, filters, now(), request.app.state.settings.max_segment_values
-    )
+    windows = build(session, model, rng, opts, filters, now, settings.max_segment_values)
     # serialised directly: FastAPI's generic encoder costs more than the measures for a year
     body = {
-        "model": row.name,
+        "model": model.name,
         "granularity": granularity,
         "rolling": rolling,
         "beta": b,
@@ -68,10 +64,11 @@ def get_metrics(
 
 @router.get("/thresholds")
 def get_thresholds(
-    model: str,
-    who: Read,
+    _caller: Read,
+    model: ModelDep,
     session: SessionDep,
-    request: Request,
+    settings: SettingsDep,
+    now: NowDep,
     start: str | None = None,
     end: str | None = None,
     beta: float | None = None,
@@ -80,41 +77,40 @@ def get_thresholds(
     recall_target: float | None = Query(None, ge=0, le=1),
 ) -> dict[str, Any]:
     """Measures at every threshold and the recommended thresholds over a time range."""
-    rng = params.parse_range("hour", start, end, now(), default_windows=30 * 24)
+    rng = params.parse_range("hour", start, end, now, default_windows=30 * 24)
     b = params.parse_beta(beta, precision_weight)
-    row = models.get(session=session, project_id=who.project_id, name=model)
-    answer = extras.thresholds(
+    answer = thresholds.over_range(
         session,
-        row,
+        model,
         start=rng.start,
         end=rng.end,
         beta=b,
         precision_target=precision_target,
         recall_target=recall_target,
-        now=now(),
-        max_values=request.app.state.settings.max_segment_values,
+        now=now,
+        max_values=settings.max_segment_values,
     )
-    return {"model": row.name, "beta": b, **answer}
+    return {"model": model.name, "beta": b, **answer}
 
 
 @router.get("/delays")
 def get_delays(
-    model: str,
-    who: Read,
+    _caller: Read,
+    model: ModelDep,
     session: SessionDep,
-    request: Request,
+    settings: SettingsDep,
+    now: NowDep,
     start: str | None = None,
     end: str | None = None,
 ) -> dict[str, Any]:
     """Label delay quantiles (Kaplan-Meier) and coverage by window age."""
-    rng = params.parse_range("hour", start, end, now(), default_windows=90 * 24)
-    row = models.get(session=session, project_id=who.project_id, name=model)
-    answer = extras.delays(
+    rng = params.parse_range("hour", start, end, now, default_windows=90 * 24)
+    answer = delays.over_range(
         session,
-        row,
+        model,
         start=rng.start,
         end=rng.end,
-        now=now(),
-        max_values=request.app.state.settings.max_segment_values,
+        now=now,
+        max_values=settings.max_segment_values,
     )
-    return {"model": row.name, **answer}
+    return {"model": model.name, **answer}

@@ -7,10 +7,10 @@ from typing import Any
 
 from fastapi import APIRouter, Query, Response
 
-from belated.api.deps import Admin, Read, SessionDep
+from belated.api.deps import Admin, ModelDep, NowDep, Read, SessionDep
 from belated.api.schemas import ModelCreate, ModelPage, ModelRead, ModelUpdate
 from belated.errors import Problem
-from belated.store import models
+from belated.store import model_registry
 from belated.store.tables import ModelRow
 from belated.timeutil import to_utc
 
@@ -31,7 +31,7 @@ def read_model(session: Any, model: ModelRow) -> ModelRead:
         segment_keys=model.segment_keys,
         created_at=to_utc(model.created_at),
         updated_at=to_utc(model.updated_at),
-        **models.counts(session=session, model=model),
+        **model_registry.counts(session=session, model=model),
     )
 
 
@@ -58,38 +58,42 @@ def decode_cursor(value: str | None) -> str | None:
 
 
 @router.post("", status_code=201, response_model=ModelRead)
-def create_model(body: ModelCreate, who: Admin, session: SessionDep) -> ModelRead:
+def create_model(body: ModelCreate, caller: Admin, session: SessionDep, now: NowDep) -> ModelRead:
     """Create a model."""
-    model = models.create(
-        session=session, project_id=who.project_id, fields=body.model_dump(exclude_unset=False)
+    model = model_registry.create(
+        session=session,
+        project_id=caller.project_id,
+        fields=body.model_dump(exclude_unset=False),
+        now=now,
     )
     return read_model(session, model)
 
 
 @router.get("", response_model=ModelPage)
 def list_models(
-    who: Read,
+    caller: Read,
     session: SessionDep,
     cursor: str | None = None,
     limit: int = Query(50, ge=1, le=500),
 ) -> ModelPage:
     """List the project's models."""
-    rows, last = models.list_(
-        session=session, project_id=who.project_id, after=decode_cursor(cursor), limit=limit
+    rows, last = model_registry.list_(
+        session=session, project_id=caller.project_id, after=decode_cursor(cursor), limit=limit
     )
     return ModelPage(items=[read_model(session, m) for m in rows], next_cursor=encode_cursor(last))
 
 
 @router.get("/{model}", response_model=ModelRead)
-def get_model(model: str, who: Read, session: SessionDep) -> ModelRead:
+def get_model(_caller: Read, model: ModelDep, session: SessionDep) -> ModelRead:
     """One model with its stored counts."""
-    return read_model(session, models.get(session=session, project_id=who.project_id, name=model))
+    return read_model(session, model)
 
 
 @router.patch("/{model}", response_model=ModelRead)
-def update_model(model: str, body: ModelUpdate, who: Admin, session: SessionDep) -> ModelRead:
+def update_model(
+    body: ModelUpdate, _caller: Admin, model: ModelDep, session: SessionDep, now: NowDep
+) -> ModelRead:
     """Change a model's settings (threshold changes are kept in history)."""
-    row = models.get(session=session, project_id=who.project_id, name=model)
     fields = body.model_dump(exclude_unset=True)
     for key in ("threshold", "label_delay_days", "min_coverage"):
         if key in fields and fields[key] is None:
@@ -98,12 +102,12 @@ def update_model(model: str, body: ModelUpdate, who: Admin, session: SessionDep)
                 f"'{key}' cannot be null",
                 errors=[{"index": None, "field": key, "reason": "cannot be null"}],
             )
-    return read_model(session, models.update(session=session, model=row, fields=fields))
+    updated = model_registry.update(session=session, model=model, fields=fields, now=now)
+    return read_model(session, updated)
 
 
 @router.delete("/{model}", status_code=204)
-def delete_model(model: str, who: Admin, session: SessionDep) -> Response:
+def delete_model(_caller: Admin, model: ModelDep, session: SessionDep) -> Response:
     """Delete a model and all its data."""
-    row = models.get(session=session, project_id=who.project_id, name=model)
-    models.delete(session=session, model=row)
+    model_registry.delete(session=session, model=model)
     return Response(status_code=204)

@@ -9,7 +9,7 @@ from typing import Any, NamedTuple
 from sqlalchemy import bindparam, delete, func, insert, select, text, update
 from sqlalchemy.orm import Session
 
-from belated.clock import now
+from belated.clock import clock
 from belated.ingest.validate import LabelIn
 from belated.store import bulk, dirty
 from belated.store.dialect import is_postgres, upsert
@@ -80,12 +80,15 @@ def _pending(session: Session, model_id: int, ids: list[str]) -> dict[str, str]:
     return found
 
 
-def ingest(*, session: Session, model_id: int, items: list[LabelIn]) -> dict[str, int]:
-    """Apply labels in arrival order; the four counts add up to the batch size."""
+def ingest(
+    *, session: Session, model_id: int, items: list[LabelIn], now: datetime | None = None
+) -> dict[str, int]:
+    """Apply labels received `now` (the clock by default) in arrival order; the four counts
+    add up to the batch size."""
     ids = list(dict.fromkeys(label.pid for label in items))
     targets = _targets(session, model_id, ids)
     pending_now = _pending(session, model_id, [i for i in ids if i not in targets])
-    received = now()
+    received = now or clock.now()
     answer = {"matched": 0, "pending": 0, "corrected": 0, "unchanged": 0}
     updates: dict[int, dict[str, Any]] = {}
     history: list[dict[str, Any]] = []

@@ -8,8 +8,8 @@ from typing import Any
 from sqlalchemy import insert, select, text
 from sqlalchemy.orm import Session
 
-from belated.clock import now
-from belated.errors import Problem
+from belated.clock import clock
+from belated.errors import Conflict
 from belated.ingest.validate import PredictionIn
 from belated.store import bulk, dirty, labels
 from belated.store.dialect import is_postgres
@@ -48,10 +48,9 @@ def existing(*, session: Session, model_id: int, ids: list[str]) -> dict[str, Pr
     return found
 
 
-def _conflict(ids: list[str]) -> Problem:
+def _conflict(ids: list[str]) -> Conflict:
     shown = ", ".join(repr(i) for i in ids[:20]) + (" ..." if len(ids) > 20 else "")
-    return Problem(
-        409,
+    return Conflict(
         f"{len(ids)} id(s) already stored with different content: {shown}. "
         "Predictions are immutable; nothing of this batch was stored.",
         title="Conflicting duplicate",
@@ -60,10 +59,16 @@ def _conflict(ids: list[str]) -> Problem:
 
 
 def ingest(
-    *, session: Session, model_id: int, preds: list[PredictionIn], batch_size: int
+    *,
+    session: Session,
+    model_id: int,
+    preds: list[PredictionIn],
+    batch_size: int,
+    now: datetime | None = None,
 ) -> dict[str, int]:
-    """Insert the new predictions; answer accepted and duplicate counts."""
-    received = now()
+    """Insert the new predictions received `now` (the clock by default); answer accepted and
+    duplicate counts."""
+    received = now or clock.now()
     if is_postgres(session):
         # insert first (ON CONFLICT DO NOTHING) and compare only the ids already stored; a
         # conflict raises, and the request's transaction rolls the whole batch back

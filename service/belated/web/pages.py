@@ -8,10 +8,13 @@ from typing import Any
 
 from sqlalchemy.orm import Session
 
-from belated.alerts import service as alerts
-from belated.metrics import extras, params
+from belated.alerts import records as alert_records
+from belated.alerts import rules as alert_rules
+from belated.metrics import delays as metric_delays
+from belated.metrics import params
+from belated.metrics import thresholds as metric_thresholds
 from belated.metrics.windows import Options, build
-from belated.store import models
+from belated.store import model_registry
 from belated.store.keys import Principal
 from belated.store.tables import ModelRow
 from belated.timeutil import parse_ts
@@ -63,7 +66,9 @@ def _all_models(session: Session, project_id: int) -> list[ModelRow]:
     out: list[ModelRow] = []
     after: str | None = None
     while True:
-        rows, after = models.list_(session=session, project_id=project_id, after=after, limit=PAGE)
+        rows, after = model_registry.list_(
+            session=session, project_id=project_id, after=after, limit=PAGE
+        )
         out += rows
         if after is None:
             return out
@@ -76,7 +81,7 @@ def _alerts(
     out: list[dict[str, Any]] = []
     after: int | None = None
     while True:
-        items, after = alerts.list_alerts(
+        items, after = alert_records.list_alerts(
             session=session,
             project_id=who.project_id,
             state=state,
@@ -119,7 +124,7 @@ def overview(*, session: Session, who: Principal, now: datetime, max_values: int
                 "name": row.name,
                 "kind": row.kind,
                 "open_alerts": open_by_model.get(row.name, 0),
-                "stored": models.counts(session=session, model=row),
+                "stored": model_registry.counts(session=session, model=row),
                 "window": latest,
                 "newest": newest,
                 "headline": [
@@ -157,7 +162,7 @@ def model_view(
     """Everything the model page shows, for the asked range and segment."""
     rng = params.parse_range(view.granularity, view.start or None, view.end or None, now)
     filters = params.parse_segments(list(view.segment))
-    row = models.get(session=session, project_id=who.project_id, name=name)
+    row = model_registry.get(session=session, project_id=who.project_id, name=name)
     windows = _windows(session, row, rng, now, max_values, filters)
     g = view.granularity
     measure_charts = [
@@ -193,7 +198,7 @@ def model_view(
     ]
     page: dict[str, Any] = {
         "model": row,
-        "stored": models.counts(session=session, model=row),
+        "stored": model_registry.counts(session=session, model=row),
         "view": view,
         "range": rng,
         "windows": windows,
@@ -208,7 +213,8 @@ def model_view(
         ),
         "alerts": _alerts(session, who, state="open", model=row.name),
         "rules": [
-            alerts.rule_read(r, row.name) for r in alerts.list_rules(session=session, model=row)
+            alert_rules.rule_read(r, row.name)
+            for r in alert_rules.list_rules(session=session, model=row)
         ],
         "estimates_svg": None,
         "sweep": None,
@@ -239,7 +245,7 @@ def _binary_extras(
         ),
         None,
     )
-    sweep = extras.thresholds(
+    sweep = metric_thresholds.over_range(
         session,
         row,
         start=rng.start,
@@ -252,7 +258,7 @@ def _binary_extras(
     )
     best = sweep.get("best_fbeta")
     best_label = f"best F1 at {best['threshold']:.2f}" if best else "no best F1 yet"
-    delays = extras.delays(
+    delays = metric_delays.over_range(
         session, row, start=rng.start, end=rng.end, now=now, max_values=max_values
     )
     ages = [
@@ -326,7 +332,7 @@ def alerts_view(
     *, session: Session, who: Principal, state: str | None, model: str | None, after: int | None
 ) -> dict[str, Any]:
     """A page of the project's alerts, newest first, each with its rule and breaches."""
-    items, more = alerts.list_alerts(
+    items, more = alert_records.list_alerts(
         session=session,
         project_id=who.project_id,
         state=state or None,
@@ -337,9 +343,9 @@ def alerts_view(
     )
     rules: dict[str, str] = {}
     for name in sorted({a["model"] for a in items}):
-        row = models.get(session=session, project_id=who.project_id, name=name)
-        for r in alerts.list_rules(session=session, model=row):
-            rules[r.id] = describe_rule(alerts.rule_read(r, name))
+        row = model_registry.get(session=session, project_id=who.project_id, name=name)
+        for r in alert_rules.list_rules(session=session, model=row):
+            rules[r.id] = describe_rule(alert_rules.rule_read(r, name))
     for a in items:
         a["rule_text"] = rules.get(a["rule_id"], a["rule_id"])
         a["breaches"] = [

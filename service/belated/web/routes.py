@@ -11,8 +11,9 @@ from fastapi.responses import HTMLResponse, RedirectResponse, Response
 from jinja2 import Environment, PackageLoader
 
 from belated.api.deps import SessionDep, principal
+from belated.api.problems import as_problem
 from belated.clock import now
-from belated.errors import Problem
+from belated.errors import DomainError, Problem
 from belated.store import keys
 from belated.store.keys import Principal
 from belated.timeutil import parse_ts
@@ -78,7 +79,9 @@ def render(
     return HTMLResponse(html, status_code=status, headers={**HEADERS, **(headers or {})})
 
 
-def _error(problem: Problem, signed_in: bool = True) -> HTMLResponse:
+def _error(problem: Problem | DomainError, signed_in: bool = True) -> HTMLResponse:
+    if isinstance(problem, DomainError):
+        problem = as_problem(problem)
     return render("error.html", status=problem.status, problem=problem, signed_in=signed_in)
 
 
@@ -206,7 +209,7 @@ def model_page(
             now=now(),
             max_values=request.app.state.settings.max_segment_values,
         )
-    except Problem as problem:
+    except (Problem, DomainError) as problem:
         return _error(problem)
     return render("model.html", signed_in=True, section="models", **page)
 
@@ -229,6 +232,6 @@ def alerts_page(
         page = pages.alerts_view(
             session=session, who=who, state=state, model=model, after=int(after) if after else None
         )
-    except Problem as problem:
+    except (Problem, DomainError) as problem:
         return _error(problem)
     return render("alerts.html", signed_in=True, section="alerts", **page)

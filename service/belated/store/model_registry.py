@@ -1,15 +1,16 @@
-"""Service functions for models: get, list, create, update, delete, counts."""
+"""The registry of a project's models: look up, list, create, change, delete, count."""
 
 from __future__ import annotations
 
+from datetime import datetime
 from typing import Any
 
 from sqlalchemy import delete as sql_delete
 from sqlalchemy import func, select
 from sqlalchemy.orm import Session
 
-from belated.clock import now
-from belated.errors import Problem
+from belated.clock import clock
+from belated.errors import Conflict, NotFound
 from belated.ingest.validate import ModelSpec
 from belated.store.tables import ModelRow, PendingLabel, Prediction, ThresholdChange
 from belated.timeutil import from_db
@@ -29,11 +30,11 @@ def spec_of(model: ModelRow) -> ModelSpec:
 
 
 def get(*, session: Session, project_id: int, name: str) -> ModelRow:
-    """The model `name` of the project, or a 404 problem."""
+    """The model `name` of the project; NotFound when it has none of that name."""
     query = select(ModelRow).where(ModelRow.project_id == project_id, ModelRow.name == name)
     model = session.scalar(query)
     if model is None:
-        raise Problem(404, f"no model named {name!r} in this project", title="Not found")
+        raise NotFound("model named", name)
     return model
 
 
@@ -50,17 +51,19 @@ def list_(
     return rows, (rows[-1].name if more and rows else None)
 
 
-def create(*, session: Session, project_id: int, fields: dict[str, Any]) -> ModelRow:
-    """Create a model; a taken name is a 409."""
+def create(
+    *, session: Session, project_id: int, fields: dict[str, Any], now: datetime | None = None
+) -> ModelRow:
+    """Create a model (stamped `now`, the clock by default); a taken name is a Conflict."""
     taken = session.scalar(
         select(ModelRow.id).where(
             ModelRow.project_id == project_id, ModelRow.name == fields["name"]
         )
     )
     if taken is not None:
-        raise Problem(409, f"a model named {fields['name']!r} exists already", title="Conflict")
+        raise Conflict(f"a model named {fields['name']!r} exists already")
     values = {**DEFAULTS, **{k: v for k, v in fields.items() if v is not None}}
-    stamp = now()
+    stamp = now or clock.now()
     model = ModelRow(project_id=project_id, created_at=stamp, updated_at=stamp, **values)
     session.add(model)
     session.flush()
@@ -68,15 +71,17 @@ def create(*, session: Session, project_id: int, fields: dict[str, Any]) -> Mode
     return model
 
 
-def update(*, session: Session, model: ModelRow, fields: dict[str, Any]) -> ModelRow:
-    """Change settings; a threshold change is recorded in the history.
+def update(
+    *, session: Session, model: ModelRow, fields: dict[str, Any], now: datetime | None = None
+) -> ModelRow:
+    """Change settings (stamped `now`); a threshold change is recorded in the history.
 
     A setting the rollups depend on (implied negatives, segment keys) marks every hour of
     the model for aggregation from raw rows, so that stored rows never mix old and new.
     """
     from belated.store import refresh
 
-    stamp = now()
+    stamp = now or clock.now()
     reshape = any(
         key in _ROLLUP_SETTINGS and getattr(model, key) != value for key, value in fields.items()
     )

@@ -1,7 +1,7 @@
 """rollups.cut renamed negative_cutoff (the implied-negative cutoff an hour was aggregated with)
 
-Revision ID: 0004_negative_cutoff
-Revises: 0003_label_changes
+Revision ID: 0005_negative_cutoff
+Revises: 0004_alert_sequences
 Create Date: 2026-12-02 13:00:00
 """
 
@@ -9,8 +9,8 @@ from collections.abc import Sequence
 
 from alembic import op
 
-revision: str = "0004_negative_cutoff"
-down_revision: str | None = "0003_label_changes"
+revision: str = "0005_negative_cutoff"
+down_revision: str | None = "0004_alert_sequences"
 branch_labels: str | Sequence[str] | None = None
 depends_on: str | Sequence[str] | None = None
 

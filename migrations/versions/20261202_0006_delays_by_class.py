@@ -1,7 +1,7 @@
 """label-delay histograms per actual class in the rollups
 
-Revision ID: 0005_delays_by_class
-Revises: 0004_negative_cutoff
+Revision ID: 0006_delays_by_class
+Revises: 0005_negative_cutoff
 Create Date: 2026-12-02 13:40:00
 
 The new statistic is declared in belated/store/statistics.py; rows written before this
@@ -14,8 +14,8 @@ from collections.abc import Sequence
 import sqlalchemy as sa
 from alembic import op
 
-revision: str = "0005_delays_by_class"
-down_revision: str | None = "0004_negative_cutoff"
+revision: str = "0006_delays_by_class"
+down_revision: str | None = "0005_negative_cutoff"
 branch_labels: str | Sequence[str] | None = None
 depends_on: str | Sequence[str] | None = None
 

@@ -1,0 +1,129 @@
+"""Alert rules of a model: create, read, list, change, delete."""
+
+from __future__ import annotations
+
+import secrets
+from datetime import datetime
+from typing import Any
+
+from sqlalchemy import select
+from sqlalchemy.orm import Session
+
+from belated.alerts.schemas import DEFAULTS, RuleRead, check_rule
+from belated.alerts.tables import Alert, Rule, RuleWindow
+from belated.clock import clock
+from belated.errors import NotFound, invalid_field
+from belated.store.tables import ModelRow
+from belated.timeutil import iso, to_utc
+
+SETTING_KEYS = (
+    "threshold",
+    "mode",
+    "tolerance",
+    "alpha",
+    "min_support",
+    "baseline",
+    "segment_by",
+    "clear_after",
+    "low",
+    "high",
+    "max_silence_hours",
+)
+
+
+def rule_read(rule: Rule, model_name: str, *, now: datetime | None = None) -> RuleRead:
+    """A rule as the API answers it (muted as of `now`, the clock by default)."""
+    cfg = {**DEFAULTS, **{k: v for k, v in rule.settings.items() if v is not None}}
+    at = now or clock.now()
+    muted = rule.muted_until is not None and to_utc(rule.muted_until) > at
+    return RuleRead(
+        id=rule.id,
+        model=model_name,
+        kind=rule.kind,
+        measure=rule.measure,
+        granularity=rule.granularity,
+        muted_until=rule.muted_until and to_utc(rule.muted_until),
+        muted=muted,
+        created_at=to_utc(rule.created_at),
+        updated_at=to_utc(rule.updated_at),
+        **{k: cfg[k] for k in SETTING_KEYS},
+    )
+
+
+def _settings(fields: dict[str, Any]) -> dict[str, Any]:
+    out = {k: fields[k] for k in SETTING_KEYS if k in fields}
+    if isinstance(out.get("baseline"), dict):
+        out["baseline"] = {
+            k: (iso(v) if isinstance(v, datetime) else v)
+            for k, v in out["baseline"].items()
+            if v is not None
+        }
+    return out
+
+
+def create_rule(
+    *, session: Session, model: ModelRow, fields: dict[str, Any], now: datetime | None = None
+) -> Rule:
+    """Create a rule on a model, stamped `now` (the clock by default)."""
+    stamp = now or clock.now()
+    rule = Rule(
+        id="rul_" + secrets.token_hex(8),
+        model_id=model.id,
+        kind=fields["kind"],
+        measure=fields.get("measure"),
+        granularity=fields.get("granularity") or "day",
+        settings=_settings(fields),
+        muted_until=fields.get("muted_until"),
+        created_at=stamp,
+        updated_at=stamp,
+    )
+    session.add(rule)
+    session.flush()
+    return rule
+
+
+def get_rule(*, session: Session, model: ModelRow, rule_id: str) -> Rule:
+    """A rule of the model; NotFound otherwise."""
+    rule = session.get(Rule, rule_id)
+    if rule is None or rule.model_id != model.id:
+        raise NotFound("rule", rule_id, where=f"on model {model.name!r}")
+    return rule
+
+
+def list_rules(*, session: Session, model: ModelRow) -> list[Rule]:
+    """The model's rules, oldest first."""
+    return list(
+        session.scalars(
+            select(Rule).where(Rule.model_id == model.id).order_by(Rule.created_at, Rule.id)
+        )
+    )
+
+
+def update_rule(
+    *, session: Session, rule: Rule, fields: dict[str, Any], now: datetime | None = None
+) -> Rule:
+    """Change a rule (stamped `now`); the result must still be a rule that can work."""
+    merged = {**rule.settings, **_settings(fields)}
+    measure = fields.get("measure", rule.measure)
+    try:
+        check_rule(rule.kind, {**merged, "measure": measure})
+    except ValueError as exc:
+        raise invalid_field("measure" if "measure" in str(exc) else "rule", str(exc)) from None
+    rule.settings = merged
+    rule.measure = measure
+    if "granularity" in fields and fields["granularity"]:
+        rule.granularity = fields["granularity"]
+    if "muted_until" in fields:
+        rule.muted_until = fields["muted_until"]
+    rule.updated_at = now or clock.now()
+    session.flush()
+    return rule
+
+
+def delete_rule(*, session: Session, rule: Rule) -> None:
+    """Delete a rule with its evaluated windows and alerts."""
+    for table in (RuleWindow, Alert):
+        for row in session.scalars(select(table).where(table.rule_id == rule.id)):
+            session.delete(row)
+    session.delete(rule)
+    session.flush()
