@@ -2,9 +2,9 @@
 
 No I/O: the evaluation job loads windows and stores what this module decides. A decision
 carries the value, its interval, the baseline and the p-value that made it fire, so an alert
-can show its evidence. For fan-out rules the caller adjusts the p-values of one evaluation
-across segments (Benjamini-Hochberg) before the final verdict: `condition` holds every part
-of the verdict except the significance test.
+can show its evidence. `condition` holds every part of the verdict except the significance
+test; `verdicts` gives the final one, adjusting the p-values of one evaluation across the
+segments of a fan-out rule (Benjamini-Hochberg) first.
 """
 
 from __future__ import annotations

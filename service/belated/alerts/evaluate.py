@@ -141,7 +141,8 @@ def evaluate_rule(
     """Evaluate one rule over its segments; record windows; advance its alerts."""
     cfg = settings_of(rule)
     # join raced pending labels and mark crossed implied negatives once, here, for every
-    # segment below (the loads after it read a store that is already current)
+    # segment below: the loads after it read a store that is already current (bucket_accs
+    # still sweeps on its own until metrics/windows.py drops that in its rewrite)
     refresh.sweep_model(session, model)
     evaluated, lookback = _span(model, cfg)
     segs: list[Segment] = [None]
