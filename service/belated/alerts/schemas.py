@@ -81,9 +81,9 @@ class RuleFields(BaseModel):
 
     model_config = ConfigDict(extra="forbid")
     measure: str | None = None
-    granularity: Literal["hour", "day", "week"] | None = None
+    granularity: Granularity | None = None
     threshold: float | None = None
-    mode: Literal["point", "confident"] | None = None
+    mode: Mode | None = None
     tolerance: float | None = Field(None, ge=0, le=1)
     alpha: float | None = Field(None, gt=0, lt=1)
     min_support: int | None = Field(None, ge=0)
@@ -107,7 +107,7 @@ DEFAULTS: dict[str, Any] = {
 class RuleCreate(RuleFields):
     """POST /v1/models/{model}/rules."""
 
-    kind: Literal["floor", "drop", "shift", "stall", "volume"]
+    kind: Kind
 
     @model_validator(mode="after")
     def _works(self) -> RuleCreate:
