@@ -2,9 +2,9 @@
 
 No I/O: the evaluation job loads windows and stores what this module decides. A decision
 carries the value, its interval, the baseline and the p-value that made it fire, so an alert
-can show its evidence. For fan-out rules the caller adjusts the p-values of one evaluation
-across segments (Benjamini-Hochberg) before the final verdict: `condition` holds every part
-of the verdict except the significance test.
+can show its evidence. `condition` holds every part of the verdict except the significance
+test; `verdicts` gives the final one, adjusting the p-values of one evaluation across the
+segments of a fan-out rule (Benjamini-Hochberg) first.
 """
 
 from __future__ import annotations
@@ -14,19 +14,15 @@ from dataclasses import dataclass, field
 from datetime import datetime
 from typing import Any
 
-import numpy as np
-
-from belated.alerts import catalog
-from belated.stats.bootstrap import binary_arrays
-from belated.stats.change import newcombe_diff_interval, two_proportion_test
+from belated.alerts import catalog, pvalues
+from belated.alerts.schemas import Kind, RuleSettings
+from belated.stats.change import benjamini_hochberg, two_proportion_test
 from belated.stats.drift import categorical_psi, psi
 from belated.stats.summary import summarise
 from belated.stats.window import WindowStats
 
-DROP_RESAMPLES = 2000
 
-
-@dataclass
+@dataclass(kw_only=True)
 class WindowInput:
     """One window of one segment as a rule sees it."""
 
@@ -38,14 +34,14 @@ class WindowInput:
     tag_counts: dict[str, int] = field(default_factory=dict)
 
 
-@dataclass
+@dataclass(frozen=True, kw_only=True)
 class Decision:
     """The verdict on one window."""
 
     start: datetime
     end: datetime
     condition: bool
-    p_value: float | None
+    p_value: float | None = None
     value: float | None = None
     low: float | None = None
     high: float | None = None
@@ -73,7 +69,7 @@ def measure_value(
     return out["value"], out["low"], out["high"]
 
 
-def eligible(rule_kind: str, measure: str | None, w: WindowInput, min_support: int) -> bool:
+def eligible(rule_kind: Kind, measure: str | None, w: WindowInput, min_support: int) -> bool:
     """Label-based rules see settled windows with support; the rest every closed window."""
     if not w.closed:
         return False
@@ -91,116 +87,85 @@ def pooled(windows: list[WindowInput]) -> WindowStats:
 
 
 def baseline_for(
-    series: list[WindowInput], i: int, rule: dict[str, Any], fixed: WindowStats | None
+    series: list[WindowInput], i: int, rule: RuleSettings, fixed: WindowStats | None
 ) -> tuple[WindowStats | None, list[WindowInput]]:
     """The trailing baseline windows before series[i] (or the fixed range's stats)."""
     if fixed is not None:
         return fixed, []
-    n = int(rule["baseline"].get("windows") or 7)
-    measure = rule.get("measure") or ""
-    label_based = catalog.is_label_based(measure)
+    n = rule.baseline.windows
+    label_based = catalog.is_label_based(rule.measure or "")
     picked = [w for w in series[:i] if w.closed and (w.settled or not label_based)][-n:]
     return (pooled(picked) if picked else None), picked
 
 
-def _p_drop_proportion(x1: int, n1: int, x2: int, n2: int, tolerance: float) -> float:
-    """One-sided p-value of H0: p1 - p2 >= -tolerance by inverting Newcombe's interval."""
-
-    def upper(alpha: float) -> float:
-        return newcombe_diff_interval(x1, n1, x2, n2, confidence=1 - 2 * alpha)[1]
-
-    if upper(0.5 - 1e-9) >= -tolerance:
-        return 1.0
-    lo, hi = 1e-12, 0.5 - 1e-9  # upper(alpha) falls as alpha grows; find where it crosses
-    if upper(lo) < -tolerance:
-        return lo
-    for _ in range(60):
-        mid = (lo + hi) / 2
-        if upper(mid) < -tolerance:
-            hi = mid
-        else:
-            lo = mid
-    return hi
-
-
-def _p_drop_bootstrap(
-    measure: str, cur: WindowStats, base: WindowStats, beta: float, tolerance: float, seed: int
-) -> float | None:
-    """One-sided bootstrap p-value of H0: current - baseline >= -tolerance."""
-
-    def draws(s: WindowStats, rng: np.random.Generator) -> np.ndarray:
-        counts = np.array([s.tp, s.fp, s.fn, s.tn], dtype=np.float64)
-        n = int(counts.sum())
-        m = rng.multinomial(n, counts / n, size=DROP_RESAMPLES).T.astype(np.float64)
-        return binary_arrays(m[0], m[1], m[2], m[3], beta)[measure]
-
-    if measure not in ("fbeta", "mcc", "balanced_accuracy"):
-        return None
-    if cur.tp + cur.fp + cur.fn + cur.tn == 0 or base.tp + base.fp + base.fn + base.tn == 0:
-        return None
-    rng = np.random.default_rng(seed)
-    diff = draws(cur, rng) - draws(base, rng)
-    diff = diff[~np.isnan(diff)]
-    if diff.size == 0:
-        return None
-    return float((np.count_nonzero(diff >= -tolerance) + 1) / (diff.size + 1))
-
-
-def _drop(rule: dict[str, Any], w: WindowInput, base: WindowStats, beta: float) -> Decision:
-    measure, tol = rule["measure"], float(rule["tolerance"])
-    value, low, high = measure_value(measure, w.stats, beta, 1 - 2 * float(rule["alpha"]))
+def _drop(rule: RuleSettings, w: WindowInput, base: WindowStats, beta: float) -> Decision:
+    measure, tol = str(rule.measure), rule.tolerance
+    value, low, high = measure_value(measure, w.stats, beta, 1 - 2 * rule.alpha)
     base_value, _, _ = measure_value(measure, base, beta, 0.95)
-    info = {"value": base_value}
+    info: dict[str, Any] = {"value": base_value}
     if value is None or base_value is None:
-        return Decision(w.start, w.end, False, None, value, low, high, info)
+        return Decision(
+            start=w.start,
+            end=w.end,
+            condition=False,
+            value=value,
+            low=low,
+            high=high,
+            baseline=info,
+        )
     p: float | None
     parts = catalog.PROPORTIONS.get(measure)
     if measure == "positive_rate":
-        p = _p_drop_proportion(
+        p = pvalues.drop_proportion(
             w.stats.n_pred_pos, w.stats.n_pred, base.n_pred_pos, base.n_pred, tol
         )
     elif parts is not None:
         cur_c, base_c = _confusion(w.stats), _confusion(base)
         x1, n1 = sum(cur_c[k] for k in parts[0]), sum(cur_c[k] for k in parts[1])
         x2, n2 = sum(base_c[k] for k in parts[0]), sum(base_c[k] for k in parts[1])
-        p = _p_drop_proportion(x1, n1, x2, n2, tol)
+        p = pvalues.drop_proportion(x1, n1, x2, n2, tol)
     else:
         seed = int(w.start.timestamp()) & 0x7FFFFFFF
-        p = _p_drop_bootstrap(measure, w.stats, base, beta, tol, seed)
+        p = pvalues.drop_bootstrap(measure, w.stats, base, beta, tol, seed)
     info.update(drop=(base_value - value), tolerance=tol)
-    return Decision(w.start, w.end, value < base_value - tol, p, value, low, high, info)
+    return Decision(
+        start=w.start,
+        end=w.end,
+        condition=value < base_value - tol,
+        p_value=p,
+        value=value,
+        low=low,
+        high=high,
+        baseline=info,
+    )
 
 
 def _shift(
-    rule: dict[str, Any], w: WindowInput, base: WindowStats, base_windows: list[WindowInput]
+    rule: RuleSettings, w: WindowInput, base: WindowStats, base_windows: list[WindowInput]
 ) -> Decision:
-    measure, threshold = rule["measure"], float(rule["threshold"])
+    measure, threshold = str(rule.measure), rule.threshold
+    assert threshold is not None  # check_rule refuses a shift rule without one
     if measure == "positive_rate":
         if w.stats.n_pred == 0 or base.n_pred == 0:
-            return Decision(w.start, w.end, False, None)
+            return Decision(start=w.start, end=w.end, condition=False)
         cur_rate, base_rate = w.stats.n_pred_pos / w.stats.n_pred, base.n_pred_pos / base.n_pred
         test = two_proportion_test(w.stats.n_pred_pos, w.stats.n_pred, base.n_pred_pos, base.n_pred)
         return Decision(
-            w.start,
-            w.end,
-            abs(cur_rate - base_rate) >= threshold,
-            test.p_two_sided,
-            cur_rate,
-            None,
-            None,
-            {"value": base_rate, "change": cur_rate - base_rate},
+            start=w.start,
+            end=w.end,
+            condition=abs(cur_rate - base_rate) >= threshold,
+            p_value=test.p_two_sided,
+            value=cur_rate,
+            baseline={"value": base_rate, "change": cur_rate - base_rate},
         )
     if measure == "score_psi":
         v = psi(base.hist_all, w.stats.hist_all)
         return Decision(
-            w.start,
-            w.end,
-            v.value is not None and v.value >= threshold,
-            None,
-            v.value,
-            None,
-            None,
-            {"predictions": base.n_pred},
+            start=w.start,
+            end=w.end,
+            condition=v.value is not None and v.value >= threshold,
+            value=v.value,
+            baseline={"predictions": base.n_pred},
         )
     base_counts: dict[str, int] = {}
     for b in base_windows:
@@ -208,19 +173,61 @@ def _shift(
             base_counts[k] = base_counts.get(k, 0) + n
     v = categorical_psi(base_counts, w.tag_counts)
     return Decision(
-        w.start,
-        w.end,
-        v.value is not None and v.value >= threshold,
-        None,
-        v.value,
-        None,
-        None,
-        {"counts": base_counts},
+        start=w.start,
+        end=w.end,
+        condition=v.value is not None and v.value >= threshold,
+        value=v.value,
+        baseline={"counts": base_counts},
+    )
+
+
+def _floor(rule: RuleSettings, w: WindowInput, beta: float) -> Decision:
+    confident = rule.mode == "confident"
+    conf = 1 - 2 * rule.alpha if confident else 0.95
+    value, low, high = measure_value(str(rule.measure), w.stats, beta, conf)
+    probe = high if confident else value
+    return Decision(
+        start=w.start,
+        end=w.end,
+        condition=probe is not None and rule.threshold is not None and probe < rule.threshold,
+        value=value,
+        low=low,
+        high=high,
+        baseline={"threshold": rule.threshold},
+    )
+
+
+def _volume(rule: RuleSettings, w: WindowInput) -> Decision:
+    n, low, high = w.stats.n_pred, rule.low, rule.high
+    return Decision(
+        start=w.start,
+        end=w.end,
+        condition=(low is not None and n < low) or (high is not None and n > high),
+        value=float(n),
+        baseline={"low": low, "high": high},
+    )
+
+
+def _stall(
+    rule: RuleSettings, w: WindowInput, now: datetime | None, label_delay_days: float
+) -> Decision | None:
+    if rule.threshold is None or now is None:
+        return None
+    old = (now - w.end).total_seconds() > label_delay_days * 86400
+    if not old or w.stats.n_pred == 0:
+        return None
+    cov = w.stats.n_labelled / w.stats.n_pred
+    return Decision(
+        start=w.start,
+        end=w.end,
+        condition=cov < rule.threshold,
+        value=cov,
+        baseline={"threshold": rule.threshold},
     )
 
 
 def decide(
-    rule: dict[str, Any],
+    rule: RuleSettings,
     series: list[WindowInput],
     first: int,
     *,
@@ -230,60 +237,50 @@ def decide(
     label_delay_days: float = 30.0,
 ) -> list[Decision]:
     """Decisions for the eligible windows series[first:] (baselines look further back)."""
-    kind, measure = rule["kind"], rule.get("measure")
     out: list[Decision] = []
     for i in range(first, len(series)):
         w = series[i]
-        if not eligible(kind, measure, w, int(rule["min_support"])):
+        if not eligible(rule.kind, rule.measure, w, rule.min_support):
             continue
-        if kind == "floor":
-            conf = 1 - 2 * float(rule["alpha"]) if rule["mode"] == "confident" else 0.95
-            value, low, high = measure_value(str(measure), w.stats, beta, conf)
-            probe = high if rule["mode"] == "confident" else value
-            cond = probe is not None and probe < float(rule["threshold"])
-            out.append(
-                Decision(
-                    w.start, w.end, cond, None, value, low, high, {"threshold": rule["threshold"]}
-                )
-            )
-        elif kind == "volume":
-            n = w.stats.n_pred
-            low, high = rule.get("low"), rule.get("high")
-            cond = (low is not None and n < low) or (high is not None and n > high)
-            out.append(
-                Decision(
-                    w.start, w.end, cond, None, float(n), None, None, {"low": low, "high": high}
-                )
-            )
-        elif kind == "stall":
-            if rule.get("threshold") is None or now is None:
-                continue
-            old = (now - w.end).total_seconds() > label_delay_days * 86400
-            if not old or w.stats.n_pred == 0:
-                continue
-            cov = w.stats.n_labelled / w.stats.n_pred
-            out.append(
-                Decision(
-                    w.start,
-                    w.end,
-                    cov < float(rule["threshold"]),
-                    None,
-                    cov,
-                    None,
-                    None,
-                    {"threshold": rule["threshold"]},
-                )
-            )
+        d: Decision | None
+        if rule.kind == "floor":
+            d = _floor(rule, w, beta)
+        elif rule.kind == "volume":
+            d = _volume(rule, w)
+        elif rule.kind == "stall":
+            d = _stall(rule, w, now, label_delay_days)
         else:
             base, base_windows = baseline_for(series, i, rule, fixed_baseline)
             if base is None:
                 continue
             d = (
                 _drop(rule, w, base, beta)
-                if kind == "drop"
+                if rule.kind == "drop"
                 else _shift(rule, w, base, base_windows)
             )
+        if d is not None:
             out.append(d)
+    return out
+
+
+def verdicts(
+    decisions: dict[str, list[Decision]], alpha: float
+) -> dict[tuple[str, datetime], bool]:
+    """Final verdicts by (segment, window start), with Benjamini-Hochberg at `alpha` across
+    the segments of each window when more than one of them has a p-value."""
+    by_window: dict[datetime, list[tuple[str, Decision]]] = {}
+    for seg, ds in decisions.items():
+        for d in ds:
+            by_window.setdefault(d.start, []).append((seg, d))
+    out: dict[tuple[str, datetime], bool] = {}
+    for start, items in by_window.items():
+        with_p = [(s, d.p_value) for s, d in items if d.p_value is not None]
+        adjusted: dict[str, float] = {}
+        if len(with_p) > 1:
+            adj, _ = benjamini_hochberg([p for _, p in with_p], q=alpha)
+            adjusted = {s: a for (s, _), a in zip(with_p, adj, strict=True)}
+        for s, d in items:
+            out[(s, start)] = d.breached(alpha, adjusted.get(s))
     return out
 
 

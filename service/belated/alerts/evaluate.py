@@ -11,60 +11,89 @@ from sqlalchemy import func, select
 from sqlalchemy.orm import Session
 
 from belated.alerts import lifecycle
-from belated.alerts.decide import Decision, WindowInput, decide, finite, pooled
-from belated.alerts.schemas import DEFAULTS
+from belated.alerts.decide import Decision, WindowInput, decide, finite, pooled, verdicts
+from belated.alerts.schemas import RuleCreate, RuleSettings, settings_from
 from belated.alerts.tables import Rule, RuleWindow
 from belated.metrics.load import ensure_fresh, epoch_hour, segment_counts
 from belated.metrics.params import Range
 from belated.metrics.windows import settled_window, to_stats, window_totals
-from belated.stats.change import benjamini_hochberg
+from belated.stats.window import WindowStats
 from belated.store import segments
 from belated.store.tables import Label, ModelRow
-from belated.timeutil import floor_hour, floor_window, window_step
+from belated.store.totals import Totals
+from belated.timeutil import floor_hour, floor_window, from_db, window_step
 
 log = logging.getLogger(__name__)
 MAX_EVALUATED = 120
 MIN_EVALUATED = 30  # a first evaluation looks back far enough to catch what history shows
+Segment = tuple[str, str] | None  # (tag key, value) of a fanned-out rule, None for all traffic
 
 
-def settings_of(rule: Rule) -> dict[str, Any]:
-    """A rule's effective settings (defaults filled in)."""
-    return {
-        **DEFAULTS,
-        **{k: v for k, v in (rule.settings or {}).items() if v is not None},
+def settings_of(rule: Rule) -> RuleSettings:
+    """A stored rule's effective settings: its JSON row validated again by the API schema.
+
+    The one place a rules-table row becomes settings; evaluation reads nothing else of it.
+    """
+    fields = {
+        **(rule.settings or {}),
         "kind": rule.kind,
         "measure": rule.measure,
         "granularity": rule.granularity,
     }
+    return settings_from(RuleCreate.model_validate(fields))
 
 
-def _span(model: ModelRow, rule: dict[str, Any]) -> tuple[int, int]:
+def _span(model: ModelRow, rule: RuleSettings) -> tuple[int, int]:
     """(windows to evaluate, windows of baseline lookback before them)."""
-    step_days = window_step(rule["granularity"]) / timedelta(days=1)
+    step_days = window_step(rule.granularity) / timedelta(days=1)
     by_delay = math.ceil((model.label_delay_days + 2) / step_days) + 1
     evaluated = min(MAX_EVALUATED, max(MIN_EVALUATED, by_delay))
-    base = int(rule["baseline"].get("windows") or 7) if isinstance(rule["baseline"], dict) else 7
-    return evaluated, min(MAX_EVALUATED, base * 3 + 2)
+    return evaluated, min(MAX_EVALUATED, rule.baseline.windows * 3 + 2)
+
+
+def _series_range(rule: RuleSettings, now: datetime, evaluated: int) -> Range:
+    """The windows a rule evaluates: the last `evaluated` ones up to the current one."""
+    step = window_step(rule.granularity)
+    end = floor_window(now, rule.granularity) + step
+    return Range(rule.granularity, end - evaluated * step, end)
+
+
+def _baseline_range(rule: RuleSettings) -> Range | None:
+    """A fixed baseline's windows (None for a trailing baseline)."""
+    b, g = rule.baseline, rule.granularity
+    if b.start is None or b.end is None:
+        return None
+    return Range(g, floor_window(b.start, g), floor_window(b.end, g))
+
+
+def _window_totals(
+    session: Session,
+    model: ModelRow,
+    rng: Range,
+    lookback: int,
+    segment: Segment,
+    now: datetime,
+) -> tuple[list[datetime], list[Totals]]:
+    """The totals of each base window of the range, `lookback` windows before it first."""
+    return window_totals(session, model, rng, lookback, (segment,) if segment else (), now)
 
 
 def _series(
     session: Session,
     model: ModelRow,
-    rule: dict[str, Any],
-    segment: tuple[str, str] | None,
+    rule: RuleSettings,
+    segment: Segment,
     now: datetime,
-    max_values: int,
     evaluated: int,
     lookback: int,
 ) -> list[WindowInput]:
-    g = rule["granularity"]
-    end = floor_window(now, g) + window_step(g)
-    rng = Range(g, end - evaluated * window_step(g), end)
-    filters = (segment,) if segment else ()
-    starts, accs = _fresh_totals(session, model, rng, lookback, filters, now, max_values)
+    g = rule.granularity
     step = window_step(g)
+    rng = _series_range(rule, now, evaluated)
+    end = rng.end
+    starts, accs = _window_totals(session, model, rng, lookback, segment, now)
     tag_counts: dict[int, dict[str, int]] = {}
-    measure = rule.get("measure") or ""
+    measure = rule.measure or ""
     if measure.startswith("tag_psi:"):
         level = "h" if g == "hour" else "d"
         raw = segment_counts(
@@ -84,48 +113,34 @@ def _series(
                 bucket[k] = bucket.get(k, 0) + n
     return [
         WindowInput(
-            s,
-            s + step,
-            s + step <= now,
-            settled_window(a, s + step, model, now),
-            to_stats(a),
-            tag_counts.get(i, {}),
+            start=s,
+            end=s + step,
+            closed=s + step <= now,
+            settled=settled_window(a, s + step, model, now),
+            stats=to_stats(a),
+            tag_counts=tag_counts.get(i, {}),
         )
         for i, (s, a) in enumerate(zip(starts, accs, strict=True))
     ]
 
 
-def _fresh_totals(
-    session: Session,
-    model: ModelRow,
-    rng: Range,
-    lookback: int,
-    filters: tuple[tuple[str, str], ...],
-    now: datetime,
-    max_values: int,
-) -> Any:
-    lo, hi = epoch_hour(rng.start - lookback * rng.step), epoch_hour(rng.end)
-    ensure_fresh(session, model, lo, hi, max_values)
-    return window_totals(session, model, rng, lookback, filters, now)
-
-
 def _fixed_baseline(
     session: Session,
     model: ModelRow,
-    rule: dict[str, Any],
+    rule: RuleSettings,
     now: datetime,
-    max_values: int,
-    segment: tuple[str, str] | None,
-) -> Any:
-    b = rule["baseline"]
-    if not isinstance(b, dict) or not b.get("start"):
+    segment: Segment,
+) -> WindowStats | None:
+    rng = _baseline_range(rule)
+    if rng is None:
         return None
-    from belated.timeutil import parse_ts
-
-    g = rule["granularity"]
-    rng = Range(g, floor_window(parse_ts(b["start"]), g), floor_window(parse_ts(b["end"]), g))
-    _, accs = _fresh_totals(session, model, rng, 0, (segment,) if segment else (), now, max_values)
-    return pooled([WindowInput(rng.start, rng.end, True, True, to_stats(a)) for a in accs])
+    _, accs = _window_totals(session, model, rng, 0, segment, now)
+    return pooled(
+        [
+            WindowInput(start=rng.start, end=rng.end, closed=True, settled=True, stats=to_stats(a))
+            for a in accs
+        ]
+    )
 
 
 def evaluate_rule(
@@ -134,80 +149,52 @@ def evaluate_rule(
     """Evaluate one rule over its segments; record windows; advance its alerts."""
     cfg = settings_of(rule)
     evaluated, lookback = _span(model, cfg)
-    if cfg["segment_by"]:
+    # bring the rule's ranges up to date once, here, for every segment below
+    series = _series_range(cfg, now, evaluated)
+    lo, hi = series.start - lookback * series.step, series.end
+    fixed_range = _baseline_range(cfg)
+    if fixed_range is not None:
+        lo, hi = min(lo, fixed_range.start), max(hi, fixed_range.end)
+    ensure_fresh(session, model, epoch_hour(lo), epoch_hour(hi), max_values)
+    segs: list[Segment] = [None]
+    if cfg.segment_by:
         admitted = segments.admitted(session=session, model_id=model.id)
-        segs: list[tuple[str, str] | None] = [
-            (cfg["segment_by"], v) for v in admitted.get(cfg["segment_by"], [])
-        ]
-    else:
-        segs = [None]
+        segs = [(cfg.segment_by, v) for v in admitted.get(cfg.segment_by, [])]
     decisions: dict[str, list[Decision]] = {}
     for seg in segs:
-        series = _series(session, model, cfg, seg, now, max_values, evaluated, lookback)
-        fixed = _fixed_baseline(session, model, cfg, now, max_values, seg)
+        windows = _series(session, model, cfg, seg, now, evaluated, lookback)
+        fixed = _fixed_baseline(session, model, cfg, now, seg)
         decisions[f"{seg[0]}:{seg[1]}" if seg else ""] = decide(
             cfg,
-            series,
+            windows,
             lookback,
             fixed_baseline=fixed,
             now=now,
             label_delay_days=model.label_delay_days,
         )
-    if cfg["kind"] == "stall" and cfg.get("max_silence_hours"):
-        decisions.setdefault("", []).append(_silence(session, model, cfg, now))
-    verdicts = _verdicts(decisions, float(cfg["alpha"]))
-    changed = _record(session, rule, decisions, verdicts, now)
+    if cfg.kind == "stall" and cfg.max_silence_hours:
+        decisions.setdefault("", []).append(_silence(session, model, cfg.max_silence_hours, now))
+    changed = _record(session, rule, decisions, verdicts(decisions, cfg.alpha), now)
     events = 0
     for segment in decisions:
-        if lifecycle.advance(session, rule, model, segment, now, int(cfg["clear_after"])):
+        if lifecycle.advance(session, rule, model, segment, now, cfg.clear_after):
             events += 1
     return {"windows": changed, "events": events}
 
 
-def _silence(session: Session, model: ModelRow, cfg: dict[str, Any], now: datetime) -> Decision:
+def _silence(session: Session, model: ModelRow, max_hours: float, now: datetime) -> Decision:
     """No label received for max_silence_hours: one verdict per hour."""
-    last = session.scalar(select(func.max(Label.received_at)).where(Label.model_id == model.id))
-    hour = floor_hour(now)
-    silent = last is None or (now - _utc(last)) > timedelta(hours=cfg["max_silence_hours"])
-    age = None if last is None else (now - _utc(last)) / timedelta(hours=1)
-    return Decision(
-        hour,
-        hour + timedelta(hours=1),
-        silent,
-        None,
-        age,
-        None,
-        None,
-        {"max_silence_hours": cfg["max_silence_hours"]},
+    last = from_db(
+        session.scalar(select(func.max(Label.received_at)).where(Label.model_id == model.id))
     )
-
-
-def _utc(value: Any) -> datetime:
-    from belated.timeutil import from_db
-
-    out = from_db(value)
-    assert out is not None
-    return out
-
-
-def _verdicts(
-    decisions: dict[str, list[Decision]], alpha: float
-) -> dict[tuple[str, datetime], bool]:
-    """Final verdicts, with BH across the segments of each window when there are several."""
-    by_window: dict[datetime, list[tuple[str, Decision]]] = {}
-    for seg, ds in decisions.items():
-        for d in ds:
-            by_window.setdefault(d.start, []).append((seg, d))
-    out: dict[tuple[str, datetime], bool] = {}
-    for start, items in by_window.items():
-        with_p = [(s, d) for s, d in items if d.p_value is not None]
-        adjusted: dict[str, float] = {}
-        if len(with_p) > 1:
-            adj, _ = benjamini_hochberg([d.p_value for _, d in with_p], q=alpha)  # type: ignore[misc]
-            adjusted = {s: a for (s, _), a in zip(with_p, adj, strict=True)}
-        for s, d in items:
-            out[(s, start)] = d.breached(alpha, adjusted.get(s))
-    return out
+    hour = floor_hour(now)
+    return Decision(
+        start=hour,
+        end=hour + timedelta(hours=1),
+        condition=last is None or (now - last) > timedelta(hours=max_hours),
+        value=None if last is None else (now - last) / timedelta(hours=1),
+        baseline={"max_silence_hours": max_hours},
+    )
 
 
 def _record(
@@ -220,7 +207,7 @@ def _record(
     """Upsert one row per (rule, segment, window); a window changed by late labels is
     updated in place, never counted twice."""
     existing = {
-        (r.segment, _utc(r.window_start)): r
+        (r.segment, from_db(r.window_start)): r
         for r in session.scalars(select(RuleWindow).where(RuleWindow.rule_id == rule.id))
     }
     changed = 0

@@ -1,9 +1,17 @@
 """The alert lifecycle and its events.
 
-    (no alert) --breach--> open --acknowledge--> acknowledged
-                             |                        |
-                             +--clear_after clean-----+--> resolved
-                                evaluated windows
+                 breach                        acknowledge
+   (no alert) ----------> open ------------------------------> acknowledged
+       ^      alert.opened  |                                       |
+       |                    | clear_after clean windows             | clear_after clean windows
+       |                    | alert.resolved                        | alert.resolved
+       |                    v                                       |
+       +--------------- resolved <----------------------------------+
+         the next breach
+         opens a new alert
+
+   open, acknowledged: a later breach joins the alert (no event)
+   muted rule: the same moves, but no event is written to the outbox
 
 One alert per (rule, segment) at a time: later breaches join the open or acknowledged
 alert; after it resolves, the next breach opens a new one. Opening and resolving are events,

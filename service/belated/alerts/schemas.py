@@ -2,12 +2,58 @@
 
 from __future__ import annotations
 
+from dataclasses import dataclass, fields
 from datetime import datetime
 from typing import Any, Literal
 
 from pydantic import BaseModel, ConfigDict, Field, model_validator
 
 from belated.alerts import catalog
+from belated.timeutil import to_utc
+
+Kind = Literal["floor", "drop", "shift", "stall", "volume"]
+Granularity = Literal["hour", "day", "week"]
+Mode = Literal["point", "confident"]
+BASELINE_WINDOWS = 7  # trailing windows of a baseline that names neither windows nor a range
+
+
+@dataclass(frozen=True, kw_only=True)
+class BaselineSettings:
+    """The trailing `windows` windows, or the fixed range [start, end) when start is set.
+
+    `windows` keeps its default under a fixed range: the evaluation still sizes its
+    lookback by it.
+    """
+
+    windows: int = BASELINE_WINDOWS
+    start: datetime | None = None
+    end: datetime | None = None
+
+    @property
+    def fixed(self) -> bool:
+        """Whether the baseline is a fixed range rather than trailing windows."""
+        return self.start is not None and self.end is not None
+
+
+@dataclass(frozen=True, kw_only=True)
+class RuleSettings:
+    """A rule's effective settings with every default filled in: what decide and evaluate
+    read. The defaults declared here are the only ones (DEFAULTS below derives from them)."""
+
+    kind: Kind
+    measure: str | None = None
+    granularity: Granularity = "day"
+    threshold: float | None = None
+    mode: Mode = "point"
+    tolerance: float = 0.0
+    alpha: float = 0.05
+    min_support: int = 30
+    baseline: BaselineSettings = BaselineSettings()
+    segment_by: str | None = None
+    clear_after: int = 1
+    low: float | None = None
+    high: float | None = None
+    max_silence_hours: float | None = None
 
 
 class Baseline(BaseModel):
@@ -26,7 +72,7 @@ class Baseline(BaseModel):
         if fixed and (self.start is None or self.end is None or self.start >= self.end):
             raise ValueError("a fixed baseline needs start before end")
         if not fixed and self.windows is None:
-            self.windows = 7
+            self.windows = BASELINE_WINDOWS
         return self
 
 
@@ -35,9 +81,9 @@ class RuleFields(BaseModel):
 
     model_config = ConfigDict(extra="forbid")
     measure: str | None = None
-    granularity: Literal["hour", "day", "week"] | None = None
+    granularity: Granularity | None = None
     threshold: float | None = None
-    mode: Literal["point", "confident"] | None = None
+    mode: Mode | None = None
     tolerance: float | None = Field(None, ge=0, le=1)
     alpha: float | None = Field(None, gt=0, lt=1)
     min_support: int | None = Field(None, ge=0)
@@ -50,31 +96,40 @@ class RuleFields(BaseModel):
     muted_until: datetime | None = None
 
 
+# the settings' defaults as the API shows them (a trailing baseline as {"windows": N})
 DEFAULTS: dict[str, Any] = {
-    "granularity": "day",
-    "mode": "point",
-    "tolerance": 0.0,
-    "alpha": 0.05,
-    "min_support": 30,
-    "baseline": {"windows": 7},
-    "segment_by": None,
-    "clear_after": 1,
-    "threshold": None,
-    "low": None,
-    "high": None,
-    "max_silence_hours": None,
+    f.name: ({"windows": BASELINE_WINDOWS} if f.name == "baseline" else f.default)
+    for f in fields(RuleSettings)
+    if f.name not in ("kind", "measure")
 }
 
 
 class RuleCreate(RuleFields):
     """POST /v1/models/{model}/rules."""
 
-    kind: Literal["floor", "drop", "shift", "stall", "volume"]
+    kind: Kind
 
     @model_validator(mode="after")
     def _works(self) -> RuleCreate:
         check_rule(self.kind, self.model_dump(exclude_unset=True))
         return self
+
+
+def settings_from(rule: RuleCreate) -> RuleSettings:
+    """The effective settings of a validated rule: what it gives, defaults for the rest."""
+    given: dict[str, Any] = {
+        f.name: getattr(rule, f.name)
+        for f in fields(RuleSettings)
+        if f.name != "baseline" and getattr(rule, f.name) is not None
+    }
+    b = rule.baseline
+    if b is not None:
+        given["baseline"] = BaselineSettings(
+            windows=BASELINE_WINDOWS if b.windows is None else b.windows,
+            start=None if b.start is None else to_utc(b.start),
+            end=None if b.end is None else to_utc(b.end),
+        )
+    return RuleSettings(**given)
 
 
 def check_rule(kind: str, fields: dict[str, Any]) -> None:
