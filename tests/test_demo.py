@@ -71,3 +71,4 @@ def test_demo_flags_the_day_60_change_in_the_north(tmp_path: Path) -> None:
     finally:
         proc.terminate()
         proc.wait(30)
+        out.close()
