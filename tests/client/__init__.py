@@ -19,14 +19,11 @@ import typer
 from click.testing import Result
 from typer.testing import CliRunner
 
-from belated.cli_data import register
+from belated.cli import register
 
 # The `belated` app with the data commands registered (register() is idempotent, so this
-# works before and after cli.py registers them itself).
-LAUNCH = (
-    "from belated.cli import app; from belated.cli_data import register; "
-    "register(app); app(prog_name='belated')"
-)
+# works before and after the cli package registers them itself).
+LAUNCH = "from belated.cli import app, register; register(app); app(prog_name='belated')"
 CHANNELS = ("web", "app", "phone")
 REGIONS = ("north", "south", "east", "west")
 

@@ -13,7 +13,7 @@ import pandas as pd
 import pytest
 from sqlalchemy import Engine
 
-from belated.cli_data import register
+from belated.cli import register
 from belated.client import Client
 from tests.builders import count, create_model, prediction_row, rows
 from tests.client import belated, invoke, prediction_csv, shop_orders

@@ -315,12 +315,14 @@ def test_every_operation_hides_another_projects_objects(
 
 def _cache_figures(sessions: Any, project_ids: list[int]) -> None:
     """What one run of the jobs' cache step leaves for /metrics, for these projects."""
-    from belated import prom
+    from belated.metrics import figures
 
     with transaction(sessions) as session:
         for pid in project_ids:
             models = session.scalars(select(ModelRow).where(ModelRow.project_id == pid)).all()
-            value = {"models": [prom._model_figures(session, m, 100) for m in models]}
+            value = {
+                "models": [figures.latest(session=session, model=m, max_values=100) for m in models]
+            }
             state = session.get(ServiceState, f"prom:{pid}")
             if state is None:
                 session.add(ServiceState(key=f"prom:{pid}", value=value, updated_at=now()))

@@ -40,7 +40,9 @@ def fed(tenant: Tenant, engine: Any, settings: Any) -> Any:
             prefix="o",
         )
         send(c, "returns-v2", preds, labels)
-    JobRunner(engine=engine, settings=settings).tick()
+    runner = JobRunner(engine=engine, settings=settings)
+    runner.tick()
+    runner.leader.release()  # the run took the leader lock on PostgreSQL: give it back
     yield tenant
     clock.set(None)
 

@@ -46,6 +46,14 @@ def active_alert(session: Session, rule_id: str, segment: str) -> Alert | None:
     )
 
 
+def open_counts(session: Session) -> dict[int, int]:
+    """Open or acknowledged alerts by model id (a model without any is absent)."""
+    rows = session.execute(
+        select(Alert.model_id, func.count()).where(Alert.state.in_(ACTIVE)).group_by(Alert.model_id)
+    )
+    return {int(model_id): int(n) for model_id, n in rows}
+
+
 def alert_dict(session: Session, alert: Alert, model_name: str | None = None) -> dict[str, Any]:
     """An alert as the API and events show it, with its breaches."""
     if model_name is None:

@@ -1,38 +1,28 @@
-"""The `belated` command: serve, worker, migrate, keys, and the tools built on the API."""
+"""The service commands: migrate, serve, worker, rebuild and demo (they work on the store
+directly, not through the API)."""
 
 from __future__ import annotations
-
-import sys
 
 import typer
 
 from belated.config import get_settings
 
-app = typer.Typer(
-    help="belated: monitoring for classifiers whose labels arrive late.",
-    no_args_is_help=True,
-    add_completion=False,
-)
-keys_app = typer.Typer(help="API tokens.", no_args_is_help=True)
-app.add_typer(keys_app, name="keys")
 
-
-def _url(database_url: str | None) -> str:
+def store_url(database_url: str | None) -> str:
+    """The store's address: the option when given, else the settings."""
     return database_url or get_settings().database_url
 
 
-@app.command()
 def migrate(
     database_url: str | None = typer.Option(None, help="Overrides BELATED_DATABASE_URL."),
 ) -> None:
     """Apply the database migrations."""
     from belated.store.migrate import upgrade
 
-    upgrade(_url(database_url))
+    upgrade(store_url(database_url))
     typer.echo("migrations applied")
 
 
-@app.command()
 def serve(
     host: str | None = typer.Option(None, help="Overrides BELATED_HOST."),
     port: int | None = typer.Option(None, help="Overrides BELATED_PORT."),
@@ -59,7 +49,6 @@ def serve(
     uvicorn.run(asgi, host=settings.host, port=settings.port, log_config=None, access_log=False)
 
 
-@app.command()
 def worker() -> None:
     """Run the scheduled jobs without the API (one elected leader runs them on PostgreSQL)."""
     import signal
@@ -81,7 +70,6 @@ def worker() -> None:
     runner.stop()
 
 
-@app.command()
 def rebuild(
     model: str | None = typer.Option(None, help="Only this model (by name)."),
     project: str | None = typer.Option(None, help="The model's project."),
@@ -113,55 +101,12 @@ def rebuild(
     typer.echo(f"rebuilt {total} hour buckets")
 
 
-@app.command()
 def demo(
     days: int = typer.Option(90, min=14, max=365, help="Days of orders to generate."),
     seed: int = typer.Option(1, help="Seed of the generator."),
     port: int = typer.Option(8000, help="Port to serve on (0: any free port)."),
 ) -> None:
     """Run the furniture-shop demo on a fresh SQLite file and keep serving it."""
-    from belated import demo as demo_module
+    from belated.demo import run
 
-    demo_module.run(days=days, seed=seed, port=port, echo=typer.echo)
-
-
-@keys_app.command("create")
-def keys_create(
-    project: str = typer.Option(..., help="Project name (created if needed)."),
-    scopes: str = typer.Option("ingest,read", help="Comma list of ingest, read, admin."),
-    name: str | None = typer.Option(None, help="A label for the token."),
-    database_url: str | None = typer.Option(None, help="Overrides BELATED_DATABASE_URL."),
-) -> None:
-    """Create a token; it is printed alone on the last line, and never again."""
-    from belated.store import keys
-    from belated.store.db import make_engine, make_sessionmaker, transaction
-    from belated.store.migrate import upgrade
-
-    try:
-        scope_list = keys.parse_scopes(scopes)
-    except ValueError as exc:
-        typer.echo(str(exc), err=True)
-        raise typer.Exit(2) from None
-    url = _url(database_url)
-    upgrade(url)
-    engine = make_engine(url)
-    with transaction(make_sessionmaker(engine)) as session:
-        proj = keys.get_or_create_project(session=session, name=project)
-        row, secret = keys.create(session=session, project_id=proj.id, scopes=scope_list, name=name)
-    engine.dispose()
-    typer.echo(f"project: {project}\nkey id: {row.id}\nscopes: {row.scopes}")
-    typer.echo(secret)
-
-
-def _register_data_commands() -> None:
-    from belated.cli_data import register
-
-    register(app)
-
-
-_register_data_commands()
-
-
-def main() -> None:
-    """Entry point for `python -m belated`."""
-    app(sys.argv[1:])
+    run(days=days, seed=seed, port=port, echo=typer.echo)

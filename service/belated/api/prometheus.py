@@ -1,0 +1,138 @@
+"""The Prometheus text exposition of /metrics, written by prometheus_client.
+
+Anyone sees the service's own counters and health; a read token adds the figures the jobs
+kept for its project (`belated.metrics.figures`). Label values are model names only, so
+they stay bounded by the project's models. Every scrape collects on a private registry.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Iterator
+from typing import Any
+
+from prometheus_client import CollectorRegistry
+from prometheus_client.exposition import generate_latest
+from prometheus_client.metrics_core import CounterMetricFamily, GaugeMetricFamily, Metric
+
+# the classic text format, the one generate_latest writes
+CONTENT_TYPE = "text/plain; version=0.0.4; charset=utf-8"
+RATIOS = (
+    "precision",
+    "recall",
+    "fbeta",
+    "accuracy",
+    "specificity",
+    "npv",
+    "balanced_accuracy",
+    "positive_rate",
+    "prevalence",
+    "roc_auc",
+    "average_precision",
+)
+OTHERS = {
+    "mcc": "belated_model_mcc",
+    "brier": "belated_model_brier_score",
+    "log_loss": "belated_model_log_loss",
+    "ece": "belated_model_calibration_error_ratio",
+}
+HEALTH = (
+    (
+        "refresh_lag_seconds",
+        "belated_refresh_lag_seconds",
+        "Age of the oldest dirty bucket mark (0 when all rollups are fresh).",
+    ),
+    ("dirty_buckets", "belated_dirty_buckets", "Hour buckets waiting for a refresh."),
+    (
+        "outbox_backlog",
+        "belated_webhook_deliveries_pending",
+        "Webhook deliveries not yet delivered.",
+    ),
+)
+
+
+def _gauge(name: str, help_text: str, value: float) -> GaugeMetricFamily:
+    return GaugeMetricFamily(name, help_text, value=value)
+
+
+class ScrapeCollector:
+    """The figures of one scrape: the service's, then the cached models' when given."""
+
+    def __init__(
+        self, *, counters: dict[str, int], health: dict[str, Any], cached: dict[str, Any] | None
+    ) -> None:
+        self.counters = counters
+        self.health = health
+        self.cached = cached
+
+    def collect(self) -> Iterator[Metric]:
+        """Every metric family of the scrape (prometheus_client's Collector protocol)."""
+        yield from self._service()
+        if self.cached is not None:
+            yield from self._models(self.cached)
+
+    def _service(self) -> Iterator[Metric]:
+        counters, health = self.counters, self.health
+        yield CounterMetricFamily(
+            "belated_ingested_predictions_total",
+            "Predictions accepted by this process.",
+            value=counters.get("predictions", 0),
+        )
+        yield CounterMetricFamily(
+            "belated_ingested_labels_total",
+            "Labels received by this process.",
+            value=counters.get("labels", 0),
+        )
+        up = 1 if health.get("store") == "up" else 0
+        yield _gauge("belated_store_up", "1 when the store answers.", up)
+        leader = 1 if health.get("jobs", {}).get("leader") else 0
+        yield _gauge("belated_jobs_leader", "1 when this process runs the scheduled jobs.", leader)
+        for key, name, help_text in HEALTH:
+            if health.get(key) is not None:
+                yield _gauge(name, help_text, float(health[key]))
+
+    def _models(self, cached: dict[str, Any]) -> Iterator[Metric]:
+        families: dict[str, GaugeMetricFamily] = {}
+
+        def add(name: str, help_text: str, model: str, value: float) -> None:
+            if name not in families:
+                families[name] = GaugeMetricFamily(name, help_text, labels=["model"])
+            families[name].add_metric([model], value)
+
+        for m in cached.get("models", []):
+            model = m["name"]
+            for measure, value in m.get("measures", {}).items():
+                name = (
+                    f"belated_model_{measure}_ratio" if measure in RATIOS else OTHERS.get(measure)
+                )
+                if value is not None and name is not None:
+                    add(name, f"{measure} of the latest settled daily window.", model, value)
+            if m.get("coverage") is not None:
+                add(
+                    "belated_model_label_coverage_ratio",
+                    "Label coverage of the latest settled daily window.",
+                    model,
+                    m["coverage"],
+                )
+            if m.get("window_start") is not None:
+                add(
+                    "belated_model_window_start_timestamp_seconds",
+                    "Start of the latest settled daily window.",
+                    model,
+                    m["window_start"],
+                )
+            add(
+                "belated_model_open_alerts",
+                "Open or acknowledged alerts.",
+                model,
+                m.get("open_alerts", 0),
+            )
+        yield from families.values()
+
+
+def render(
+    *, counters: dict[str, int], health: dict[str, Any], cached: dict[str, Any] | None
+) -> bytes:
+    """The exposition text of one scrape; `cached` None leaves the model figures out."""
+    registry = CollectorRegistry(auto_describe=False)
+    registry.register(ScrapeCollector(counters=counters, health=health, cached=cached))
+    return generate_latest(registry)
