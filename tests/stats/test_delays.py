@@ -164,3 +164,18 @@ def test_not_reached_quantiles_are_none() -> None:
 def test_delays_past_400_days_have_no_finite_quantile() -> None:
     hist = delay_histogram(np.array([5.0, 10_000.0, 20_000.0]))
     assert km_quantiles(hist, [], probs=(0.3, 0.5)) == {"p30": 5.9, "p50": None}
+
+
+def test_the_earlier_upper_edge_convention_is_kept_on_request() -> None:
+    # The upper edge of the bin that holds the interpolated quantile, with censored
+    # predictions at risk for their whole bin (the product-limit of Kaplan and Meier 1958 on
+    # times moved to their bins' upper edges, censoring after events it ties with).
+    hist = delay_histogram(np.array([1.5, 2.5, 3.5]))
+    assert km_quantiles(hist, [], upper_edge=True) == {"p50": 3.0, "p90": 4.0, "p99": 4.0}
+    delays, censored, _ = _observed(4)
+    old = km_quantiles(delay_histogram(delays), censored, upper_edge=True)
+    new = km_quantiles(delay_histogram(delays), censored)
+    for name in ("p50", "p90"):
+        value, edge = new[name], old[name]
+        assert value is not None and edge is not None
+        assert edge - _bin_width(edge - 1e-9) <= value <= edge

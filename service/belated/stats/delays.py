@@ -111,24 +111,38 @@ def km_quantiles(
     delay_hist: np.ndarray,
     censored_ages_hours: np.ndarray | Sequence[float],
     probs: Sequence[float] = (0.5, 0.9, 0.99),
+    *,
+    upper_edge: bool = False,
 ) -> dict[str, float | None]:
     """Delay quantiles in hours by Kaplan-Meier, e.g. {"p50": 6.0, "p90": 54.0, "p99": None}.
 
     Each quantile is interpolated within the first bin where the estimated labelled share
     1 - S reaches it; None when it is not reached by 400 days or there is no label at all.
+    `upper_edge=True` gives the earlier convention (censored predictions at risk for the
+    whole of their bin, the quantile at the bin's upper edge), up to one bin late.
     """
     events = np.asarray(delay_hist, dtype=np.int64)
     if events.shape != (N_DELAY_BINS,):
         raise ValueError(f"delay_hist must have {N_DELAY_BINS} bins")
     ages = np.asarray(censored_ages_hours, dtype=np.float64)
     censored = np.bincount(delay_bins(ages.ravel()), minlength=N_DELAY_BINS)
-    labelled_share = 1.0 - km_survival(events, censored, censored_halfway=True)
+    labelled_share = 1.0 - km_survival(events, censored, censored_halfway=not upper_edge)
     out: dict[str, float | None] = {}
     for p in probs:
         if not 0.0 < p < 1.0:
             raise ValueError(f"quantile probabilities must lie in (0, 1), got {p}")
-        out[_quantile_name(p)] = interpolated_quantile(labelled_share, p)
+        if upper_edge:
+            out[_quantile_name(p)] = _upper_edge_quantile(labelled_share, p)
+        else:
+            out[_quantile_name(p)] = interpolated_quantile(labelled_share, p)
     return out
+
+
+def _upper_edge_quantile(arrived: np.ndarray, p: float) -> float | None:
+    """The earlier convention: the upper edge of the first bin whose share reaches p."""
+    reached = np.flatnonzero(arrived >= p - 1e-12)
+    edge = DELAY_EDGES_HOURS[int(reached[0]) + 1] if reached.size else math.inf
+    return edge if math.isfinite(edge) else None
 
 
 def interpolated_quantile(arrived: np.ndarray, p: float) -> float | None:
