@@ -1,4 +1,5 @@
-"""Projected measures of unsettled windows (belated/stats/projection.py, strata.py).
+"""Projected measures of unsettled windows (belated/stats/projection.py, completion.py,
+strata.py).
 
 The simulations share one furniture-shop set-up: an order is flagged as a likely return
 (positive) when its calibrated score p >= 0.5, with p ~ Beta(0.3, 1.7) (mean 0.15, so
@@ -21,15 +22,9 @@ import pytest
 from scipy.optimize import minimize_scalar
 
 from belated.stats.arrival import CurveFit, fit_arrival
+from belated.stats.completion import completion_counts, fit_theta, ipw_counts
 from belated.stats.delays import delay_bins
-from belated.stats.projection import (
-    completion_counts,
-    confusion_of,
-    fit_theta,
-    ipw_counts,
-    measure_values,
-    project,
-)
+from belated.stats.projection import confusion_of, measure_values, project
 from belated.stats.ranking import score_bins
 from belated.stats.strata import Strata, band_strata, class_strata, score_bands
 
