@@ -147,6 +147,10 @@ def test_a_history_of_hourly_cohorts_with_implied_negatives() -> None:
             assert abs(float(curve.at(age)) - truth) <= 4 * se + 2e-3, (age, median)
     assert float(neg.at(719.99)) < 0.7 and float(neg.at(720.0)) == pytest.approx(1.0)
     assert age_reaching(neg, 0.9) == pytest.approx(720.0)
+    points = neg.points()  # the delays endpoint's [{"age_hours", "arrived"}, ...]
+    assert points[0] == {"age_hours": 0.0, "arrived": 0.0} and points[-1]["arrived"] == 1.0
+    assert all(a["arrived"] <= b["arrived"] for a, b in zip(points, points[1:], strict=False))
+    assert {"age_hours": 720.0, "arrived": 1.0} in points
     at, var = cohort_arrival(pos, np.array([0.5, 73.0]))
     assert at[0] == 0.0 and at[1] == pytest.approx(float(pos.at(72.5)))
     assert var.shape == (2,)

@@ -26,7 +26,7 @@ from belated.stats.completion import completion_counts, fit_theta, ipw_counts
 from belated.stats.delays import delay_bins
 from belated.stats.projection import confusion_of, measure_values, project
 from belated.stats.ranking import score_bins
-from belated.stats.strata import Strata, band_strata, class_strata, score_bands
+from belated.stats.strata import Strata, band_strata, class_strata, merge_bands, score_bands
 
 from .test_arrival import cohort_histories
 
@@ -425,3 +425,13 @@ def test_band_strata_split_the_band_holding_the_threshold() -> None:
     assert strata.predictions[0].tolist() == [20, 20, 15, 5, 20, 20]
     index, distinct = strata.curve_index()
     assert distinct == 2 and index[:, 0].tolist() == [0] * 6
+
+
+def test_bands_short_of_labels_are_merged_with_their_neighbours() -> None:
+    bands = score_bands(5)
+    labels = np.array([[5000, 300], [900, 250], [150, 260], [60, 400], [30, 500]])
+    # the third band lacks negatives: it takes in the fourth, and the short last band
+    # joins the one before it
+    assert merge_bands(bands, labels, 200) == [(0, 20), (20, 40), (40, 100)]
+    assert merge_bands(bands, labels, 10) == bands
+    assert merge_bands(bands, labels, 10**6) == [(0, 100)]

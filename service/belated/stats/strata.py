@@ -122,6 +122,31 @@ def score_bands(n_bands: int = 10) -> list[tuple[int, int]]:
     return [(int(a), int(b)) for a, b in zip(edges[:-1], edges[1:], strict=True)]
 
 
+def merge_bands(
+    bands: Sequence[tuple[int, int]], labels: np.ndarray, min_labels: int
+) -> list[tuple[int, int]]:
+    """Adjacent bands merged until each has at least `min_labels` labels of every class.
+
+    `labels` (bands, classes): the history's labels per band and actual class. Bands are
+    merged upwards (a short band joins the next one; a short last band joins the one before),
+    so every band can have a curve of each class.
+    """
+    counts = np.asarray(labels, dtype=np.int64)
+    if counts.shape[0] != len(bands):
+        raise ValueError("one row of label counts per band")
+    merged: list[list[int]] = []  # [first bin, last bin + 1, then the counts per class]
+    for (lo, hi), row in zip(bands, counts, strict=True):
+        if merged and (np.asarray(merged[-1][2:]) < min_labels).any():
+            merged[-1][1] = hi
+            merged[-1][2:] = (np.asarray(merged[-1][2:]) + row).tolist()
+        else:
+            merged.append([lo, hi, *row.tolist()])
+    if len(merged) > 1 and (np.asarray(merged[-1][2:]) < min_labels).any():
+        last = merged.pop()
+        merged[-1][1] = last[1]
+    return [(m[0], m[1]) for m in merged]
+
+
 def band_strata(
     *,
     hist_all: np.ndarray,
