@@ -379,6 +379,8 @@ def test_a_window_projection_with_its_coverage_and_settling_time() -> None:
     got = project(strata, min_coverage=0.9, resamples=400)
     assert got["arrival"]["negative"] == pytest.approx(0.5, abs=1e-3)
     assert got["arrival"]["positive"] == pytest.approx(1.0)
+    # 85 eventual negatives, half in, and 25 positives, all in
+    assert got["arrived_share"] == pytest.approx((85 * 0.5 + 25) / 110, abs=1e-3)
     # all positives are in, so the unlabelled are negatives: TP 5, FP 5, FN 20, TN 80
     m = got["measures"]
     assert m["precision"]["value"] == pytest.approx(0.5, abs=1e-3)

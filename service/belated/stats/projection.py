@@ -99,8 +99,10 @@ def project(
     `eventual_coverage` is the share of predictions that will ever be labelled (1 with
     implied negatives; otherwise the labelled share of settled history). Answers
     {"measures": {name: {"value", "low", "high"[, "reason"]}}, "expected_final_coverage",
-    "arrival": {"negative": share, "positive": share}, "settles_in_hours"}: the arrival
-    shares are each class's expected share of labels arrived; `settles_in_hours` is how many
+    "arrival": {"negative": share, "positive": share}, "arrived_share", "settles_in_hours"}:
+    the arrival shares are each class's expected share of labels arrived, `arrived_share`
+    the share of all the window's expected labels arrived (the early rules' 30%), and
+    `settles_in_hours` is how many
     hours from now until every class's share reaches `min_coverage` (0 when it has, None
     when never or not asked).
     """
@@ -112,6 +114,7 @@ def project(
         "measures": {},
         "expected_final_coverage": None,
         "arrival": dict.fromkeys(CLASS_NAMES),
+        "arrived_share": None,
         "settles_in_hours": None,
     }
     missing = strata.missing_curve()
@@ -127,6 +130,8 @@ def project(
     arrival = _class_arrival(f, members)
     out["arrival"] = {name: _float(a) for name, a in zip(CLASS_NAMES, arrival, strict=True)}
     out["expected_final_coverage"] = _final_coverage(strata, f)
+    expected = float(members.sum())
+    out["arrived_share"] = float((members * f).sum()) / expected if expected > 0 else None
     if min_coverage is not None:
         out["settles_in_hours"] = settles_in_hours(strata, members, min_coverage)
     low_class = [(name, a) for name, a in zip(CLASS_NAMES, arrival, strict=True) if a < min_arrival]
