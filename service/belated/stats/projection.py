@@ -102,9 +102,8 @@ def project(
     "arrival": {"negative": share, "positive": share}, "arrived_share", "settles_in_hours"}:
     the arrival shares are each class's expected share of labels arrived, `arrived_share`
     the share of all the window's expected labels arrived (the early rules' 30%), and
-    `settles_in_hours` is how many
-    hours from now until every class's share reaches `min_coverage` (0 when it has, None
-    when never or not asked).
+    `settles_in_hours` how many hours from now until every class's share reaches
+    `min_coverage` (0 when it has, None when never or not asked).
     """
     if not 0.0 < eventual_coverage <= 1.0:
         raise ValueError("eventual_coverage must lie in (0, 1]")
