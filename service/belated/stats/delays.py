@@ -14,11 +14,16 @@ with negative delays (a label stamped before its prediction, clock skew) taken a
 Quantiles come from the Kaplan-Meier product-limit estimator (Kaplan and Meier 1958):
 predictions still unlabelled are censored at their current age, so that recent windows,
 whose slow labels have not come yet, do not pull the quantiles down. On binned data the
-estimator places every label of a bin at the bin's upper edge, and a prediction censored
-inside a bin counts as still at risk for that bin's labels (the usual convention that
-censoring happens just after the events it ties with). A quantile is the upper edge of the
-first bin where the estimated labelled share reaches it; None when it is not reached within
-400 days.
+estimator takes a bin's labels and censorings as spread evenly over the bin: a prediction
+censored inside a bin is at risk for half of that bin's labels, the life-table (actuarial)
+convention (Cutler and Ederer 1958); counting it at risk for all of them, as an earlier
+version did, leans the quantiles late where censoring is heavy.
+
+A quantile is interpolated within its bin: in the first bin b where the estimated labelled
+share F = 1 - S reaches p, the labels are taken as spread evenly over the bin, so the
+quantile is lo_b + (p - F(lo_b)) / (F(hi_b) - F(lo_b)) * (hi_b - lo_b), with F(lo_b) the share
+at the bin's lower edge. (Reporting the upper edge instead, as an earlier version did, is up
+to one bin late.) A quantile in the last, open-ended bin, or not reached, is None.
 """
 
 from __future__ import annotations
@@ -81,16 +86,22 @@ def delay_histogram(hours: np.ndarray) -> np.ndarray:
     return np.bincount(delay_bins(hours), minlength=N_DELAY_BINS).astype(np.int64)
 
 
-def km_survival(event_hist: np.ndarray, censored_hist: np.ndarray) -> np.ndarray:
+def km_survival(
+    event_hist: np.ndarray, censored_hist: np.ndarray, *, censored_halfway: bool = False
+) -> np.ndarray:
     """Kaplan-Meier share still unlabelled after each delay bin (1.0 where nobody is at risk).
 
     `event_hist[b]` labels arrived in bin b; `censored_hist[b]` predictions are unlabelled
-    with an age in bin b. Entry b of the result is S at the upper edge of bin b.
+    with an age in bin b. Entry b of the result is S at the upper edge of bin b. With
+    `censored_halfway`, a prediction censored inside bin b is at risk for half of that bin's
+    labels (the life-table convention); otherwise for all of them.
     """
     events = np.asarray(event_hist, dtype=np.float64)
     censored = np.asarray(censored_hist, dtype=np.float64)
     # At risk for bin b: everyone whose label or censoring falls in bin b or later.
     at_risk = np.cumsum((events + censored)[::-1])[::-1]
+    if censored_halfway:
+        at_risk = at_risk - 0.5 * censored
     with np.errstate(divide="ignore", invalid="ignore"):
         hazard = np.where(at_risk > 0, events / at_risk, 0.0)
     return np.cumprod(1.0 - hazard)
@@ -100,27 +111,58 @@ def km_quantiles(
     delay_hist: np.ndarray,
     censored_ages_hours: np.ndarray | Sequence[float],
     probs: Sequence[float] = (0.5, 0.9, 0.99),
+    *,
+    upper_edge: bool = False,
 ) -> dict[str, float | None]:
     """Delay quantiles in hours by Kaplan-Meier, e.g. {"p50": 6.0, "p90": 54.0, "p99": None}.
 
-    Each quantile is the upper edge of the first bin where the estimated labelled share
-    1 - S reaches it, None when it is not reached by 400 days or there is no label at all.
+    Each quantile is interpolated within the first bin where the estimated labelled share
+    1 - S reaches it; None when it is not reached by 400 days or there is no label at all.
+    `upper_edge=True` gives the earlier convention (censored predictions at risk for the
+    whole of their bin, the quantile at the bin's upper edge), up to one bin late.
     """
     events = np.asarray(delay_hist, dtype=np.int64)
     if events.shape != (N_DELAY_BINS,):
         raise ValueError(f"delay_hist must have {N_DELAY_BINS} bins")
     ages = np.asarray(censored_ages_hours, dtype=np.float64)
     censored = np.bincount(delay_bins(ages.ravel()), minlength=N_DELAY_BINS)
-    labelled_share = 1.0 - km_survival(events, censored)
+    labelled_share = 1.0 - km_survival(events, censored, censored_halfway=not upper_edge)
     out: dict[str, float | None] = {}
     for p in probs:
         if not 0.0 < p < 1.0:
             raise ValueError(f"quantile probabilities must lie in (0, 1), got {p}")
-        # A hair of tolerance so that a share of exactly p, reached by rounding, counts.
-        reached = np.flatnonzero(labelled_share >= p - 1e-12)
-        edge = DELAY_EDGES_HOURS[int(reached[0]) + 1] if reached.size else math.inf
-        out[_quantile_name(p)] = edge if math.isfinite(edge) else None
+        if upper_edge:
+            out[_quantile_name(p)] = _upper_edge_quantile(labelled_share, p)
+        else:
+            out[_quantile_name(p)] = interpolated_quantile(labelled_share, p)
     return out
+
+
+def _upper_edge_quantile(arrived: np.ndarray, p: float) -> float | None:
+    """The earlier convention: the upper edge of the first bin whose share reaches p."""
+    reached = np.flatnonzero(arrived >= p - 1e-12)
+    edge = DELAY_EDGES_HOURS[int(reached[0]) + 1] if reached.size else math.inf
+    return edge if math.isfinite(edge) else None
+
+
+def interpolated_quantile(arrived: np.ndarray, p: float) -> float | None:
+    """The age in hours where a binned share `arrived` (at each bin's upper edge) reaches p.
+
+    Linear within the bin that reaches p (labels spread evenly over it); None when p is not
+    reached, or only in the last, open-ended bin.
+    """
+    # A hair of tolerance so that a share of exactly p, reached by rounding, counts.
+    reached = np.flatnonzero(arrived >= p - 1e-12)
+    if not reached.size:
+        return None
+    b = int(reached[0])
+    lo, hi = DELAY_EDGES_HOURS[b], DELAY_EDGES_HOURS[b + 1]
+    if not math.isfinite(hi):
+        return None
+    before = float(arrived[b - 1]) if b > 0 else 0.0
+    step = float(arrived[b]) - before
+    share = 1.0 if step <= 0.0 else min(max((p - before) / step, 0.0), 1.0)
+    return lo + share * (hi - lo)
 
 
 def _quantile_name(p: float) -> str:

@@ -14,6 +14,14 @@ posterior is re-weighted by Bayes' rule,
 and the new guess is the mean of p'; the fixed point is the maximum-likelihood prior of the
 unlabelled window. Here it runs on the 100-bin histogram of all scores with each bin's mean
 score (sum / count) standing for the scores in it.
+
+Implied measures under a prior shift (`implied_measures`): the posteriors are first moved to
+the window's EM prior by the same Bayes re-weighting, with the reference prevalence as the
+training prior, and the expected confusion matrix is summed from the adjusted posteriors:
+over the bins predicted positive (at or above the threshold's bin) expected TP = sum of
+count x p', FP = sum of count x (1 - p'), and FN, TN likewise over the other bins. Each bin's
+mean score is adjusted in place of its scores; p' is smooth in p, so over a bin 0.01 wide the
+difference is of the second order.
 """
 
 from __future__ import annotations
@@ -25,6 +33,7 @@ import numpy as np
 from belated.stats.fbeta import fbeta_from_counts
 from belated.stats.measures import FBETA_UNDEFINED, NO_PREDICTIONS
 from belated.stats.memo import Memo, digest
+from belated.stats.ranking import N_BINS
 from belated.stats.values import Value, ratio
 
 
@@ -87,6 +96,88 @@ def em_prior(
             return updated
         prior = updated
     return prior
+
+
+def first_positive_bin(threshold: float) -> int:
+    """The first score bin predicted positive: bins whose lower edge k/100 is at or above
+    `threshold` (exact for thresholds on the bin edges, as the threshold sweep uses)."""
+    if math.isnan(threshold):
+        raise ValueError("threshold must be a number")
+    return int(min(N_BINS, max(0, math.ceil(threshold * N_BINS - 1e-9))))
+
+
+def em_adjusted_posteriors(
+    hist_all: np.ndarray,
+    ssum_all: np.ndarray,
+    train_prior: float,
+    *,
+    tol: float = 1e-9,
+    max_iter: int = 1000,
+) -> tuple[np.ndarray, float] | None:
+    """Each bin's mean score moved to the window's EM prior, and that prior.
+
+    None when there are no predictions or the training prior is not inside (0, 1). Empty
+    bins get 0 (they carry no weight).
+    """
+    prior = em_prior(hist_all, ssum_all, train_prior, tol=tol, max_iter=max_iter)
+    if prior is None:
+        return None
+    counts = np.asarray(hist_all, dtype=np.float64)
+    filled = counts > 0
+    p = np.where(
+        filled,
+        np.clip(np.asarray(ssum_all, dtype=np.float64) / np.where(filled, counts, 1.0), 0, 1),
+        0.0,
+    )
+    up = prior / train_prior * p
+    down = (1.0 - prior) / (1.0 - train_prior) * (1.0 - p)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        adjusted = np.where(up + down > 0, up / (up + down), p)
+    return np.where(filled, adjusted, 0.0), prior
+
+
+def em_expected_confusion(
+    hist_all: np.ndarray, ssum_all: np.ndarray, threshold: float, train_prior: float
+) -> tuple[float, float, float, float] | None:
+    """(expected TP, FP, FN, TN) from the posteriors adjusted to the window's EM prior.
+
+    The histogram form of `expected_confusion`: bins at or above `first_positive_bin`
+    are predicted positive. None as for `em_adjusted_posteriors`.
+    """
+    found = em_adjusted_posteriors(hist_all, ssum_all, train_prior)
+    if found is None:
+        return None
+    adjusted, _ = found
+    counts = np.asarray(hist_all, dtype=np.float64)
+    cut = first_positive_bin(threshold)
+    exp_tp = float(np.dot(counts[cut:], adjusted[cut:]))
+    exp_fn = float(np.dot(counts[:cut], adjusted[:cut]))
+    return exp_tp, float(counts[cut:].sum()) - exp_tp, exp_fn, float(counts[:cut].sum()) - exp_fn
+
+
+def implied_measures(
+    hist_all: np.ndarray,
+    ssum_all: np.ndarray,
+    threshold: float,
+    train_prior: float,
+    *,
+    beta: float = 1.0,
+) -> dict[str, Value]:
+    """Implied precision, recall, F-beta and prevalence after the EM prior adjustment.
+
+    Undefined (with the reason) when there are no predictions or no valid training prior.
+    """
+    counts = em_expected_confusion(hist_all, ssum_all, threshold, train_prior)
+    if counts is None:
+        reason = (
+            NO_PREDICTIONS
+            if float(np.asarray(hist_all, dtype=np.float64).sum()) == 0
+            else "no reference prevalence inside (0, 1)"
+        )
+        return dict.fromkeys(
+            ("precision", "recall", "fbeta", "prevalence"), Value.undefined(reason)
+        )
+    return expected_measures(*counts, beta=beta)
 
 
 def em_prior_many(
