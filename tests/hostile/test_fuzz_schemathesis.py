@@ -34,8 +34,8 @@ from belated.clock import now
 from belated.config import Settings
 from belated.store.db import make_sessionmaker, transaction
 from belated.store.tables import ModelRow
-from tests.builders import label, predictions
 from tests.conftest import make_tenant
+from tests.support import label, predictions
 
 EXAMPLES = 8  # per operation and generation mode
 BUDGET_SECONDS = 50.0  # the whole run per store stays under a minute

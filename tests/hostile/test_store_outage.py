@@ -20,9 +20,9 @@ import pytest
 
 from belated.store.db import make_engine, make_sessionmaker
 from belated.store.migrate import upgrade
-from tests.builders import label, predictions
 from tests.conftest import Tenant, make_tenant
 from tests.hostile.pgcluster import PrivateCluster, ServiceProcess, random_name
+from tests.support import label, predictions
 
 # The pool checks a connection before use (pool_pre_ping) and a refused connection fails at
 # once, so recovery takes one request; the jobs' leader lock is retried every 2 seconds.

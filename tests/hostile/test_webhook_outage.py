@@ -28,9 +28,9 @@ from belated.config import Settings
 from belated.store.db import make_engine, make_sessionmaker, transaction
 from belated.store.tables import ModelRow
 from belated.timeutil import parse_ts
-from tests.builders import rows
 from tests.conftest import free_port, make_tenant
 from tests.hostile.pgcluster import ServiceProcess, fresh_store, random_name
+from tests.support import rows
 
 
 class Sink:

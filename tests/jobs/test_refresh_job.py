@@ -14,8 +14,8 @@ from sqlalchemy import Engine
 
 from belated.config import Settings
 from belated.jobs import JobRunner, refresh_step
-from tests.builders import count, create_model, label, outcome_of, predictions, rows
 from tests.conftest import Tenant
+from tests.support import count, create_model, label, outcome_of, predictions, rows
 
 WAIT_SECONDS = 30
 

@@ -22,7 +22,6 @@ from sqlalchemy import Engine, text
 from belated.store import keys
 from belated.store.db import make_engine, make_sessionmaker, transaction
 from belated.store.migrate import upgrade
-from tests.builders import base_time, label, outcome_of, predictions
 from tests.conftest import (
     REPO,
     STORES,
@@ -31,6 +30,7 @@ from tests.conftest import (
     free_port,
     pg_url,
 )
+from tests.support import base_time, label, outcome_of, predictions
 
 pytestmark = [
     pytest.mark.pg,

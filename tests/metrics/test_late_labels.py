@@ -20,9 +20,9 @@ from belated.clock import clock
 from belated.ingest.validate import LabelIn, PredictionIn
 from belated.store import dirty, labels, predictions, refresh, rollups
 from belated.store.db import transaction
-from tests.builders import count, create_model, rows
 from tests.conftest import Tenant
-from tests.metrics.datasets import (
+from tests.support import count, create_model, rows, send, stamp
+from tests.support.datasets import (
     NOW,
     START,
     STEPS,
@@ -33,8 +33,6 @@ from tests.metrics.datasets import (
     epoch,
     in_range,
     metrics,
-    send,
-    stamp,
     window_starts,
 )
 

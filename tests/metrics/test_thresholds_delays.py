@@ -25,17 +25,15 @@ from sqlalchemy import Engine
 from statsmodels.duration.survfunc import SurvfuncRight
 
 from belated.clock import clock
-from tests.builders import create_model
 from tests.conftest import Tenant
-from tests.metrics.datasets import (
+from tests.support import create_model, send, stamp
+from tests.support.datasets import (
     NOW,
     START,
     breast_cancer,
     epoch,
     in_range,
     ingest,
-    send,
-    stamp,
 )
 
 EDGES = np.array([*range(0, 49), *range(54, 169, 6), *range(192, 9601, 24), math.inf], float)
