@@ -62,8 +62,9 @@ def day_rows(
 
 
 def returns_model(client: Any, name: str = "returns-v2", **extra: Any) -> None:
-    """The returns model the alert tests watch: outcomes due within 2 days, 90% coverage."""
-    post_model(client, name, label_delay_days=2, min_coverage=0.9, **extra)
+    """The returns model the alert tests watch: outcomes due within 2 days, 90% coverage,
+    unless `extra` says otherwise."""
+    post_model(client, name, **{"label_delay_days": 2, "min_coverage": 0.9, **extra})
 
 
 def feed(
