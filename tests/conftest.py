@@ -23,7 +23,6 @@ from belated.store.db import make_engine, make_sessionmaker, transaction
 from belated.store.migrate import upgrade
 from tests.support.live import LiveServer
 from tests.support.stores import (
-    PG_ADMIN,
     STORES,
     create_pg_database,
     drop_pg_database,
@@ -31,7 +30,6 @@ from tests.support.stores import (
 )
 
 __all__ = [  # what test modules import from here
-    "PG_ADMIN",
     "REPO",
     "STORES",
     "LiveServer",
