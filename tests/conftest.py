@@ -6,47 +6,47 @@ tests isolate from each other by working in projects of their own.
 
 from __future__ import annotations
 
-import os
 import secrets
 import socket
-import threading
-import time
 from collections.abc import Iterator
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
 import httpx
-import psycopg
 import pytest
 from sqlalchemy import Engine
 
+from belated.clock import clock
 from belated.config import Settings
 from belated.store.db import make_engine, make_sessionmaker, transaction
 from belated.store.migrate import upgrade
+from tests.support.live import LiveServer
+from tests.support.stores import (
+    STORES,
+    create_pg_database,
+    drop_pg_database,
+    pg_url,
+)
 
-PG_ADMIN = os.environ.get("BELATED_TEST_PG_ADMIN", "postgresql://postgres@127.0.0.1:5432/test")
-STORES = [s.strip() for s in os.environ.get("BELATED_TEST_STORES", "sqlite,postgresql").split(",")]
+__all__ = [  # what test modules import from here
+    "REPO",
+    "STORES",
+    "LiveServer",
+    "Tenant",
+    "create_pg_database",
+    "drop_pg_database",
+    "free_port",
+    "make_tenant",
+    "pg_url",
+]
 
 
-def pg_url(dbname: str) -> str:
-    """The SQLAlchemy URL of a database on the test server."""
-    base = PG_ADMIN.rsplit("/", 1)[0].replace("postgresql://", "postgresql+psycopg://", 1)
-    return f"{base}/{dbname}"
-
-
-def create_pg_database(prefix: str = "belated_t") -> str:
-    """Create a uniquely named database and return its name."""
-    name = f"{prefix}_{os.getpid()}_{secrets.token_hex(4)}"
-    with psycopg.connect(PG_ADMIN, autocommit=True) as conn:
-        conn.execute(f'CREATE DATABASE "{name}"')
-    return name
-
-
-def drop_pg_database(name: str) -> None:
-    """Drop a test database, disconnecting whoever is left."""
-    with psycopg.connect(PG_ADMIN, autocommit=True) as conn:
-        conn.execute(f'DROP DATABASE IF EXISTS "{name}" WITH (FORCE)')
+@pytest.fixture(autouse=True)
+def _release_the_clock() -> Iterator[None]:
+    """Every test ends with the service clock on real time again, whatever it froze."""
+    yield
+    clock.set(None)
 
 
 @pytest.fixture(scope="session", params=STORES)
@@ -147,38 +147,11 @@ def tenant(sessions: Any, client: httpx.Client) -> Tenant:
 
 
 def free_port() -> int:
-    """An unused loopback port."""
+    """An unused loopback port, for a service started as a separate process (which must be
+    told its port); servers in this process bind port 0 instead (see tests/support/live.py)."""
     with socket.socket() as s:
         s.bind(("127.0.0.1", 0))
         return int(s.getsockname()[1])
-
-
-class LiveServer:
-    """uvicorn serving the app on a loopback port in a background thread."""
-
-    def __init__(self, asgi: Any) -> None:
-        import uvicorn
-
-        self.port = free_port()
-        self.url = f"http://127.0.0.1:{self.port}"
-        config = uvicorn.Config(
-            asgi, host="127.0.0.1", port=self.port, log_level="warning", lifespan="on"
-        )
-        self.server = uvicorn.Server(config)
-        self.thread = threading.Thread(target=self.server.run, daemon=True)
-
-    def __enter__(self) -> LiveServer:
-        self.thread.start()
-        deadline = time.monotonic() + 20
-        while not self.server.started:
-            if time.monotonic() > deadline:
-                raise RuntimeError("uvicorn did not start")
-            time.sleep(0.02)
-        return self
-
-    def __exit__(self, *exc: object) -> None:
-        self.server.should_exit = True
-        self.thread.join(timeout=20)
 
 
 @pytest.fixture()

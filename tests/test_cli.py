@@ -19,8 +19,8 @@ from belated.store import keys
 from belated.store.db import make_engine, make_sessionmaker, transaction
 from belated.store.keys import hash_token
 from belated.store.migrate import upgrade
-from tests.builders import model_body, predictions
 from tests.conftest import REPO, free_port
+from tests.support import model_body, predictions
 
 BELATED = REPO / ".venv" / "bin" / "belated"
 

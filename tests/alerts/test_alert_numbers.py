@@ -21,8 +21,9 @@ from belated.alerts import numbers
 from belated.jobs import JobRunner
 from belated.store import keys
 from belated.store.db import transaction
-from tests.alerts.scenario import day_rows, send
 from tests.conftest import Tenant
+from tests.support import send_both
+from tests.support.alert_days import day_rows
 
 START = datetime(2026, 11, 1, tzinfo=UTC)
 # 300 orders a day; a volume rule with low=500 breaches every evaluated day
@@ -80,7 +81,7 @@ def test_a_deleted_rule_frees_no_number_and_paging_sees_every_alert_once(
         preds, labels = day_rows(
             rng, START + timedelta(days=d), positives=100, negatives=200, recall=0.8, prefix="o"
         )
-        send(c, "returns-v2", preds, labels)
+        send_both(c, "returns-v2", preds, labels)
     try:
         first = _open(tenant, runner)
         second = _open(tenant, runner)

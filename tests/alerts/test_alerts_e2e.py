@@ -2,8 +2,7 @@
 
 from __future__ import annotations
 
-import time
-from datetime import UTC, datetime, timedelta
+from datetime import timedelta
 from typing import Any
 
 import numpy as np
@@ -11,56 +10,9 @@ from sqlalchemy import text
 
 from belated.jobs import JobRunner
 from tests.alerts.receiver import Receiver
-from tests.alerts.scenario import day_rows, send
 from tests.conftest import Tenant
-
-START = datetime(2026, 11, 1, tzinfo=UTC)
-DROP_RULE = {
-    "kind": "drop",
-    "measure": "recall",
-    "tolerance": 0.02,
-    "alpha": 0.05,
-    "min_support": 50,
-    "baseline": {"windows": 7},
-    "clear_after": 2,
-}
-
-
-def _model(tenant: Tenant, name: str = "returns-v2", **extra: Any) -> None:
-    body = {"name": name, "label_delay_days": 2, "min_coverage": 0.9, **extra}
-    assert tenant.client.post("/v1/models", json=body).status_code == 201
-
-
-def _feed(
-    tenant: Tenant,
-    rng: np.random.Generator,
-    first: int,
-    last: int,
-    recall: float,
-    model: str = "returns-v2",
-    **kw: Any,
-) -> None:
-    for d in range(first, last):
-        preds, labels = day_rows(
-            rng,
-            START + timedelta(days=d),
-            positives=300,
-            negatives=900,
-            recall=recall,
-            prefix="o",
-            **kw,
-        )
-        send(tenant.client, model, preds, labels)
-
-
-def _wait(cond: Any, timeout: float = 60.0) -> Any:
-    deadline = time.monotonic() + timeout
-    while time.monotonic() < deadline:
-        value = cond()
-        if value:
-            return value
-        time.sleep(0.1)
-    raise AssertionError("condition not met in time")
+from tests.support.alert_days import DROP_RULE, START, feed, returns_model
+from tests.support.polling import wait_until
 
 
 def test_drop_opens_delivers_acknowledges_and_resolves(
@@ -68,13 +20,13 @@ def test_drop_opens_delivers_acknowledges_and_resolves(
 ) -> None:
     c = tenant.client
     rng = np.random.default_rng(7)
-    _model(tenant)
+    returns_model(tenant.client)
     rule = c.post("/v1/models/returns-v2/rules", json=DROP_RULE).json()
     with Receiver() as rx:
         hook = c.post("/v1/webhooks", json={"url": rx.url}).json()
         rx.secret = hook["secret"]
-        _feed(tenant, rng, 0, 10, recall=0.85)
-        _feed(tenant, rng, 10, 13, recall=0.60)
+        feed(tenant.client, rng, 0, 10, recall=0.85)
+        feed(tenant.client, rng, 10, 13, recall=0.60)
         frozen.set(START + timedelta(days=13, hours=12))
         runner.start()  # the real scheduler runs refresh, evaluation and delivery
         assert rx.wait_for(1, timeout=60)
@@ -91,7 +43,7 @@ def test_drop_opens_delivers_acknowledges_and_resolves(
         assert acked["state"] == "acknowledged" and acked["acknowledged_at"]
         # recall recovers; after clear_after clean settled windows the alert resolves
         frozen.set(START + timedelta(days=22, hours=12))
-        _feed(tenant, rng, 13, 22, recall=0.85)
+        feed(tenant.client, rng, 13, 22, recall=0.85)
         assert rx.wait_for(2, timeout=60)
         events = rx.unique()
         assert [e["type"] for e in events] == ["alert.opened", "alert.resolved"]
@@ -106,17 +58,17 @@ def test_muted_rule_records_breaches_and_delivers_nothing(
 ) -> None:
     c = tenant.client
     rng = np.random.default_rng(8)
-    _model(tenant)
+    returns_model(tenant.client)
     until = (START + timedelta(days=60)).isoformat()
     rule = c.post("/v1/models/returns-v2/rules", json={**DROP_RULE, "muted_until": until}).json()
     assert rule["muted"] is True
     with Receiver() as rx:
         rx.secret = c.post("/v1/webhooks", json={"url": rx.url}).json()["secret"]
-        _feed(tenant, rng, 0, 9, recall=0.85)
-        _feed(tenant, rng, 9, 12, recall=0.55)
+        feed(tenant.client, rng, 0, 9, recall=0.85)
+        feed(tenant.client, rng, 9, 12, recall=0.55)
         frozen.set(START + timedelta(days=12, hours=12))
         runner.start()
-        _wait(lambda: c.get("/v1/alerts").json()["items"])
+        wait_until(lambda: c.get("/v1/alerts").json()["items"], 60, what="an alert")
         runner.stop()
         assert rx.calls == 0
     with engine.connect() as conn:
@@ -139,15 +91,15 @@ def test_young_window_with_low_coverage_never_fires_a_label_based_rule(
 ) -> None:
     c = tenant.client
     rng = np.random.default_rng(9)
-    _model(tenant, label_delay_days=30)
+    returns_model(tenant.client, label_delay_days=30)
     c.post("/v1/models/returns-v2/rules", json=DROP_RULE)
     c.post(
         "/v1/models/returns-v2/rules",
         json={"kind": "floor", "measure": "recall", "threshold": 0.8, "min_support": 10},
     )
     # every window is younger than the 30-day label delay and 40% labelled
-    _feed(tenant, rng, 0, 7, recall=0.85, label_share=0.4)
-    _feed(tenant, rng, 7, 12, recall=0.30, label_share=0.4)
+    feed(tenant.client, rng, 0, 7, recall=0.85, label_share=0.4)
+    feed(tenant.client, rng, 7, 12, recall=0.30, label_share=0.4)
     frozen.set(START + timedelta(days=12, hours=12))
     for _ in range(2):
         summary = runner.tick()

@@ -10,8 +10,8 @@ from sqlalchemy import text
 
 from belated.jobs import JobRunner
 from tests.alerts.receiver import Receiver
-from tests.alerts.test_alerts_e2e import DROP_RULE, START, _feed, _model
 from tests.conftest import Tenant
+from tests.support.alert_days import DROP_RULE, START, feed, returns_model
 
 
 def _ticks(runner: JobRunner, frozen: Any, n: int, step_seconds: float = 5.0) -> None:
@@ -24,15 +24,15 @@ def _ticks(runner: JobRunner, frozen: Any, n: int, step_seconds: float = 5.0) ->
 def _two_alerts(tenant: Tenant, frozen: Any) -> None:
     """A drop in recall and a shift in the positive rate: two alerts, several events."""
     c = tenant.client
-    _model(tenant)
+    returns_model(tenant.client)
     c.post("/v1/models/returns-v2/rules", json=DROP_RULE)
     c.post(
         "/v1/models/returns-v2/rules",
         json={"kind": "shift", "measure": "positive_rate", "threshold": 0.03, "alpha": 0.01},
     )
     rng = np.random.default_rng(11)
-    _feed(tenant, rng, 0, 9, recall=0.85)
-    _feed(tenant, rng, 9, 12, recall=0.45)
+    feed(tenant.client, rng, 0, 9, recall=0.85)
+    feed(tenant.client, rng, 9, 12, recall=0.45)
     frozen.set(START + timedelta(days=12, hours=12))
 
 

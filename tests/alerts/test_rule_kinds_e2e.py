@@ -3,16 +3,16 @@
 
 from __future__ import annotations
 
-import time
 from datetime import timedelta
 from typing import Any
 
 import numpy as np
 
 from belated.jobs import JobRunner
-from tests.alerts.scenario import day_rows, send
-from tests.alerts.test_alerts_e2e import START
 from tests.conftest import Tenant
+from tests.support.alert_days import START, day_rows
+from tests.support.polling import wait_until
+from tests.support.sending import send_both
 
 
 def test_every_rule_kind_fires_through_the_scheduler(
@@ -56,18 +56,17 @@ def test_every_rule_kind_fires_through_the_scheduler(
                 region="north",
                 label_share=0.0,
             )
-        send(c, "returns-v2", preds, labels)
+        send_both(c, "returns-v2", preds, labels)
     # the last label arrived at the fixture's time (day 14.5); two days later it is silent
     frozen.set(START + timedelta(days=16, hours=12))
     runner.start()
-    kinds = set()
-    deadline = time.monotonic() + 120
-    while time.monotonic() < deadline and len(kinds) < len(rules):
+
+    def missing() -> set[str]:
         items = c.get("/v1/alerts", params={"limit": 100}).json()["items"]
-        kinds = {ids[a["rule_id"]] for a in items}
-        time.sleep(0.3)
+        return set(rules) - {ids[a["rule_id"]] for a in items}
+
+    wait_until(lambda: not missing(), 120, step=0.3, what=lambda: f"missing: {missing()}")
     runner.stop()
-    assert kinds == set(rules), f"missing: {set(rules) - kinds}"
     items = c.get("/v1/alerts", params={"limit": 100}).json()["items"]
     by_kind = {ids[a["rule_id"]]: a for a in items}
     volume_windows = {b["window_start"][:10] for b in by_kind["volume"]["breaches"]}

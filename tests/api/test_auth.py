@@ -15,8 +15,8 @@ import pytest
 from fastapi.routing import APIRoute
 from sqlalchemy import Engine
 
-from tests.builders import Model, count, create_model, label, predictions, rows
 from tests.conftest import Tenant, make_tenant
+from tests.support import Model, count, create_model, label, predictions, rows
 
 SCOPES = ("admin", "ingest", "read")
 # Every route the DESIGN's API table names today; the walk below must find at least these.

@@ -15,7 +15,8 @@ from sqlalchemy import Engine
 
 from belated.app import create_app
 from belated.config import Settings
-from tests.builders import (
+from tests.conftest import Tenant
+from tests.support import (
     Model,
     create_model,
     label,
@@ -26,7 +27,6 @@ from tests.builders import (
     three_class_scores,
     utcnow,
 )
-from tests.conftest import Tenant
 
 BAD_AT = 2
 Item = dict[str, Any]

@@ -3,13 +3,13 @@
 from __future__ import annotations
 
 from datetime import datetime, timedelta
-from typing import Any
 
 import pytest
 from sqlalchemy import Engine
 
 from belated.timeutil import from_db
-from tests.builders import (
+from tests.conftest import Tenant
+from tests.support import (
     Model,
     base_time,
     count,
@@ -21,22 +21,15 @@ from tests.builders import (
     prediction_row,
     predictions,
     rows,
+    send,
     utcnow,
 )
-from tests.conftest import Tenant
 
 
 @pytest.fixture()
 def model(tenant: Tenant, engine: Engine) -> Model:
     """A binary model with the default settings."""
     return create_model(tenant, engine)
-
-
-def send(tenant: Tenant, model: Model, kind: str, items: list[dict[str, Any]]) -> Any:
-    """POST predictions or labels and return the answer, which must be a 200."""
-    r = tenant.client.post(f"/v1/models/{model.name}/{kind}", json={kind: items})
-    assert r.status_code == 200, r.text
-    return r.json()
 
 
 def history(engine: Engine, model: Model, pid: str) -> list[tuple[str, str]]:
@@ -56,9 +49,9 @@ def test_the_four_answers_add_up_to_the_batch_size(
     tenant: Tenant, engine: Engine, model: Model
 ) -> None:
     items = predictions(6)
-    send(tenant, model, "predictions", items)
+    send(tenant.client, model.name, "predictions", items)
     ids = [p["id"] for p in items]
-    send(tenant, model, "labels", [label(ids[0], "0"), label(ids[1], "1")])
+    send(tenant.client, model.name, "labels", [label(ids[0], "0"), label(ids[1], "1")])
     batch = [
         label(ids[0], "1"),  # corrected
         label(ids[1], "1"),  # unchanged
@@ -68,7 +61,7 @@ def test_the_four_answers_add_up_to_the_batch_size(
         label(ids[4], 1),  # matched, integer class
         label(ids[4], "1"),  # the same id again in the batch: unchanged
     ]
-    answer = send(tenant, model, "labels", batch)
+    answer = send(tenant.client, model.name, "labels", batch)
     assert answer == {"matched": 3, "pending": 1, "corrected": 1, "unchanged": 2}
     assert sum(answer.values()) == len(batch)
     labelled = rows(
@@ -91,15 +84,19 @@ def test_corrections_apply_in_arrival_order_and_keep_history(
     tenant: Tenant, engine: Engine, model: Model
 ) -> None:
     item = prediction(0)
-    send(tenant, model, "predictions", [item])
+    send(tenant.client, model.name, "predictions", [item])
     pid = item["id"]
     known = datetime.fromisoformat(item["ts"]) + timedelta(days=1)
-    send(tenant, model, "labels", [label(pid, "1", ts=known)])
+    send(tenant.client, model.name, "labels", [label(pid, "1", ts=known)])
     # a correction whose outcome time is earlier still wins: arrival order decides
-    answer = send(tenant, model, "labels", [label(pid, "0", ts=known - timedelta(hours=6))])
+    answer = send(
+        tenant.client, model.name, "labels", [label(pid, "0", ts=known - timedelta(hours=6))]
+    )
     assert answer == {"matched": 0, "pending": 0, "corrected": 1, "unchanged": 0}
     assert (
-        send(tenant, model, "labels", [label(pid, "1", ts=known + timedelta(hours=2))])["corrected"]
+        send(tenant.client, model.name, "labels", [label(pid, "1", ts=known + timedelta(hours=2))])[
+            "corrected"
+        ]
         == 1
     )
     assert history(engine, model, pid) == [("1", "first"), ("0", "correction"), ("1", "correction")]
@@ -113,12 +110,12 @@ def test_the_same_actual_again_is_unchanged_whatever_its_time(
     tenant: Tenant, engine: Engine, model: Model
 ) -> None:
     item = prediction(0)
-    send(tenant, model, "predictions", [item])
+    send(tenant.client, model.name, "predictions", [item])
     known = datetime.fromisoformat(item["ts"]) + timedelta(hours=5)
-    send(tenant, model, "labels", [label(item["id"], "1", ts=known)])
+    send(tenant.client, model.name, "labels", [label(item["id"], "1", ts=known)])
     marks = rows(engine, "SELECT hour, version FROM dirty_buckets WHERE model_id = :m", m=model.id)
     for later in (known + timedelta(days=1), known - timedelta(hours=4), None):
-        answer = send(tenant, model, "labels", [label(item["id"], "1", ts=later)])
+        answer = send(tenant.client, model.name, "labels", [label(item["id"], "1", ts=later)])
         assert answer == {"matched": 0, "pending": 0, "corrected": 0, "unchanged": 1}
     assert prediction_row(engine, model.id, item["id"])["label_ts"] == known
     assert history(engine, model, item["id"]) == [("1", "first")]
@@ -132,9 +129,9 @@ def test_a_label_without_time_is_stamped_when_received(
     tenant: Tenant, engine: Engine, model: Model
 ) -> None:
     item = prediction(0)
-    send(tenant, model, "predictions", [item])
+    send(tenant.client, model.name, "predictions", [item])
     before = utcnow()
-    send(tenant, model, "labels", [label(item["id"], "0"), label("order-waiting", "1")])
+    send(tenant.client, model.name, "labels", [label(item["id"], "0"), label("order-waiting", "1")])
     after = utcnow()
     row = prediction_row(engine, model.id, item["id"])
     assert row["label_ts"] is not None and before <= row["label_ts"] <= after
@@ -151,14 +148,14 @@ def test_a_label_for_an_old_prediction_marks_that_old_hour_dirty(
 ) -> None:
     old = prediction(0, base=base_time() - timedelta(days=19))  # three weeks before now
     assert utcnow() - datetime.fromisoformat(old["ts"]) >= timedelta(days=21)
-    send(tenant, model, "predictions", [old])
+    send(tenant.client, model.name, "predictions", [old])
     old_hour = epoch_hour(datetime.fromisoformat(old["ts"]))
     (before,) = rows(
         engine, "SELECT hour, version, marked_at FROM dirty_buckets WHERE model_id = :m", m=model.id
     )
     assert before[0] == old_hour
     now_hours = {epoch_hour(utcnow())}
-    send(tenant, model, "labels", [label(old["id"], outcome_of(0))])
+    send(tenant.client, model.name, "labels", [label(old["id"], outcome_of(0))])
     now_hours.add(epoch_hour(utcnow()))
     after = rows(
         engine, "SELECT hour, version, marked_at FROM dirty_buckets WHERE model_id = :m", m=model.id
@@ -173,11 +170,11 @@ def test_a_pending_label_can_be_corrected_before_its_prediction_arrives(
     tenant: Tenant, engine: Engine, model: Model
 ) -> None:
     item = prediction(0)
-    assert send(tenant, model, "labels", [label(item["id"], "1")])["pending"] == 1
-    assert send(tenant, model, "labels", [label(item["id"], "0")])["pending"] == 1
+    assert send(tenant.client, model.name, "labels", [label(item["id"], "1")])["pending"] == 1
+    assert send(tenant.client, model.name, "labels", [label(item["id"], "0")])["pending"] == 1
     assert count(engine, "pending_labels", model.id) == 1
     assert history(engine, model, item["id"]) == [("1", "pending"), ("0", "pending")]
-    send(tenant, model, "predictions", [item])
+    send(tenant.client, model.name, "predictions", [item])
     assert prediction_row(engine, model.id, item["id"])["actual"] == "0"
     assert count(engine, "pending_labels", model.id) == 0
 
@@ -185,8 +182,8 @@ def test_a_pending_label_can_be_corrected_before_its_prediction_arrives(
 def test_labels_do_not_cross_models(tenant: Tenant, engine: Engine, model: Model) -> None:
     other = create_model(tenant, engine)
     item = prediction(0)
-    send(tenant, model, "predictions", [item])
-    answer = send(tenant, other, "labels", [label(item["id"], "1")])
+    send(tenant.client, model.name, "predictions", [item])
+    answer = send(tenant.client, other.name, "labels", [label(item["id"], "1")])
     assert answer["pending"] == 1
     assert prediction_row(engine, model.id, item["id"])["actual"] is None
     assert count(engine, "pending_labels", other.id) == 1

@@ -14,7 +14,8 @@ from sqlalchemy import Engine
 
 from belated.app import create_app
 from belated.config import Settings
-from tests.builders import (
+from tests.conftest import LiveServer, Tenant, make_tenant
+from tests.support import (
     base_time,
     count,
     create_model,
@@ -26,7 +27,6 @@ from tests.builders import (
     rows,
     tags,
 )
-from tests.conftest import LiveServer, Tenant, make_tenant
 
 TOTAL = 5000
 BATCH = 1000

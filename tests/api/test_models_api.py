@@ -7,7 +7,8 @@ from typing import Any
 import pytest
 from sqlalchemy import Engine
 
-from tests.builders import (
+from tests.conftest import Tenant, make_tenant
+from tests.support import (
     MODEL_TABLES,
     count,
     counts,
@@ -18,7 +19,6 @@ from tests.builders import (
     rows,
     unique_name,
 )
-from tests.conftest import Tenant, make_tenant
 
 
 def project_models(engine: Engine, project_id: int) -> int:

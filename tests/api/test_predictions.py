@@ -11,7 +11,8 @@ import pytest
 from sqlalchemy import Engine
 
 from belated.timeutil import from_db
-from tests.builders import (
+from tests.conftest import Tenant
+from tests.support import (
     Model,
     base_time,
     count,
@@ -25,7 +26,6 @@ from tests.builders import (
     stamp,
     three_class_scores,
 )
-from tests.conftest import Tenant
 
 
 def post(tenant: Tenant, model: Model, items: list[dict[str, Any]]) -> Any:

@@ -15,9 +15,9 @@ from sqlalchemy import Engine
 
 from belated.cli import register
 from belated.client import Client
-from tests.builders import count, create_model, prediction_row, rows
 from tests.client import belated, invoke, prediction_csv, shop_orders
 from tests.conftest import LiveServer, Tenant, free_port
+from tests.support import count, create_model, prediction_row, rows
 
 ALL = "admin,ingest,read"
 

@@ -10,9 +10,9 @@ import pytest
 from sqlalchemy import Engine
 
 from belated.client import Client
-from tests.builders import create_model
 from tests.client import belated, invoke, shop_orders
 from tests.conftest import LiveServer, Tenant
+from tests.support import create_model
 
 ALL = "admin,ingest,read"
 

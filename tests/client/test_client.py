@@ -19,9 +19,9 @@ from sklearn.metrics import confusion_matrix, precision_score
 from sqlalchemy import Engine
 
 from belated.client import BelatedError, Client, Unreachable, rfc3339
-from tests.builders import count, create_model, prediction_row, rows, unique_name
 from tests.client import shop_orders
 from tests.conftest import LiveServer, Tenant
+from tests.support import count, create_model, prediction_row, rows, unique_name
 
 
 def as_predictions(orders: pd.DataFrame) -> pd.DataFrame:
@@ -296,7 +296,8 @@ def test_a_service_down_at_first_still_gets_every_row_once(
 ) -> None:
     model = create_model(tenant, engine)
     frame = as_predictions(shop_orders(20_000, seed=17))
-    server = LiveServer(app)  # its port is chosen now; it starts listening 3 s from now
+    # its port is bound now and refuses connections; it starts listening 3 s from now
+    server = LiveServer(app, hold_port=True)
     starter = threading.Timer(3.0, server.__enter__)
     waits: list[float] = []
 

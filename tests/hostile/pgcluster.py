@@ -5,10 +5,6 @@ never stopped; tests that must stop and start the store run a cluster of their o
 temporary directory owned by the `postgres` OS user, on a free loopback port, and remove it
 afterwards. It needs root (to run as `postgres`) and PostgreSQL's server binaries.
 
-`fresh_store`: a new, migrated, empty store of the same kind as the session's (a SQLite file,
-or a uniquely named database on the shared server), so that a service process with jobs on
-sees only what its test made.
-
 `ServiceProcess`: `belated serve` as a subprocess on a free loopback port, its log in a file.
 """
 
@@ -23,15 +19,12 @@ import subprocess
 import sys
 import tempfile
 import time
-from collections.abc import Iterator
-from contextlib import contextmanager
 from pathlib import Path
 
 import httpx
 import psycopg
 
-from belated.store.migrate import upgrade
-from tests.conftest import create_pg_database, drop_pg_database, free_port, pg_url
+from tests.conftest import free_port
 
 
 def bin_dir() -> Path:
@@ -174,26 +167,6 @@ class PrivateCluster:
 
     def __exit__(self, *exc: object) -> None:
         self.remove()
-
-
-@contextmanager
-def fresh_store(kind_of: str) -> Iterator[str]:
-    """A new migrated store of the same kind as the URL `kind_of`, removed afterwards."""
-    if kind_of.startswith("sqlite"):
-        root = Path(tempfile.mkdtemp(prefix="belated-store-"))
-        url = f"sqlite:///{root / 'belated.db'}"
-        try:
-            upgrade(url)
-            yield url
-        finally:
-            shutil.rmtree(root, ignore_errors=True)
-        return
-    name = create_pg_database("belated_h")
-    try:
-        upgrade(pg_url(name))
-        yield pg_url(name)
-    finally:
-        drop_pg_database(name)
 
 
 class ServiceProcess:

@@ -10,7 +10,6 @@ media type; an error answer whose status the document lists matches what it docu
 from __future__ import annotations
 
 import socket
-import time
 from collections.abc import Iterator
 from dataclasses import dataclass, field
 from typing import Any
@@ -34,11 +33,10 @@ from belated.clock import now
 from belated.config import Settings
 from belated.store.db import make_sessionmaker, transaction
 from belated.store.tables import ModelRow
-from tests.builders import label, predictions
 from tests.conftest import make_tenant
+from tests.support import label, predictions
 
-EXAMPLES = 8  # per operation and generation mode
-BUDGET_SECONDS = 50.0  # the whole run per store stays under a minute
+EXAMPLES = 8  # per operation and generation mode: the run stops on a count, not a clock
 CHECKS = [response_schema_conformance, content_type_conformance]
 
 
@@ -47,7 +45,6 @@ class Findings:
     """What the fuzzing run saw."""
 
     calls: int = 0
-    seconds: float = 0.0
     statuses: dict[str, set[int]] = field(default_factory=dict)
     server_errors: list[str] = field(default_factory=list)
     success_mismatches: list[str] = field(default_factory=list)
@@ -201,12 +198,9 @@ def _fuzz(app: Any, token: str, real: dict[str, str]) -> Findings:
     operations.sort(
         key=lambda op: (op.method.upper() == "DELETE", -op.path.count("/"), op.path, op.method)
     )
-    started = time.monotonic()
     for op in operations:
         for mode in _modes(op):
-            if time.monotonic() - started < BUDGET_SECONDS:
-                _fuzz_operation(op, mode, found, auth, real)
-    found.seconds = time.monotonic() - started
+            _fuzz_operation(op, mode, found, auth, real)
     return found
 
 
@@ -221,13 +215,12 @@ def findings(store_url: str, engine: Engine) -> Iterator[Findings]:
 
 
 def test_fuzzing_reached_every_operation(findings: Findings) -> None:
-    """The run is a real one: every documented operation was called within the time budget,
-    and most of them succeeded at least once (so the handlers ran, not just the refusals).
+    """The run is a real one: every documented operation was called, and most of them
+    succeeded at least once (so the handlers ran, not just the refusals).
 
     The two ingest operations cannot succeed here: the document gives them no request body,
     so generated requests carry none (a gap reported beside this test).
     """
-    assert findings.seconds < 60, findings.seconds
     assert len(findings.statuses) >= 26, sorted(findings.statuses)
     reached = [op for op, codes in findings.statuses.items() if any(c < 300 for c in codes)]
     assert len(reached) >= 20, {op: sorted(c) for op, c in findings.statuses.items()}

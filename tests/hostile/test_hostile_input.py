@@ -18,7 +18,8 @@ from sqlalchemy import Engine
 
 from belated.app import create_app
 from belated.config import Settings
-from tests.builders import (
+from tests.conftest import LiveServer, Tenant, make_tenant
+from tests.support import (
     Model,
     counts,
     create_model,
@@ -28,7 +29,6 @@ from tests.builders import (
     predictions,
     rows,
 )
-from tests.conftest import LiveServer, Tenant, make_tenant
 
 LIMIT = 4096
 PIECE = 1000  # bytes of body per chunk the endless client sends

@@ -31,9 +31,10 @@ from belated.store import keys
 from belated.store.db import make_engine, make_sessionmaker, transaction
 from belated.store.tables import ModelRow, ServiceState
 from tests.alerts.receiver import Receiver
-from tests.builders import create_model, label, predictions, rows
 from tests.conftest import Tenant, make_tenant
-from tests.hostile.pgcluster import ServiceProcess, fresh_store, random_name
+from tests.hostile.pgcluster import ServiceProcess, random_name
+from tests.support import create_model, label, predictions, rows
+from tests.support.stores import fresh_store
 
 SCOPES = ("admin", "ingest", "read")
 PUBLIC = {("GET", "/healthz"), ("GET", "/metrics")}

@@ -11,7 +11,7 @@ from __future__ import annotations
 
 import re
 import time
-from collections.abc import Callable, Iterator
+from collections.abc import Iterator
 from pathlib import Path
 from typing import Any
 
@@ -20,9 +20,9 @@ import pytest
 
 from belated.store.db import make_engine, make_sessionmaker
 from belated.store.migrate import upgrade
-from tests.builders import label, predictions
 from tests.conftest import Tenant, make_tenant
 from tests.hostile.pgcluster import PrivateCluster, ServiceProcess, random_name
+from tests.support import label, predictions, time_until, wait_until
 
 # The pool checks a connection before use (pool_pre_ping) and a refused connection fails at
 # once, so recovery takes one request; the jobs' leader lock is retried every 2 seconds.
@@ -47,18 +47,6 @@ def served(cluster: PrivateCluster, tmp_path: Path) -> Iterator[tuple[ServicePro
         url, tmp_path / "service.log", env={"BELATED_JOBS": "true", "BELATED_LOG_FORMAT": "json"}
     ) as service:
         yield service, url
-
-
-def _until(check: Callable[[], Any], timeout: float) -> tuple[Any, float]:
-    """Poll until `check` returns something true; the value and the seconds it took."""
-    started = time.monotonic()
-    while True:
-        value = check()
-        if value:
-            return value, time.monotonic() - started
-        if time.monotonic() - started > timeout:
-            raise AssertionError(f"not within {timeout} s")
-        time.sleep(0.2)
 
 
 def _is_503_problem(r: httpx.Response) -> bool:
@@ -90,13 +78,25 @@ def test_requests_get_503_while_the_store_is_down_and_recover_without_a_restart(
             _store_is_down(c, tenant, name)
             assert service.alive()
             cluster.start()
-            _, took = _until(lambda: c.get("/v1/models").status_code == 200, RECOVERY_SECONDS)
+            _, took = time_until(
+                lambda: c.get("/v1/models").status_code == 200,
+                RECOVERY_SECONDS,
+                step=0.2,
+                what="requests answered after the cluster came back",
+            )
             print(f"requests recovered {took:.2f} s after the cluster was back")
             _store_is_up(c, tenant, name, first=20)
-            health, _ = _until(lambda: _healthy(c), RECOVERY_SECONDS)
+            health = wait_until(
+                lambda: _healthy(c), RECOVERY_SECONDS, step=0.2, what="a healthy service"
+            )
             assert health["jobs"]["leader"] is True
             # the jobs run again: the buckets written after the outage are refreshed
-            _until(lambda: c.get("/healthz").json()["dirty_buckets"] == 0, RECOVERY_SECONDS)
+            wait_until(
+                lambda: c.get("/healthz").json()["dirty_buckets"] == 0,
+                RECOVERY_SECONDS,
+                step=0.2,
+                what="no dirty bucket",
+            )
             got = c.get(f"/v1/models/{name}").json()["counts"]
             assert got == {"predictions": 40, "labelled": 2, "pending_labels": 0}
             assert service.alive()

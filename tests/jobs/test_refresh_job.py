@@ -1,43 +1,57 @@
-"""The scheduled refresh: a JobRunner on the test store empties the dirty buckets, and a
-failing step neither stops the steps after it nor the schedule.
+"""The scheduled refresh: a JobRunner on a store of the test's own empties the dirty buckets,
+and a failing step neither stops the steps after it nor the schedule.
 
 Rollups are checked against plain SQL counts over the raw prediction rows.
 """
 
 from __future__ import annotations
 
-import time
-from collections.abc import Callable
+from collections.abc import Iterator
 from typing import Any
 
+import pytest
 from sqlalchemy import Engine
 
 from belated.config import Settings
 from belated.jobs import JobRunner, refresh_step
-from tests.builders import count, create_model, label, outcome_of, predictions, rows
-from tests.conftest import Tenant
+from belated.store.db import make_engine
+from tests.conftest import STORES, Tenant
+from tests.support import (
+    count,
+    create_model,
+    label,
+    outcome_of,
+    predictions,
+    rows,
+    send_both,
+    wait_until,
+)
+from tests.support.stores import fresh_store
 
 WAIT_SECONDS = 30
 
 
-def wait_for(condition: Callable[[], bool], seconds: float = WAIT_SECONDS) -> bool:
-    """Poll until the condition holds; False when it never did."""
-    deadline = time.monotonic() + seconds
-    while time.monotonic() < deadline:
-        if condition():
-            return True
-        time.sleep(0.1)
-    return condition()
+@pytest.fixture(params=STORES)
+def store_url(request: pytest.FixtureRequest) -> Iterator[str]:
+    """A store of this test's own: the runner refreshes every model in its store, so it must
+    see only what this test wrote (not the session store other tests fill)."""
+    with fresh_store(request.param, prefix="belated_job") as url:
+        yield url
+
+
+@pytest.fixture()
+def engine(store_url: str) -> Iterator[Engine]:
+    """An engine on the test's own store."""
+    eng = make_engine(store_url)
+    yield eng
+    eng.dispose()
 
 
 def ingest_some(tenant: Tenant, model: str) -> list[dict[str, Any]]:
     """240 predictions over four hours (one a minute), two thirds of them labelled."""
     items = predictions(240)
-    r = tenant.client.post(f"/v1/models/{model}/predictions", json={"predictions": items})
-    assert r.status_code == 200, r.text
     labels = [label(p["id"], outcome_of(n)) for n, p in enumerate(items) if n % 3]
-    r = tenant.client.post(f"/v1/models/{model}/labels", json={"labels": labels})
-    assert r.status_code == 200, r.text
+    send_both(tenant.client, model, items, labels)
     return items
 
 
@@ -81,7 +95,11 @@ def test_the_scheduled_refresh_empties_the_dirty_buckets(
     )
     runner.start()
     try:
-        assert wait_for(lambda: count(engine, "dirty_buckets", model.id) == 0)
+        wait_until(
+            lambda: count(engine, "dirty_buckets", model.id) == 0,
+            WAIT_SECONDS,
+            what="the dirty buckets emptied",
+        )
         assert runner.is_leader()
     finally:
         runner.stop()
@@ -112,11 +130,19 @@ def test_a_failing_step_stops_neither_the_others_nor_the_schedule(
     )
     runner.start()
     try:
-        assert wait_for(lambda: calls["broken"] >= 2 and calls["after"] >= 2)
+        wait_until(
+            lambda: calls["broken"] >= 2 and calls["after"] >= 2,
+            WAIT_SECONDS,
+            what=lambda: f"two runs of every step: {calls}",
+        )
         # data written while the schedule runs is still refreshed
         ingest_some(tenant, model.name)
-        assert wait_for(lambda: count(engine, "dirty_buckets", model.id) == 0)
-        assert wait_for(lambda: calls["broken"] >= 4)
+        wait_until(
+            lambda: count(engine, "dirty_buckets", model.id) == 0,
+            WAIT_SECONDS,
+            what="the dirty buckets emptied",
+        )
+        wait_until(lambda: calls["broken"] >= 4, WAIT_SECONDS, what=lambda: f"four runs: {calls}")
         assert runner.scheduler.get_job("belated.refresh") is not None
     finally:
         runner.stop()

@@ -7,7 +7,7 @@ from collections.abc import Iterator
 import pytest
 
 from belated.clock import clock
-from tests.metrics.datasets import NOW
+from tests.support.datasets import NOW
 
 
 @pytest.fixture()

@@ -17,9 +17,9 @@ from sqlalchemy import Engine, text
 
 from belated.store import packing
 from belated.store.statistics import HISTOGRAM_BY_NAME
-from tests.builders import create_model
 from tests.conftest import Tenant
-from tests.metrics.datasets import NOW, breast_cancer, ingest
+from tests.support import create_model
+from tests.support.datasets import NOW, breast_cancer, ingest
 
 EDGES = np.array([*range(0, 49), *range(54, 169, 6), *range(192, 9601, 24), math.inf], float)
 

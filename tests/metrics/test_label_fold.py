@@ -5,7 +5,7 @@ new state); the refresh subtracts the old state's contribution and adds the new 
 instead of aggregating the hour's rows again. These tests follow the hard cases: an old
 state that was an implied negative, corrections, pending labels joined by the sweep, and an
 hour whose segments changed since it was aggregated (which must be aggregated again).
-Reference: scikit-learn's metrics on the rows of each daily window (tests/metrics/datasets.py),
+Reference: scikit-learn's metrics on the rows of each daily window (tests/support/datasets.py),
 and the rollups a rebuild from raw rows writes (counts exactly, float sums within 1e-9
 relative).
 """
@@ -23,31 +23,32 @@ from sqlalchemy import Engine, text
 from belated.clock import clock
 from belated.store import refresh, rollups
 from belated.store.tables import PendingLabel
-from tests.builders import (
+from tests.conftest import Tenant
+from tests.support import (
     base_time,
     count,
     create_model,
     label,
     predictions,
     rows,
+    send,
+    stamp,
+    stored_rollups,
     three_class_scores,
 )
-from tests.conftest import Tenant
-from tests.metrics.datasets import (
+from tests.support.datasets import (
     NOW,
     START,
     STEPS,
+    assert_close,
     at,
     breast_cancer,
     check_window,
     effective,
     in_range,
     metrics,
-    send,
-    stamp,
     window_starts,
 )
-from tests.metrics.test_windows_e2e import _rollups, assert_close
 
 SETTINGS = {"label_delay_days": 14, "min_coverage": 0.8}
 RANGE = (START, START + timedelta(days=25))
@@ -135,9 +136,9 @@ def test_labels_on_implied_negatives_and_corrections_fold_into_stored_hours(
     _check_days(
         tenant, model.name, sc, *effective(sc, NOW, actual=corrected, negative_after_days=10)
     )
-    folded = _rollups(engine, model.id)
+    folded = stored_rollups(engine, model.id)
     refresh.rebuild(sessions, max_values=100, model_id=model.id)
-    assert_close(_without_cut(_rollups(engine, model.id)), _without_cut(folded))
+    assert_close(_without_cut(stored_rollups(engine, model.id)), _without_cut(folded))
 
 
 def test_a_pending_label_joined_by_the_sweep_is_folded(
@@ -206,7 +207,7 @@ def test_an_hour_whose_segments_grew_since_is_aggregated_again(
     refresh.refresh_all(sessions, max_values=100, model_id=model.id)
     # hours aggregated before the admission cannot take a difference for the new segments
     assert any(changes for changes, _ in spy) and any(not changes for changes, _ in spy)
-    folded = _rollups(engine, model.id)
+    folded = stored_rollups(engine, model.id)
     # every labelled row's admitted region has its own row in its hour now: those hours
     # were aggregated again (a difference cannot create a segment's row)
     for i in np.flatnonzero(known):
@@ -217,7 +218,7 @@ def test_an_hour_whose_segments_grew_since_is_aggregated_again(
     # whole-model rows agree with a rebuild; the rebuild also splits '(other)' in hours that
     # no label touched, which the incremental path leaves as they were aggregated
     refresh.rebuild(sessions, max_values=100, model_id=model.id)
-    rebuilt = _rollups(engine, model.id)
+    rebuilt = stored_rollups(engine, model.id)
     whole = {k: v for k, v in folded.items() if k[2] == ""}
     assert_close(_without_cut({k: rebuilt[k] for k in whole}), _without_cut(whole))
 
@@ -235,7 +236,7 @@ def hour0() -> Iterator[Any]:
 
 
 def _overall_hour(engine: Engine, model_id: int) -> dict[str, Any]:
-    found = [r for k, r in _rollups(engine, model_id).items() if k[0] == "h" and k[2] == ""]
+    found = [r for k, r in stored_rollups(engine, model_id).items() if k[0] == "h" and k[2] == ""]
     assert len(found) == 1
     return {c: found[0][c] for c in COLS}
 

@@ -8,21 +8,23 @@ left behind by a concurrent write, joined by the refresh sweep.
 from __future__ import annotations
 
 import threading
-import time
+from collections import Counter
+from collections.abc import Iterator
+from contextlib import contextmanager
 from datetime import timedelta
 from typing import Any
 
 import numpy as np
 import pytest
-from sqlalchemy import Engine, text
+from sqlalchemy import Engine, event, text
 
 from belated.clock import clock
 from belated.ingest.validate import LabelIn, PredictionIn
 from belated.store import dirty, labels, predictions, refresh, rollups
-from belated.store.db import transaction
-from tests.builders import count, create_model, rows
+from belated.store.db import is_sqlite, transaction
 from tests.conftest import Tenant
-from tests.metrics.datasets import (
+from tests.support import count, create_model, rows, send, stamp, wait_until
+from tests.support.datasets import (
     NOW,
     START,
     STEPS,
@@ -33,13 +35,50 @@ from tests.metrics.datasets import (
     epoch,
     in_range,
     metrics,
-    send,
-    stamp,
     window_starts,
 )
 
 SETTINGS = {"label_delay_days": 14, "min_coverage": 0.8}
 RANGE = (START, START + timedelta(days=25))
+
+
+@contextmanager
+def _transactions_begun(engine: Engine) -> Iterator[Counter[str]]:
+    """Count SQLite's BEGIN IMMEDIATE (which takes the write lock) as sent ("asked") and as
+    returned ("begun") while the block runs."""
+    seen: Counter[str] = Counter()
+
+    def asked(*args: Any) -> None:
+        if args[2] == "BEGIN IMMEDIATE":
+            seen["asked"] += 1
+
+    def begun(*args: Any) -> None:
+        if args[2] == "BEGIN IMMEDIATE":
+            seen["begun"] += 1
+
+    event.listen(engine, "before_cursor_execute", asked)
+    event.listen(engine, "after_cursor_execute", begun)
+    try:
+        yield seen
+    finally:
+        event.remove(engine, "before_cursor_execute", asked)
+        event.remove(engine, "after_cursor_execute", begun)
+
+
+def _a_writer_waits(engine: Engine, seen: Counter[str]) -> bool:
+    """A transaction is blocked on a lock another one holds: on SQLite one asked for since the
+    count started and not yet begun; on PostgreSQL a backend of this database waiting on a
+    lock (pg_stat_activity)."""
+    if is_sqlite(engine):
+        return seen["asked"] > seen["begun"]
+    with engine.connect() as conn:
+        waiting = conn.execute(
+            text(
+                "SELECT count(*) FROM pg_stat_activity"
+                " WHERE datname = current_database() AND wait_event_type = 'Lock'"
+            )
+        ).scalar_one()
+    return int(waiting) > 0
 
 
 def check_days(
@@ -227,13 +266,17 @@ def test_a_write_during_a_refresh_keeps_its_mark_and_shows_next_read(
 
     def refresh_while_writing(**kwargs: Any) -> int:
         done = real(**kwargs)
-        thread = threading.Thread(
-            target=send, args=(tenant.client, model.name, "predictions", [late])
-        )
-        thread.start()
-        time.sleep(1.0)
-        assert thread.is_alive()  # the writer waits for the refresh's transaction
-        writer.append(thread)
+        with _transactions_begun(engine) as begun:
+            thread = threading.Thread(
+                target=send, args=(tenant.client, model.name, "predictions", [late])
+            )
+            thread.start()
+            writer.append(thread)
+            # the writer waits for the refresh's transaction: seen waiting for the lock
+            wait_until(
+                lambda: _a_writer_waits(engine, begun), 30, what="the writer waiting for the lock"
+            )
+        assert thread.is_alive()
         return done
 
     monkeypatch.setattr(rollups, "refresh_hours", refresh_while_writing)

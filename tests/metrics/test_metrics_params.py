@@ -23,9 +23,9 @@ from sklearn.metrics import accuracy_score, confusion_matrix, precision_recall_f
 from sqlalchemy import Engine
 from statsmodels.stats.proportion import proportion_confint
 
-from tests.builders import counts, create_model, predictions
 from tests.conftest import Tenant
-from tests.metrics.datasets import (
+from tests.support import counts, create_model, predictions, send, stamp
+from tests.support.datasets import (
     NOW,
     SEED,
     START,
@@ -38,8 +38,6 @@ from tests.metrics.datasets import (
     ingest,
     metrics,
     same,
-    send,
-    stamp,
     window_starts,
 )
 

@@ -17,9 +17,9 @@ from sqlalchemy import Engine
 from belated.app import create_app
 from belated.config import Settings
 from belated.store import refresh
-from tests.builders import create_model, rows
 from tests.conftest import Tenant, make_tenant
-from tests.metrics.datasets import (
+from tests.support import create_model, rows, stamp
+from tests.support.datasets import (
     NOW,
     REGIONS,
     START,
@@ -32,7 +32,6 @@ from tests.metrics.datasets import (
     ingest,
     metrics,
     settled,
-    stamp,
     window_starts,
 )
 

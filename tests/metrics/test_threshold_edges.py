@@ -17,8 +17,8 @@ import numpy as np
 from sklearn.metrics import confusion_matrix
 from sqlalchemy import Engine
 
-from tests.builders import base_time, create_model, label, stamp
 from tests.conftest import Tenant
+from tests.support import base_time, create_model, label, stamp
 
 
 def _edge_scores() -> np.ndarray:

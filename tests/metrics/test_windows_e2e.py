@@ -1,7 +1,7 @@
 """End to end: the breast cancer data through the API; every window against scikit-learn.
 
 The reference is scikit-learn's metrics (confusion_matrix, precision_score, recall_score,
-fbeta_score, ...) on the labelled rows of each window (see tests/metrics/datasets.py). Runs on
+fbeta_score, ...) on the labelled rows of each window (see tests/support/datasets.py). Runs on
 SQLite and PostgreSQL (the store fixtures are parametrised).
 """
 
@@ -18,24 +18,22 @@ from sqlalchemy import Engine, text
 
 from belated.clock import clock
 from belated.store import refresh
-from belated.store.packing import unpack_delays, unpack_hist
-from tests.builders import create_model
 from tests.conftest import REPO, Tenant
-from tests.metrics.datasets import (
+from tests.support import create_model, send, stamp, stored_rollups
+from tests.support.datasets import (
     NOW,
     OUTAGE_DAY,
     START,
     STEPS,
     align,
+    assert_close,
     breast_cancer,
     check_window,
     effective,
     in_range,
     ingest,
     metrics,
-    send,
     settled,
-    stamp,
     window_starts,
 )
 
@@ -170,40 +168,6 @@ def test_default_range_ends_with_the_open_current_window(
         assert all(w["closed"] for w in answer["windows"][:-1])
 
 
-def _rollups(engine: Engine, model_id: int) -> dict[tuple[Any, ...], dict[str, Any]]:
-    with engine.connect() as conn:
-        found = conn.execute(text("SELECT * FROM rollups WHERE model_id = :m"), {"m": model_id})
-        out = {}
-        for row in found:
-            r = dict(row._mapping)
-            r["hist_counts"], r["hist_sums"] = unpack_hist(r.pop("hist"))
-            r["delays"] = unpack_delays(r["delays"])
-            out[(r["level"], r["start"], r["seg_key"], r["seg_value"])] = r
-        return out
-
-
-def assert_close(a: Any, b: Any, path: str = "") -> None:
-    """Counts (ints, strings, None) equal; floats within 1e-9 relative (summation order)."""
-    if isinstance(a, dict):
-        assert isinstance(b, dict) and a.keys() == b.keys(), path
-        for k in a:
-            assert_close(a[k], b[k], f"{path}.{k}")
-    elif isinstance(a, list):
-        assert isinstance(b, list) and len(a) == len(b), path
-        for i, (x, z) in enumerate(zip(a, b, strict=True)):
-            assert_close(x, z, f"{path}[{i}]")
-    elif isinstance(a, np.ndarray):
-        if a.dtype.kind == "f":
-            assert np.allclose(a, b, rtol=1e-9, atol=0), path
-        else:
-            assert np.array_equal(a, b), path
-    elif isinstance(a, float) or isinstance(b, float):
-        assert a is not None and b is not None, path
-        assert abs(a - b) <= 1e-9 * max(abs(a), abs(b)), (path, a, b)
-    else:
-        assert a == b, path
-
-
 def _answers(tenant: Tenant, model: str) -> list[dict[str, Any]]:
     start, end = stamp(START - timedelta(days=1)), stamp(NOW + timedelta(days=1))
     return [
@@ -231,11 +195,14 @@ def test_rebuild_from_raw_rows_equals_the_incremental_path(
         send(tenant.client, model.name, "labels", sc.label_items(sc.known(when, before)))
         metrics(tenant.client, model.name, start=stamp(START), end=stamp(NOW))
         before = when
-    incremental_rollups, incremental = _rollups(engine, model.id), _answers(tenant, model.name)
+    incremental_rollups, incremental = (
+        stored_rollups(engine, model.id),
+        _answers(tenant, model.name),
+    )
     assert any(k[2] == "region" for k in incremental_rollups)
 
     assert refresh.rebuild(sessions, max_values=100, model_id=model.id) > 0
-    assert_close(_rollups(engine, model.id), incremental_rollups)
+    assert_close(stored_rollups(engine, model.id), incremental_rollups)
     assert_close(_answers(tenant, model.name), incremental)
 
     # the command line: first spoil a stored rollup, which the rebuild must put right
@@ -265,7 +232,7 @@ def test_rebuild_from_raw_rows_equals_the_incremental_path(
     )
     assert done.returncode == 0, done.stderr
     assert "rebuilt" in done.stdout
-    assert_close(_rollups(engine, model.id), incremental_rollups)
+    assert_close(stored_rollups(engine, model.id), incremental_rollups)
     assert_close(_answers(tenant, model.name), incremental)
     with engine.connect() as conn:
         left = conn.execute(

@@ -11,8 +11,9 @@ from prometheus_client.parser import text_string_to_metric_families
 
 from belated.clock import clock
 from belated.jobs import JobRunner
-from tests.alerts.scenario import day_rows, send
 from tests.conftest import Tenant, make_tenant
+from tests.support.alert_days import day_rows
+from tests.support.sending import send_both
 
 
 def _samples(text: str) -> dict[tuple[str, tuple[tuple[str, str], ...]], float]:
@@ -39,7 +40,7 @@ def fed(tenant: Tenant, engine: Any, settings: Any) -> Any:
             recall=0.8,
             prefix="o",
         )
-        send(c, "returns-v2", preds, labels)
+        send_both(c, "returns-v2", preds, labels)
     runner = JobRunner(engine=engine, settings=settings)
     runner.tick()
     runner.leader.release()  # the run took the leader lock on PostgreSQL: give it back

@@ -15,7 +15,7 @@ import sqlite3
 import subprocess
 import threading
 import time
-from collections.abc import Callable, Iterator
+from collections.abc import Iterator
 from concurrent.futures import ThreadPoolExecutor
 from contextlib import contextmanager, suppress
 from dataclasses import dataclass
@@ -201,16 +201,6 @@ def create_model(url: str, token: str, name: str, **fields: Any) -> None:
 def model_id(store: Store, name: str) -> int:
     """The row id of a model, read from the models table."""
     return int(store.scalar("SELECT id FROM models WHERE name = ?", name))
-
-
-def wait_until(condition: Callable[[], bool], seconds: float, step: float = 0.1) -> float | None:
-    """Poll until the condition holds; the seconds it took, or None when it never did."""
-    start = time.monotonic()
-    while time.monotonic() - start < seconds:
-        if condition():
-            return time.monotonic() - start
-        time.sleep(step)
-    return time.monotonic() - start if condition() else None
 
 
 def raw_hours(store: Store, mid: int) -> dict[int, tuple[int, ...]]:

@@ -32,8 +32,8 @@ from tests.reliability.procs import (
     model_id,
     raw_hours,
     rollup_hours,
-    wait_until,
 )
+from tests.support.polling import wait_until
 
 MODEL = "returns-crash"
 BATCH = 200
@@ -182,8 +182,11 @@ def restart_and_finish(store: Store, tmp_path: Path, mid: int) -> None:
     """Restart with the jobs on; the refresh empties the marks; rollups equal a rebuild."""
     service = Service(store, tmp_path, jobs=True, refresh_seconds=0.5, name="restarted")
     try:
-        took = wait_until(lambda: not dirty_hours(store, mid), 120)
-        assert took is not None, f"dirty buckets left: {len(dirty_hours(store, mid))}"
+        wait_until(
+            lambda: not dirty_hours(store, mid),
+            120,
+            what=lambda: f"dirty buckets left: {len(dirty_hours(store, mid))}",
+        )
     finally:
         service.stop()
     assert rollup_hours(store, mid) == raw_hours(store, mid)
@@ -203,7 +206,11 @@ def test_sigkill_mid_ingest_keeps_every_acknowledged_batch_whole(kind: str, tmp_
         stream = Stream(service.url, token, 4, int(time.time() // 3600))
         stream.start()
         try:
-            assert wait_until(lambda: len(stream.acked["labels"]) >= 6, 180), stream.other
+            wait_until(
+                lambda: len(stream.acked["labels"]) >= 6,
+                180,
+                what=lambda: f"six acknowledged label batches: {stream.other}",
+            )
             service.kill()  # while the four threads have requests in flight
         finally:
             stream.join()
@@ -259,11 +266,15 @@ def test_sigkill_mid_refresh_loses_no_dirty_mark(kind: str, tmp_path: Path) -> N
         # jobs on: the first refresh starts as the process starts; kill once it is under way
         service = Service(store, tmp_path, jobs=True, refresh_seconds=0.5, wait=False)
         try:
-            seen = wait_until(lambda: 0 < len(dirty_hours(store, mid)) < backlog, 180, step=0.01)
+            wait_until(
+                lambda: 0 < len(dirty_hours(store, mid)) < backlog,
+                180,
+                step=0.01,
+                what="the refresh caught under way",
+            )
             service.kill()
         finally:
             service.stop()
-        assert seen is not None, "the refresh was not caught under way"
         left = dirty_hours(store, mid)
         assert 0 < len(left) < backlog, "the kill came after the refresh ended"
         print(f"\n{kind}: killed with {len(left)} of {backlog} hours still dirty")

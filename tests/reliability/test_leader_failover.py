@@ -25,8 +25,8 @@ from tests.reliability.procs import (
     make_store,
     model_id,
     rollup_hours,
-    wait_until,
 )
+from tests.support.polling import time_until, wait_until
 
 MODEL = "returns-leader"
 # Bound stated by this test: the leader poll runs every 2 s and the refresh every 0.5 s, and
@@ -92,7 +92,11 @@ def test_one_leader_and_the_other_takes_over_after_a_sigkill(tmp_path: Path) -> 
         try:
             create_model(services[0].url, token, MODEL)
             mid = model_id(store, MODEL)
-            assert wait_until(lambda: sum(leaders(services)) == 1, 30), leaders(services)
+            wait_until(
+                lambda: sum(leaders(services)) == 1,
+                30,
+                what=lambda: f"exactly one leader: {leaders(services)}",
+            )
             for _ in range(10):  # and it stays that way
                 assert sum(leaders(services)) == 1 and advisory_locks(store) == 1
                 time.sleep(0.3)
@@ -101,16 +105,20 @@ def test_one_leader_and_the_other_takes_over_after_a_sigkill(tmp_path: Path) -> 
 
             # the leader's jobs clear what is written through either process
             send(other, token, 0, 200)
-            assert wait_until(lambda: rolled_up(store, mid) == 200, 30), "leader did not refresh"
+            wait_until(lambda: rolled_up(store, mid) == 200, 30, what="the leader's refresh")
 
             leader.kill()
             killed_at = time.monotonic()
-            took = wait_until(lambda: other.health()["jobs"]["leader"], TAKEOVER_SECONDS)
-            assert took is not None, f"no takeover within {TAKEOVER_SECONDS} s"
+            _, took = time_until(
+                lambda: other.health()["jobs"]["leader"], TAKEOVER_SECONDS, what="a takeover"
+            )
             send(other, token, 200, 200)  # no API read follows: only the jobs can refresh
             remaining = TAKEOVER_SECONDS - (time.monotonic() - killed_at)
-            cleared = wait_until(lambda: rolled_up(store, mid) == 400, max(remaining, 5.0))
-            assert cleared is not None, f"new dirty buckets not cleared: {dirty_hours(store, mid)}"
+            wait_until(
+                lambda: rolled_up(store, mid) == 400,
+                max(remaining, 5.0),
+                what=lambda: f"new dirty buckets cleared: {dirty_hours(store, mid)}",
+            )
             assert not dirty_hours(store, mid)
             assert advisory_locks(store) == 1
             print(

@@ -39,8 +39,8 @@ from tests.reliability.procs import (
     make_store,
     model_id,
     run_writers,
-    wait_until,
 )
+from tests.support.polling import wait_until
 
 SECONDS = 20.0
 MODEL = "returns-load"
@@ -155,8 +155,10 @@ def wait_for_a_full_refresh(service: Service, seconds: float = 30) -> None:
 
     moment = datetime.now(UTC)
     for _ in range(2):  # runs never overlap (max_instances=1): the second began after now
-        assert wait_until(ended_after(moment), seconds), (
-            f"no refresh ended within {seconds} s: {service.health()}"
+        wait_until(
+            ended_after(moment),
+            seconds,
+            what=lambda: f"a refresh ended: {service.health()}",
         )
         moment = last_refresh(service) or moment
 

@@ -24,7 +24,7 @@ from selenium.webdriver.support.ui import WebDriverWait
 from sqlalchemy import Engine
 
 from tests.conftest import LiveServer, make_tenant
-from tests.web.test_pages import DAYS, NOW, WINDOWS, by_day, raise_alert, send_shop, shop_orders
+from tests.support.shop import DAYS, NOW, WINDOWS, by_day, raise_alert, send_shop, shop_orders
 
 CHROMIUM = shutil.which("chromium") or shutil.which("chromium-browser")
 CHROMEDRIVER = shutil.which("chromedriver")

@@ -13,7 +13,8 @@ an empty window inside the range). Label delays are exponential with mean MEAN_D
 a share NEVER_SHARE of outcomes is never reported. Tags: region in four values with unequal
 weights, channel web or app.
 
-`check_window` is the reference: scikit-learn's metrics on the rows of one window.
+`check_window` is the reference: scikit-learn's metrics on the rows of one window;
+`assert_close` compares stored rollups or answers computed two ways.
 """
 
 from __future__ import annotations
@@ -29,6 +30,9 @@ from sklearn.linear_model import LogisticRegression
 from sklearn.pipeline import make_pipeline
 from sklearn.preprocessing import StandardScaler
 
+from tests.support.builders import stamp
+from tests.support.sending import send
+
 SEED = 20260902
 START = datetime(2026, 9, 2, tzinfo=UTC)  # a Wednesday
 SPREAD_DAYS = 24
@@ -39,13 +43,7 @@ NOW = START + timedelta(days=30, hours=7, minutes=30)
 REGIONS = ("north", "south", "east", "west")
 REGION_WEIGHTS = (0.4, 0.3, 0.2, 0.1)
 CHANNELS = ("web", "app")
-BATCH = 2000
 STEPS = {"hour": timedelta(hours=1), "day": timedelta(days=1), "week": timedelta(days=7)}
-
-
-def stamp(dt: datetime) -> str:
-    """RFC 3339 with a Z suffix."""
-    return dt.astimezone(UTC).isoformat().replace("+00:00", "Z")
 
 
 def at(seconds: float) -> datetime:
@@ -144,17 +142,6 @@ def breast_cancer(seed: int = SEED, prefix: str = "bc", never: float = NEVER_SHA
     channel = rng.choice(np.array(CHANNELS), size=n)
     pids = [f"{prefix}-{i:04d}" for i in range(n)]
     return Scenario(pids, ts, score.copy(), y.copy(), label_at, region, channel)
-
-
-def send(client: Any, model: str, kind: str, items: list[dict[str, Any]]) -> dict[str, int]:
-    """POST items in batches; every answer must be a 200; the answers are summed."""
-    total: dict[str, int] = {}
-    for i in range(0, len(items), BATCH):
-        r = client.post(f"/v1/models/{model}/{kind}", json={kind: items[i : i + BATCH]})
-        assert r.status_code == 200, r.text
-        for k, v in r.json().items():
-            total[k] = total.get(k, 0) + v
-    return total
 
 
 def metrics(client: Any, model: str, **params: Any) -> dict[str, Any]:
@@ -359,3 +346,25 @@ def _check_bounds(
         )
         for name, value in (("precision", prec[0]), ("recall", rec[0]), ("fbeta", f[0])):
             same({"value": bounds[name][side], "reason": "-"}, value)
+
+
+def assert_close(a: Any, b: Any, path: str = "") -> None:
+    """Counts (ints, strings, None) equal; floats within 1e-9 relative (summation order)."""
+    if isinstance(a, dict):
+        assert isinstance(b, dict) and a.keys() == b.keys(), path
+        for k in a:
+            assert_close(a[k], b[k], f"{path}.{k}")
+    elif isinstance(a, list):
+        assert isinstance(b, list) and len(a) == len(b), path
+        for i, (x, z) in enumerate(zip(a, b, strict=True)):
+            assert_close(x, z, f"{path}[{i}]")
+    elif isinstance(a, np.ndarray):
+        if a.dtype.kind == "f":
+            assert np.allclose(a, b, rtol=1e-9, atol=0), path
+        else:
+            assert np.array_equal(a, b), path
+    elif isinstance(a, float) or isinstance(b, float):
+        assert a is not None and b is not None, path
+        assert abs(a - b) <= 1e-9 * max(abs(a), abs(b)), (path, a, b)
+    else:
+        assert a == b, path

@@ -1,15 +1,33 @@
 """Builders for alert tests: a returns model fed day by day with stated distributions.
 
+`START` is the first day, `DROP_RULE` a recall drop rule, `returns_model` creates the model
+(label_delay_days 2, min_coverage 0.9) and `feed` sends days `first..last-1` of 300 positives
+and 900 negatives each.
+
 Scores: actual positives score U(0.5, 1) with probability `recall` else U(0, 0.5); actual
 negatives score U(0.55, 1) with probability 0.05 else U(0, 0.55); the threshold is 0.5.
 """
 
 from __future__ import annotations
 
-from datetime import datetime, timedelta
+from datetime import UTC, datetime, timedelta
 from typing import Any
 
 import numpy as np
+
+from tests.support.models import post_model
+from tests.support.sending import send_both
+
+START = datetime(2026, 11, 1, tzinfo=UTC)
+DROP_RULE = {
+    "kind": "drop",
+    "measure": "recall",
+    "tolerance": 0.02,
+    "alpha": 0.05,
+    "min_support": 50,
+    "baseline": {"windows": 7},
+    "clear_after": 2,
+}
 
 
 def day_rows(
@@ -43,15 +61,30 @@ def day_rows(
     return preds, labels
 
 
-def send(
-    client: Any, model: str, preds: list[dict[str, Any]], labels: list[dict[str, Any]]
+def returns_model(client: Any, name: str = "returns-v2", **extra: Any) -> None:
+    """The returns model the alert tests watch: outcomes due within 2 days, 90% coverage,
+    unless `extra` says otherwise."""
+    post_model(client, name, **{"label_delay_days": 2, "min_coverage": 0.9, **extra})
+
+
+def feed(
+    client: Any,
+    rng: np.random.Generator,
+    first: int,
+    last: int,
+    recall: float,
+    model: str = "returns-v2",
+    **kw: Any,
 ) -> None:
-    """Post predictions then labels in batches, checking each answer."""
-    for i in range(0, len(preds), 5000):
-        r = client.post(
-            f"/v1/models/{model}/predictions", json={"predictions": preds[i : i + 5000]}
+    """Send the days first..last-1 from START: 300 positives and 900 negatives a day."""
+    for d in range(first, last):
+        preds, labels = day_rows(
+            rng,
+            START + timedelta(days=d),
+            positives=300,
+            negatives=900,
+            recall=recall,
+            prefix="o",
+            **kw,
         )
-        assert r.status_code == 200, r.text
-    for i in range(0, len(labels), 5000):
-        r = client.post(f"/v1/models/{model}/labels", json={"labels": labels[i : i + 5000]})
-        assert r.status_code == 200, r.text
+        send_both(client, model, preds, labels)
