@@ -6,7 +6,7 @@ import numpy as np
 import pytest
 from sklearn import metrics
 
-from belated.stats.intervals import hanley_mcneil
+from belated.stats.delong import delong_interval
 from belated.stats.ranking import (
     ap_binning_bound,
     auc_binning_bound,
@@ -88,16 +88,15 @@ def test_perfect_and_reversed_rankings() -> None:
     assert roc_auc(pos, pos * 2).value == 0.5
 
 
-def test_hanley_mcneil_interval_is_attached_with_z() -> None:
+def test_delong_interval_is_attached_with_z() -> None:
     y, p = breast_cancer_scores()
     hist_pos, hist_neg = _hists(y, p)
     z = 1.959963984540054
     value = roc_auc(hist_pos, hist_neg, z=z)
     assert value.value is not None and value.low is not None and value.high is not None
     assert value.low < value.value <= value.high <= 1.0
-    expected = hanley_mcneil(
-        value.value, int(hist_pos.sum()), int(hist_neg.sum()), 1.959963984540054
-    )
+    expected = delong_interval(hist_pos, hist_neg, z)
+    assert expected is not None
     assert (value.low, value.high) == pytest.approx(expected, rel=1e-14)
 
 

@@ -15,7 +15,7 @@ import math
 
 import numpy as np
 
-from belated.stats.intervals import hanley_mcneil_arrays
+from belated.stats.delong import delong_arrays, delong_interval_arrays
 from belated.stats.measures import NO_ACTUAL_NEGATIVES, NO_ACTUAL_POSITIVES
 from belated.stats.values import Value
 
@@ -88,7 +88,11 @@ def ranking_arrays(hist_pos: np.ndarray, hist_neg: np.ndarray) -> dict[str, np.n
 def ranking_measures(
     hist_pos: np.ndarray, hist_neg: np.ndarray, *, z: float | None = None
 ) -> tuple[Value, Value]:
-    """(ROC AUC, average precision) of one window; with `z`, AUC's Hanley-McNeil interval."""
+    """(ROC AUC, average precision) of one window; with `z`, AUC's DeLong interval.
+
+    The interval is the logit-scale DeLong interval (`belated.stats.delong`); none when a
+    class has a single member.
+    """
     arrays = ranking_arrays(np.asarray(hist_pos)[None, :], np.asarray(hist_neg)[None, :])
     reason = _reason(float(arrays["n_pos"][0]), float(arrays["n_neg"][0]))
     if reason is not None:
@@ -97,7 +101,10 @@ def ranking_measures(
     ap = Value(float(arrays["average_precision"][0]))
     if z is None:
         return Value(auc), ap
-    low, high = hanley_mcneil_arrays(arrays["roc_auc"], arrays["n_pos"], arrays["n_neg"], z)
+    variance = delong_arrays(np.asarray(hist_pos)[None, :], np.asarray(hist_neg)[None, :])
+    low, high = delong_interval_arrays(arrays["roc_auc"], variance["variance"], z)
+    if math.isnan(float(low[0])):
+        return Value(auc), ap
     return Value(auc, float(low[0]), float(high[0])), ap
 
 

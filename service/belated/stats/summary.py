@@ -3,7 +3,7 @@
 This is what the API, the jobs, the dashboard and the CLI call. Every measure of the table
 in DESIGN.md is present, as {"value", "low", "high"} or, when undefined, with a "reason"
 and nulls. Intervals: the chosen proportion interval for proportions, a seeded bootstrap of
-the confusion counts for fbeta, mcc and balanced_accuracy, Hanley-McNeil for roc_auc, none
+the confusion counts for fbeta, mcc and balanced_accuracy, DeLong (logit scale) for roc_auc, none
 for average_precision, brier, log_loss and ece.
 
 `summarise_many` does the arithmetic of many windows at once (one numpy pass per measure
