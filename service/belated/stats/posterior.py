@@ -37,7 +37,7 @@ from belated.stats.memo import Memo
 
 # Posterior draws per window by default (the `resamples` option of the API): the 365-window
 # benchmark (bench/stats.py) stays within twice its time with the old 200 resamples.
-DEFAULT_DRAWS = 800
+DEFAULT_DRAWS = 700
 PRIOR = 0.5  # Jeffreys
 
 _MEMO = Memo(50_000)
