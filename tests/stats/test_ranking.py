@@ -6,7 +6,7 @@ import numpy as np
 import pytest
 from sklearn import metrics
 
-from belated.stats.intervals import hanley_mcneil
+from belated.stats.delong import delong_interval
 from belated.stats.ranking import (
     ap_binning_bound,
     auc_binning_bound,
@@ -88,16 +88,15 @@ def test_perfect_and_reversed_rankings() -> None:
     assert roc_auc(pos, pos * 2).value == 0.5
 
 
-def test_hanley_mcneil_interval_is_attached_with_z() -> None:
+def test_delong_interval_is_attached_with_z() -> None:
     y, p = breast_cancer_scores()
     hist_pos, hist_neg = _hists(y, p)
     z = 1.959963984540054
     value = roc_auc(hist_pos, hist_neg, z=z)
     assert value.value is not None and value.low is not None and value.high is not None
     assert value.low < value.value <= value.high <= 1.0
-    expected = hanley_mcneil(
-        value.value, int(hist_pos.sum()), int(hist_neg.sum()), 1.959963984540054
-    )
+    expected = delong_interval(hist_pos, hist_neg, z)
+    assert expected is not None
     assert (value.low, value.high) == pytest.approx(expected, rel=1e-14)
 
 
@@ -109,3 +108,40 @@ def test_score_bin_convention() -> None:
     assert score_bin(0.505) == 50
     scores = np.array([0.0, 0.01, 0.255, 0.5, 0.99, 1.0])
     assert score_bins(scores).tolist() == [score_bin(s) for s in scores]
+    # 0.29 * 100 is 28.999999999999996 in binary floating point; the bin still decides as
+    # `score >= 0.29` does.
+    assert [score_bin(s) for s in (0.29, 0.57, 0.58)] == [29, 57, 58]
+
+
+def _edge_scores() -> np.ndarray:
+    """Every edge k/100 (k = 0..100), its float neighbours, and a few in between."""
+    edges = np.arange(101) / 100
+    around = np.concatenate(
+        [edges, np.nextafter(edges, -np.inf), np.nextafter(edges, np.inf), edges + 0.005]
+    )
+    return np.unique(np.clip(around, 0.0, 1.0))
+
+
+def test_bins_decide_every_threshold_as_the_comparison_does() -> None:
+    # Reference library: scikit-learn confusion_matrix of `score >= k/100` on the raw scores,
+    # for every threshold k/100 (k = 0..99) on scores at each edge and its float neighbours
+    # (np.nextafter). The histogram's counts at threshold k are the bins k and above.
+    scores = _edge_scores()
+    rng = np.random.default_rng(29)
+    y = (rng.random(scores.size) < 0.4).astype(np.int64)
+    bins = score_bins(scores)
+    assert bins.tolist() == [score_bin(float(s)) for s in scores]
+    hist_pos = np.bincount(bins[y == 1], minlength=100)
+    hist_neg = np.bincount(bins[y == 0], minlength=100)
+    for k in range(100):
+        tn, fp, fn, tp = metrics.confusion_matrix(y, scores >= k / 100, labels=[0, 1]).ravel()
+        assert (hist_pos[k:].sum(), hist_neg[k:].sum()) == (tp, fp), k
+        assert (hist_pos[:k].sum(), hist_neg[:k].sum()) == (fn, tn), k
+        assert np.array_equal(bins >= k, scores >= k / 100), k
+
+
+def test_threshold_one_falls_in_the_closed_last_bin() -> None:
+    # k = 100: a score of exactly 1 belongs to the last bin [0.99, 1], with its neighbour
+    # just below, so no bin edge separates `score >= 1`; the convention is the closed bin.
+    assert score_bins(np.array([np.nextafter(1.0, 0.0), 1.0])).tolist() == [99, 99]
+    assert score_bin(np.nextafter(0.99, 0.0)) == 98

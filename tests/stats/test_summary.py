@@ -95,7 +95,7 @@ def test_proportions_carry_the_chosen_interval(interval: str) -> None:
     assert (out["positive_rate"]["low"], out["positive_rate"]["high"]) == expected
 
 
-def test_bootstrap_intervals_are_reproducible_and_seeded() -> None:
+def test_posterior_intervals_are_reproducible_and_seeded() -> None:
     stats = _window(3)
     first = summarise(stats)["measures"]
     assert summarise(stats)["measures"] == first

@@ -6,12 +6,14 @@ plain lists they are made from); `belated.stats.summary` assembles them per wind
 
 from __future__ import annotations
 
+import math
 from collections.abc import Sequence
 from typing import Any
 
 import numpy as np
 
-from belated.stats.intervals import hanley_mcneil_arrays, proportion_interval_arrays
+from belated.stats.delong import delong_arrays, delong_interval_arrays
+from belated.stats.intervals import proportion_interval_arrays
 from belated.stats.measures import (
     NO_ACTUAL_NEGATIVES,
     NO_ACTUAL_POSITIVES,
@@ -69,11 +71,15 @@ def proportion_columns(
 
 
 def ranked_columns(stats: Sequence[WindowStats], z: float) -> dict[str, list[MeasureDict]]:
-    """roc_auc (with the Hanley-McNeil interval) and average_precision of every window."""
-    arrays = ranking_arrays(
-        stacked([s.hist_pos for s in stats]), stacked([s.hist_neg for s in stats])
-    )
-    low, high = hanley_mcneil_arrays(arrays["roc_auc"], arrays["n_pos"], arrays["n_neg"], z)
+    """roc_auc (with the logit-scale DeLong interval) and average_precision of every window.
+
+    The interval is null where DeLong's variance needs a second member of a class.
+    """
+    hist_pos = stacked([s.hist_pos for s in stats])
+    hist_neg = stacked([s.hist_neg for s in stats])
+    arrays = ranking_arrays(hist_pos, hist_neg)
+    variance = delong_arrays(hist_pos, hist_neg)["variance"]
+    low, high = delong_interval_arrays(arrays["roc_auc"], variance, z)
     out: dict[str, list[MeasureDict]] = {"roc_auc": [], "average_precision": []}
     rows = zip(
         arrays["n_pos"].tolist(),
@@ -90,6 +96,13 @@ def ranked_columns(stats: Sequence[WindowStats], z: float) -> dict[str, list[Mea
             out["roc_auc"].append(missing)
             out["average_precision"].append(dict(missing))
         else:
-            out["roc_auc"].append({"value": auc, "low": auc_low, "high": auc_high})
+            no_interval = math.isnan(auc_low)
+            out["roc_auc"].append(
+                {
+                    "value": auc,
+                    "low": None if no_interval else auc_low,
+                    "high": None if no_interval else auc_high,
+                }
+            )
             out["average_precision"].append({"value": ap, "low": None, "high": None})
     return out

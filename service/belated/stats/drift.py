@@ -18,6 +18,7 @@ live in `belated.stats.change` and are re-exported here.
 from __future__ import annotations
 
 from collections.abc import Mapping
+from typing import NamedTuple
 
 import numpy as np
 
@@ -32,6 +33,8 @@ from belated.stats.values import Value
 
 __all__ = [
     "MIN_PREDICTIONS",
+    "PSI_RESAMPLES",
+    "PsiTest",
     "SHARE_FLOOR",
     "ScoreTest",
     "benjamini_hochberg",
@@ -42,6 +45,7 @@ __all__ = [
     "newcombe_diff_interval",
     "psi",
     "psi_band",
+    "psi_test",
     "two_proportion_test",
 ]
 
@@ -155,3 +159,83 @@ def psi_band(value: float) -> str:
     if value <= PSI_MAJOR:
         return "moderate"
     return "major"
+
+
+PSI_RESAMPLES = 1000
+
+
+class PsiTest(NamedTuple):
+    """PSI on the baseline's deciles and its p-value against unchanged data (None: no test)."""
+
+    value: Value
+    p_value: float | None
+
+
+def _decile_groups(hists: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Per row: each of the 100 bins' merged-bin number, and which merged bins exist."""
+    cumulative = np.cumsum(hists, axis=1)
+    total = cumulative[:, -1:]
+    deciles = np.arange(1, 10)
+    # The first edge at or below which d/10 of the row lies, as `decile_cuts` takes it.
+    edges = np.argmax(cumulative[:, None, :] * 10 >= deciles[None, :, None] * total[:, :, None],
+                      axis=2) + 1  # fmt: skip
+    fresh = np.ones_like(edges, dtype=bool)
+    fresh[:, 1:] = edges[:, 1:] > edges[:, :-1]
+    valid = fresh & (edges < N_BINS)
+    bins = np.arange(N_BINS)
+    groups = (valid[:, :, None] & (edges[:, :, None] <= bins[None, None, :])).sum(axis=1)
+    exists = np.arange(10)[None, :] <= valid.sum(axis=1)[:, None]
+    return groups, exists
+
+
+def _psi_rows(baseline: np.ndarray, current: np.ndarray) -> np.ndarray:
+    """PSI of each row pair, cut at each baseline row's own deciles (vectorised `psi`)."""
+    groups, exists = _decile_groups(baseline)
+    onehot = groups[:, :, None] == np.arange(10)[None, None, :]
+    merged_base = np.einsum("bk,bkg->bg", baseline, onehot)
+    merged_cur = np.einsum("bk,bkg->bg", current, onehot)
+
+    def shares(merged: np.ndarray) -> np.ndarray:
+        raw = np.where(
+            exists, np.maximum(merged / merged.sum(axis=1, keepdims=True), SHARE_FLOOR), 0.0
+        )
+        out: np.ndarray = raw / raw.sum(axis=1, keepdims=True)
+        return out
+
+    e, a = shares(merged_base), shares(merged_cur)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        terms = np.where(exists, (a - e) * np.log(a / e), 0.0)
+    total: np.ndarray = terms.sum(axis=1)
+    return total
+
+
+def psi_test(
+    baseline_hist: np.ndarray,
+    current_hist: np.ndarray,
+    *,
+    min_count: int = MIN_PREDICTIONS,
+    resamples: int = PSI_RESAMPLES,
+    seed: int = 0,
+) -> PsiTest:
+    """PSI of the score distribution and its p-value under "nothing changed".
+
+    PSI has a sampling distribution: two samples of 100 predictions from one distribution
+    give PSI >= 0.1 about half the time. The p-value is that of a parametric bootstrap
+    under the null: both histograms are redrawn as multinomials of their own sizes from the
+    pooled 100-bin shares, the deciles are taken again from each redrawn baseline, and
+    p = (1 + #{PSI* >= PSI}) / (1 + B). Seeded by `seed` and the histograms, so the same
+    windows give the same p-value. The p-value is None when PSI is undefined.
+    """
+    value = psi(baseline_hist, current_hist, min_count=min_count)
+    if value.value is None:
+        return PsiTest(value, None)
+    base = np.asarray(baseline_hist, dtype=np.int64)
+    cur = np.asarray(current_hist, dtype=np.int64)
+    pooled = (base + cur).astype(np.float64)
+    rng = np.random.default_rng([int(seed), *base.tolist(), *cur.tolist()])
+    base_draws = rng.multinomial(int(base.sum()), pooled / pooled.sum(), size=resamples)
+    cur_draws = rng.multinomial(int(cur.sum()), pooled / pooled.sum(), size=resamples)
+    null = _psi_rows(base_draws.astype(np.float64), cur_draws.astype(np.float64))
+    # A tiny allowance so that a draw equal to the observed PSI up to rounding counts.
+    exceed = np.count_nonzero(null >= value.value * (1.0 - 1e-12))
+    return PsiTest(value, float((1 + exceed) / (1 + resamples)))

@@ -1,7 +1,9 @@
 """ROC AUC and average precision from the per-class score histograms.
 
-A histogram keeps 100 equal-width bins [k/100, (k+1)/100), the last closed at 1; a score's
-bin is `score_bin(p) = min(int(p * 100), 99)`. Scores that share a bin are treated as tied,
+A histogram keeps 100 equal-width bins [k/100, (k+1)/100), the last closed at 1: a score s is
+in bin k exactly when `s >= k/100` and not `s >= (k+1)/100` (k/100 the correctly rounded
+float), so a bin edge decides as a threshold does. `int(s * 100)` alone would not: 0.29 * 100
+is 28.999999999999996, one bin low. Scores that share a bin are treated as tied,
 so both measures equal what scikit-learn gives on the bin indices. Against the raw scores the
 error is bounded by the pairs (AUC) or positives (AP) that share a bin; `auc_binning_bound`
 and `ap_binning_bound` compute those bounds from the histograms themselves.
@@ -9,23 +11,39 @@ and `ap_binning_bound` compute those bounds from the histograms themselves.
 
 from __future__ import annotations
 
+import math
+
 import numpy as np
 
-from belated.stats.intervals import hanley_mcneil_arrays
+from belated.stats.delong import delong_arrays, delong_interval_arrays
 from belated.stats.measures import NO_ACTUAL_NEGATIVES, NO_ACTUAL_POSITIVES
 from belated.stats.values import Value
 
 N_BINS = 100
+# The bin edges k/100 as Python and numpy compute them (one correctly rounded division).
+EDGES: tuple[float, ...] = tuple(k / N_BINS for k in range(N_BINS + 1))
+_EDGES = np.array(EDGES)
 
 
 def score_bin(p: float) -> int:
-    """The histogram bin of a score in [0, 1]: min(int(p * 100), 99)."""
-    return min(int(p * 100), N_BINS - 1)
+    """The histogram bin k of a score in [0, 1]: k/100 <= p < (k+1)/100, the last bin closed."""
+    # p * 100 is within one rounding of the true product, so its floor is off by at most
+    # one; comparing with the two neighbouring edges settles it as `p >= k/100` would.
+    k = min(max(int(math.floor(p * N_BINS)), 0), N_BINS - 1)
+    if p < EDGES[k]:
+        return max(k - 1, 0)
+    if p >= EDGES[k + 1]:
+        return min(k + 1, N_BINS - 1)
+    return k
 
 
 def score_bins(scores: np.ndarray) -> np.ndarray:
     """`score_bin` for an array of scores, as int64."""
-    return np.minimum((np.asarray(scores, dtype=np.float64) * 100).astype(np.int64), N_BINS - 1)
+    p = np.asarray(scores, dtype=np.float64)
+    k = np.clip(np.floor(p * N_BINS), 0, N_BINS - 1).astype(np.int64)
+    k -= p < _EDGES[k]
+    k += p >= _EDGES[k + 1]
+    return np.clip(k, 0, N_BINS - 1)
 
 
 def _reason(n_pos: float, n_neg: float) -> str | None:
@@ -70,7 +88,11 @@ def ranking_arrays(hist_pos: np.ndarray, hist_neg: np.ndarray) -> dict[str, np.n
 def ranking_measures(
     hist_pos: np.ndarray, hist_neg: np.ndarray, *, z: float | None = None
 ) -> tuple[Value, Value]:
-    """(ROC AUC, average precision) of one window; with `z`, AUC's Hanley-McNeil interval."""
+    """(ROC AUC, average precision) of one window; with `z`, AUC's DeLong interval.
+
+    The interval is the logit-scale DeLong interval (`belated.stats.delong`); none when a
+    class has a single member.
+    """
     arrays = ranking_arrays(np.asarray(hist_pos)[None, :], np.asarray(hist_neg)[None, :])
     reason = _reason(float(arrays["n_pos"][0]), float(arrays["n_neg"][0]))
     if reason is not None:
@@ -79,7 +101,10 @@ def ranking_measures(
     ap = Value(float(arrays["average_precision"][0]))
     if z is None:
         return Value(auc), ap
-    low, high = hanley_mcneil_arrays(arrays["roc_auc"], arrays["n_pos"], arrays["n_neg"], z)
+    variance = delong_arrays(np.asarray(hist_pos)[None, :], np.asarray(hist_neg)[None, :])
+    low, high = delong_interval_arrays(arrays["roc_auc"], variance["variance"], z)
+    if math.isnan(float(low[0])):
+        return Value(auc), ap
     return Value(auc, float(low[0]), float(high[0])), ap
 
 

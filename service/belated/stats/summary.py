@@ -2,8 +2,9 @@
 
 This is what the API, the jobs, the dashboard and the CLI call. Every measure of the table
 in DESIGN.md is present, as {"value", "low", "high"} or, when undefined, with a "reason"
-and nulls. Intervals: the chosen proportion interval for proportions, a seeded bootstrap of
-the confusion counts for fbeta, mcc and balanced_accuracy, Hanley-McNeil for roc_auc, none
+and nulls. Intervals: the chosen proportion interval for proportions, seeded posterior draws
+of the cell shares (Jeffreys prior; `belated.stats.posterior`, `resamples` draws) for fbeta,
+mcc and balanced_accuracy, DeLong (logit scale) for roc_auc, none
 for average_precision, brier, log_loss and ece.
 
 `summarise_many` does the arithmetic of many windows at once (one numpy pass per measure
@@ -19,13 +20,7 @@ from typing import Any
 
 import numpy as np
 
-from belated.stats.bootstrap import (
-    BOOTSTRAPPED_BINARY,
-    DEFAULT_RESAMPLES,
-    Interval,
-    bootstrap_binary_many,
-    check_resamples,
-)
+from belated.stats.bootstrap import BOOTSTRAPPED_BINARY, Interval, check_resamples
 from belated.stats.bounds import coverage_bounds
 from belated.stats.calibration import ece_arrays
 from belated.stats.columns import (
@@ -52,6 +47,7 @@ from belated.stats.measures import (
     mcc,
 )
 from belated.stats.multiclass import summarise_multiclass
+from belated.stats.posterior import DEFAULT_DRAWS, posterior_binary_many
 from belated.stats.values import Value
 from belated.stats.window import WindowStats
 
@@ -97,7 +93,7 @@ def summarise_many(
     beta: float = 1.0,
     interval: str = "wilson",
     confidence: float = 0.95,
-    resamples: int = DEFAULT_RESAMPLES,
+    resamples: int = DEFAULT_DRAWS,
     seed: int = 0,
     measures: set[str] | None = None,
     baseline_prior: float | None = None,
@@ -121,8 +117,8 @@ def summarise_many(
     proportions = proportion_columns(np.array(rows, dtype=np.int64), method, confidence, z)
     boot: list[dict[str, Interval]] = [{} for _ in rows]
     if wanted.intersection(BOOTSTRAPPED_BINARY):
-        boot = bootstrap_binary_many(
-            [r[:4] for r in rows], beta=beta, confidence=confidence, resamples=resamples, seed=seed
+        boot = posterior_binary_many(
+            [r[:4] for r in rows], beta=beta, confidence=confidence, draws=resamples, seed=seed
         )
     ranked = ranked_columns(stats, z) if wanted.intersection(RANKED) else {}
     eces = (
@@ -187,7 +183,7 @@ def summarise(
     beta: float = 1.0,
     interval: str = "wilson",
     confidence: float = 0.95,
-    resamples: int = DEFAULT_RESAMPLES,
+    resamples: int = DEFAULT_DRAWS,
     seed: int = 0,
     measures: set[str] | None = None,
     baseline_prior: float | None = None,
@@ -195,8 +191,8 @@ def summarise(
     """Confusion counts, measures with intervals, estimates and bounds of one binary window.
 
     `baseline_prior` (the training or baseline share of positives), when given, adds the
-    EM re-estimated prior of the window as estimates["prior_em"]. The bootstrap is seeded
-    by `seed` and the confusion counts, so the same data gives the same intervals.
+    EM re-estimated prior of the window as estimates["prior_em"]. The posterior draws are
+    seeded by `seed` and the confusion counts, so the same data gives the same intervals.
     """
     return summarise_many(
         [stats],
