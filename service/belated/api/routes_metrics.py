@@ -9,7 +9,7 @@ from fastapi import APIRouter, Query, Response
 
 from belated.api.deps import ModelDep, NowDep, Read, SessionDep, SettingsDep
 from belated.metrics import delays, params, thresholds
-from belated.metrics.windows import Options, build
+from belated.metrics.windows import MeasureOptions, windows_of_range
 
 router = APIRouter(prefix="/v1/models/{model}", tags=["history"])
 
@@ -39,7 +39,7 @@ def get_metrics(
     params.check_interval(interval, confidence, resamples)
     filters = params.parse_segments(segment)
     wanted = params.parse_measures(measures, model.kind)
-    opts = Options(
+    opts = MeasureOptions(
         beta=b,
         interval=interval,
         confidence=confidence,
@@ -47,7 +47,7 @@ def get_metrics(
         measures=wanted,
         rolling=rolling,
     )
-    windows = build(session, model, rng, opts, filters, now, settings.max_segment_values)
+    windows = windows_of_range(session, model, rng, opts, filters, now, settings.max_segment_values)
     # serialised directly: FastAPI's generic encoder costs more than the measures for a year
     body = {
         "model": model.name,

@@ -17,7 +17,7 @@ from sqlalchemy.orm import Session
 
 from belated.clock import now
 from belated.metrics.params import Range
-from belated.metrics.windows import Options, build
+from belated.metrics.windows import MeasureOptions, windows_of_range
 from belated.store.tables import ModelRow, ServiceState
 from belated.timeutil import floor_window, parse_ts
 
@@ -31,7 +31,7 @@ def latest(*, session: Session, model: ModelRow, max_values: int) -> dict[str, A
     at = now()
     end = floor_window(at, "day") + timedelta(days=1)
     rng = Range("day", end - timedelta(days=30), end)
-    windows = build(session, model, rng, Options(resamples=1), (), at, max_values)
+    windows = windows_of_range(session, model, rng, MeasureOptions(resamples=1), (), at, max_values)
     found = next((w for w in reversed(windows) if w["settled"] and w["predictions"]), None)
     figures: dict[str, Any] = {"name": model.name}
     if found is not None:

@@ -26,7 +26,7 @@ CALIBRATION_WINDOWS = 7
 
 
 @dataclass(frozen=True)
-class Options:
+class MeasureOptions:
     """How to compute measures."""
 
     beta: float = 1.0
@@ -94,11 +94,11 @@ def settled_window(totals: Totals, end: datetime, model: ModelRow, now: datetime
     return end + timedelta(days=model.label_delay_days) < now
 
 
-def build(
+def windows_of_range(
     session: Session,
     model: ModelRow,
     rng: Range,
-    opts: Options,
+    opts: MeasureOptions,
     filters: tuple[tuple[str, str], ...],
     now: datetime,
     max_values: int,
@@ -218,7 +218,7 @@ def _counts_block(acc: Totals, start: datetime, end: datetime, now: datetime) ->
     }
 
 
-def _multiclass(model: ModelRow, acc: Totals, opts: Options) -> dict[str, Any]:
+def _multiclass(model: ModelRow, acc: Totals, opts: MeasureOptions) -> dict[str, Any]:
     classes = list(model.classes)
     matrix = np.zeros((len(classes), len(classes)), np.int64)
     pos = {c: k for k, c in enumerate(classes)}

@@ -13,7 +13,7 @@ from belated.alerts import rules as alert_rules
 from belated.metrics import delays as metric_delays
 from belated.metrics import params
 from belated.metrics import thresholds as metric_thresholds
-from belated.metrics.windows import Options, build
+from belated.metrics.windows import MeasureOptions, windows_of_range
 from belated.store import model_registry
 from belated.store.keys import Principal
 from belated.store.tables import ModelRow
@@ -104,7 +104,9 @@ def _windows(
     filters: tuple[tuple[str, str], ...] = (),
 ) -> list[dict[str, Any]]:
     wanted = frozenset(CHARTED["binary"]) if row.kind == "binary" else None
-    return build(session, row, rng, Options(measures=wanted), filters, now, max_values)
+    return windows_of_range(
+        session, row, rng, MeasureOptions(measures=wanted), filters, now, max_values
+    )
 
 
 def overview(*, session: Session, who: Principal, now: datetime, max_values: int) -> dict[str, Any]:
