@@ -38,8 +38,11 @@ def shown(m: dict[str, Any]) -> str:
 
 @pytest.fixture()
 def shop(live: LiveServer, tenant: Tenant, engine: Engine) -> str:
-    """A model with 10 days of orders; 95% of those older than 3 days carry their outcome."""
-    model = create_model(tenant, engine, min_coverage=0.9)
+    """A model with 10 days of orders; 95% of those older than 3 days carry their outcome.
+
+    Coverage alone never settles a window: days older than the 5-day label delay are
+    settled, younger closed days are provisional."""
+    model = create_model(tenant, engine, min_coverage=0.9, label_delay_days=5)
     orders = shop_orders(6_000, seed=31, days=10)
     old = orders["ts"] < orders["ts"].max() - pd.Timedelta(days=3)
     known = orders[old].sample(frac=0.95, random_state=np.random.default_rng(31))

@@ -188,14 +188,18 @@ def settled(
     min_coverage: float,
     label_delay_days: float,
 ) -> bool | None:
-    """DESIGN.md: closed, and coverage >= min_coverage or the end > label_delay_days ago.
+    """DESIGN.md "settled" for a model without arrival curves (these scenarios have fewer
+    than 200 labels of a class, the least a curve needs): closed, and the end more than
+    `label_delay_days` ago; coverage alone never settles a window. `n_labelled` and
+    `min_coverage` are kept for the callers: without curves they do not count.
 
     None for a closed empty window, whose coverage (0/0) the design leaves open."""
+    del n_labelled, min_coverage
     if end > now:
         return False
     if n == 0:
         return None
-    return n_labelled / n >= min_coverage or end + timedelta(days=label_delay_days) < now
+    return end + timedelta(days=label_delay_days) < now
 
 
 # --- the reference: scikit-learn on the rows of a window -------------------------------------

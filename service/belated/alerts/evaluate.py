@@ -14,9 +14,10 @@ from belated.alerts import lifecycle
 from belated.alerts.decide import Decision, WindowInput, decide, finite, pooled, verdicts
 from belated.alerts.schemas import RuleCreate, RuleSettings, settings_from
 from belated.alerts.tables import Rule, RuleWindow
+from belated.metrics.arrival import Curves
 from belated.metrics.load import ensure_fresh, epoch_hour, segment_counts
 from belated.metrics.params import Range
-from belated.metrics.windows import settled_window, to_stats, window_totals
+from belated.metrics.windows import curves_of, settled_window, to_stats, window_totals
 from belated.stats.window import WindowStats
 from belated.store import segments
 from belated.store.tables import Label, ModelRow
@@ -86,6 +87,7 @@ def _series(
     now: datetime,
     evaluated: int,
     lookback: int,
+    curves: Curves | None,
 ) -> list[WindowInput]:
     g = rule.granularity
     step = window_step(g)
@@ -116,7 +118,7 @@ def _series(
             start=s,
             end=s + step,
             closed=s + step <= now,
-            settled=settled_window(a, s + step, model, now),
+            settled=settled_window(a, s + step, model, now, curves),
             stats=to_stats(a),
             tag_counts=tag_counts.get(i, {}),
         )
@@ -156,13 +158,14 @@ def evaluate_rule(
     if fixed_range is not None:
         lo, hi = min(lo, fixed_range.start), max(hi, fixed_range.end)
     ensure_fresh(session, model, epoch_hour(lo), epoch_hour(hi), max_values)
+    curves = curves_of(session, model, now)  # settledness by class, for every segment
     segs: list[Segment] = [None]
     if cfg.segment_by:
         admitted = segments.admitted(session=session, model_id=model.id)
         segs = [(cfg.segment_by, v) for v in admitted.get(cfg.segment_by, [])]
     decisions: dict[str, list[Decision]] = {}
     for seg in segs:
-        windows = _series(session, model, cfg, seg, now, evaluated, lookback)
+        windows = _series(session, model, cfg, seg, now, evaluated, lookback, curves)
         fixed = _fixed_baseline(session, model, cfg, now, seg)
         decisions[f"{seg[0]}:{seg[1]}" if seg else ""] = decide(
             cfg,

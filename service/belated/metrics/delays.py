@@ -8,6 +8,7 @@ from typing import Any
 import numpy as np
 from sqlalchemy.orm import Session
 
+from belated.metrics.arrival import curves_answer, model_curves
 from belated.metrics.load import ensure_fresh, epoch_hour, load_totals
 from belated.stats.delays import km_quantiles
 from belated.store.tables import ModelRow
@@ -46,9 +47,13 @@ def over_range(
         agg[0] += n
         agg[1] += int(acc["n_labelled"])
     censored = np.concatenate(ages) if ages else np.zeros(0)
+    arrival: dict[str, Any] = {}
+    if model.kind == "binary":  # the curves come from the whole model's recent history
+        arrival = curves_answer(model_curves(session, model, now), model)
     return {
         "unit": "hours",
         "quantiles": km_quantiles(delay_hist, censored),
+        **arrival,
         "coverage_by_age": [
             {"age_days": d, "coverage": round(v[1] / v[0], 6), "predictions": v[0]}
             for d, v in sorted(by_age.items())

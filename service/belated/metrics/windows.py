@@ -3,13 +3,19 @@
 from __future__ import annotations
 
 from dataclasses import dataclass
-from datetime import datetime, timedelta
+from datetime import UTC, datetime, timedelta
 from typing import Any
 
 import numpy as np
 import orjson
 from sqlalchemy.orm import Session
 
+from belated.metrics.arrival import (
+    Curves,
+    model_curves,
+    projected,
+    settled_by_class,
+)
 from belated.metrics.load import ensure_fresh, epoch_hour, load_totals
 from belated.metrics.params import Range
 from belated.stats.calibration import ece_arrays
@@ -53,6 +59,48 @@ def to_stats(totals: Totals) -> WindowStats:
     )
 
 
+Cohort = tuple[datetime, timedelta, Totals]  # a rollup row: its start, length and totals
+
+
+def window_rows(
+    session: Session,
+    model: ModelRow,
+    rng: Range,
+    lookback: int,
+    filters: tuple[tuple[str, str], ...],
+    now: datetime,
+) -> tuple[list[datetime], list[list[Cohort]]]:
+    """The rollup rows of each base window of the range and of `lookback` windows before it
+    (the caller has refreshed the range: see `ensure_fresh`)."""
+    step = rng.step
+    first = rng.start - lookback * step
+    starts = [first + i * step for i in range(int((rng.end - first) / step))]
+    lo, hi = epoch_hour(first), epoch_hour(rng.end)
+    level = "h" if rng.granularity == "hour" else "d"
+    length = timedelta(hours=1 if level == "h" else 24)
+    rows = load_totals(
+        session, model, level=level, lo=lo, hi=hi, filters=filters, now=now, delays=False
+    )
+    parts: list[list[Cohort]] = [[] for _ in starts]
+    index = {epoch_hour(s): i for i, s in enumerate(starts)}
+    span = int(step / timedelta(hours=1))
+    base = epoch_hour(first)
+    for start, totals in sorted(rows.items()):
+        i = index.get(start)
+        if i is None:
+            i = (start - base) // span
+        if 0 <= i < len(parts):
+            parts[i].append((datetime.fromtimestamp(start * 3600, UTC), length, totals))
+    return starts, parts
+
+
+def _sum(cohorts: list[Cohort]) -> Totals:
+    out = Totals()
+    for _, _, totals in cohorts:
+        out.add(totals)
+    return out
+
+
 def window_totals(
     session: Session,
     model: ModelRow,
@@ -63,35 +111,25 @@ def window_totals(
 ) -> tuple[list[datetime], list[Totals]]:
     """The totals of each base window of the range and of `lookback` windows before it
     (the caller has refreshed the range: see `ensure_fresh`)."""
-    step = rng.step
-    first = rng.start - lookback * step
-    starts = [first + i * step for i in range(int((rng.end - first) / step))]
-    lo, hi = epoch_hour(first), epoch_hour(rng.end)
-    level = "h" if rng.granularity == "hour" else "d"
-    rows = load_totals(
-        session, model, level=level, lo=lo, hi=hi, filters=filters, now=now, delays=False
-    )
-    accs = [Totals() for _ in starts]
-    index = {epoch_hour(s): i for i, s in enumerate(starts)}
-    span = int(step / timedelta(hours=1))
-    base = epoch_hour(first)
-    for start, acc in rows.items():
-        i = index.get(start)
-        if i is None:
-            i = (start - base) // span
-        if 0 <= i < len(accs):
-            accs[i].add(acc)
-    return starts, accs
+    starts, parts = window_rows(session, model, rng, lookback, filters, now)
+    return starts, [_sum(p) for p in parts]
 
 
-def settled_window(totals: Totals, end: datetime, model: ModelRow, now: datetime) -> bool:
-    """Whether a window's labels are in (see DESIGN.md, "settled")."""
-    if end > now:
-        return False
-    n, labelled = totals["n_pred"], totals["n_labelled"]
-    if n == 0 or labelled / n >= model.min_coverage:
-        return True
-    return end + timedelta(days=model.label_delay_days) < now
+def settled_window(
+    totals: Totals, end: datetime, model: ModelRow, now: datetime, curves: Curves | None = None
+) -> bool:
+    """Whether a window's labels are in (DESIGN.md "settled"; see metrics/arrival.py)."""
+    return settled_by_class(totals, end, model, now, curves)
+
+
+def curves_of(session: Session, model: ModelRow, now: datetime) -> Curves | None:
+    """A binary model's arrival curves (None for a multiclass model). They are fitted on the
+    rollups as the last refresh left them, not refreshed for the read: a curve is an estimate
+    over months of cohorts, which the labels of the last minute do not move, and refreshing
+    its whole history would make every read pay for every write."""
+    if model.kind != "binary":
+        return None
+    return model_curves(session, model, now)
 
 
 def windows_of_range(
@@ -107,9 +145,13 @@ def windows_of_range(
     lookback = opts.rolling - 1 + CALIBRATION_WINDOWS * 2
     lo, hi = epoch_hour(rng.start - lookback * rng.step), epoch_hour(rng.end)
     ensure_fresh(session, model, lo, hi, max_values)
-    starts, base = window_totals(session, model, rng, lookback, filters, now)
+    curves = curves_of(session, model, now)
+    starts, rows = window_rows(session, model, rng, lookback, filters, now)
+    base = [_sum(r) for r in rows]
     step = rng.step
-    settled = [settled_window(a, s + step, model, now) for a, s in zip(base, starts, strict=True)]
+    settled = [
+        settled_window(a, s + step, model, now, curves) for a, s in zip(base, starts, strict=True)
+    ]
     out: list[dict[str, Any]] = []
     binary: list[tuple[dict[str, Any], WindowStats, float | None]] = []
     references = _references(base, settled) if model.kind == "binary" else []
@@ -121,6 +163,9 @@ def windows_of_range(
         start, end = starts[i], starts[i] + step
         window = _counts_block(acc, start, end, now)
         window["settled"] = all(settled[j] for j in parts)
+        window.update(
+            _late_labels(window, [c for j in parts for c in rows[j]], curves, model, now, opts)
+        )
         if model.kind == "binary":
             ece_value, prior = references[i]
             window["estimates"] = {"calibration_error": ece_value}
@@ -166,6 +211,25 @@ def windows_of_range(
             window.update(summary)
             window["estimates"] = estimates
     return out
+
+
+def _late_labels(
+    window: dict[str, Any],
+    cohorts: list[Cohort],
+    curves: Curves | None,
+    model: ModelRow,
+    now: datetime,
+    opts: MeasureOptions,
+) -> dict[str, Any]:
+    """`projected`, `expected_final_coverage` and `settles_by` (null on settled windows)."""
+    empty: dict[str, Any] = {"projected": None, "expected_final_coverage": None, "settles_by": None}
+    if window["settled"] or curves is None or not window["predictions"]:
+        return empty
+    answer = projected(cohorts, curves, model, now, beta=opts.beta, confidence=opts.confidence)
+    if opts.measures:
+        answer["projected"] = {k: v for k, v in answer["projected"].items() if k in opts.measures}
+    answer.pop("arrived_share", None)
+    return answer
 
 
 def _references(base: list[Totals], settled: list[bool]) -> list[tuple[float | None, float | None]]:

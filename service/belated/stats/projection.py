@@ -93,6 +93,7 @@ def project(
     eventual_coverage: float = 1.0,
     min_arrival: float = MIN_ARRIVAL,
     min_coverage: float | None = None,
+    one_class_suffices: bool = False,
 ) -> dict[str, Any]:
     """Projected measures of one unsettled window, with intervals and the reasons of nulls.
 
@@ -104,6 +105,11 @@ def project(
     the share of all the window's expected labels arrived (the early rules' 30%), and
     `settles_in_hours` how many hours from now until every class's share reaches
     `min_coverage` (0 when it has, None when never or not asked).
+
+    `one_class_suffices`: when every prediction is labelled at last (implied negatives, so
+    `eventual_coverage` is 1), the unlabelled predictions of a cell are exactly the labels
+    still to come, and one class's arrival identifies the cell's share of positives; then
+    the measures are null only when every class is below `min_arrival`.
     """
     if not 0.0 < eventual_coverage <= 1.0:
         raise ValueError("eventual_coverage must lie in (0, 1]")
@@ -134,6 +140,8 @@ def project(
     if min_coverage is not None:
         out["settles_in_hours"] = settles_in_hours(strata, members, min_coverage)
     low_class = [(name, a) for name, a in zip(CLASS_NAMES, arrival, strict=True) if a < min_arrival]
+    if one_class_suffices and eventual_coverage >= 1.0 and len(low_class) < len(CLASS_NAMES):
+        low_class = []
     if low_class:
         name, a = low_class[0]
         reason = f"too few {name} labels expected by this age ({a:.3f} of them arrived)"
