@@ -344,8 +344,8 @@ class Client:
     def metrics(self, model: str, **params: Any) -> pd.DataFrame:
         """One row per window: counts, coverage, settled, closed, and each measure flattened.
 
-        A measure `m` gives columns `m`, `m_low`, `m_high`; label-free estimates give
-        `estimated_m`; coverage bounds `m_bound_low`, `m_bound_high`; multiclass per-class
+        A measure `m` gives columns `m`, `m_low`, `m_high`; measures implied by the scores
+        alone give `implied_m`; coverage bounds `m_bound_low`, `m_bound_high`; multiclass per-class
         measures `<class>.m`. `start` and `end` are UTC timestamps; undefined values are NaN.
         """
         answer = self.metrics_json(model, **params)
@@ -417,8 +417,10 @@ def flatten_window(window: dict[str, Any]) -> dict[str, Any]:
             _value(m, "low"),
             _value(m, "high"),
         )
-    for name, m in (window.get("estimates") or {}).items():
-        row[f"estimated_{name}"] = (
+    for name, m in (window.get("implied") or {}).items():
+        if name in ("reference", "adjusted"):
+            continue  # the reference period and the adjusted flag are not measures
+        row[f"implied_{name}"] = (
             _value(m, "value") if isinstance(m, dict) else (np.nan if m is None else float(m))
         )
     for name, b in (window.get("bounds") or {}).items():

@@ -1,5 +1,5 @@
 """Every rule kind, end to end through the running scheduler, on both stores: volume, stall
-(coverage and silence), shift on score PSI and tag PSI, floor, and estimated measures."""
+(coverage and silence), shift on score PSI and tag PSI, floor, and implied measures."""
 
 from __future__ import annotations
 
@@ -29,7 +29,7 @@ def test_every_rule_kind_fires_through_the_scheduler(
         "psi": {"kind": "shift", "measure": "score_psi", "threshold": 0.25},
         "tag": {"kind": "shift", "measure": "tag_psi:region", "threshold": 0.25},
         "floor": {"kind": "floor", "measure": "precision", "threshold": 0.9, "min_support": 20},
-        "estimated": {"kind": "floor", "measure": "estimated_precision", "threshold": 0.99},
+        "implied": {"kind": "floor", "measure": "implied.precision", "threshold": 0.99},
     }
     ids = {}
     for name, body in rules.items():

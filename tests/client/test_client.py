@@ -125,8 +125,8 @@ def test_metrics_frame_matches_the_json_and_scikit_learn(
                 assert row[name + suffix] == pytest.approx(nan(m[part]), nan_ok=True)
         for name, b in (w["bounds"] or {}).items():
             assert row[f"{name}_bound_low"] == pytest.approx(nan(b["low"]), nan_ok=True)
-        assert row["estimated_precision"] == pytest.approx(
-            nan(w["estimates"]["precision"]["value"]), nan_ok=True
+        assert row["implied_precision"] == pytest.approx(
+            nan(w["implied"]["precision"]["value"]), nan_ok=True
         )
 
     # The same windows from the raw orders, outside the service: pandas and scikit-learn.

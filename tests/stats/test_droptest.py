@@ -72,7 +72,7 @@ def test_a_missing_p_value_is_never_significant() -> None:
         assert not result.significant(ALPHA) and not significant(result.p_value, ALPHA)
     assert significant(0.01, ALPHA) and not significant(0.05, ALPHA)
     nothing = WindowStats.empty()
-    assert drop_test("estimated_precision", nothing, base).p_value is None
+    assert drop_test("implied.precision", nothing, base).p_value is None
     assert drop_test("positive_rate", nothing, base).p_value is None
 
 
@@ -133,7 +133,7 @@ def test_confusion_bootstrap_false_alarm_rate(tolerance: float) -> None:
 
 
 @pytest.mark.slow
-@pytest.mark.parametrize("measure", ["estimated_precision", "estimated_fbeta"])
+@pytest.mark.parametrize("measure", ["implied.precision", "implied.fbeta"])
 def test_implied_bootstrap_false_alarm_rate(measure: str) -> None:
     # Seeded simulation under H0 (both windows from one population): calibrated scores
     # p ~ Beta(1, 4), flagged at p >= 0.4 (about 13%), windows of 150 predictions (about

@@ -33,13 +33,13 @@ def test_expected_precision_is_within_four_standard_errors_of_the_truth(seed: in
     flagged = p >= 0.4
     assert flagged.sum() >= 10_000
     stats = _unlabelled_window(p, 0.4)
-    estimated = summarise(stats)["estimates"]["precision"]["value"]
+    estimated = summarise(stats)["implied"]["precision"]["value"]
     truth = (y & flagged).sum() / flagged.sum()
     # Given the scores, TP is a sum of independent Bernoulli(p): SE = sqrt(sum p(1-p)) / n_pp.
     se = math.sqrt(float((p[flagged] * (1 - p[flagged])).sum())) / flagged.sum()
     assert abs(estimated - truth) < 4 * se
     # The same check for prevalence over all predictions.
-    prevalence = summarise(stats)["estimates"]["prevalence"]["value"]
+    prevalence = summarise(stats)["implied"]["prevalence"]["value"]
     assert abs(prevalence - y.mean()) < 4 * math.sqrt(float((p * (1 - p)).sum())) / p.size
 
 
@@ -61,17 +61,17 @@ def test_under_a_prior_shift_the_naive_estimate_is_biased_and_em_is_not() -> Non
     # Saerens, Latinne and Decaestecker (2002), Neural Computation 14(1): EM recovers the
     # new prior from the unlabelled window; the plain mean score stays near the old one.
     stats, truth = _shifted_window(seed=8, train_prior=0.3, window_prior=0.1)
-    naive = summarise(stats)["estimates"]["prevalence"]["value"]
+    naive = summarise(stats)["implied"]["prevalence"]["value"]
     em = em_prior(stats.hist_all, stats.ssum_all, 0.3)
     assert em is not None
     assert abs(naive - truth) > 0.04
     assert abs(em - truth) < 0.01
-    assert summarise(stats, baseline_prior=0.3)["estimates"]["prior_em"]["value"] == em
+    assert summarise(stats, baseline_prior=0.3)["implied"]["prior_em"]["value"] == em
 
 
 def test_without_a_shift_both_agree_with_the_truth() -> None:
     stats, truth = _shifted_window(seed=9, train_prior=0.3, window_prior=0.3)
-    naive = summarise(stats)["estimates"]["prevalence"]["value"]
+    naive = summarise(stats)["implied"]["prevalence"]["value"]
     em = em_prior(stats.hist_all, stats.ssum_all, 0.3)
     assert abs(naive - truth) < 0.01
     assert em is not None and abs(em - truth) < 0.01

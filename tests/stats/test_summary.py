@@ -46,8 +46,8 @@ def test_every_measure_of_the_design_table_is_present_and_json_ready() -> None:
     assert list(out["measures"]) == DESIGN_TABLE == list(BINARY_MEASURES)
     _plain(out)
     json.dumps(out, allow_nan=False)
-    assert set(out) == {"confusion", "measures", "estimates", "bounds"}
-    assert set(out["estimates"]) == {"precision", "recall", "fbeta", "prevalence", "prior_em"}
+    assert set(out) == {"confusion", "measures", "implied", "bounds"}
+    assert set(out["implied"]) == {"precision", "recall", "fbeta", "prevalence", "prior_em"}
     assert set(out["bounds"]) == {"precision", "recall", "fbeta"}
     for name, value in out["measures"].items():
         assert value["value"] is not None, name
@@ -64,7 +64,7 @@ def test_an_empty_window_is_all_undefined_with_reasons() -> None:
     assert out["measures"]["precision"]["reason"] == "no predicted positives"
     assert out["measures"]["positive_rate"]["reason"] == "no predictions"
     assert out["bounds"] is None
-    assert out["estimates"]["precision"] == {"value": None, "reason": "no predictions"}
+    assert out["implied"]["precision"] == {"value": None, "reason": "no predictions"}
 
 
 def test_values_agree_with_the_measure_functions() -> None:

@@ -27,7 +27,8 @@ PROPORTIONS: dict[str, tuple[tuple[str, ...], tuple[str, ...]]] = {
     "npv": (("tn",), ("tn", "fn")),
     "prevalence": (("tp", "fn"), ("tp", "fp", "fn", "tn")),
 }
-LABEL_FREE = ("positive_rate", "estimated_precision", "estimated_recall", "estimated_fbeta")
+IMPLIED_PREFIX = "implied."
+LABEL_FREE = ("positive_rate", "implied.precision", "implied.recall", "implied.fbeta")
 SHIFT_MEASURES = ("positive_rate", "score_psi")  # and tag_psi:<key>
 
 

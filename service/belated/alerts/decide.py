@@ -60,10 +60,10 @@ def _confusion(s: WindowStats) -> dict[str, int]:
 def measure_value(
     measure: str, s: WindowStats, beta: float, confidence: float
 ) -> tuple[float | None, float | None, float | None]:
-    """A measure's value and interval in one window (estimates for estimated_*)."""
-    if measure.startswith("estimated_"):
-        est = summarise(s, beta=beta, measures={"precision"}, resamples=1)["estimates"]
-        value = est.get(measure.removeprefix("estimated_"), {}).get("value")
+    """A measure's value and interval in one window (the implied block for implied.*)."""
+    if measure.startswith(catalog.IMPLIED_PREFIX):
+        est = summarise(s, beta=beta, measures={"precision"}, resamples=1)["implied"]
+        value = est.get(measure.removeprefix(catalog.IMPLIED_PREFIX), {}).get("value")
         return value, None, None
     out = summarise(s, beta=beta, confidence=confidence, measures={measure})["measures"][measure]
     return out["value"], out["low"], out["high"]

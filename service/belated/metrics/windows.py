@@ -16,10 +16,10 @@ from belated.metrics.arrival import (
     projected,
     settled_by_class,
 )
+from belated.metrics.implied import implied_blocks, reference_prior
 from belated.metrics.load import ensure_fresh, epoch_hour, load_totals
 from belated.metrics.params import Range
 from belated.stats.calibration import ece_arrays
-from belated.stats.estimates import em_prior_many
 from belated.stats.multiclass import summarise_multiclass
 from belated.stats.summary import summarise_many
 from belated.stats.window import WindowStats
@@ -153,6 +153,7 @@ def windows_of_range(
         settled_window(a, s + step, model, now, curves) for a, s in zip(base, starts, strict=True)
     ]
     out: list[dict[str, Any]] = []
+    # (window, its statistics, the calibration error of the trailing settled windows)
     binary: list[tuple[dict[str, Any], WindowStats, float | None]] = []
     references = _references(base, settled) if model.kind == "binary" else []
     for i in range(lookback, len(starts)):
@@ -167,9 +168,8 @@ def windows_of_range(
             _late_labels(window, [c for j in parts for c in rows[j]], curves, model, now, opts)
         )
         if model.kind == "binary":
-            ece_value, prior = references[i]
-            window["estimates"] = {"calibration_error": ece_value}
-            binary.append((window, to_stats(acc), prior))
+            ece_value, _ = references[i]
+            binary.append((window, to_stats(acc), ece_value))
         else:
             window.update(_multiclass(model, acc, opts))
         out.append(window)
@@ -183,33 +183,12 @@ def windows_of_range(
             resamples=opts.resamples,
             measures=set(opts.measures) if opts.measures else None,
         )
-        # the EM prior is of use where outcomes are missing; skip it where all are in
-        wanted = [
-            i
-            for i, (_, stats, prior) in enumerate(binary)
-            if prior is not None and 0 < prior < 1 and stats.n_labelled < stats.n_pred
-        ]
-        priors = (
-            dict(
-                zip(
-                    wanted,
-                    em_prior_many(
-                        np.array([binary[i][1].hist_all for i in wanted]),
-                        np.array([binary[i][1].ssum_all for i in wanted]),
-                        np.array([binary[i][2] for i in wanted], dtype=np.float64),
-                    ),
-                    strict=True,
-                )
-            )
-            if wanted
-            else {}
-        )
-        for i, ((window, _, _), summary) in enumerate(zip(binary, summaries, strict=True)):
-            estimates = {**summary.pop("estimates", {}), **window["estimates"]}
-            if i in priors:
-                estimates["prior_em"] = {"value": priors[i]}
+        prior, period = reference_prior(session, model, now)
+        implied = implied_blocks([b[1] for b in binary], model, prior, opts.beta)
+        for (window, _, ece), summary, block in zip(binary, summaries, implied, strict=True):
+            summary.pop("implied", None)
             window.update(summary)
-            window["estimates"] = estimates
+            window["implied"] = {**block, "calibration_error": ece, "reference": period}
     return out
 
 

@@ -5,7 +5,7 @@
 - roc_auc: DeLong on the logit scale (`delong.auc_drop_p_value`);
 - fbeta, mcc, balanced_accuracy: a seeded bootstrap of the confusion counts;
 - average_precision: a seeded bootstrap of the per-class score histograms;
-- estimated_precision, estimated_recall, estimated_fbeta: a seeded bootstrap of the score
+- implied.precision, implied.recall, implied.fbeta: a seeded bootstrap of the score
   histogram split at the flagged predictions (`implied_cells`).
 
 The bootstrap tests resample under the null, as Efron and Tibshirani (1993, An
@@ -55,7 +55,7 @@ PROPORTION_PARTS: dict[str, tuple[tuple[str, ...], tuple[str, ...]]] = {
     "prevalence": (("tp", "fn"), ("tp", "fp", "fn", "tn")),
 }
 CONFUSION_BOOTSTRAPPED = ("fbeta", "mcc", "balanced_accuracy")
-IMPLIED = ("estimated_precision", "estimated_recall", "estimated_fbeta")
+IMPLIED = ("implied.precision", "implied.recall", "implied.fbeta")
 DROP_MEASURES: tuple[str, ...] = (
     *PROPORTION_PARTS,
     "positive_rate",
@@ -170,7 +170,7 @@ def implied_cells(
 
 
 def implied_statistic(measure: str, means: np.ndarray, beta: float) -> Statistic:
-    """estimated_precision, _recall or _fbeta of rows of implied cells (see `implied_cells`)."""
+    """implied.precision, .recall or .fbeta of rows of implied cells (see `implied_cells`)."""
     half = means.size // 2
 
     def statistic(cells: np.ndarray) -> np.ndarray:
@@ -188,9 +188,9 @@ def _implied_arrays(
 ) -> np.ndarray:
     b2 = beta * beta
     with np.errstate(divide="ignore", invalid="ignore"):
-        if measure == "estimated_precision":
+        if measure == "implied.precision":
             out = exp_tp / (exp_tp + exp_fp)
-        elif measure == "estimated_recall":
+        elif measure == "implied.recall":
             out = exp_tp / (exp_tp + exp_fn)
         else:
             out = (1.0 + b2) * exp_tp / ((1.0 + b2) * exp_tp + b2 * exp_fn + exp_fp)
@@ -200,9 +200,9 @@ def _implied_arrays(
 
 def _implied_value(measure: str, s: WindowStats, beta: float) -> float | None:
     tp, fp, fn = float(s.exp_tp), float(s.exp_fp), float(s.exp_fn)
-    if measure == "estimated_fbeta":
+    if measure == "implied.fbeta":
         return fbeta_from_counts(tp, fp, fn, beta)
-    denominator = tp + fp if measure == "estimated_precision" else tp + fn
+    denominator = tp + fp if measure == "implied.precision" else tp + fn
     return None if denominator == 0 else tp / denominator
 
 

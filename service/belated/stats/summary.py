@@ -168,7 +168,7 @@ def summarise_many(
             {
                 "confusion": {"tp": tp, "fp": fp, "fn": fn, "tn": tn},
                 "measures": out,
-                "estimates": _estimates(s, beta, baseline_prior),
+                "implied": _implied(s, beta, baseline_prior),
                 "bounds": coverage_bounds(
                     tp, fp, fn, tn, n_pred_pos=n_pred_pos, n_pred=n_pred, beta=beta
                 ),
@@ -188,10 +188,11 @@ def summarise(
     measures: set[str] | None = None,
     baseline_prior: float | None = None,
 ) -> dict[str, Any]:
-    """Confusion counts, measures with intervals, estimates and bounds of one binary window.
+    """Confusion counts, measures with intervals, implied measures and bounds of one binary
+    window.
 
     `baseline_prior` (the training or baseline share of positives), when given, adds the
-    EM re-estimated prior of the window as estimates["prior_em"]. The posterior draws are
+    EM re-estimated prior of the window as implied["prior_em"]. The posterior draws are
     seeded by `seed` and the confusion counts, so the same data gives the same intervals.
     """
     return summarise_many(
@@ -206,10 +207,11 @@ def summarise(
     )[0]
 
 
-def _estimates(
+def _implied(
     stats: WindowStats, beta: float, baseline_prior: float | None
 ) -> dict[str, dict[str, Any]]:
-    """Label-free estimates as {"value": ...} (plus "reason" when undefined)."""
+    """Measures implied by the scores alone (unadjusted expected counts) as {"value": ...}
+    (plus "reason" when undefined); metrics/implied.py adjusts them to the window's prior."""
     estimated = expected_measures(
         float(stats.exp_tp),
         float(stats.exp_fp),

@@ -28,7 +28,7 @@ HEADLINE = {
     "binary": ("precision", "recall", "fbeta"),
     "multiclass": ("precision_macro", "recall_macro", "fbeta_macro"),
 }
-ESTIMATED = ("precision", "recall")
+IMPLIED = ("precision", "recall")
 NAMES = {
     "precision": "Precision",
     "recall": "Recall",
@@ -218,7 +218,7 @@ def model_view(
             alert_rules.rule_read(r, row.name)
             for r in alert_rules.list_rules(session=session, model=row)
         ],
-        "estimates_svg": None,
+        "implied_svg": None,
         "sweep": None,
     }
     if row.kind == "binary":
@@ -234,16 +234,14 @@ def _binary_extras(
     now: datetime,
     max_values: int,
 ) -> dict[str, Any]:
-    """Label-free estimates, the threshold sweep and the label delays of a binary model."""
+    """Implied measures, the threshold sweep and the label delays of a binary model."""
     g = rng.granularity
-    strips = [
-        (f"estimated {name_of(m).lower()}", _series(windows, m, g, "estimates")) for m in ESTIMATED
-    ]
+    strips = [(f"implied {name_of(m).lower()}", _series(windows, m, g, "implied")) for m in IMPLIED]
     latest_cal = next(
         (
-            w["estimates"].get("calibration_error")
+            w["implied"].get("calibration_error")
             for w in reversed(windows)
-            if w["estimates"].get("calibration_error") is not None
+            if w["implied"].get("calibration_error") is not None
         ),
         None,
     )
@@ -273,8 +271,8 @@ def _binary_extras(
         for a in delays["coverage_by_age"]
     ]
     return {
-        "estimates_svg": charts.strip_chart(
-            strips, title="Label-free estimates from scores alone", chart_id="estimates"
+        "implied_svg": charts.strip_chart(
+            strips, title="Measures implied by the scores alone", chart_id="implied"
         ),
         "calibration_error": latest_cal,
         "sweep": sweep,
