@@ -359,7 +359,11 @@ class Client:
         return frame
 
     def thresholds(self, model: str, **params: Any) -> dict[str, Any]:
-        """The threshold sweep and the recommended thresholds over a time range."""
+        """The threshold sweep and the recommended thresholds over a time range.
+
+        Without `start`/`end` the range is the settled days of the last 30 days. Tag filters
+        are keyword arguments named `tag.<key>`: `thresholds(m, **{"tag.channel": "web"})`.
+        """
         return cast(
             dict[str, Any],
             self.request("GET", f"/v1/models/{model}/thresholds", params=_query(params)),

@@ -5,9 +5,10 @@ from __future__ import annotations
 from typing import Any
 
 import orjson
-from fastapi import APIRouter, Query, Response
+from fastapi import APIRouter, Query, Request, Response
 
 from belated.api.deps import ModelDep, NowDep, Read, SessionDep, SettingsDep
+from belated.errors import invalid_field
 from belated.metrics import delays, params, thresholds
 from belated.metrics.windows import MeasureOptions, windows_of_range
 
@@ -64,6 +65,7 @@ def get_metrics(
 
 @router.get("/thresholds")
 def get_thresholds(
+    request: Request,
     _caller: Read,
     model: ModelDep,
     session: SessionDep,
@@ -76,21 +78,36 @@ def get_thresholds(
     precision_target: float | None = Query(None, ge=0, le=1),
     recall_target: float | None = Query(None, ge=0, le=1),
 ) -> dict[str, Any]:
-    """Measures at every threshold and the recommended thresholds over a time range."""
-    rng = params.parse_range("hour", start, end, now, default_windows=30 * 24)
+    """Measures at every threshold and the recommended thresholds over a time range.
+
+    Without `start` and `end`: the settled days of the last 30 days. Filters are
+    `tag.<key>=<value>` query parameters (one per key, ANDed)."""
+    if "segment" in request.query_params:
+        raise invalid_field(
+            "segment", "not a parameter of /thresholds; filter with tag.<key>=<value>"
+        )
+    settled_only = not start and not end
+    if settled_only:
+        rng = params.parse_range("day", None, None, now, default_windows=thresholds.DEFAULT_DAYS)
+    else:
+        rng = params.parse_range("hour", start, end, now, default_windows=30 * 24)
     b = params.parse_beta(beta, precision_weight)
+    filters = params.parse_tag_filters(request.query_params.multi_items())
+    params.check_known_tags(session, model, filters)
     answer = thresholds.over_range(
         session,
         model,
         start=rng.start,
         end=rng.end,
+        settled_only=settled_only,
         beta=b,
         precision_target=precision_target,
         recall_target=recall_target,
         now=now,
         max_values=settings.max_segment_values,
+        filters=filters,
     )
-    return {"model": model.name, "beta": b, **answer}
+    return {"model": model.name, "beta": b, "tags": dict(filters), **answer}
 
 
 @router.get("/delays")

@@ -223,6 +223,7 @@ def model_view(
     }
     if row.kind == "binary":
         page.update(_binary_extras(session, row, rng, windows, now, max_values))
+        page.update(_advice(session, row, view, rng, filters, now, max_values))
     return page
 
 
@@ -234,7 +235,7 @@ def _binary_extras(
     now: datetime,
     max_values: int,
 ) -> dict[str, Any]:
-    """Implied measures, the threshold sweep and the label delays of a binary model."""
+    """Implied measures and the label delays of a binary model."""
     g = rng.granularity
     strips = [(f"implied {name_of(m).lower()}", _series(windows, m, g, "implied")) for m in IMPLIED]
     latest_cal = next(
@@ -245,19 +246,6 @@ def _binary_extras(
         ),
         None,
     )
-    sweep = metric_thresholds.over_range(
-        session,
-        row,
-        start=rng.start,
-        end=rng.end,
-        beta=1.0,
-        precision_target=None,
-        recall_target=None,
-        now=now,
-        max_values=max_values,
-    )
-    best = sweep.get("best_fbeta")
-    best_label = f"best F1 at {best['threshold']:.2f}" if best else "no best F1 yet"
     delays = metric_delays.over_range(
         session, row, start=rng.start, end=rng.end, now=now, max_values=max_values
     )
@@ -275,16 +263,6 @@ def _binary_extras(
             strips, title="Measures implied by the scores alone", chart_id="implied"
         ),
         "calibration_error": latest_cal,
-        "sweep": sweep,
-        "best": best,
-        "sweep_svg": charts.sweep_chart(
-            sweep["sweep"],
-            title="Precision and recall against the threshold",
-            chart_id="sweep",
-            best=best["threshold"] if best else None,
-            best_label=best_label,
-            current=row.threshold,
-        ),
         "delays": delays,
         "delays_svg": charts.bar_chart(
             ages,
@@ -292,6 +270,56 @@ def _binary_extras(
             chart_id="delays",
             reference=row.min_coverage,
             reference_label=f"{row.min_coverage:.0%}",
+        ),
+    }
+
+
+def _advice(
+    session: Session,
+    row: ModelRow,
+    view: View,
+    rng: params.Range,
+    filters: tuple[tuple[str, str], ...],
+    now: datetime,
+    max_values: int,
+) -> dict[str, Any]:
+    """The threshold sweep of a binary model, as GET /thresholds answers it: over the settled
+    days of the last 30 days unless the reader chose a range (then over that range, with the
+    labelled predictions of unsettled days counted), for the page's segment."""
+    chosen = bool(view.start or view.end)
+    if chosen:
+        start, end = rng.start, rng.end
+    else:
+        days = params.parse_range(
+            "day", None, None, now, default_windows=metric_thresholds.DEFAULT_DAYS
+        )
+        start, end = days.start, days.end
+    sweep = metric_thresholds.over_range(
+        session,
+        row,
+        start=start,
+        end=end,
+        settled_only=not chosen,
+        beta=1.0,
+        precision_target=None,
+        recall_target=None,
+        now=now,
+        max_values=max_values,
+        filters=filters,
+    )
+    best = sweep.get("best_fbeta")
+    best_label = f"best F1 at {best['threshold']:.2f}" if best else "no advice"
+    return {
+        "sweep": sweep,
+        "best": best,
+        "advice_range": (start, end),
+        "sweep_svg": charts.sweep_chart(
+            sweep["sweep"],
+            title="Precision and recall against the threshold",
+            chart_id="sweep",
+            best=best["threshold"] if best else None,
+            best_label=best_label,
+            current=row.threshold,
         ),
     }
 
