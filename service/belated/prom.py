@@ -135,7 +135,7 @@ def model_metrics(out: Exposition, cached: dict[str, Any]) -> None:
                 "Start of the latest settled daily window.",
             )
             out.sample("belated_model_window_start_timestamp_seconds", m["window_start"], labels)
-        out.family("belated_model_open_alerts", "gauge", "Open or acknowledged alerts.")
+        out.family("belated_model_open_alerts", "gauge", "Raised or noted alerts.")
         out.sample("belated_model_open_alerts", m.get("open_alerts", 0), labels)
 
 
@@ -170,7 +170,7 @@ def _model_figures(session: Session, model: ModelRow, max_values: int) -> dict[s
         session.scalar(
             select(func.count())
             .select_from(Alert)
-            .where(Alert.model_id == model.id, Alert.state.in_(("open", "acknowledged")))
+            .where(Alert.model_id == model.id, Alert.state.in_(("raised", "noted")))
         )
         or 0
     )

@@ -274,7 +274,8 @@ def test_shift_of_tag_psi_pools_the_baseline_windows_tag_counts() -> None:
     r = rule(kind="shift", measure="tag_psi:region", threshold=0.2, baseline={"windows": 4})
     (d,) = decide(r, series, 7)
     pooled = {"north": 200, "south": 160, "east": 40}  # windows 3..6: two of each pattern
-    assert d.baseline == {"counts": pooled}
+    assert d.baseline is not None and d.baseline["counts"] == pooled
+    assert (d.baseline["start"], d.baseline["windows"]) == ("2026-06-04T00:00:00Z", 4)
     keys = ["east", "north", "south", "west"]
     e = np.array([pooled.get(k, 0) for k in keys], float)
     a = np.array([now_tags[k] for k in keys], float)
@@ -285,7 +286,7 @@ def test_shift_of_tag_psi_pools_the_baseline_windows_tag_counts() -> None:
     assert d.breached(r.alpha) == (expected >= 0.2)
 
 
-# --- stall and volume -------------------------------------------------------------------
+# --- stall and traffic -------------------------------------------------------------------
 
 
 def test_stall_judges_coverage_of_windows_older_than_the_label_delay() -> None:
@@ -305,8 +306,8 @@ def test_stall_judges_coverage_of_windows_older_than_the_label_delay() -> None:
     assert decide(r, series, 0, now=None) == []
 
 
-def test_volume_fires_outside_low_and_high() -> None:
-    r = rule(kind="volume", low=100, high=500)
+def test_traffic_fires_outside_low_and_high() -> None:
+    r = rule(kind="traffic", low=100, high=500)
     series = [window(i, counts(n_pred=n)) for i, n in enumerate([99, 100, 500, 501, 0])]
     ds = decide(r, series, 0)
     assert [(d.value, d.breached(r.alpha)) for d in ds] == [
