@@ -322,8 +322,7 @@ def decide(
     earlier evaluations) and windows that breach here never enter the trailing baseline.
     From the first breach on, later windows compare with the baseline that breach was
     decided against, held still (`frozen`, or the active alert's frozen baseline given as
-    `frozen`), until `clear_after` windows in a row are back within tolerance of it; while
-    held, a window that is not back is left out of later trailing baselines too.
+    `frozen`), until `clear_after` windows in a row are back within tolerance of it.
     """
     out: list[Decision] = []
     skip = set(excluded)
@@ -371,8 +370,6 @@ def decide(
                 held = Frozen(baseline=d.basis, since=w.start)
         elif under:
             run = run + 1 if d.recovered else 0
-            if not d.recovered:
-                skip.add(w.start)
             if run >= rule.clear_after:
                 held, run = None, 0
     return out

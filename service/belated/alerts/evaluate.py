@@ -176,12 +176,10 @@ def _held(session: Session, rule: Rule, segment: str) -> Frozen | None:
 
 
 def _excluded(rows: list[RuleWindow], segment: str) -> set[datetime]:
-    """Windows that never enter their rule's baseline again: breached ones, and those that
-    were not back within tolerance while a baseline was frozen."""
+    """Windows that never enter their rule's baseline again: the breached ones."""
     out: set[datetime] = set()
     for r in rows:
-        held = bool((r.baseline or {}).get("frozen"))
-        if r.segment == segment and (r.breached or (held and r.recovered is False)):
+        if r.segment == segment and r.breached:
             start = from_db(r.window_start)
             assert start is not None
             out.add(start)
