@@ -286,6 +286,23 @@ def test_shift_of_tag_psi_pools_the_baseline_windows_tag_counts() -> None:
     assert d.breached(r.alpha) == (expected >= 0.2)
 
 
+def test_shift_of_tag_psi_against_a_fixed_range_uses_the_range_tag_counts() -> None:
+    """A fixed baseline brings its own tag counts (it used to compare with none)."""
+    from belated.alerts.decide import pooled_baseline
+
+    reference = [window(i, counts(n_pred=100), tags={"north": 50, "south": 50}) for i in range(3)]
+    fixed = pooled_baseline(reference, fixed=True)
+    assert fixed is not None and fixed.tag_counts == {"north": 150, "south": 150}
+    now_tags = {"north": 90, "south": 10}
+    series = [window(10, counts(n_pred=100), tags=now_tags)]
+    r = rule(kind="shift", measure="tag_psi:region", threshold=0.2)
+    (d,) = decide(r, series, 0, fixed_baseline=fixed)
+    # PSI by hand (common practice): sum (a - e) ln(a / e) over the regions, e = 0.5 each
+    expected = (0.9 - 0.5) * np.log(0.9 / 0.5) + (0.1 - 0.5) * np.log(0.1 / 0.5)
+    assert d.value == pytest.approx(expected, rel=1e-9) and d.breached(r.alpha)
+    assert d.baseline is not None and d.baseline["counts"] == {"north": 150, "south": 150}
+
+
 # --- stall and traffic -------------------------------------------------------------------
 
 

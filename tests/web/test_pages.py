@@ -403,4 +403,6 @@ def test_breach_baselines_read_as_words() -> None:
         "value 0.812; drop 0.1; tolerance 0.05"
     )
     assert baseline_text({"counts": {"north": 3, "south": 4}}) == "counts: 2 values"
+    frozen = {"value": 0.74, "start": "2026-11-01T00:00:00Z", "windows": 7, "frozen": True}
+    assert baseline_text(frozen) == "value 0.74"
     assert baseline_text(None) == "—"

@@ -39,6 +39,7 @@ NAMES = {
     "recall_macro": "Recall (macro)",
     "fbeta_macro": "F1 (macro)",
 }
+QUIET = ("start", "end", "windows", "fixed", "frozen")  # said once, in the alert's sentence
 ACTIVE = "raised,noted"  # the alert states that stay in sight until an alert clears
 AXIS = {"hour": "%d %b %H:00", "day": "%d %b", "week": "wk %d %b"}
 PAGE = 500
@@ -319,9 +320,11 @@ def describe_rule(rule: Any) -> str:
 
 
 def baseline_text(baseline: dict[str, Any] | None) -> str:
-    """What a breach was compared with, in a few words."""
+    """What a breach was compared with, in a few words (the period is in the sentence)."""
     parts = []
     for key, value in (baseline or {}).items():
+        if key in QUIET:
+            continue
         if isinstance(value, dict):
             parts.append(f"{key.replace('_', ' ')}: {len(value)} values")
         elif isinstance(value, int | float) and not isinstance(value, bool):
