@@ -334,6 +334,36 @@ class Client:
             dict[str, Any], self.request("POST", "/v1/models", body=plain(fields), repeatable=False)
         )
 
+    def alerts(
+        self, *, state: str | None = None, model: str | None = None, since: Any = None
+    ) -> list[dict[str, Any]]:
+        """Every alert that matches, newest first (all pages). `state`: raised, noted,
+        cleared, or a comma list such as "raised,noted" for the active ones."""
+        params: dict[str, Any] = {"limit": 500}
+        for key, value in (("state", state), ("model", model), ("since", since)):
+            if value is not None:
+                params[key] = value if isinstance(value, str) or key != "since" else rfc3339(value)
+        out: list[dict[str, Any]] = []
+        while True:
+            page = self.request("GET", "/v1/alerts", params=params)
+            out += page["items"]
+            if not page.get("next_cursor"):
+                return out
+            params["cursor"] = page["next_cursor"]
+
+    def alert(self, alert_id: str) -> dict[str, Any]:
+        """One alert: what fired and why, its baseline, latest value, notes and breaches."""
+        return cast(dict[str, Any], self.request("GET", f"/v1/alerts/{alert_id}"))
+
+    def note(self, alert_id: str, text: str) -> dict[str, Any]:
+        """Say something about an alert (a raised one becomes noted); answers the alert."""
+        return cast(
+            dict[str, Any],
+            self.request(
+                "POST", f"/v1/alerts/{alert_id}/note", body={"text": text}, repeatable=False
+            ),
+        )
+
     def metrics_json(self, model: str, **params: Any) -> dict[str, Any]:
         """The metrics answer as the API gives it."""
         return cast(

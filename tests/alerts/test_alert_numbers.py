@@ -26,8 +26,8 @@ from tests.support import send_both
 from tests.support.alert_days import day_rows
 
 START = datetime(2026, 11, 1, tzinfo=UTC)
-# 300 orders a day; a volume rule with low=500 breaches every evaluated day
-THIN = {"kind": "volume", "low": 500}
+# 300 orders a day; a traffic rule with low=500 breaches every evaluated day
+THIN = {"kind": "traffic", "low": 500}
 
 
 def _numbers(engine: Engine, project_id: int) -> dict[str, int]:
@@ -45,7 +45,7 @@ def _evaluate(runner: JobRunner) -> None:
 
 
 def _open(tenant: Tenant, runner: JobRunner) -> str:
-    """Add a volume rule, evaluate, and return the id of the alert it opened."""
+    """Add a traffic rule, evaluate, and return the id of the alert it opened."""
     rule = tenant.client.post("/v1/models/returns-v2/rules", json=THIN).json()
     _evaluate(runner)
     items = tenant.client.get("/v1/alerts", params={"limit": 100}).json()["items"]
@@ -70,7 +70,7 @@ def _pages(tenant: Tenant, limit: int) -> list[str]:
     raise AssertionError("the cursor never ran out")
 
 
-def test_a_deleted_rule_frees_no_number_and_paging_sees_every_alert_once(
+def test_a_retired_rule_keeps_its_alert_and_number_and_paging_sees_every_alert_once(
     tenant: Tenant, frozen: Any, runner: JobRunner, engine: Engine
 ) -> None:
     c = tenant.client
@@ -85,19 +85,22 @@ def test_a_deleted_rule_frees_no_number_and_paging_sees_every_alert_once(
     try:
         first = _open(tenant, runner)
         second = _open(tenant, runner)
-        gone = _numbers(engine, tenant.project_id)[first]
+        kept = _numbers(engine, tenant.project_id)[first]
         rule_of_first = c.get(f"/v1/alerts/{first}").json()["rule_id"]
         assert c.delete(f"/v1/models/returns-v2/rules/{rule_of_first}").status_code == 204
         third = _open(tenant, runner)
     finally:
         runner.leader.release()
     seqs = _numbers(engine, tenant.project_id)
-    assert set(seqs) == {second, third}
-    assert len(set(seqs.values())) == 2  # the old numbering gave both the same number
-    assert seqs[third] > seqs[second] > gone  # the deleted alert's number is not given again
+    assert set(seqs) == {first, second, third}  # retiring the rule kept its alert
+    assert seqs[first] == kept
+    assert len(set(seqs.values())) == 3
+    assert seqs[third] > seqs[second] > seqs[first]
+    old = c.get(f"/v1/alerts/{first}").json()
+    assert old["rule"]["retired"] is True and old["rule"]["retired_at"]
     for limit in (1, 2, 100):
         listed = _pages(tenant, limit)
-        assert sorted(listed) == sorted([second, third]), (limit, listed)
+        assert sorted(listed) == sorted([first, second, third]), (limit, listed)
         assert listed[0] == third  # newest first
 
 

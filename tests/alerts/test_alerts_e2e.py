@@ -15,7 +15,7 @@ from tests.support.alert_days import DROP_RULE, START, feed, returns_model
 from tests.support.polling import wait_until
 
 
-def test_drop_opens_delivers_acknowledges_and_resolves(
+def test_drop_raises_delivers_takes_a_note_and_clears(
     tenant: Tenant, frozen: Any, runner: JobRunner
 ) -> None:
     c = tenant.client
@@ -30,27 +30,47 @@ def test_drop_opens_delivers_acknowledges_and_resolves(
         frozen.set(START + timedelta(days=13, hours=12))
         runner.start()  # the real scheduler runs refresh, evaluation and delivery
         assert rx.wait_for(1, timeout=60)
-        opened = rx.unique()[0]
-        assert opened["type"] == "alert.opened"
-        alert = opened["data"]
-        assert alert["rule_id"] == rule["id"] and alert["state"] == "open"
+        raised = rx.unique()[0]
+        assert raised["type"] == "alert.raised"
+        alert = raised["data"]
+        assert alert["rule_id"] == rule["id"] and alert["state"] == "raised"
         first = min(b["window_start"] for b in alert["breaches"])
         assert first == "2026-11-11T00:00:00Z"  # the day recall fell
+        assert alert["started_at"] == first  # when the problem started, not when the job ran
         assert all(b["p_value"] < 0.05 for b in alert["breaches"])
-        listed = c.get("/v1/alerts", params={"state": "open"}).json()["items"]
+        # the event explains itself
+        assert (alert["kind"], alert["measure"]) == ("drop", "recall")
+        base = alert["baseline"]
+        assert (base["start"], base["end"]) == ("2026-11-04T00:00:00Z", "2026-11-11T00:00:00Z")
+        assert base["frozen"] is True and 0.8 < base["value"] < 0.9
+        assert alert["description"] == (
+            f"Recall fell more than 0.02 under its baseline of {base['value']:.3f}".rstrip("0")
+            + " (4–10 Nov), at α = 0.05."
+        )
+        assert alert["latest"]["value"] < 0.7 and alert["latest"]["low"] is not None
+        assert alert["link"].startswith("/models/returns-v2?granularity=day&start=2026-10-28")
+        page = c.get(alert["link"])
+        assert page.status_code == 200, page.text[-1500:]
+        listed = c.get("/v1/alerts", params={"state": "raised"}).json()["items"]
         assert [a["id"] for a in listed] == [alert["id"]]
-        acked = c.post(f"/v1/alerts/{alert['id']}/acknowledge").json()
-        assert acked["state"] == "acknowledged" and acked["acknowledged_at"]
-        # recall recovers; after clear_after clean settled windows the alert resolves
+        noted = c.post(f"/v1/alerts/{alert['id']}/note", json={"text": "checking the feed"})
+        assert noted.status_code == 200, noted.text
+        assert noted.json()["state"] == "noted" and noted.json()["noted_at"]
+        assert noted.json()["notes"][0]["text"] == "checking the feed"
+        assert rx.wait_for(2, timeout=60)
+        # recall recovers; after clear_after recovered settled windows the alert clears
         frozen.set(START + timedelta(days=22, hours=12))
         feed(tenant.client, rng, 13, 22, recall=0.85)
-        assert rx.wait_for(2, timeout=60)
+        ok = rx.wait_for(3, timeout=120)
+        assert ok, c.get(f"/v1/alerts/{alert['id']}").json()["latest"]
         events = rx.unique()
-        assert [e["type"] for e in events] == ["alert.opened", "alert.resolved"]
-        assert events[1]["data"]["id"] == alert["id"]
+        assert [e["type"] for e in events] == ["alert.raised", "alert.noted", "alert.cleared"]
+        assert events[2]["data"]["id"] == alert["id"]
+        assert events[2]["data"]["notes"][0]["text"] == "checking the feed"
+        assert events[1]["data"]["description"] == alert["description"]
         assert rx.rejected == 0
     got = c.get(f"/v1/alerts/{alert['id']}").json()
-    assert got["state"] == "resolved" and got["resolved_at"]
+    assert got["state"] == "cleared" and got["cleared_at"]
 
 
 def test_muted_rule_records_breaches_and_delivers_nothing(

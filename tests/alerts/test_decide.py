@@ -274,7 +274,8 @@ def test_shift_of_tag_psi_pools_the_baseline_windows_tag_counts() -> None:
     r = rule(kind="shift", measure="tag_psi:region", threshold=0.2, baseline={"windows": 4})
     (d,) = decide(r, series, 7)
     pooled = {"north": 200, "south": 160, "east": 40}  # windows 3..6: two of each pattern
-    assert d.baseline == {"counts": pooled}
+    assert d.baseline is not None and d.baseline["counts"] == pooled
+    assert (d.baseline["start"], d.baseline["windows"]) == ("2026-06-04T00:00:00Z", 4)
     keys = ["east", "north", "south", "west"]
     e = np.array([pooled.get(k, 0) for k in keys], float)
     a = np.array([now_tags[k] for k in keys], float)
@@ -285,7 +286,24 @@ def test_shift_of_tag_psi_pools_the_baseline_windows_tag_counts() -> None:
     assert d.breached(r.alpha) == (expected >= 0.2)
 
 
-# --- stall and volume -------------------------------------------------------------------
+def test_shift_of_tag_psi_against_a_fixed_range_uses_the_range_tag_counts() -> None:
+    """A fixed baseline brings its own tag counts (it used to compare with none)."""
+    from belated.alerts.decide import pooled_baseline
+
+    reference = [window(i, counts(n_pred=100), tags={"north": 50, "south": 50}) for i in range(3)]
+    fixed = pooled_baseline(reference, fixed=True)
+    assert fixed is not None and fixed.tag_counts == {"north": 150, "south": 150}
+    now_tags = {"north": 90, "south": 10}
+    series = [window(10, counts(n_pred=100), tags=now_tags)]
+    r = rule(kind="shift", measure="tag_psi:region", threshold=0.2)
+    (d,) = decide(r, series, 0, fixed_baseline=fixed)
+    # PSI by hand (common practice): sum (a - e) ln(a / e) over the regions, e = 0.5 each
+    expected = (0.9 - 0.5) * np.log(0.9 / 0.5) + (0.1 - 0.5) * np.log(0.1 / 0.5)
+    assert d.value == pytest.approx(expected, rel=1e-9) and d.breached(r.alpha)
+    assert d.baseline is not None and d.baseline["counts"] == {"north": 150, "south": 150}
+
+
+# --- stall and traffic -------------------------------------------------------------------
 
 
 def test_stall_judges_coverage_of_windows_older_than_the_label_delay() -> None:
@@ -305,8 +323,8 @@ def test_stall_judges_coverage_of_windows_older_than_the_label_delay() -> None:
     assert decide(r, series, 0, now=None) == []
 
 
-def test_volume_fires_outside_low_and_high() -> None:
-    r = rule(kind="volume", low=100, high=500)
+def test_traffic_fires_outside_low_and_high() -> None:
+    r = rule(kind="traffic", low=100, high=500)
     series = [window(i, counts(n_pred=n)) for i, n in enumerate([99, 100, 500, 501, 0])]
     ds = decide(r, series, 0)
     assert [(d.value, d.breached(r.alpha)) for d in ds] == [

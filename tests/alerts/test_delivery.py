@@ -50,14 +50,14 @@ def test_outage_then_recovery_delivers_every_event_once_in_order(
         assert rx.calls > len(events)  # there were failed attempts
         assert rx.rejected == 0
     alerts = tenant.client.get("/v1/alerts").json()["items"]
-    expected = sum(2 if a["state"] == "resolved" else 1 for a in alerts)
+    expected = sum(2 if a["state"] == "cleared" else 1 for a in alerts)
     assert len(alerts) >= 2 and len(events) == expected
     per_alert: dict[str, list[str]] = {}
     for e in events:
         per_alert.setdefault(e["data"]["id"], []).append(e["type"])
     for types in per_alert.values():
-        assert types[0] == "alert.opened"
-        assert types in (["alert.opened"], ["alert.opened", "alert.resolved"])
+        assert types[0] == "alert.raised"
+        assert types in (["alert.raised"], ["alert.raised", "alert.cleared"])
 
 
 def test_a_410_disables_the_endpoint_and_says_so(

@@ -1,5 +1,5 @@
 """The alert lifecycle on a real store (SQLite and PostgreSQL): raise on the first breach,
-collect later ones, acknowledge, resolve after `clear_after` clean windows, and deliver
+collect later ones, keep notes, clear only after `clear_after` recovered windows, and deliver
 nothing while the rule is muted. Evaluated windows are written as the evaluation job writes
 them; the lifecycle is what moves on them (DESIGN.md, "Alerts")."""
 
@@ -28,7 +28,7 @@ DAY0 = datetime(2026, 11, 1, tzinfo=UTC)
 
 @dataclass
 class Setup:
-    """One project with a model, a volume rule on it and one webhook."""
+    """One project with a model, a traffic rule on it and one webhook."""
 
     rule_id: str
     model_id: int
@@ -42,7 +42,7 @@ def setup(sessions: Any, frozen: Any) -> Setup:
         body = ModelCreate(name="returns-v2").model_dump()
         model = model_registry.create(session=session, project_id=project.id, fields=body)
         rule = rules.create_rule(
-            session=session, model=model, fields={"kind": "volume", "low": 1, "clear_after": 2}
+            session=session, model=model, fields={"kind": "traffic", "low": 1, "clear_after": 2}
         )
         hook = webhooks.create_webhook(
             session=session,
@@ -58,7 +58,9 @@ def setup(sessions: Any, frozen: Any) -> Setup:
 def run(sessions: Any, setup: Setup) -> Any:
     """Record one evaluated day and advance the lifecycle, in one transaction."""
 
-    def step(day: int, breached: bool, now: datetime = NOW) -> str | None:
+    def step(
+        day: int, breached: bool, now: datetime = NOW, recovered: bool | None = None
+    ) -> str | None:
         with transaction(sessions) as session:
             rule, model = _rule_model(session, setup)
             start = DAY0 + timedelta(days=day)
@@ -69,6 +71,7 @@ def run(sessions: Any, setup: Setup) -> Any:
                     window_start=start,
                     window_end=start + timedelta(days=1),
                     breached=breached,
+                    recovered=(not breached) if recovered is None else recovered,
                     value=0.0 if breached else 5.0,
                     evaluated_at=now,
                 )
@@ -101,11 +104,11 @@ def _events(sessions: Any, setup: Setup) -> list[tuple[str, dict[str, Any]]]:
         return [(d.event_type, orjson.loads(d.payload)) for d in rows]
 
 
-def _acknowledge(sessions: Any, alert_id: str, now: datetime) -> str:
+def _note(sessions: Any, alert_id: str, now: datetime, text: str = "looking into it") -> str:
     with transaction(sessions) as session:
         alert = session.get(Alert, alert_id)
         assert alert is not None
-        return lifecycle.acknowledge(session, alert, now).state
+        return lifecycle.note(session, alert, text, "returns desk", now).state
 
 
 def test_the_first_breach_raises_an_alert_and_writes_one_event(
@@ -113,12 +116,13 @@ def test_the_first_breach_raises_an_alert_and_writes_one_event(
 ) -> None:
     assert run(0, False) is None
     assert _alerts(sessions, setup) == []
-    assert run(1, True) == "alert.opened"
+    assert run(1, True) == "alert.raised"
     (alert,) = _alerts(sessions, setup)
-    assert alert["state"] == "open" and alert["segment"] is None
+    assert alert["state"] == "raised" and alert["segment"] is None
+    assert alert["started_at"] == "2026-11-02T00:00:00Z"  # the breached window, not the run
     assert [b["window_start"] for b in alert["breaches"]] == ["2026-11-02T00:00:00Z"]
     ((kind, payload),) = _events(sessions, setup)
-    assert kind == payload["type"] == "alert.opened"
+    assert kind == payload["type"] == "alert.raised"
     assert payload["data"]["id"] == alert["id"]
 
 
@@ -135,48 +139,78 @@ def test_later_breaches_join_the_alert_without_new_events(
         "2026-11-03",
         "2026-11-05",
     ]
-    assert [k for k, _ in _events(sessions, setup)] == ["alert.opened"]
+    assert [k for k, _ in _events(sessions, setup)] == ["alert.raised"]
 
 
-def test_acknowledge_keeps_the_alert_and_its_first_time(
+def test_notes_are_kept_and_a_noted_alert_stays_active(
     sessions: Any, setup: Setup, run: Any
 ) -> None:
     run(1, True)
     (alert,) = _alerts(sessions, setup)
-    assert _acknowledge(sessions, alert["id"], NOW) == "acknowledged"
-    assert _acknowledge(sessions, alert["id"], NOW + timedelta(hours=1)) == "acknowledged"
-    assert run(2, True) is None  # joins the acknowledged alert
+    assert _note(sessions, alert["id"], NOW) == "noted"
+    later = NOW + timedelta(hours=1)
+    assert _note(sessions, alert["id"], later, "supplier feed fixed") == "noted"
+    assert run(2, True) is None  # joins the noted alert
     (alert,) = _alerts(sessions, setup)
-    assert alert["state"] == "acknowledged"
-    assert alert["acknowledged_at"] == "2026-11-15T12:00:00Z"
+    assert alert["state"] == "noted"
+    assert alert["noted_at"] == "2026-11-15T12:00:00Z"  # the first note
+    assert alert["notes"] == [
+        {"text": "looking into it", "author": "returns desk", "at": "2026-11-15T12:00:00Z"},
+        {"text": "supplier feed fixed", "author": "returns desk", "at": "2026-11-15T13:00:00Z"},
+    ]
     assert len(alert["breaches"]) == 2
+    events = _events(sessions, setup)
+    assert [k for k, _ in events] == ["alert.raised", "alert.noted", "alert.noted"]
+    assert [n["text"] for n in events[-1][1]["data"]["notes"]] == [
+        "looking into it",
+        "supplier feed fixed",
+    ]
 
 
-def test_clear_after_clean_windows_resolve_and_the_next_breach_opens_anew(
+def test_clear_after_recovered_windows_clear_and_the_next_breach_raises_anew(
     sessions: Any, setup: Setup, run: Any
 ) -> None:
     run(1, True)
     (first,) = _alerts(sessions, setup)
-    _acknowledge(sessions, first["id"], NOW)
+    _note(sessions, first["id"], NOW)
     assert run(2, False) is None
-    assert run(3, False) == "alert.resolved"
-    assert _acknowledge(sessions, first["id"], NOW) == "resolved"  # stays resolved
+    assert run(3, False) == "alert.cleared"
+    assert _note(sessions, first["id"], NOW, "post-mortem filed") == "cleared"  # stays cleared
     assert run(4, False) is None  # nothing active, nothing to do
-    assert run(5, True) == "alert.opened"
+    assert run(5, True) == "alert.raised"
     old, new = _alerts(sessions, setup)
-    assert (old["id"], old["state"], old["resolved_at"]) == (
+    assert (old["id"], old["state"], old["cleared_at"]) == (
         first["id"],
-        "resolved",
+        "cleared",
         "2026-11-15T12:00:00Z",
     )
-    assert new["id"] != old["id"] and new["state"] == "open"
+    assert [n["text"] for n in old["notes"]] == ["looking into it", "post-mortem filed"]
+    assert new["id"] != old["id"] and new["state"] == "raised"
     assert [b["window_start"][:10] for b in new["breaches"]] == ["2026-11-06"]
     events = _events(sessions, setup)
     assert [(k, p["data"]["id"]) for k, p in events] == [
-        ("alert.opened", old["id"]),
-        ("alert.resolved", old["id"]),
-        ("alert.opened", new["id"]),
+        ("alert.raised", old["id"]),
+        ("alert.noted", old["id"]),
+        ("alert.cleared", old["id"]),
+        ("alert.noted", old["id"]),
+        ("alert.raised", new["id"]),
     ]
+
+
+def test_windows_that_are_merely_not_significant_do_not_clear(
+    sessions: Any, setup: Setup, run: Any
+) -> None:
+    """Not breached is not recovered: only windows back within tolerance count."""
+    run(1, True)
+    assert run(2, False, recovered=False) is None
+    assert run(3, False, recovered=False) is None
+    assert run(4, False, recovered=False) is None
+    (alert,) = _alerts(sessions, setup)
+    assert alert["state"] == "raised"
+    assert run(5, False) is None  # one recovered window of the two clear_after asks for
+    assert run(6, False, recovered=False) is None  # the run of recovered windows breaks
+    assert run(7, False) is None
+    assert run(8, False) == "alert.cleared"
 
 
 def test_a_muted_rule_records_and_moves_but_delivers_nothing(
@@ -185,12 +219,12 @@ def test_a_muted_rule_records_and_moves_but_delivers_nothing(
     with transaction(sessions) as session:
         rule, _ = _rule_model(session, setup)
         rule.muted_until = NOW + timedelta(days=1)
-    assert run(1, True) == "alert.opened"
+    assert run(1, True) == "alert.raised"
     assert run(2, False) is None
-    assert run(3, False) == "alert.resolved"
+    assert run(3, False) == "alert.cleared"
     (alert,) = _alerts(sessions, setup)
-    assert alert["state"] == "resolved" and len(alert["breaches"]) == 1
+    assert alert["state"] == "cleared" and len(alert["breaches"]) == 1
     assert _events(sessions, setup) == []
     # once the mute has passed, the next alert is delivered again
-    assert run(4, True, now=NOW + timedelta(days=2)) == "alert.opened"
-    assert [k for k, _ in _events(sessions, setup)] == ["alert.opened"]
+    assert run(4, True, now=NOW + timedelta(days=2)) == "alert.raised"
+    assert [k for k, _ in _events(sessions, setup)] == ["alert.raised"]

@@ -1,4 +1,4 @@
-"""Every rule kind, end to end through the running scheduler, on both stores: volume, stall
+"""Every rule kind, end to end through the running scheduler, on both stores: traffic, stall
 (coverage and silence), shift on score PSI and tag PSI, floor, and implied measures."""
 
 from __future__ import annotations
@@ -23,7 +23,7 @@ def test_every_rule_kind_fires_through_the_scheduler(
         c.post("/v1/models", json={"name": "returns-v2", "label_delay_days": 3}).status_code == 201
     )
     rules = {
-        "volume": {"kind": "volume", "low": 500},
+        "traffic": {"kind": "traffic", "low": 500},
         "stall": {"kind": "stall", "threshold": 0.5},
         "silence": {"kind": "stall", "max_silence_hours": 24},
         "psi": {"kind": "shift", "measure": "score_psi", "threshold": 0.25},
@@ -69,7 +69,7 @@ def test_every_rule_kind_fires_through_the_scheduler(
     runner.stop()
     items = c.get("/v1/alerts", params={"limit": 100}).json()["items"]
     by_kind = {ids[a["rule_id"]]: a for a in items}
-    volume_windows = {b["window_start"][:10] for b in by_kind["volume"]["breaches"]}
-    assert "2026-11-11" in volume_windows  # day 10, the first thin day
+    traffic_windows = {b["window_start"][:10] for b in by_kind["traffic"]["breaches"]}
+    assert "2026-11-11" in traffic_windows  # day 10, the first thin day
     assert min(b["value"] for b in by_kind["psi"]["breaches"]) >= 0.25
     assert by_kind["silence"]["breaches"][0]["value"] > 24  # hours since the last label

@@ -37,8 +37,8 @@ def _rule_count(engine: Any, tenant: Tenant) -> int:
         ({"kind": "drop", "measure": "recall", "alpha": 1.5}, "alpha", "less than 1"),
         ({"kind": "drop", "measure": "recall", "alpha": 0}, "alpha", "greater than 0"),
         ({"kind": "floor", "measure": "precision"}, "body", "needs a threshold"),
-        ({"kind": "volume"}, "body", "low, high"),
-        ({"kind": "volume", "low": 10, "high": 5}, "body", "low must not exceed high"),
+        ({"kind": "traffic"}, "body", "low, high"),
+        ({"kind": "traffic", "low": 10, "high": 5}, "body", "low must not exceed high"),
         ({"kind": "sometimes", "measure": "recall"}, "kind", ""),
         ({"kind": "drop", "measure": "recall", "baseline": {"windows": 0}}, "baseline.windows", ""),
     ],
@@ -55,7 +55,7 @@ def test_a_rule_that_cannot_work_is_refused_and_nothing_is_stored(
     assert _rule_count(engine, tenant) == 0
 
 
-def test_create_list_patch_mute_delete(tenant: Tenant, model: str, engine: Any) -> None:
+def test_create_list_patch_mute_retire(tenant: Tenant, model: str, engine: Any) -> None:
     c = tenant.client
     rule = c.post(
         f"/v1/models/{model}/rules",
@@ -72,12 +72,27 @@ def test_create_list_patch_mute_delete(tenant: Tenant, model: str, engine: Any) 
     assert bad.status_code == 422
     assert c.get(f"/v1/models/{model}/rules/{rule['id']}").json()["measure"] == "fbeta"
     assert c.delete(f"/v1/models/{model}/rules/{rule['id']}").status_code == 204
-    assert _rule_count(engine, tenant) == 0
+    # deleting retires: the row stays, out of the default list, in the list of retired ones
+    assert _rule_count(engine, tenant) == 1
+    assert c.get(f"/v1/models/{model}/rules").json()["items"] == []
+    retired = c.get(f"/v1/models/{model}/rules", params={"retired": "true"}).json()["items"]
+    assert [x["id"] for x in retired] == [rule["id"]] and retired[0]["retired_at"]
+    assert c.get(f"/v1/models/{model}/rules/{rule['id']}").json()["retired_at"]
+    again = c.patch(f"/v1/models/{model}/rules/{rule['id']}", json={"tolerance": 0.1})
+    assert again.status_code == 409 and "retired" in again.json()["detail"]
+    assert c.delete(f"/v1/models/{model}/rules/{rule['id']}").status_code == 204  # idempotent
+
+
+def test_traffic_is_the_only_name_of_the_count_rule(tenant: Tenant, model: str) -> None:
+    r = tenant.client.post(f"/v1/models/{model}/rules", json={"kind": "volume", "low": 1})
+    assert r.status_code == 422 and "kind" in r.text
+    r = tenant.client.post(f"/v1/models/{model}/rules", json={"kind": "traffic", "low": 1})
+    assert r.status_code == 201 and r.json()["kind"] == "traffic"
 
 
 def test_scopes_on_rule_routes(tenant: Tenant, model: str) -> None:
     c = tenant.client
-    body = {"kind": "volume", "low": 1}
+    body = {"kind": "traffic", "low": 1}
     r = c.post(f"/v1/models/{model}/rules", json=body, headers=tenant.headers("read"))
     assert r.status_code == 403
     r = c.get(f"/v1/models/{model}/rules", headers=tenant.headers("admin"))

@@ -24,8 +24,8 @@ from belated.store.db import transaction
 
 
 def test_defaults_are_the_settings_defaults() -> None:
-    bare = settings_from(RuleCreate(kind="volume", low=1))
-    assert bare == RuleSettings(kind="volume", low=1.0)
+    bare = settings_from(RuleCreate(kind="traffic", low=1))
+    assert bare == RuleSettings(kind="traffic", low=1.0)
     shown = {k: getattr(bare, k) for k in DEFAULTS if k not in ("baseline", "low")}
     assert shown == {k: v for k, v in DEFAULTS.items() if k not in ("baseline", "low")}
     assert DEFAULTS["baseline"] == {"windows": bare.baseline.windows}

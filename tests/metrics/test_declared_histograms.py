@@ -4,7 +4,7 @@ rows, for the whole model and a segment, on both stores.
 Delay bins written out by hand here (hourly to 48 h, 6-hourly to 168 h, daily to 400 days,
 one open bin), independently of belated.stats.delays. Data: the breast cancer dataset that
 scikit-learn ships (Wolberg, Street and Mangasarian 1995), scored and spread over time with
-seeded delays (tests/metrics/datasets.py).
+seeded delays (tests/support/datasets.py).
 """
 
 from __future__ import annotations

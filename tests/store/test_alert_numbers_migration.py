@@ -8,6 +8,7 @@ from datetime import UTC, datetime, timedelta
 from pathlib import Path
 
 import pytest
+import sqlalchemy as sa
 from sqlalchemy import select
 from sqlalchemy.orm import Session
 
@@ -34,17 +35,35 @@ def fresh_url(request: pytest.FixtureRequest, tmp_path: Path) -> Iterator[str]:
         drop_pg_database(name)
 
 
-def _alert(alert_id: str, seq: int, project: int, model: int, rule: str, hours: int) -> Alert:
-    return Alert(
-        id=alert_id,
-        seq=seq,
-        project_id=project,
-        model_id=model,
-        rule_id=rule,
-        segment="",
-        state="open",
-        opened_at=T0 + timedelta(hours=hours),
-    )
+# the rules and alerts tables as they were at revision 0003 (the code's tables moved on)
+OLD_RULES = sa.table(
+    "rules",
+    *(sa.column(c) for c in ("id", "model_id", "kind", "measure", "granularity")),
+    sa.column("settings", sa.JSON()),
+    sa.column("created_at", sa.DateTime(timezone=True)),
+    sa.column("updated_at", sa.DateTime(timezone=True)),
+)
+OLD_ALERTS = sa.table(
+    "alerts",
+    *(sa.column(c) for c in ("id", "seq", "project_id", "model_id", "rule_id", "segment")),
+    sa.column("state"),
+    sa.column("opened_at", sa.DateTime(timezone=True)),
+)
+
+
+def _alert(
+    alert_id: str, seq: int, project: int, model: int, rule: str, hours: int
+) -> dict[str, object]:
+    return {
+        "id": alert_id,
+        "seq": seq,
+        "project_id": project,
+        "model_id": model,
+        "rule_id": rule,
+        "segment": "",
+        "state": "open",
+        "opened_at": T0 + timedelta(hours=hours),
+    }
 
 
 def _seed(session: Session) -> None:
@@ -72,8 +91,8 @@ def _seed(session: Session) -> None:
         )
     session.flush()
     for pid, _ in pairs:
-        session.add(
-            Rule(
+        session.execute(
+            OLD_RULES.insert().values(
                 id=f"rul_{pid}",
                 model_id=pid,
                 kind="volume",
@@ -84,14 +103,14 @@ def _seed(session: Session) -> None:
                 updated_at=T0,
             )
         )
-    session.flush()
-    session.add_all(
+    session.execute(
+        OLD_ALERTS.insert(),
         [
             _alert("alr_a", 1, 1, 1, "rul_1", 0),
             _alert("alr_b", 3, 1, 1, "rul_1", 1),
             _alert("alr_c", 3, 1, 1, "rul_1", 2),
             _alert("alr_d", 2, 2, 2, "rul_2", 0),
-        ]
+        ],
     )
 
 
@@ -110,6 +129,9 @@ def test_repeated_numbers_become_unique_and_new_ones_go_on(fresh_url: str) -> No
             assert counters == {1: 3, 2: 1}
             assert numbers.next_seq(session=session, project_id=1) == 4
             assert numbers.next_seq(session=session, project_id=2) == 2
+            # revision 0007 renamed the states and the rule kind
+            assert set(session.scalars(select(Alert.state))) == {"raised"}
+            assert set(session.scalars(select(Rule.kind))) == {"traffic"}
         downgrade(fresh_url, "0003_label_changes")
         with Session(engine) as session:
             assert session.scalar(select(Alert.seq).where(Alert.id == "alr_c")) == 3

@@ -143,8 +143,8 @@ def check_pages(
     assert driver.title == "Models · belated"
     assert driver.find_element(By.CSS_SELECTOR, f"[data-model='{name}'] h2").text == name
     assert (
-        driver.find_element(By.CSS_SELECTOR, f"[data-model='{name}'] [data-open-alerts]").text
-        == "1 open alert"
+        driver.find_element(By.CSS_SELECTOR, f"[data-model='{name}'] [data-raised-alerts]").text
+        == "1 raised"
     )
     assert console_errors(driver) == []
     for width in WIDTHS.values():

@@ -256,17 +256,41 @@ def test_alerts_show_on_every_page_with_their_breaches(
     raise_alert(tenant, sessions, name)
     api = tenant.client.get("/v1/alerts", params={"model": name}).json()["items"]
     assert len(api) == 1 and api[0]["breaches"]
+    alert = api[0]
+    assert alert["description"] == "Precision fell under 0.99."
     read = tenant.headers("read")
     index = tenant.client.get("/", headers=read).text
-    assert 'data-open-alerts="1"' in index
+    assert 'data-raised-alerts="1"' in index
     page = tenant.client.get("/alerts", headers=read).text
-    assert page.count('class="breach') == len(api[0]["breaches"])
-    assert f'data-alert="{api[0]["id"]}"' in page and "Precision under 0.99" in page
-    assert f'data-alert="{api[0]["id"]}"' in tenant.client.get(f"/models/{name}", headers=read).text
-    resolved = tenant.client.get("/alerts?state=resolved", headers=read).text
-    assert "data-alert=" not in resolved
-    bad = tenant.client.get("/alerts?state=lost", headers=read)
+    assert page.count('class="breach') == len(alert["breaches"])
+    assert f'data-alert="{alert["id"]}"' in page and "Precision under 0.99" in page
+    assert "Precision fell under 0.99." in page  # the sentence, on the alert
+    model_page = tenant.client.get(f"/models/{name}", headers=read).text
+    assert f'data-alert="{alert["id"]}" data-state="raised"' in model_page
+    assert "Rule: Precision under 0.99" in model_page  # the model page names the rule
+    # a noted alert stays in sight, marked as noted, until it clears
+    noted = tenant.client.post(
+        f"/v1/alerts/{alert['id']}/note",
+        headers=tenant.headers("admin"),
+        json={"text": "supplier photos changed; watching"},
+    )
+    assert noted.status_code == 200, noted.text
+    index = tenant.client.get("/", headers=read).text
+    assert 'data-noted-alerts="1"' in index and "data-raised-alerts" not in index
+    model_page = tenant.client.get(f"/models/{name}", headers=read).text
+    assert f'data-alert="{alert["id"]}" data-state="noted"' in model_page
+    page = tenant.client.get("/alerts?state=noted", headers=read).text
+    assert f'data-alert="{alert["id"]}"' in page and "supplier photos changed; watching" in page
+    cleared = tenant.client.get("/alerts?state=cleared", headers=read).text
+    assert "data-alert=" not in cleared
+    bad = tenant.client.get("/alerts?state=open", headers=read)  # the old names are gone
     assert bad.status_code == 422 and "state" in bad.text
+    # states are told apart by shape in the dashboard's own inks, not by a signal palette
+    for state, shape in (("raised", "25CF"), ("noted", "25D0"), ("cleared", "25CB")):
+        rule = re.search(rf"\.chip\.{state}::before {{ content: \"\\{shape}\"; }}", page)
+        assert rule, state
+    marks = re.findall(r"\.chip\.(?:raised|noted|cleared)[^{]*{([^}]*)}", page)
+    assert marks and not any("moss" in m or "ochre" in m or "brick" in m for m in marks)
 
 
 def test_a_multiclass_model_shows_its_averaged_measures(
@@ -312,4 +336,6 @@ def test_breach_baselines_read_as_words() -> None:
         "value 0.812; drop 0.1; tolerance 0.05"
     )
     assert baseline_text({"counts": {"north": 3, "south": 4}}) == "counts: 2 values"
+    frozen = {"value": 0.74, "start": "2026-11-01T00:00:00Z", "windows": 7, "frozen": True}
+    assert baseline_text(frozen) == "value 0.74"
     assert baseline_text(None) == "—"

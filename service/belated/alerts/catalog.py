@@ -61,6 +61,6 @@ def check(kind: str, measure: str | None) -> str | None:
         if measure in DENOMINATORS:
             return f"{measure!r} needs labels; a shift rule watches label-free quantities"
         return f"unknown shift measure {measure!r}; use positive_rate, score_psi or tag_psi:<key>"
-    if kind in ("stall", "volume"):
+    if kind in ("stall", "traffic"):
         return None
     return f"unknown rule kind {kind!r}"

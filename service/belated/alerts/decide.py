@@ -10,7 +10,7 @@ segments of a fan-out rule (Benjamini-Hochberg) first.
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from datetime import datetime
 from typing import Any
 
@@ -20,6 +20,7 @@ from belated.stats.change import benjamini_hochberg, two_proportion_test
 from belated.stats.drift import categorical_psi, psi
 from belated.stats.summary import summarise
 from belated.stats.window import WindowStats
+from belated.timeutil import iso
 
 
 @dataclass(kw_only=True)
@@ -35,8 +36,37 @@ class WindowInput:
 
 
 @dataclass(frozen=True, kw_only=True)
+class Baseline:
+    """What a window is compared with: the pooled stats of the baseline's windows, their
+    period [start, end) and the starts of the windows pooled. `reason` says why it cannot
+    be used yet (a fixed range whose windows are not all settled); then no decision is made."""
+
+    stats: WindowStats
+    start: datetime
+    end: datetime
+    parts: tuple[datetime, ...] = ()
+    tag_counts: dict[str, int] = field(default_factory=dict)
+    fixed: bool = False
+    reason: str | None = None
+
+
+@dataclass(frozen=True, kw_only=True)
+class Frozen:
+    """A baseline held still: windows starting at or after `since` compare with it."""
+
+    baseline: Baseline
+    since: datetime
+
+
+@dataclass(frozen=True, kw_only=True)
 class Decision:
-    """The verdict on one window."""
+    """The verdict on one window.
+
+    `recovered` says whether the measure is back within tolerance of the baseline (on the
+    point value, whatever the test says): what clears an alert. None when no decision was
+    made, with `reason` saying why. `basis` is the baseline compared with, kept so that the
+    alert this window raises can freeze it.
+    """
 
     start: datetime
     end: datetime
@@ -46,6 +76,9 @@ class Decision:
     low: float | None = None
     high: float | None = None
     baseline: dict[str, Any] | None = None
+    recovered: bool | None = None
+    reason: str | None = None
+    basis: Baseline | None = field(default=None, compare=False, repr=False)
 
     def breached(self, alpha: float, adjusted_p: float | None = None) -> bool:
         """Final verdict; `adjusted_p` replaces the raw p-value after BH."""
@@ -86,23 +119,68 @@ def pooled(windows: list[WindowInput]) -> WindowStats:
     return total
 
 
+def pooled_baseline(
+    windows: list[WindowInput], *, fixed: bool = False, reason: str | None = None
+) -> Baseline | None:
+    """The baseline made of these windows (None when there are none)."""
+    if not windows:
+        return None
+    counts: dict[str, int] = {}
+    for w in windows:
+        for k, n in w.tag_counts.items():
+            counts[k] = counts.get(k, 0) + n
+    return Baseline(
+        stats=pooled(windows),
+        start=windows[0].start,
+        end=windows[-1].end,
+        parts=tuple(w.start for w in windows),
+        tag_counts=counts,
+        fixed=fixed,
+        reason=reason,
+    )
+
+
 def baseline_for(
-    series: list[WindowInput], i: int, rule: RuleSettings, fixed: WindowStats | None
-) -> tuple[WindowStats | None, list[WindowInput]]:
-    """The trailing baseline windows before series[i] (or the fixed range's stats)."""
+    series: list[WindowInput],
+    i: int,
+    rule: RuleSettings,
+    fixed: Baseline | None,
+    excluded: set[datetime] | frozenset[datetime] = frozenset(),
+) -> Baseline | None:
+    """The baseline of series[i]: the fixed range, or the trailing `windows` windows before
+    it (settled ones for label-based measures, closed ones otherwise), leaving out the
+    windows in `excluded` (breached ones: they never enter their own rule's baseline)."""
     if fixed is not None:
-        return fixed, []
+        return fixed
     n = rule.baseline.windows
     label_based = catalog.is_label_based(rule.measure or "")
-    picked = [w for w in series[:i] if w.closed and (w.settled or not label_based)][-n:]
-    return (pooled(picked) if picked else None), picked
+    picked = [
+        w
+        for w in series[:i]
+        if w.closed and (w.settled or not label_based) and w.start not in excluded
+    ][-n:]
+    return pooled_baseline(picked)
 
 
-def _drop(rule: RuleSettings, w: WindowInput, base: WindowStats, beta: float) -> Decision:
-    measure, tol = str(rule.measure), rule.tolerance
+def _info(base: Baseline, frozen: bool, **extra: Any) -> dict[str, Any]:
+    """The baseline as a decision records it: its period, how many windows, frozen or not."""
+    return {
+        **extra,
+        "start": iso(base.start),
+        "end": iso(base.end),
+        "windows": len(base.parts),
+        "fixed": base.fixed,
+        "frozen": frozen,
+    }
+
+
+def _drop(
+    rule: RuleSettings, w: WindowInput, basis: Baseline, beta: float, frozen: bool
+) -> Decision:
+    measure, tol, base = str(rule.measure), rule.tolerance, basis.stats
     value, low, high = measure_value(measure, w.stats, beta, 1 - 2 * rule.alpha)
     base_value, _, _ = measure_value(measure, base, beta, 0.95)
-    info: dict[str, Any] = {"value": base_value}
+    info = _info(basis, frozen, value=base_value)
     if value is None or base_value is None:
         return Decision(
             start=w.start,
@@ -137,47 +215,42 @@ def _drop(rule: RuleSettings, w: WindowInput, base: WindowStats, beta: float) ->
         low=low,
         high=high,
         baseline=info,
+        recovered=value >= base_value - tol,
     )
 
 
-def _shift(
-    rule: RuleSettings, w: WindowInput, base: WindowStats, base_windows: list[WindowInput]
-) -> Decision:
-    measure, threshold = str(rule.measure), rule.threshold
+def _shift(rule: RuleSettings, w: WindowInput, basis: Baseline, frozen: bool) -> Decision:
+    measure, threshold, base = str(rule.measure), rule.threshold, basis.stats
     assert threshold is not None  # check_rule refuses a shift rule without one
     if measure == "positive_rate":
         if w.stats.n_pred == 0 or base.n_pred == 0:
-            return Decision(start=w.start, end=w.end, condition=False)
+            return Decision(start=w.start, end=w.end, condition=False, reason="no predictions")
         cur_rate, base_rate = w.stats.n_pred_pos / w.stats.n_pred, base.n_pred_pos / base.n_pred
         test = two_proportion_test(w.stats.n_pred_pos, w.stats.n_pred, base.n_pred_pos, base.n_pred)
+        moved = abs(cur_rate - base_rate) >= threshold
         return Decision(
             start=w.start,
             end=w.end,
-            condition=abs(cur_rate - base_rate) >= threshold,
+            condition=moved,
             p_value=test.p_two_sided,
             value=cur_rate,
-            baseline={"value": base_rate, "change": cur_rate - base_rate},
+            baseline=_info(basis, frozen, value=base_rate, change=cur_rate - base_rate),
+            recovered=not moved,
         )
     if measure == "score_psi":
         v = psi(base.hist_all, w.stats.hist_all)
-        return Decision(
-            start=w.start,
-            end=w.end,
-            condition=v.value is not None and v.value >= threshold,
-            value=v.value,
-            baseline={"predictions": base.n_pred},
-        )
-    base_counts: dict[str, int] = {}
-    for b in base_windows:
-        for k, n in b.tag_counts.items():
-            base_counts[k] = base_counts.get(k, 0) + n
-    v = categorical_psi(base_counts, w.tag_counts)
+        info = _info(basis, frozen, predictions=base.n_pred)
+    else:
+        v = categorical_psi(basis.tag_counts, w.tag_counts)
+        info = _info(basis, frozen, counts=dict(basis.tag_counts))
+    over = v.value is not None and v.value >= threshold
     return Decision(
         start=w.start,
         end=w.end,
-        condition=v.value is not None and v.value >= threshold,
+        condition=over,
         value=v.value,
-        baseline={"counts": base_counts},
+        baseline=info,
+        recovered=None if v.value is None else not over,
     )
 
 
@@ -194,17 +267,21 @@ def _floor(rule: RuleSettings, w: WindowInput, beta: float) -> Decision:
         low=low,
         high=high,
         baseline={"threshold": rule.threshold},
+        # recovery asks the point value itself to be back at the floor, in both modes
+        recovered=None if value is None or rule.threshold is None else value >= rule.threshold,
     )
 
 
-def _volume(rule: RuleSettings, w: WindowInput) -> Decision:
+def _traffic(rule: RuleSettings, w: WindowInput) -> Decision:
     n, low, high = w.stats.n_pred, rule.low, rule.high
+    outside = (low is not None and n < low) or (high is not None and n > high)
     return Decision(
         start=w.start,
         end=w.end,
-        condition=(low is not None and n < low) or (high is not None and n > high),
+        condition=outside,
         value=float(n),
         baseline={"low": low, "high": high},
+        recovered=not outside,
     )
 
 
@@ -223,6 +300,7 @@ def _stall(
         condition=cov < rule.threshold,
         value=cov,
         baseline={"threshold": rule.threshold},
+        recovered=cov >= rule.threshold,
     )
 
 
@@ -232,34 +310,68 @@ def decide(
     first: int,
     *,
     beta: float = 1.0,
-    fixed_baseline: WindowStats | None = None,
+    fixed_baseline: Baseline | None = None,
+    frozen: Frozen | None = None,
+    excluded: set[datetime] | frozenset[datetime] = frozenset(),
     now: datetime | None = None,
     label_delay_days: float = 30.0,
 ) -> list[Decision]:
-    """Decisions for the eligible windows series[first:] (baselines look further back)."""
+    """Decisions for the eligible windows series[first:] (baselines look further back).
+
+    A baseline does not forget what went wrong. Windows in `excluded` (breached ones of
+    earlier evaluations) and windows that breach here never enter the trailing baseline.
+    From the first breach on, later windows compare with the baseline that breach was
+    decided against, held still (`frozen`, or the active alert's frozen baseline given as
+    `frozen`), until `clear_after` windows in a row are back within tolerance of it.
+    """
     out: list[Decision] = []
+    skip = set(excluded)
+    held, run = frozen, 0
     for i in range(first, len(series)):
         w = series[i]
         if not eligible(rule.kind, rule.measure, w, rule.min_support):
             continue
         d: Decision | None
+        under = held is not None and w.start >= held.since
         if rule.kind == "floor":
             d = _floor(rule, w, beta)
-        elif rule.kind == "volume":
-            d = _volume(rule, w)
+        elif rule.kind == "traffic":
+            d = _traffic(rule, w)
         elif rule.kind == "stall":
             d = _stall(rule, w, now, label_delay_days)
         else:
-            base, base_windows = baseline_for(series, i, rule, fixed_baseline)
-            if base is None:
-                continue
-            d = (
-                _drop(rule, w, base, beta)
-                if rule.kind == "drop"
-                else _shift(rule, w, base, base_windows)
+            base = (
+                held.baseline
+                if held is not None and under
+                else baseline_for(series, i, rule, fixed_baseline, skip)
             )
-        if d is not None:
-            out.append(d)
+            if base is None:
+                d = Decision(
+                    start=w.start,
+                    end=w.end,
+                    condition=False,
+                    reason="no settled window before it to compare with"
+                    if catalog.is_label_based(rule.measure or "")
+                    else "no closed window before it to compare with",
+                )
+            elif base.reason is not None:
+                d = Decision(start=w.start, end=w.end, condition=False, reason=base.reason)
+            elif rule.kind == "drop":
+                d = replace(_drop(rule, w, base, beta, under), basis=base)
+            else:
+                d = replace(_shift(rule, w, base, under), basis=base)
+        if d is None:
+            continue
+        out.append(d)
+        if d.breached(rule.alpha):
+            skip.add(w.start)
+            run = 0
+            if held is None and d.basis is not None:
+                held = Frozen(baseline=d.basis, since=w.start)
+        elif under:
+            run = run + 1 if d.recovered else 0
+            if run >= rule.clear_after:
+                held, run = None, 0
     return out
 
 

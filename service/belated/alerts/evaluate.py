@@ -10,19 +10,27 @@ from typing import Any
 from sqlalchemy import func, select
 from sqlalchemy.orm import Session
 
-from belated.alerts import lifecycle
-from belated.alerts.decide import Decision, WindowInput, decide, finite, pooled, verdicts
-from belated.alerts.schemas import RuleCreate, RuleSettings, settings_from
+from belated.alerts import catalog, lifecycle, snapshot
+from belated.alerts.decide import (
+    Baseline,
+    Decision,
+    Frozen,
+    WindowInput,
+    decide,
+    finite,
+    pooled_baseline,
+    verdicts,
+)
+from belated.alerts.schemas import RuleSettings, stored_settings
 from belated.alerts.tables import Rule, RuleWindow
 from belated.metrics.arrival import Curves
 from belated.metrics.load import ensure_fresh, epoch_hour, segment_counts
 from belated.metrics.params import Range
 from belated.metrics.windows import curves_of, settled_window, to_stats, window_totals
-from belated.stats.window import WindowStats
 from belated.store import segments
 from belated.store.tables import Label, ModelRow
 from belated.store.totals import Totals
-from belated.timeutil import floor_hour, floor_window, from_db, window_step
+from belated.timeutil import floor_hour, floor_window, from_db, iso, window_step
 
 log = logging.getLogger(__name__)
 MAX_EVALUATED = 120
@@ -35,13 +43,7 @@ def settings_of(rule: Rule) -> RuleSettings:
 
     The one place a rules-table row becomes settings; evaluation reads nothing else of it.
     """
-    fields = {
-        **(rule.settings or {}),
-        "kind": rule.kind,
-        "measure": rule.measure,
-        "granularity": rule.granularity,
-    }
-    return settings_from(RuleCreate.model_validate(fields))
+    return stored_settings(rule.kind, rule.measure, rule.granularity, rule.settings)
 
 
 def _span(model: ModelRow, rule: RuleSettings) -> tuple[int, int]:
@@ -79,24 +81,23 @@ def _window_totals(
     return window_totals(session, model, rng, lookback, (segment,) if segment else (), now)
 
 
-def _series(
+def _inputs(
     session: Session,
     model: ModelRow,
     rule: RuleSettings,
+    rng: Range,
+    lookback: int,
     segment: Segment,
     now: datetime,
-    evaluated: int,
-    lookback: int,
     curves: Curves | None,
 ) -> list[WindowInput]:
+    """The windows of a range (and `lookback` before it) as a rule sees them."""
     g = rule.granularity
     step = window_step(g)
-    rng = _series_range(rule, now, evaluated)
-    end = rng.end
     starts, accs = _window_totals(session, model, rng, lookback, segment, now)
     tag_counts: dict[int, dict[str, int]] = {}
     measure = rule.measure or ""
-    if measure.startswith("tag_psi:"):
+    if measure.startswith("tag_psi:") and starts:
         level = "h" if g == "hour" else "d"
         raw = segment_counts(
             session,
@@ -104,7 +105,7 @@ def _series(
             key=measure.split(":", 1)[1],
             level=level,
             lo=epoch_hour(starts[0]),
-            hi=epoch_hour(end),
+            hi=epoch_hour(rng.end),
         )
         span = int(step / timedelta(hours=1))
         base = epoch_hour(starts[0])
@@ -126,29 +127,78 @@ def _series(
     ]
 
 
+def _series(
+    session: Session,
+    model: ModelRow,
+    rule: RuleSettings,
+    segment: Segment,
+    now: datetime,
+    evaluated: int,
+    lookback: int,
+    curves: Curves | None,
+) -> list[WindowInput]:
+    rng = _series_range(rule, now, evaluated)
+    return _inputs(session, model, rule, rng, lookback, segment, now, curves)
+
+
 def _fixed_baseline(
     session: Session,
     model: ModelRow,
     rule: RuleSettings,
     now: datetime,
     segment: Segment,
-) -> WindowStats | None:
+    curves: Curves | None,
+) -> Baseline | None:
+    """A fixed range's baseline; it must be settled like a trailing one (closed, for a
+    label-free measure): until it is, it carries the reason and no decision is made."""
     rng = _baseline_range(rule)
     if rng is None:
         return None
-    _, accs = _window_totals(session, model, rng, 0, segment, now)
-    return pooled(
-        [
-            WindowInput(start=rng.start, end=rng.end, closed=True, settled=True, stats=to_stats(a))
-            for a in accs
-        ]
-    )
+    windows = _inputs(session, model, rule, rng, 0, segment, now, curves)
+    if not windows:
+        return None
+    label_based = catalog.is_label_based(rule.measure or "")
+    waiting = [w for w in windows if not (w.settled if label_based else w.closed)]
+    reason = None
+    if waiting:
+        state = "settled" if label_based else "closed"
+        reason = (
+            f"the baseline's {len(waiting)} of {len(windows)} windows from "
+            f"{iso(rng.start)} to {iso(rng.end)} are not {state} yet"
+        )
+    return pooled_baseline(windows, fixed=True, reason=reason)
+
+
+def _held(session: Session, rule: Rule, segment: str) -> Frozen | None:
+    """The frozen baseline of the (rule, segment)'s active alert, if it has one."""
+    alert = lifecycle.active_alert(session, rule.id, segment)
+    if alert is None or not alert.baseline or "stats" not in alert.baseline:
+        return None
+    since = from_db(alert.started_at) or from_db(alert.raised_at)
+    assert since is not None
+    return Frozen(baseline=snapshot.load(alert.baseline), since=since)
+
+
+def _excluded(rows: list[RuleWindow], segment: str) -> set[datetime]:
+    """Windows that never enter their rule's baseline again: the breached ones."""
+    out: set[datetime] = set()
+    for r in rows:
+        if r.segment == segment and r.breached:
+            start = from_db(r.window_start)
+            assert start is not None
+            out.add(start)
+    return out
 
 
 def evaluate_rule(
     session: Session, rule: Rule, model: ModelRow, now: datetime, max_values: int
 ) -> dict[str, int]:
-    """Evaluate one rule over its segments; record windows; advance its alerts."""
+    """Evaluate one rule over its segments; record windows; advance its alerts.
+
+    A retired rule is not evaluated: its alerts and breaches stay as they were.
+    """
+    if rule.retired_at is not None:
+        return {"windows": 0, "events": 0}
     cfg = settings_of(rule)
     evaluated, lookback = _span(model, cfg)
     # bring the rule's ranges up to date once, here, for every segment below
@@ -163,24 +213,28 @@ def evaluate_rule(
     if cfg.segment_by:
         admitted = segments.admitted(session=session, model_id=model.id)
         segs = [(cfg.segment_by, v) for v in admitted.get(cfg.segment_by, [])]
+    stored = list(session.scalars(select(RuleWindow).where(RuleWindow.rule_id == rule.id)))
     decisions: dict[str, list[Decision]] = {}
     for seg in segs:
+        key = f"{seg[0]}:{seg[1]}" if seg else ""
         windows = _series(session, model, cfg, seg, now, evaluated, lookback, curves)
-        fixed = _fixed_baseline(session, model, cfg, now, seg)
-        decisions[f"{seg[0]}:{seg[1]}" if seg else ""] = decide(
+        fixed = _fixed_baseline(session, model, cfg, now, seg, curves)
+        decisions[key] = decide(
             cfg,
             windows,
             lookback,
             fixed_baseline=fixed,
+            frozen=_held(session, rule, key),
+            excluded=_excluded(stored, key),
             now=now,
             label_delay_days=model.label_delay_days,
         )
     if cfg.kind == "stall" and cfg.max_silence_hours:
         decisions.setdefault("", []).append(_silence(session, model, cfg.max_silence_hours, now))
-    changed = _record(session, rule, decisions, verdicts(decisions, cfg.alpha), now)
+    changed = _record(session, rule, stored, decisions, verdicts(decisions, cfg.alpha), now)
     events = 0
-    for segment in decisions:
-        if lifecycle.advance(session, rule, model, segment, now, cfg.clear_after):
+    for segment, ds in decisions.items():
+        if lifecycle.advance(session, rule, model, segment, now, cfg.clear_after, ds):
             events += 1
     return {"windows": changed, "events": events}
 
@@ -191,39 +245,43 @@ def _silence(session: Session, model: ModelRow, max_hours: float, now: datetime)
         session.scalar(select(func.max(Label.received_at)).where(Label.model_id == model.id))
     )
     hour = floor_hour(now)
+    silent = last is None or (now - last) > timedelta(hours=max_hours)
     return Decision(
         start=hour,
         end=hour + timedelta(hours=1),
-        condition=last is None or (now - last) > timedelta(hours=max_hours),
+        condition=silent,
         value=None if last is None else (now - last) / timedelta(hours=1),
         baseline={"max_silence_hours": max_hours},
+        recovered=not silent,
     )
 
 
 def _record(
     session: Session,
     rule: Rule,
+    stored: list[RuleWindow],
     decisions: dict[str, list[Decision]],
     verdicts: dict[tuple[str, datetime], bool],
     now: datetime,
 ) -> int:
     """Upsert one row per (rule, segment, window); a window changed by late labels is
     updated in place, never counted twice."""
-    existing = {
-        (r.segment, from_db(r.window_start)): r
-        for r in session.scalars(select(RuleWindow).where(RuleWindow.rule_id == rule.id))
-    }
+    existing = {(r.segment, from_db(r.window_start)): r for r in stored}
     changed = 0
     for seg, ds in decisions.items():
         for d in ds:
             breached = verdicts[(seg, d.start)]
+            baseline = _clean(d.baseline)
+            if d.reason is not None:
+                baseline = {**(baseline or {}), "reason": d.reason}
             values = {
                 "breached": breached,
                 "value": finite(d.value),
                 "low": finite(d.low),
                 "high": finite(d.high),
-                "baseline": _clean(d.baseline),
+                "baseline": baseline,
                 "p_value": finite(d.p_value),
+                "recovered": d.recovered,
                 "window_end": d.end,
                 "evaluated_at": now,
             }
@@ -233,12 +291,15 @@ def _record(
                     RuleWindow(rule_id=rule.id, segment=seg, window_start=d.start, **values)
                 )
                 changed += 1
-            elif row.breached != breached or row.value != values["value"]:
+            elif any(getattr(row, k) != values[k] for k in _COMPARED):
                 for k, v in values.items():
                     setattr(row, k, v)
                 changed += 1
     session.flush()
     return changed
+
+
+_COMPARED = ("breached", "value", "low", "high", "baseline", "p_value", "recovered")
 
 
 def _clean(value: Any) -> Any:

@@ -23,22 +23,28 @@ def list_alerts(
     since: str | None,
     after: int | None,
     limit: int,
+    public_url: str | None = None,
 ) -> tuple[list[dict[str, Any]], int | None]:
-    """Alerts of the project, newest first, with their breaches; cursor is the last seq."""
+    """Alerts of the project, newest first, with their breaches; cursor is the last seq.
+
+    `state` is one state or a comma list of them (`raised,noted`: every active alert)."""
     query = (
         select(Alert, ModelRow.name)
         .join(ModelRow, ModelRow.id == Alert.model_id)
         .where(Alert.project_id == project_id)
     )
     if state:
-        if state not in ("open", "acknowledged", "resolved"):
-            raise invalid_field("state", "must be open, acknowledged or resolved")
-        query = query.where(Alert.state == state)
+        wanted = [s.strip() for s in state.split(",") if s.strip()]
+        if not wanted or any(s not in lifecycle.STATES for s in wanted):
+            raise invalid_field(
+                "state", "must be raised, noted or cleared (or a comma list of them)"
+            )
+        query = query.where(Alert.state.in_(wanted))
     if model:
         query = query.where(ModelRow.name == model)
     if since:
         try:
-            query = query.where(Alert.opened_at >= parse_ts(since))
+            query = query.where(Alert.raised_at >= parse_ts(since))
         except (ValueError, TypeError):
             raise invalid_field("since", "not an RFC 3339 time") from None
     if after is not None:
@@ -46,7 +52,7 @@ def list_alerts(
     rows = session.execute(query.order_by(Alert.seq.desc()).limit(limit + 1)).all()
     more = len(rows) > limit
     rows = rows[:limit]
-    items = [lifecycle.alert_dict(session, a, name) for a, name in rows]
+    items = [lifecycle.alert_dict(session, a, name, public_url) for a, name in rows]
     return items, (rows[-1][0].seq if more and rows else None)
 
 

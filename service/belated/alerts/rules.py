@@ -1,4 +1,4 @@
-"""Alert rules of a model: create, read, list, change, delete."""
+"""Alert rules of a model: create, read, list, change, retire."""
 
 from __future__ import annotations
 
@@ -10,9 +10,9 @@ from sqlalchemy import select
 from sqlalchemy.orm import Session
 
 from belated.alerts.schemas import DEFAULTS, RuleRead, check_rule
-from belated.alerts.tables import Alert, Rule, RuleWindow
+from belated.alerts.tables import Rule
 from belated.clock import clock
-from belated.errors import NotFound, invalid_field
+from belated.errors import Conflict, NotFound, invalid_field
 from belated.store.tables import ModelRow
 from belated.timeutil import iso, to_utc
 
@@ -46,6 +46,7 @@ def rule_read(rule: Rule, model_name: str, *, now: datetime | None = None) -> Ru
         muted=muted,
         created_at=to_utc(rule.created_at),
         updated_at=to_utc(rule.updated_at),
+        retired_at=rule.retired_at and to_utc(rule.retired_at),
         **{k: cfg[k] for k in SETTING_KEYS},
     )
 
@@ -90,19 +91,21 @@ def get_rule(*, session: Session, model: ModelRow, rule_id: str) -> Rule:
     return rule
 
 
-def list_rules(*, session: Session, model: ModelRow) -> list[Rule]:
-    """The model's rules, oldest first."""
-    return list(
-        session.scalars(
-            select(Rule).where(Rule.model_id == model.id).order_by(Rule.created_at, Rule.id)
-        )
-    )
+def list_rules(*, session: Session, model: ModelRow, retired: bool = False) -> list[Rule]:
+    """The model's rules, oldest first; retired ones only when asked for (`retired`)."""
+    query = select(Rule).where(Rule.model_id == model.id)
+    if not retired:
+        query = query.where(Rule.retired_at.is_(None))
+    return list(session.scalars(query.order_by(Rule.created_at, Rule.id)))
 
 
 def update_rule(
     *, session: Session, rule: Rule, fields: dict[str, Any], now: datetime | None = None
 ) -> Rule:
-    """Change a rule (stamped `now`); the result must still be a rule that can work."""
+    """Change a rule (stamped `now`); the result must still be a rule that can work, and a
+    retired rule cannot be changed."""
+    if rule.retired_at is not None:
+        raise Conflict(f"the rule {rule.id!r} is retired; create a new rule instead")
     merged = {**rule.settings, **_settings(fields)}
     measure = fields.get("measure", rule.measure)
     try:
@@ -120,10 +123,10 @@ def update_rule(
     return rule
 
 
-def delete_rule(*, session: Session, rule: Rule) -> None:
-    """Delete a rule with its evaluated windows and alerts."""
-    for table in (RuleWindow, Alert):
-        for row in session.scalars(select(table).where(table.rule_id == rule.id)):
-            session.delete(row)
-    session.delete(rule)
-    session.flush()
+def retire_rule(*, session: Session, rule: Rule, now: datetime | None = None) -> Rule:
+    """Retire a rule (what deleting it does): it is no longer evaluated or listed, and its
+    alerts and breaches are kept, in the state they were in. Retiring twice changes nothing."""
+    if rule.retired_at is None:
+        rule.retired_at = now or clock.now()
+        session.flush()
+    return rule

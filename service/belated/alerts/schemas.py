@@ -6,12 +6,12 @@ from dataclasses import dataclass, fields
 from datetime import datetime
 from typing import Any, Literal
 
-from pydantic import BaseModel, ConfigDict, Field, model_validator
+from pydantic import BaseModel, ConfigDict, Field, field_validator, model_validator
 
 from belated.alerts import catalog
 from belated.timeutil import to_utc
 
-Kind = Literal["floor", "drop", "shift", "stall", "volume"]
+Kind = Literal["floor", "drop", "shift", "stall", "traffic"]
 Granularity = Literal["hour", "day", "week"]
 Mode = Literal["point", "confident"]
 BASELINE_WINDOWS = 7  # trailing windows of a baseline that names neither windows nor a range
@@ -132,6 +132,14 @@ def settings_from(rule: RuleCreate) -> RuleSettings:
     return RuleSettings(**given)
 
 
+def stored_settings(
+    kind: str, measure: str | None, granularity: str, settings: dict[str, Any] | None
+) -> RuleSettings:
+    """A stored rule's effective settings: its JSON row validated again by the API schema."""
+    fields = {**(settings or {}), "kind": kind, "measure": measure, "granularity": granularity}
+    return settings_from(RuleCreate.model_validate(fields))
+
+
 def check_rule(kind: str, fields: dict[str, Any]) -> None:
     """Refuse a rule that cannot work (raised as ValueError, reported as 422)."""
     merged = {**DEFAULTS, **{k: v for k, v in fields.items() if v is not None}}
@@ -142,10 +150,10 @@ def check_rule(kind: str, fields: dict[str, Any]) -> None:
         raise ValueError("a floor rule needs a threshold")
     if kind == "shift" and merged["threshold"] is None:
         raise ValueError("a shift rule needs a threshold (minimum change, or PSI)")
-    if kind == "volume" and merged["low"] is None and merged["high"] is None:
-        raise ValueError("a volume rule needs low, high or both")
+    if kind == "traffic" and merged["low"] is None and merged["high"] is None:
+        raise ValueError("a traffic rule needs low, high or both")
     if (
-        kind == "volume"
+        kind == "traffic"
         and merged["low"] is not None
         and merged["high"] is not None
         and merged["low"] > merged["high"]
@@ -184,6 +192,26 @@ class RuleRead(BaseModel):
     muted: bool
     created_at: datetime
     updated_at: datetime
+    retired_at: datetime | None = None
+
+
+NOTE_MAX = 2000  # characters of one note
+
+
+class NoteCreate(BaseModel):
+    """POST /v1/alerts/{id}/note: what a person has to say about an alert."""
+
+    model_config = ConfigDict(extra="forbid")
+    text: str = Field(min_length=1, max_length=NOTE_MAX)
+
+    @field_validator("text")
+    @classmethod
+    def _readable(cls, value: str) -> str:
+        if "\x00" in value:
+            raise ValueError("a note must not contain NUL characters")
+        if not value.strip():
+            raise ValueError("a note must say something (it is blank)")
+        return value.strip()
 
 
 class WebhookCreate(BaseModel):

@@ -24,6 +24,8 @@ class Rule(Base):
     muted_until: Mapped[datetime | None] = mapped_column(UtcDateTime, nullable=True)
     created_at: Mapped[datetime] = mapped_column(UtcDateTime)
     updated_at: Mapped[datetime] = mapped_column(UtcDateTime)
+    # deleting a rule retires it: no longer evaluated or listed, its alerts and breaches kept
+    retired_at: Mapped[datetime | None] = mapped_column(UtcDateTime, nullable=True)
 
 
 class RuleWindow(Base):
@@ -44,6 +46,8 @@ class RuleWindow(Base):
     high: Mapped[float | None] = mapped_column(Float, nullable=True)
     baseline: Mapped[dict[str, Any] | None] = mapped_column(Json, nullable=True)
     p_value: Mapped[float | None] = mapped_column(Float, nullable=True)
+    # the value is back within tolerance of the baseline (None: no decision on this window)
+    recovered: Mapped[bool | None] = mapped_column(Boolean, nullable=True)
     alert_id: Mapped[str | None] = mapped_column(String(32), nullable=True)
     evaluated_at: Mapped[datetime] = mapped_column(UtcDateTime)
 
@@ -63,10 +67,26 @@ class Alert(Base):
     model_id: Mapped[int] = mapped_column(ForeignKey("models.id", ondelete="CASCADE"))
     rule_id: Mapped[str] = mapped_column(ForeignKey("rules.id", ondelete="CASCADE"), index=True)
     segment: Mapped[str] = mapped_column(String(140))
-    state: Mapped[str] = mapped_column(String(16))
-    opened_at: Mapped[datetime] = mapped_column(UtcDateTime)
-    acknowledged_at: Mapped[datetime | None] = mapped_column(UtcDateTime, nullable=True)
-    resolved_at: Mapped[datetime | None] = mapped_column(UtcDateTime, nullable=True)
+    state: Mapped[str] = mapped_column(String(16))  # raised | noted | cleared
+    raised_at: Mapped[datetime] = mapped_column(UtcDateTime)
+    noted_at: Mapped[datetime | None] = mapped_column(UtcDateTime, nullable=True)
+    cleared_at: Mapped[datetime | None] = mapped_column(UtcDateTime, nullable=True)
+    # the first breached window: when the problem started (not when the job ran)
+    started_at: Mapped[datetime | None] = mapped_column(UtcDateTime, nullable=True)
+    # the baseline as it was when the alert was raised, kept frozen while it is active:
+    # value, period, the window starts it pooled and their sufficient statistics
+    baseline: Mapped[dict[str, Any] | None] = mapped_column(Json, nullable=True)
+
+
+class AlertNote(Base):
+    """What a person said about an alert, who said it and when (kept with the alert)."""
+
+    __tablename__ = "alert_notes"
+    id: Mapped[int] = mapped_column(BigId, primary_key=True, autoincrement=True)
+    alert_id: Mapped[str] = mapped_column(ForeignKey("alerts.id", ondelete="CASCADE"), index=True)
+    text: Mapped[str] = mapped_column(Text)
+    author: Mapped[str] = mapped_column(String(160))
+    created_at: Mapped[datetime] = mapped_column(UtcDateTime)
 
 
 class AlertSequence(Base):

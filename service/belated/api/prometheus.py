@@ -122,7 +122,7 @@ class ScrapeCollector:
                 )
             add(
                 "belated_model_open_alerts",
-                "Open or acknowledged alerts.",
+                "Raised or noted alerts.",
                 model,
                 m.get("open_alerts", 0),
             )

@@ -7,7 +7,7 @@ from typing import Any
 from fastapi import APIRouter, Query, Response
 
 from belated.alerts import lifecycle, records, rules, webhooks
-from belated.alerts.schemas import RuleCreate, RuleRead, RuleUpdate, WebhookCreate
+from belated.alerts.schemas import NoteCreate, RuleCreate, RuleRead, RuleUpdate, WebhookCreate
 from belated.api.deps import (
     Admin,
     ModelDep,
@@ -35,9 +35,11 @@ def create_rule(
 
 
 @router.get("/v1/models/{model}/rules")
-def list_rules(_caller: Read, model: ModelDep, session: SessionDep, now: NowDep) -> dict[str, Any]:
-    """The model's rules."""
-    found = rules.list_rules(session=session, model=model)
+def list_rules(
+    _caller: Read, model: ModelDep, session: SessionDep, now: NowDep, retired: bool = False
+) -> dict[str, Any]:
+    """The model's rules; `retired=true` lists the retired ones too."""
+    found = rules.list_rules(session=session, model=model, retired=retired)
     return {"items": [rules.rule_read(r, model.name, now=now) for r in found], "next_cursor": None}
 
 
@@ -64,10 +66,12 @@ def update_rule(
 
 
 @router.delete("/v1/models/{model}/rules/{rule_id}", status_code=204)
-def delete_rule(_caller: Admin, _model: ModelDep, rule: RuleDep, session: SessionDep) -> Response:
-    """Delete a rule with its alerts."""
+def delete_rule(
+    _caller: Admin, _model: ModelDep, rule: RuleDep, session: SessionDep, now: NowDep
+) -> Response:
+    """Retire a rule: it stops being evaluated and listed; its alerts and breaches stay."""
     # `_model` before `rule` keeps the documented parameter order: model, then rule_id
-    rules.delete_rule(session=session, rule=rule)
+    rules.retire_rule(session=session, rule=rule, now=now)
     return Response(status_code=204)
 
 
@@ -81,7 +85,8 @@ def list_alerts(
     cursor: str | None = None,
     limit: int = Query(50, ge=1, le=500),
 ) -> dict[str, Any]:
-    """Alerts with their breaches, newest first."""
+    """Alerts with their breaches, newest first; `state` takes raised, noted, cleared or a
+    comma list of them."""
     raw = decode_cursor(cursor)
     if raw is not None and not raw.isdigit():
         raise Problem(422, "the cursor is not one this API gave out")
@@ -104,11 +109,14 @@ def get_alert(alert_id: str, caller: Read, session: SessionDep) -> dict[str, Any
     return lifecycle.alert_dict(session, alert)
 
 
-@router.post("/v1/alerts/{alert_id}/acknowledge")
-def acknowledge(alert_id: str, caller: Admin, session: SessionDep, now: NowDep) -> dict[str, Any]:
-    """Acknowledge an open alert."""
+@router.post("/v1/alerts/{alert_id}/note")
+def note_alert(
+    alert_id: str, body: NoteCreate, caller: Admin, session: SessionDep, now: NowDep
+) -> dict[str, Any]:
+    """Say something about an alert: who and what are kept, and a raised alert is noted."""
     alert = records.get_alert(session=session, project_id=caller.project_id, alert_id=alert_id)
-    return lifecycle.alert_dict(session, lifecycle.acknowledge(session, alert, now))
+    author = lifecycle.author_of(session, caller.token_id)
+    return lifecycle.alert_dict(session, lifecycle.note(session, alert, body.text, author, now))
 
 
 @router.post("/v1/webhooks", status_code=201)

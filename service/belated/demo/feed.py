@@ -18,7 +18,7 @@ MODEL = "returns-v2"
 
 def rules(reference_start: str, reference_end: str) -> list[dict[str, Any]]:
     """Sensible rules for the shop: label-based drops and label-free shifts against a fixed
-    reference month, volume and label stalls."""
+    reference month, traffic and label stalls."""
     reference = {"start": reference_start, "end": reference_end}
     return [
         {
@@ -51,7 +51,7 @@ def rules(reference_start: str, reference_end: str) -> list[dict[str, Any]]:
             "clear_after": 3,
         },
         {"kind": "shift", "measure": "score_psi", "threshold": 0.1, "baseline": reference},
-        {"kind": "volume", "low": 200},
+        {"kind": "traffic", "low": 200},
         {"kind": "stall", "max_silence_hours": 48},
     ]
 

@@ -1,7 +1,7 @@
 """The figures /metrics serves: computed by the jobs, kept in `service_state`.
 
 For each model: the measures and the label coverage of its latest settled daily window (of
-the last 30 days), that window's start, and the number of its open or acknowledged alerts.
+the last 30 days), that window's start, and the number of its raised or noted alerts.
 The jobs keep one row per project, so that a scrape reads one small row and never runs
 measures.
 """
@@ -44,7 +44,7 @@ def latest(*, session: Session, model: ModelRow, max_values: int) -> dict[str, A
 def cache(*, session: Session, max_values: int, open_alerts: Mapping[int, int]) -> int:
     """Compute and keep every project's model figures; answers the number of projects.
 
-    `open_alerts` counts the open or acknowledged alerts by model id (none when absent).
+    `open_alerts` counts the raised or noted alerts by model id (none when absent).
     """
     by_project: dict[int, list[dict[str, Any]]] = {}
     for model in session.scalars(select(ModelRow).order_by(ModelRow.name)).all():

@@ -39,6 +39,8 @@ NAMES = {
     "recall_macro": "Recall (macro)",
     "fbeta_macro": "F1 (macro)",
 }
+QUIET = ("start", "end", "windows", "fixed", "frozen")  # said once, in the alert's sentence
+ACTIVE = "raised,noted"  # the alert states that stay in sight until an alert clears
 AXIS = {"hour": "%d %b %H:00", "day": "%d %b", "week": "wk %d %b"}
 PAGE = 500
 
@@ -110,10 +112,12 @@ def _windows(
 
 
 def overview(*, session: Session, who: Principal, now: datetime, max_values: int) -> dict[str, Any]:
-    """The project's models, each with its latest settled day and its open alerts."""
-    open_by_model: dict[str, int] = {}
-    for alert in _alerts(session, who, state="open", model=None):
-        open_by_model[alert["model"]] = open_by_model.get(alert["model"], 0) + 1
+    """The project's models, each with its latest settled day and its active alerts (raised
+    and noted: a noted alert stays in sight until it clears)."""
+    active: dict[str, dict[str, int]] = {}
+    for alert in _alerts(session, who, state=ACTIVE, model=None):
+        counts = active.setdefault(alert["model"], {"raised": 0, "noted": 0})
+        counts[alert["state"]] += 1
     rng = params.parse_range("day", None, None, now)
     cards = []
     for row in _all_models(session, who.project_id):
@@ -125,7 +129,7 @@ def overview(*, session: Session, who: Principal, now: datetime, max_values: int
             {
                 "name": row.name,
                 "kind": row.kind,
-                "open_alerts": open_by_model.get(row.name, 0),
+                "alerts": active.get(row.name, {"raised": 0, "noted": 0}),
                 "stored": model_registry.counts(session=session, model=row),
                 "window": latest,
                 "newest": newest,
@@ -213,7 +217,7 @@ def model_view(
             reference=row.min_coverage,
             reference_label=f"settles at {row.min_coverage:.0%}",
         ),
-        "alerts": _alerts(session, who, state="open", model=row.name),
+        "alerts": _with_rules(session, row, _alerts(session, who, state=ACTIVE, model=row.name)),
         "rules": [
             alert_rules.rule_read(r, row.name)
             for r in alert_rules.list_rules(session=session, model=row)
@@ -332,7 +336,7 @@ def describe_rule(rule: Any) -> str:
         + (" (upper interval end)" if rule.mode == "confident" else ""),
         "drop": f"{m} more than {rule.tolerance} under its baseline at α = {rule.alpha}",
         "shift": f"{m} moved by at least {rule.threshold} from its baseline",
-        "volume": f"predictions outside [{rule.low}, {rule.high}]",
+        "traffic": f"predictions outside [{rule.low}, {rule.high}]",
         "stall": (
             f"coverage of old windows under {rule.threshold}"
             if rule.threshold is not None
@@ -344,9 +348,11 @@ def describe_rule(rule: Any) -> str:
 
 
 def baseline_text(baseline: dict[str, Any] | None) -> str:
-    """What a breach was compared with, in a few words."""
+    """What a breach was compared with, in a few words (the period is in the sentence)."""
     parts = []
     for key, value in (baseline or {}).items():
+        if key in QUIET:
+            continue
         if isinstance(value, dict):
             parts.append(f"{key.replace('_', ' ')}: {len(value)} values")
         elif isinstance(value, int | float) and not isinstance(value, bool):
@@ -354,6 +360,19 @@ def baseline_text(baseline: dict[str, Any] | None) -> str:
         elif value is not None:
             parts.append(f"{key.replace('_', ' ')} {value}")
     return "; ".join(parts) or "—"
+
+
+def _with_rules(
+    session: Session, row: ModelRow, alerts: list[dict[str, Any]]
+) -> list[dict[str, Any]]:
+    """Name the rule of each alert of a model (retired rules included) as `rule_text`."""
+    rules = {
+        r.id: describe_rule(alert_rules.rule_read(r, row.name))
+        for r in alert_rules.list_rules(session=session, model=row, retired=True)
+    }
+    for a in alerts:
+        a["rule_text"] = rules.get(a["rule_id"], a["rule_id"])
+    return alerts
 
 
 def alerts_view(
@@ -369,13 +388,10 @@ def alerts_view(
         after=after,
         limit=50,
     )
-    rules: dict[str, str] = {}
     for name in sorted({a["model"] for a in items}):
         row = model_registry.get(session=session, project_id=who.project_id, name=name)
-        for r in alert_rules.list_rules(session=session, model=row):
-            rules[r.id] = describe_rule(alert_rules.rule_read(r, name))
+        _with_rules(session, row, [a for a in items if a["model"] == name])
     for a in items:
-        a["rule_text"] = rules.get(a["rule_id"], a["rule_id"])
         a["breaches"] = [
             {**b, "baseline_text": baseline_text(b["baseline"])} for b in a["breaches"][::-1]
         ]

@@ -172,7 +172,7 @@ def signout(request: Request) -> Response:
 
 @router.get("/", response_class=HTMLResponse)
 def overview(request: Request, session: SessionDep) -> Response:
-    """The project's models with their latest settled measures and open alerts."""
+    """The project's models with their latest settled measures and raised or noted alerts."""
     who = viewer(request, session)
     if isinstance(who, Response):
         return who
