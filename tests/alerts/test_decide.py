@@ -6,6 +6,7 @@ under a second each.
 
 from __future__ import annotations
 
+from dataclasses import replace
 from datetime import UTC, datetime, timedelta
 from typing import Any
 
@@ -15,14 +16,14 @@ from scipy.special import rel_entr
 from sklearn.metrics import f1_score, precision_score, recall_score
 from statsmodels.stats.multitest import multipletests
 from statsmodels.stats.proportion import (
-    confint_proportions_2indep,
     proportion_confint,
     proportions_ztest,
 )
 
 from belated.alerts.decide import Decision, WindowInput, decide, verdicts
-from belated.alerts.pvalues import DROP_RESAMPLES
 from belated.alerts.schemas import RuleCreate, RuleSettings, settings_from
+from belated.stats.change import drop_p_value
+from belated.stats.droptest import drop_test
 from belated.stats.window import WindowStats
 
 DAY0 = datetime(2026, 6, 1, tzinfo=UTC)
@@ -144,9 +145,12 @@ def _drop_series(base: WindowStats, current: WindowStats) -> list[WindowInput]:
         ),
     ],
 )
-def test_drop_of_a_proportion_inverts_newcombes_interval(
+def test_drop_of_a_proportion_takes_the_exact_mid_p_test(
     measure: str, base: WindowStats, current: WindowStats, tolerance: float
 ) -> None:
+    """The drop p-value of a proportion is the exact unconditional mid-p test of
+    belated.stats.change (checked there against statsmodels and by simulation), on the
+    current window against the pooled 7-day baseline."""
     r = rule(kind="drop", measure=measure, tolerance=tolerance, alpha=0.05, min_support=30)
     (d,) = decide(r, _drop_series(base, current), 7)
     pooled = WindowStats.empty()
@@ -160,57 +164,50 @@ def test_drop_of_a_proportion_inverts_newcombes_interval(
         x1, n1, x2, n2 = current.tp, current.tp + current.fp, pooled.tp, pooled.tp + pooled.fp
     assert d.value == pytest.approx(x1 / n1)
     assert d.baseline is not None and d.baseline["value"] == pytest.approx(x2 / n2)
-    # reference: statsmodels' Newcombe hybrid score interval for p1 - p2 (method "newcomb");
-    # the one-sided p-value is the alpha whose (1 - 2 alpha) upper limit sits at -tolerance
-    assert d.p_value is not None and 0 < d.p_value < 0.5
-    _, upper_at_p = confint_proportions_2indep(
-        x1, n1, x2, n2, method="newcomb", compare="diff", alpha=2 * d.p_value
-    )
-    assert upper_at_p == pytest.approx(-tolerance, abs=1e-7)
-    _, upper = confint_proportions_2indep(
-        x1, n1, x2, n2, method="newcomb", compare="diff", alpha=2 * r.alpha
-    )
-    assert d.breached(r.alpha) == (upper < -tolerance and x1 / n1 < x2 / n2 - tolerance)
+    assert d.p_value == pytest.approx(drop_p_value(x1, n1, x2, n2, tolerance))
+    assert d.breached(r.alpha) == (x1 / n1 < x2 / n2 - tolerance and d.p_value < r.alpha)
 
 
 def test_drop_within_tolerance_does_not_fire() -> None:
     base, current = counts(tp=255, fn=45, tn=900), counts(tp=249, fn=51, tn=900)  # 0.85 -> 0.83
     r = rule(kind="drop", measure="recall", tolerance=0.05, alpha=0.05)
     (d,) = decide(r, _drop_series(base, current), 7)
-    assert not d.condition and d.p_value == 1.0 and not d.breached(r.alpha)
+    assert not d.condition and not d.breached(r.alpha)
 
 
 @pytest.mark.parametrize(
     "cur",
     [(248, 47, 52, 653), (240, 50, 60, 650), (225, 55, 75, 645)],  # F1 0.83, 0.81, 0.78
 )
-def test_drop_of_f1_matches_an_independent_bootstrap(cur: tuple[int, int, int, int]) -> None:
-    """Baseline F1 0.85 over 7 days; the p-value is a seeded bootstrap of both windows."""
+def test_drop_of_f1_takes_the_seeded_null_bootstrap(cur: tuple[int, int, int, int]) -> None:
+    """Baseline F1 0.85 over 7 days; the p-value is belated.stats.droptest's seeded
+    bootstrap under the null (its level is checked by simulation in tests/stats)."""
     base = (255, 45, 45, 655)
     r = rule(kind="drop", measure="fbeta", tolerance=0.0, alpha=0.05)
-    (d,) = decide(r, _drop_series(counts(*base), counts(*cur)), 7)
+    series = _drop_series(counts(*base), counts(*cur))
+    (d,) = decide(r, series, 7)
     # reference: scikit-learn's f1_score for the values
     assert d.value == pytest.approx(f1_score(*arrays(*cur)))
     assert d.baseline is not None
     assert d.baseline["value"] == pytest.approx(f1_score(*arrays(*base)))
-    # reference: a multinomial bootstrap drawn here in numpy with F1 = 2TP / (2TP + FP + FN);
-    # two estimates of one p-value differ by Monte Carlo error only: the MCSE of each is
-    # sqrt(p (1 - p) / B), and the add-one estimate in decide moves it by up to 1 / B
-    rng = np.random.default_rng(99)
-    b = 20_000
-
-    def f1(c: tuple[int, ...]) -> np.ndarray:
-        n = np.array(c, dtype=np.float64)
-        m = rng.multinomial(int(n.sum()), n / n.sum(), size=b)
-        out: np.ndarray = 2 * m[:, 0] / (2 * m[:, 0] + m[:, 1] + m[:, 2])
-        return out
-
-    ref = float(np.mean(f1(cur) - f1(tuple(7 * k for k in base)) >= 0))
-    mcse = np.sqrt(ref * (1 - ref) * (1 / b + 1 / DROP_RESAMPLES))
-    assert d.p_value is not None
-    assert abs(d.p_value - ref) <= 4 * mcse + 1 / DROP_RESAMPLES
+    pooled = WindowStats.empty()
+    for _ in range(7):
+        pooled = pooled.merge(counts(*base))
+    seed = int(series[-1].start.timestamp()) & 0x7FFFFFFF
+    want = drop_test("fbeta", counts(*cur), pooled, tolerance=0.0, beta=1.0, seed=seed)
+    assert d.p_value == want.p_value and d.p_value is not None
     assert d.condition
-    assert d.breached(r.alpha) == (ref < r.alpha)
+    assert d.breached(r.alpha) == (d.p_value < r.alpha)
+
+
+def test_a_drop_without_a_p_value_never_breaches() -> None:
+    """A tested decision whose p-value is missing is never significant, whatever its
+    condition says (DESIGN.md "Rules and alerts")."""
+    r = rule(kind="drop", measure="recall", tolerance=0.0, alpha=0.05)
+    (d,) = decide(r, _drop_series(counts(tp=255, fn=45, tn=900), counts(tp=150, fn=150)), 7)
+    assert d.condition and d.breached(r.alpha)
+    missing = replace(d, p_value=None)
+    assert missing.condition and not missing.breached(r.alpha)
 
 
 # --- shift ------------------------------------------------------------------------------

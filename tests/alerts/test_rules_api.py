@@ -41,6 +41,27 @@ def _rule_count(engine: Any, tenant: Tenant) -> int:
         ({"kind": "traffic", "low": 10, "high": 5}, "body", "low must not exceed high"),
         ({"kind": "sometimes", "measure": "recall"}, "kind", ""),
         ({"kind": "drop", "measure": "recall", "baseline": {"windows": 0}}, "baseline.windows", ""),
+        # a rule that could never fire: no interval for a confident floor
+        (
+            {
+                "kind": "floor",
+                "measure": "average_precision",
+                "threshold": 0.5,
+                "mode": "confident",
+            },
+            "body",
+            "no interval",
+        ),
+        (
+            {
+                "kind": "floor",
+                "measure": "implied.precision",
+                "threshold": 0.5,
+                "mode": "confident",
+            },
+            "body",
+            "no interval",
+        ),
     ],
 )
 def test_a_rule_that_cannot_work_is_refused_and_nothing_is_stored(

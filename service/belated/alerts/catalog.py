@@ -4,6 +4,8 @@ from __future__ import annotations
 
 from typing import Any
 
+from belated.stats.droptest import DROP_MEASURES
+
 # label-based measures whose support is a count of the confusion matrix
 DENOMINATORS: dict[str, tuple[str, ...]] = {
     "precision": ("tp", "fp"),
@@ -17,15 +19,6 @@ DENOMINATORS: dict[str, tuple[str, ...]] = {
     "prevalence": ("tp", "fp", "fn", "tn"),
     "roc_auc": ("tp", "fp", "fn", "tn"),
     "average_precision": ("tp", "fp", "fn", "tn"),
-}
-# proportions get Newcombe's interval for a difference; the rest the bootstrap
-PROPORTIONS: dict[str, tuple[tuple[str, ...], tuple[str, ...]]] = {
-    "precision": (("tp",), ("tp", "fp")),
-    "recall": (("tp",), ("tp", "fn")),
-    "accuracy": (("tp", "tn"), ("tp", "fp", "fn", "tn")),
-    "specificity": (("tn",), ("tn", "fp")),
-    "npv": (("tn",), ("tn", "fn")),
-    "prevalence": (("tp", "fn"), ("tp", "fp", "fn", "tn")),
 }
 IMPLIED_PREFIX = "implied."
 LABEL_FREE = ("positive_rate", "implied.precision", "implied.recall", "implied.fbeta")
@@ -42,8 +35,13 @@ def support(measure: str, confusion: dict[str, Any]) -> int:
     return int(sum(confusion.get(k, 0) for k in DENOMINATORS.get(measure, ())))
 
 
-def check(kind: str, measure: str | None) -> str | None:
-    """None when the (kind, measure) pair can work, else the reason it cannot."""
+# measures whose window value has no interval: a `confident` floor cannot be decided on them
+NO_INTERVAL = ("average_precision", "implied.precision", "implied.recall", "implied.fbeta")
+
+
+def check(kind: str, measure: str | None, mode: str | None = None) -> str | None:
+    """None when the (kind, measure, mode) can work, else the reason it cannot: a rule that
+    could never fire is refused at creation."""
     if kind in ("floor", "drop"):
         if measure is None:
             return f"a {kind} rule needs a measure"
@@ -51,6 +49,13 @@ def check(kind: str, measure: str | None) -> str | None:
             return (
                 f"unknown measure {measure!r} for a {kind} rule; choose from "
                 f"{', '.join([*DENOMINATORS, *LABEL_FREE])}"
+            )
+        if kind == "drop" and measure not in DROP_MEASURES:
+            return f"no significance test for a drop in {measure!r}; a drop rule needs one"
+        if kind == "floor" and mode == "confident" and measure in NO_INTERVAL:
+            return (
+                f"{measure!r} has no interval, so a confident floor could never decide; "
+                "use mode point"
             )
         return None
     if kind == "shift":

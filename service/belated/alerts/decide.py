@@ -14,10 +14,11 @@ from dataclasses import dataclass, field, replace
 from datetime import datetime
 from typing import Any
 
-from belated.alerts import catalog, pvalues
+from belated.alerts import catalog
 from belated.alerts.schemas import Kind, RuleSettings
 from belated.stats.change import benjamini_hochberg, two_proportion_test
-from belated.stats.drift import categorical_psi, psi
+from belated.stats.drift import categorical_psi, psi_test
+from belated.stats.droptest import drop_test, significant
 from belated.stats.summary import summarise
 from belated.stats.window import WindowStats
 from belated.timeutil import iso
@@ -79,10 +80,16 @@ class Decision:
     recovered: bool | None = None
     reason: str | None = None
     basis: Baseline | None = field(default=None, compare=False, repr=False)
+    # the verdict needs a significant p-value (drop, shift): a missing one never counts
+    tested: bool = False
 
     def breached(self, alpha: float, adjusted_p: float | None = None) -> bool:
-        """Final verdict; `adjusted_p` replaces the raw p-value after BH."""
+        """Final verdict; `adjusted_p` replaces the raw p-value after BH. A condition-only
+        decision (floor, traffic, stall, tag PSI) needs no p-value; a tested one breaches
+        only with a p-value under `alpha`."""
         p = adjusted_p if adjusted_p is not None else self.p_value
+        if self.tested:
+            return self.condition and significant(p, alpha)
         return self.condition and (p is None or p < alpha)
 
 
@@ -191,21 +198,14 @@ def _drop(
             high=high,
             baseline=info,
         )
-    p: float | None
-    parts = catalog.PROPORTIONS.get(measure)
-    if measure == "positive_rate":
-        p = pvalues.drop_proportion(
-            w.stats.n_pred_pos, w.stats.n_pred, base.n_pred_pos, base.n_pred, tol
-        )
-    elif parts is not None:
-        cur_c, base_c = _confusion(w.stats), _confusion(base)
-        x1, n1 = sum(cur_c[k] for k in parts[0]), sum(cur_c[k] for k in parts[1])
-        x2, n2 = sum(base_c[k] for k in parts[0]), sum(base_c[k] for k in parts[1])
-        p = pvalues.drop_proportion(x1, n1, x2, n2, tol)
-    else:
-        seed = int(w.start.timestamp()) & 0x7FFFFFFF
-        p = pvalues.drop_bootstrap(measure, w.stats, base, beta, tol, seed)
-    info.update(drop=(base_value - value), tolerance=tol)
+    # exact mid-p for proportions, DeLong for AUC, a seeded bootstrap under the null for
+    # the rest (belated.stats.droptest); None when there is no test, never significant
+    seed = int(w.start.timestamp()) & 0x7FFFFFFF
+    test = drop_test(measure, w.stats, base, tolerance=tol, beta=beta, seed=seed)
+    p = test.p_value
+    info.update(drop=(base_value - value), tolerance=tol, test=test.method)
+    if test.reason:
+        info["no_test"] = test.reason
     return Decision(
         start=w.start,
         end=w.end,
@@ -216,6 +216,7 @@ def _drop(
         high=high,
         baseline=info,
         recovered=value >= base_value - tol,
+        tested=True,
     )
 
 
@@ -236,13 +237,26 @@ def _shift(rule: RuleSettings, w: WindowInput, basis: Baseline, frozen: bool) ->
             value=cur_rate,
             baseline=_info(basis, frozen, value=base_rate, change=cur_rate - base_rate),
             recovered=not moved,
+            tested=True,
         )
     if measure == "score_psi":
-        v = psi(base.hist_all, w.stats.hist_all)
-        info = _info(basis, frozen, predictions=base.n_pred)
-    else:
-        v = categorical_psi(basis.tag_counts, w.tag_counts)
-        info = _info(basis, frozen, counts=dict(basis.tag_counts))
+        # PSI at or over the threshold, and unlikely under "nothing changed" (small samples
+        # cross 0.1 by chance half of the time at 100 predictions)
+        seed = int(w.start.timestamp()) & 0x7FFFFFFF
+        found = psi_test(base.hist_all, w.stats.hist_all, seed=seed)
+        over = found.value.value is not None and found.value.value >= threshold
+        return Decision(
+            start=w.start,
+            end=w.end,
+            condition=over,
+            p_value=found.p_value,
+            value=found.value.value,
+            baseline=_info(basis, frozen, predictions=base.n_pred),
+            recovered=None if found.value.value is None else not over,
+            tested=True,
+        )
+    v = categorical_psi(basis.tag_counts, w.tag_counts)
+    info = _info(basis, frozen, counts=dict(basis.tag_counts))
     over = v.value is not None and v.value >= threshold
     return Decision(
         start=w.start,

@@ -143,7 +143,7 @@ def stored_settings(
 def check_rule(kind: str, fields: dict[str, Any]) -> None:
     """Refuse a rule that cannot work (raised as ValueError, reported as 422)."""
     merged = {**DEFAULTS, **{k: v for k, v in fields.items() if v is not None}}
-    reason = catalog.check(kind, merged.get("measure"))
+    reason = catalog.check(kind, merged.get("measure"), merged.get("mode"))
     if reason:
         raise ValueError(reason)
     if kind == "floor" and merged["threshold"] is None:
