@@ -50,8 +50,9 @@ class Curves:
     negative: CurveFit
     positive: CurveFit
     # the labelled share of cohorts older than the label delay: how many predictions are
-    # ever labelled (1 with implied negatives)
+    # ever labelled (1 with implied negatives); `eventual_known` when it was measured
     eventual_coverage: float = 1.0
+    eventual_known: bool = False
 
     @property
     def complete(self) -> bool:
@@ -124,6 +125,7 @@ def model_curves(session: Session, model: ModelRow, now: datetime) -> Curves:
         eventual_coverage=1.0
         if implied_after is not None or not old_pred
         else max(old_labelled / old_pred, 1e-6),
+        eventual_known=implied_after is not None or old_pred > 0,
     )
 
 
@@ -205,15 +207,18 @@ def projected(
         seed=seed,
         eventual_coverage=curves.eventual_coverage,
         min_coverage=model.min_coverage,
-        # with implied negatives every prediction is labelled at last
-        one_class_suffices=model.negative_after_days is not None,
+        # with the share labelled at last known, one class's arrival identifies the rest
+        one_class_suffices=curves.eventual_known,
     )
     hours = answer.get("settles_in_hours")
     by_age = cohorts[-1][0] + cohorts[-1][1] + timedelta(days=model.label_delay_days)
     settles = by_age if hours is None else min(by_age, now + timedelta(hours=float(hours)))
     return {
         "projected": answer["measures"],
-        "expected_final_coverage": _round(answer["expected_final_coverage"]),
+        # the share labelled at last, as settled history shows it (1 with implied negatives)
+        "expected_final_coverage": _round(
+            curves.eventual_coverage if curves.eventual_known else answer["expected_final_coverage"]
+        ),
         "settles_by": settles.date().isoformat(),
         "arrived_share": _round(answer.get("arrived_share")),
     }

@@ -106,10 +106,11 @@ def project(
     `settles_in_hours` how many hours from now until every class's share reaches
     `min_coverage` (0 when it has, None when never or not asked).
 
-    `one_class_suffices`: when every prediction is labelled at last (implied negatives, so
-    `eventual_coverage` is 1), the unlabelled predictions of a cell are exactly the labels
-    still to come, and one class's arrival identifies the cell's share of positives; then
-    the measures are null only when every class is below `min_arrival`.
+    `one_class_suffices`: when the share of predictions labelled at last is known (1 with
+    implied negatives, or measured on settled history), a cell's labels still to come are
+    its predictions times that share less the labels seen, and one class's arrival
+    identifies the cell's share of positives; then the measures are null only when every
+    class is below `min_arrival`.
     """
     if not 0.0 < eventual_coverage <= 1.0:
         raise ValueError("eventual_coverage must lie in (0, 1]")
@@ -140,11 +141,14 @@ def project(
     if min_coverage is not None:
         out["settles_in_hours"] = settles_in_hours(strata, members, min_coverage)
     low_class = [(name, a) for name, a in zip(CLASS_NAMES, arrival, strict=True) if a < min_arrival]
-    if one_class_suffices and eventual_coverage >= 1.0 and len(low_class) < len(CLASS_NAMES):
+    if one_class_suffices and len(low_class) < len(CLASS_NAMES):
         low_class = []
     if low_class:
         name, a = low_class[0]
         reason = f"too few {name} labels expected by this age ({a:.3f} of them arrived)"
+        if one_class_suffices:
+            shares = ", ".join(f"{n} {x:.3f}" for n, x in low_class)
+            reason = f"too few labels of either class expected by this age ({shares} arrived)"
         out["measures"] = {m: undefined(reason) for m in PROJECTED}
         return out
     point = measure_values(confusion_of((k + later).sum(axis=0), strata.predicted_positive), beta)
