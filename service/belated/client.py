@@ -375,8 +375,12 @@ class Client:
         """One row per window: counts, coverage, settled, closed, and each measure flattened.
 
         A measure `m` gives columns `m`, `m_low`, `m_high`; measures implied by the scores
-        alone give `implied_m`; coverage bounds `m_bound_low`, `m_bound_high`; multiclass per-class
-        measures `<class>.m`. `start` and `end` are UTC timestamps; undefined values are NaN.
+        alone give `implied_m`; an unsettled window's projected measures give
+        `m_projected`, `m_projected_low`, `m_projected_high`, beside `expected_final_coverage`
+        and `settles_by` (read the projected value first: the labelled-only `m` of a young
+        window leans toward the class whose labels come first); coverage bounds `m_bound_low`,
+        `m_bound_high`; multiclass per-class measures `<class>.m`. `start` and `end` are UTC
+        timestamps; undefined values are NaN.
         """
         answer = self.metrics_json(model, **params)
         frame = pd.DataFrame(
@@ -459,6 +463,16 @@ def flatten_window(window: dict[str, Any]) -> dict[str, Any]:
         )
     for name, b in (window.get("bounds") or {}).items():
         row[f"{name}_bound_low"], row[f"{name}_bound_high"] = _value(b, "low"), _value(b, "high")
+    # an unsettled window's projected measures (what it will read once its labels are in)
+    for name, m in (window.get("projected") or {}).items():
+        row[f"{name}_projected"], row[f"{name}_projected_low"], row[f"{name}_projected_high"] = (
+            _value(m, "value"),
+            _value(m, "low"),
+            _value(m, "high"),
+        )
+    final = window.get("expected_final_coverage")
+    row["expected_final_coverage"] = np.nan if final is None else float(final)
+    row["settles_by"] = window.get("settles_by")
     for cls, measures in (window.get("per_class") or {}).items():
         for name, m in measures.items():
             row[f"{cls}.{name}"], row[f"{cls}.{name}_low"], row[f"{cls}.{name}_high"] = (

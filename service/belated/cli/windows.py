@@ -25,13 +25,28 @@ def _measure(frame: pd.DataFrame, name: str) -> str:
     raise fail(f"unknown measure {name!r}; choose from {', '.join(known)}", 2)
 
 
-def _cell(row: pd.Series, col: str) -> str:
-    value, low, high = row[col], row[f"{col}_low"], row[f"{col}_high"]
+def _interval(value: float, low: float, high: float) -> str:
     if pd.isna(value):
         return "-"
     if pd.isna(low) or pd.isna(high):
         return f"{value:.3f}"
     return f"{value:.3f} [{low:.3f}, {high:.3f}]"
+
+
+def _cell(row: pd.Series, col: str) -> str:
+    """A settled window's measure; an unsettled one's projected measure first, with the
+    labelled-only value and the coverage bounds beside it (never the labelled value alone)."""
+    labelled = _interval(row[col], row[f"{col}_low"], row[f"{col}_high"])
+    projected = f"{col}_projected"
+    if row.get("settled") or projected not in row.index:
+        return labelled
+    if pd.isna(row[projected]):
+        return f"proj - · labelled {labelled}"
+    shown = _interval(row[projected], row[f"{projected}_low"], row[f"{projected}_high"])
+    bounds = ""
+    if f"{col}_bound_low" in row.index and not pd.isna(row[f"{col}_bound_low"]):
+        bounds = f" · bounds [{row[f'{col}_bound_low']:.3f}, {row[f'{col}_bound_high']:.3f}]"
+    return f"proj {shown} · labelled {labelled}{bounds}"
 
 
 def windows(
@@ -68,8 +83,10 @@ def windows(
     table = Table(
         title=f"{model}: latest {len(frame)} {granularity} windows (UTC)",
         caption=Text(
-            "provisional: not settled, may change as labels arrive; open: "
-            "the current window; [low, high]: 95% interval"
+            "provisional: not settled, may change as labels arrive; its measures show first "
+            "the projected value (what the window will read once its labels are in), then "
+            "the labelled-only value and the coverage bounds; open: the current window; "
+            "[low, high]: 95% interval"
         ),
     )
     for head in ("start", "predictions", "labelled", "coverage", "state", *cols):
