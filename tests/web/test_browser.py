@@ -159,7 +159,7 @@ def check_pages(
     assert count(driver, "svg#m-positive_rate .gap") == WINDOWS - DAYS
     assert count(driver, "svg#coverage rect.pt") == len(days)
     assert count(driver, "svg#sweep [data-series='recall'] circle.pt") == 100
-    assert count(driver, "svg#m-precision circle.pt.prov") > 0
+    assert count(driver, "svg#m-precision .pt.prov") > 0  # hollow, or a projected square
     assert "Read these numbers with care" in driver.find_element(By.CSS_SELECTOR, ".care").text
     assert count(driver, "[data-alert]") == 1
     assert console_errors(driver) == []

@@ -30,6 +30,9 @@ class Point:
     high: float | None = None
     settled: bool = True
     note: str = ""
+    # an unsettled window drawn at its projected value (what it will read once its labels
+    # are in), not its labelled-only value
+    projected: bool = False
 
 
 def _f(x: float) -> str:
@@ -199,13 +202,20 @@ def line_chart(points: Sequence[Point], *, title: str, chart_id: str, css: str =
             )
             continue
         band = f" [{_v(p.low)}, {_v(p.high)}]" if p.low is not None else ""
-        cls = "pt" if p.settled else "pt prov"
+        cls = "pt" if p.settled else "pt prov proj" if p.projected else "pt prov"
+        shape = (
+            f'<rect class="{cls}" x="{_f(fr.x(i) - 3.4)}" y="{_f(fr.y(p.value) - 3.4)}" '
+            'width="6.8" height="6.8"'
+            if p.projected  # a square: projected, not measured on labels
+            else f'<circle class="{cls}" cx="{_f(fr.x(i))}" cy="{_f(fr.y(p.value))}" r="3.6"'
+        )
+        tag = "rect" if p.projected else "circle"
         out.append(
-            f'<circle class="{cls}" cx="{_f(fr.x(i))}" cy="{_f(fr.y(p.value))}" r="3.6" '
-            f'data-value="{_v(p.value)}" data-low="{_v(p.low)}" '
+            f'{shape} data-value="{_v(p.value)}" data-low="{_v(p.low)}" '
             f'data-high="{_v(p.high)}" data-window="{escape(p.key)}" '
-            f'data-settled="{str(p.settled).lower()}">'
-            f"{_hover(p, f'{p.value:.3f}{band}')}</circle>"
+            f'data-settled="{str(p.settled).lower()}" '
+            f'data-projected="{str(p.projected).lower()}">'
+            f"{_hover(p, f'{p.value:.3f}{band}')}</{tag}>"
         )
     out += ["</g>", _xlabels(fr, [p.label for p in points]), "</svg>"]
     return Markup("".join(out))

@@ -148,6 +148,16 @@ def _series(
     out = []
     for w in windows:
         m = (w.get(section) or {}).get(measure) or {}
+        note = m.get("reason") or f"{w['labelled']} of {w['predictions']} labelled"
+        proj = (w.get("projected") or {}).get(measure) if section == "measures" else None
+        if proj and proj.get("value") is not None:
+            # the honest number first: what the window will read once its labels are in,
+            # with the labelled-only value and the coverage bounds beside it
+            bounds = (w.get("bounds") or {}).get(measure) or {}
+            beside = f"labelled only {_num(m.get('value'))} ({note})"
+            if bounds.get("low") is not None:
+                beside += f"; coverage bounds [{_num(bounds['low'])}, {_num(bounds['high'])}]"
+            m, note = proj, f"projected; {beside}"
         out.append(
             charts.Point(
                 key=w["start"],
@@ -156,10 +166,15 @@ def _series(
                 low=m.get("low"),
                 high=m.get("high"),
                 settled=w["settled"],
-                note=m.get("reason") or f"{w['labelled']} of {w['predictions']} labelled",
+                note=note,
+                projected=m is proj,
             )
         )
     return out
+
+
+def _num(x: float | None) -> str:
+    return "-" if x is None else f"{x:.3f}"
 
 
 def model_view(
