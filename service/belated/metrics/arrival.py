@@ -39,6 +39,7 @@ from belated.store.totals import Totals
 MIN_HISTORY_DAYS = 90
 MAX_HISTORY_DAYS = 400
 PROJECTION_RESAMPLES = 200
+HOURLY_COHORT_HOURS = 48  # younger cohorts are read by the hour, older ones by the day
 _DELAYS = HISTOGRAM_BY_NAME["delays_by_class"]
 _POS, _NEG = (_DELAYS.axes[0].index(c) for c in ("pos", "neg"))
 
@@ -78,37 +79,36 @@ def history_days(model: ModelRow) -> int:
 
 
 def model_curves(session: Session, model: ModelRow, now: datetime) -> Curves:
-    """The arrival curves of a binary model's classes, from the hourly rollups of the
-    whole model over `history_days` before now (the caller has refreshed them)."""
+    """The arrival curves of a binary model's classes, from the rollups of the whole model
+    over `history_days` before now (the caller has refreshed them).
+
+    Cohorts are hours over the last two days, where the hourly delay bins need them, and
+    whole days before (a twentieth of the rows to decode). A day's cohort is taken at the
+    age of its youngest hour: only the delays every prediction of the day has lived through
+    count, which is the truncation the estimator expects (a few long delays of the day's
+    older hours are left out)."""
     now_h = now.timestamp() / 3600
-    lo = int(now_h) - 24 * history_days(model)
-    rows = session.execute(
-        select(
-            Rollup.start,
-            Rollup.__table__.c.n_pred,
-            Rollup.__table__.c.n_labelled,
-            Rollup.__table__.c.n_implied,
-            Rollup.__table__.c.delays_by_class,
-        )
-        .where(
-            Rollup.model_id == model.id,
-            Rollup.level == "h",
-            Rollup.seg_key == "",
-            Rollup.seg_value == "",
-            Rollup.start >= lo,
-            Rollup.start <= int(now_h),
-        )
-        .order_by(Rollup.start)
-    ).all()
+    lo = (int(now_h) - 24 * history_days(model)) // 24 * 24
+    split = (int(now_h) - HOURLY_COHORT_HOURS) // 24 * 24
+    c = Rollup.__table__.c
+    cols = (Rollup.start, Rollup.level, c.n_pred, c.n_labelled, c.n_implied, c.delays_by_class)
+    whole_model = (Rollup.model_id == model.id, Rollup.seg_key == "", Rollup.seg_value == "")
+    days = select(*cols).where(*whole_model, Rollup.level == "d")
+    hours = select(*cols).where(*whole_model, Rollup.level == "h")
+    rows = [
+        *session.execute(days.where(Rollup.start >= lo, Rollup.start < split)),
+        *session.execute(hours.where(Rollup.start >= split, Rollup.start <= int(now_h))),
+    ]
     hists = np.zeros((len(rows), *_DELAYS.shape), np.int64)
     implied = np.zeros(len(rows), np.int64)
     ages = np.zeros(len(rows), np.float64)
     old_pred = old_labelled = 0
-    for i, (start, n_pred, n_labelled, n_implied, blob) in enumerate(rows):
+    for i, (start, level, n_pred, n_labelled, n_implied, blob) in enumerate(rows):
         if blob:
             hists[i] = unpack(_DELAYS, bytes(blob))[0]
         implied[i] = n_implied
-        ages[i] = now_h - start
+        # the age of the cohort's youngest hour, counted from that hour's start
+        ages[i] = now_h - (start + (23 if level == "d" else 0))
         if ages[i] > 24 * model.label_delay_days:
             old_pred, old_labelled = old_pred + n_pred, old_labelled + n_labelled
     implied_after = (

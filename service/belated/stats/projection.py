@@ -228,6 +228,6 @@ def settles_in_hours(
 
 
 def _reached(strata: Strata, members: np.ndarray, extra: float, min_coverage: float) -> bool:
-    f, _ = strata.arrival(extra)
+    f = strata.arrived(extra)
     shares = _class_arrival(f, members)
     return all(math.isnan(a) or a >= min_coverage - 1e-12 for a in shares)

@@ -71,6 +71,16 @@ class Strata:
                     )
         return f, v
 
+    def arrived(self, extra_hours: float = 0.0) -> np.ndarray:
+        """F alone (H, S, 2) at every cohort's age plus `extra_hours` (no variance)."""
+        f = np.zeros((*self.predictions.shape, 2))
+        mid = np.maximum(self.ages_hours + extra_hours - 0.5, 0.0)  # as cohort_arrival
+        for s, pair in enumerate(self.curves):
+            for c, fit in enumerate(pair):
+                if fit.curve is not None:
+                    f[:, s, c] = fit.curve.at(mid)
+        return f
+
     def curve_index(self) -> tuple[np.ndarray, int]:
         """(S, 2) index of each stratum's curves among the distinct ones, and how many."""
         seen: dict[int, int] = {}

@@ -25,6 +25,7 @@ from __future__ import annotations
 from collections.abc import Callable
 from dataclasses import dataclass
 from enum import StrEnum
+from functools import cached_property
 
 import numpy as np
 
@@ -216,12 +217,12 @@ class Histogram:
     binary_only: bool = False
     whole_model_only: bool = False  # kept for the whole model, not per segment
 
-    @property
+    @cached_property
     def shape(self) -> tuple[int, ...]:
         """The shape of the count (and score-sum) array."""
         return tuple(a.size for a in self.axes)
 
-    @property
+    @cached_property
     def n_cells(self) -> int:
         """The number of cells."""
         return int(np.prod(self.shape))
