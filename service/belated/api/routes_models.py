@@ -7,9 +7,10 @@ from typing import Any
 
 from fastapi import APIRouter, Query, Response
 
-from belated.api.deps import Admin, ModelDep, NowDep, Read, SessionDep
+from belated.api.deps import Admin, ModelDep, NowDep, Read, SessionDep, SettingsDep
 from belated.api.schemas import ModelCreate, ModelPage, ModelRead, ModelUpdate
 from belated.errors import Problem
+from belated.metrics.load import ensure_fresh
 from belated.store import model_registry
 from belated.store.tables import ModelRow
 from belated.timeutil import to_utc
@@ -29,6 +30,7 @@ def read_model(session: Any, model: ModelRow) -> ModelRead:
         min_coverage=model.min_coverage,
         negative_after_days=model.negative_after_days,
         segment_keys=model.segment_keys,
+        reference=model.reference,
         created_at=to_utc(model.created_at),
         updated_at=to_utc(model.updated_at),
         **model_registry.counts(session=session, model=model),
@@ -91,7 +93,12 @@ def get_model(_caller: Read, model: ModelDep, session: SessionDep) -> ModelRead:
 
 @router.patch("/{model}", response_model=ModelRead)
 def update_model(
-    body: ModelUpdate, _caller: Admin, model: ModelDep, session: SessionDep, now: NowDep
+    body: ModelUpdate,
+    _caller: Admin,
+    model: ModelDep,
+    session: SessionDep,
+    now: NowDep,
+    settings: SettingsDep,
 ) -> ModelRead:
     """Change a model's settings (threshold changes are kept in history)."""
     fields = body.model_dump(exclude_unset=True)
@@ -102,6 +109,10 @@ def update_model(
                 f"'{key}' cannot be null",
                 errors=[{"index": None, "field": key, "reason": "cannot be null"}],
             )
+    if body.reference is not None:  # checked against rollups that hold every write so far
+        ref = body.reference
+        lo, hi = int(ref.start.timestamp() // 3600), int(ref.end.timestamp() // 3600) + 24
+        ensure_fresh(session, model, lo, hi, settings.max_segment_values)
     updated = model_registry.update(session=session, model=model, fields=fields, now=now)
     return read_model(session, updated)
 

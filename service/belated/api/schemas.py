@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from datetime import datetime
+from datetime import UTC, datetime
 from typing import Literal
 
 from pydantic import BaseModel, ConfigDict, Field, field_validator, model_validator
@@ -21,6 +21,26 @@ def _classes(values: list[str | int] | None) -> list[str] | None:
     return out
 
 
+class ReferenceRange(BaseModel):
+    """A fixed, settled period that stands for "as trained" (its prevalence is the training
+    prior of the implied measures)."""
+
+    model_config = ConfigDict(extra="forbid")
+
+    start: datetime
+    end: datetime
+
+    @model_validator(mode="after")
+    def _order(self) -> ReferenceRange:
+        if self.start.tzinfo is None:
+            self.start = self.start.replace(tzinfo=UTC)
+        if self.end.tzinfo is None:
+            self.end = self.end.replace(tzinfo=UTC)
+        if self.end <= self.start:
+            raise ValueError("reference end must be after its start")
+        return self
+
+
 class ModelSettings(BaseModel):
     """Settings shared by create and update."""
 
@@ -31,6 +51,7 @@ class ModelSettings(BaseModel):
     min_coverage: float | None = Field(None, ge=0.0, le=1.0)
     negative_after_days: float | None = Field(None, gt=0, le=3650)
     segment_keys: list[str] | None = Field(None, max_length=8)
+    reference: ReferenceRange | None = None
 
     @field_validator("segment_keys")
     @classmethod
@@ -94,6 +115,7 @@ class ModelRead(BaseModel):
     min_coverage: float
     negative_after_days: float | None
     segment_keys: list[str] | None
+    reference: dict[str, str] | None = None
     created_at: datetime
     updated_at: datetime
     counts: ModelCounts

@@ -30,6 +30,7 @@ from belated.stats.estimates import em_prior_many, expected_measures, first_posi
 from belated.stats.window import WindowStats
 from belated.store.rollup_tables import Rollup
 from belated.store.tables import ModelRow
+from belated.timeutil import parse_ts
 
 REFERENCE_DAYS = 30
 IMPLIED = ("precision", "recall", "fbeta", "prevalence")
@@ -38,11 +39,15 @@ IMPLIED = ("precision", "recall", "fbeta", "prevalence")
 def reference_prior(
     session: Session, model: ModelRow, now: datetime
 ) -> tuple[float | None, dict[str, Any]]:
-    """The reference prevalence and a description of the period it comes from: the first
-    `REFERENCE_DAYS` days from the model's first prediction whose end is more than the
-    label delay in the past (settled by age). None with the reason when no such day holds
-    labels."""
+    """The reference prevalence and a description of the period it comes from: the model's
+    `reference` range, or else the first `REFERENCE_DAYS` days from its first prediction;
+    of either, the days whose end is more than the label delay in the past (settled by
+    age). None with the reason when no such day holds labels."""
     c = Rollup.__table__.c
+    if model.reference:
+        return _prevalence(session, model, parse_ts(model.reference["start"]),
+                           min(parse_ts(model.reference["end"]),
+                               now - timedelta(days=model.label_delay_days)))  # fmt: skip
     first = session.scalar(
         select(Rollup.start)
         .where(Rollup.model_id == model.id, Rollup.level == "d", Rollup.seg_key == "")
@@ -56,6 +61,15 @@ def reference_prior(
     settled_until = now - timedelta(days=model.label_delay_days)
     end = min(start + timedelta(days=REFERENCE_DAYS), settled_until)
     end = end.replace(hour=0, minute=0, second=0, microsecond=0) if end > start else start
+    return _prevalence(session, model, start, end)
+
+
+def _prevalence(
+    session: Session, model: ModelRow, start: datetime, end: datetime
+) -> tuple[float | None, dict[str, Any]]:
+    """The share of positives among the labels of the whole days in [start, end)."""
+    c = Rollup.__table__.c
+    first = int(start.timestamp() // 3600)
     row = session.execute(
         select(c.tp.label("tp"), c.fp.label("fp"), c.fn.label("fn"), c.tn.label("tn")).where(
             Rollup.model_id == model.id,
@@ -63,7 +77,7 @@ def reference_prior(
             Rollup.seg_key == "",
             Rollup.seg_value == "",
             Rollup.start >= first,
-            Rollup.start < int(end.timestamp() // 3600),
+            Rollup.start + 24 <= int(end.timestamp() // 3600),
         )
     ).all()
     positives = sum(int(r.tp) + int(r.fn) for r in row)

@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from datetime import datetime
+from datetime import datetime, timedelta
 from typing import Any
 
 from sqlalchemy import delete as sql_delete
@@ -10,10 +10,11 @@ from sqlalchemy import func, select
 from sqlalchemy.orm import Session
 
 from belated.clock import clock
-from belated.errors import Conflict, NotFound
+from belated.errors import Conflict, NotFound, invalid_field
 from belated.ingest.validate import ModelSpec
+from belated.store.rollup_tables import Rollup
 from belated.store.tables import ModelRow, PendingLabel, Prediction, ThresholdChange
-from belated.timeutil import from_db
+from belated.timeutil import from_db, iso, to_utc
 
 DEFAULTS: dict[str, Any] = {
     "threshold": 0.5,
@@ -21,6 +22,7 @@ DEFAULTS: dict[str, Any] = {
     "min_coverage": 0.9,
     "negative_after_days": None,
     "segment_keys": None,
+    "reference": None,
 }
 
 
@@ -62,6 +64,12 @@ def create(
     )
     if taken is not None:
         raise Conflict(f"a model named {fields['name']!r} exists already")
+    if fields.get("reference") is not None:
+        raise invalid_field(
+            "reference",
+            "a new model has no settled labelled data to take as its reference; "
+            "set it with PATCH once a settled period has labels",
+        )
     values = {**DEFAULTS, **{k: v for k, v in fields.items() if v is not None}}
     stamp = now or clock.now()
     model = ModelRow(project_id=project_id, created_at=stamp, updated_at=stamp, **values)
@@ -82,6 +90,11 @@ def update(
     from belated.store import refresh
 
     stamp = now or clock.now()
+    if fields.get("reference") is not None:
+        fields = {
+            **fields,
+            "reference": _checked_reference(session, model, fields["reference"], stamp),
+        }
     reshape = any(
         key in _ROLLUP_SETTINGS and getattr(model, key) != value for key, value in fields.items()
     )
@@ -99,6 +112,33 @@ def update(
 
 
 _ROLLUP_SETTINGS = ("negative_after_days", "segment_keys", "positive", "classes")
+
+
+def _checked_reference(
+    session: Session, model: ModelRow, value: dict[str, Any], now: datetime
+) -> dict[str, str]:
+    """The reference range as stored (ISO UTC), once it holds settled labelled days: days
+    that ended more than the label delay ago, with labels. Invalid (422) otherwise."""
+    start, end = to_utc(value["start"]), to_utc(value["end"])
+    settled_end = min(end, now - timedelta(days=model.label_delay_days))
+    c = Rollup.__table__.c
+    labelled = session.scalar(
+        select(func.coalesce(func.sum(c.tp + c.fp + c.fn + c.tn), 0)).where(
+            Rollup.model_id == model.id,
+            Rollup.level == "d",
+            Rollup.seg_key == "",
+            Rollup.seg_value == "",
+            Rollup.start >= int(start.timestamp() // 3600),
+            Rollup.start + 24 <= int(settled_end.timestamp() // 3600),
+        )
+    )
+    if not labelled:
+        raise invalid_field(
+            "reference",
+            f"no settled labelled data from {iso(start)} to {iso(end)} (a day is settled "
+            f"{model.label_delay_days:g} days after it ends); choose a settled period with labels",
+        )
+    return {"start": iso(start), "end": iso(end)}
 
 
 def delete(*, session: Session, model: ModelRow) -> None:

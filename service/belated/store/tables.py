@@ -81,6 +81,9 @@ class ModelRow(Base):
     min_coverage: Mapped[float] = mapped_column(Float)
     negative_after_days: Mapped[float | None] = mapped_column(Float, nullable=True)
     segment_keys: Mapped[list[str] | None] = mapped_column(Json, nullable=True)
+    # {"start", "end"} (ISO UTC): the settled period standing for "as trained"; None: the
+    # first 30 settled days
+    reference: Mapped[dict[str, str] | None] = mapped_column(Json, nullable=True)
     created_at: Mapped[datetime] = mapped_column(UtcDateTime)
     updated_at: Mapped[datetime] = mapped_column(UtcDateTime)
 
