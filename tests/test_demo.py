@@ -62,7 +62,7 @@ def test_demo_flags_the_day_60_change_in_the_north(tmp_path: Path) -> None:
             timeout=60,
         )
         assert page.status_code == 200
-        assert "open" in page.text and "region:north" in page.text
+        assert "raised" in page.text and "region:north" in page.text
         assert "provisional" in page.text  # the cautions and unsettled windows are shown
         read_only = httpx.post(
             f"{url}v1/models", json={"name": "x"}, headers={"Authorization": f"Bearer {token}"}

@@ -97,7 +97,7 @@ def _world(app: Any, engine: Engine) -> tuple[str, dict[str, str]]:
             == 200
         )
         rule = c.post(
-            "/v1/models/returns-v2/rules", json={"kind": "volume", "granularity": "hour", "low": 1}
+            "/v1/models/returns-v2/rules", json={"kind": "traffic", "granularity": "hour", "low": 1}
         ).json()
         hook = c.post("/v1/webhooks", json={"url": "http://127.0.0.1:9/hooks/belated"}).json()
     with transaction(sessions) as session:

@@ -467,7 +467,7 @@ def test_sql_metacharacters_in_every_string_field_are_stored_as_sent(
     assert rows(engine, "SELECT name FROM tokens WHERE id = :i", i=r.json()["id"])[0][0] == key_name
     rule = c.post(
         f"/v1/models/{model.name}/rules",
-        json={"kind": "volume", "low": 1, "segment_by": SQL_KEYS[2]},
+        json={"kind": "traffic", "low": 1, "segment_by": SQL_KEYS[2]},
     )
     assert rule.status_code == 201, rule.text
     assert rule.json()["segment_by"] == SQL_KEYS[2]

@@ -172,15 +172,16 @@ def _bodies() -> dict[tuple[str, str], Any]:
         ("PATCH", "/v1/models/{model}"): {"threshold": 0.1},
         ("POST", "/v1/models/{model}/predictions"): {"predictions": predictions(2, start=50)},
         ("POST", "/v1/models/{model}/labels"): {"labels": [label("order-0", "0")]},
-        ("POST", "/v1/models/{model}/rules"): {"kind": "volume", "low": 5},
+        ("POST", "/v1/models/{model}/rules"): {"kind": "traffic", "low": 5},
         ("PATCH", "/v1/models/{model}/rules/{rule_id}"): {"clear_after": 7},
         ("POST", "/v1/webhooks"): {"url": "http://127.0.0.1:9/intruder"},
         ("POST", "/v1/keys"): {"scopes": ["read"]},
+        ("POST", "/v1/alerts/{alert_id}/note"): {"text": "an intruder's note"},
     }
 
 
-def _volume_alert(sessions: Any, rule_id: str) -> str:
-    """Evaluate a volume rule (hourly, low 1) on an idle model: it opens an alert."""
+def _traffic_alert(sessions: Any, rule_id: str) -> str:
+    """Evaluate a traffic rule (hourly, low 1) on an idle model: it opens an alert."""
     with transaction(sessions) as session:
         rule = session.get(Rule, rule_id)
         assert rule is not None
@@ -210,11 +211,11 @@ def victim(tenant: Tenant, engine: Engine, sessions: Any) -> dict[str, Any]:
         == 200
     )
     rule = c.post(
-        f"/v1/models/{model.name}/rules", json={"kind": "volume", "granularity": "hour", "low": 1}
+        f"/v1/models/{model.name}/rules", json={"kind": "traffic", "granularity": "hour", "low": 1}
     ).json()
     hook = c.post("/v1/webhooks", json={"url": "http://127.0.0.1:9/victim"}).json()
     key = c.post("/v1/keys", json={"scopes": ["read"]}).json()
-    alert = _volume_alert(sessions, rule["id"])
+    alert = _traffic_alert(sessions, rule["id"])
     c.headers["Authorization"] = f"Bearer {tenant.tokens['admin,ingest,read']}"
     ids = {
         "model": model.name,
@@ -506,9 +507,9 @@ def test_delivery_rechecks_the_address_a_name_resolves_to_now(
             def new_event() -> None:
                 rule = c.post(
                     f"/v1/models/{model.name}/rules",
-                    json={"kind": "volume", "granularity": "hour", "low": 1},
+                    json={"kind": "traffic", "granularity": "hour", "low": 1},
                 ).json()
-                _volume_alert(factory, rule["id"])
+                _traffic_alert(factory, rule["id"])
 
             new_event()
             assert delivery.deliver_due(factory, allow)["delivered"] == 1
@@ -629,7 +630,7 @@ def _exercise(c: httpx.Client, tenant: Tenant, rx: Receiver) -> list[str]:
     hook = c.post("/v1/webhooks", json={"url": rx.url}).json()
     rx.secret = hook["secret"]
     dead = c.post("/v1/webhooks", json={"url": "http://127.0.0.1:9/closed"}).json()
-    c.post(f"/v1/models/{name}/rules", json={"kind": "volume", "granularity": "hour", "low": 1})
+    c.post(f"/v1/models/{name}/rules", json={"kind": "traffic", "granularity": "hour", "low": 1})
     assert c.delete(f"/v1/keys/{made['id']}").status_code == 204
     assert c.get("/v1/models", headers=bearer).status_code == 401
     return [token, wrong, hook["secret"], dead["secret"]]

@@ -96,7 +96,7 @@ class Sink:
 def _fire(factory: Any, c: Any, model: str) -> None:
     """A new hourly volume rule with low 1 on an idle model, evaluated now: one new event."""
     rule = c.post(
-        f"/v1/models/{model}/rules", json={"kind": "volume", "granularity": "hour", "low": 1}
+        f"/v1/models/{model}/rules", json={"kind": "traffic", "granularity": "hour", "low": 1}
     )
     assert rule.status_code == 201, rule.text
     with transaction(factory) as session:
@@ -178,7 +178,7 @@ def test_down_then_slow_then_gone(world: dict[str, Any]) -> None:
     entry = _log(w)[0]
     assert entry["state"] == "delivered" and entry["attempts"] == 5
     assert sink.unique() == [entry["event_id"]] and sink.rejected == 0
-    assert sink.events[0]["type"] == "alert.opened"
+    assert sink.events[0]["type"] == "alert.raised"
     # slower than the sender waits (a 1 s client stands in for the 10 s default): the
     # receiver got it, the sender cannot know and retries with the same webhook-id
     _fire(w["factory"], w["c"], w["model"])
@@ -246,7 +246,7 @@ def _crash_scenario(url: str, eng: Engine, tmp_path: Path) -> None:
                 assert (
                     c.post(
                         f"/v1/models/{name}/rules",
-                        json={"kind": "volume", "granularity": "hour", "low": low},
+                        json={"kind": "traffic", "granularity": "hour", "low": low},
                     ).status_code
                     == 201
                 )
@@ -283,4 +283,4 @@ def _crash_scenario(url: str, eng: Engine, tmp_path: Path) -> None:
     assert sink.rejected == 0
     alerts = {r[0] for r in rows(eng, "SELECT id FROM alerts")}
     assert {e["data"]["id"] for e in sink.events} == alerts and len(alerts) == 2
-    assert all(e["type"] == "alert.opened" for e in sink.events)
+    assert all(e["type"] == "alert.raised" for e in sink.events)
