@@ -284,9 +284,15 @@ def advance(
     )
     if after is not None:
         query = query.where(RuleWindow.window_start > after)
-    recent = session.scalars(query.order_by(RuleWindow.window_start.desc()).limit(clear_after))
-    back = list(recent)
-    if len(back) >= clear_after and all(back):
+    # cleared once `clear_after` evaluated windows in a row were back within tolerance of the
+    # frozen baseline after the last breach: the decisions stop holding that baseline there
+    # (alerts/decide.py), so the windows after such a run are judged against a new one
+    run = 0
+    for recovered in session.scalars(query.order_by(RuleWindow.window_start)):
+        run = run + 1 if recovered else 0
+        if run >= clear_after:
+            break
+    if run >= clear_after:
         alert.state, alert.cleared_at = "cleared", now
         session.flush()
         emit(session, alert, "alert.cleared", now, muted)
