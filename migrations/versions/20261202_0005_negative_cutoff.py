@@ -15,11 +15,14 @@ branch_labels: str | Sequence[str] | None = None
 depends_on: str | Sequence[str] | None = None
 
 
+# In place on both stores (SQLite 3.25+ renames columns): no copy of a large table.
+def _rename(old: str, new: str) -> None:
+    op.execute(f"ALTER TABLE rollups RENAME COLUMN {old} TO {new}")
+
+
 def upgrade() -> None:
-    with op.batch_alter_table("rollups", schema=None) as batch_op:
-        batch_op.alter_column("cut", new_column_name="negative_cutoff")
+    _rename("cut", "negative_cutoff")
 
 
 def downgrade() -> None:
-    with op.batch_alter_table("rollups", schema=None) as batch_op:
-        batch_op.alter_column("negative_cutoff", new_column_name="cut")
+    _rename("negative_cutoff", "cut")

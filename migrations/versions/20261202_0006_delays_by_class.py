@@ -21,8 +21,8 @@ depends_on: str | Sequence[str] | None = None
 
 
 def upgrade() -> None:
-    with op.batch_alter_table("rollups", schema=None) as batch_op:
-        batch_op.add_column(sa.Column("delays_by_class", sa.LargeBinary(), nullable=True))
+    # in place on both stores: no copy of a large table
+    op.add_column("rollups", sa.Column("delays_by_class", sa.LargeBinary(), nullable=True))
     # a fresh version per hour: any mark a refresh holds now is replaced, never mistaken
     op.execute(
         "INSERT INTO dirty_buckets (model_id, hour, version, marked_at, recompute)"
@@ -35,5 +35,7 @@ def upgrade() -> None:
 
 
 def downgrade() -> None:
-    with op.batch_alter_table("rollups", schema=None) as batch_op:
-        batch_op.drop_column("delays_by_class")
+    if op.get_bind().dialect.name == "sqlite":
+        op.execute("ALTER TABLE rollups DROP COLUMN delays_by_class")  # SQLite 3.35+
+    else:
+        op.drop_column("rollups", "delays_by_class")

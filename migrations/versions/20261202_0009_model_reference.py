@@ -17,17 +17,21 @@ branch_labels: str | Sequence[str] | None = None
 depends_on: str | Sequence[str] | None = None
 
 
+# In place on SQLite too (ADD and DROP COLUMN, SQLite 3.35+): a batch copy of `models` would
+# drop the old table, and its ON DELETE CASCADE would take every model's data with it.
 def upgrade() -> None:
-    with op.batch_alter_table("models", schema=None) as batch_op:
-        batch_op.add_column(
-            sa.Column(
-                "reference",
-                sa.JSON().with_variant(postgresql.JSONB(astext_type=sa.Text()), "postgresql"),
-                nullable=True,
-            )
-        )
+    op.add_column(
+        "models",
+        sa.Column(
+            "reference",
+            sa.JSON().with_variant(postgresql.JSONB(astext_type=sa.Text()), "postgresql"),
+            nullable=True,
+        ),
+    )
 
 
 def downgrade() -> None:
-    with op.batch_alter_table("models", schema=None) as batch_op:
-        batch_op.drop_column("reference")
+    if op.get_bind().dialect.name == "sqlite":
+        op.execute("ALTER TABLE models DROP COLUMN reference")
+    else:
+        op.drop_column("models", "reference")
