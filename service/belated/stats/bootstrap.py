@@ -159,11 +159,19 @@ def _bootstrap_binary_many(
             tp, fp, fn, tn = cells
             rng = generator_for(cells, seed)
             draws[i] = rng.multinomial(n, [tp / n, fp / n, fn / n, tn / n], size=resamples)
-    cells_first = np.moveaxis(draws, -1, 0).astype(np.float64)
+    return intervals_of_draws(draws.astype(np.float64), beta, confidence)
+
+
+def intervals_of_draws(
+    draws: np.ndarray, beta: float, confidence: float
+) -> list[dict[str, Interval]]:
+    """Percentile intervals of fbeta, mcc and balanced_accuracy per window, from drawn
+    confusion counts of shape (windows, draws, 4) in the order tp, fp, fn, tn."""
+    cells_first = np.moveaxis(draws, -1, 0)
     arrays = binary_arrays(cells_first[0], cells_first[1], cells_first[2], cells_first[3], beta)
     stacked = np.concatenate([arrays[name] for name in BOOTSTRAPPED_BINARY])
     intervals = percentile_intervals(stacked, confidence)
-    w = len(counts)
+    w = draws.shape[0]
     return [
         {name: intervals[j * w + i] for j, name in enumerate(BOOTSTRAPPED_BINARY)} for i in range(w)
     ]

@@ -29,9 +29,8 @@ import numpy as np
 from belated.stats.bootstrap import (
     BOOTSTRAPPED_BINARY,
     Interval,
-    binary_arrays,
     generator_for,
-    percentile_intervals,
+    intervals_of_draws,
 )
 from belated.stats.memo import Memo
 
@@ -87,14 +86,7 @@ def _posterior_many(
             rng = generator_for(cells, seed)
             shares[i] = rng.standard_gamma(np.asarray(cells, dtype=np.float64) + PRIOR, (draws, 4))
     # An empty window keeps NaN draws: no interval, as its measures are undefined.
-    cells_first = np.moveaxis(shares, -1, 0)
-    arrays = binary_arrays(cells_first[0], cells_first[1], cells_first[2], cells_first[3], beta)
-    stacked = np.concatenate([arrays[name] for name in BOOTSTRAPPED_BINARY])
-    intervals = percentile_intervals(stacked, confidence)
-    w = len(counts)
-    return [
-        {name: intervals[j * w + i] for j, name in enumerate(BOOTSTRAPPED_BINARY)} for i in range(w)
-    ]
+    return intervals_of_draws(shares, beta, confidence)
 
 
 def posterior_binary(
