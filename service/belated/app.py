@@ -23,9 +23,11 @@ from belated.api import (
     routes_prometheus,
 )
 from belated.api.limits import BodyLimit
+from belated.api.lookups import Lookups
 from belated.config import Settings, get_settings
 from belated.counters import Counters
 from belated.store.db import make_engine, make_sessionmaker
+from belated.store.grouped import GroupWriter
 
 
 def create_app(
@@ -61,12 +63,14 @@ def create_app(
     app.state.engine = engine
     app.state.sessions = make_sessionmaker(engine)
     app.state.counters = Counters()
+    app.state.lookups = Lookups()
+    app.state.group_writer = GroupWriter(app.state.sessions)
     app.state.jobs = None
     problems.install(app)
     app.state.outbox_backlog = delivery.backlog
-    for module in (
-        routes_models,
+    for module in (  # the ingest routes first: they take the most requests, matched in order
         routes_ingest,
+        routes_models,
         routes_metrics,
         routes_alerts,
         routes_keys,

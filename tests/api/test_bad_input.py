@@ -275,7 +275,7 @@ def test_bad_label_refused_and_batch_not_stored(
         ).status_code
         == 200
     )
-    marks = rows(engine, "SELECT hour, version FROM dirty_buckets WHERE model_id = :m", m=model.id)
+    marks = rows(engine, "SELECT hour, seq FROM dirty_buckets WHERE model_id = :m", m=model.id)
     # good labels for stored ids and for ids not yet seen, with the bad one among them
     batch = [label(p["id"], "1") for p in stored] + [label("order-later", "0")]
     batch[BAD_AT] = make_bad(batch[BAD_AT])
@@ -294,8 +294,7 @@ def test_bad_label_refused_and_batch_not_stored(
         == 0
     )
     assert (
-        rows(engine, "SELECT hour, version FROM dirty_buckets WHERE model_id = :m", m=model.id)
-        == marks
+        rows(engine, "SELECT hour, seq FROM dirty_buckets WHERE model_id = :m", m=model.id) == marks
     )
 
 

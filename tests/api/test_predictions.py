@@ -34,12 +34,12 @@ def post(tenant: Tenant, model: Model, items: list[dict[str, Any]]) -> Any:
 
 
 def dirty_marks(engine: Engine, model: Model) -> list[tuple[int, int]]:
-    """The model's dirty (hour, version) marks."""
+    """The model's dirty (hour, seq) marks."""
     return [
         tuple(r)
         for r in rows(
             engine,
-            "SELECT hour, version FROM dirty_buckets WHERE model_id = :m ORDER BY hour",
+            "SELECT hour, seq FROM dirty_buckets WHERE model_id = :m ORDER BY hour, seq",
             m=model.id,
         )
     ]

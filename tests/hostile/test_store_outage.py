@@ -24,7 +24,7 @@ from tests.conftest import Tenant, make_tenant
 from tests.hostile.pgcluster import PrivateCluster, ServiceProcess, random_name
 from tests.support import label, predictions, time_until, wait_until
 
-# The pool checks a connection before use (pool_pre_ping) and a refused connection fails at
+# The pool checks a connection idle for a second before use and a refused connection fails at
 # once, so recovery takes one request; the jobs' leader lock is retried every 2 seconds.
 # 15 seconds leaves room for a slow machine.
 RECOVERY_SECONDS = 15.0

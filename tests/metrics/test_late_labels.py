@@ -185,7 +185,7 @@ def _dirty_hours(engine: Engine, model_id: int) -> dict[int, int]:
     return {
         int(h): int(v)
         for h, v in rows(
-            engine, "SELECT hour, version FROM dirty_buckets WHERE model_id = :m", m=model_id
+            engine, "SELECT hour, seq FROM dirty_buckets WHERE model_id = :m", m=model_id
         )
     }
 

@@ -4,22 +4,26 @@ model named in the path, the settings and the request's one clock reading."""
 from __future__ import annotations
 
 import json
-from collections.abc import Iterator
+from collections.abc import Callable, Iterator
 from datetime import datetime
-from typing import Annotated, Any
+from typing import Annotated, Any, TypeVar
 
 import orjson
 from fastapi import Depends, Request
+from fastapi.concurrency import run_in_threadpool
 from sqlalchemy.orm import Session
 
 from belated.alerts import rules
 from belated.alerts.tables import Rule
+from belated.api.lookups import Lookups, ModelRef
 from belated.clock import clock
 from belated.config import Settings
 from belated.errors import Problem
 from belated.store import keys, model_registry
 from belated.store.keys import Principal
 from belated.store.tables import ModelRow
+
+T = TypeVar("T")
 
 
 def get_session(request: Request) -> Iterator[Session]:
@@ -33,6 +37,34 @@ def get_session(request: Request) -> Iterator[Session]:
         raise
     finally:
         session.close()
+    after_commit(session)
+
+
+def _run_in_transaction(request: Request, work: Callable[[Session], T]) -> T:
+    session: Session = request.app.state.sessions()
+    try:
+        result = work(session)
+        session.commit()
+    except BaseException:
+        session.rollback()
+        raise
+    finally:
+        session.close()
+    after_commit(session)
+    return result
+
+
+async def in_transaction(request: Request, work: Callable[[Session], T]) -> T:
+    """Run `work` in one transaction on a worker thread, committed before this returns (a
+    2xx means stored): the request's single hop off the event loop, where a sync route
+    with a session dependency takes three."""
+    return await run_in_threadpool(_run_in_transaction, request, work)
+
+
+def after_commit(session: Session) -> None:
+    """Run what was left to do once `session` committed (api/lookups.py)."""
+    for hook in session.info.pop("after_commit", ()):
+        hook()
 
 
 # scope="function": the commit happens before the answer is sent, so a 2xx means stored.
@@ -48,17 +80,50 @@ def bearer(request: Request) -> str | None:
     return request.cookies.get("belated_token") or None
 
 
-def principal(request: Request, session: SessionDep) -> Principal:
-    """The caller; 401 without a live token."""
+def _unauthorized() -> Problem:
+    return Problem(
+        401,
+        "a valid bearer token is required (Authorization: Bearer <token>)",
+        headers={"WWW-Authenticate": "Bearer"},
+    )
+
+
+def caller_of(request: Request, session: Session) -> Principal:
+    """The caller, read in `session` (or the token cache); 401 without a live token."""
     token = bearer(request)
-    found = keys.resolve(session=session, token=token) if token else None
+    if not token:
+        raise _unauthorized()
+    lookups: Lookups = request.app.state.lookups
+    found = lookups.tokens.get(
+        keys.hash_token(token), lambda: keys.resolve(session=session, token=token)
+    )
     if found is None:
-        raise Problem(
-            401,
-            "a valid bearer token is required (Authorization: Bearer <token>)",
-            headers={"WWW-Authenticate": "Bearer"},
-        )
+        raise _unauthorized()
     return found
+
+
+async def principal(request: Request) -> Principal:
+    """The caller; 401 without a live token.
+
+    From the token cache when it can (no thread, no round trip: most requests of a live
+    system), else read in a short transaction of its own on a worker thread.
+    """
+    token = bearer(request)
+    if not token:
+        raise _unauthorized()
+    lookups: Lookups = request.app.state.lookups
+    found = lookups.tokens.peek(keys.hash_token(token))
+    if found is not None:
+        return found
+    return await run_in_threadpool(_read_caller, request)
+
+
+def _read_caller(request: Request) -> Principal:
+    session: Session = request.app.state.sessions()
+    try:
+        return caller_of(request, session)
+    finally:
+        session.close()
 
 
 CallerDep = Annotated[Principal, Depends(principal)]
@@ -67,7 +132,7 @@ CallerDep = Annotated[Principal, Depends(principal)]
 def scope(name: str) -> Any:
     """A dependency that requires a scope; checked before any model is looked up."""
 
-    def check(caller: CallerDep) -> Principal:
+    async def check(caller: CallerDep) -> Principal:
         if name not in caller.scopes:
             raise Problem(403, f"this token lacks the '{name}' scope")
         return caller
@@ -92,6 +157,35 @@ def path_model(model: str, caller: CallerDep, session: SessionDep) -> ModelRow:
 ModelDep = Annotated[ModelRow, Depends(path_model)]
 
 
+async def path_model_ref(model: str, caller: CallerDep, request: Request) -> ModelRef:
+    """The model named in the path as the ingest routes need it, from a cache of at most a
+    second (api/lookups.py); a 404 problem when absent."""
+    lookups: Lookups = request.app.state.lookups
+    found = lookups.models.peek((caller.project_id, model))
+    if found is not None:
+        return found
+    return await run_in_threadpool(_read_model_ref, request, caller.project_id, model)
+
+
+def _read_model_ref(request: Request, project_id: int, name: str) -> ModelRef:
+    lookups: Lookups = request.app.state.lookups
+
+    def load() -> ModelRef:
+        row = model_registry.get(session=session, project_id=project_id, name=name)
+        return ModelRef(row.id, row.name, model_registry.spec_of(row))
+
+    session: Session = request.app.state.sessions()
+    try:
+        found = lookups.models.get((project_id, name), load)
+    finally:
+        session.close()
+    assert found is not None  # load() raises rather than answer None
+    return found
+
+
+ModelRefDep = Annotated[ModelRef, Depends(path_model_ref)]
+
+
 def path_rule(rule_id: str, model: ModelDep, session: SessionDep) -> Rule:
     """The rule named in the path, on the model named in the path; a 404 problem when absent."""
     return rules.get_rule(session=session, model=model, rule_id=rule_id)
@@ -100,7 +194,7 @@ def path_rule(rule_id: str, model: ModelDep, session: SessionDep) -> Rule:
 RuleDep = Annotated[Rule, Depends(path_rule)]
 
 
-def app_settings(request: Request) -> Settings:
+async def app_settings(request: Request) -> Settings:
     """The settings the application was built with."""
     settings: Settings = request.app.state.settings
     return settings
@@ -109,7 +203,7 @@ def app_settings(request: Request) -> Settings:
 SettingsDep = Annotated[Settings, Depends(app_settings)]
 
 
-def request_now() -> datetime:
+async def request_now() -> datetime:
     """One reading of the service clock, shared by everything the request does."""
     return clock.now()
 

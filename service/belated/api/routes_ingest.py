@@ -1,55 +1,117 @@
-"""Routes that take predictions and labels, all or nothing."""
+"""Routes that take predictions and labels, all or nothing.
+
+A live system sends many small requests, so this path is kept short: one dependency
+resolves the caller, the body and the model (the token and the model usually from the
+caches of api/lookups.py, without leaving the event loop); a small predictions batch is
+validated on the event loop and stored with the other small batches of the moment
+(store/grouped.py); anything else takes one hop to a worker thread for its validation and
+transaction. The answer is sent once the write is committed.
+"""
 
 from __future__ import annotations
 
-from fastapi import APIRouter, Request
+import asyncio
+from dataclasses import dataclass
+from datetime import datetime
+from typing import Annotated, Any
 
-from belated.api.deps import Ingest, JsonBody, ModelDep, NowDep, SessionDep, SettingsDep
+import orjson
+from fastapi import APIRouter, Depends, Request, Response
+from sqlalchemy.orm import Session
+
+from belated.api.deps import (
+    JsonBody,
+    ModelRefDep,
+    NowDep,
+    SettingsDep,
+    in_transaction,
+    scope,
+)
+from belated.api.lookups import ModelRef
 from belated.api.schemas import LabelsAnswer, PredictionsAnswer
+from belated.config import Settings
+from belated.errors import Problem
 from belated.ingest.validate import validate_labels, validate_predictions
-from belated.store import labels, model_registry, predictions
+from belated.store import grouped, labels, predictions
+from belated.store.keys import Principal
 
 router = APIRouter(prefix="/v1/models/{model}", tags=["ingest"])
 
 
-# The body is parsed (a 400 when it is not JSON) before the model is looked up, as ever.
-@router.post("/predictions", response_model=PredictionsAnswer)
-def post_predictions(
-    _caller: Ingest,
-    session: SessionDep,
+@dataclass(frozen=True, slots=True)
+class Call:
+    """What an ingest request brings: its body, model, settings and clock reading."""
+
+    body: Any
+    model: ModelRef
+    settings: Settings
+    now: datetime
+
+
+# In this order: the caller (401, 403), the body (400 when it is not JSON), then the model
+# (404), as the other routes do.
+async def ingest_call(
+    _caller: Annotated[Principal, scope("ingest")],
     body: JsonBody,
-    model: ModelDep,
+    model: ModelRefDep,
     settings: SettingsDep,
     now: NowDep,
-    request: Request,
-) -> PredictionsAnswer:
+) -> Call:
+    """Everything an ingest route needs, resolved once."""
+    return Call(body, model, settings, now)
+
+
+CallDep = Annotated[Call, Depends(ingest_call)]
+
+
+def _json(answer: dict[str, int]) -> Response:
+    return Response(orjson.dumps(answer), media_type="application/json")
+
+
+@router.post("/predictions", response_model=PredictionsAnswer)
+async def post_predictions(call: CallDep, request: Request) -> Response:
     """Store a batch of predictions; a repeat with the same content is a duplicate."""
-    spec = model_registry.spec_of(model)
-    items = validate_predictions(body, spec, now=now, max_batch=settings.max_batch)
-    answer = predictions.ingest(
-        session=session,
-        model_id=model.id,
-        preds=items,
-        batch_size=len(body["predictions"]),
-        now=now,
-    )
+    body, model, settings, now = call.body, call.model, call.settings, call.now
+    sent = body.get("predictions") if isinstance(body, dict) else None
+    if isinstance(sent, list) and len(sent) <= grouped.SMALL_BATCH:
+        items = validate_predictions(body, model.spec, now=now, max_batch=settings.max_batch)
+        writer: grouped.GroupWriter = request.app.state.group_writer
+        try:
+            done = writer.submit(grouped.Batch(model.id, items, len(sent), now))
+        except grouped.Busy:
+            raise Problem(
+                503,
+                "the store is not keeping up with the writes; retry after the given seconds",
+                headers={"Retry-After": "1"},
+            ) from None
+        answer = await asyncio.wrap_future(done)
+    else:
+
+        def work(session: Session) -> dict[str, int]:
+            items = validate_predictions(body, model.spec, now=now, max_batch=settings.max_batch)
+            return predictions.ingest(
+                session=session,
+                model_id=model.id,
+                preds=items,
+                batch_size=len(body["predictions"]),
+                now=now,
+            )
+
+        answer = await in_transaction(request, work)
     request.app.state.counters.add("predictions", answer["accepted"])
-    return PredictionsAnswer(**answer)
+    return _json(answer)
 
 
 @router.post("/labels", response_model=LabelsAnswer)
-def post_labels(
-    _caller: Ingest,
-    session: SessionDep,
-    body: JsonBody,
-    model: ModelDep,
-    settings: SettingsDep,
-    now: NowDep,
-    request: Request,
-) -> LabelsAnswer:
+async def post_labels(call: CallDep, request: Request) -> Response:
     """Store a batch of labels; unknown ids wait as pending until their prediction arrives."""
-    spec = model_registry.spec_of(model)
-    items = validate_labels(body, spec, now=now, max_batch=settings.max_batch)
-    answer = labels.ingest(session=session, model_id=model.id, items=items, now=now)
-    request.app.state.counters.add("labels", len(items))
-    return LabelsAnswer(**answer)
+    body, model, settings, now = call.body, call.model, call.settings, call.now
+
+    def work(session: Session) -> tuple[dict[str, int], int]:
+        items = validate_labels(body, model.spec, now=now, max_batch=settings.max_batch)
+        answer = labels.ingest(session=session, model_id=model.id, items=items, now=now)
+        return answer, len(items)
+
+    answer, n = await in_transaction(request, work)
+    request.app.state.counters.add("labels", n)
+    return _json(answer)

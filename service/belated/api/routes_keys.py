@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from fastapi import APIRouter, Response
+from fastapi import APIRouter, Request, Response
 
 from belated.api.deps import Admin, SessionDep
 from belated.api.schemas import KeyCreate, KeyRead
@@ -28,8 +28,9 @@ def create_key(body: KeyCreate, who: Admin, session: SessionDep) -> KeyRead:
 
 
 @router.delete("/{key_id}", status_code=204)
-def revoke_key(key_id: str, who: Admin, session: SessionDep) -> Response:
+def revoke_key(key_id: str, who: Admin, session: SessionDep, request: Request) -> Response:
     """Revoke a token of this project."""
+    request.app.state.lookups.clear_after_commit(session)
     if not keys.revoke(session=session, project_id=who.project_id, token_id=key_id):
         raise Problem(404, f"no live key {key_id!r} in this project")
     return Response(status_code=204)

@@ -5,7 +5,7 @@ from __future__ import annotations
 import base64
 from typing import Any
 
-from fastapi import APIRouter, Query, Response
+from fastapi import APIRouter, Query, Request, Response
 
 from belated.api.deps import Admin, ModelDep, NowDep, Read, SessionDep, SettingsDep
 from belated.api.schemas import ModelCreate, ModelPage, ModelRead, ModelUpdate
@@ -99,8 +99,10 @@ def update_model(
     session: SessionDep,
     now: NowDep,
     settings: SettingsDep,
+    request: Request,
 ) -> ModelRead:
     """Change a model's settings (threshold changes are kept in history)."""
+    request.app.state.lookups.clear_after_commit(session)
     fields = body.model_dump(exclude_unset=True)
     for key in ("threshold", "label_delay_days", "min_coverage"):
         if key in fields and fields[key] is None:
@@ -118,7 +120,10 @@ def update_model(
 
 
 @router.delete("/{model}", status_code=204)
-def delete_model(_caller: Admin, model: ModelDep, session: SessionDep) -> Response:
+def delete_model(
+    _caller: Admin, model: ModelDep, session: SessionDep, request: Request
+) -> Response:
     """Delete a model and all its data."""
+    request.app.state.lookups.clear_after_commit(session)
     model_registry.delete(session=session, model=model)
     return Response(status_code=204)

@@ -26,7 +26,7 @@ def ensure_fresh(session: Session, model: ModelRow, lo: int, hi: int, max_values
     # one transaction takes its locks in ascending hour order, as writers mark them, so a
     # read and a writer never wait on each other in a cycle
     while claimed := refresh.refresh_batch(
-        session, max_values=max_values, model_id=model.id, lo=lo, hi=hi, wait=True
+        session, max_values=max_values, model_id=model.id, lo=lo, hi=hi
     ):
         lo = max(mark.hour for mark in claimed) + 1
 

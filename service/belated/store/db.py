@@ -3,12 +3,14 @@
 from __future__ import annotations
 
 import math
+import time
 from collections.abc import Iterator
 from contextlib import contextmanager
 from typing import Any
 
 import orjson
 from sqlalchemy import Engine, create_engine, event
+from sqlalchemy.exc import DisconnectionError
 from sqlalchemy.orm import Session, sessionmaker
 
 
@@ -36,8 +38,38 @@ def make_engine(url: str, **kwargs: Any) -> Engine:
     kwargs.setdefault("connect_args", {"options": "-c random_page_cost=1.1"})
     kwargs.setdefault("pool_size", 10)
     kwargs.setdefault("max_overflow", 20)
-    kwargs.setdefault("pool_pre_ping", True)
-    return create_engine(url, **kwargs)
+    engine = create_engine(url, **kwargs)
+    _ping_when_idle(engine)
+    return engine
+
+
+IDLE_PING_SECONDS = 1.0
+
+
+def _ping_when_idle(engine: Engine) -> None:
+    """Check a pooled connection before use only when it has sat idle for a while.
+
+    A connection back in the pool a moment ago is alive (a round trip per request would
+    cost a small request a fifth of its time); one idle for longer may have been cut by a
+    restart of the store, and is replaced when the ping fails. A connection that breaks in
+    use is detected by SQLAlchemy, which then drops every connection pooled before it.
+    """
+
+    @event.listens_for(engine, "checkin")
+    def _on_checkin(_dbapi_conn: Any, record: Any) -> None:
+        record.info["checked_in"] = time.monotonic()
+
+    @event.listens_for(engine, "checkout")
+    def _on_checkout(dbapi_conn: Any, record: Any, _proxy: Any) -> None:
+        last = record.info.get("checked_in")
+        if last is not None and time.monotonic() - last < IDLE_PING_SECONDS:
+            return
+        try:
+            alive = engine.dialect.do_ping(dbapi_conn)
+        except Exception as exc:
+            raise DisconnectionError("the pooled connection is gone") from exc
+        if not alive:
+            raise DisconnectionError("the pooled connection is gone")
 
 
 def _configure_sqlite(engine: Engine) -> None:

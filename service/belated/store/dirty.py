@@ -1,64 +1,79 @@
-"""Dirty (model, hour) marks: every write marks the hours it touched, with a fresh version.
+"""Dirty (model, hour) marks: every write adds a mark row for each hour it touched.
 
-The version is a random 62-bit number rather than a counter, so that a mark cleared and made
-again is never mistaken for the one a refresh read earlier.
+Marks are insert-only, so concurrent writers of one hour never wait on each other. What
+keeps a refresh exact is a per-(model, hour) advisory lock on PostgreSQL: a writer holds its
+hours shared from its mark to its commit, and a refresh holds the hours it works on
+exclusively. A refresh therefore never sees a writer of its hours commit midway (the label
+changes it folds and then deletes are all there is), and writers of one hour only ever wait
+for a refresh of that hour, never for one another. Every party takes these locks in
+ascending (model, hour) order, in one pass, so nobody waits in a cycle. SQLite has a single
+writer (BEGIN IMMEDIATE) and needs none of this.
 """
 
 from __future__ import annotations
 
-import secrets
-from collections.abc import Iterable
-from typing import Any
+from collections.abc import Iterable, Sequence
 
-from sqlalchemy import func, select
+from sqlalchemy import func, insert, select, text
 from sqlalchemy.orm import Session
 
 from belated.clock import now
-from belated.store.dialect import upsert
+from belated.store.dialect import is_postgres
 from belated.store.tables import DirtyBucket
 
+_LOCK = {
+    "shared": "pg_advisory_xact_lock_shared",
+    "exclusive": "pg_advisory_xact_lock",
+}
 
-def _insert(session: Session) -> Any:
-    return upsert(session, DirtyBucket)
+
+def lock_hours(session: Session, model_id: int, hours: Sequence[int], mode: str) -> None:
+    """Hold the hours of a model until the end of the transaction (PostgreSQL; ascending)."""
+    if not hours or not is_postgres(session):
+        return
+    session.execute(
+        text(
+            f"SELECT count({_LOCK[mode]}(:m, h)) FROM"
+            " (SELECT h FROM unnest(CAST(:hours AS int4[])) AS t(h) ORDER BY h) AS s"
+        ),
+        {"m": model_id, "hours": sorted(set(hours))},
+    )
 
 
-def mark(*, session: Session, model_id: int, hours: Iterable[int], recompute: bool = True) -> int:
-    """Mark the hours dirty (in sorted order, so concurrent writers lock alike).
+def mark(
+    *,
+    session: Session,
+    model_id: int,
+    hours: Iterable[int],
+    recompute: bool = True,
+    lock: str | None = "shared",
+) -> int:
+    """Mark the hours dirty; return how many.
 
     `recompute=False` says only labels changed (their changes are in `label_changes`); a
-    mark that already asks for a recompute keeps asking.
+    mark asking for a recompute is never outweighed by one that does not. `lock` is
+    "shared" for writers and "exclusive" for a refresh that marks hours itself; None when
+    the caller takes the locks of all its hours itself, in one ascending pass.
     """
     ordered = sorted(set(hours))
     if not ordered:
         return 0
+    if lock is not None:
+        lock_hours(session, model_id, ordered, lock)
     stamp = now()
-    rows = [
-        {
-            "model_id": model_id,
-            "hour": h,
-            "version": secrets.randbits(62),
-            "marked_at": stamp,
-            "recompute": recompute,
-        }
-        for h in ordered
-    ]
-    stmt = _insert(session)
-    stmt = stmt.on_conflict_do_update(
-        index_elements=["model_id", "hour"],
-        set_={
-            "version": stmt.excluded.version,
-            "marked_at": stmt.excluded.marked_at,
-            "recompute": DirtyBucket.__table__.c.recompute | stmt.excluded.recompute,
-        },
+    session.execute(
+        insert(DirtyBucket),
+        [
+            {"model_id": model_id, "hour": h, "marked_at": stamp, "recompute": recompute}
+            for h in ordered
+        ],
     )
-    for start in range(0, len(rows), 2000):
-        session.execute(stmt, rows[start : start + 2000])
     return len(ordered)
 
 
 def count(*, session: Session, model_id: int | None = None) -> int:
-    """How many buckets are dirty."""
-    query = select(func.count()).select_from(DirtyBucket)
+    """How many (model, hour) buckets are dirty."""
+    marks = select(DirtyBucket.model_id, DirtyBucket.hour).distinct()
     if model_id is not None:
-        query = query.where(DirtyBucket.model_id == model_id)
-    return int(session.scalar(query) or 0)
+        marks = marks.where(DirtyBucket.model_id == model_id)
+    return int(session.scalar(select(func.count()).select_from(marks.subquery())) or 0)

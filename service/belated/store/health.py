@@ -18,7 +18,9 @@ def ping(*, conn: Connection) -> None:
 
 def refresh_state(*, conn: Connection, now: datetime) -> dict[str, Any]:
     """Dirty buckets, the oldest mark, the refresh lag as of `now` and the last refresh."""
-    n, oldest = conn.execute(select(func.count(), func.min(DirtyBucket.marked_at))).one()
+    buckets = select(DirtyBucket.model_id, DirtyBucket.hour).distinct().subquery()
+    n = conn.execute(select(func.count()).select_from(buckets)).scalar_one()
+    oldest = conn.execute(select(func.min(DirtyBucket.marked_at))).scalar()
     last = conn.execute(
         select(ServiceState.value).where(ServiceState.key == "last_refresh")
     ).scalar()

@@ -69,10 +69,16 @@ def ingest(
     """Insert the new predictions received `now` (the clock by default); answer accepted and
     duplicate counts."""
     received = now or clock.now()
+    waiting: list[str] | None = None  # the new ids with a pending label; None: not known
     if is_postgres(session):
         # insert first (ON CONFLICT DO NOTHING) and compare only the ids already stored; a
         # conflict raises, and the request's transaction rolls the whole batch back
-        inserted = _insert_pg(session, model_id, preds, received) if preds else set()
+        if not preds:
+            inserted: set[str] = set()
+        elif len(preds) <= SMALL_BATCH:
+            inserted, waiting = _insert_small_pg(session, model_id, preds, received)
+        else:
+            inserted = _insert_pg(session, model_id, preds, received)
         rest = [p for p in preds if p.pid not in inserted]
     else:
         inserted, rest = set(), preds
@@ -88,7 +94,9 @@ def ingest(
             _insert_sqlite(session, model_id, new, received)
     if new:
         hours = {epoch_hour(p.ts) for p in new}
-        hours |= labels.join_pending(session=session, model_id=model_id, ids=[p.pid for p in new])
+        ids = [p.pid for p in new] if waiting is None else waiting
+        if ids:
+            hours |= labels.join_pending(session=session, model_id=model_id, ids=ids)
         dirty.mark(session=session, model_id=model_id, hours=hours)
     return {"accepted": len(new), "duplicates": batch_size - len(new)}
 
@@ -111,6 +119,49 @@ def _insert_sqlite(
     session: Session, model_id: int, new: list[PredictionIn], received: datetime
 ) -> None:
     session.execute(insert(Prediction), [_row(model_id, p, received) for p in new])
+
+
+# One statement for a small batch: insert the rows from arrays (no staging table) and answer
+# which ids were new and which of those have a label waiting for them.
+_SMALL_SQL = """
+WITH ins AS (
+  INSERT INTO predictions (model_id, pid, ts, hour, score, scores, predicted, tags, received_at)
+  SELECT %(m)s, r.pid, r.ts, r.hour, r.score, r.scores::jsonb, r.predicted, r.tags::jsonb,
+    %(at)s
+  FROM unnest(%(pid)s::text[], %(ts)s::timestamptz[], %(hour)s::int4[], %(score)s::float8[],
+    %(scores)s::text[], %(predicted)s::text[], %(tags)s::text[])
+    AS r(pid, ts, hour, score, scores, predicted, tags)
+  ON CONFLICT (model_id, pid) DO NOTHING
+  RETURNING pid
+)
+SELECT ins.pid, EXISTS (
+  SELECT 1 FROM pending_labels w WHERE w.model_id = %(m)s AND w.pid = ins.pid
+) FROM ins
+"""
+SMALL_BATCH = 200
+
+
+def _insert_small_pg(
+    session: Session, model_id: int, new: list[PredictionIn], received: datetime
+) -> tuple[set[str], list[str]]:
+    """Insert a small batch in one round trip; the ids stored and those of them with a
+    pending label."""
+    raw = session.connection().connection.driver_connection
+    assert raw is not None
+    params = {
+        "m": model_id,
+        "at": received,
+        "pid": [p.pid for p in new],
+        "ts": [p.ts for p in new],
+        "hour": [epoch_hour(p.ts) for p in new],
+        "score": [p.score for p in new],
+        "scores": [bulk.json_text(p.scores) for p in new],
+        "predicted": [p.predicted for p in new],
+        "tags": [bulk.json_text(p.tags) for p in new],
+    }
+    with raw.cursor() as cur:
+        rows = cur.execute(_SMALL_SQL, params, prepare=True).fetchall()
+    return {r[0] for r in rows}, [r[0] for r in rows if r[1]]
 
 
 def _insert_pg(

@@ -1,9 +1,10 @@
-"""The refresh: recompute dirty buckets, clearing a mark only if no write touched it since.
+"""The refresh: recompute dirty buckets, taking exactly the marks that were there to take.
 
 One transaction per batch of buckets: a crash mid-run loses nothing (the marks are still
-there) and the next run repeats the work. On PostgreSQL the job takes marks with
-FOR UPDATE SKIP LOCKED and a read-your-writes refresh waits for them (FOR UPDATE), so a
-bucket is recomputed by one transaction at a time.
+there) and the next run repeats the work. On PostgreSQL a refresh holds the hours it works
+on exclusively (store/dirty.py): writers of those hours wait for it, and a second refresh
+of an hour (the job and a read-your-writes read) runs after the first, then finds the marks
+already taken.
 """
 
 from __future__ import annotations
@@ -11,6 +12,7 @@ from __future__ import annotations
 import logging
 from collections import defaultdict
 from datetime import timedelta
+from itertools import groupby
 from typing import Any, NamedTuple
 
 from sqlalchemy import delete, select, tuple_
@@ -19,19 +21,23 @@ from sqlalchemy.orm import Session, sessionmaker
 from belated.clock import now
 from belated.store import dirty, labels, rollups
 from belated.store.db import transaction
-from belated.store.dialect import is_postgres
 from belated.store.tables import DirtyBucket, ModelRow, PendingLabel, Prediction, ServiceState
 
 log = logging.getLogger(__name__)
 BATCH_HOURS = 168
 
 
-def _claim(
-    session: Session, model_id: int | None, lo: int | None, hi: int | None, wait: bool
-) -> list[tuple[int, int, int, bool]]:
-    query = select(
-        DirtyBucket.model_id, DirtyBucket.hour, DirtyBucket.version, DirtyBucket.recompute
-    )
+class Mark(NamedTuple):
+    """A dirty (model, hour) taken by a refresh, and whether any of its marks asked for a
+    recompute from raw rows."""
+
+    model_id: int
+    hour: int
+    recompute: bool
+
+
+def _claim(session: Session, model_id: int | None, lo: int | None, hi: int | None) -> list[Mark]:
+    query = select(DirtyBucket.model_id, DirtyBucket.hour).distinct()
     if model_id is not None:
         query = query.where(DirtyBucket.model_id == model_id)
     if lo is not None:
@@ -39,17 +45,27 @@ def _claim(
     if hi is not None:
         query = query.where(DirtyBucket.hour < hi)
     query = query.order_by(DirtyBucket.model_id, DirtyBucket.hour).limit(BATCH_HOURS)
-    if is_postgres(session):
-        query = query.with_for_update(skip_locked=not wait)
-    return [tuple(r) for r in session.execute(query)]  # type: ignore[misc]
+    while chosen := [(int(m), int(h)) for m, h in session.execute(query)]:
+        if taken := _take(session, chosen):
+            return taken
+    return []
 
 
-class Mark(NamedTuple):
-    """A dirty mark claimed by a refresh."""
-
-    model_id: int
-    hour: int
-    version: int
+def _take(session: Session, chosen: list[tuple[int, int]]) -> list[Mark]:
+    for mid, group in groupby(chosen, key=lambda mh: mh[0]):
+        dirty.lock_hours(session, mid, [h for _, h in group], "exclusive")
+    # every mark of the chosen hours, those committed while this waited for the locks too;
+    # an hour another refresh took meanwhile has none left and is skipped
+    taken: dict[tuple[int, int], bool] = {}
+    for i in range(0, len(chosen), 500):
+        for mid, hour, recompute in session.execute(
+            delete(DirtyBucket)
+            .where(tuple_(DirtyBucket.model_id, DirtyBucket.hour).in_(chosen[i : i + 500]))
+            .returning(DirtyBucket.model_id, DirtyBucket.hour, DirtyBucket.recompute)
+        ):
+            key = (int(mid), int(hour))
+            taken[key] = taken.get(key, False) or bool(recompute)
+    return [Mark(m, h, r) for (m, h), r in sorted(taken.items())]
 
 
 def refresh_batch(
@@ -59,17 +75,16 @@ def refresh_batch(
     model_id: int | None = None,
     lo: int | None = None,
     hi: int | None = None,
-    wait: bool = False,
 ) -> list[Mark]:
     """Refresh one batch of dirty buckets in the caller's transaction; return the marks
     taken (none when no work is left)."""
-    claimed = _claim(session, model_id, lo, hi, wait)
+    claimed = _claim(session, model_id, lo, hi)
     if not claimed:
         return []
     recompute: dict[int, list[int]] = defaultdict(list)
     fold: dict[int, list[int]] = defaultdict(list)
-    for mid, hour, _, from_raw_rows in claimed:
-        (recompute if from_raw_rows else fold)[mid].append(hour)
+    for mark in claimed:
+        (recompute if mark.recompute else fold)[mark.model_id].append(mark.hour)
     stamp = now()
     for mid in sorted(set(recompute) | set(fold)):
         model = session.get(ModelRow, mid)
@@ -82,16 +97,7 @@ def refresh_batch(
                 max_values=max_values,
                 fold=fold[mid],
             )
-    marks = [Mark(mid, hour, version) for mid, hour, version, _ in claimed]
-    # Clear only the marks whose version is the one read: a write meanwhile keeps its mark.
-    session.execute(
-        delete(DirtyBucket).where(
-            tuple_(DirtyBucket.model_id, DirtyBucket.hour, DirtyBucket.version).in_(
-                [tuple(m) for m in marks]
-            )
-        )
-    )
-    return marks
+    return claimed
 
 
 def refresh_all(
@@ -101,16 +107,13 @@ def refresh_all(
     model_id: int | None = None,
     lo: int | None = None,
     hi: int | None = None,
-    wait: bool = False,
 ) -> int:
     """Refresh dirty buckets batch by batch, each in its own transaction."""
     total = 0
     while True:
         with transaction(factory) as session:
             done = len(
-                refresh_batch(
-                    session, max_values=max_values, model_id=model_id, lo=lo, hi=hi, wait=wait
-                )
+                refresh_batch(session, max_values=max_values, model_id=model_id, lo=lo, hi=hi)
             )
         if not done:
             return total
@@ -126,7 +129,9 @@ def join_and_mark(factory: sessionmaker[Session]) -> int:
         pending_models = session.scalars(select(PendingLabel.model_id).distinct()).all()
         for mid in pending_models:
             hours = labels.join_pending(session=session, model_id=mid, ids=None)
-            marked += dirty.mark(session=session, model_id=mid, hours=hours, recompute=False)
+            marked += dirty.mark(
+                session=session, model_id=mid, hours=hours, recompute=False, lock="exclusive"
+            )
     with transaction(factory) as session:
         for model in session.scalars(
             select(ModelRow).where(ModelRow.negative_after_days.is_not(None))
@@ -139,7 +144,9 @@ def join_and_mark_model(session: Session, model: ModelRow) -> int:
     """`join_and_mark` for one model in the caller's transaction (a read that must be
     current)."""
     hours = labels.join_pending(session=session, model_id=model.id, ids=None)
-    marked = dirty.mark(session=session, model_id=model.id, hours=hours, recompute=False)
+    marked = dirty.mark(
+        session=session, model_id=model.id, hours=hours, recompute=False, lock="exclusive"
+    )
     if model.negative_after_days is not None:
         marked += _mark_newly_implied(session, model)
     return marked
@@ -165,7 +172,7 @@ def _mark_newly_implied(session: Session, model: ModelRow) -> int:
     if last is not None:
         query = query.where(Prediction.hour >= last)
     hours = list(session.scalars(query))
-    n = dirty.mark(session=session, model_id=model.id, hours=hours)
+    n = dirty.mark(session=session, model_id=model.id, hours=hours, lock="exclusive")
     if state is None:
         session.add(ServiceState(key=key, value=cut_hour, updated_at=stamp))
     else:
@@ -189,7 +196,7 @@ def mark_model(session: Session, model_id: int) -> int:
     hours = list(
         session.scalars(select(Prediction.hour).distinct().where(Prediction.model_id == model_id))
     )
-    return dirty.mark(session=session, model_id=model_id, hours=hours)
+    return dirty.mark(session=session, model_id=model_id, hours=hours, lock="exclusive")
 
 
 def rebuild(factory: sessionmaker[Session], *, max_values: int, model_id: int | None = None) -> int:
@@ -203,5 +210,5 @@ def rebuild(factory: sessionmaker[Session], *, max_values: int, model_id: int | 
             mark_model(session, mid)
     total = 0
     for mid in ids:
-        total += refresh_all(factory, max_values=max_values, model_id=mid, wait=True)
+        total += refresh_all(factory, max_values=max_values, model_id=mid)
     return total

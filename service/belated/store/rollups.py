@@ -18,7 +18,7 @@ daily rows: the folded differences are added to them; days with a recomputed hou
 are summed again from their hourly rows
     │
     ▼
-the folded changes are deleted (writers of these hours wait on the claimed marks)
+the folded changes are deleted (writers of these hours wait on the hours' locks)
 """
 
 from __future__ import annotations
@@ -271,8 +271,8 @@ def _rows(session: Session, model_id: int, level: str, starts: list[int]) -> lis
 
 
 def _forget_changes(session: Session, model_id: int, hours: list[int]) -> None:
-    # Writers of these hours wait on the claimed marks, so no change of theirs can commit
-    # between the aggregation above and this delete.
+    # Writers of these hours wait on the hours' locks (store/dirty.py), so no change of
+    # theirs can commit between the aggregation above and this delete.
     for i in range(0, len(hours), DELETE_CHUNK):
         session.execute(
             delete(LabelChange).where(
@@ -290,7 +290,9 @@ def _lock_days(session: Session, model_id: int, days: set[int]) -> None:
     # that two refreshes cannot wait on each other)
     for day in sorted(days):
         session.execute(
-            text("SELECT pg_advisory_xact_lock(:m, :d)"), {"m": model_id, "d": day // 24}
+            # days as negative keys: the non-negative ones are the hours (store/dirty.py)
+            text("SELECT pg_advisory_xact_lock(:m, :d)"),
+            {"m": model_id, "d": -1 - day // 24},
         )
 
 

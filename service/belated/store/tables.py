@@ -154,19 +154,20 @@ class PendingLabel(Base):
 
 
 class DirtyBucket(Base):
-    """A (model, hour) whose rollups are stale; `version` changes with every write to it.
+    """A mark that a (model, hour)'s rollups are stale: one row per write, never updated.
 
-    `recompute` is true when the hour must be aggregated again from raw rows (new
-    predictions, implied negatives, a rebuild); false when only labels changed, whose
-    effect the refresh adds from `label_changes` instead.
+    Concurrent writers of one hour each insert a row of their own (no row that every writer
+    updates); the refresh takes every mark of the hours it claims. `recompute` is true when
+    the hour must be aggregated again from raw rows (new predictions, implied negatives, a
+    rebuild); false when only labels changed, whose effect the refresh adds from
+    `label_changes` instead.
     """
 
     __tablename__ = "dirty_buckets"
-    model_id: Mapped[int] = mapped_column(
-        ForeignKey("models.id", ondelete="CASCADE"), primary_key=True
-    )
-    hour: Mapped[int] = mapped_column(Integer, primary_key=True)
-    version: Mapped[int] = mapped_column(BigInteger)
+    __table_args__ = (Index("ix_dirty_buckets_model_hour", "model_id", "hour"),)
+    seq: Mapped[int] = mapped_column(BigId, primary_key=True, autoincrement=True)
+    model_id: Mapped[int] = mapped_column(ForeignKey("models.id", ondelete="CASCADE"))
+    hour: Mapped[int] = mapped_column(Integer)
     marked_at: Mapped[datetime] = mapped_column(UtcDateTime)
     recompute: Mapped[bool] = mapped_column(Boolean, default=True, server_default=true())
 

@@ -10,7 +10,7 @@ from fastapi import APIRouter, Form, Query, Request
 from fastapi.responses import HTMLResponse, RedirectResponse, Response
 from jinja2 import Environment, PackageLoader
 
-from belated.api.deps import SessionDep, principal
+from belated.api.deps import SessionDep, caller_of
 from belated.api.problems import as_problem
 from belated.clock import now
 from belated.errors import DomainError, Problem
@@ -89,7 +89,7 @@ def viewer(request: Request, session: SessionDep) -> Principal | Response:
     """The reader (a token with the read scope), or the answer to send instead: a redirect
     to the sign-in form without a live token, a 403 page without the read scope."""
     try:
-        who = principal(request, session)
+        who = caller_of(request, session)
     except Problem:
         target = request.url.path + (f"?{request.url.query}" if request.url.query else "")
         return RedirectResponse(f"/signin?next={quote(target, safe='')}", status_code=303)

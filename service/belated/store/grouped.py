@@ -1,0 +1,272 @@
+"""Group commit for small prediction batches: many requests, one transaction.
+
+A live system sends one prediction a request from many threads. Each request alone would pay
+a transaction, a commit and its round trips for one row; here concurrent small batches queue
+up while the previous transaction commits, and a writer thread stores them together:
+
+    request ──validated──▶ queue ──▶ writer thread: one transaction for every batch waiting
+       ▲                                  │ PostgreSQL: one INSERT … FROM unnest(arrays) for all
+       │                                  │   rows, marking their hours; SQLite: each batch in
+       │                                  │   a savepoint of its own
+       │                                  ▼
+       └──── answer once committed ◀── commit (a 2xx still means stored)
+
+Each request stays all or nothing. On PostgreSQL an id stored earlier with other content,
+or sent by two batches of one group with different content, sends the whole group back to
+be stored batch by batch (the ordinary path, which answers the conflicting batch 409 and
+stores the others); so does any error of the store, so that each batch gets its own answer.
+"""
+
+from __future__ import annotations
+
+import logging
+import queue
+import threading
+from collections.abc import Callable
+from concurrent.futures import Future
+from dataclasses import dataclass, field
+from datetime import datetime
+from functools import partial
+from typing import Any
+
+from sqlalchemy.orm import Session, sessionmaker
+
+from belated.ingest.validate import PredictionIn
+from belated.store import bulk, dirty, labels, predictions
+from belated.store.db import transaction
+from belated.store.dialect import is_postgres
+from belated.timeutil import to_utc
+
+log = logging.getLogger(__name__)
+SMALL_BATCH = 200  # batches up to this many predictions are grouped
+MAX_GROUP_ROWS = 5000
+IDLE_SECONDS = 30.0
+
+
+@dataclass(slots=True)
+class Batch:
+    """One request's validated predictions, waiting to be stored."""
+
+    model_id: int
+    items: list[PredictionIn]
+    batch_size: int
+    received: datetime
+    done: Future[dict[str, int]] = field(default_factory=Future)
+
+
+class Busy(Exception):
+    """The queue is full: the store is not keeping up (the caller answers 503)."""
+
+
+class GroupWriter:
+    """A bounded queue of small batches and the thread(s) that store them in groups."""
+
+    def __init__(
+        self, sessions: sessionmaker[Session], *, threads: int = 2, max_queued: int = 2000
+    ) -> None:
+        self.sessions = sessions
+        self.threads = threads
+        self.queue: queue.Queue[Batch] = queue.Queue(maxsize=max_queued)
+        self._lock = threading.Lock()
+        self._running: list[threading.Thread] = []
+        self.groups = 0
+
+    def submit(self, batch: Batch) -> Future[dict[str, int]]:
+        """Queue a batch; its future answers accepted and duplicates once committed."""
+        try:
+            self.queue.put_nowait(batch)
+        except queue.Full:
+            raise Busy from None
+        self._ensure_threads()
+        return batch.done
+
+    def queued(self) -> int:
+        """Batches waiting."""
+        return self.queue.qsize()
+
+    def _ensure_threads(self) -> None:
+        with self._lock:
+            self._running = [t for t in self._running if t.is_alive()]
+            while len(self._running) < self.threads:
+                thread = threading.Thread(
+                    target=self._run, name="belated-group-writer", daemon=True
+                )
+                thread.start()
+                self._running.append(thread)
+
+    def _run(self) -> None:
+        while True:
+            try:
+                first = self.queue.get(timeout=IDLE_SECONDS)
+            except queue.Empty:
+                with self._lock:  # idle: leave, unless a batch slipped in meanwhile
+                    if self.queue.empty():
+                        self._running.remove(threading.current_thread())
+                        return
+                continue
+            group, rows = [first], len(first.items)
+            while rows < MAX_GROUP_ROWS:
+                try:
+                    more = self.queue.get_nowait()
+                except queue.Empty:
+                    break
+                group.append(more)
+                rows += len(more.items)
+            self.groups += 1
+            self._store(group)
+
+    def _store(self, group: list[Batch]) -> None:
+        try:
+            with transaction(self.sessions) as session:
+                if is_postgres(session):
+                    answers = _store_pg(session, group)
+                else:
+                    answers = _store_sqlite(session, group)
+        except Exception:  # each batch alone, for an answer of its own
+            log.debug("a group of %d batches is stored batch by batch", len(group), exc_info=True)
+            for batch in group:
+                _settle(batch, partial(self._alone, batch))
+            return
+        for batch, answer in zip(group, answers, strict=True):
+            if isinstance(answer, BaseException):
+                batch.done.set_exception(answer)
+            else:
+                batch.done.set_result(answer)
+
+    def _alone(self, batch: Batch) -> dict[str, int]:
+        with transaction(self.sessions) as session:
+            return predictions.ingest(
+                session=session,
+                model_id=batch.model_id,
+                preds=batch.items,
+                batch_size=batch.batch_size,
+                now=batch.received,
+            )
+
+
+def _settle(batch: Batch, work: Callable[[], dict[str, int]]) -> None:
+    try:
+        batch.done.set_result(work())
+    except BaseException as exc:  # the request's answer: a 409, a 503, ...
+        batch.done.set_exception(exc)
+
+
+class _Regroup(Exception):
+    """The group cannot be stored as one: store its batches one by one."""
+
+
+def _store_sqlite(session: Session, group: list[Batch]) -> list[Any]:
+    """Each batch in a savepoint: one that fails is undone alone (SQLite's savepoints cost
+    no round trip); one commit for all."""
+    answers: list[Any] = []
+    for batch in group:
+        savepoint = session.begin_nested()
+        try:
+            answers.append(
+                predictions.ingest(
+                    session=session,
+                    model_id=batch.model_id,
+                    preds=batch.items,
+                    batch_size=batch.batch_size,
+                    now=batch.received,
+                )
+            )
+            savepoint.commit()
+        except Exception as exc:
+            savepoint.rollback()
+            answers.append(exc)
+    return answers
+
+
+_GROUP_SQL = """
+WITH ins AS (
+  INSERT INTO predictions (model_id, pid, ts, hour, score, scores, predicted, tags, received_at)
+  SELECT r.m, r.pid, r.ts, r.hour, r.score, r.scores::jsonb, r.predicted, r.tags::jsonb, r.at
+  FROM unnest(%(m)s::int4[], %(pid)s::text[], %(ts)s::timestamptz[], %(hour)s::int4[],
+    %(score)s::float8[], %(scores)s::text[], %(predicted)s::text[], %(tags)s::text[],
+    %(at)s::timestamptz[])
+    AS r(m, pid, ts, hour, score, scores, predicted, tags, at)
+  ON CONFLICT (model_id, pid) DO NOTHING
+  RETURNING model_id, pid, hour
+), marks AS (
+  INSERT INTO dirty_buckets (model_id, hour, marked_at, recompute)
+  SELECT DISTINCT model_id, hour, %(marked)s, true FROM ins
+)
+SELECT ins.model_id, ins.pid, ins.hour, EXISTS (
+  SELECT 1 FROM pending_labels w WHERE w.model_id = ins.model_id AND w.pid = ins.pid
+) FROM ins
+"""
+
+_STORED_SQL = """
+SELECT p.model_id, p.pid, p.ts, p.score, p.scores, p.predicted, p.tags
+FROM predictions p JOIN unnest(%(m)s::int4[], %(pid)s::text[]) AS k(m, pid)
+  ON p.model_id = k.m AND p.pid = k.pid
+"""
+
+
+def _store_pg(session: Session, group: list[Batch]) -> list[Any]:
+    """The whole group in one statement; answers per batch, or _Regroup."""
+    first: dict[tuple[int, str], PredictionIn] = {}
+    owner: dict[tuple[int, str], int] = {}
+    repeats: list[tuple[int, PredictionIn]] = []  # an id seen earlier in the group
+    for i, batch in enumerate(group):
+        for p in batch.items:
+            key = (batch.model_id, p.pid)
+            if key in first:
+                repeats.append((i, p))
+            else:
+                first[key], owner[key] = p, i
+    for i, p in repeats:
+        if not p.same_as(first[(group[i].model_id, p.pid)]):
+            raise _Regroup
+    keys = list(first)
+    rows = [first[k] for k in keys]
+    received = [group[owner[k]].received for k in keys]
+    raw = session.connection().connection.driver_connection
+    assert raw is not None
+    with raw.cursor() as cur:
+        stored = cur.execute(
+            _GROUP_SQL,
+            {
+                "m": [k[0] for k in keys],
+                "pid": [k[1] for k in keys],
+                "ts": [p.ts for p in rows],
+                "hour": [predictions.epoch_hour(p.ts) for p in rows],
+                "score": [p.score for p in rows],
+                "scores": [bulk.json_text(p.scores) for p in rows],
+                "predicted": [p.predicted for p in rows],
+                "tags": [bulk.json_text(p.tags) for p in rows],
+                "at": received,
+                "marked": max(received),
+            },
+            prepare=True,
+        ).fetchall()
+        inserted = {(int(m), pid) for m, pid, _, _ in stored}
+        rest = [k for k in keys if k not in inserted]
+        if rest:  # stored before this group: the same content, or a conflict
+            for m, pid, ts, score, scores, predicted, tags in cur.execute(
+                _STORED_SQL, {"m": [k[0] for k in rest], "pid": [k[1] for k in rest]}
+            ):
+                old = PredictionIn(pid, to_utc(ts), score, scores, predicted, tags or None)
+                if not first[(int(m), pid)].same_as(old):
+                    raise _Regroup
+    waiting: dict[int, list[str]] = {}
+    touched: dict[int, set[int]] = {}
+    for m, pid, hour, pending in stored:
+        touched.setdefault(int(m), set()).add(int(hour))
+        if pending:
+            waiting.setdefault(int(m), []).append(pid)
+    for model_id in sorted(waiting):
+        hours = labels.join_pending(session=session, model_id=model_id, ids=waiting[model_id])
+        dirty.mark(session=session, model_id=model_id, hours=hours, recompute=False, lock=None)
+        touched[model_id] |= hours
+    # the hours held until the commit (store/dirty.py): all of them in one ascending pass
+    for model_id in sorted(touched):
+        dirty.lock_hours(session, model_id, sorted(touched[model_id]), "shared")
+    accepted = [0] * len(group)
+    for key in inserted:
+        accepted[owner[key]] += 1
+    return [
+        {"accepted": n, "duplicates": batch.batch_size - n}
+        for n, batch in zip(accepted, group, strict=True)
+    ]
