@@ -38,6 +38,7 @@ ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 from bench.common import (  # noqa: E402
     Service,
+    backend_pids,
     code_version,
     cpu_seconds,
     create_database,
@@ -171,12 +172,26 @@ class Plain:
         self.proc.wait(20)
 
 
+def _store_cpu(dbname: str | None) -> dict[int, float]:
+    """CPU seconds so far of the PostgreSQL backends serving `dbname` (none for SQLite)."""
+    if dbname is None:
+        return {}
+    out = {}
+    for pid in backend_pids(dbname):
+        try:
+            out[pid] = cpu_seconds(pid)
+        except OSError:  # gone meanwhile
+            pass
+    return out
+
+
 def _phase(
-    target: Any, pid: int, token: str, rows: int, args: argparse.Namespace
+    target: Any, pid: int, dbname: str | None, token: str, rows: int, args: argparse.Namespace
 ) -> dict[str, Any]:
-    cpu0 = cpu_seconds(pid)
+    cpu0, store0 = cpu_seconds(pid), _store_cpu(dbname)
     m = drive(target, token, rows, args.seconds / args.rounds, args.writers, args.procs)
     m["cpu"] = cpu_seconds(pid) - cpu0
+    m["store_cpu"] = sum(v - store0.get(k, 0.0) for k, v in _store_cpu(dbname).items())
     return m
 
 
@@ -196,6 +211,7 @@ def _merge(parts: list[dict[str, Any]]) -> dict[str, Any]:
         "p99": percentile(lat, 0.99),
         "errors": errors,
         "cpu_ms": sum(p["cpu"] for p in parts) * 1000 / max(1, n),
+        "store_ms": sum(p["store_cpu"] for p in parts) * 1000 / max(1, n),
     }
 
 
@@ -206,7 +222,9 @@ def run_store(kind: str, args: argparse.Namespace, rows: int) -> list[list[Any]]
     if kind == "postgresql":
         names = [create_database("belated_live"), create_database("plain_live")]
         urls = [pg_url(n) for n in names]
+        dbs: list[str | None] = list(names)
     else:
+        dbs = [None, None]
         names = []
         urls = [f"sqlite:///{tmp / 'belated.db'}", f"sqlite:///{tmp / 'plain.db'}"]
     ours: list[dict[str, Any]] = []
@@ -226,8 +244,8 @@ def run_store(kind: str, args: argparse.Namespace, rows: int) -> list[list[Any]]
             )
             assert r.status_code == 201, r.text
             for _ in range(args.rounds):
-                ours.append(_phase(service.url, service.pid, token, rows, args))
-                theirs.append(_phase(plain.url, plain.proc.pid, "none", rows, args))
+                ours.append(_phase(service.url, service.pid, dbs[0], token, rows, args))
+                theirs.append(_phase(plain.url, plain.proc.pid, dbs[1], "none", rows, args))
         finally:
             service.stop()
             plain.stop()
@@ -251,6 +269,7 @@ def run_store(kind: str, args: argparse.Namespace, rows: int) -> list[list[Any]]
                 f"{x['p99']:.1f}",
                 errors,
                 f"{x['cpu_ms']:.2f}",
+                f"{x['store_ms']:.2f}" if kind == "postgresql" else "-",
                 f"{x['rows_s'] / p['rows_s']:.2f}x",
             ]
         )
@@ -269,6 +288,7 @@ HEADERS = [
     "p99 ms",
     "errors",
     "server CPU ms/request",
+    "PostgreSQL CPU ms/request",
     "rows/s vs plain",
 ]
 

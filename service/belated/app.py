@@ -22,6 +22,7 @@ from belated.api import (
     routes_models,
     routes_prometheus,
 )
+from belated.api.fastpath import SmallWrites
 from belated.api.limits import BodyLimit
 from belated.api.lookups import Lookups
 from belated.config import Settings, get_settings
@@ -80,7 +81,7 @@ def create_app(
         app.include_router(module.router)
     _optional_routers(app)
     openapi.install(app)
-    return BodyLimit(app, settings.max_body_bytes)
+    return BodyLimit(app, settings.max_body_bytes, SmallWrites(app.state))
 
 
 def _optional_routers(app: FastAPI) -> None:

@@ -14,9 +14,11 @@ Scope = dict[str, Any]
 class BodyLimit:
     """ASGI middleware: refuse (413) a body over `limit` bytes after reading at most that many."""
 
-    def __init__(self, app: Any, limit: int) -> None:
+    def __init__(self, app: Any, limit: int, shortcut: Any = None) -> None:
         self.app = app
         self.limit = limit
+        # answers some requests itself once the body is read (api/fastpath.py)
+        self.shortcut = shortcut
 
     async def __call__(self, scope: Scope, receive: Any, send: Any) -> None:
         if scope["type"] != "http":
@@ -52,6 +54,8 @@ class BodyLimit:
             if where is not None:
                 await self._nul(send, where)
                 return
+        if self.shortcut is not None and await self.shortcut(scope, body, send):
+            return
         await self.app(scope, _replay([body], None, receive), send)
 
     async def _nul(self, send: Any, where: tuple[int | None, str]) -> None:

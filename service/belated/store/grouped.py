@@ -29,12 +29,14 @@ from datetime import datetime
 from functools import partial
 from typing import Any
 
+from sqlalchemy import insert
 from sqlalchemy.orm import Session, sessionmaker
 
 from belated.ingest.validate import PredictionIn
 from belated.store import bulk, dirty, labels, predictions
 from belated.store.db import transaction
 from belated.store.dialect import is_postgres
+from belated.store.tables import Prediction
 from belated.timeutil import to_utc
 
 log = logging.getLogger(__name__)
@@ -156,26 +158,64 @@ class _Regroup(Exception):
 
 
 def _store_sqlite(session: Session, group: list[Batch]) -> list[Any]:
-    """Each batch in a savepoint: one that fails is undone alone (SQLite's savepoints cost
-    no round trip); one commit for all."""
-    answers: list[Any] = []
-    for batch in group:
-        savepoint = session.begin_nested()
-        try:
-            answers.append(
-                predictions.ingest(
-                    session=session,
-                    model_id=batch.model_id,
-                    preds=batch.items,
-                    batch_size=batch.batch_size,
-                    now=batch.received,
-                )
-            )
-            savepoint.commit()
-        except Exception as exc:
-            savepoint.rollback()
-            answers.append(exc)
-    return answers
+    """The whole group in a few statements (SQLite has one writer, BEGIN IMMEDIATE, so the
+    look-up of stored ids is authoritative); answers per batch, or _Regroup."""
+    first, owner = _first_of_each(group)
+    by_model: dict[int, list[str]] = {}
+    for m, pid in first:
+        by_model.setdefault(m, []).append(pid)
+    new: list[tuple[int, str]] = []
+    for m, ids in sorted(by_model.items()):
+        stored = predictions.existing(session=session, model_id=m, ids=ids)
+        for pid in ids:
+            if pid not in stored:
+                new.append((m, pid))
+            elif not first[(m, pid)].same_as(stored[pid]):
+                raise _Regroup
+    if new:
+        session.connection().execute(
+            insert(Prediction),
+            [predictions.row_of(k[0], first[k], group[owner[k]].received) for k in new],
+        )
+    touched: dict[int, set[int]] = {}
+    for m, pid in new:
+        touched.setdefault(m, set()).add(predictions.epoch_hour(first[(m, pid)].ts))
+    for m in sorted(touched):
+        ids = [pid for mm, pid in new if mm == m]
+        hours = touched[m]
+        if labels.any_pending(session=session, model_id=m, ids=ids):
+            hours |= labels.join_pending(session=session, model_id=m, ids=ids)
+        dirty.mark(session=session, model_id=m, hours=hours)
+    return _answers(group, owner, set(new))
+
+
+def _first_of_each(
+    group: list[Batch],
+) -> tuple[dict[tuple[int, str], PredictionIn], dict[tuple[int, str], int]]:
+    """The first item of each (model, id) in the group and the batch it is in; _Regroup when
+    a later batch sends one of them with other content."""
+    first: dict[tuple[int, str], PredictionIn] = {}
+    owner: dict[tuple[int, str], int] = {}
+    for i, batch in enumerate(group):
+        for p in batch.items:
+            key = (batch.model_id, p.pid)
+            if key not in first:
+                first[key], owner[key] = p, i
+            elif not p.same_as(first[key]):
+                raise _Regroup
+    return first, owner
+
+
+def _answers(
+    group: list[Batch], owner: dict[tuple[int, str], int], inserted: set[tuple[int, str]]
+) -> list[Any]:
+    accepted = [0] * len(group)
+    for key in inserted:
+        accepted[owner[key]] += 1
+    return [
+        {"accepted": n, "duplicates": batch.batch_size - n}
+        for n, batch in zip(accepted, group, strict=True)
+    ]
 
 
 _GROUP_SQL = """
@@ -206,19 +246,7 @@ FROM predictions p JOIN unnest(%(m)s::int4[], %(pid)s::text[]) AS k(m, pid)
 
 def _store_pg(session: Session, group: list[Batch]) -> list[Any]:
     """The whole group in one statement; answers per batch, or _Regroup."""
-    first: dict[tuple[int, str], PredictionIn] = {}
-    owner: dict[tuple[int, str], int] = {}
-    repeats: list[tuple[int, PredictionIn]] = []  # an id seen earlier in the group
-    for i, batch in enumerate(group):
-        for p in batch.items:
-            key = (batch.model_id, p.pid)
-            if key in first:
-                repeats.append((i, p))
-            else:
-                first[key], owner[key] = p, i
-    for i, p in repeats:
-        if not p.same_as(first[(group[i].model_id, p.pid)]):
-            raise _Regroup
+    first, owner = _first_of_each(group)
     keys = list(first)
     rows = [first[k] for k in keys]
     received = [group[owner[k]].received for k in keys]
@@ -263,10 +291,4 @@ def _store_pg(session: Session, group: list[Batch]) -> list[Any]:
     # the hours held until the commit (store/dirty.py): all of them in one ascending pass
     for model_id in sorted(touched):
         dirty.lock_hours(session, model_id, sorted(touched[model_id]), "shared")
-    accepted = [0] * len(group)
-    for key in inserted:
-        accepted[owner[key]] += 1
-    return [
-        {"accepted": n, "duplicates": batch.batch_size - n}
-        for n, batch in zip(accepted, group, strict=True)
-    ]
+    return _answers(group, owner, inserted)

@@ -244,6 +244,15 @@ def _latest_received(session: Session, model_id: int, pids: list[str]) -> dict[s
     return out
 
 
+def any_pending(*, session: Session, model_id: int, ids: list[str]) -> bool:
+    """Whether a label waits for any of these ids."""
+    for cond in bulk.id_filters(session, PendingLabel.pid, ids):
+        query = select(PendingLabel.row_id).where(PendingLabel.model_id == model_id, cond)
+        if session.execute(query.limit(1)).first() is not None:
+            return True
+    return False
+
+
 def join_pending(*, session: Session, model_id: int, ids: list[str] | None) -> set[int]:
     """Apply pending labels whose prediction is stored; return the hours they touched.
 

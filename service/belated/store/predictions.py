@@ -101,7 +101,8 @@ def ingest(
     return {"accepted": len(new), "duplicates": batch_size - len(new)}
 
 
-def _row(model_id: int, p: PredictionIn, received: datetime) -> dict[str, Any]:
+def row_of(model_id: int, p: PredictionIn, received: datetime) -> dict[str, Any]:
+    """The predictions row of a validated item."""
     return {
         "model_id": model_id,
         "pid": p.pid,
@@ -118,7 +119,7 @@ def _row(model_id: int, p: PredictionIn, received: datetime) -> dict[str, Any]:
 def _insert_sqlite(
     session: Session, model_id: int, new: list[PredictionIn], received: datetime
 ) -> None:
-    session.execute(insert(Prediction), [_row(model_id, p, received) for p in new])
+    session.connection().execute(insert(Prediction), [row_of(model_id, p, received) for p in new])
 
 
 # One statement for a small batch: insert the rows from arrays (no staging table) and answer
