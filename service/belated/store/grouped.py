@@ -222,15 +222,15 @@ _GROUP_SQL = """
 WITH ins AS (
   INSERT INTO predictions (model_id, pid, ts, hour, score, scores, predicted, tags, received_at)
   SELECT r.m, r.pid, r.ts, r.hour, r.score, r.scores::jsonb, r.predicted, r.tags::jsonb, r.at
-  FROM unnest(%(m)s::int4[], %(pid)s::text[], %(ts)s::timestamptz[], %(hour)s::int4[],
-    %(score)s::float8[], %(scores)s::text[], %(predicted)s::text[], %(tags)s::text[],
-    %(at)s::timestamptz[])
+  FROM unnest(%(m)b::int4[], %(pid)b::text[], %(ts)b::timestamptz[], %(hour)b::int4[],
+    %(score)b::float8[], %(scores)b::text[], %(predicted)b::text[], %(tags)b::text[],
+    %(at)b::timestamptz[])
     AS r(m, pid, ts, hour, score, scores, predicted, tags, at)
   ON CONFLICT (model_id, pid) DO NOTHING
   RETURNING model_id, pid, hour
 ), marks AS (
   INSERT INTO dirty_buckets (model_id, hour, marked_at, recompute)
-  SELECT DISTINCT model_id, hour, %(marked)s, true FROM ins
+  SELECT DISTINCT model_id, hour, %(marked)b, true FROM ins
 )
 SELECT ins.model_id, ins.pid, ins.hour, EXISTS (
   SELECT 1 FROM pending_labels w WHERE w.model_id = ins.model_id AND w.pid = ins.pid
@@ -239,7 +239,7 @@ SELECT ins.model_id, ins.pid, ins.hour, EXISTS (
 
 _STORED_SQL = """
 SELECT p.model_id, p.pid, p.ts, p.score, p.scores, p.predicted, p.tags
-FROM predictions p JOIN unnest(%(m)s::int4[], %(pid)s::text[]) AS k(m, pid)
+FROM predictions p JOIN unnest(%(m)b::int4[], %(pid)b::text[]) AS k(m, pid)
   ON p.model_id = k.m AND p.pid = k.pid
 """
 
