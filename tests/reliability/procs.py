@@ -121,9 +121,10 @@ class Service:
         refresh_seconds: float = 60.0,
         name: str = "service",
         wait: bool = True,
+        port: int | None = None,
     ) -> None:
         self.store = store
-        self.port = free_port()
+        self.port = port or free_port()  # a port of its own, or the one of a stopped service
         self.url = f"http://127.0.0.1:{self.port}"
         self.log_path = workdir / f"{name}-{self.port}.log"
         env = store.env(

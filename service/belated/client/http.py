@@ -10,188 +10,28 @@ A refused request raises `BelatedError` carrying the problem details (RFC 9457).
 
 from __future__ import annotations
 
-import email.utils
 import random
 import time
-from collections.abc import Callable, Iterator
-from datetime import UTC, date, datetime
+from collections.abc import Callable
+from datetime import date, datetime
 from typing import Any, cast
 
 import httpx
-import numpy as np
 import orjson
 import pandas as pd
+
+from belated.client.errors import MAYBE_SENT, NOT_SENT, BelatedError, Unreachable, retry_after
+from belated.client.rows import chunks, plain, rfc3339
+from belated.client.windows import BASE_COLUMNS, flatten_window
 
 DEFAULT_BATCH = 10_000
 ANSWER_KEYS = {
     "predictions": ("accepted", "duplicates"),
     "labels": ("matched", "pending", "corrected", "unchanged"),
 }
-# Request errors raised before the request reached the service: safe to retry for any call.
-NOT_SENT = (httpx.ConnectError, httpx.ConnectTimeout, httpx.PoolTimeout)
-# Errors after the request may have reached it: retried only where a repeat is harmless.
-MAYBE_SENT = (
-    httpx.ReadError,
-    httpx.WriteError,
-    httpx.ReadTimeout,
-    httpx.WriteTimeout,
-    httpx.RemoteProtocolError,
-)
+
 
 Progress = Callable[[int, dict[str, int]], None]
-
-
-class BelatedError(Exception):
-    """A refused request, with its problem details: status, title, detail and errors."""
-
-    def __init__(
-        self,
-        status: int | None,
-        title: str,
-        detail: str,
-        errors: list[dict[str, Any]] | None = None,
-        problem: dict[str, Any] | None = None,
-    ) -> None:
-        super().__init__(f"{status or 'no answer'} {title}: {detail}")
-        self.status = status
-        self.title = title
-        self.detail = detail
-        self.errors = errors or []
-        self.problem = problem or {}
-        # Set by the batched senders: where the refused batch starts among the rows given,
-        # and what the batches before it stored.
-        self.offset = 0
-        self.sent: dict[str, int] = {}
-
-    @classmethod
-    def from_response(cls, response: httpx.Response) -> BelatedError:
-        """Read the problem details of a refused response (or its text, if not JSON)."""
-        try:
-            body = response.json()
-        except ValueError:
-            body = None
-        if not isinstance(body, dict):
-            return cls(response.status_code, response.reason_phrase or "Error", response.text[:500])
-        return cls(
-            int(body.get("status") or response.status_code),
-            str(body.get("title") or response.reason_phrase),
-            str(body.get("detail") or ""),
-            body.get("errors"),
-            body,
-        )
-
-
-class Unreachable(BelatedError):
-    """The service did not answer, after every retry."""
-
-
-def rfc3339(value: datetime | date | pd.Timestamp) -> str:
-    """RFC 3339 in UTC with a Z suffix; naive times are taken as UTC."""
-    if not isinstance(value, datetime):
-        value = datetime(value.year, value.month, value.day)
-    if value.tzinfo is None:
-        value = value.replace(tzinfo=UTC)
-    return value.astimezone(UTC).isoformat().replace("+00:00", "Z")
-
-
-def plain(value: Any) -> Any:
-    """A JSON-ready copy: numpy scalars via .item(), times as RFC 3339, NaN and NaT as None."""
-    if value is None or value is pd.NaT or value is pd.NA:
-        return None
-    if isinstance(value, np.generic):
-        value = value.item()
-    if isinstance(value, pd.Timestamp):  # RFC 3339 stops at microseconds
-        value = value.floor("us").to_pydatetime()
-    if isinstance(value, datetime | date):
-        return rfc3339(value)
-    if isinstance(value, float) and value != value:
-        return None
-    if isinstance(value, dict):
-        return {str(k): plain(v) for k, v in value.items()}
-    if isinstance(value, list | tuple | np.ndarray):
-        return [plain(v) for v in value]
-    return value
-
-
-def _column(series: pd.Series) -> list[Any]:
-    """A column as plain Python values (times as RFC 3339, missing as None)."""
-    if isinstance(series.dtype, pd.DatetimeTZDtype) or pd.api.types.is_datetime64_dtype(series):
-        utc = series.dt.tz_convert("UTC") if series.dt.tz is not None else series
-        stamps = utc.to_numpy(dtype="datetime64[us]")
-        whole = bool((stamps.astype("int64") % 1_000_000 == 0).all())
-        text = np.datetime_as_string(stamps, unit="s" if whole else "us")
-        return [None if t == "NaT" else t + "Z" for t in text.tolist()]
-    if pd.api.types.is_float_dtype(series):
-        return [None if v != v else v for v in series.to_numpy(dtype=float).tolist()]
-    if pd.api.types.is_integer_dtype(series) and not series.hasnans:
-        return list(series.to_numpy(dtype=np.int64).tolist())
-    if isinstance(series.dtype, pd.StringDtype):
-        return [v if isinstance(v, str) else None for v in series.tolist()]
-    return [plain(v) for v in series.tolist()]
-
-
-def frame_items(frame: pd.DataFrame) -> list[dict[str, Any]]:
-    """Rows of a DataFrame as API items.
-
-    Columns keep their API names (`id`, `ts`, `score`, `scores`, `predicted`, `tags`,
-    `actual`); `score.<class>` columns make the `scores` map and `tag.<key>` columns the
-    `tags`. Missing values are left out.
-    """
-    cols = {str(c): _column(frame[c]) for c in frame.columns}
-    scores = [c for c in cols if c.startswith("score.")]
-    tags = [c for c in cols if c.startswith("tag.")]
-    fields = [c for c in cols if c not in scores and c not in tags]
-    for name in ("predicted", "actual"):
-        # Class values are strings or integers; a float column (an integer column with
-        # gaps) holds 1.0 where the class is 1.
-        if name in cols and pd.api.types.is_float_dtype(frame[name]):
-            cols[name] = [int(v) if v is not None and v.is_integer() else v for v in cols[name]]
-    items: list[dict[str, Any]] = []
-    for i in range(len(frame)):
-        item = {f: v for f in fields if (v := cols[f][i]) is not None}
-        if scores:
-            item["scores"] = {c[6:]: cols[c][i] for c in scores}
-        if tags:
-            found = {c[4:]: v for c in tags if (v := cols[c][i]) is not None and v != ""}
-            if found:
-                item["tags"] = found
-        items.append(item)
-    return items
-
-
-def _chunks(rows: pd.DataFrame | list[dict[str, Any]], size: int) -> Iterator[list[dict[str, Any]]]:
-    for start in range(0, len(rows), size):
-        if isinstance(rows, pd.DataFrame):
-            yield frame_items(rows.iloc[start : start + size])
-        else:
-            yield [dict_item(item) for item in rows[start : start + size]]
-
-
-def dict_item(row: dict[str, Any]) -> dict[str, Any]:
-    """A dict row as an API item; `score.<class>` and `tag.<key>` keys fold as in frames."""
-    item = plain(row)
-    for prefix, key in (("score.", "scores"), ("tag.", "tags")):
-        flat = [k for k in item if k.startswith(prefix)]
-        if flat:
-            found = {k[len(prefix) :]: item.pop(k) for k in flat}
-            found = {k: v for k, v in found.items() if key == "scores" or v not in (None, "")}
-            if found:
-                item[key] = {**(item.get(key) or {}), **found}
-    return cast(dict[str, Any], item)
-
-
-def _retry_after(response: httpx.Response) -> float | None:
-    """Seconds asked by Retry-After (delta seconds or an HTTP date), if any."""
-    value = response.headers.get("retry-after")
-    if not value:
-        return None
-    if value.strip().isdigit():
-        return float(value)
-    try:
-        when = email.utils.parsedate_to_datetime(value)
-    except (TypeError, ValueError):
-        return None
-    return max(0.0, (when - datetime.now(UTC)).total_seconds())
 
 
 class Client:
@@ -265,7 +105,7 @@ class Client:
                 self._wait(attempt, None)
                 continue
             if response.status_code == 503 and not last:
-                self._wait(attempt, _retry_after(response))
+                self._wait(attempt, retry_after(response))
                 continue
             if response.status_code >= 400:
                 raise BelatedError.from_response(response)
@@ -289,7 +129,7 @@ class Client:
     ) -> dict[str, int]:
         total = dict.fromkeys(ANSWER_KEYS[kind], 0)
         offset = 0
-        for items in _chunks(rows, batch_size or self.batch_size):
+        for items in chunks(rows, batch_size or self.batch_size):
             try:
                 answer = self.send_batch(model, kind, items)
             except BelatedError as exc:
@@ -410,18 +250,6 @@ class Client:
         )
 
 
-BASE_COLUMNS = (
-    "start",
-    "end",
-    "closed",
-    "settled",
-    "predictions",
-    "labelled",
-    "implied_negatives",
-    "coverage",
-)
-
-
 def _query(params: dict[str, Any]) -> dict[str, Any]:
     """Query parameters: times as RFC 3339, lists of measures as a comma list."""
     out: dict[str, Any] = {}
@@ -436,48 +264,3 @@ def _query(params: dict[str, Any]) -> dict[str, Any]:
             value = str(value).lower()
         out[key] = plain(value)
     return out
-
-
-def _value(measure: dict[str, Any], key: str) -> float:
-    v = measure.get(key)
-    return np.nan if v is None else float(v)
-
-
-def flatten_window(window: dict[str, Any]) -> dict[str, Any]:
-    """One window of the metrics answer as a flat row."""
-    row: dict[str, Any] = {k: window.get(k) for k in BASE_COLUMNS}
-    row["coverage"] = np.nan if row["coverage"] is None else row["coverage"]
-    confusion = window.get("confusion") or {}
-    row.update({k: confusion[k] for k in ("tp", "fp", "fn", "tn") if k in confusion})
-    for name, m in (window.get("measures") or {}).items():
-        row[name], row[f"{name}_low"], row[f"{name}_high"] = (
-            _value(m, "value"),
-            _value(m, "low"),
-            _value(m, "high"),
-        )
-    for name, m in (window.get("implied") or {}).items():
-        if name in ("reference", "adjusted"):
-            continue  # the reference period and the adjusted flag are not measures
-        row[f"implied_{name}"] = (
-            _value(m, "value") if isinstance(m, dict) else (np.nan if m is None else float(m))
-        )
-    for name, b in (window.get("bounds") or {}).items():
-        row[f"{name}_bound_low"], row[f"{name}_bound_high"] = _value(b, "low"), _value(b, "high")
-    # an unsettled window's projected measures (what it will read once its labels are in)
-    for name, m in (window.get("projected") or {}).items():
-        row[f"{name}_projected"], row[f"{name}_projected_low"], row[f"{name}_projected_high"] = (
-            _value(m, "value"),
-            _value(m, "low"),
-            _value(m, "high"),
-        )
-    final = window.get("expected_final_coverage")
-    row["expected_final_coverage"] = np.nan if final is None else float(final)
-    row["settles_by"] = window.get("settles_by")
-    for cls, measures in (window.get("per_class") or {}).items():
-        for name, m in measures.items():
-            row[f"{cls}.{name}"], row[f"{cls}.{name}_low"], row[f"{cls}.{name}_high"] = (
-                _value(m, "value"),
-                _value(m, "low"),
-                _value(m, "high"),
-            )
-    return row
