@@ -27,7 +27,7 @@ import tempfile
 import threading
 import time
 from collections import Counter
-from datetime import UTC, datetime
+from datetime import UTC, datetime, timedelta
 from pathlib import Path
 from typing import Any
 
@@ -52,44 +52,75 @@ from bench.common import (  # noqa: E402
 
 MODEL = "returns-live"
 REGIONS = ("north", "south", "east", "west")
+LABELLED_PER_WRITER = 6000  # predictions stored before the labels run, per writer and round
 
 
-def _writer(url: str, token: str, rows: int, seconds: float, tag: str, out: list[Any]) -> None:
+def _prediction(rng: random.Random, pid: str, ts: str) -> dict[str, Any]:
+    return {
+        "id": pid,
+        "ts": ts,
+        "score": round(rng.random(), 4),
+        "tags": {"region": rng.choice(REGIONS)},
+    }
+
+
+def _writer(
+    url: str, token: str, kind: str, rows: int, seconds: float, tag: str, out: list[Any]
+) -> None:
+    """Post `rows` predictions (or labels) a request for `seconds`; labels are for
+    predictions this writer stored first, untimed (returns known within a day)."""
     rng = random.Random(tag)
     headers = {"Authorization": f"Bearer {token}", "Content-Type": "application/json"}
+    path = f"/v1/models/{MODEL}/{kind}"
     seq = 0
-    with httpx.Client(base_url=url, headers=headers, timeout=30.0) as client:
-        deadline = time.monotonic() + seconds
+    with httpx.Client(base_url=url, headers=headers, timeout=60.0) as client:
+        if kind == "labels":
+            day_ago = (datetime.now(UTC) - timedelta(days=1)).isoformat()
+            for start in range(0, LABELLED_PER_WRITER, 1000):
+                items = [
+                    _prediction(rng, f"{tag}-{i}", day_ago) for i in range(start, start + 1000)
+                ]
+                r = client.post(
+                    f"/v1/models/{MODEL}/predictions", content=orjson.dumps({"predictions": items})
+                )
+                assert r.status_code == 200, r.text
+        t0 = time.monotonic()
+        deadline = t0 + seconds
         while time.monotonic() < deadline:
             ts = datetime.now(UTC).isoformat()
             items = []
             for _ in range(rows):
                 seq += 1
-                items.append(
-                    {
-                        "id": f"{tag}-{seq}",
-                        "ts": ts,
-                        "score": round(rng.random(), 4),
-                        "tags": {"region": rng.choice(REGIONS)},
-                    }
-                )
-            body = orjson.dumps({"predictions": items})
+                if kind == "labels":  # past the stored ones, ids wait as pending labels
+                    items.append({"id": f"{tag}-{seq}", "actual": rng.choice("01"), "ts": ts})
+                else:
+                    items.append(_prediction(rng, f"{tag}-{seq}", ts))
+            body = orjson.dumps({kind: items})
             start = time.perf_counter()
             try:
-                status = client.post(f"/v1/models/{MODEL}/predictions", content=body).status_code
+                status = client.post(path, content=body).status_code
             except httpx.HTTPError:
                 status = 0
             out.append((status, time.perf_counter() - start, rows))
+        out.append(("span", t0, time.monotonic()))
 
 
 def _process(
-    url: str, token: str, rows: int, seconds: float, threads: int, pidx: int, q: Any
+    url: str, token: str, kind: str, rows: int, seconds: float, threads: int, pidx: int, q: Any
 ) -> None:
     results: list[list[Any]] = [[] for _ in range(threads)]
     workers = [
         threading.Thread(
             target=_writer,
-            args=(url, token, rows, seconds, f"p{pidx}t{i}r{rows}-{time.time_ns()}", results[i]),
+            args=(
+                url,
+                token,
+                kind,
+                rows,
+                seconds,
+                f"p{pidx}t{i}r{rows}-{time.time_ns()}",
+                results[i],
+            ),
         )
         for i in range(threads)
     ]
@@ -101,24 +132,25 @@ def _process(
 
 
 def drive(
-    url: str, token: str, rows: int, seconds: float, writers: int, procs: int
+    url: str, token: str, kind: str, rows: int, seconds: float, writers: int, procs: int
 ) -> dict[str, Any]:
     """Run the writers against one endpoint; return the figures."""
     ctx = mp.get_context("fork")
     q = ctx.Queue()
     per = [writers // procs + (1 if i < writers % procs else 0) for i in range(procs)]
-    started = time.monotonic()
     ps = [
-        ctx.Process(target=_process, args=(url, token, rows, seconds, n, i, q))
+        ctx.Process(target=_process, args=(url, token, kind, rows, seconds, n, i, q))
         for i, n in enumerate(per)
         if n
     ]
     for p in ps:
         p.start()
-    got = [r for _ in ps for r in q.get()]
+    everything = [r for _ in ps for r in q.get()]
     for p in ps:
         p.join()
-    elapsed = time.monotonic() - started
+    spans = [r for r in everything if r[0] == "span"]
+    got = [r for r in everything if r[0] != "span"]
+    elapsed = max(s[2] for s in spans) - min(s[1] for s in spans)  # the timed part only
     lat = [r[1] * 1000 for r in got]
     ok = [r for r in got if 200 <= r[0] < 300]
     return {
@@ -189,7 +221,7 @@ def _phase(
     target: Any, pid: int, dbname: str | None, token: str, rows: int, args: argparse.Namespace
 ) -> dict[str, Any]:
     cpu0, store0 = cpu_seconds(pid), _store_cpu(dbname)
-    m = drive(target, token, rows, args.seconds / args.rounds, args.writers, args.procs)
+    m = drive(target, token, args.kind, rows, args.seconds / args.rounds, args.writers, args.procs)
     m["cpu"] = cpu_seconds(pid) - cpu0
     m["store_cpu"] = sum(v - store0.get(k, 0.0) for k, v in _store_cpu(dbname).items())
     return m
@@ -303,13 +335,15 @@ def main() -> None:
     ap.add_argument("--stores", default="postgresql,sqlite")
     ap.add_argument("--workers", type=int, default=1)
     ap.add_argument("--rounds", type=int, default=3, help="alternating rounds per endpoint")
+    ap.add_argument("--kind", choices=("predictions", "labels"), default="predictions")
     args = ap.parse_args()
     table: list[list[Any]] = []
     for kind in args.stores.split(","):
         for rows in (int(x) for x in args.rows.split(",")):
             table += run_store(kind, args, rows)
     print(
-        f"\n{args.writers} writers ({args.procs} client processes), {args.seconds:.0f} s each,"
+        f"\n{args.kind}: {args.writers} writers ({args.procs} client processes),"
+        f" {args.seconds:.0f} s each,"
         f" {args.workers} API process(es); code {code_version()}\n"
     )
     print(markdown_table(HEADERS, table))

@@ -23,7 +23,7 @@ SQLITE = DSN.startswith("sqlite")
 DDL = (
     "CREATE TABLE IF NOT EXISTS plain_predictions (model text NOT NULL, pid text NOT NULL,"
     " ts {ts} NOT NULL, hour integer NOT NULL, score double precision, tags {json},"
-    " received_at {ts} NOT NULL, PRIMARY KEY (model, pid))"
+    " received_at {ts} NOT NULL, actual text, label_ts {ts}, PRIMARY KEY (model, pid))"
 )
 app = FastAPI()
 _local = threading.local()
@@ -63,7 +63,10 @@ def _insert(model: str, items: list[dict[str, Any]]) -> int:
         )
     conn = _connection()
     if SQLITE:
-        sql = "INSERT OR IGNORE INTO plain_predictions VALUES (?, ?, ?, ?, ?, ?, ?)"
+        sql = (
+            "INSERT OR IGNORE INTO plain_predictions"
+            " (model, pid, ts, hour, score, tags, received_at) VALUES (?, ?, ?, ?, ?, ?, ?)"
+        )
         with _sqlite_lock:
             conn.executemany(
                 sql, [(*r[:2], r[2].isoformat(), *r[3:6], now.isoformat()) for r in rows]
@@ -71,8 +74,8 @@ def _insert(model: str, items: list[dict[str, Any]]) -> int:
             conn.commit()
         return len(rows)
     sql = (
-        "INSERT INTO plain_predictions VALUES (%s, %s, %s, %s, %s, %s::jsonb, %s)"
-        " ON CONFLICT DO NOTHING"
+        "INSERT INTO plain_predictions (model, pid, ts, hour, score, tags, received_at)"
+        " VALUES (%s, %s, %s, %s, %s, %s::jsonb, %s) ON CONFLICT DO NOTHING"
     )
     with conn.cursor() as cur:
         cur.executemany(sql, rows)
@@ -86,3 +89,29 @@ async def predictions(model: str, request: Request) -> dict[str, int]:
     body = orjson.loads(await request.body())
     n = await run_in_threadpool(_insert, model, body["predictions"])
     return {"accepted": n, "duplicates": 0}
+
+
+def _update(model: str, items: list[dict[str, Any]]) -> int:
+    rows = [
+        (item["actual"], datetime.fromisoformat(item["ts"]), model, item["id"]) for item in items
+    ]
+    conn = _connection()
+    if SQLITE:
+        sql = "UPDATE plain_predictions SET actual = ?, label_ts = ? WHERE model = ? AND pid = ?"
+        with _sqlite_lock:
+            conn.executemany(sql, [(a, t.isoformat(), m, p) for a, t, m, p in rows])
+            conn.commit()
+        return len(rows)
+    sql = "UPDATE plain_predictions SET actual = %s, label_ts = %s WHERE model = %s AND pid = %s"
+    with conn.cursor() as cur:
+        cur.executemany(sql, rows)
+    conn.commit()
+    return len(rows)
+
+
+@app.post("/v1/models/{model}/labels")
+async def labels(model: str, request: Request) -> dict[str, int]:
+    """Set the labels of the batch's rows."""
+    body = orjson.loads(await request.body())
+    n = await run_in_threadpool(_update, model, body["labels"])
+    return {"matched": n}

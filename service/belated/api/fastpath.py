@@ -1,7 +1,7 @@
-"""The short road for the commonest request of a live system: a small predictions batch.
+"""The short road for the commonest requests of a live system: small batches.
 
 Called by the body-limit middleware (api/limits.py) once it holds the body. A
-`POST /v1/models/{model}/predictions` whose token and model are in the caches of
+`POST /v1/models/{model}/predictions` (or `/labels`) whose token and model are in the caches of
 api/lookups.py, and whose body is a small batch that passes validation, is validated here
 and handed to the group writer (store/grouped.py); the answer goes out once it is
 committed, as the route would send it. FastAPI's routing and dependency solving cost a
@@ -23,11 +23,11 @@ import orjson
 
 from belated.api.lookups import Lookups
 from belated.clock import clock
-from belated.ingest.validate import validate_predictions
+from belated.ingest.validate import validate_labels, validate_predictions
 from belated.store import grouped
 from belated.store.keys import hash_token
 
-_PATH = re.compile(r"^/v1/models/([^/]+)/predictions$")
+_PATH = re.compile(r"^/v1/models/([^/]+)/(predictions|labels)$")
 _HEADERS = [(b"content-type", b"application/json")]
 
 
@@ -44,7 +44,7 @@ class SmallWrites:
         match = _PATH.match(scope["path"])
         if match is None:
             return False
-        answer = await self._answer(scope, match[1], body)
+        answer = await self._answer(scope, match[1], match[2], body)
         if answer is None:
             return False
         await send(
@@ -57,7 +57,9 @@ class SmallWrites:
         await send({"type": "http.response.body", "body": answer})
         return True
 
-    async def _answer(self, scope: dict[str, Any], model_name: str, body: bytes) -> bytes | None:
+    async def _answer(
+        self, scope: dict[str, Any], model_name: str, kind: str, body: bytes
+    ) -> bytes | None:
         token = _token(scope["headers"])
         if token is None:
             return None
@@ -72,22 +74,23 @@ class SmallWrites:
             doc = orjson.loads(body)
         except orjson.JSONDecodeError:
             return None
-        sent = doc.get("predictions") if isinstance(doc, dict) else None
+        sent = doc.get(kind) if isinstance(doc, dict) else None
         if not isinstance(sent, list) or len(sent) > grouped.SMALL_BATCH:
             return None
         now = clock.now()
+        validate = validate_predictions if kind == "predictions" else validate_labels
         try:
-            items = validate_predictions(
-                doc, model.spec, now=now, max_batch=self.state.settings.max_batch
+            items = validate(doc, model.spec, now=now, max_batch=self.state.settings.max_batch)
+            done = self.state.group_writer.submit(
+                grouped.Batch(model.id, items, len(sent), now, kind)
             )
-            done = self.state.group_writer.submit(grouped.Batch(model.id, items, len(sent), now))
         except Exception:  # a refusal: the app gives it its full answer
             return None
         try:
             answer: dict[str, int] = await asyncio.wrap_future(done)
         except Exception:  # nothing of the batch was stored; the app answers it afresh
             return None
-        self.state.counters.add("predictions", answer["accepted"])
+        self.state.counters.add(kind, answer["accepted"] if kind == "predictions" else len(items))
         return orjson.dumps(answer)
 
 

@@ -64,6 +64,20 @@ async def ingest_call(
 CallDep = Annotated[Call, Depends(ingest_call)]
 
 
+async def _grouped(request: Request, batch: grouped.Batch) -> dict[str, int]:
+    """Store a small batch with the others of the moment (store/grouped.py)."""
+    writer: grouped.GroupWriter = request.app.state.group_writer
+    try:
+        done = writer.submit(batch)
+    except grouped.Busy:
+        raise Problem(
+            503,
+            "the store is not keeping up with the writes; retry after the given seconds",
+            headers={"Retry-After": "1"},
+        ) from None
+    return await asyncio.wrap_future(done)
+
+
 def _json(answer: dict[str, int]) -> Response:
     return Response(orjson.dumps(answer), media_type="application/json")
 
@@ -75,16 +89,7 @@ async def post_predictions(call: CallDep, request: Request) -> Response:
     sent = body.get("predictions") if isinstance(body, dict) else None
     if isinstance(sent, list) and len(sent) <= grouped.SMALL_BATCH:
         items = validate_predictions(body, model.spec, now=now, max_batch=settings.max_batch)
-        writer: grouped.GroupWriter = request.app.state.group_writer
-        try:
-            done = writer.submit(grouped.Batch(model.id, items, len(sent), now))
-        except grouped.Busy:
-            raise Problem(
-                503,
-                "the store is not keeping up with the writes; retry after the given seconds",
-                headers={"Retry-After": "1"},
-            ) from None
-        answer = await asyncio.wrap_future(done)
+        answer = await _grouped(request, grouped.Batch(model.id, items, len(sent), now))
     else:
 
         def work(session: Session) -> dict[str, int]:
@@ -106,6 +111,12 @@ async def post_predictions(call: CallDep, request: Request) -> Response:
 async def post_labels(call: CallDep, request: Request) -> Response:
     """Store a batch of labels; unknown ids wait as pending until their prediction arrives."""
     body, model, settings, now = call.body, call.model, call.settings, call.now
+    sent = body.get("labels") if isinstance(body, dict) else None
+    if isinstance(sent, list) and len(sent) <= grouped.SMALL_BATCH:
+        items = validate_labels(body, model.spec, now=now, max_batch=settings.max_batch)
+        answer = await _grouped(request, grouped.Batch(model.id, items, len(sent), now, "labels"))
+        request.app.state.counters.add("labels", len(items))
+        return _json(answer)
 
     def work(session: Session) -> tuple[dict[str, int], int]:
         items = validate_labels(body, model.spec, now=now, max_batch=settings.max_batch)

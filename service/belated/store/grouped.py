@@ -1,20 +1,24 @@
-"""Group commit for small prediction batches: many requests, one transaction.
+"""Group commit for small batches of predictions and labels: many requests, one transaction.
 
 A live system sends one prediction a request from many threads. Each request alone would pay
 a transaction, a commit and its round trips for one row; here concurrent small batches queue
 up while the previous transaction commits, and a writer thread stores them together:
 
-    request ──validated──▶ queue ──▶ writer thread: one transaction for every batch waiting
-       ▲                                  │ PostgreSQL: one INSERT … FROM unnest(arrays) for all
-       │                                  │   rows, marking their hours; SQLite: each batch in
-       │                                  │   a savepoint of its own
-       │                                  ▼
-       └──── answer once committed ◀── commit (a 2xx still means stored)
+    request --validated--> queue --> writer thread, one transaction for all that wait:
+       ^                                predictions: one INSERT ... FROM unnest(arrays) for
+       |                                  every row, marking their hours (SQLite: a look-up
+       |                                  and one executemany);
+       |                                labels: each model's batches applied in arrival
+       |                                  order, as one; then the hours are held (dirty.py)
+       |                                         |
+       +---- answered once committed <-------- commit (a 2xx still means stored)
 
-Each request stays all or nothing. On PostgreSQL an id stored earlier with other content,
-or sent by two batches of one group with different content, sends the whole group back to
-be stored batch by batch (the ordinary path, which answers the conflicting batch 409 and
-stores the others); so does any error of the store, so that each batch gets its own answer.
+Each request stays all or nothing. An id stored earlier with other content, or sent by two
+batches of one group with different content, sends the whole group back to be stored batch
+by batch (the ordinary path, which answers the conflicting batch 409 and stores the others);
+so does any error of the store, so that each batch gets its own answer. Predictions are
+stored before labels within a group: a label that raced its prediction is matched at once
+rather than left pending, which is one of the orders the two requests could have had.
 """
 
 from __future__ import annotations
@@ -47,12 +51,13 @@ IDLE_SECONDS = 30.0
 
 @dataclass(slots=True)
 class Batch:
-    """One request's validated predictions, waiting to be stored."""
+    """One request's validated predictions (or labels), waiting to be stored."""
 
     model_id: int
-    items: list[PredictionIn]
+    items: list[Any]  # PredictionIn, or LabelIn when kind is "labels"
     batch_size: int
     received: datetime
+    kind: str = "predictions"
     done: Future[dict[str, int]] = field(default_factory=Future)
 
 
@@ -118,25 +123,31 @@ class GroupWriter:
             self._store(group)
 
     def _store(self, group: list[Batch]) -> None:
+        preds = [b for b in group if b.kind == "predictions"]
+        marks = [b for b in group if b.kind == "labels"]
         try:
             with transaction(self.sessions) as session:
-                if is_postgres(session):
-                    answers = _store_pg(session, group)
-                else:
-                    answers = _store_sqlite(session, group)
+                touched: dict[int, set[int]] = {}
+                store = _store_pg if is_postgres(session) else _store_sqlite
+                answers = store(session, preds, touched) + _store_labels(session, marks, touched)
+                # the hours are held last (store/dirty.py): after every row lock this
+                # transaction takes, in one ascending pass
+                for model_id in sorted(touched):
+                    dirty.lock_hours(session, model_id, sorted(touched[model_id]), "shared")
         except Exception:  # each batch alone, for an answer of its own
             log.debug("a group of %d batches is stored batch by batch", len(group), exc_info=True)
             for batch in group:
                 _settle(batch, partial(self._alone, batch))
             return
-        for batch, answer in zip(group, answers, strict=True):
-            if isinstance(answer, BaseException):
-                batch.done.set_exception(answer)
-            else:
-                batch.done.set_result(answer)
+        for batch, answer in zip(preds + marks, answers, strict=True):
+            batch.done.set_result(answer)
 
     def _alone(self, batch: Batch) -> dict[str, int]:
         with transaction(self.sessions) as session:
+            if batch.kind == "labels":
+                return labels.ingest(
+                    session=session, model_id=batch.model_id, items=batch.items, now=batch.received
+                )
             return predictions.ingest(
                 session=session,
                 model_id=batch.model_id,
@@ -157,7 +168,27 @@ class _Regroup(Exception):
     """The group cannot be stored as one: store its batches one by one."""
 
 
-def _store_sqlite(session: Session, group: list[Batch]) -> list[Any]:
+def _store_labels(
+    session: Session, group: list[Batch], touched: dict[int, set[int]]
+) -> list[dict[str, int]]:
+    """Each model's label batches applied in arrival order, as one; answers per batch."""
+    answers: dict[int, dict[str, int]] = {}
+    for model_id in sorted({b.model_id for b in group}):
+        mine = [b for b in group if b.model_id == model_id]
+        got, hours = labels.ingest_batches(
+            session=session,
+            model_id=model_id,
+            batches=[(b.items, b.received) for b in mine],
+            lock=None,
+        )
+        touched.setdefault(model_id, set()).update(hours)
+        answers.update({id(b): a for b, a in zip(mine, got, strict=True)})
+    return [answers[id(b)] for b in group]
+
+
+def _store_sqlite(
+    session: Session, group: list[Batch], touched: dict[int, set[int]]
+) -> list[dict[str, int]]:
     """The whole group in a few statements (SQLite has one writer, BEGIN IMMEDIATE, so the
     look-up of stored ids is authoritative); answers per batch, or _Regroup."""
     first, owner = _first_of_each(group)
@@ -177,15 +208,16 @@ def _store_sqlite(session: Session, group: list[Batch]) -> list[Any]:
             insert(Prediction),
             [predictions.row_of(k[0], first[k], group[owner[k]].received) for k in new],
         )
-    touched: dict[int, set[int]] = {}
+    mine: dict[int, set[int]] = {}
     for m, pid in new:
-        touched.setdefault(m, set()).add(predictions.epoch_hour(first[(m, pid)].ts))
-    for m in sorted(touched):
+        mine.setdefault(m, set()).add(predictions.epoch_hour(first[(m, pid)].ts))
+    for m in sorted(mine):
         ids = [pid for mm, pid in new if mm == m]
-        hours = touched[m]
+        hours = mine[m]
         if labels.any_pending(session=session, model_id=m, ids=ids):
             hours |= labels.join_pending(session=session, model_id=m, ids=ids)
-        dirty.mark(session=session, model_id=m, hours=hours)
+        dirty.mark(session=session, model_id=m, hours=hours, lock=None)
+        touched.setdefault(m, set()).update(hours)
     return _answers(group, owner, set(new))
 
 
@@ -208,7 +240,7 @@ def _first_of_each(
 
 def _answers(
     group: list[Batch], owner: dict[tuple[int, str], int], inserted: set[tuple[int, str]]
-) -> list[Any]:
+) -> list[dict[str, int]]:
     accepted = [0] * len(group)
     for key in inserted:
         accepted[owner[key]] += 1
@@ -244,8 +276,12 @@ FROM predictions p JOIN unnest(%(m)b::int4[], %(pid)b::text[]) AS k(m, pid)
 """
 
 
-def _store_pg(session: Session, group: list[Batch]) -> list[Any]:
+def _store_pg(
+    session: Session, group: list[Batch], touched: dict[int, set[int]]
+) -> list[dict[str, int]]:
     """The whole group in one statement; answers per batch, or _Regroup."""
+    if not group:
+        return []
     first, owner = _first_of_each(group)
     keys = list(first)
     rows = [first[k] for k in keys]
@@ -279,7 +315,6 @@ def _store_pg(session: Session, group: list[Batch]) -> list[Any]:
                 if not first[(int(m), pid)].same_as(old):
                     raise _Regroup
     waiting: dict[int, list[str]] = {}
-    touched: dict[int, set[int]] = {}
     for m, pid, hour, pending in stored:
         touched.setdefault(int(m), set()).add(int(hour))
         if pending:
@@ -288,7 +323,4 @@ def _store_pg(session: Session, group: list[Batch]) -> list[Any]:
         hours = labels.join_pending(session=session, model_id=model_id, ids=waiting[model_id])
         dirty.mark(session=session, model_id=model_id, hours=hours, recompute=False, lock=None)
         touched[model_id] |= hours
-    # the hours held until the commit (store/dirty.py): all of them in one ascending pass
-    for model_id in sorted(touched):
-        dirty.lock_hours(session, model_id, sorted(touched[model_id]), "shared")
     return _answers(group, owner, inserted)

@@ -19,6 +19,8 @@ from belated.timeutil import to_utc
 _STAGE = "stage_labels"
 _STAGE_DDL = "row_id bigint, actual text, label_ts timestamptz, delay_h float8"
 DELETE_CHUNK = 5000  # pending rows per DELETE
+HISTORY_TYPES = ("int4", "text", "text", "timestamptz", "text", "timestamptz")
+CHANGE_TYPES = ("int4", "int4", "int8", "text", "float8", "text", "float8")
 
 
 class Change(NamedTuple):
@@ -85,23 +87,43 @@ def ingest(
 ) -> dict[str, int]:
     """Apply labels received `now` (the clock by default) in arrival order; the four counts
     add up to the batch size."""
-    ids = list(dict.fromkeys(label.pid for label in items))
+    answers, _ = ingest_batches(
+        session=session, model_id=model_id, batches=[(items, now or clock.now())]
+    )
+    return answers[0]
+
+
+def ingest_batches(
+    *,
+    session: Session,
+    model_id: int,
+    batches: list[tuple[list[LabelIn], datetime]],
+    lock: str | None = "shared",
+) -> tuple[list[dict[str, int]], set[int]]:
+    """Apply several batches of one model (each with the time it was received) one after
+    another, as if each were a request of its own; their answers and the hours touched.
+    `lock=None` leaves the holds on those hours to the caller (store/dirty.py), who takes
+    them last."""
+    ids = list(dict.fromkeys(label.pid for items, _ in batches for label in items))
     targets = _targets(session, model_id, ids)
     pending_now = _pending(session, model_id, [i for i in ids if i not in targets])
-    received = now or clock.now()
-    answer = {"matched": 0, "pending": 0, "corrected": 0, "unchanged": 0}
+    answers = [{"matched": 0, "pending": 0, "corrected": 0, "unchanged": 0} for _ in batches]
     updates: dict[int, dict[str, Any]] = {}
     history: list[dict[str, Any]] = []
     changes: list[Change] = []
-    new_pending: dict[str, LabelIn] = {}
+    new_pending: dict[str, tuple[LabelIn, datetime]] = {}
     hours: set[int] = set()
-    for label in items:
+    for label, received, answer in (
+        (label, received, answer)
+        for (items, received), answer in zip(batches, answers, strict=True)
+        for label in items
+    ):
         target = targets.get(label.pid)
         if target is None:
             answer["pending"] += 1
             if pending_now.get(label.pid) != label.actual:
                 pending_now[label.pid] = label.actual
-                new_pending[label.pid] = label
+                new_pending[label.pid] = (label, received)
                 history.append(_history(model_id, label, "pending", received))
             continue
         if target.actual == label.actual:
@@ -142,14 +164,16 @@ def ingest(
     if history:
         if is_postgres(session):  # one INSERT per row would cost more than the rest together
             cols = ("model_id", "pid", "actual", "ts", "change", "received_at")
-            bulk.copy_rows(session, "labels", cols, ([h[c] for c in cols] for h in history))
+            bulk.insert_rows(
+                session, "labels", cols, HISTORY_TYPES, [[h[c] for c in cols] for h in history]
+            )
         else:
             session.execute(insert(Label), history)
     if new_pending:
-        _upsert_pending(session, model_id, list(new_pending.values()), received)
+        _upsert_pending(session, model_id, list(new_pending.values()))
     record_changes(session, changes)
-    dirty.mark(session=session, model_id=model_id, hours=hours, recompute=False)
-    return answer
+    dirty.mark(session=session, model_id=model_id, hours=hours, recompute=False, lock=lock)
+    return answers, hours
 
 
 def record_changes(session: Session, changes: list[Change]) -> None:
@@ -158,7 +182,7 @@ def record_changes(session: Session, changes: list[Change]) -> None:
     if not changes:
         return
     if is_postgres(session):
-        bulk.copy_rows(session, "label_changes", Change._fields, changes)
+        bulk.insert_rows(session, "label_changes", Change._fields, CHANGE_TYPES, changes)
     else:
         session.execute(insert(LabelChange), [c._asdict() for c in changes])
 
@@ -188,7 +212,19 @@ def _update_sqlite(session: Session, rows: list[dict[str, Any]]) -> None:
     session.connection().execute(stmt, [{f"b_{k}": v for k, v in r.items()} for r in rows])
 
 
+SMALL = 1000  # up to this many rows, arrays in one statement beat a staging table and COPY
+
+
 def _update_pg(session: Session, rows: list[dict[str, Any]]) -> None:
+    if len(rows) <= SMALL:
+        bulk.execute_binary(
+            session,
+            "UPDATE predictions p SET actual = u.actual, label_ts = u.label_ts,"
+            " delay_h = u.delay_h FROM unnest(%b::int8[], %b::text[], %b::timestamptz[],"
+            " %b::float8[]) AS u(row_id, actual, label_ts, delay_h) WHERE p.row_id = u.row_id",
+            [[r[c] for r in rows] for c in ("row_id", "actual", "label_ts", "delay_h")],
+        )
+        return
     bulk.temp_table(session, _STAGE, _STAGE_DDL)
     bulk.copy_rows(
         session,
@@ -204,9 +240,7 @@ def _update_pg(session: Session, rows: list[dict[str, Any]]) -> None:
     )
 
 
-def _upsert_pending(
-    session: Session, model_id: int, items: list[LabelIn], received: datetime
-) -> None:
+def _upsert_pending(session: Session, model_id: int, items: list[tuple[LabelIn, datetime]]) -> None:
     stmt = upsert(session, PendingLabel)
     stmt = stmt.on_conflict_do_update(
         index_elements=["model_id", "pid"],
@@ -226,7 +260,7 @@ def _upsert_pending(
                 "ts": i.ts,
                 "received_at": received,
             }
-            for i in items
+            for i, received in items
         ],
     )
 
