@@ -10,23 +10,23 @@ from typing import Any
 from sqlalchemy import func, select
 from sqlalchemy.orm import Session
 
-from belated.alerts import catalog, lifecycle, snapshot
+from belated.alerts import catalog, early, lifecycle, snapshot
 from belated.alerts.decide import (
     Baseline,
     Decision,
     Frozen,
-    WindowInput,
     decide,
     finite,
     pooled_baseline,
     verdicts,
 )
+from belated.alerts.inputs import Projection, WindowInput
 from belated.alerts.schemas import RuleSettings, stored_settings
 from belated.alerts.tables import Rule, RuleWindow
-from belated.metrics.arrival import Curves
+from belated.metrics.arrival import Curves, projected
 from belated.metrics.load import ensure_fresh, epoch_hour, segment_counts
 from belated.metrics.params import Range
-from belated.metrics.windows import curves_of, settled_window, to_stats, window_totals
+from belated.metrics.windows import Cohort, curves_of, settled_window, to_stats, window_rows
 from belated.store import segments
 from belated.store.tables import Label, ModelRow
 from belated.store.totals import Totals
@@ -69,16 +69,37 @@ def _baseline_range(rule: RuleSettings) -> Range | None:
     return Range(g, floor_window(b.start, g), floor_window(b.end, g))
 
 
-def _window_totals(
+def _window_rows(
     session: Session,
     model: ModelRow,
     rng: Range,
     lookback: int,
     segment: Segment,
     now: datetime,
-) -> tuple[list[datetime], list[Totals]]:
-    """The totals of each base window of the range, `lookback` windows before it first."""
-    return window_totals(session, model, rng, lookback, (segment,) if segment else (), now)
+) -> tuple[list[datetime], list[list[Cohort]]]:
+    """The rollup rows of each base window of the range, `lookback` windows before it first."""
+    return window_rows(session, model, rng, lookback, (segment,) if segment else (), now)
+
+
+def _summed(cohorts: list[Cohort]) -> Totals:
+    out = Totals()
+    for _, _, totals in cohorts:
+        out.add(totals)
+    return out
+
+
+def _projection(
+    rule: RuleSettings,
+    cohorts: list[Cohort],
+    model: ModelRow,
+    now: datetime,
+    curves: Curves | None,
+) -> Projection | None:
+    """The rule's measure projected on an unsettled window (None without curves)."""
+    if curves is None or not cohorts:
+        return None
+    answer = projected(cohorts, curves, model, now, beta=1.0, confidence=early.PROJECTED_CONFIDENCE)
+    return early.projection_of(rule.measure or "", answer)
 
 
 def _inputs(
@@ -90,11 +111,15 @@ def _inputs(
     segment: Segment,
     now: datetime,
     curves: Curves | None,
+    looked: frozenset[datetime] | None = None,
 ) -> list[WindowInput]:
-    """The windows of a range (and `lookback` before it) as a rule sees them."""
+    """The windows of a range (and `lookback` before it) as a rule sees them. With
+    `rule.early` and `looked` given (the early looks on record), closed unsettled windows
+    not looked at yet carry their projection, and those looked at are marked so."""
     g = rule.granularity
     step = window_step(g)
-    starts, accs = _window_totals(session, model, rng, lookback, segment, now)
+    starts, rows = _window_rows(session, model, rng, lookback, segment, now)
+    accs = [_summed(r) for r in rows]
     tag_counts: dict[int, dict[str, int]] = {}
     measure = rule.measure or ""
     if measure.startswith("tag_psi:") and starts:
@@ -114,17 +139,25 @@ def _inputs(
             bucket = tag_counts.setdefault(i, {})
             for k, n in counts.items():
                 bucket[k] = bucket.get(k, 0) + n
-    return [
-        WindowInput(
+    looks = rule.early and looked is not None
+    seen = looked or frozenset()
+    out = []
+    for i, (s, a) in enumerate(zip(starts, accs, strict=True)):
+        closed = s + step <= now
+        settled = settled_window(a, s + step, model, now, curves)
+        w = WindowInput(
             start=s,
             end=s + step,
-            closed=s + step <= now,
-            settled=settled_window(a, s + step, model, now, curves),
+            closed=closed,
+            settled=settled,
             stats=to_stats(a),
             tag_counts=tag_counts.get(i, {}),
+            early_look=looks and s in seen,
         )
-        for i, (s, a) in enumerate(zip(starts, accs, strict=True))
-    ]
+        if looks and closed and not settled and s not in seen:
+            w.projection = _projection(rule, rows[i], model, now, curves)
+        out.append(w)
+    return out
 
 
 def _series(
@@ -136,9 +169,10 @@ def _series(
     evaluated: int,
     lookback: int,
     curves: Curves | None,
+    looked: frozenset[datetime] = frozenset(),
 ) -> list[WindowInput]:
     rng = _series_range(rule, now, evaluated)
-    return _inputs(session, model, rule, rng, lookback, segment, now, curves)
+    return _inputs(session, model, rule, rng, lookback, segment, now, curves, looked)
 
 
 def _fixed_baseline(
@@ -190,6 +224,18 @@ def _excluded(rows: list[RuleWindow], segment: str) -> set[datetime]:
     return out
 
 
+def _looked(rows: list[RuleWindow], segment: str) -> frozenset[datetime]:
+    """Windows whose early look is on record (one look per window, `alerts/early.py`): an
+    early row that made a decision (a row that only says why none was made does not count)."""
+    out: set[datetime] = set()
+    for r in rows:
+        if r.segment == segment and r.early and not (r.baseline or {}).get("reason"):
+            start = from_db(r.window_start)
+            assert start is not None
+            out.add(start)
+    return frozenset(out)
+
+
 def evaluate_rule(
     session: Session, rule: Rule, model: ModelRow, now: datetime, max_values: int
 ) -> dict[str, int]:
@@ -217,7 +263,8 @@ def evaluate_rule(
     decisions: dict[str, list[Decision]] = {}
     for seg in segs:
         key = f"{seg[0]}:{seg[1]}" if seg else ""
-        windows = _series(session, model, cfg, seg, now, evaluated, lookback, curves)
+        looked = _looked(stored, key)
+        windows = _series(session, model, cfg, seg, now, evaluated, lookback, curves, looked)
         fixed = _fixed_baseline(session, model, cfg, now, seg, curves)
         decisions[key] = decide(
             cfg,
@@ -282,6 +329,7 @@ def _record(
                 "baseline": baseline,
                 "p_value": finite(d.p_value),
                 "recovered": d.recovered,
+                "early": d.early,
                 "window_end": d.end,
                 "evaluated_at": now,
             }
@@ -299,7 +347,7 @@ def _record(
     return changed
 
 
-_COMPARED = ("breached", "value", "low", "high", "baseline", "p_value", "recovered")
+_COMPARED = ("breached", "value", "low", "high", "baseline", "p_value", "recovered", "early")
 
 
 def _clean(value: Any) -> Any:
