@@ -133,6 +133,11 @@ def _window_se(rule: RuleSettings, p: Projection, beta: float, rng: np.random.Ge
     return math.sqrt(_spread(p) ** 2 + (final or 0.0))
 
 
+def _lower_tail(z: float) -> float:
+    """Phi(z), exact in the far tail too (where 1 + erf(z / sqrt 2) loses every digit)."""
+    return 0.5 * math.erfc(-z / math.sqrt(2.0))
+
+
 def _rng(w: WindowInput) -> np.random.Generator:
     return np.random.default_rng([int(w.start.timestamp()) & 0x7FFFFFFF, 0xEA])
 
@@ -200,7 +205,7 @@ def _drop(
     base_var = sampling_variance(measure, base_counts, beta, rng) or 0.0
     se = math.sqrt(window_se**2 + base_var)
     # no spread at all (every count at a bound): no test, and a missing p-value never fires
-    p_value = _NORMAL.cdf((p.value - base_value + tol) / se) if se > 0 else None
+    p_value = _lower_tail((p.value - base_value + tol) / se) if se > 0 else None
     half = _NORMAL.inv_cdf(1.0 - rule.alpha) * window_se
     info = baseline_info(basis, frozen, value=base_value, drop=base_value - p.value)
     info.update(tolerance=tol, test=METHOD, standard_error=se, **_marks(p))
