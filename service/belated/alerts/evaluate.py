@@ -5,18 +5,16 @@ from __future__ import annotations
 import logging
 import math
 from datetime import datetime, timedelta
-from typing import Any
 
-from sqlalchemy import func, select
+from sqlalchemy import select
 from sqlalchemy.orm import Session
 
-from belated.alerts import catalog, early, lifecycle, snapshot
+from belated.alerts import catalog, early, lifecycle, recording, snapshot
 from belated.alerts.decide import (
     Baseline,
     Decision,
     Frozen,
     decide,
-    finite,
     pooled_baseline,
     verdicts,
 )
@@ -28,9 +26,9 @@ from belated.metrics.load import ensure_fresh, epoch_hour, segment_counts
 from belated.metrics.params import Range
 from belated.metrics.windows import Cohort, curves_of, settled_window, to_stats, window_rows
 from belated.store import segments
-from belated.store.tables import Label, ModelRow
+from belated.store.tables import ModelRow
 from belated.store.totals import Totals
-from belated.timeutil import floor_hour, floor_window, from_db, iso, window_step
+from belated.timeutil import floor_window, from_db, iso, window_step
 
 log = logging.getLogger(__name__)
 MAX_EVALUATED = 120
@@ -277,82 +275,13 @@ def evaluate_rule(
             label_delay_days=model.label_delay_days,
         )
     if cfg.kind == "stall" and cfg.max_silence_hours:
-        decisions.setdefault("", []).append(_silence(session, model, cfg.max_silence_hours, now))
-    changed = _record(session, rule, stored, decisions, verdicts(decisions, cfg.alpha), now)
+        silent = recording.silence(session, model, cfg.max_silence_hours, now)
+        decisions.setdefault("", []).append(silent)
+    changed = recording.record(
+        session, rule, stored, decisions, verdicts(decisions, cfg.alpha), now
+    )
     events = 0
     for segment, ds in decisions.items():
         if lifecycle.advance(session, rule, model, segment, now, cfg.clear_after, ds):
             events += 1
     return {"windows": changed, "events": events}
-
-
-def _silence(session: Session, model: ModelRow, max_hours: float, now: datetime) -> Decision:
-    """No label received for max_silence_hours: one verdict per hour."""
-    last = from_db(
-        session.scalar(select(func.max(Label.received_at)).where(Label.model_id == model.id))
-    )
-    hour = floor_hour(now)
-    silent = last is None or (now - last) > timedelta(hours=max_hours)
-    return Decision(
-        start=hour,
-        end=hour + timedelta(hours=1),
-        condition=silent,
-        value=None if last is None else (now - last) / timedelta(hours=1),
-        baseline={"max_silence_hours": max_hours},
-        recovered=not silent,
-    )
-
-
-def _record(
-    session: Session,
-    rule: Rule,
-    stored: list[RuleWindow],
-    decisions: dict[str, list[Decision]],
-    verdicts: dict[tuple[str, datetime], bool],
-    now: datetime,
-) -> int:
-    """Upsert one row per (rule, segment, window); a window changed by late labels is
-    updated in place, never counted twice."""
-    existing = {(r.segment, from_db(r.window_start)): r for r in stored}
-    changed = 0
-    for seg, ds in decisions.items():
-        for d in ds:
-            breached = verdicts[(seg, d.start)]
-            baseline = _clean(d.baseline)
-            if d.reason is not None:
-                baseline = {**(baseline or {}), "reason": d.reason}
-            values = {
-                "breached": breached,
-                "value": finite(d.value),
-                "low": finite(d.low),
-                "high": finite(d.high),
-                "baseline": baseline,
-                "p_value": finite(d.p_value),
-                "recovered": d.recovered,
-                "early": d.early,
-                "window_end": d.end,
-                "evaluated_at": now,
-            }
-            row = existing.get((seg, d.start))
-            if row is None:
-                session.add(
-                    RuleWindow(rule_id=rule.id, segment=seg, window_start=d.start, **values)
-                )
-                changed += 1
-            elif any(getattr(row, k) != values[k] for k in _COMPARED):
-                for k, v in values.items():
-                    setattr(row, k, v)
-                changed += 1
-    session.flush()
-    return changed
-
-
-_COMPARED = ("breached", "value", "low", "high", "baseline", "p_value", "recovered", "early")
-
-
-def _clean(value: Any) -> Any:
-    if isinstance(value, float):
-        return finite(value)
-    if isinstance(value, dict):
-        return {k: _clean(v) for k, v in value.items()}
-    return value
