@@ -5,6 +5,7 @@ from __future__ import annotations
 from typing import Any
 
 from belated.stats.droptest import DROP_MEASURES
+from belated.stats.projection import PROJECTED
 
 # label-based measures whose support is a count of the confusion matrix
 DENOMINATORS: dict[str, tuple[str, ...]] = {
@@ -69,3 +70,28 @@ def check(kind: str, measure: str | None, mode: str | None = None) -> str | None
     if kind in ("stall", "traffic"):
         return None
     return f"unknown rule kind {kind!r}"
+
+
+# label-based measures an unsettled window has a projected value of (stats/projection.py)
+PROJECTED_MEASURES: tuple[str, ...] = tuple(PROJECTED)
+
+
+def check_early(kind: str, measure: str | None) -> str | None:
+    """None when a rule of this kind and measure can look early (on projected measures of
+    unsettled windows), else the reason `early: true` could never mean anything for it."""
+    if kind not in ("floor", "drop"):
+        return (
+            f"a {kind} rule decides on what a window holds when it closes, with no labels "
+            "to wait for; early applies to floor and drop rules on label-based measures"
+        )
+    if measure is None or not is_label_based(measure):
+        return (
+            f"{measure!r} needs no labels, so it is final once a window closes; early "
+            "applies to label-based measures"
+        )
+    if measure not in PROJECTED_MEASURES:
+        return (
+            f"{measure!r} has no projected value on unsettled windows, so an early look "
+            f"could never decide; early works on {', '.join(PROJECTED_MEASURES)}"
+        )
+    return None

@@ -10,87 +10,21 @@ segments of a fan-out rule (Benjamini-Hochberg) first.
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass, field, replace
+from dataclasses import replace
 from datetime import datetime
-from typing import Any
 
-from belated.alerts import catalog
+from belated.alerts import catalog, early
+from belated.alerts.inputs import Baseline as Baseline
+from belated.alerts.inputs import Decision as Decision
+from belated.alerts.inputs import Frozen as Frozen
+from belated.alerts.inputs import WindowInput as WindowInput
+from belated.alerts.inputs import baseline_info
 from belated.alerts.schemas import Kind, RuleSettings
 from belated.stats.change import benjamini_hochberg, two_proportion_test
 from belated.stats.drift import categorical_psi, psi_test
-from belated.stats.droptest import drop_test, significant
+from belated.stats.droptest import drop_test
 from belated.stats.summary import summarise
 from belated.stats.window import WindowStats
-from belated.timeutil import iso
-
-
-@dataclass(kw_only=True)
-class WindowInput:
-    """One window of one segment as a rule sees it."""
-
-    start: datetime
-    end: datetime
-    closed: bool
-    settled: bool
-    stats: WindowStats
-    tag_counts: dict[str, int] = field(default_factory=dict)
-
-
-@dataclass(frozen=True, kw_only=True)
-class Baseline:
-    """What a window is compared with: the pooled stats of the baseline's windows, their
-    period [start, end) and the starts of the windows pooled. `reason` says why it cannot
-    be used yet (a fixed range whose windows are not all settled); then no decision is made."""
-
-    stats: WindowStats
-    start: datetime
-    end: datetime
-    parts: tuple[datetime, ...] = ()
-    tag_counts: dict[str, int] = field(default_factory=dict)
-    fixed: bool = False
-    reason: str | None = None
-
-
-@dataclass(frozen=True, kw_only=True)
-class Frozen:
-    """A baseline held still: windows starting at or after `since` compare with it."""
-
-    baseline: Baseline
-    since: datetime
-
-
-@dataclass(frozen=True, kw_only=True)
-class Decision:
-    """The verdict on one window.
-
-    `recovered` says whether the measure is back within tolerance of the baseline (on the
-    point value, whatever the test says): what clears an alert. None when no decision was
-    made, with `reason` saying why. `basis` is the baseline compared with, kept so that the
-    alert this window raises can freeze it.
-    """
-
-    start: datetime
-    end: datetime
-    condition: bool
-    p_value: float | None = None
-    value: float | None = None
-    low: float | None = None
-    high: float | None = None
-    baseline: dict[str, Any] | None = None
-    recovered: bool | None = None
-    reason: str | None = None
-    basis: Baseline | None = field(default=None, compare=False, repr=False)
-    # the verdict needs a significant p-value (drop, shift): a missing one never counts
-    tested: bool = False
-
-    def breached(self, alpha: float, adjusted_p: float | None = None) -> bool:
-        """Final verdict; `adjusted_p` replaces the raw p-value after BH. A condition-only
-        decision (floor, traffic, stall, tag PSI) needs no p-value; a tested one breaches
-        only with a p-value under `alpha`."""
-        p = adjusted_p if adjusted_p is not None else self.p_value
-        if self.tested:
-            return self.condition and significant(p, alpha)
-        return self.condition and (p is None or p < alpha)
 
 
 def _confusion(s: WindowStats) -> dict[str, int]:
@@ -169,25 +103,13 @@ def baseline_for(
     return pooled_baseline(picked)
 
 
-def _info(base: Baseline, frozen: bool, **extra: Any) -> dict[str, Any]:
-    """The baseline as a decision records it: its period, how many windows, frozen or not."""
-    return {
-        **extra,
-        "start": iso(base.start),
-        "end": iso(base.end),
-        "windows": len(base.parts),
-        "fixed": base.fixed,
-        "frozen": frozen,
-    }
-
-
 def _drop(
     rule: RuleSettings, w: WindowInput, basis: Baseline, beta: float, frozen: bool
 ) -> Decision:
     measure, tol, base = str(rule.measure), rule.tolerance, basis.stats
     value, low, high = measure_value(measure, w.stats, beta, 1 - 2 * rule.alpha)
     base_value, _, _ = measure_value(measure, base, beta, 0.95)
-    info = _info(basis, frozen, value=base_value)
+    info = baseline_info(basis, frozen, value=base_value)
     if value is None or base_value is None:
         return Decision(
             start=w.start,
@@ -235,7 +157,7 @@ def _shift(rule: RuleSettings, w: WindowInput, basis: Baseline, frozen: bool) ->
             condition=moved,
             p_value=test.p_two_sided,
             value=cur_rate,
-            baseline=_info(basis, frozen, value=base_rate, change=cur_rate - base_rate),
+            baseline=baseline_info(basis, frozen, value=base_rate, change=cur_rate - base_rate),
             recovered=not moved,
             tested=True,
         )
@@ -251,12 +173,12 @@ def _shift(rule: RuleSettings, w: WindowInput, basis: Baseline, frozen: bool) ->
             condition=over,
             p_value=found.p_value,
             value=found.value.value,
-            baseline=_info(basis, frozen, predictions=base.n_pred),
+            baseline=baseline_info(basis, frozen, predictions=base.n_pred),
             recovered=None if found.value.value is None else not over,
             tested=True,
         )
     v = categorical_psi(basis.tag_counts, w.tag_counts)
-    info = _info(basis, frozen, counts=dict(basis.tag_counts))
+    info = baseline_info(basis, frozen, counts=dict(basis.tag_counts))
     over = v.value is not None and v.value >= threshold
     return Decision(
         start=w.start,
@@ -337,16 +259,28 @@ def decide(
     From the first breach on, later windows compare with the baseline that breach was
     decided against, held still (`frozen`, or the active alert's frozen baseline given as
     `frozen`), until `clear_after` windows in a row are back within tolerance of it.
+
+    With `rule.early`, closed unsettled windows whose projection is ready get an early
+    decision (`belated.alerts.early`), against the same baseline a settled one would use.
     """
     out: list[Decision] = []
     skip = set(excluded)
     held, run = frozen, 0
     for i in range(first, len(series)):
         w = series[i]
+        under = held is not None and w.start >= held.since
         if not eligible(rule.kind, rule.measure, w, rule.min_support):
+            # an early look (rule.early) never moves the held baseline or the recovery run:
+            # only settled decisions do
+            if early.ready(rule, w):
+                basis = held.baseline if held is not None and under else None
+                if basis is None and rule.kind == "drop":
+                    basis = baseline_for(series, i, rule, fixed_baseline, skip)
+                out.append(early.look(rule, w, basis, beta, under))
+            elif (settled := early.unconfirmed(rule, w)) is not None:
+                out.append(settled)
             continue
         d: Decision | None
-        under = held is not None and w.start >= held.since
         if rule.kind == "floor":
             d = _floor(rule, w, beta)
         elif rule.kind == "traffic":

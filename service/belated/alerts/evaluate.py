@@ -5,32 +5,30 @@ from __future__ import annotations
 import logging
 import math
 from datetime import datetime, timedelta
-from typing import Any
 
-from sqlalchemy import func, select
+from sqlalchemy import select
 from sqlalchemy.orm import Session
 
-from belated.alerts import catalog, lifecycle, snapshot
+from belated.alerts import catalog, early, lifecycle, recording, snapshot
 from belated.alerts.decide import (
     Baseline,
     Decision,
     Frozen,
-    WindowInput,
     decide,
-    finite,
     pooled_baseline,
     verdicts,
 )
+from belated.alerts.inputs import Projection, WindowInput
 from belated.alerts.schemas import RuleSettings, stored_settings
 from belated.alerts.tables import Rule, RuleWindow
-from belated.metrics.arrival import Curves
+from belated.metrics.arrival import Curves, projected
 from belated.metrics.load import ensure_fresh, epoch_hour, segment_counts
 from belated.metrics.params import Range
-from belated.metrics.windows import curves_of, settled_window, to_stats, window_totals
+from belated.metrics.windows import Cohort, curves_of, settled_window, to_stats, window_rows
 from belated.store import segments
-from belated.store.tables import Label, ModelRow
+from belated.store.tables import ModelRow
 from belated.store.totals import Totals
-from belated.timeutil import floor_hour, floor_window, from_db, iso, window_step
+from belated.timeutil import floor_window, from_db, iso, window_step
 
 log = logging.getLogger(__name__)
 MAX_EVALUATED = 120
@@ -69,16 +67,37 @@ def _baseline_range(rule: RuleSettings) -> Range | None:
     return Range(g, floor_window(b.start, g), floor_window(b.end, g))
 
 
-def _window_totals(
+def _window_rows(
     session: Session,
     model: ModelRow,
     rng: Range,
     lookback: int,
     segment: Segment,
     now: datetime,
-) -> tuple[list[datetime], list[Totals]]:
-    """The totals of each base window of the range, `lookback` windows before it first."""
-    return window_totals(session, model, rng, lookback, (segment,) if segment else (), now)
+) -> tuple[list[datetime], list[list[Cohort]]]:
+    """The rollup rows of each base window of the range, `lookback` windows before it first."""
+    return window_rows(session, model, rng, lookback, (segment,) if segment else (), now)
+
+
+def _summed(cohorts: list[Cohort]) -> Totals:
+    out = Totals()
+    for _, _, totals in cohorts:
+        out.add(totals)
+    return out
+
+
+def _projection(
+    rule: RuleSettings,
+    cohorts: list[Cohort],
+    model: ModelRow,
+    now: datetime,
+    curves: Curves | None,
+) -> Projection | None:
+    """The rule's measure projected on an unsettled window (None without curves)."""
+    if curves is None or not cohorts:
+        return None
+    answer = projected(cohorts, curves, model, now, beta=1.0, confidence=early.PROJECTED_CONFIDENCE)
+    return early.projection_of(rule.measure or "", answer)
 
 
 def _inputs(
@@ -90,11 +109,15 @@ def _inputs(
     segment: Segment,
     now: datetime,
     curves: Curves | None,
+    looked: frozenset[datetime] | None = None,
 ) -> list[WindowInput]:
-    """The windows of a range (and `lookback` before it) as a rule sees them."""
+    """The windows of a range (and `lookback` before it) as a rule sees them. With
+    `rule.early` and `looked` given (the early looks on record), closed unsettled windows
+    not looked at yet carry their projection, and those looked at are marked so."""
     g = rule.granularity
     step = window_step(g)
-    starts, accs = _window_totals(session, model, rng, lookback, segment, now)
+    starts, rows = _window_rows(session, model, rng, lookback, segment, now)
+    accs = [_summed(r) for r in rows]
     tag_counts: dict[int, dict[str, int]] = {}
     measure = rule.measure or ""
     if measure.startswith("tag_psi:") and starts:
@@ -114,17 +137,25 @@ def _inputs(
             bucket = tag_counts.setdefault(i, {})
             for k, n in counts.items():
                 bucket[k] = bucket.get(k, 0) + n
-    return [
-        WindowInput(
+    looks = rule.early and looked is not None
+    seen = looked or frozenset()
+    out = []
+    for i, (s, a) in enumerate(zip(starts, accs, strict=True)):
+        closed = s + step <= now
+        settled = settled_window(a, s + step, model, now, curves)
+        w = WindowInput(
             start=s,
             end=s + step,
-            closed=s + step <= now,
-            settled=settled_window(a, s + step, model, now, curves),
+            closed=closed,
+            settled=settled,
             stats=to_stats(a),
             tag_counts=tag_counts.get(i, {}),
+            early_look=looks and s in seen,
         )
-        for i, (s, a) in enumerate(zip(starts, accs, strict=True))
-    ]
+        if looks and closed and not settled and s not in seen:
+            w.projection = _projection(rule, rows[i], model, now, curves)
+        out.append(w)
+    return out
 
 
 def _series(
@@ -136,9 +167,10 @@ def _series(
     evaluated: int,
     lookback: int,
     curves: Curves | None,
+    looked: frozenset[datetime] = frozenset(),
 ) -> list[WindowInput]:
     rng = _series_range(rule, now, evaluated)
-    return _inputs(session, model, rule, rng, lookback, segment, now, curves)
+    return _inputs(session, model, rule, rng, lookback, segment, now, curves, looked)
 
 
 def _fixed_baseline(
@@ -190,6 +222,18 @@ def _excluded(rows: list[RuleWindow], segment: str) -> set[datetime]:
     return out
 
 
+def _looked(rows: list[RuleWindow], segment: str) -> frozenset[datetime]:
+    """Windows whose early look is on record (one look per window, `alerts/early.py`): an
+    early row that made a decision (a row that only says why none was made does not count)."""
+    out: set[datetime] = set()
+    for r in rows:
+        if r.segment == segment and r.early and not (r.baseline or {}).get("reason"):
+            start = from_db(r.window_start)
+            assert start is not None
+            out.add(start)
+    return frozenset(out)
+
+
 def evaluate_rule(
     session: Session, rule: Rule, model: ModelRow, now: datetime, max_values: int
 ) -> dict[str, int]:
@@ -217,7 +261,8 @@ def evaluate_rule(
     decisions: dict[str, list[Decision]] = {}
     for seg in segs:
         key = f"{seg[0]}:{seg[1]}" if seg else ""
-        windows = _series(session, model, cfg, seg, now, evaluated, lookback, curves)
+        looked = _looked(stored, key)
+        windows = _series(session, model, cfg, seg, now, evaluated, lookback, curves, looked)
         fixed = _fixed_baseline(session, model, cfg, now, seg, curves)
         decisions[key] = decide(
             cfg,
@@ -230,81 +275,13 @@ def evaluate_rule(
             label_delay_days=model.label_delay_days,
         )
     if cfg.kind == "stall" and cfg.max_silence_hours:
-        decisions.setdefault("", []).append(_silence(session, model, cfg.max_silence_hours, now))
-    changed = _record(session, rule, stored, decisions, verdicts(decisions, cfg.alpha), now)
+        silent = recording.silence(session, model, cfg.max_silence_hours, now)
+        decisions.setdefault("", []).append(silent)
+    changed = recording.record(
+        session, rule, stored, decisions, verdicts(decisions, cfg.alpha), now
+    )
     events = 0
     for segment, ds in decisions.items():
         if lifecycle.advance(session, rule, model, segment, now, cfg.clear_after, ds):
             events += 1
     return {"windows": changed, "events": events}
-
-
-def _silence(session: Session, model: ModelRow, max_hours: float, now: datetime) -> Decision:
-    """No label received for max_silence_hours: one verdict per hour."""
-    last = from_db(
-        session.scalar(select(func.max(Label.received_at)).where(Label.model_id == model.id))
-    )
-    hour = floor_hour(now)
-    silent = last is None or (now - last) > timedelta(hours=max_hours)
-    return Decision(
-        start=hour,
-        end=hour + timedelta(hours=1),
-        condition=silent,
-        value=None if last is None else (now - last) / timedelta(hours=1),
-        baseline={"max_silence_hours": max_hours},
-        recovered=not silent,
-    )
-
-
-def _record(
-    session: Session,
-    rule: Rule,
-    stored: list[RuleWindow],
-    decisions: dict[str, list[Decision]],
-    verdicts: dict[tuple[str, datetime], bool],
-    now: datetime,
-) -> int:
-    """Upsert one row per (rule, segment, window); a window changed by late labels is
-    updated in place, never counted twice."""
-    existing = {(r.segment, from_db(r.window_start)): r for r in stored}
-    changed = 0
-    for seg, ds in decisions.items():
-        for d in ds:
-            breached = verdicts[(seg, d.start)]
-            baseline = _clean(d.baseline)
-            if d.reason is not None:
-                baseline = {**(baseline or {}), "reason": d.reason}
-            values = {
-                "breached": breached,
-                "value": finite(d.value),
-                "low": finite(d.low),
-                "high": finite(d.high),
-                "baseline": baseline,
-                "p_value": finite(d.p_value),
-                "recovered": d.recovered,
-                "window_end": d.end,
-                "evaluated_at": now,
-            }
-            row = existing.get((seg, d.start))
-            if row is None:
-                session.add(
-                    RuleWindow(rule_id=rule.id, segment=seg, window_start=d.start, **values)
-                )
-                changed += 1
-            elif any(getattr(row, k) != values[k] for k in _COMPARED):
-                for k, v in values.items():
-                    setattr(row, k, v)
-                changed += 1
-    session.flush()
-    return changed
-
-
-_COMPARED = ("breached", "value", "low", "high", "baseline", "p_value", "recovered")
-
-
-def _clean(value: Any) -> Any:
-    if isinstance(value, float):
-        return finite(value)
-    if isinstance(value, dict):
-        return {k: _clean(v) for k, v in value.items()}
-    return value

@@ -3,7 +3,8 @@
 An alert explains itself (DESIGN.md, "Rules and alerts"): the sentence says what was
 watched, against what, at which level and where, in the numbers the alert was raised on,
 e.g. "Recall fell more than 0.05 under its baseline of 0.74 (1–7 Nov), at α = 0.01, in
-region north."
+region north." (with ": early warning from projected values" before the stop while the alert
+rests on early looks alone).
 """
 
 from __future__ import annotations
@@ -84,8 +85,18 @@ def _against(rule: RuleSettings, baseline: dict[str, Any] | None) -> str:
     return f"{said} (the {b.windows} {g}s before)"
 
 
-def sentence(rule: RuleSettings, baseline: dict[str, Any] | None, segment: str | None) -> str:
-    """One sentence saying what fired, per rule kind."""
+EARLY = "early warning from projected values"
+
+
+def sentence(
+    rule: RuleSettings,
+    baseline: dict[str, Any] | None,
+    segment: str | None,
+    *,
+    early: bool = False,
+) -> str:
+    """One sentence saying what fired, per rule kind; an alert raised on early looks (not
+    yet confirmed by a settled window) says it is an early warning from projected values."""
     m = rule.measure or ""
     name = NAMES.get(m, m.replace("_", " ").capitalize())
     seg, alpha, g = where(segment), f"α = {number(rule.alpha)}", rule.granularity
@@ -127,7 +138,7 @@ def sentence(rule: RuleSettings, baseline: dict[str, Any] | None, segment: str |
         )
     else:  # stall on silence
         text = f"No label arrived for {number(rule.max_silence_hours)} hours{seg}"
-    return text + "."
+    return f"{text}: {EARLY}." if early else text + "."
 
 
 def link(

@@ -14,35 +14,44 @@
    raised, noted: a later breach joins the alert (no event)
    muted rule: the same moves, but no event is written to the outbox
 
+   early (a rule with `early: true`; the flag rides on raised and noted alike):
+     breaches on early looks only  -> raised with early = true           alert.raised
+     a settled breach joins it     -> early = false, confirmed_at         alert.raised
+     no breach holds it any more   -> cleared, cleared_reason withdrawn   alert.cleared
+     (its early windows were decided settled and did not breach)
+
 One alert per (rule, segment) at a time. When it is raised it keeps the baseline its first
 breach was decided against, frozen, and the first breached window (when the problem
 started). It clears only on recovery: the measure back within tolerance of that frozen
 baseline for `clear_after` evaluated windows in a row, after its last breach (a window that
-is merely not significant does not count). A note keeps who said what and when, and makes a
-raised alert `noted`; a note on a cleared alert is kept and changes nothing else. Each move
-is an event, written to the outbox in the same transaction as the change (never when muted).
+is merely not significant does not count). An early alert, raised on projected values of
+unsettled windows, does not clear on recovery (early looks never say recovered): a settled
+window confirms it, or, once none of its breaches stands, it is withdrawn. A note keeps who
+said what and when, and makes a raised alert `noted`; a note on a cleared alert is kept and
+changes nothing else. Each move is an event, written to the outbox in the same transaction
+as the change (never when muted).
 """
 
 from __future__ import annotations
 
 import secrets
 from datetime import datetime, timedelta
-from typing import Any
 
 import orjson
 from sqlalchemy import func, select
 from sqlalchemy.orm import Session
 
-from belated.alerts import explain, numbers, snapshot
+from belated.alerts import numbers, snapshot
+from belated.alerts.alert_json import alert_dict as alert_dict
 from belated.alerts.decide import Decision
-from belated.alerts.schemas import stored_settings
+from belated.alerts.states import ACTIVE as ACTIVE
+from belated.alerts.states import EVENTS as EVENTS
+from belated.alerts.states import STATES as STATES
+from belated.alerts.states import WITHDRAWN
 from belated.alerts.tables import Alert, AlertNote, Delivery, Rule, RuleWindow, Webhook
 from belated.store.tables import ModelRow, Token
 from belated.timeutil import from_db, iso, to_utc
 
-STATES = ("raised", "noted", "cleared")
-ACTIVE = ("raised", "noted")
-EVENTS = ("alert.raised", "alert.noted", "alert.cleared")
 DELIVERY_TTL = timedelta(hours=24)
 
 
@@ -61,105 +70,6 @@ def open_counts(session: Session) -> dict[int, int]:
         select(Alert.model_id, func.count()).where(Alert.state.in_(ACTIVE)).group_by(Alert.model_id)
     )
     return {int(model_id): int(n) for model_id, n in rows}
-
-
-def _window(b: RuleWindow) -> dict[str, Any]:
-    return {
-        "window_start": iso(b.window_start),
-        "window_end": iso(b.window_end),
-        "breached": b.breached,
-        "recovered": b.recovered,
-        "value": b.value,
-        "low": b.low,
-        "high": b.high,
-        "baseline": b.baseline,
-        "p_value": b.p_value,
-    }
-
-
-def _rule_baseline(rule: Rule, alert: Alert) -> dict[str, Any] | None:
-    """What the alert compares with: its frozen baseline, or the rule's fixed bounds."""
-    if alert.baseline:
-        kept = {k: v for k, v in alert.baseline.items() if k not in ("stats", "tag_counts")}
-        return {**kept, "frozen": alert.state in ACTIVE}
-    s = rule.settings or {}
-    if rule.kind in ("floor", "stall") and s.get("threshold") is not None:
-        return {"threshold": s["threshold"]}
-    if rule.kind == "traffic":
-        return {"low": s.get("low"), "high": s.get("high")}
-    if rule.kind == "stall":
-        return {"max_silence_hours": s.get("max_silence_hours")}
-    return None
-
-
-def alert_dict(
-    session: Session,
-    alert: Alert,
-    model_name: str | None = None,
-    public_url: str | None = None,
-) -> dict[str, Any]:
-    """An alert as the API and events show it: what fired and why, in words and numbers,
-    its notes, where to look, and its breaches."""
-    if model_name is None:
-        model_name = session.scalar(select(ModelRow.name).where(ModelRow.id == alert.model_id))
-    rule = session.get(Rule, alert.rule_id)
-    assert rule is not None and model_name is not None
-    cfg = stored_settings(rule.kind, rule.measure, rule.granularity, rule.settings)
-    breaches = session.scalars(
-        select(RuleWindow).where(RuleWindow.alert_id == alert.id).order_by(RuleWindow.window_start)
-    ).all()
-    started = from_db(alert.started_at)
-    latest = session.scalar(
-        select(RuleWindow)
-        .where(
-            RuleWindow.rule_id == rule.id,
-            RuleWindow.segment == alert.segment,
-            RuleWindow.window_start >= (started or from_db(alert.raised_at)),
-            RuleWindow.value.is_not(None),
-        )
-        .order_by(RuleWindow.window_start.desc())
-        .limit(1)
-    )
-    notes = session.scalars(
-        select(AlertNote).where(AlertNote.alert_id == alert.id).order_by(AlertNote.id)
-    ).all()
-    baseline = _rule_baseline(rule, alert)
-    step_end = from_db(latest.window_end) if latest is not None else None
-    first = breaches[0] if breaches else None
-    return {
-        "id": alert.id,
-        "number": alert.seq,
-        "rule_id": alert.rule_id,
-        "model": model_name,
-        "segment": alert.segment or None,
-        "kind": rule.kind,
-        "measure": rule.measure,
-        "granularity": rule.granularity,
-        "rule": {
-            "id": rule.id,
-            "kind": rule.kind,
-            "measure": rule.measure,
-            "granularity": rule.granularity,
-            "retired": rule.retired_at is not None,
-            "retired_at": iso(rule.retired_at) if rule.retired_at else None,
-        },
-        "description": explain.sentence(cfg, alert.baseline, alert.segment),
-        "state": alert.state,
-        "raised_at": iso(alert.raised_at),
-        "noted_at": iso(alert.noted_at) if alert.noted_at else None,
-        "cleared_at": iso(alert.cleared_at) if alert.cleared_at else None,
-        "started_at": iso(started) if started else None,
-        "first_window": (
-            {"start": iso(first.window_start), "end": iso(first.window_end)} if first else None
-        ),
-        "baseline": baseline,
-        "latest": _window(latest) if latest is not None else None,
-        "notes": [{"text": n.text, "author": n.author, "at": iso(n.created_at)} for n in notes],
-        "link": explain.link(
-            model_name, rule.granularity, alert.segment, started, step_end, public_url
-        ),
-        "breaches": [_window(b) for b in breaches],
-    }
 
 
 def emit(session: Session, alert: Alert, event_type: str, now: datetime, muted: bool) -> int:
@@ -247,6 +157,7 @@ def advance(
                 state="raised",
                 raised_at=now,
                 started_at=first,
+                early=all(b.early for b in fresh),
             )
             session.add(alert)
             session.flush()
@@ -259,6 +170,8 @@ def advance(
             b.alert_id = alert.id
         _freeze(alert, decisions or [])
         session.flush()
+        if event is None and _confirm(session, alert, now):
+            event = "alert.raised"
         if event:
             emit(session, alert, event, now, muted)
         return event
@@ -271,6 +184,8 @@ def advance(
             )
         )
     _freeze(alert, decisions or [])
+    if alert.early:
+        return _settle_early(session, alert, now, muted)
     last = session.scalar(
         select(func.max(RuleWindow.window_start)).where(
             RuleWindow.alert_id == alert.id, RuleWindow.breached.is_(True)
@@ -294,11 +209,49 @@ def advance(
             break
     if run >= clear_after:
         alert.state, alert.cleared_at = "cleared", now
+        alert.cleared_reason = (
+            f"recovered: back within tolerance of the baseline for {clear_after} "
+            f"evaluated window{'s' if clear_after != 1 else ''} in a row"
+        )
         session.flush()
         emit(session, alert, "alert.cleared", now, muted)
         return "alert.cleared"
     session.flush()
     return None
+
+
+def _standing(session: Session, alert: Alert, *, settled: bool) -> bool:
+    """Whether a breach of the alert stands (only settled ones, with `settled`)."""
+    query = select(RuleWindow.id).where(
+        RuleWindow.alert_id == alert.id, RuleWindow.breached.is_(True)
+    )
+    if settled:
+        query = query.where(RuleWindow.early.is_(False))
+    return session.scalar(query.limit(1)) is not None
+
+
+def _confirm(session: Session, alert: Alert, now: datetime) -> bool:
+    """An early alert with a settled breach among its own is confirmed: no longer early."""
+    if not alert.early or not _standing(session, alert, settled=True):
+        return False
+    alert.early, alert.confirmed_at = False, now
+    session.flush()
+    return True
+
+
+def _settle_early(session: Session, alert: Alert, now: datetime, muted: bool) -> str | None:
+    """An early alert after an evaluation with no new breach: confirmed when one of its
+    windows was decided settled and breached, withdrawn when none of its breaches stands
+    (the settled decisions on its early windows did not bear them out), else held."""
+    if _confirm(session, alert, now):
+        emit(session, alert, "alert.raised", now, muted)
+        return "alert.raised"
+    if _standing(session, alert, settled=False):
+        return None
+    alert.state, alert.cleared_at, alert.cleared_reason = "cleared", now, WITHDRAWN
+    session.flush()
+    emit(session, alert, "alert.cleared", now, muted)
+    return "alert.cleared"
 
 
 def author_of(session: Session, token_id: str) -> str:

@@ -28,6 +28,7 @@ SETTING_KEYS = (
     "low",
     "high",
     "max_silence_hours",
+    "early",
 )
 
 
@@ -111,7 +112,9 @@ def update_rule(
     try:
         check_rule(rule.kind, {**merged, "measure": measure})
     except ValueError as exc:
-        raise invalid_field("measure" if "measure" in str(exc) else "rule", str(exc)) from None
+        text = str(exc)
+        field = "early" if text.startswith("early:") else "measure" if "measure" in text else "rule"
+        raise invalid_field(field, text) from None
     rule.settings = merged
     rule.measure = measure
     if "granularity" in fields and fields["granularity"]:

@@ -54,6 +54,7 @@ class RuleSettings:
     low: float | None = None
     high: float | None = None
     max_silence_hours: float | None = None
+    early: bool = False
 
 
 class Baseline(BaseModel):
@@ -94,6 +95,8 @@ class RuleFields(BaseModel):
     high: float | None = Field(None, ge=0)
     max_silence_hours: float | None = Field(None, gt=0)
     muted_until: datetime | None = None
+    # also decide on unsettled windows' projected measures (alerts say "early": true)
+    early: bool | None = None
 
 
 # the settings' defaults as the API shows them (a trailing baseline as {"windows": N})
@@ -146,6 +149,8 @@ def check_rule(kind: str, fields: dict[str, Any]) -> None:
     reason = catalog.check(kind, merged.get("measure"), merged.get("mode"))
     if reason:
         raise ValueError(reason)
+    if merged["early"] and (why := catalog.check_early(kind, merged.get("measure"))):
+        raise ValueError(f"early: {why}")
     if kind == "floor" and merged["threshold"] is None:
         raise ValueError("a floor rule needs a threshold")
     if kind == "shift" and merged["threshold"] is None:
@@ -188,6 +193,7 @@ class RuleRead(BaseModel):
     low: float | None
     high: float | None
     max_silence_hours: float | None
+    early: bool
     muted_until: datetime | None
     muted: bool
     created_at: datetime

@@ -5,7 +5,17 @@ from __future__ import annotations
 from datetime import datetime
 from typing import Any
 
-from sqlalchemy import Boolean, Float, ForeignKey, Index, Integer, String, Text, UniqueConstraint
+from sqlalchemy import (
+    Boolean,
+    Float,
+    ForeignKey,
+    Index,
+    Integer,
+    String,
+    Text,
+    UniqueConstraint,
+    false,
+)
 from sqlalchemy.orm import Mapped, mapped_column
 
 from belated.store.tables import Base, BigId, Json, UtcDateTime
@@ -48,6 +58,9 @@ class RuleWindow(Base):
     p_value: Mapped[float | None] = mapped_column(Float, nullable=True)
     # the value is back within tolerance of the baseline (None: no decision on this window)
     recovered: Mapped[bool | None] = mapped_column(Boolean, nullable=True)
+    # decided early, on projected measures of the unsettled window (a settled decision
+    # replaces it)
+    early: Mapped[bool] = mapped_column(Boolean, default=False, server_default=false())
     alert_id: Mapped[str | None] = mapped_column(String(32), nullable=True)
     evaluated_at: Mapped[datetime] = mapped_column(UtcDateTime)
 
@@ -76,6 +89,11 @@ class Alert(Base):
     # the baseline as it was when the alert was raised, kept frozen while it is active:
     # value, period, the window starts it pooled and their sufficient statistics
     baseline: Mapped[dict[str, Any] | None] = mapped_column(Json, nullable=True)
+    # raised on early looks only: true until a settled window confirms it (`confirmed_at`)
+    # or the alert is withdrawn (cleared, `cleared_reason` saying so)
+    early: Mapped[bool] = mapped_column(Boolean, default=False, server_default=false())
+    confirmed_at: Mapped[datetime | None] = mapped_column(UtcDateTime, nullable=True)
+    cleared_reason: Mapped[str | None] = mapped_column(Text, nullable=True)
 
 
 class AlertNote(Base):

@@ -221,6 +221,7 @@ def projected(
         ),
         "settles_by": settles.date().isoformat(),
         "arrived_share": _round(answer.get("arrived_share")),
+        "counts": answer.get("counts"),  # the projected final confusion counts (early rules)
     }
 
 

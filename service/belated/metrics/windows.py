@@ -208,6 +208,7 @@ def _late_labels(
     if opts.measures:
         answer["projected"] = {k: v for k, v in answer["projected"].items() if k in opts.measures}
     answer.pop("arrived_share", None)
+    answer.pop("counts", None)
     return answer
 
 

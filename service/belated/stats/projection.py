@@ -102,7 +102,8 @@ def project(
     {"measures": {name: {"value", "low", "high"[, "reason"]}}, "expected_final_coverage",
     "arrival": {"negative": share, "positive": share}, "arrived_share", "settles_in_hours"}:
     the arrival shares are each class's expected share of labels arrived, `arrived_share`
-    the share of all the window's expected labels arrived (the early rules' 30%), and
+    the share of all the window's expected labels arrived (the early rules' 30%), "counts"
+    (when the measures have values) the projected final tp, fp, fn and tn, and
     `settles_in_hours` how many hours from now until every class's share reaches
     `min_coverage` (0 when it has, None when never or not asked).
 
@@ -151,7 +152,9 @@ def project(
             reason = f"too few labels of either class expected by this age ({shares} arrived)"
         out["measures"] = {m: undefined(reason) for m in PROJECTED}
         return out
-    point = measure_values(confusion_of((k + later).sum(axis=0), strata.predicted_positive), beta)
+    counts = confusion_of((k + later).sum(axis=0), strata.predicted_positive)
+    out["counts"] = dict(zip(("tp", "fp", "fn", "tn"), map(float, counts), strict=True))
+    point = measure_values(counts, beta)
     final = resample_final(strata, f, var, theta, eventual_coverage, resamples, seed)
     draws = measure_values(confusion_of(final, strata.predicted_positive), beta)
     tail = (1.0 - confidence) / 2.0
