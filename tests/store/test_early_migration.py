@@ -21,7 +21,7 @@ from belated.store.tables import ModelRow, Project
 from tests.conftest import STORES, create_pg_database, drop_pg_database, pg_url
 
 T0 = datetime(2026, 11, 20, tzinfo=UTC)
-BEFORE = "0009_model_reference"
+BEFORE = "0010_dirty_marks"
 TABLES = ("projects", "models", "rules", "alerts", "rule_windows", "alert_sequences")
 
 

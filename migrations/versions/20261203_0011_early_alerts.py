@@ -6,8 +6,8 @@ windows' projected measures. Such a decision is marked on its evaluated window
 settled window confirms it (`confirmed_at`) or it is withdrawn (cleared, `cleared_reason`).
 Existing rows were all decided on settled windows: false, null.
 
-Revision ID: 0010_early_alerts
-Revises: 0009_model_reference
+Revision ID: 0011_early_alerts
+Revises: 0010_dirty_marks
 Create Date: 2026-12-03 09:00:00
 """
 
@@ -16,8 +16,8 @@ from collections.abc import Sequence
 import sqlalchemy as sa
 from alembic import op
 
-revision: str = "0010_early_alerts"
-down_revision: str | None = "0009_model_reference"
+revision: str = "0011_early_alerts"
+down_revision: str | None = "0010_dirty_marks"
 branch_labels: str | Sequence[str] | None = None
 depends_on: str | Sequence[str] | None = None
 
