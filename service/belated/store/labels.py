@@ -72,6 +72,8 @@ def _targets(session: Session, model_id: int, ids: list[str]) -> dict[str, _Stor
 
 def _pending(session: Session, model_id: int, ids: list[str]) -> dict[str, str]:
     found: dict[str, str] = {}
+    if not ids:
+        return found
     for cond in bulk.id_filters(session, PendingLabel.pid, ids):
         for pid, actual in session.execute(
             select(PendingLabel.pid, PendingLabel.actual).where(
