@@ -122,6 +122,7 @@ class Service:
         name: str = "service",
         wait: bool = True,
         port: int | None = None,
+        workers: int = 1,
     ) -> None:
         self.store = store
         self.port = port or free_port()  # a port of its own, or the one of a stopped service
@@ -133,6 +134,8 @@ class Service:
         args = [str(BELATED), "serve", "--host", "127.0.0.1", "--port", str(self.port)]
         if not jobs:
             args.append("--no-jobs")
+        if workers > 1:
+            args += ["--workers", str(workers)]
         workdir.mkdir(parents=True, exist_ok=True)
         self._log = self.log_path.open("ab")
         # cwd of its own: no stray .env or default SQLite file is read or left behind

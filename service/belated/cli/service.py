@@ -27,8 +27,17 @@ def serve(
     host: str | None = typer.Option(None, help="Overrides BELATED_HOST."),
     port: int | None = typer.Option(None, help="Overrides BELATED_PORT."),
     no_jobs: bool = typer.Option(False, "--no-jobs", help="Serve the API without the jobs."),
+    workers: int = typer.Option(
+        1,
+        "--workers",
+        min=1,
+        help="API processes on the one port (PostgreSQL only); the jobs still run once, in"
+        " whichever process holds the leader lock.",
+    ),
 ) -> None:
     """Run the HTTP service (and the scheduled jobs unless --no-jobs)."""
+    import os
+
     import uvicorn
 
     from belated.app import create_app
@@ -45,8 +54,42 @@ def serve(
     settings = settings.model_copy(
         update={"host": host or settings.host, "port": port if port is not None else settings.port}
     )
+    if workers > 1:
+        if is_sqlite(settings.database_url):
+            typer.echo(
+                "--workers needs PostgreSQL: SQLite is served by one process"
+                " (set BELATED_DATABASE_URL to a PostgreSQL database, or drop --workers)",
+                err=True,
+            )
+            raise typer.Exit(2)
+        # each process builds its app from the environment (api_process below)
+        os.environ.update(
+            BELATED_HOST=settings.host,
+            BELATED_PORT=str(settings.port),
+            BELATED_JOBS="true" if settings.jobs and not no_jobs else "false",
+        )
+        uvicorn.run(
+            "belated.cli.service:api_process",
+            factory=True,
+            workers=workers,
+            host=settings.host,
+            port=settings.port,
+            log_config=None,
+            access_log=False,
+        )
+        return
     asgi = create_app(settings, jobs=settings.jobs and not no_jobs)
     uvicorn.run(asgi, host=settings.host, port=settings.port, log_config=None, access_log=False)
+
+
+def api_process() -> object:
+    """The app of one of several API processes (`serve --workers N`), from the environment."""
+    from belated.app import create_app
+    from belated.logs import setup_logging
+
+    settings = get_settings()
+    setup_logging(settings.log_format)
+    return create_app(settings)
 
 
 def worker() -> None:
