@@ -6,7 +6,7 @@ and COPY; SQLite gets chunked IN lists and executemany inside its single writer.
 
 from __future__ import annotations
 
-from collections.abc import Iterable, Iterator, Sequence
+from collections.abc import Iterable, Iterator, Mapping, Sequence
 from typing import Any
 
 import orjson
@@ -78,7 +78,7 @@ def temp_table(session: Session, name: str, ddl_columns: str) -> None:
         cur.execute(f"TRUNCATE {name}")
 
 
-def execute_binary(session: Session, sql: str, params: Sequence[Any]) -> None:
+def execute_binary(session: Session, sql: str, params: Sequence[Any] | Mapping[str, Any]) -> None:
     """Run one statement on the session's connection with its parameters sent in binary
     (PostgreSQL only): arrays cost a sixth of their text form to send."""
     raw = session.connection().connection.driver_connection

@@ -157,9 +157,16 @@ def ingest_batches(
             "delay_h": delay,
         }
         hours.add(target.hour)
+    found = [pid for pid in ids if pid in targets]
+    if is_postgres(session) and max(len(updates), len(history), len(found)) <= SMALL:
+        _write_small_pg(session, model_id, list(updates.values()), found, history, changes, hours)
+        if new_pending:
+            _upsert_pending(session, model_id, list(new_pending.values()))
+        if lock is not None:
+            dirty.lock_hours(session, model_id, sorted(hours), lock)
+        return answers, hours
     if updates:
         (_update_pg if is_postgres(session) else _update_sqlite)(session, list(updates.values()))
-    found = [pid for pid in ids if pid in targets]
     if found:  # a pending label left by a race is older than this one: drop it
         for cond in bulk.id_filters(session, PendingLabel.pid, found):
             session.execute(delete(PendingLabel).where(PendingLabel.model_id == model_id, cond))
@@ -176,6 +183,70 @@ def ingest_batches(
     record_changes(session, changes)
     dirty.mark(session=session, model_id=model_id, hours=hours, recompute=False, lock=lock)
     return answers, hours
+
+
+# Every write of a small labels batch in one round trip (PostgreSQL; arrays in binary): the
+# labels set, their history, the changes for the refresh to fold, pending labels left by a
+# race dropped, and the touched hours marked dirty (their holds are taken by the caller).
+_SMALL_WRITE = """
+WITH upd AS (
+  UPDATE predictions p SET actual = u.actual, label_ts = u.label_ts, delay_h = u.delay_h
+  FROM unnest(%(u_row)b::int8[], %(u_actual)b::text[], %(u_ts)b::timestamptz[],
+    %(u_delay)b::float8[]) AS u(row_id, actual, label_ts, delay_h)
+  WHERE p.row_id = u.row_id
+), hist AS (
+  INSERT INTO labels (model_id, pid, actual, ts, change, received_at)
+  SELECT %(m)s, * FROM unnest(%(h_pid)b::text[], %(h_actual)b::text[],
+    %(h_ts)b::timestamptz[], %(h_change)b::text[], %(h_at)b::timestamptz[])
+), chg AS (
+  INSERT INTO label_changes (model_id, hour, row_id, old_actual, old_delay_h, new_actual,
+    new_delay_h)
+  SELECT %(m)s, * FROM unnest(%(c_hour)b::int4[], %(c_row)b::int8[], %(c_old)b::text[],
+    %(c_old_delay)b::float8[], %(c_new)b::text[], %(c_new_delay)b::float8[])
+), gone AS (
+  DELETE FROM pending_labels WHERE model_id = %(m)s AND pid = ANY(%(found)b::text[])
+), marks AS (
+  INSERT INTO dirty_buckets (model_id, hour, marked_at, recompute)
+  SELECT %(m)s, h, %(at)s, false FROM unnest(%(hours)b::int4[]) AS t(h)
+)
+SELECT 1
+"""
+
+
+def _write_small_pg(
+    session: Session,
+    model_id: int,
+    updates: list[dict[str, Any]],
+    found: list[str],
+    history: list[dict[str, Any]],
+    changes: list[Change],
+    hours: set[int],
+) -> None:
+    bulk.execute_binary(
+        session,
+        _SMALL_WRITE,
+        {
+            "m": model_id,
+            "at": clock.now(),
+            "u_row": [u["row_id"] for u in updates],
+            "u_actual": [u["actual"] for u in updates],
+            "u_ts": [u["label_ts"] for u in updates],
+            "u_delay": [u["delay_h"] for u in updates],
+            "h_pid": [h["pid"] for h in history],
+            "h_actual": [h["actual"] for h in history],
+            "h_ts": [h["ts"] for h in history],
+            "h_change": [h["change"] for h in history],
+            "h_at": [h["received_at"] for h in history],
+            "c_hour": [c.hour for c in changes],
+            "c_row": [c.row_id for c in changes],
+            "c_old": [c.old_actual for c in changes],
+            "c_old_delay": [c.old_delay_h for c in changes],
+            "c_new": [c.new_actual for c in changes],
+            "c_new_delay": [c.new_delay_h for c in changes],
+            "found": found,
+            "hours": sorted(hours),
+        },
+    )
 
 
 def record_changes(session: Session, changes: list[Change]) -> None:
