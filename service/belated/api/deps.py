@@ -54,11 +54,29 @@ def _run_in_transaction(request: Request, work: Callable[[Session], T]) -> T:
     return result
 
 
+MAX_WRITES_IN_FLIGHT = 32  # large batches at once; the small ones queue in store/grouped.py
+
+
 async def in_transaction(request: Request, work: Callable[[Session], T]) -> T:
     """Run `work` in one transaction on a worker thread, committed before this returns (a
     2xx means stored): the request's single hop off the event loop, where a sync route
-    with a session dependency takes three."""
-    return await run_in_threadpool(_run_in_transaction, request, work)
+    with a session dependency takes three.
+
+    Back-pressure: past MAX_WRITES_IN_FLIGHT writes at once the store is not keeping up,
+    and the answer is a 503 with Retry-After rather than a wait without bound.
+    """
+    state = request.app.state
+    if getattr(state, "writes_in_flight", 0) >= MAX_WRITES_IN_FLIGHT:
+        raise Problem(
+            503,
+            "the store is not keeping up with the writes; retry after the given seconds",
+            headers={"Retry-After": "1"},
+        )
+    state.writes_in_flight = getattr(state, "writes_in_flight", 0) + 1
+    try:
+        return await run_in_threadpool(_run_in_transaction, request, work)
+    finally:
+        state.writes_in_flight -= 1
 
 
 def after_commit(session: Session) -> None:
