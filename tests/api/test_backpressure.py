@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import threading
 from collections.abc import Iterator
+from contextlib import contextmanager
 from datetime import UTC, datetime, timedelta
 from typing import Any
 
@@ -45,59 +46,87 @@ def pg_store() -> Iterator[tuple[str, Engine, Any]]:
         drop_pg_database(name)
 
 
+@contextmanager
+def _hour_held(engine: Engine, model_id: int, hour: int) -> Iterator[None]:
+    """Another session holds the hour as a refresh would (store/dirty.py)."""
+    holder = psycopg.connect(
+        PG_ADMIN.rsplit("/", 1)[0] + f"/{engine.url.database}", autocommit=True
+    )
+    holder.execute("SELECT pg_advisory_lock(%s, %s)", (model_id, hour))
+    try:
+        yield
+    finally:
+        holder.execute("SELECT pg_advisory_unlock(%s, %s)", (model_id, hour))
+        holder.close()
+
+
+def _post_while_held(
+    server: LiveServer,
+    engine: Engine,
+    sessions: Any,
+    bodies: list[list[dict[str, Any]]],
+    refused: int,
+) -> tuple[list[httpx.Response], int]:
+    """Post each body from a thread of its own while the hour of their rows is held, until
+    `refused` of them have been answered 503; every answer, and the rows stored."""
+    with httpx.Client(base_url=server.url, timeout=60) as http:
+        tenant = make_tenant(sessions, http)
+        model = create_model(tenant, engine)
+    answers: list[httpx.Response] = []
+    lock = threading.Lock()
+
+    def post(items: list[dict[str, Any]]) -> None:
+        with httpx.Client(base_url=server.url, timeout=60) as c:
+            r = c.post(
+                f"/v1/models/{model.name}/predictions",
+                json={"predictions": items},
+                headers=tenant.headers("ingest"),
+            )
+        with lock:
+            answers.append(r)
+
+    threads = [threading.Thread(target=post, args=(items,)) for items in bodies]
+    with _hour_held(engine, model.id, epoch_hour(HELD)):
+        for t in threads:
+            t.start()
+        wait_until(
+            lambda: sum(r.status_code == 503 for r in answers) >= refused,
+            60,
+            what="the writes the store cannot take yet to be refused",
+        )
+    for t in threads:
+        t.join(60)
+    for r in answers:
+        if r.status_code == 503:
+            assert r.headers["retry-after"] == "1"
+            assert r.headers["content-type"].startswith("application/problem+json")
+            assert "not keeping up" in r.json()["detail"]
+    return answers, count(engine, "predictions", model.id)
+
+
+HELD = datetime.now(UTC).replace(minute=5, second=0, microsecond=0) - timedelta(hours=3)
+
+
+def _rows(prefix: str, n: int) -> list[dict[str, Any]]:
+    return [{"id": f"{prefix}-{j}", "ts": HELD.isoformat(), "score": 0.7} for j in range(n)]
+
+
 def test_a_held_up_store_answers_503_with_retry_after_and_stores_nothing_refused(
     pg_store: tuple[str, Engine, Any],
 ) -> None:
     url, engine, sessions = pg_store
-    settings = Settings(database_url=url, jobs=False)
-    app = create_app(settings, engine=engine, jobs=False)
+    app = create_app(Settings(database_url=url, jobs=False), engine=engine, jobs=False)
     app.app.state.group_writer = GroupWriter(app.app.state.sessions, threads=1, max_queued=2)
-    with LiveServer(app) as server, httpx.Client(base_url=server.url, timeout=60) as http:
-        tenant = make_tenant(sessions, http)
-        model = create_model(tenant, engine)
-        ts = datetime.now(UTC).replace(minute=5, second=0, microsecond=0) - timedelta(hours=3)
-        dbname = engine.url.database
-        holder = psycopg.connect(PG_ADMIN.rsplit("/", 1)[0] + f"/{dbname}", autocommit=True)
-        holder.execute("SELECT pg_advisory_lock(%s, %s)", (model.id, epoch_hour(ts)))
-        answers: list[httpx.Response] = []
-        lock = threading.Lock()
-
-        def post(i: int) -> None:
-            item = {"id": f"sofa-{i}", "ts": ts.isoformat(), "score": 0.7}
-            with httpx.Client(base_url=server.url, timeout=60) as c:
-                r = c.post(
-                    f"/v1/models/{model.name}/predictions",
-                    json={"predictions": [item]},
-                    headers=tenant.headers("ingest"),
-                )
-            with lock:
-                answers.append(r)
-
-        try:
-            threads = [threading.Thread(target=post, args=(i,)) for i in range(8)]
-            for t in threads:
-                t.start()
-            # one batch is held at the hour's lock, two wait in the queue: the rest are refused
-            wait_until(
-                lambda: sum(r.status_code == 503 for r in answers) >= 5,
-                60,
-                what="the requests beyond the queue to be refused",
-            )
-        finally:
-            holder.execute("SELECT pg_advisory_unlock(%s, %s)", (model.id, epoch_hour(ts)))
-            holder.close()
-        for t in threads:
-            t.join(60)
-        refused = [r for r in answers if r.status_code == 503]
-        stored = [r for r in answers if r.status_code == 200]
-        assert len(refused) + len(stored) == 8
-        assert len(refused) == 5 and len(stored) == 3
-        for r in refused:
-            assert r.headers["retry-after"] == "1"
-            assert r.headers["content-type"].startswith("application/problem+json")
-            assert "not keeping up" in r.json()["detail"]
-        assert all(r.json() == {"accepted": 1, "duplicates": 0} for r in stored)
-        assert count(engine, "predictions", model.id) == 3
+    with LiveServer(app) as server:
+        # one batch waits at the hour's hold, two in the queue: the other five are refused
+        answers, stored = _post_while_held(
+            server, engine, sessions, [_rows(f"sofa-{i}", 1) for i in range(8)], refused=5
+        )
+    assert sorted(r.status_code for r in answers) == [200] * 3 + [503] * 5
+    assert all(
+        r.json() == {"accepted": 1, "duplicates": 0} for r in answers if r.status_code == 200
+    )
+    assert stored == 3
 
 
 def test_large_batches_past_the_limit_in_flight_get_503_and_store_nothing(
@@ -108,44 +137,9 @@ def test_large_batches_past_the_limit_in_flight_get_503_and_store_nothing(
     monkeypatch.setattr(deps, "MAX_WRITES_IN_FLIGHT", 2)
     url, engine, sessions = pg_store
     app = create_app(Settings(database_url=url, jobs=False), engine=engine, jobs=False)
-    with LiveServer(app) as server, httpx.Client(base_url=server.url, timeout=60) as http:
-        tenant = make_tenant(sessions, http)
-        model = create_model(tenant, engine)
-        ts = datetime.now(UTC).replace(minute=5, second=0, microsecond=0) - timedelta(hours=3)
-        holder = psycopg.connect(
-            PG_ADMIN.rsplit("/", 1)[0] + f"/{engine.url.database}", autocommit=True
+    with LiveServer(app) as server:
+        answers, stored = _post_while_held(
+            server, engine, sessions, [_rows(f"table-{i}", 250) for i in range(6)], refused=4
         )
-        holder.execute("SELECT pg_advisory_lock(%s, %s)", (model.id, epoch_hour(ts)))
-        answers: list[httpx.Response] = []
-        lock = threading.Lock()
-
-        def post(i: int) -> None:
-            items = [
-                {"id": f"table-{i}-{j}", "ts": ts.isoformat(), "score": 0.3} for j in range(250)
-            ]
-            with httpx.Client(base_url=server.url, timeout=60) as c:
-                r = c.post(
-                    f"/v1/models/{model.name}/predictions",
-                    json={"predictions": items},
-                    headers=tenant.headers("ingest"),
-                )
-            with lock:
-                answers.append(r)
-
-        try:
-            threads = [threading.Thread(target=post, args=(i,)) for i in range(6)]
-            for t in threads:
-                t.start()
-            wait_until(
-                lambda: sum(r.status_code == 503 for r in answers) >= 4,
-                60,
-                what="the writes past the limit to be refused",
-            )
-        finally:
-            holder.execute("SELECT pg_advisory_unlock(%s, %s)", (model.id, epoch_hour(ts)))
-            holder.close()
-        for t in threads:
-            t.join(60)
-        assert sorted(r.status_code for r in answers) == [200, 200, 503, 503, 503, 503]
-        assert all(r.headers["retry-after"] == "1" for r in answers if r.status_code == 503)
-        assert count(engine, "predictions", model.id) == 2 * 250
+    assert sorted(r.status_code for r in answers) == [200, 200, 503, 503, 503, 503]
+    assert stored == 2 * 250

@@ -20,6 +20,7 @@ from belated.clock import clock
 from belated.config import Settings
 from belated.errors import Problem
 from belated.store import keys, model_registry
+from belated.store.db import transaction
 from belated.store.keys import Principal
 from belated.store.tables import ModelRow
 
@@ -41,15 +42,8 @@ def get_session(request: Request) -> Iterator[Session]:
 
 
 def _run_in_transaction(request: Request, work: Callable[[Session], T]) -> T:
-    session: Session = request.app.state.sessions()
-    try:
+    with transaction(request.app.state.sessions) as session:
         result = work(session)
-        session.commit()
-    except BaseException:
-        session.rollback()
-        raise
-    finally:
-        session.close()
     after_commit(session)
     return result
 

@@ -96,7 +96,7 @@ def insert_rows(
 ) -> None:
     """Insert rows (PostgreSQL only): a few as arrays in one statement, many by COPY."""
     if len(rows) > SMALL_ROWS:
-        copy_rows(session, table, columns, rows)
+        copy_rows(session, table, columns, rows, types)
         return
     arrays = ", ".join(f"%b::{t}[]" for t in types)
     execute_binary(

@@ -304,6 +304,7 @@ def _update_pg(session: Session, rows: list[dict[str, Any]]) -> None:
         _STAGE,
         ("row_id", "actual", "label_ts", "delay_h"),
         ((r["row_id"], r["actual"], r["label_ts"], r["delay_h"]) for r in rows),
+        types=("int8", "text", "timestamptz", "float8"),
     )
     session.execute(
         text(

