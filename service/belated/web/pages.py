@@ -10,6 +10,7 @@ from sqlalchemy.orm import Session
 
 from belated.alerts import records as alert_records
 from belated.alerts import rules as alert_rules
+from belated.errors import Problem
 from belated.metrics import delays as metric_delays
 from belated.metrics import params
 from belated.metrics import thresholds as metric_thresholds
@@ -18,7 +19,7 @@ from belated.store import model_registry
 from belated.store.keys import Principal
 from belated.store.tables import ModelRow
 from belated.timeutil import parse_ts
-from belated.web import charts
+from belated.web import charts, segtable, views
 
 CHARTED = {
     "binary": ("precision", "recall", "fbeta", "positive_rate"),
@@ -53,10 +54,31 @@ class View:
     start: str | None = None
     end: str | None = None
     segment: tuple[str, ...] = field(default_factory=tuple)
+    beta: float = 1.0
+    segkey: str | None = None  # the tag key of the segment table
+    sort: str = "value"
+    descending: bool = False
+
+    def query(self, **change: Any) -> dict[str, Any]:
+        """This view's query parameters (with `change` applied), for links that keep it."""
+        out: dict[str, Any] = {
+            "granularity": self.granularity,
+            "start": self.start,
+            "end": self.end,
+            "segment": list(self.segment),
+            "beta": f"{self.beta:g}" if self.beta != 1.0 else None,
+            "segments": self.segkey,
+            "sort": self.sort if self.sort != "value" else None,
+            "order": "desc" if self.descending else None,
+        }
+        out.update(change)
+        return {k: v for k, v in out.items() if v not in (None, "", [])}
 
 
-def name_of(measure: str) -> str:
-    """A reader's name for a measure."""
+def name_of(measure: str, beta: float = 1.0) -> str:
+    """A reader's name for a measure (F-beta named for its β)."""
+    if measure.startswith("fbeta") and beta != 1.0:
+        return NAMES[measure].replace("F1", f"F{beta:g}")
     return NAMES.get(measure, measure.replace("_", " "))
 
 
@@ -104,10 +126,11 @@ def _windows(
     now: datetime,
     max_values: int,
     filters: tuple[tuple[str, str], ...] = (),
+    beta: float = 1.0,
 ) -> list[dict[str, Any]]:
     wanted = frozenset(CHARTED["binary"]) if row.kind == "binary" else None
     return windows_of_range(
-        session, row, rng, MeasureOptions(measures=wanted), filters, now, max_values
+        session, row, rng, MeasureOptions(beta=beta, measures=wanted), filters, now, max_values
     )
 
 
@@ -148,7 +171,10 @@ def _series(
     out = []
     for w in windows:
         m = (w.get(section) or {}).get(measure) or {}
-        note = m.get("reason") or f"{w['labelled']} of {w['predictions']} labelled"
+        reason = m.get("reason")
+        if reason and section == "measures" and not w["labelled"] and w["predictions"]:
+            reason = "nothing labelled yet"  # the cause, not the arithmetic's symptom
+        note = reason or labelled_text(w)
         proj = (w.get("projected") or {}).get(measure) if section == "measures" else None
         if proj and proj.get("value") is not None:
             # the honest number first: what the window will read once its labels are in,
@@ -177,19 +203,51 @@ def _num(x: float | None) -> str:
     return "-" if x is None else f"{x:.3f}"
 
 
+def plural(n: int, word: str) -> str:
+    """`n word` with thousands separators, the word in the plural unless n is 1."""
+    return f"{n:,} {word}" if n == 1 else f"{n:,} {word}s"
+
+
+def labelled_text(w: dict[str, Any]) -> str:
+    """How much of a window is labelled, as a reader says it."""
+    return f"{w['labelled']:,} of {plural(w['predictions'], 'prediction')} labelled"
+
+
+# measures that share one y-axis across the panels (all proportions read side by side)
+SHARED_AXIS = {"precision", "recall", "fbeta", "accuracy", "precision_macro", "recall_macro"}
+
+
 def model_view(
     *, session: Session, who: Principal, name: str, view: View, now: datetime, max_values: int
 ) -> dict[str, Any]:
     """Everything the model page shows, for the asked range and segment."""
-    rng = params.parse_range(view.granularity, view.start or None, view.end or None, now)
     filters = params.parse_segments(list(view.segment))
     row = model_registry.get(session=session, project_id=who.project_id, name=name)
-    windows = _windows(session, row, rng, now, max_values, filters)
+    rules = [
+        alert_rules.rule_read(r, row.name)
+        for r in alert_rules.list_rules(session=session, model=row)
+    ]
+    if view.start or view.end:
+        rng = params.parse_range(view.granularity, view.start or None, view.end or None, now)
+    else:
+        rng = views.default_range(session, row, view.granularity, rules, now)
+    windows = _windows(session, row, rng, now, max_values, filters, view.beta)
     g = view.granularity
+    alerts = _with_rules(session, row, _alerts(session, who, state=ACTIVE, model=row.name))
+    marks = views.alert_marks(alerts, g)  # a model's markers join these when they exist
+    series = {m: _series(windows, m, g) for m in CHARTED[row.kind]}
+    shared = [
+        v
+        for m, pts in series.items()
+        if m in SHARED_AXIS
+        for p in pts
+        for v in (p.value, p.low, p.high)
+        if v is not None
+    ]
     measure_charts = [
         {
             "measure": m,
-            "title": name_of(m),
+            "title": name_of(m, view.beta),
             "latest": next(
                 (
                     w["measures"].get(m)
@@ -199,10 +257,12 @@ def model_view(
                 None,
             ),
             "svg": charts.line_chart(
-                _series(windows, m, g),
-                title=f"{name_of(m)} by {g}",
+                series[m],
+                title=f"{name_of(m, view.beta)} by {g}",
                 chart_id=f"m-{m}",
                 css=f"m-{m}",
+                marks=marks,
+                domain=shared if m in SHARED_AXIS else None,
             ),
         }
         for m in CHARTED[row.kind]
@@ -213,10 +273,23 @@ def model_view(
             label=_label(w["start"], g),
             value=w["coverage"],
             settled=w["settled"],
-            note=f"{w['labelled']} of {w['predictions']} labelled",
+            note=labelled_text(w),
         )
         for w in windows
     ]
+    tag_keys = segtable.tag_keys(session, row)
+    segkey = segtable.pick_key(tag_keys, view.segkey, alerts)
+    seg_columns = segtable.columns(row.kind, lambda m: name_of(m, view.beta))
+    if view.sort not in {c.key for c in seg_columns}:
+        known = ", ".join(c.key for c in seg_columns)
+        raise Problem(422, f"'sort': no column {view.sort!r} in the segment table; one of {known}")
+    seg_rows = (
+        segtable.rows(
+            session, row, rng, segkey, tag_keys[segkey], alerts, view.beta, now, max_values
+        )
+        if segkey
+        else []
+    )
     page: dict[str, Any] = {
         "model": row,
         "stored": model_registry.counts(session=session, model=row),
@@ -224,6 +297,7 @@ def model_view(
         "range": rng,
         "windows": windows,
         "charts": measure_charts,
+        "marks": marks,
         "provisional": sum(1 for w in windows if not w["settled"]),
         "coverage_svg": charts.bar_chart(
             coverage,
@@ -231,12 +305,14 @@ def model_view(
             chart_id="coverage",
             reference=row.min_coverage,
             reference_label=f"settles at {row.min_coverage:.0%}",
+            marks=marks,
         ),
-        "alerts": _with_rules(session, row, _alerts(session, who, state=ACTIVE, model=row.name)),
-        "rules": [
-            alert_rules.rule_read(r, row.name)
-            for r in alert_rules.list_rules(session=session, model=row)
-        ],
+        "alerts": alerts,
+        "rules": rules,
+        "tag_keys": tag_keys,
+        "segkey": segkey,
+        "seg_columns": seg_columns,
+        "seg_rows": segtable.sort_rows(seg_rows, view.sort, view.descending),
         "implied_svg": None,
         "sweep": None,
     }
@@ -319,7 +395,7 @@ def _advice(
         start=start,
         end=end,
         settled_only=not chosen,
-        beta=1.0,
+        beta=view.beta,
         precision_target=None,
         recall_target=None,
         now=now,
@@ -327,7 +403,9 @@ def _advice(
         filters=filters,
     )
     best = sweep.get("best_fbeta")
-    best_label = f"best F1 at {best['threshold']:.2f}" if best else "no advice"
+    best_label = (
+        f"best {name_of('fbeta', view.beta)} at {best['threshold']:.2f}" if best else "no advice"
+    )
     return {
         "sweep": sweep,
         "best": best,
@@ -388,6 +466,17 @@ def _with_rules(
     for a in alerts:
         a["rule_text"] = rules.get(a["rule_id"], a["rule_id"])
     return alerts
+
+
+def all_alerts(
+    *, session: Session, who: Principal, state: str | None, model: str | None
+) -> list[dict[str, Any]]:
+    """Every matching alert of the project, newest first, each with its rule named."""
+    items = _alerts(session, who, state=state or None, model=model or None)
+    for name in sorted({a["model"] for a in items}):
+        row = model_registry.get(session=session, project_id=who.project_id, name=name)
+        _with_rules(session, row, [a for a in items if a["model"] == name])
+    return items
 
 
 def alerts_view(

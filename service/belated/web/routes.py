@@ -4,7 +4,7 @@ from __future__ import annotations
 
 from datetime import datetime
 from typing import Annotated, Any
-from urllib.parse import quote, urlsplit
+from urllib.parse import quote, urlencode, urlsplit
 
 from fastapi import APIRouter, Form, Query, Request
 from fastapi.responses import HTMLResponse, RedirectResponse, Response
@@ -14,10 +14,11 @@ from belated.api.deps import SessionDep, caller_of
 from belated.api.problems import as_problem
 from belated.clock import now
 from belated.errors import DomainError, Problem
+from belated.metrics import params
 from belated.store import keys
 from belated.store.keys import Principal
 from belated.timeutil import parse_ts
-from belated.web import pages
+from belated.web import export, pages
 
 router = APIRouter(include_in_schema=False)
 COOKIE = "belated_token"
@@ -67,8 +68,21 @@ ENV = Environment(
     trim_blocks=True,
     lstrip_blocks=True,
 )
-ENV.filters.update(num=_num, pct=_pct, when=_when, hours=_hours)
-ENV.globals.update(span=_span)
+
+
+def _count(value: Any) -> str:
+    return f"{value:,}" if isinstance(value, int) else "—"
+
+
+ENV.filters.update(num=_num, pct=_pct, when=_when, hours=_hours, count=_count)
+
+
+def _qs(view: pages.View, **change: Any) -> str:
+    """A query string that keeps the reader's view, with `change` applied."""
+    return urlencode(view.query(**change), doseq=True)
+
+
+ENV.globals.update(span=_span, plural=pages.plural, qs=_qs)
 
 
 def render(
@@ -185,6 +199,37 @@ def overview(request: Request, session: SessionDep) -> Response:
     return render("index.html", signed_in=True, section="models", **page)
 
 
+def _view(
+    granularity: str,
+    start: str | None,
+    end: str | None,
+    segment: list[str] | None,
+    beta: str | None,
+    segments: str | None,
+    sort: str,
+    order: str | None,
+) -> pages.View:
+    """The reader's view from the query; a bad β or order is a 422."""
+    b = 1.0
+    if beta:
+        try:
+            b = params.parse_beta(float(beta), None)
+        except ValueError:
+            raise Problem(422, "'beta': must be a positive number, such as 0.5, 1 or 2") from None
+    if order not in (None, "", "asc", "desc"):
+        raise Problem(422, "'order': must be asc or desc")
+    return pages.View(
+        granularity,
+        start,
+        end,
+        tuple(s for s in segment or [] if s.strip()),
+        beta=b,
+        segkey=segments or None,
+        sort=sort or "value",
+        descending=order == "desc",
+    )
+
+
 @router.get("/models/{name}", response_class=HTMLResponse)
 def model_page(
     name: str,
@@ -194,13 +239,17 @@ def model_page(
     start: str | None = None,
     end: str | None = None,
     segment: Annotated[list[str] | None, Query()] = None,
+    beta: str | None = None,
+    segments: str | None = None,
+    sort: str = "value",
+    order: str | None = None,
 ) -> Response:
     """One model: measures over windows, coverage, estimates, thresholds, delays, alerts."""
     who = viewer(request, session)
     if isinstance(who, Response):
         return who
-    view = pages.View(granularity, start, end, tuple(s for s in segment or [] if s.strip()))
     try:
+        view = _view(granularity, start, end, segment, beta, segments, sort, order)
         page = pages.model_view(
             session=session,
             who=who,
@@ -212,6 +261,50 @@ def model_page(
     except (Problem, DomainError) as problem:
         return _error(problem)
     return render("model.html", signed_in=True, section="models", **page)
+
+
+def _csv(text: str, filename: str) -> Response:
+    return Response(
+        text,
+        media_type="text/csv; charset=utf-8",
+        headers={**HEADERS, "Content-Disposition": f'attachment; filename="{filename}"'},
+    )
+
+
+@router.get("/models/{name}/{table}.csv")
+def model_csv(
+    name: str,
+    table: str,
+    request: Request,
+    session: SessionDep,
+    granularity: str = "day",
+    start: str | None = None,
+    end: str | None = None,
+    segment: Annotated[list[str] | None, Query()] = None,
+    beta: str | None = None,
+    segments: str | None = None,
+    sort: str = "value",
+    order: str | None = None,
+) -> Response:
+    """A table of the model page as CSV, for the same view."""
+    who = viewer(request, session)
+    if isinstance(who, Response):
+        return who
+    if table not in export.TABLES:
+        return _error(Problem(404, f"No table {table!r}; one of {', '.join(export.TABLES)}."))
+    try:
+        view = _view(granularity, start, end, segment, beta, segments, sort, order)
+        page = pages.model_view(
+            session=session,
+            who=who,
+            name=name,
+            view=view,
+            now=now(),
+            max_values=request.app.state.settings.max_segment_values,
+        )
+    except (Problem, DomainError) as problem:
+        return _error(problem)
+    return _csv(export.model_table(page, table), f"{name}-{table}.csv")
 
 
 @router.get("/alerts", response_class=HTMLResponse)
@@ -235,3 +328,24 @@ def alerts_page(
     except (Problem, DomainError) as problem:
         return _error(problem)
     return render("alerts.html", signed_in=True, section="alerts", **page)
+
+
+@router.get("/alerts.csv")
+def alerts_csv(
+    request: Request,
+    session: SessionDep,
+    state: str | None = None,
+    model: str | None = None,
+    table: str = "alerts",
+) -> Response:
+    """The project's alerts (or their breaches) as CSV, every page of them."""
+    who = viewer(request, session)
+    if isinstance(who, Response):
+        return who
+    if table not in ("alerts", "breaches"):
+        return _error(Problem(422, "'table': must be alerts or breaches"))
+    try:
+        items = pages.all_alerts(session=session, who=who, state=state, model=model)
+    except (Problem, DomainError) as problem:
+        return _error(problem)
+    return _csv(export.alerts_table(items, table), f"alerts-{table}.csv")
