@@ -17,6 +17,10 @@ from typing import Any
 import numpy as np
 from sqlalchemy import Engine
 
+from belated.alerts.evaluate import evaluate_rule
+from belated.alerts.tables import Rule
+from belated.store.db import transaction
+from belated.store.tables import ModelRow
 from tests.support.builders import stamp
 from tests.support.models import create_model
 
@@ -90,3 +94,30 @@ def send(tenant: Any, engine: Engine, data: list[Order], **fields: Any) -> str:
     )
     assert r.status_code == 200, r.text
     return model.name
+
+
+def raise_north(tenant: Any, sessions: Any, name: str) -> str:
+    """A weekly precision floor (0.4) per region with a fixed baseline from day 7 to day 14,
+    evaluated once at NOW: only the north breaches, from the week of CHANGE_DAY. Returns the
+    rule's id."""
+    r = tenant.client.post(
+        f"/v1/models/{name}/rules",
+        headers=tenant.headers("admin"),
+        json={
+            "kind": "floor",
+            "measure": "precision",
+            "granularity": "week",
+            "threshold": 0.4,
+            "min_support": 1,
+            "segment_by": "region",
+            "baseline": {
+                "start": stamp(FIRST_DAY + timedelta(days=7)),
+                "end": stamp(FIRST_DAY + timedelta(days=14)),
+            },
+        },
+    )
+    assert r.status_code == 201, r.text
+    with transaction(sessions) as session:
+        rule = session.get(Rule, r.json()["id"])
+        evaluate_rule(session, rule, session.get(ModelRow, rule.model_id), NOW, 100)
+    return str(r.json()["id"])

@@ -22,11 +22,7 @@ import pytest
 from sklearn.metrics import fbeta_score, precision_score, recall_score
 from sqlalchemy import Engine
 
-from belated.alerts.evaluate import evaluate_rule
-from belated.alerts.tables import Rule
 from belated.clock import clock
-from belated.store.db import transaction
-from belated.store.tables import ModelRow
 from tests.conftest import LiveServer, Tenant, make_tenant
 from tests.support import regions
 from tests.support.builders import stamp
@@ -41,25 +37,7 @@ def shop(live: LiveServer, sessions: Any, engine: Engine) -> Iterator[tuple[Tena
     with httpx.Client(base_url=live.url, timeout=60) as http:
         tenant = make_tenant(sessions, http)
         name = regions.send(tenant, engine, regions.orders())
-        r = http.post(
-            f"/v1/models/{name}/rules",
-            json={
-                "kind": "floor",
-                "measure": "precision",
-                "granularity": "week",
-                "threshold": 0.4,
-                "min_support": 1,
-                "segment_by": "region",
-                "baseline": {
-                    "start": stamp(FIRST_DAY + timedelta(days=7)),
-                    "end": stamp(FIRST_DAY + timedelta(days=14)),
-                },
-            },
-        )
-        assert r.status_code == 201, r.text
-        with transaction(sessions) as session:
-            rule = session.get(Rule, r.json()["id"])
-            evaluate_rule(session, rule, session.get(ModelRow, rule.model_id), NOW, 100)
+        regions.raise_north(tenant, sessions, name)
         yield tenant, name
     clock.set(None)
 
