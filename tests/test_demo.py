@@ -24,7 +24,7 @@ import pytest
 from tests.conftest import STORES, create_pg_database, drop_pg_database, pg_url
 
 BELATED = Path(sys.executable).with_name("belated")
-DAYS, SEED, CHANGE_DAY = 75, 7, 60
+DAYS, SEED, CHANGE_DAY = 90, 1, 60
 KEYS = ("url", "token", "admin token", "store")
 
 

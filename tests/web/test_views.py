@@ -87,6 +87,15 @@ def test_without_rules_the_range_starts_at_the_first_prediction_at_most_120_days
         assert r.status_code == 200, r.text
         start, end = _shown(_page(tenant, f"/models/{name}"))
         assert start == (FIRST_DAY + timedelta(days=41 - 120)).isoformat()
+        # a window with a prediction and no label says so, in the singular
+        r = http.post(
+            f"/v1/models/{name}/predictions",
+            json={"predictions": [{"id": "new-1", "ts": stamp(NOW), "score": 0.7}]},
+        )
+        assert r.status_code == 200, r.text
+        html = _page(tenant, f"/models/{name}")
+        assert "nothing labelled yet" in html and "0 of 1 prediction labelled" in html
+        assert "52 predictions stored" in html
 
 
 def test_alerts_are_marked_at_their_first_breached_window_on_every_chart(
@@ -142,6 +151,7 @@ def test_the_segment_table_sorts_marks_breaches_and_downloads(
     last = regions.DAYS - 2
     truth = {r: _truth(data, r, last, 2.0) for r in regions.REGIONS}
     assert [r for r, _ in rows] == sorted(truth, key=lambda r: -truth[r]["precision"])
+    assert f"{regions.DAYS * regions.PER_DAY:,} predictions stored" in html  # 6,400
     assert {r for r, flag in rows if flag} == {"north"}
     # the sort links keep β and the key, and flip the direction of the sorted column
     assert 'href="/models/' in table.group(0) and "beta=2" in table.group(0)

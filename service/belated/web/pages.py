@@ -8,7 +8,6 @@ from typing import Any
 
 from sqlalchemy.orm import Session
 
-from belated.alerts import records as alert_records
 from belated.alerts import rules as alert_rules
 from belated.errors import Problem
 from belated.metrics import delays as metric_delays
@@ -19,7 +18,23 @@ from belated.store import model_registry
 from belated.store.keys import Principal
 from belated.store.tables import ModelRow
 from belated.timeutil import parse_ts
-from belated.web import charts, segtable, views
+from belated.web import alert_pages, charts, segtable, views
+from belated.web.alert_pages import alerts_view, all_alerts, baseline_text, describe_rule
+from belated.web.names import NAMES, labelled_text, name_of, num3, plural
+
+__all__ = [
+    "NAMES",
+    "View",
+    "alerts_view",
+    "all_alerts",
+    "baseline_text",
+    "describe_rule",
+    "labelled_text",
+    "model_view",
+    "name_of",
+    "overview",
+    "plural",
+]
 
 CHARTED = {
     "binary": ("precision", "recall", "fbeta", "positive_rate"),
@@ -30,20 +45,9 @@ HEADLINE = {
     "multiclass": ("precision_macro", "recall_macro", "fbeta_macro"),
 }
 IMPLIED = ("precision", "recall")
-NAMES = {
-    "precision": "Precision",
-    "recall": "Recall",
-    "fbeta": "F1",
-    "accuracy": "Accuracy",
-    "positive_rate": "Predicted positive rate",
-    "precision_macro": "Precision (macro)",
-    "recall_macro": "Recall (macro)",
-    "fbeta_macro": "F1 (macro)",
-}
-QUIET = ("start", "end", "windows", "fixed", "frozen")  # said once, in the alert's sentence
-ACTIVE = "raised,noted"  # the alert states that stay in sight until an alert clears
 AXIS = {"hour": "%d %b %H:00", "day": "%d %b", "week": "wk %d %b"}
 PAGE = 500
+ACTIVE = alert_pages.ACTIVE
 
 
 @dataclass(frozen=True)
@@ -75,13 +79,6 @@ class View:
         return {k: v for k, v in out.items() if v not in (None, "", [])}
 
 
-def name_of(measure: str, beta: float = 1.0) -> str:
-    """A reader's name for a measure (F-beta named for its β)."""
-    if measure.startswith("fbeta") and beta != 1.0:
-        return NAMES[measure].replace("F1", f"F{beta:g}")
-    return NAMES.get(measure, measure.replace("_", " "))
-
-
 def _label(iso_start: str, granularity: str) -> str:
     return parse_ts(iso_start).strftime(AXIS[granularity])
 
@@ -94,27 +91,6 @@ def _all_models(session: Session, project_id: int) -> list[ModelRow]:
             session=session, project_id=project_id, after=after, limit=PAGE
         )
         out += rows
-        if after is None:
-            return out
-
-
-def _alerts(
-    session: Session, who: Principal, *, state: str | None, model: str | None
-) -> list[dict[str, Any]]:
-    """Every alert that matches, newest first (all pages)."""
-    out: list[dict[str, Any]] = []
-    after: int | None = None
-    while True:
-        items, after = alert_records.list_alerts(
-            session=session,
-            project_id=who.project_id,
-            state=state,
-            model=model,
-            since=None,
-            after=after,
-            limit=PAGE,
-        )
-        out += items
         if after is None:
             return out
 
@@ -138,7 +114,7 @@ def overview(*, session: Session, who: Principal, now: datetime, max_values: int
     """The project's models, each with its latest settled day and its active alerts (raised
     and noted: a noted alert stays in sight until it clears)."""
     active: dict[str, dict[str, int]] = {}
-    for alert in _alerts(session, who, state=ACTIVE, model=None):
+    for alert in alert_pages.list_all(session, who, state=ACTIVE, model=None):
         counts = active.setdefault(alert["model"], {"raised": 0, "noted": 0})
         counts[alert["state"]] += 1
     rng = params.parse_range("day", None, None, now)
@@ -180,9 +156,9 @@ def _series(
             # the honest number first: what the window will read once its labels are in,
             # with the labelled-only value and the coverage bounds beside it
             bounds = (w.get("bounds") or {}).get(measure) or {}
-            beside = f"labelled only {_num(m.get('value'))} ({note})"
+            beside = f"labelled only {num3(m.get('value'))} ({note})"
             if bounds.get("low") is not None:
-                beside += f"; coverage bounds [{_num(bounds['low'])}, {_num(bounds['high'])}]"
+                beside += f"; coverage bounds [{num3(bounds['low'])}, {num3(bounds['high'])}]"
             m, note = proj, f"projected; {beside}"
         out.append(
             charts.Point(
@@ -197,20 +173,6 @@ def _series(
             )
         )
     return out
-
-
-def _num(x: float | None) -> str:
-    return "-" if x is None else f"{x:.3f}"
-
-
-def plural(n: int, word: str) -> str:
-    """`n word` with thousands separators, the word in the plural unless n is 1."""
-    return f"{n:,} {word}" if n == 1 else f"{n:,} {word}s"
-
-
-def labelled_text(w: dict[str, Any]) -> str:
-    """How much of a window is labelled, as a reader says it."""
-    return f"{w['labelled']:,} of {plural(w['predictions'], 'prediction')} labelled"
 
 
 # measures that share one y-axis across the panels (all proportions read side by side)
@@ -233,7 +195,9 @@ def model_view(
         rng = views.default_range(session, row, view.granularity, rules, now)
     windows = _windows(session, row, rng, now, max_values, filters, view.beta)
     g = view.granularity
-    alerts = _with_rules(session, row, _alerts(session, who, state=ACTIVE, model=row.name))
+    alerts = alert_pages.with_rules(
+        session, row, alert_pages.list_all(session, who, state=ACTIVE, model=row.name)
+    )
     marks = views.alert_marks(alerts, g)  # a model's markers join these when they exist
     series = {m: _series(windows, m, g) for m in CHARTED[row.kind]}
     shared = [
@@ -419,84 +383,3 @@ def _advice(
             current=row.threshold,
         ),
     }
-
-
-def describe_rule(rule: Any) -> str:
-    """One plain sentence for a rule."""
-    m = name_of(rule.measure) if rule.measure else ""
-    text = {
-        "floor": f"{m} under {rule.threshold}"
-        + (" (upper interval end)" if rule.mode == "confident" else ""),
-        "drop": f"{m} more than {rule.tolerance} under its baseline at α = {rule.alpha}",
-        "shift": f"{m} moved by at least {rule.threshold} from its baseline",
-        "traffic": f"predictions outside [{rule.low}, {rule.high}]",
-        "stall": (
-            f"coverage of old windows under {rule.threshold}"
-            if rule.threshold is not None
-            else f"no label for {rule.max_silence_hours} h"
-        ),
-    }.get(rule.kind, rule.kind)
-    seg = f", per {rule.segment_by}" if rule.segment_by else ""
-    return f"{text} (per {rule.granularity}{seg})"
-
-
-def baseline_text(baseline: dict[str, Any] | None) -> str:
-    """What a breach was compared with, in a few words (the period is in the sentence)."""
-    parts = []
-    for key, value in (baseline or {}).items():
-        if key in QUIET:
-            continue
-        if isinstance(value, dict):
-            parts.append(f"{key.replace('_', ' ')}: {len(value)} values")
-        elif isinstance(value, int | float) and not isinstance(value, bool):
-            parts.append(f"{key.replace('_', ' ')} {value:.3f}".rstrip("0").rstrip("."))
-        elif value is not None:
-            parts.append(f"{key.replace('_', ' ')} {value}")
-    return "; ".join(parts) or "—"
-
-
-def _with_rules(
-    session: Session, row: ModelRow, alerts: list[dict[str, Any]]
-) -> list[dict[str, Any]]:
-    """Name the rule of each alert of a model (retired rules included) as `rule_text`."""
-    rules = {
-        r.id: describe_rule(alert_rules.rule_read(r, row.name))
-        for r in alert_rules.list_rules(session=session, model=row, retired=True)
-    }
-    for a in alerts:
-        a["rule_text"] = rules.get(a["rule_id"], a["rule_id"])
-    return alerts
-
-
-def all_alerts(
-    *, session: Session, who: Principal, state: str | None, model: str | None
-) -> list[dict[str, Any]]:
-    """Every matching alert of the project, newest first, each with its rule named."""
-    items = _alerts(session, who, state=state or None, model=model or None)
-    for name in sorted({a["model"] for a in items}):
-        row = model_registry.get(session=session, project_id=who.project_id, name=name)
-        _with_rules(session, row, [a for a in items if a["model"] == name])
-    return items
-
-
-def alerts_view(
-    *, session: Session, who: Principal, state: str | None, model: str | None, after: int | None
-) -> dict[str, Any]:
-    """A page of the project's alerts, newest first, each with its rule and breaches."""
-    items, more = alert_records.list_alerts(
-        session=session,
-        project_id=who.project_id,
-        state=state or None,
-        model=model or None,
-        since=None,
-        after=after,
-        limit=50,
-    )
-    for name in sorted({a["model"] for a in items}):
-        row = model_registry.get(session=session, project_id=who.project_id, name=name)
-        _with_rules(session, row, [a for a in items if a["model"] == name])
-    for a in items:
-        a["breaches"] = [
-            {**b, "baseline_text": baseline_text(b["baseline"])} for b in a["breaches"][::-1]
-        ]
-    return {"alerts": items, "state": state or "", "model": model or "", "next": more}
