@@ -174,3 +174,92 @@ def check_pages(
         shoot(driver, shots, "alerts", width)
     assert console_errors(driver) == []
     print(f"screenshots in {shots}")
+
+
+def test_the_model_page_shows_change_in_a_real_browser(
+    live: LiveServer, sessions: Any, engine: Engine, browser: webdriver.Chrome, tmp_path: Path
+) -> None:
+    """Data: tests/support/regions.py (a north-only precision drop from day 21)."""
+    import csv
+    import io
+    import time
+    from datetime import timedelta
+
+    from belated.clock import clock
+    from tests.support import regions
+
+    clock.set(regions.NOW)
+    try:
+        with httpx.Client(base_url=live.url, timeout=60) as http:
+            tenant = make_tenant(sessions, http)
+            name = regions.send(tenant, engine, regions.orders())
+            regions.raise_north(tenant, sessions, name)
+        driver, url = browser, live.url
+        driver.get(f"{url}/signin")
+        driver.find_element(By.ID, "token").send_keys(tenant.tokens["read"])
+        driver.find_element(By.CSS_SELECTOR, "form[action='/signin'] button").click()
+        WebDriverWait(driver, 20).until(ec.url_to_be(url + "/"))
+        # the default range: from the rule's baseline (day 7) to now, with no date typed
+        driver.get(f"{url}/models/{name}")
+        shown = driver.find_element(By.ID, "shown")
+        assert (
+            shown.get_attribute("data-start") == (regions.FIRST_DAY + timedelta(days=7)).isoformat()
+        )
+        # one alert mark per chart over windows; focusing it names the alert
+        for cid in ("m-precision", "m-recall", "m-fbeta", "m-positive_rate", "coverage"):
+            assert count(driver, f"svg#{cid} g.mark.alert") == 1, cid
+        mark = driver.find_element(By.CSS_SELECTOR, "svg#m-precision g.mark.alert")
+        driver.execute_script("arguments[0].focus()", mark)
+        focused = driver.execute_script("return document.activeElement")
+        assert focused == mark
+        said = driver.execute_script("return arguments[0].querySelector('title').textContent", mark)
+        assert "region:north" in said and "alert raised" in said
+        # the segment table: north marked; sorting by precision, then flipped
+        table = driver.find_element(By.ID, "segment-table")
+        assert table.get_attribute("data-key") == "region"
+        assert [
+            r.get_attribute("data-value")
+            for r in driver.find_elements(By.CSS_SELECTOR, "#segment-table tr[data-breached]")
+        ] == ["north"]
+
+        def column(key: str) -> list[float]:
+            cells = driver.find_elements(By.CSS_SELECTOR, f"#segment-table td[data-col='{key}']")
+            return [float(c.text) for c in cells]
+
+        driver.find_element(By.CSS_SELECTOR, "#segment-table a[data-sort='precision']").click()
+        WebDriverWait(driver, 20).until(ec.url_contains("sort=precision"))
+        desc = column("precision")
+        assert "order=desc" in driver.current_url and desc == sorted(desc, reverse=True)
+        driver.find_element(By.CSS_SELECTOR, "#segment-table a[data-sort='precision']").click()
+        WebDriverWait(driver, 20).until(ec.url_contains("order=asc"))
+        assert column("precision") == sorted(desc)
+        # the β control: F2, kept in the address
+        beta = driver.find_element(By.ID, "beta")
+        beta.clear()
+        beta.send_keys("2")
+        driver.find_element(By.CSS_SELECTOR, "form.range.sheet button[type='submit']").click()
+        WebDriverWait(driver, 20).until(ec.url_contains("beta=2"))
+        title = driver.find_element(By.CSS_SELECTOR, "figure[data-measure='fbeta'] h3").text
+        assert title == "F2"
+        assert driver.find_element(By.ID, "beta").get_attribute("value") == "2"
+        # CSV download of the segment table, by the browser itself
+        folder = tmp_path / "downloads"
+        folder.mkdir()
+        driver.execute_cdp_cmd(
+            "Browser.setDownloadBehavior", {"behavior": "allow", "downloadPath": str(folder)}
+        )
+        link = driver.find_element(
+            By.CSS_SELECTOR, "section[aria-labelledby='segments-title'] a.csv"
+        )
+        assert "beta=2" in (link.get_attribute("href") or "")
+        link.click()
+        target = folder / f"{name}-segments.csv"
+        deadline = time.monotonic() + 60
+        while not target.exists() and time.monotonic() < deadline:
+            time.sleep(0.2)
+        rows = list(csv.DictReader(io.StringIO(target.read_text())))
+        assert sorted(r["value"] for r in rows) == sorted(regions.REGIONS)
+        assert [r["value"] for r in rows if r["breached"]] == ["north"]
+        assert console_errors(driver) == []
+    finally:
+        clock.set(None)

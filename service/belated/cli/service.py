@@ -146,10 +146,18 @@ def rebuild(
 
 def demo(
     days: int = typer.Option(90, min=14, max=365, help="Days of orders to generate."),
-    seed: int = typer.Option(1, help="Seed of the generator."),
+    seed: int = typer.Option(1, help="Seed of the generator (the same seed, the same story)."),
     port: int = typer.Option(8000, help="Port to serve on (0: any free port)."),
+    database_url: str | None = typer.Option(
+        None, help="The store to use; default ./belated-demo.db (replaced on each run)."
+    ),
 ) -> None:
-    """Run the furniture-shop demo on a fresh SQLite file and keep serving it."""
+    """Run the furniture-shop demo in ./belated-demo.db and keep serving it."""
     from belated.demo import run
+    from belated.demo.serve import DemoError
 
-    run(days=days, seed=seed, port=port, echo=typer.echo)
+    try:
+        run(days=days, seed=seed, port=port, echo=typer.echo, database_url=database_url)
+    except DemoError as exc:
+        typer.echo(f"belated demo: {exc}", err=True)
+        raise typer.Exit(1) from None

@@ -4,13 +4,13 @@ the orders and their outcomes, then the shop's alert rules."""
 from __future__ import annotations
 
 import threading
-from datetime import timedelta
+import time
+from datetime import datetime, timedelta
 from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
 from typing import Any
 
 import httpx
 
-from belated.clock import now
 from belated.demo import shop
 
 MODEL = "returns-v2"
@@ -70,8 +70,22 @@ class _Sink(BaseHTTPRequestHandler):
         pass
 
 
-def feed(base: str, token: str, days: int, seed: int, echo: Any) -> None:
-    """Create the model, rules and webhook; send the days of orders and their outcomes."""
+BATCH = 10_000
+
+
+def _send(http: httpx.Client, path: str, key: str, rows: list[Any], echo: Any) -> None:
+    """Post the rows in batches, printing rows sent and rows per second after each."""
+    t0 = time.perf_counter()
+    for i in range(0, len(rows), BATCH):
+        http.post(path, json={key: rows[i : i + BATCH]}).raise_for_status()
+        done = min(i + BATCH, len(rows))
+        rate = done / max(time.perf_counter() - t0, 1e-9)
+        echo(f"sending {key}: {done:,} of {len(rows):,} rows ({rate:,.0f} rows/s)")
+
+
+def feed(base: str, token: str, days: int, seed: int, end: datetime, echo: Any) -> None:
+    """Create the model, rules and webhook; send the days of orders ending at `end` and the
+    outcomes learnt by then."""
     http = httpx.Client(base_url=base, headers={"Authorization": f"Bearer {token}"}, timeout=120)
     http.post(
         "/v1/models",
@@ -88,26 +102,19 @@ def feed(base: str, token: str, days: int, seed: int, echo: Any) -> None:
     http.post(
         "/v1/webhooks", json={"url": f"http://127.0.0.1:{sink.server_port}/returns-alerts"}
     ).raise_for_status()
-    current = now()
-    first = current - timedelta(days=days)
+    first = end - timedelta(days=days)
     reference = (
         first + timedelta(days=shop.CHANGE_DAY - 30),
         first + timedelta(days=shop.CHANGE_DAY - 2),
     )
     preds, labels = [], []
-    for order in shop.orders(days=days, seed=seed, end=current):
+    for order in shop.orders(days=days, seed=seed, end=end):
         preds.append(shop.prediction(order))
-        if order.outcome_at is not None and order.outcome_at <= current:
+        if order.outcome_at is not None and order.outcome_at <= end:
             labels.append(shop.label(order))
-    for i in range(0, len(preds), 10_000):
-        http.post(
-            f"/v1/models/{MODEL}/predictions", json={"predictions": preds[i : i + 10_000]}
-        ).raise_for_status()
-    for i in range(0, len(labels), 10_000):
-        http.post(
-            f"/v1/models/{MODEL}/labels", json={"labels": labels[i : i + 10_000]}
-        ).raise_for_status()
+    _send(http, f"/v1/models/{MODEL}/predictions", "predictions", preds, echo)
+    _send(http, f"/v1/models/{MODEL}/labels", "labels", labels, echo)
     # rules come last, so that no evaluation sees the history half sent
     for rule in rules(reference[0].isoformat(), reference[1].isoformat()):
         http.post(f"/v1/models/{MODEL}/rules", json=rule).raise_for_status()
-    echo(f"sent {len(preds)} orders and {len(labels)} outcomes", err=True)
+    echo(f"sent {len(preds):,} orders and {len(labels):,} outcomes")

@@ -14,6 +14,11 @@ then on are its sofas. They come back often (q from Beta(4, 6), about 40%), and 
 which has never seen the supplier, scores them on an unrelated signal: 40% of them score
 U(0.35, 0.95), the rest look ordinary. The predicted positive rate in the north jumps the
 same day; recall and precision there fall once the outcomes are in.
+
+The story runs on a fixed calendar: day 0 is a Monday of the story (weekends are days 5 and 6
+of each story week), and the whole calendar is shifted by whole days so that it ends at
+`end`. Only the timestamps depend on `end`; every order, score, tag and outcome comes from the
+seed alone.
 """
 
 from __future__ import annotations
@@ -57,11 +62,10 @@ def _expit(x: np.ndarray) -> np.ndarray:
 def orders(*, days: int, seed: int, end: datetime, per_day: int = 1500) -> Iterator[Order]:
     """Every order of the scenario, day by day, ending at `end`."""
     rng = np.random.default_rng(seed)
-    start = (end - timedelta(days=days)).replace(minute=0, second=0, microsecond=0)
+    start = end - timedelta(days=days)
     for day in range(days):
-        n = int(
-            rng.poisson(per_day * (1.15 if (start + timedelta(days=day)).weekday() >= 5 else 1.0))
-        )
+        # the story's own weekdays, not the calendar's, so that the seed alone sets the counts
+        n = int(rng.poisson(per_day * (1.15 if day % 7 >= 5 else 1.0)))
         region = rng.choice(REGIONS, size=n, p=[0.3, 0.25, 0.25, 0.2])
         channel = rng.choice(CHANNELS, size=n, p=[0.55, 0.35, 0.10])
         risky = rng.random(n) < 0.15

@@ -35,6 +35,17 @@ class Point:
     projected: bool = False
 
 
+@dataclass(frozen=True)
+class Mark:
+    """Something that happened at a window: an alert's first breach (kind "alert"); other
+    kinds (a model's markers) are drawn the same way with their own class."""
+
+    key: str  # the window start the mark sits on
+    text: str  # what hovering or focusing the mark says
+    kind: str = "alert"
+    ref: str = ""  # an id to find it by (data-ref)
+
+
 def _f(x: float) -> str:
     return f"{x:.1f}"
 
@@ -149,18 +160,50 @@ def _zones(fr: _Frame, cid: str, unsettled: Sequence[bool]) -> str:
     return "".join(parts)
 
 
+def _marks(fr: _Frame, keys: Sequence[str], marks: Sequence[Mark]) -> str:
+    """A flag above each marked window: a thin dashed stem and a small diamond the reader can
+    hover or focus (tabindex) to read what it marks."""
+    where = {k: i for i, k in enumerate(keys)}
+    parts = ['<g class="marks">']
+    for m in marks:
+        i = where.get(m.key)
+        if i is None:
+            continue
+        x = fr.x(i)
+        y = TOP + 5
+        parts.append(
+            f'<g class="mark {escape(m.kind)}" tabindex="0" data-kind="{escape(m.kind)}" '
+            f'data-window="{escape(m.key)}" data-ref="{escape(m.ref)}" '
+            f'aria-label="{escape(m.text)}"><title>{escape(m.text)}</title>'
+            f'<line x1="{_f(x)}" x2="{_f(x)}" y1="{_f(y)}" y2="{fr.height - BOTTOM}"/>'
+            f'<path d="M{_f(x)},{_f(y - 5)} L{_f(x + 5)},{_f(y)} L{_f(x)},{_f(y + 5)} '
+            f'L{_f(x - 5)},{_f(y)} Z"/></g>'
+        )
+    parts.append("</g>")
+    return "".join(parts)
+
+
 def _hover(p: Point, text: str) -> str:
     state = "settled" if p.settled else "provisional"
     extra = f"; {p.note}" if p.note else ""
     return f"<title>{escape(f'{p.label}: {text} ({state}{extra})')}</title>"
 
 
-def line_chart(points: Sequence[Point], *, title: str, chart_id: str, css: str = "") -> Markup:
+def line_chart(
+    points: Sequence[Point],
+    *,
+    title: str,
+    chart_id: str,
+    css: str = "",
+    marks: Sequence[Mark] = (),
+    domain: Sequence[float] | None = None,
+) -> Markup:
     """A measure over windows: a line, its interval as a band, settled points filled,
-    provisional points hollow over a hatched zone; None values are gaps."""
+    provisional points hollow over a hatched zone; None values are gaps. `domain`: values to
+    fit the y-axis to (shared by panels of the same measure), else this chart's own."""
     cid = _safe_id(chart_id)
     known = [v for p in points for v in (p.value, p.low, p.high) if v is not None]
-    lo, hi, ticks = nice_domain(known)
+    lo, hi, ticks = nice_domain(list(domain) if domain else known)
     fr = _Frame(len(points), lo, hi)
     defined = [p for p in points if p.value is not None]
     latest = next((p for p in reversed(points) if p.value is not None), None)
@@ -217,7 +260,9 @@ def line_chart(points: Sequence[Point], *, title: str, chart_id: str, css: str =
             f'data-projected="{str(p.projected).lower()}">'
             f"{_hover(p, f'{p.value:.3f}{band}')}</{tag}>"
         )
-    out += ["</g>", _xlabels(fr, [p.label for p in points]), "</svg>"]
+    out.append("</g>")
+    out += [_marks(fr, [p.key for p in points], marks), _xlabels(fr, [p.label for p in points])]
+    out.append("</svg>")
     return Markup("".join(out))
 
 
@@ -276,6 +321,7 @@ def bar_chart(
     reference: float | None = None,
     reference_label: str = "",
     css: str = "",
+    marks: Sequence[Mark] = (),
 ) -> Markup:
     """Shares in [0, 1] as bars (hatched when provisional), with an optional reference line."""
     cid = _safe_id(chart_id)
@@ -310,6 +356,7 @@ def bar_chart(
             f'<text x="{W - RIGHT - 4}" y="{_f(fr.y(reference) - 5)}">'
             f"{escape(reference_label)}</text></g>"
         )
+    out.append(_marks(fr, [p.key for p in points], marks))
     out += [_xlabels(fr, [p.label for p in points]), "</svg>"]
     return Markup("".join(out))
 

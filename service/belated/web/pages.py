@@ -8,8 +8,8 @@ from typing import Any
 
 from sqlalchemy.orm import Session
 
-from belated.alerts import records as alert_records
 from belated.alerts import rules as alert_rules
+from belated.errors import Problem
 from belated.metrics import delays as metric_delays
 from belated.metrics import params
 from belated.metrics import thresholds as metric_thresholds
@@ -18,7 +18,23 @@ from belated.store import model_registry
 from belated.store.keys import Principal
 from belated.store.tables import ModelRow
 from belated.timeutil import parse_ts
-from belated.web import charts
+from belated.web import alert_pages, charts, segtable, views
+from belated.web.alert_pages import alerts_view, all_alerts, baseline_text, describe_rule
+from belated.web.names import NAMES, labelled_text, name_of, num3, plural
+
+__all__ = [
+    "NAMES",
+    "View",
+    "alerts_view",
+    "all_alerts",
+    "baseline_text",
+    "describe_rule",
+    "labelled_text",
+    "model_view",
+    "name_of",
+    "overview",
+    "plural",
+]
 
 CHARTED = {
     "binary": ("precision", "recall", "fbeta", "positive_rate"),
@@ -29,20 +45,9 @@ HEADLINE = {
     "multiclass": ("precision_macro", "recall_macro", "fbeta_macro"),
 }
 IMPLIED = ("precision", "recall")
-NAMES = {
-    "precision": "Precision",
-    "recall": "Recall",
-    "fbeta": "F1",
-    "accuracy": "Accuracy",
-    "positive_rate": "Predicted positive rate",
-    "precision_macro": "Precision (macro)",
-    "recall_macro": "Recall (macro)",
-    "fbeta_macro": "F1 (macro)",
-}
-QUIET = ("start", "end", "windows", "fixed", "frozen")  # said once, in the alert's sentence
-ACTIVE = "raised,noted"  # the alert states that stay in sight until an alert clears
 AXIS = {"hour": "%d %b %H:00", "day": "%d %b", "week": "wk %d %b"}
 PAGE = 500
+ACTIVE = alert_pages.ACTIVE
 
 
 @dataclass(frozen=True)
@@ -53,11 +58,25 @@ class View:
     start: str | None = None
     end: str | None = None
     segment: tuple[str, ...] = field(default_factory=tuple)
+    beta: float = 1.0
+    segkey: str | None = None  # the tag key of the segment table
+    sort: str = "value"
+    descending: bool = False
 
-
-def name_of(measure: str) -> str:
-    """A reader's name for a measure."""
-    return NAMES.get(measure, measure.replace("_", " "))
+    def query(self, **change: Any) -> dict[str, Any]:
+        """This view's query parameters (with `change` applied), for links that keep it."""
+        out: dict[str, Any] = {
+            "granularity": self.granularity,
+            "start": self.start,
+            "end": self.end,
+            "segment": list(self.segment),
+            "beta": f"{self.beta:g}" if self.beta != 1.0 else None,
+            "segments": self.segkey,
+            "sort": self.sort if self.sort != "value" else None,
+            "order": "desc" if self.descending else None,
+        }
+        out.update(change)
+        return {k: v for k, v in out.items() if v not in (None, "", [])}
 
 
 def _label(iso_start: str, granularity: str) -> str:
@@ -76,27 +95,6 @@ def _all_models(session: Session, project_id: int) -> list[ModelRow]:
             return out
 
 
-def _alerts(
-    session: Session, who: Principal, *, state: str | None, model: str | None
-) -> list[dict[str, Any]]:
-    """Every alert that matches, newest first (all pages)."""
-    out: list[dict[str, Any]] = []
-    after: int | None = None
-    while True:
-        items, after = alert_records.list_alerts(
-            session=session,
-            project_id=who.project_id,
-            state=state,
-            model=model,
-            since=None,
-            after=after,
-            limit=PAGE,
-        )
-        out += items
-        if after is None:
-            return out
-
-
 def _windows(
     session: Session,
     row: ModelRow,
@@ -104,10 +102,11 @@ def _windows(
     now: datetime,
     max_values: int,
     filters: tuple[tuple[str, str], ...] = (),
+    beta: float = 1.0,
 ) -> list[dict[str, Any]]:
     wanted = frozenset(CHARTED["binary"]) if row.kind == "binary" else None
     return windows_of_range(
-        session, row, rng, MeasureOptions(measures=wanted), filters, now, max_values
+        session, row, rng, MeasureOptions(beta=beta, measures=wanted), filters, now, max_values
     )
 
 
@@ -115,7 +114,7 @@ def overview(*, session: Session, who: Principal, now: datetime, max_values: int
     """The project's models, each with its latest settled day and its active alerts (raised
     and noted: a noted alert stays in sight until it clears)."""
     active: dict[str, dict[str, int]] = {}
-    for alert in _alerts(session, who, state=ACTIVE, model=None):
+    for alert in alert_pages.list_all(session, who, state=ACTIVE, model=None):
         counts = active.setdefault(alert["model"], {"raised": 0, "noted": 0})
         counts[alert["state"]] += 1
     rng = params.parse_range("day", None, None, now)
@@ -148,15 +147,18 @@ def _series(
     out = []
     for w in windows:
         m = (w.get(section) or {}).get(measure) or {}
-        note = m.get("reason") or f"{w['labelled']} of {w['predictions']} labelled"
+        reason = m.get("reason")
+        if reason and section == "measures" and not w["labelled"] and w["predictions"]:
+            reason = "nothing labelled yet"  # the cause, not the arithmetic's symptom
+        note = reason or labelled_text(w)
         proj = (w.get("projected") or {}).get(measure) if section == "measures" else None
         if proj and proj.get("value") is not None:
             # the honest number first: what the window will read once its labels are in,
             # with the labelled-only value and the coverage bounds beside it
             bounds = (w.get("bounds") or {}).get(measure) or {}
-            beside = f"labelled only {_num(m.get('value'))} ({note})"
+            beside = f"labelled only {num3(m.get('value'))} ({note})"
             if bounds.get("low") is not None:
-                beside += f"; coverage bounds [{_num(bounds['low'])}, {_num(bounds['high'])}]"
+                beside += f"; coverage bounds [{num3(bounds['low'])}, {num3(bounds['high'])}]"
             m, note = proj, f"projected; {beside}"
         out.append(
             charts.Point(
@@ -173,23 +175,43 @@ def _series(
     return out
 
 
-def _num(x: float | None) -> str:
-    return "-" if x is None else f"{x:.3f}"
+# measures that share one y-axis across the panels (all proportions read side by side)
+SHARED_AXIS = {"precision", "recall", "fbeta", "accuracy", "precision_macro", "recall_macro"}
 
 
 def model_view(
     *, session: Session, who: Principal, name: str, view: View, now: datetime, max_values: int
 ) -> dict[str, Any]:
     """Everything the model page shows, for the asked range and segment."""
-    rng = params.parse_range(view.granularity, view.start or None, view.end or None, now)
     filters = params.parse_segments(list(view.segment))
     row = model_registry.get(session=session, project_id=who.project_id, name=name)
-    windows = _windows(session, row, rng, now, max_values, filters)
+    rules = [
+        alert_rules.rule_read(r, row.name)
+        for r in alert_rules.list_rules(session=session, model=row)
+    ]
+    if view.start or view.end:
+        rng = params.parse_range(view.granularity, view.start or None, view.end or None, now)
+    else:
+        rng = views.default_range(session, row, view.granularity, rules, now)
+    windows = _windows(session, row, rng, now, max_values, filters, view.beta)
     g = view.granularity
+    alerts = alert_pages.with_rules(
+        session, row, alert_pages.list_all(session, who, state=ACTIVE, model=row.name)
+    )
+    marks = views.alert_marks(alerts, g)  # a model's markers join these when they exist
+    series = {m: _series(windows, m, g) for m in CHARTED[row.kind]}
+    shared = [
+        v
+        for m, pts in series.items()
+        if m in SHARED_AXIS
+        for p in pts
+        for v in (p.value, p.low, p.high)
+        if v is not None
+    ]
     measure_charts = [
         {
             "measure": m,
-            "title": name_of(m),
+            "title": name_of(m, view.beta),
             "latest": next(
                 (
                     w["measures"].get(m)
@@ -199,10 +221,12 @@ def model_view(
                 None,
             ),
             "svg": charts.line_chart(
-                _series(windows, m, g),
-                title=f"{name_of(m)} by {g}",
+                series[m],
+                title=f"{name_of(m, view.beta)} by {g}",
                 chart_id=f"m-{m}",
                 css=f"m-{m}",
+                marks=marks,
+                domain=shared if m in SHARED_AXIS else None,
             ),
         }
         for m in CHARTED[row.kind]
@@ -213,10 +237,23 @@ def model_view(
             label=_label(w["start"], g),
             value=w["coverage"],
             settled=w["settled"],
-            note=f"{w['labelled']} of {w['predictions']} labelled",
+            note=labelled_text(w),
         )
         for w in windows
     ]
+    tag_keys = segtable.tag_keys(session, row)
+    segkey = segtable.pick_key(tag_keys, view.segkey, alerts)
+    seg_columns = segtable.columns(row.kind, lambda m: name_of(m, view.beta))
+    if view.sort not in {c.key for c in seg_columns}:
+        known = ", ".join(c.key for c in seg_columns)
+        raise Problem(422, f"'sort': no column {view.sort!r} in the segment table; one of {known}")
+    seg_rows = (
+        segtable.rows(
+            session, row, rng, segkey, tag_keys[segkey], alerts, view.beta, now, max_values
+        )
+        if segkey
+        else []
+    )
     page: dict[str, Any] = {
         "model": row,
         "stored": model_registry.counts(session=session, model=row),
@@ -224,6 +261,7 @@ def model_view(
         "range": rng,
         "windows": windows,
         "charts": measure_charts,
+        "marks": marks,
         "provisional": sum(1 for w in windows if not w["settled"]),
         "coverage_svg": charts.bar_chart(
             coverage,
@@ -231,12 +269,14 @@ def model_view(
             chart_id="coverage",
             reference=row.min_coverage,
             reference_label=f"settles at {row.min_coverage:.0%}",
+            marks=marks,
         ),
-        "alerts": _with_rules(session, row, _alerts(session, who, state=ACTIVE, model=row.name)),
-        "rules": [
-            alert_rules.rule_read(r, row.name)
-            for r in alert_rules.list_rules(session=session, model=row)
-        ],
+        "alerts": alerts,
+        "rules": rules,
+        "tag_keys": tag_keys,
+        "segkey": segkey,
+        "seg_columns": seg_columns,
+        "seg_rows": segtable.sort_rows(seg_rows, view.sort, view.descending),
         "implied_svg": None,
         "sweep": None,
     }
@@ -319,7 +359,7 @@ def _advice(
         start=start,
         end=end,
         settled_only=not chosen,
-        beta=1.0,
+        beta=view.beta,
         precision_target=None,
         recall_target=None,
         now=now,
@@ -327,7 +367,9 @@ def _advice(
         filters=filters,
     )
     best = sweep.get("best_fbeta")
-    best_label = f"best F1 at {best['threshold']:.2f}" if best else "no advice"
+    best_label = (
+        f"best {name_of('fbeta', view.beta)} at {best['threshold']:.2f}" if best else "no advice"
+    )
     return {
         "sweep": sweep,
         "best": best,
@@ -341,73 +383,3 @@ def _advice(
             current=row.threshold,
         ),
     }
-
-
-def describe_rule(rule: Any) -> str:
-    """One plain sentence for a rule."""
-    m = name_of(rule.measure) if rule.measure else ""
-    text = {
-        "floor": f"{m} under {rule.threshold}"
-        + (" (upper interval end)" if rule.mode == "confident" else ""),
-        "drop": f"{m} more than {rule.tolerance} under its baseline at α = {rule.alpha}",
-        "shift": f"{m} moved by at least {rule.threshold} from its baseline",
-        "traffic": f"predictions outside [{rule.low}, {rule.high}]",
-        "stall": (
-            f"coverage of old windows under {rule.threshold}"
-            if rule.threshold is not None
-            else f"no label for {rule.max_silence_hours} h"
-        ),
-    }.get(rule.kind, rule.kind)
-    seg = f", per {rule.segment_by}" if rule.segment_by else ""
-    return f"{text} (per {rule.granularity}{seg})"
-
-
-def baseline_text(baseline: dict[str, Any] | None) -> str:
-    """What a breach was compared with, in a few words (the period is in the sentence)."""
-    parts = []
-    for key, value in (baseline or {}).items():
-        if key in QUIET:
-            continue
-        if isinstance(value, dict):
-            parts.append(f"{key.replace('_', ' ')}: {len(value)} values")
-        elif isinstance(value, int | float) and not isinstance(value, bool):
-            parts.append(f"{key.replace('_', ' ')} {value:.3f}".rstrip("0").rstrip("."))
-        elif value is not None:
-            parts.append(f"{key.replace('_', ' ')} {value}")
-    return "; ".join(parts) or "—"
-
-
-def _with_rules(
-    session: Session, row: ModelRow, alerts: list[dict[str, Any]]
-) -> list[dict[str, Any]]:
-    """Name the rule of each alert of a model (retired rules included) as `rule_text`."""
-    rules = {
-        r.id: describe_rule(alert_rules.rule_read(r, row.name))
-        for r in alert_rules.list_rules(session=session, model=row, retired=True)
-    }
-    for a in alerts:
-        a["rule_text"] = rules.get(a["rule_id"], a["rule_id"])
-    return alerts
-
-
-def alerts_view(
-    *, session: Session, who: Principal, state: str | None, model: str | None, after: int | None
-) -> dict[str, Any]:
-    """A page of the project's alerts, newest first, each with its rule and breaches."""
-    items, more = alert_records.list_alerts(
-        session=session,
-        project_id=who.project_id,
-        state=state or None,
-        model=model or None,
-        since=None,
-        after=after,
-        limit=50,
-    )
-    for name in sorted({a["model"] for a in items}):
-        row = model_registry.get(session=session, project_id=who.project_id, name=name)
-        _with_rules(session, row, [a for a in items if a["model"] == name])
-    for a in items:
-        a["breaches"] = [
-            {**b, "baseline_text": baseline_text(b["baseline"])} for b in a["breaches"][::-1]
-        ]
-    return {"alerts": items, "state": state or "", "model": model or "", "next": more}

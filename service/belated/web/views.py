@@ -1,0 +1,84 @@
+"""What the model page opens on, and the marks its charts carry.
+
+The default daily range runs from the rules' earliest baseline (or the model's first
+prediction) to now, at most MAX_DAYS days, and always reaches back to the latest settled
+windows; weekly and hourly views start at their first window with data. Alerts are marked at
+their first breached window. A model's markers (another part of the service) are meant to be
+added to `marks` with kind "marker": the charts draw any kind the same way.
+"""
+
+from __future__ import annotations
+
+from datetime import datetime, timedelta
+from typing import Any
+
+from sqlalchemy import func, select
+from sqlalchemy.orm import Session
+
+from belated.metrics import params
+from belated.store.tables import ModelRow, Prediction
+from belated.timeutil import floor_window, from_db, iso, parse_ts
+from belated.web import charts
+
+MAX_DAYS = 120
+SETTLED_SHOWN = 7  # days of settled windows the default range always reaches back to
+
+
+def first_prediction(session: Session, model: ModelRow) -> datetime | None:
+    """When the model's earliest stored prediction was made (None without any)."""
+    first = session.scalar(select(func.min(Prediction.ts)).where(Prediction.model_id == model.id))
+    return from_db(first)
+
+
+def _baseline_start(rule: Any, end: datetime) -> datetime | None:
+    base = rule.baseline if isinstance(rule.baseline, dict) else {}
+    if base.get("start"):
+        return parse_ts(base["start"])
+    if base.get("windows"):
+        step = params.Range(rule.granularity, end, end).step
+        return end - (int(base["windows"]) + 1) * step
+    return None
+
+
+def default_range(
+    session: Session, model: ModelRow, granularity: str, rules: list[Any], now: datetime
+) -> params.Range:
+    """The range a page opens on when the reader chose none (see the module docstring)."""
+    plain = params.parse_range(granularity, None, None, now)
+    first = first_prediction(session, model)
+    if first is None:
+        return plain
+    first = floor_window(first, granularity)
+    if granularity != "day":
+        begin = max(plain.start, first)
+        return params.Range(granularity, begin, plain.end)
+    starts = [s for s in (_baseline_start(r, plain.end) for r in rules) if s is not None]
+    begin = floor_window(min(starts), "day") if starts else first
+    # reach back to the latest settled windows: a window settles at the latest
+    # label_delay_days after it closes
+    settled_by = plain.end - timedelta(days=model.label_delay_days + SETTLED_SHOWN)
+    begin = min(begin, settled_by)
+    begin = max(begin, first, plain.end - timedelta(days=MAX_DAYS))
+    return params.Range("day", min(begin, plain.end - plain.step), plain.end)
+
+
+def alert_marks(alerts: list[dict[str, Any]], granularity: str) -> list[charts.Mark]:
+    """One mark per alert at the window (of the page's granularity) holding its first
+    breach; its text names the alert."""
+    out = []
+    for a in alerts:
+        breached = [b for b in a.get("breaches") or [] if b.get("breached")]
+        if not breached:
+            continue
+        first = min(parse_ts(b["window_start"]) for b in breached)
+        where = f" on {a['segment']}" if a.get("segment") else ""
+        text = f"alert {a['state']}{where}: {a.get('description') or a.get('rule_text', '')}"
+        out.append(
+            charts.Mark(
+                key=iso(floor_window(first, granularity)),
+                text=f"{text} (first breach {first:%d %b %Y})",
+                kind="alert",
+                ref=str(a["id"]),
+            )
+        )
+    return out
