@@ -69,7 +69,7 @@ class GroupWriter:
     """A bounded queue of small batches and the thread(s) that store them in groups."""
 
     def __init__(
-        self, sessions: sessionmaker[Session], *, threads: int = 2, max_queued: int = 2000
+        self, sessions: sessionmaker[Session], *, threads: int = 4, max_queued: int = 2000
     ) -> None:
         self.sessions = sessions
         self.threads = threads
