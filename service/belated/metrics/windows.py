@@ -2,8 +2,9 @@
 
 from __future__ import annotations
 
+from bisect import bisect_right
 from dataclasses import dataclass
-from datetime import UTC, datetime, timedelta
+from datetime import UTC, datetime, timedelta, tzinfo
 from typing import Any
 
 import numpy as np
@@ -16,6 +17,7 @@ from belated.metrics.arrival import (
     projected,
     settled_by_class,
 )
+from belated.metrics.drift import baseline_against, drift_block, not_binary, reference_against
 from belated.metrics.implied import implied_blocks, reference_prior
 from belated.metrics.load import ensure_fresh, epoch_hour, load_totals
 from belated.metrics.params import Range
@@ -26,7 +28,7 @@ from belated.stats.window import WindowStats
 from belated.store.statistics import HISTOGRAM_BY_NAME, SCALARS, SCORE_CLASSES
 from belated.store.tables import ModelRow
 from belated.store.totals import Totals
-from belated.timeutil import iso
+from belated.zones import DEFAULT_ZONE, local_iso
 
 CALIBRATION_WINDOWS = 7
 
@@ -41,6 +43,8 @@ class MeasureOptions:
     resamples: int = 200
     measures: frozenset[str] | None = None
     rolling: int = 1
+    # drift against this [start, end) in place of the model's reference
+    baseline: tuple[datetime, datetime] | None = None
 
 
 def to_stats(totals: Totals) -> WindowStats:
@@ -71,24 +75,24 @@ def window_rows(
     now: datetime,
 ) -> tuple[list[datetime], list[list[Cohort]]]:
     """The rollup rows of each base window of the range and of `lookback` windows before it
-    (the caller has refreshed the range: see `ensure_fresh`)."""
-    step = rng.step
-    first = rng.start - lookback * step
-    starts = [first + i * step for i in range(int((rng.end - first) / step))]
-    lo, hi = epoch_hour(first), epoch_hour(rng.end)
-    level = "h" if rng.granularity == "hour" else "d"
-    length = timedelta(hours=1 if level == "h" else 24)
+    (the caller has refreshed the range: see `ensure_fresh`).
+
+    Daily rollup rows are UTC days: they answer day and week windows only when every window
+    boundary is a UTC midnight (a UTC model, or a zone at offset 0 over the whole range);
+    otherwise a local day is the sum of its UTC hours."""
+    bounds = rng.bounds(lookback)
+    starts = bounds[:-1]
+    hours = [epoch_hour(b) for b in bounds]
+    daily = rng.granularity != "hour" and all(h % 24 == 0 for h in hours)
+    level = "d" if daily else "h"
+    length = timedelta(hours=24 if daily else 1)
     rows = load_totals(
-        session, model, level=level, lo=lo, hi=hi, filters=filters, now=now, delays=False
-    )
+        session, model, level=level, lo=hours[0], hi=hours[-1], filters=filters, now=now,
+        delays=False,
+    )  # fmt: skip
     parts: list[list[Cohort]] = [[] for _ in starts]
-    index = {epoch_hour(s): i for i, s in enumerate(starts)}
-    span = int(step / timedelta(hours=1))
-    base = epoch_hour(first)
     for start, totals in sorted(rows.items()):
-        i = index.get(start)
-        if i is None:
-            i = (start - base) // span
+        i = bisect_right(hours, start) - 1
         if 0 <= i < len(parts):
             parts[i].append((datetime.fromtimestamp(start * 3600, UTC), length, totals))
     return starts, parts
@@ -141,17 +145,20 @@ def windows_of_range(
     now: datetime,
     max_values: int,
 ) -> list[dict[str, Any]]:
-    """The windows of the range, oldest first, contiguous (empty ones have zero counts)."""
+    """The windows of the range, oldest first, contiguous (empty ones have zero counts).
+
+    Day and week windows start at midnight in the model's `time_zone` (a range aligned in
+    another zone is aligned again); a rolling window spans from its first part's start."""
+    rng = rng.in_zone(model.time_zone or DEFAULT_ZONE)
+    tz = rng.tz
     lookback = opts.rolling - 1 + CALIBRATION_WINDOWS * 2
-    lo, hi = epoch_hour(rng.start - lookback * rng.step), epoch_hour(rng.end)
+    lo, hi = epoch_hour(rng.bounds(lookback)[0]), epoch_hour(rng.end)
     ensure_fresh(session, model, lo, hi, max_values)
     curves = curves_of(session, model, now)
     starts, rows = window_rows(session, model, rng, lookback, filters, now)
+    ends = [*starts[1:], rng.end]
     base = [_sum(r) for r in rows]
-    step = rng.step
-    settled = [
-        settled_window(a, s + step, model, now, curves) for a, s in zip(base, starts, strict=True)
-    ]
+    settled = [settled_window(a, e, model, now, curves) for a, e in zip(base, ends, strict=True)]
     out: list[dict[str, Any]] = []
     # (window, its statistics, the calibration error of the trailing settled windows)
     binary: list[tuple[dict[str, Any], WindowStats, float | None]] = []
@@ -161,8 +168,7 @@ def windows_of_range(
         acc = Totals()
         for j in parts:
             acc.add(base[j])
-        start, end = starts[i], starts[i] + step
-        window = _counts_block(acc, start, end, now)
+        window = _counts_block(acc, starts[parts[0]], ends[i], now, tz)
         window["settled"] = all(settled[j] for j in parts)
         window.update(
             _late_labels(window, [c for j in parts for c in rows[j]], curves, model, now, opts)
@@ -172,6 +178,7 @@ def windows_of_range(
             binary.append((window, to_stats(acc), ece_value))
         else:
             window.update(_multiclass(model, acc, opts))
+            window["drift"] = not_binary()
         out.append(window)
     if binary:
         # every binary window in one vectorised pass; each answer equals summarise() alone
@@ -185,10 +192,16 @@ def windows_of_range(
         )
         prior, period = reference_prior(session, model, now)
         implied = implied_blocks([b[1] for b in binary], model, prior, opts.beta)
-        for (window, _, ece), summary, block in zip(binary, summaries, implied, strict=True):
+        against = (
+            reference_against(session, model, period, filters, now)
+            if opts.baseline is None
+            else baseline_against(session, model, opts.baseline, filters, now, max_values)
+        )
+        for (window, stats, ece), summary, block in zip(binary, summaries, implied, strict=True):
             summary.pop("implied", None)
             window.update(summary)
             window["implied"] = {**block, "calibration_error": ece, "reference": period}
+            window["drift"] = drift_block(against, stats.hist_all, stats.n_pred, stats.n_pred_pos)
     return out
 
 
@@ -249,11 +262,13 @@ def _references(base: list[Totals], settled: list[bool]) -> list[tuple[float | N
     return out
 
 
-def _counts_block(acc: Totals, start: datetime, end: datetime, now: datetime) -> dict[str, Any]:
+def _counts_block(
+    acc: Totals, start: datetime, end: datetime, now: datetime, tz: tzinfo
+) -> dict[str, Any]:
     n, labelled = acc["n_pred"], acc["n_labelled"]
     return {
-        "start": iso(start),
-        "end": iso(end),
+        "start": local_iso(start, tz),
+        "end": local_iso(end, tz),
         "closed": end <= now,
         "predictions": n,
         "labelled": labelled,
