@@ -105,3 +105,17 @@ def test_a_utc_range_aligned_again_in_a_zone_covers_its_local_days() -> None:
     assert local.start == datetime(2026, 10, 23, tzinfo=chicago)
     assert local.end == datetime(2026, 10, 27, tzinfo=chicago)
     assert rng.in_zone("UTC") == rng
+
+
+def test_a_day_whose_midnight_falls_in_the_gap_starts_after_it() -> None:
+    # Chile springs forward at 24:00 on the first Saturday of September (IANA tz database,
+    # file `southamerica`): 6 September 2026 has no 00:00 in Santiago; its day starts at
+    # 01:00 (-03:00), lasts 23 hours, and every instant of it floors there
+    tz, ref = zone("America/Santiago"), ZoneInfo("America/Santiago")
+    start = floor_local(datetime(2026, 9, 6, 12, tzinfo=ref), "day", tz)
+    assert local_iso(start, tz) == "2026-09-06T01:00:00-03:00"
+    assert start == datetime(2026, 9, 6, 4, tzinfo=UTC)
+    assert (shift(start, "day", 1, tz) - start) == timedelta(hours=23)
+    assert shift(start, "day", -1, tz) == datetime(2026, 9, 5, tzinfo=ref)
+    # the zone is whole hours throughout: accepted
+    assert zone_problem("America/Santiago") is None
