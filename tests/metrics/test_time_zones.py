@@ -57,14 +57,33 @@ def _times(name: str, seed: int) -> np.ndarray:
     return np.sort(np.concatenate(out))
 
 
-def _send(tenant: Tenant, model: str, ts: np.ndarray, seed: int) -> np.ndarray:
-    scores = np.random.default_rng(seed + 1).uniform(0, 1, len(ts))
+def _send(
+    tenant: Tenant, model: str, ts: np.ndarray, seed: int, labels: bool = False
+) -> tuple[np.ndarray, np.ndarray]:
+    """Uniform scores, and the outcomes (returned with probability score), sent as labels
+    when `labels` is set."""
+    rng = np.random.default_rng(seed + 1)
+    scores = rng.uniform(0, 1, len(ts))
     items = [
         {"id": f"order-{i}", "ts": stamp(datetime.fromtimestamp(t, UTC)), "score": float(s)}
         for i, (t, s) in enumerate(zip(ts, scores, strict=True))
     ]
     send(tenant.client, model, "predictions", items)
-    return scores
+    actual = rng.random(len(ts)) < scores
+    if labels:
+        outcomes = [{"id": f"order-{i}", "actual": int(a)} for i, a in enumerate(actual)]
+        send(tenant.client, model, "labels", outcomes)
+    return scores, actual
+
+
+def _confusion(scores: np.ndarray, actual: np.ndarray, rows_: np.ndarray) -> dict[str, int]:
+    flagged = scores >= 0.5
+    return {
+        "tp": int((rows_ & flagged & actual).sum()),
+        "fp": int((rows_ & flagged & ~actual).sum()),
+        "fn": int((rows_ & ~flagged & actual).sum()),
+        "tn": int((rows_ & ~flagged & ~actual).sum()),
+    }
 
 
 def _local_days(ts: np.ndarray, name: str) -> Counter[date]:
@@ -86,7 +105,7 @@ def test_days_and_weeks_start_at_local_midnight_and_count_their_local_prediction
     seed = 20261129 + len(name)
     model = create_model(tenant, engine, time_zone=name)
     ts = _times(name, seed)
-    scores = _send(tenant, model.name, ts, seed)
+    scores, actual = _send(tenant, model.name, ts, seed, labels=True)
     per_day = _local_days(ts, name)
     for change in CHANGES[name]:
         first, last = change - timedelta(days=SPAN_DAYS), change + timedelta(days=SPAN_DAYS)
@@ -111,6 +130,7 @@ def test_days_and_weeks_start_at_local_midnight_and_count_their_local_prediction
             )
             rate = float((scores[local] >= 0.5).mean())
             assert w["measures"]["positive_rate"]["value"] == pytest.approx(rate, rel=1e-12)
+            assert w["confusion"] == _confusion(scores, actual, local)
         # weeks: Monday local midnight, each holding its local days' predictions
         monday = first - timedelta(days=first.weekday())
         weeks = _metrics(
@@ -126,6 +146,16 @@ def test_days_and_weeks_start_at_local_midnight_and_count_their_local_prediction
             assert begin.astimezone(tz).time() == datetime.min.time()
             week_days = {begin.astimezone(tz).date() + timedelta(days=k) for k in range(7)}
             assert w["predictions"] == sum(per_day[d] for d in week_days)
+            # a week sums the UTC days inside it and the hours of the days its ends cut
+            inside = np.array(
+                [datetime.fromtimestamp(t, UTC).astimezone(tz).date() in week_days for t in ts]
+            )
+            if inside.any():
+                rate = float((scores[inside] >= 0.5).mean())
+                assert w["measures"]["positive_rate"]["value"] == pytest.approx(rate, rel=1e-12)
+                assert w["confusion"] == _confusion(scores, actual, inside)
+                brier = float(np.mean((scores[inside] - actual[inside]) ** 2))
+                assert w["measures"]["brier"]["value"] == pytest.approx(brier, rel=1e-9)
     # rollups stay per UTC hour: the daily rows are UTC days
     starts = rows(
         engine,

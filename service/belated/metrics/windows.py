@@ -19,7 +19,7 @@ from belated.metrics.arrival import (
 )
 from belated.metrics.drift import baseline_against, drift_block, not_binary, reference_against
 from belated.metrics.implied import implied_blocks, reference_prior
-from belated.metrics.load import ensure_fresh, epoch_hour, load_totals
+from belated.metrics.load import ensure_fresh, epoch_hour, load_hour_spans, load_totals
 from belated.metrics.params import Range
 from belated.stats.calibration import ece_arrays
 from belated.stats.multiclass import summarise_multiclass
@@ -77,25 +77,51 @@ def window_rows(
     """The rollup rows of each base window of the range and of `lookback` windows before it
     (the caller has refreshed the range: see `ensure_fresh`).
 
-    Daily rollup rows are UTC days: they answer day and week windows only when every window
-    boundary is a UTC midnight (a UTC model, or a zone at offset 0 over the whole range);
-    otherwise a local day is the sum of its UTC hours."""
+    Daily rollup rows are UTC days. A day or week window takes the daily rows of the UTC
+    days that lie wholly inside it, and the hourly rows of a UTC day that a window boundary
+    cuts (a local midnight that is not a UTC midnight): a UTC model reads daily rows only,
+    a Berlin model's days are all cut (24 hourly rows each) and its weeks only at their two
+    ends."""
     bounds = rng.bounds(lookback)
     starts = bounds[:-1]
     hours = [epoch_hour(b) for b in bounds]
-    daily = rng.granularity != "hour" and all(h % 24 == 0 for h in hours)
-    level = "d" if daily else "h"
-    length = timedelta(hours=24 if daily else 1)
-    rows = load_totals(
-        session, model, level=level, lo=hours[0], hi=hours[-1], filters=filters, now=now,
-        delays=False,
-    )  # fmt: skip
+    lo, hi = hours[0], hours[-1]
+    found: list[tuple[int, int, Totals]] = []  # (start hour, length in hours, totals)
+    if rng.granularity == "hour":
+        rows = load_totals(
+            session, model, level="h", lo=lo, hi=hi, filters=filters, now=now, delays=False
+        )
+        found = [(h, 1, t) for h, t in rows.items()]
+    else:
+        cut = sorted({h - h % 24 for h in hours if h % 24})
+        days = load_totals(
+            session, model, level="d", lo=lo, hi=hi, filters=filters, now=now, delays=False
+        )
+        whole = set(cut)
+        found = [(d, 24, t) for d, t in days.items() if d not in whole and lo <= d and d + 24 <= hi]
+        spans = _merged([(d, d + 24) for d in cut])
+        cut_hours = load_hour_spans(
+            session, model, spans=spans, filters=filters, now=now, delays=False
+        )
+        found += [(h, 1, t) for h, t in cut_hours.items()]
     parts: list[list[Cohort]] = [[] for _ in starts]
-    for start, totals in sorted(rows.items()):
+    for start, length, totals in sorted(found, key=lambda f: f[0]):
         i = bisect_right(hours, start) - 1
         if 0 <= i < len(parts):
-            parts[i].append((datetime.fromtimestamp(start * 3600, UTC), length, totals))
+            cohort_start = datetime.fromtimestamp(start * 3600, UTC)
+            parts[i].append((cohort_start, timedelta(hours=length), totals))
     return starts, parts
+
+
+def _merged(spans: list[tuple[int, int]]) -> list[tuple[int, int]]:
+    """Sorted spans with touching ones joined (fewer OR terms in the query)."""
+    out: list[tuple[int, int]] = []
+    for lo, hi in spans:
+        if out and out[-1][1] >= lo:
+            out[-1] = (out[-1][0], max(out[-1][1], hi))
+        else:
+            out.append((lo, hi))
+    return out
 
 
 def _sum(cohorts: list[Cohort]) -> Totals:
