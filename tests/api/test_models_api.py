@@ -43,6 +43,7 @@ def test_create_with_the_documented_defaults(tenant: Tenant) -> None:
         "min_coverage": 0.9,
         "negative_after_days": None,
         "segment_keys": None,
+        "time_zone": "UTC",
         "counts": {"predictions": 0, "labelled": 0, "pending_labels": 0},
         "first_prediction_at": None,
         "last_prediction_at": None,
@@ -60,6 +61,7 @@ def test_create_with_settings(tenant: Tenant) -> None:
         min_coverage=0.8,
         negative_after_days=30,
         segment_keys=["region", "channel"],
+        time_zone="Europe/Berlin",
     )
     got = tenant.client.post("/v1/models", json=body).json()
     assert {k: got[k] for k in body} == body
@@ -216,3 +218,43 @@ def test_delete_removes_the_model_and_its_data(tenant: Tenant, engine: Engine) -
     # the name is free again, and the new model starts empty
     again = create_model(tenant, engine, name=doomed.name)
     assert count(engine, "predictions", again.id) == 0
+
+
+# India keeps UTC+05:30 and South Australia UTC+09:30, Nepal UTC+05:45 (IANA tz database,
+# files `asia` and `australasia`): not whole hours, so hourly rollups cannot make their days
+@pytest.mark.parametrize(
+    ("zone", "says"),
+    [
+        ("Asia/Kolkata", "+05:30"),
+        ("Australia/Adelaide", "+09:30"),
+        ("Asia/Kathmandu", "whole number of hours"),
+        ("Europe/Berln", "Europe/Berlin"),
+        ("", "not an IANA time zone"),
+    ],
+)
+def test_a_zone_off_the_hour_or_unknown_is_422_saying_why(
+    tenant: Tenant, engine: Engine, zone: str, says: str
+) -> None:
+    r = tenant.client.post("/v1/models", json=model_body(time_zone=zone))
+    assert r.status_code == 422, r.text
+    assert r.headers["content-type"].startswith("application/problem+json")
+    assert [e["field"] for e in r.json()["errors"]] == ["time_zone"]
+    assert says in r.text
+    assert project_models(engine, tenant.project_id) == 0
+
+
+def test_patching_a_zone_checks_it_and_stores_nothing_when_refused(
+    tenant: Tenant, engine: Engine
+) -> None:
+    model = create_model(tenant, engine, time_zone="America/Chicago")
+    for bad in ("Asia/Kolkata", "Australia/Adelaide", None, "Chicago"):
+        r = tenant.client.patch(f"/v1/models/{model.name}", json={"time_zone": bad})
+        assert r.status_code == 422, r.text
+        assert r.json()["errors"][0]["field"] == "time_zone"
+        stored = rows(engine, "SELECT time_zone FROM models WHERE id = :m", m=model.id)
+        assert stored == [("America/Chicago",)]
+    r = tenant.client.patch(f"/v1/models/{model.name}", json={"time_zone": "Europe/Berlin"})
+    assert r.status_code == 200 and r.json()["time_zone"] == "Europe/Berlin"
+    assert rows(engine, "SELECT time_zone FROM models WHERE id = :m", m=model.id) == [
+        ("Europe/Berlin",)
+    ]

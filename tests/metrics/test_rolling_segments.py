@@ -76,7 +76,9 @@ def test_rolling_windows_equal_the_union_of_their_rows(
     )
     assert answer["rolling"] == n
     starts = window_starts(granularity, start, end)
-    assert [w["start"] for w in answer["windows"]] == [stamp(s) for s in starts]
+    # a rolling window spans from its first part's start to its last part's end
+    assert [w["start"] for w in answer["windows"]] == [stamp(s - (n - 1) * step) for s in starts]
+    assert [w["end"] for w in answer["windows"]] == [stamp(s + step) for s in starts]
     everything = np.ones(len(sc.pids), bool)
     for w, s in zip(answer["windows"], starts, strict=True):
         union = in_range(sc.ts, s - (n - 1) * step, s + step)
@@ -169,7 +171,9 @@ def test_two_segments_at_once_equal_the_rows_with_both_tags(
         )
         step = STEPS[granularity]
         aligned = window_starts(granularity, align(start, granularity), align(end, granularity))
-        assert [w["start"] for w in answer["windows"]] == [stamp(s) for s in aligned]
+        assert [w["start"] for w in answer["windows"]] == [
+            stamp(s - (rolling - 1) * step) for s in aligned
+        ]
         for w, s in zip(answer["windows"], aligned, strict=True):
             union = both & in_range(sc.ts, s - (rolling - 1) * step, s + step)
             check_window(w, sc, union, labelled, y, implied)

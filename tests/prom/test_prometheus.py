@@ -78,3 +78,24 @@ def test_another_projects_token_sees_only_its_own_models(fed: Tenant, sessions: 
     assert "returns-v2" not in text
     bad = fed.client.get("/metrics", headers={"Authorization": "Bearer nope"})
     assert bad.status_code == 401
+
+
+def test_drift_gauges_are_the_latest_closed_windows_drift(fed: Tenant) -> None:
+    c = fed.client
+    samples = _samples(c.get("/metrics", headers=fed.headers("read")).text)
+    windows = c.get("/v1/models/returns-v2/metrics").json()["windows"]
+    latest = [w for w in windows if w["closed"] and w["predictions"]][-1]
+    assert latest["drift"]["against"]["kind"] == "reference"
+    labels = (("model", "returns-v2"),)
+    for key, name in (
+        ("score_psi", "belated_model_score_psi"),
+        ("score_js", "belated_model_score_js_distance"),
+        ("positive_rate_change", "belated_model_positive_rate_change"),
+    ):
+        assert latest["drift"][key] is not None
+        assert samples[(name, labels)] == pytest.approx(latest["drift"][key], rel=1e-12)
+    start = datetime.fromisoformat(latest["start"]).timestamp()
+    assert samples[("belated_model_drift_window_start_timestamp_seconds", labels)] == start
+    # without a read token the model's figures are not shown
+    anonymous = _samples(c.get("/metrics", headers={"Authorization": ""}).text)
+    assert not any(name == "belated_model_score_psi" for name, _ in anonymous)

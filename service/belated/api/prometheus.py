@@ -35,6 +35,21 @@ OTHERS = {
     "log_loss": "belated_model_log_loss",
     "ece": "belated_model_calibration_error_ratio",
 }
+DRIFT = {
+    "score_psi": (
+        "belated_model_score_psi",
+        "Score PSI of the latest closed daily window against the model's reference.",
+    ),
+    "score_js": (
+        "belated_model_score_js_distance",
+        "Score Jensen-Shannon distance (natural log) of the latest closed daily window"
+        " against the model's reference.",
+    ),
+    "positive_rate_change": (
+        "belated_model_positive_rate_change",
+        "Predicted positive rate of the latest closed daily window minus the reference's.",
+    ),
+}
 HEALTH = (
     (
         "refresh_lag_seconds",
@@ -119,6 +134,16 @@ class ScrapeCollector:
                     "Start of the latest settled daily window.",
                     model,
                     m["window_start"],
+                )
+            for key, value in (m.get("drift") or {}).items():
+                if value is not None and key in DRIFT:
+                    add(*DRIFT[key], model, value)
+            if m.get("drift_window_start") is not None:
+                add(
+                    "belated_model_drift_window_start_timestamp_seconds",
+                    "Start of the latest closed daily window (the one drift is given for).",
+                    model,
+                    m["drift_window_start"],
                 )
             add(
                 "belated_model_open_alerts",

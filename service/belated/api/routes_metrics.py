@@ -10,6 +10,7 @@ from fastapi import APIRouter, Query, Request, Response
 from belated.api.deps import ModelDep, NowDep, Read, SessionDep, SettingsDep
 from belated.errors import invalid_field
 from belated.metrics import delays, params, thresholds
+from belated.metrics.drift import parse_baseline
 from belated.metrics.windows import MeasureOptions, windows_of_range
 
 router = APIRouter(prefix="/v1/models/{model}", tags=["history"])
@@ -33,14 +34,35 @@ def get_metrics(
     resamples: int = 200,
     measures: str | None = None,
     segment: list[str] | None = Query(None),
+    baseline: str | None = Query(
+        None,
+        description=(
+            "Compare each window's score distribution and positive rate with this range in"
+            " place of the model's reference: `<start>/<end>` (ISO 8601 interval notation),"
+            " two RFC 3339 times (without an offset: wall time in the model's `time_zone`),"
+            " aligned down to whole hours, for example"
+            " `2026-03-01T00:00:00Z/2026-03-31T00:00:00Z`."
+        ),
+    ),
 ) -> Response:
-    """Windows with counts, coverage, settled, measures with intervals, estimates, bounds."""
-    rng = params.parse_range(granularity, start, end, now)
+    """Windows with counts, coverage, settled, measures with intervals, estimates, bounds,
+    drift.
+
+    Day and week windows start at midnight in the model's `time_zone` (weeks on Monday; a
+    local day lasts 23 or 25 hours at a daylight-saving change) and their `start` and `end`
+    carry the zone's offset; `start`/`end` with an offset are instants, without one wall
+    time in that zone. A rolling window's `start` is its first part's start. `drift` holds
+    `score_psi`, `score_js` (Jensen-Shannon distance, natural log) and
+    `positive_rate_change` against the model's reference or `baseline`, each null with the
+    `reason` when there is no reference or either side has fewer than 100 predictions."""
+    rng = params.parse_range(granularity, start, end, now, time_zone=model.time_zone)
     b = params.parse_beta(beta, precision_weight)
     params.check_interval(interval, confidence, resamples)
     filters = params.parse_segments(segment)
     wanted = params.parse_measures(measures, model.kind)
+    span = parse_baseline(baseline, model.time_zone)
     opts = MeasureOptions(
+        baseline=span,
         beta=b,
         interval=interval,
         confidence=confidence,

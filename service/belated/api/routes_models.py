@@ -31,6 +31,7 @@ def read_model(session: Any, model: ModelRow) -> ModelRead:
         negative_after_days=model.negative_after_days,
         segment_keys=model.segment_keys,
         reference=model.reference,
+        time_zone=model.time_zone or "UTC",
         created_at=to_utc(model.created_at),
         updated_at=to_utc(model.updated_at),
         **model_registry.counts(session=session, model=model),
@@ -104,7 +105,7 @@ def update_model(
     """Change a model's settings (threshold changes are kept in history)."""
     request.app.state.lookups.clear_after_commit(session)
     fields = body.model_dump(exclude_unset=True)
-    for key in ("threshold", "label_delay_days", "min_coverage"):
+    for key in ("threshold", "label_delay_days", "min_coverage", "time_zone"):
         if key in fields and fields[key] is None:
             raise Problem(
                 422,

@@ -7,6 +7,8 @@ from typing import Literal
 
 from pydantic import BaseModel, ConfigDict, Field, field_validator, model_validator
 
+from belated.zones import zone_problem
+
 NAME_PATTERN = r"^[a-z0-9][a-z0-9._-]{0,63}$"
 
 
@@ -52,6 +54,16 @@ class ModelSettings(BaseModel):
     negative_after_days: float | None = Field(None, gt=0, le=3650)
     segment_keys: list[str] | None = Field(None, max_length=8)
     reference: ReferenceRange | None = None
+    time_zone: str | None = Field(None, max_length=64)
+
+    @field_validator("time_zone")
+    @classmethod
+    def _zone(cls, value: str | None) -> str | None:
+        if value is not None:
+            problem = zone_problem(value)
+            if problem is not None:
+                raise ValueError(problem)
+        return value
 
     @field_validator("segment_keys")
     @classmethod
@@ -116,6 +128,7 @@ class ModelRead(BaseModel):
     negative_after_days: float | None
     segment_keys: list[str] | None
     reference: dict[str, str] | None = None
+    time_zone: str = "UTC"
     created_at: datetime
     updated_at: datetime
     counts: ModelCounts

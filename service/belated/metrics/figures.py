@@ -1,7 +1,8 @@
 """The figures /metrics serves: computed by the jobs, kept in `service_state`.
 
 For each model: the measures and the label coverage of its latest settled daily window (of
-the last 30 days), that window's start, and the number of its raised or noted alerts.
+the last 30 days), that window's start, the drift of its latest closed daily window against
+the model's reference (drift needs no labels), and the number of its raised or noted alerts.
 The jobs keep one row per project, so that a scrape reads one small row and never runs
 measures.
 """
@@ -16,6 +17,7 @@ from sqlalchemy import select
 from sqlalchemy.orm import Session
 
 from belated.clock import now
+from belated.metrics.drift import DRIFT_KEYS
 from belated.metrics.params import Range
 from belated.metrics.windows import MeasureOptions, windows_of_range
 from belated.store.tables import ModelRow, ServiceState
@@ -38,6 +40,10 @@ def latest(*, session: Session, model: ModelRow, max_values: int) -> dict[str, A
         figures["coverage"] = found["coverage"]
         figures["window_start"] = parse_ts(found["start"]).timestamp()
         figures["measures"] = {k: v.get("value") for k, v in found["measures"].items()}
+    closed = next((w for w in reversed(windows) if w["closed"] and w["predictions"]), None)
+    if closed is not None and closed.get("drift"):
+        figures["drift"] = {k: closed["drift"].get(k) for k in DRIFT_KEYS}
+        figures["drift_window_start"] = parse_ts(closed["start"]).timestamp()
     return figures
 
 

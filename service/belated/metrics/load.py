@@ -5,7 +5,7 @@ from __future__ import annotations
 from collections import defaultdict
 from datetime import datetime
 
-from sqlalchemy import select
+from sqlalchemy import and_, or_, select
 from sqlalchemy.orm import Session
 
 from belated.store import refresh, rollups, segments
@@ -70,6 +70,38 @@ def load_totals(
             Rollup.level == level,
             Rollup.start >= lo_q,
             Rollup.start < hi,
+            Rollup.seg_key == seg[0],
+            Rollup.seg_value == seg[1],
+        )
+    )
+    skip = frozenset() if delays else frozenset({"delays"})
+    return {row.start: Totals.from_row(row, skip) for row in rows}
+
+
+def load_hour_spans(
+    session: Session,
+    model: ModelRow,
+    *,
+    spans: list[tuple[int, int]],
+    filters: tuple[tuple[str, str], ...],
+    now: datetime,
+    delays: bool = True,
+) -> dict[int, Totals]:
+    """Totals of the hourly rows in each [lo, hi) of `spans` (disjoint), keyed by hour, in
+    one query (from raw rows, span by span, when the filters need them)."""
+    if not spans:
+        return {}
+    seg = _rollup_segment(session, model, filters)
+    if seg is None:
+        out: dict[int, Totals] = {}
+        for lo, hi in spans:
+            out.update(_from_raw(session, model, level="h", lo=lo, hi=hi, filters=filters, now=now))
+        return out
+    rows = session.execute(
+        select(Rollup.__table__).where(
+            Rollup.model_id == model.id,
+            Rollup.level == "h",
+            or_(*(and_(Rollup.start >= lo, Rollup.start < hi) for lo, hi in spans)),
             Rollup.seg_key == seg[0],
             Rollup.seg_value == seg[1],
         )

@@ -5,7 +5,7 @@ from __future__ import annotations
 import difflib
 from collections.abc import Iterable
 from dataclasses import dataclass
-from datetime import datetime, timedelta
+from datetime import UTC, datetime, timedelta, tzinfo
 
 from sqlalchemy import select, text
 from sqlalchemy.orm import Session
@@ -16,7 +16,8 @@ from belated.stats.summary import check_measures
 from belated.store import segments
 from belated.store.dialect import is_postgres
 from belated.store.tables import ModelRow, Prediction
-from belated.timeutil import GRANULARITIES, floor_window, parse_ts, window_step
+from belated.timeutil import GRANULARITIES, parse_ts, window_step
+from belated.zones import DEFAULT_ZONE, floor_local, shift, zone
 
 MAX_WINDOWS = 10_000
 DEFAULT_WINDOWS = 30
@@ -25,24 +26,44 @@ INTERVALS = ("wilson", "clopper-pearson", "jeffreys")
 
 @dataclass(frozen=True)
 class Range:
-    """Aligned window starts [start, end) of one granularity."""
+    """Aligned window starts [start, end) of one granularity, as UTC instants; day and week
+    windows start at midnight in `zone` (an IANA name), so they may last 23 or 25 hours."""
 
     granularity: str
     start: datetime
     end: datetime
+    zone: str = DEFAULT_ZONE
 
     @property
     def step(self) -> timedelta:
-        """The length of one window."""
+        """The nominal length of one window (a local day may be an hour shorter or longer)."""
         return window_step(self.granularity)
+
+    @property
+    def tz(self) -> tzinfo:
+        """The tzinfo of the range's zone."""
+        return zone(self.zone)
+
+    def bounds(self, lookback: int = 0) -> list[datetime]:
+        """Window boundaries from `lookback` windows before `start` to `end`, both included."""
+        first = shift(self.start, self.granularity, -lookback, self.tz)
+        out = [first]
+        while out[-1] < self.end:
+            out.append(shift(out[-1], self.granularity, 1, self.tz))
+        return out
 
     def starts(self) -> list[datetime]:
         """Every window start in the range."""
-        out, t = [], self.start
-        while t < self.end:
-            out.append(t)
-            t += self.step
-        return out
+        return self.bounds()[:-1]
+
+    def in_zone(self, name: str) -> Range:
+        """The same span aligned to the windows of another zone (the same when it is)."""
+        if name == self.zone or self.granularity == "hour":
+            return Range(self.granularity, self.start, self.end, name)
+        tz = zone(name)
+        start = floor_local(self.start, self.granularity, tz)
+        end = floor_local(self.end - timedelta(microseconds=1), self.granularity, tz)
+        return Range(self.granularity, start, shift(end, self.granularity, 1, tz), name)
 
 
 def _bad(field: str, reason: str) -> Invalid:
@@ -55,33 +76,46 @@ def parse_range(
     end: str | None,
     now: datetime,
     default_windows: int = DEFAULT_WINDOWS,
+    time_zone: str = DEFAULT_ZONE,
 ) -> Range:
-    """Align [start, end) down to window boundaries; default the last 30 windows to now."""
+    """Align [start, end) down to window boundaries of `time_zone`; default the last 30
+    windows to now. A time with an offset is that instant; one without is local wall time."""
     if granularity not in GRANULARITIES:
         raise _bad("granularity", f"must be one of {', '.join(GRANULARITIES)}")
-    step = window_step(granularity)
-    end_dt = _aligned("end", end, granularity)
-    start_dt = _aligned("start", start, granularity)
+    tz = zone(time_zone)
+    end_dt = _aligned("end", end, granularity, tz)
+    start_dt = _aligned("start", start, granularity, tz)
     if end_dt is None:
-        end_dt = floor_window(now, granularity) + step
+        end_dt = shift(floor_local(now, granularity, tz), granularity, 1, tz)
         if start_dt is not None and start_dt >= end_dt:
-            end_dt = start_dt + step
+            end_dt = shift(start_dt, granularity, 1, tz)
     if start_dt is None:
-        start_dt = end_dt - default_windows * step
+        start_dt = shift(end_dt, granularity, -default_windows, tz)
     if start_dt >= end_dt:
         raise _bad("start", "must be before 'end' (after aligning both to window boundaries)")
-    if (end_dt - start_dt) / step > MAX_WINDOWS:
+    if (end_dt - start_dt) / window_step(granularity) > MAX_WINDOWS:
         raise _bad("end", f"the range covers more than {MAX_WINDOWS} windows")
-    return Range(granularity, start_dt, end_dt)
+    return Range(granularity, start_dt, end_dt, time_zone)
 
 
-def _aligned(field: str, value: str | None, granularity: str) -> datetime | None:
+def _aligned(field: str, value: str | None, granularity: str, tz: tzinfo) -> datetime | None:
     if not value:
         return None
     try:
-        return floor_window(parse_ts(value), granularity)
+        return floor_local(parse_local(value, tz), granularity, tz)
     except (ValueError, TypeError, OverflowError):
         raise _bad(field, "not an RFC 3339 time") from None
+
+
+def parse_local(value: str, tz: tzinfo) -> datetime:
+    """An instant from RFC 3339 text; without an offset, the wall time in `tz`."""
+    text = value.strip()
+    if text.endswith(("Z", "z")) or not text:
+        return parse_ts(text)
+    dt = datetime.fromisoformat(text)
+    if dt.tzinfo is None:
+        dt = dt.replace(tzinfo=tz)
+    return dt.astimezone(UTC)
 
 
 def parse_beta(beta: float | None, precision_weight: float | None) -> float:

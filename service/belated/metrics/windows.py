@@ -2,8 +2,9 @@
 
 from __future__ import annotations
 
+from bisect import bisect_right
 from dataclasses import dataclass
-from datetime import UTC, datetime, timedelta
+from datetime import UTC, datetime, timedelta, tzinfo
 from typing import Any
 
 import numpy as np
@@ -16,8 +17,9 @@ from belated.metrics.arrival import (
     projected,
     settled_by_class,
 )
+from belated.metrics.drift import baseline_against, drift_block, not_binary, reference_against
 from belated.metrics.implied import implied_blocks, reference_prior
-from belated.metrics.load import ensure_fresh, epoch_hour, load_totals
+from belated.metrics.load import ensure_fresh, epoch_hour, load_hour_spans, load_totals
 from belated.metrics.params import Range
 from belated.stats.calibration import ece_arrays
 from belated.stats.multiclass import summarise_multiclass
@@ -26,7 +28,7 @@ from belated.stats.window import WindowStats
 from belated.store.statistics import HISTOGRAM_BY_NAME, SCALARS, SCORE_CLASSES
 from belated.store.tables import ModelRow
 from belated.store.totals import Totals
-from belated.timeutil import iso
+from belated.zones import DEFAULT_ZONE, local_iso
 
 CALIBRATION_WINDOWS = 7
 
@@ -41,6 +43,8 @@ class MeasureOptions:
     resamples: int = 200
     measures: frozenset[str] | None = None
     rolling: int = 1
+    # drift against this [start, end) in place of the model's reference
+    baseline: tuple[datetime, datetime] | None = None
 
 
 def to_stats(totals: Totals) -> WindowStats:
@@ -71,27 +75,53 @@ def window_rows(
     now: datetime,
 ) -> tuple[list[datetime], list[list[Cohort]]]:
     """The rollup rows of each base window of the range and of `lookback` windows before it
-    (the caller has refreshed the range: see `ensure_fresh`)."""
-    step = rng.step
-    first = rng.start - lookback * step
-    starts = [first + i * step for i in range(int((rng.end - first) / step))]
-    lo, hi = epoch_hour(first), epoch_hour(rng.end)
-    level = "h" if rng.granularity == "hour" else "d"
-    length = timedelta(hours=1 if level == "h" else 24)
-    rows = load_totals(
-        session, model, level=level, lo=lo, hi=hi, filters=filters, now=now, delays=False
-    )
+    (the caller has refreshed the range: see `ensure_fresh`).
+
+    Daily rollup rows are UTC days. A day or week window takes the daily rows of the UTC
+    days that lie wholly inside it, and the hourly rows of a UTC day that a window boundary
+    cuts (a local midnight that is not a UTC midnight): a UTC model reads daily rows only,
+    a Berlin model's days are all cut (24 hourly rows each) and its weeks only at their two
+    ends."""
+    bounds = rng.bounds(lookback)
+    starts = bounds[:-1]
+    hours = [epoch_hour(b) for b in bounds]
+    lo, hi = hours[0], hours[-1]
+    found: list[tuple[int, int, Totals]] = []  # (start hour, length in hours, totals)
+    if rng.granularity == "hour":
+        rows = load_totals(
+            session, model, level="h", lo=lo, hi=hi, filters=filters, now=now, delays=False
+        )
+        found = [(h, 1, t) for h, t in rows.items()]
+    else:
+        cut = sorted({h - h % 24 for h in hours if h % 24})
+        days = load_totals(
+            session, model, level="d", lo=lo, hi=hi, filters=filters, now=now, delays=False
+        )
+        whole = set(cut)
+        found = [(d, 24, t) for d, t in days.items() if d not in whole and lo <= d and d + 24 <= hi]
+        spans = _merged([(d, d + 24) for d in cut])
+        cut_hours = load_hour_spans(
+            session, model, spans=spans, filters=filters, now=now, delays=False
+        )
+        found += [(h, 1, t) for h, t in cut_hours.items()]
     parts: list[list[Cohort]] = [[] for _ in starts]
-    index = {epoch_hour(s): i for i, s in enumerate(starts)}
-    span = int(step / timedelta(hours=1))
-    base = epoch_hour(first)
-    for start, totals in sorted(rows.items()):
-        i = index.get(start)
-        if i is None:
-            i = (start - base) // span
+    for start, length, totals in sorted(found, key=lambda f: f[0]):
+        i = bisect_right(hours, start) - 1
         if 0 <= i < len(parts):
-            parts[i].append((datetime.fromtimestamp(start * 3600, UTC), length, totals))
+            cohort_start = datetime.fromtimestamp(start * 3600, UTC)
+            parts[i].append((cohort_start, timedelta(hours=length), totals))
     return starts, parts
+
+
+def _merged(spans: list[tuple[int, int]]) -> list[tuple[int, int]]:
+    """Sorted spans with touching ones joined (fewer OR terms in the query)."""
+    out: list[tuple[int, int]] = []
+    for lo, hi in spans:
+        if out and out[-1][1] >= lo:
+            out[-1] = (out[-1][0], max(out[-1][1], hi))
+        else:
+            out.append((lo, hi))
+    return out
 
 
 def _sum(cohorts: list[Cohort]) -> Totals:
@@ -141,17 +171,20 @@ def windows_of_range(
     now: datetime,
     max_values: int,
 ) -> list[dict[str, Any]]:
-    """The windows of the range, oldest first, contiguous (empty ones have zero counts)."""
+    """The windows of the range, oldest first, contiguous (empty ones have zero counts).
+
+    Day and week windows start at midnight in the model's `time_zone` (a range aligned in
+    another zone is aligned again); a rolling window spans from its first part's start."""
+    rng = rng.in_zone(model.time_zone or DEFAULT_ZONE)
+    tz = rng.tz
     lookback = opts.rolling - 1 + CALIBRATION_WINDOWS * 2
-    lo, hi = epoch_hour(rng.start - lookback * rng.step), epoch_hour(rng.end)
+    lo, hi = epoch_hour(rng.bounds(lookback)[0]), epoch_hour(rng.end)
     ensure_fresh(session, model, lo, hi, max_values)
     curves = curves_of(session, model, now)
     starts, rows = window_rows(session, model, rng, lookback, filters, now)
+    ends = [*starts[1:], rng.end]
     base = [_sum(r) for r in rows]
-    step = rng.step
-    settled = [
-        settled_window(a, s + step, model, now, curves) for a, s in zip(base, starts, strict=True)
-    ]
+    settled = [settled_window(a, e, model, now, curves) for a, e in zip(base, ends, strict=True)]
     out: list[dict[str, Any]] = []
     # (window, its statistics, the calibration error of the trailing settled windows)
     binary: list[tuple[dict[str, Any], WindowStats, float | None]] = []
@@ -161,8 +194,7 @@ def windows_of_range(
         acc = Totals()
         for j in parts:
             acc.add(base[j])
-        start, end = starts[i], starts[i] + step
-        window = _counts_block(acc, start, end, now)
+        window = _counts_block(acc, starts[parts[0]], ends[i], now, tz)
         window["settled"] = all(settled[j] for j in parts)
         window.update(
             _late_labels(window, [c for j in parts for c in rows[j]], curves, model, now, opts)
@@ -172,6 +204,7 @@ def windows_of_range(
             binary.append((window, to_stats(acc), ece_value))
         else:
             window.update(_multiclass(model, acc, opts))
+            window["drift"] = not_binary()
         out.append(window)
     if binary:
         # every binary window in one vectorised pass; each answer equals summarise() alone
@@ -185,10 +218,16 @@ def windows_of_range(
         )
         prior, period = reference_prior(session, model, now)
         implied = implied_blocks([b[1] for b in binary], model, prior, opts.beta)
-        for (window, _, ece), summary, block in zip(binary, summaries, implied, strict=True):
+        against = (
+            reference_against(session, model, period, filters, now)
+            if opts.baseline is None
+            else baseline_against(session, model, opts.baseline, filters, now, max_values)
+        )
+        for (window, stats, ece), summary, block in zip(binary, summaries, implied, strict=True):
             summary.pop("implied", None)
             window.update(summary)
             window["implied"] = {**block, "calibration_error": ece, "reference": period}
+            window["drift"] = drift_block(against, stats.hist_all, stats.n_pred, stats.n_pred_pos)
     return out
 
 
@@ -249,11 +288,13 @@ def _references(base: list[Totals], settled: list[bool]) -> list[tuple[float | N
     return out
 
 
-def _counts_block(acc: Totals, start: datetime, end: datetime, now: datetime) -> dict[str, Any]:
+def _counts_block(
+    acc: Totals, start: datetime, end: datetime, now: datetime, tz: tzinfo
+) -> dict[str, Any]:
     n, labelled = acc["n_pred"], acc["n_labelled"]
     return {
-        "start": iso(start),
-        "end": iso(end),
+        "start": local_iso(start, tz),
+        "end": local_iso(end, tz),
         "closed": end <= now,
         "predictions": n,
         "labelled": labelled,

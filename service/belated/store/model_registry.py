@@ -23,6 +23,7 @@ DEFAULTS: dict[str, Any] = {
     "negative_after_days": None,
     "segment_keys": None,
     "reference": None,
+    "time_zone": "UTC",
 }
 
 
