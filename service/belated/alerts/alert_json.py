@@ -32,6 +32,8 @@ def _window(b: RuleWindow) -> dict[str, Any]:
         "baseline": b.baseline,
         "p_value": b.p_value,
         "early": b.early,
+        "decided_again_at": iso(b.decided_again_at) if b.decided_again_at else None,
+        "previous": b.previous,
     }
 
 

@@ -1,8 +1,9 @@
 """What an evaluation leaves behind: one row per evaluated (rule, segment, window).
 
 A window decided again (late labels, a settled decision after an early look) is updated in
-its row, never counted twice; the lifecycle (`alerts/lifecycle.py`) moves the alerts on
-from these rows.
+its row, never counted twice; a settled window decided again keeps when, and what it was
+before (`decided_again_at`, `previous`), so that its alert can say so. The lifecycle
+(`alerts/lifecycle.py`) moves the alerts on from these rows.
 """
 
 from __future__ import annotations
@@ -16,7 +17,7 @@ from sqlalchemy.orm import Session
 from belated.alerts.decide import Decision, finite
 from belated.alerts.tables import Rule, RuleWindow
 from belated.store.tables import Label, ModelRow
-from belated.timeutil import floor_hour, from_db
+from belated.timeutil import floor_hour, from_db, iso
 
 
 def silence(session: Session, model: ModelRow, max_hours: float, now: datetime) -> Decision:
@@ -73,6 +74,14 @@ def record(
                 )
                 changed += 1
             elif any(getattr(row, k) != values[k] for k in _COMPARED):
+                if not row.early and not d.early:  # a settled decision, taken again
+                    row.decided_again_at = now
+                    row.previous = {
+                        "breached": row.breached,
+                        "value": row.value,
+                        "p_value": row.p_value,
+                        "decided_at": iso(row.evaluated_at),
+                    }
                 for k, v in values.items():
                     setattr(row, k, v)
                 changed += 1

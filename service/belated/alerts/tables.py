@@ -61,6 +61,9 @@ class RuleWindow(Base):
     # decided early, on projected measures of the unsettled window (a settled decision
     # replaces it)
     early: Mapped[bool] = mapped_column(Boolean, default=False, server_default=false())
+    # a settled window decided again (its labels were corrected): when, and what it was
+    decided_again_at: Mapped[datetime | None] = mapped_column(UtcDateTime, nullable=True)
+    previous: Mapped[dict[str, Any] | None] = mapped_column(Json, nullable=True)
     alert_id: Mapped[str | None] = mapped_column(String(32), nullable=True)
     evaluated_at: Mapped[datetime] = mapped_column(UtcDateTime)
 
