@@ -87,6 +87,15 @@ def execute_binary(session: Session, sql: str, params: Sequence[Any] | Mapping[s
         cur.execute(sql, params, prepare=True)
 
 
+def fetch_all(session: Session, sql: str, params: Mapping[str, Any]) -> list[Any]:
+    """The rows of one query on the session's connection, parameters in binary
+    (PostgreSQL only)."""
+    raw = session.connection().connection.driver_connection
+    assert raw is not None
+    with raw.cursor() as cur:
+        return list(cur.execute(sql, params, prepare=True).fetchall())
+
+
 def insert_rows(
     session: Session,
     table: str,

@@ -51,8 +51,27 @@ def delay_hours(pred_ts: datetime, label_ts: datetime) -> float:
     return max(0.0, (label_ts - pred_ts).total_seconds() / 3600.0)
 
 
+# The stored predictions of a batch's ids, locked in row order (concurrent corrections of one
+# id apply one after another). Driven by the ids, one unique-index probe each: with the
+# filter form `pid = ANY(...)` and statistics not yet caught up with a burst of inserts,
+# PostgreSQL scanned every row of the model through another index.
+_TARGETS_PG = """
+SELECT p.pid, p.row_id, p.ts, p.hour, p.actual, p.delay_h
+FROM unnest(%(ids)b::text[]) AS k(pid)
+JOIN predictions p ON p.model_id = %(m)s AND p.pid = k.pid
+ORDER BY p.row_id
+FOR UPDATE OF p
+"""
+
+
 def _targets(session: Session, model_id: int, ids: list[str]) -> dict[str, _Stored]:
     found: dict[str, _Stored] = {}
+    if is_postgres(session):
+        for pid, row_id, ts, hour, actual, delay_h in bulk.fetch_all(
+            session, _TARGETS_PG, {"ids": ids, "m": model_id}
+        ):
+            found[pid] = _Stored(row_id, to_utc(ts), hour, actual, delay_h)
+        return found
     cols = (
         Prediction.pid,
         Prediction.row_id,
