@@ -57,7 +57,7 @@ def test_demo_flags_the_day_60_change_in_the_north(tmp_path: Path) -> None:
         assert any("shift positive_rate" in x for x in north)
         page = httpx.get(
             f"{url}models/returns-v2",
-            params={"segment": "region:north"},
+            params={"tag.region": "north"},
             cookies={"belated_token": token},
             timeout=60,
         )

@@ -8,7 +8,6 @@ import orjson
 from fastapi import APIRouter, Query, Request, Response
 
 from belated.api.deps import ModelDep, NowDep, Read, SessionDep, SettingsDep
-from belated.errors import invalid_field
 from belated.metrics import delays, params, thresholds
 from belated.metrics.windows import MeasureOptions, windows_of_range
 
@@ -17,6 +16,7 @@ router = APIRouter(prefix="/v1/models/{model}", tags=["history"])
 
 @router.get("/metrics")
 def get_metrics(
+    request: Request,
     _caller: Read,
     model: ModelDep,
     session: SessionDep,
@@ -32,13 +32,17 @@ def get_metrics(
     confidence: float = 0.95,
     resamples: int = 200,
     measures: str | None = None,
-    segment: list[str] | None = Query(None),
 ) -> Response:
-    """Windows with counts, coverage, settled, measures with intervals, estimates, bounds."""
+    """Windows with counts, coverage, settled, measures with intervals, estimates, bounds.
+
+    Filters are `tag.<key>=<value>` query parameters (one per key, ANDed); an unknown key,
+    or a value no prediction carries, is a 422 naming the closest known ones."""
+    params.refuse_segment(request.query_params.keys())
     rng = params.parse_range(granularity, start, end, now)
     b = params.parse_beta(beta, precision_weight)
     params.check_interval(interval, confidence, resamples)
-    filters = params.parse_segments(segment)
+    filters = params.parse_tag_filters(request.query_params.multi_items())
+    params.check_known_tags(session, model, filters)
     wanted = params.parse_measures(measures, model.kind)
     opts = MeasureOptions(
         beta=b,
@@ -55,7 +59,7 @@ def get_metrics(
         "granularity": granularity,
         "rolling": rolling,
         "beta": b,
-        "segment": [f"{k}:{v}" for k, v in filters],
+        "tags": dict(filters),
         "windows": windows,
     }
     return Response(
@@ -82,10 +86,7 @@ def get_thresholds(
 
     Without `start` and `end`: the settled days of the last 30 days. Filters are
     `tag.<key>=<value>` query parameters (one per key, ANDed)."""
-    if "segment" in request.query_params:
-        raise invalid_field(
-            "segment", "not a parameter of /thresholds; filter with tag.<key>=<value>"
-        )
+    params.refuse_segment(request.query_params.keys())
     settled_only = not start and not end
     if settled_only:
         rng = params.parse_range("day", None, None, now, default_windows=thresholds.DEFAULT_DAYS)
