@@ -8,12 +8,12 @@ from __future__ import annotations
 
 import difflib
 
-from sqlalchemy import select, text
+from sqlalchemy import text
 from sqlalchemy.orm import Session
 
 from belated.store import segments
 from belated.store.dialect import is_postgres
-from belated.store.tables import ModelRow, Prediction
+from belated.store.tables import ModelRow
 
 MAX_SUGGESTIONS = 3
 RAW_NAMES_SCANNED = 1000
@@ -21,11 +21,20 @@ LISTED = 10  # known names listed when none is close
 
 
 def raw_exists(session: Session, model: ModelRow, key: str, value: str | None) -> bool:
-    """Whether a stored prediction carries the key (with this value, when given)."""
-    expr = segments.tag_expr(key)
-    cond = expr.is_not(None) if value is None else expr == value
-    query = select(Prediction.row_id).where(Prediction.model_id == model.id, cond).limit(1)
-    return session.execute(query).first() is not None
+    """Whether a stored prediction carries the key (with this value, when given). The key
+    is bound as a value, never spliced into a JSON path, so keys of any text are found."""
+    params: dict[str, object] = {"m": model.id, "k": key, "v": value}
+    if is_postgres(session):
+        cond = "tags ? :k" if value is None else "tags ->> :k = :v"
+        sql = f"SELECT 1 FROM predictions WHERE model_id = :m AND {cond} LIMIT 1"
+    else:
+        cond = "j.key = :k" + ("" if value is None else " AND j.type = 'text' AND j.value = :v")
+        sql = (
+            "SELECT 1 FROM predictions, json_each(predictions.tags) AS j"
+            f" WHERE predictions.model_id = :m AND predictions.tags IS NOT NULL AND {cond}"
+            " LIMIT 1"
+        )
+    return session.execute(text(sql), params).first() is not None
 
 
 def raw_keys(session: Session, model: ModelRow) -> list[str]:
@@ -46,14 +55,19 @@ def raw_keys(session: Session, model: ModelRow) -> list[str]:
 
 def raw_values(session: Session, model: ModelRow, key: str) -> list[str]:
     """Up to RAW_NAMES_SCANNED values of one tag key in the model's stored predictions."""
-    expr = segments.tag_expr(key)
-    query = (
-        select(expr)
-        .distinct()
-        .where(Prediction.model_id == model.id, expr.is_not(None))
-        .limit(RAW_NAMES_SCANNED)
-    )
-    return [str(v) for v in session.scalars(query)]
+    if is_postgres(session):
+        sql = (
+            "SELECT DISTINCT tags ->> :k FROM predictions"
+            " WHERE model_id = :m AND tags ? :k LIMIT :n"
+        )
+    else:
+        sql = (
+            "SELECT DISTINCT j.value FROM predictions, json_each(predictions.tags) AS j"
+            " WHERE predictions.model_id = :m AND predictions.tags IS NOT NULL"
+            " AND j.key = :k LIMIT :n"
+        )
+    found = session.execute(text(sql), {"m": model.id, "k": key, "n": RAW_NAMES_SCANNED})
+    return [str(r[0]) for r in found if r[0] is not None]
 
 
 def closest(word: str, known: list[str]) -> str:
