@@ -286,6 +286,9 @@ def test_keys_list_create_revoke(live: LiveServer, tenant: Tenant, store_url: st
     table = table_rows(ok(invoke("keys", "list", "--revoked", url=live.url, token=admin)))
     assert any(r[0] == key_id and r[4] != "-" for r in table[1:])
     refused(invoke("keys", "list", url=live.url, token=tenant.tokens["read"]), "refused: 403")
+    # neither a project nor an address: a usage error that says what to give
+    lost = invoke("keys", "create", "--scopes", "read")
+    assert lost.exit_code == 2 and "--project" in lost.output and "--url" in lost.output
     # on the store directly: a project that does not exist yet is created, and said so
     project = unique_name("shop")
     first = ok(invoke("keys", "create", "--project", project, "--database-url", store_url))
