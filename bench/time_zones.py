@@ -103,7 +103,7 @@ def main() -> None:
                     "granularity": "week",
                     "start": (end - timedelta(days=91)).date().isoformat(),
                 },
-                "day, last 30, tag": {"granularity": "day", "segment": "region:north"},
+                "day, last 30, tag": {"granularity": "day", "tag.region": "north"},
             }
             results: dict[tuple[str, str], list[float]] = {}
             for zone in ("UTC", "Europe/Berlin"):

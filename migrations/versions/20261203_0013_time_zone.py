@@ -1,7 +1,7 @@
 """models.time_zone: the IANA zone whose midnights start a model's day and week windows
 
 Revision ID: 0013_time_zone
-Revises: 0011_early_alerts
+Revises: 0012_markers
 Create Date: 2026-12-02 16:40:00
 """
 
@@ -11,7 +11,7 @@ import sqlalchemy as sa
 from alembic import op
 
 revision: str = "0013_time_zone"
-down_revision: str | None = "0011_early_alerts"
+down_revision: str | None = "0012_markers"
 branch_labels: str | Sequence[str] | None = None
 depends_on: str | Sequence[str] | None = None
 

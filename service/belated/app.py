@@ -18,6 +18,7 @@ from belated.api import (
     routes_health,
     routes_ingest,
     routes_keys,
+    routes_markers,
     routes_metrics,
     routes_models,
     routes_prometheus,
@@ -75,6 +76,7 @@ def create_app(
         routes_metrics,
         routes_alerts,
         routes_keys,
+        routes_markers,
         routes_health,
         routes_prometheus,
     ):

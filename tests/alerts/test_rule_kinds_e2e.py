@@ -20,7 +20,11 @@ def test_every_rule_kind_fires_through_the_scheduler(
 ) -> None:
     c = tenant.client
     assert (
-        c.post("/v1/models", json={"name": "returns-v2", "label_delay_days": 3}).status_code == 201
+        c.post(
+            "/v1/models",
+            json={"name": "returns-v2", "label_delay_days": 3, "segment_keys": ["region"]},
+        ).status_code
+        == 201
     )
     rules = {
         "traffic": {"kind": "traffic", "low": 500},

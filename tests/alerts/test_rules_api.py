@@ -12,7 +12,8 @@ from tests.conftest import Tenant
 
 @pytest.fixture()
 def model(tenant: Tenant) -> str:
-    assert tenant.client.post("/v1/models", json={"name": "returns-v2"}).status_code == 201
+    body = {"name": "returns-v2", "segment_keys": ["region", "channel"]}
+    assert tenant.client.post("/v1/models", json=body).status_code == 201
     return "returns-v2"
 
 

@@ -53,7 +53,7 @@ def test_a_stored_rule_reads_back_as_the_settings_it_was_created_with(
         model = model_registry.create(
             session=session,
             project_id=project.id,
-            fields=ModelCreate(name="returns-v2").model_dump(),
+            fields=ModelCreate(name="returns-v2", segment_keys=["region"]).model_dump(),
         )
         rule = rules.create_rule(
             session=session, model=model, fields=body.model_dump(exclude_unset=True)

@@ -99,8 +99,8 @@ def test_granularity_and_measures_are_chosen(live: LiveServer, tenant: Tenant, s
         "5",
         "--measures",
         "roc_auc,positive_rate",
-        "--segment",
-        "channel:web",
+        "--tag",
+        "channel=web",
         url=live.url,
         token=tenant.tokens["read"],
     )
@@ -108,7 +108,7 @@ def test_granularity_and_measures_are_chosen(live: LiveServer, tenant: Tenant, s
     by_hour = {
         w["start"][:16].replace("T", " "): w
         for w in tenant.client.get(
-            f"/v1/models/{shop}/metrics", params={"granularity": "hour", "segment": "channel:web"}
+            f"/v1/models/{shop}/metrics", params={"granularity": "hour", "tag.channel": "web"}
         ).json()["windows"]
     }
     body = table_rows(run.stdout)

@@ -152,7 +152,7 @@ def test_metrics_parameters_pass_through(live: LiveServer, tenant: Tenant, engin
         "granularity": "hour",
         "rolling": 3,
         "measures": ["precision", "recall"],
-        "segment": "channel:web",
+        "tag.channel": "web",
     }
     with Client(live.url, token(tenant)) as c:
         c.send_predictions(model.name, as_predictions(orders))
@@ -161,7 +161,7 @@ def test_metrics_parameters_pass_through(live: LiveServer, tenant: Tenant, engin
     answer = tenant.client.get(
         f"/v1/models/{model.name}/metrics", params={**params, "measures": "precision,recall"}
     ).json()
-    assert frame.attrs["rolling"] == 3 and frame.attrs["segment"] == ["channel:web"]
+    assert frame.attrs["rolling"] == 3 and frame.attrs["tags"] == {"channel": "web"}
     assert {"precision", "recall_high"} <= set(frame.columns)
     assert "fbeta" not in frame.columns and "accuracy" not in frame.columns
     assert frame["precision"].tolist() == pytest.approx(

@@ -359,7 +359,7 @@ def test_unicode_ids_and_tags_are_stored_byte_for_byte(http: Tenant, engine: Eng
     # any text have a test of their own below)
     r = http.client.get(
         f"/v1/models/{model.name}/metrics",
-        params={"segment": "mark:a\u0308", "granularity": "week"},
+        params={"tag.mark": "a\u0308", "granularity": "week"},
     )
     assert r.status_code == 200, r.text
     assert sum(w["predictions"] for w in r.json()["windows"]) == len(UNICODE_IDS)
@@ -380,7 +380,7 @@ def test_segment_filter_finds_tag_keys_of_any_text(http: Tenant, engine: Engine,
     for value in ("north", "south"):
         r = http.client.get(
             f"/v1/models/{model.name}/metrics",
-            params={"segment": f"{key}:{value}", "granularity": "week"},
+            params={f"tag.{key}": value, "granularity": "week"},
         )
         assert r.status_code == 200, r.text
         found[value] = sum(w["predictions"] for w in r.json()["windows"])
@@ -450,7 +450,7 @@ def test_sql_metacharacters_in_every_string_field_are_stored_as_sent(
     key, value = SQL_KEYS[0], tag_set[SQL_KEYS[0]]
     r = c.get(
         f"/v1/models/{model.name}/metrics",
-        params={"segment": f"{key}:{value}", "granularity": "week"},
+        params={f"tag.{key}": value, "granularity": "week"},
     )
     assert r.status_code == 200, r.text
     assert sum(w["predictions"] for w in r.json()["windows"]) == len(SQL_TEXTS)

@@ -177,6 +177,7 @@ def _bodies() -> dict[tuple[str, str], Any]:
         ("POST", "/v1/webhooks"): {"url": "http://127.0.0.1:9/intruder"},
         ("POST", "/v1/keys"): {"scopes": ["read"]},
         ("POST", "/v1/alerts/{alert_id}/note"): {"text": "an intruder's note"},
+        ("POST", "/v1/models/{model}/markers"): {"at": "2026-10-01T00:00:00Z", "text": "intruder"},
     }
 
 
@@ -215,6 +216,10 @@ def victim(tenant: Tenant, engine: Engine, sessions: Any) -> dict[str, Any]:
     ).json()
     hook = c.post("/v1/webhooks", json={"url": "http://127.0.0.1:9/victim"}).json()
     key = c.post("/v1/keys", json={"scopes": ["read"]}).json()
+    marker = c.post(
+        f"/v1/models/{model.name}/markers",
+        json={"at": "2026-10-01T00:00:00Z", "text": "supplier change"},
+    ).json()
     alert = _traffic_alert(sessions, rule["id"])
     c.headers["Authorization"] = f"Bearer {tenant.tokens['admin,ingest,read']}"
     ids = {
@@ -223,6 +228,7 @@ def victim(tenant: Tenant, engine: Engine, sessions: Any) -> dict[str, Any]:
         "alert_id": alert,
         "hook_id": hook["id"],
         "key_id": key["id"],
+        "marker_id": marker["id"],
     }
     return {"tenant": other, "model": model, "ids": ids, "key_token": key["token"]}
 
@@ -241,6 +247,9 @@ def _snapshot(engine: Engine, victim: dict[str, Any]) -> dict[str, Any]:
         "hooks": one("SELECT id, url FROM webhooks WHERE project_id = :p", p=pid),
         "keys": one("SELECT id, revoked_at FROM tokens WHERE project_id = :p", p=pid),
         "key": ids["key_id"],
+        "markers": one(
+            "SELECT id, at, text FROM markers WHERE model_id = :m", m=victim["model"].id
+        ),
     }
 
 
@@ -304,6 +313,7 @@ def test_every_operation_hides_another_projects_objects(
             names["alert_id"],
             names["hook_id"],
             names["key_id"],
+            names["marker_id"],
         ):
             assert secret_name not in answer, (method, path)
         if method == "GET" and path == "/v1/models":

@@ -109,9 +109,9 @@ def test_one_segment_from_rollups_equals_the_rows_with_that_tag(
             granularity="day",
             start=stamp(start),
             end=stamp(end),
-            segment=f"{key}:{value}",
+            **{f"tag.{key}": value},
         )
-        assert answer["segment"] == [f"{key}:{value}"]
+        assert answer["tags"] == {key: value}
         assert sum(w["predictions"] for w in answer["windows"]) == int(tagged.sum())
         for w, s in zip(answer["windows"], window_starts("day", start, end), strict=True):
             check_window(w, sc, tagged & in_range(sc.ts, s, s + STEPS["day"]), labelled, y, implied)
@@ -143,7 +143,7 @@ def test_one_segment_from_rollups_equals_the_rows_with_that_tag(
             rolling=rolling,
             start=stamp(lo),
             end=stamp(hi),
-            segment="region:north",
+            **{"tag.region": "north"},
         )
         for w, s in zip(answer["windows"], window_starts(granularity, lo, hi), strict=True):
             union = north & in_range(sc.ts, s - (rolling - 1) * step, s + step)
@@ -167,7 +167,7 @@ def test_two_segments_at_once_equal_the_rows_with_both_tags(
             rolling=rolling,
             start=stamp(start),
             end=stamp(end),
-            segment=["region:south", "channel:web"],
+            **{"tag.region": "south", "tag.channel": "web"},
         )
         step = STEPS[granularity]
         aligned = window_starts(granularity, align(start, granularity), align(end, granularity))
@@ -177,12 +177,13 @@ def test_two_segments_at_once_equal_the_rows_with_both_tags(
         for w, s in zip(answer["windows"], aligned, strict=True):
             union = both & in_range(sc.ts, s - (rolling - 1) * step, s + step)
             check_window(w, sc, union, labelled, y, implied)
-    # a tag value nobody carries: contiguous windows, all empty
-    answer = metrics(
-        tenant.client, model.name, start=stamp(start), end=stamp(end), segment=["region:nowhere"]
+    # a tag value nobody carries is a typo, not an empty segment: refused, naming the values
+    r = tenant.client.get(
+        f"/v1/models/{model.name}/metrics",
+        params={"start": stamp(start), "end": stamp(end), "tag.region": "nowhere"},
     )
-    assert len(answer["windows"]) == 25
-    assert all(w["predictions"] == 0 for w in answer["windows"])
+    assert r.status_code == 422 and r.json()["errors"][0]["field"] == "tag.region"
+    assert "nowhere" in r.json()["detail"] and "north" in r.json()["detail"]
 
 
 def test_values_over_the_cap_roll_up_as_other_and_still_answer_exactly(
@@ -205,7 +206,7 @@ def test_values_over_the_cap_roll_up_as_other_and_still_answer_exactly(
         start, end = START, START + timedelta(days=25)
         for region in REGIONS:
             answer = metrics(
-                client, model.name, start=stamp(start), end=stamp(end), segment=f"region:{region}"
+                client, model.name, start=stamp(start), end=stamp(end), **{"tag.region": region}
             )
             tagged = sc.region == region
             for w, s in zip(answer["windows"], window_starts("day", start, end), strict=True):

@@ -176,7 +176,7 @@ def _answers(tenant: Tenant, model: str) -> list[dict[str, Any]]:
             ("hour", {}),
             ("day", {}),
             ("week", {}),
-            ("day", {"segment": "region:north"}),
+            ("day", {"tag.region": "north"}),
             ("day", {"rolling": 3}),
         )
     ]

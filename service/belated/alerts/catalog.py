@@ -72,6 +72,34 @@ def check(kind: str, measure: str | None, mode: str | None = None) -> str | None
     return f"unknown rule kind {kind!r}"
 
 
+# every measure a rule watches is a proportion in [0, 1] except these
+VALUE_RANGES: dict[str, tuple[float, float]] = {"mcc": (-1.0, 1.0)}
+
+
+def check_threshold(kind: str, measure: str | None, threshold: float | None) -> str | None:
+    """None when the threshold lies in the range of what it is compared with, else why not:
+    a floor under a proportion's 0-1 scale written as a percentage could never mean what
+    was meant."""
+    if threshold is None or measure is None:
+        return None
+    if kind == "floor":
+        low, high = VALUE_RANGES.get(measure, (0.0, 1.0))
+        if not low <= threshold <= high:
+            scale = "a proportion" if (low, high) == (0.0, 1.0) else "a measure"
+            hint = (
+                f" (for {threshold:g}% write {threshold / 100:g})" if 1 < threshold <= 100 else ""
+            )
+            return (
+                f"{measure} is {scale} between {low:g} and {high:g}; a floor threshold of "
+                f"{threshold:g} is outside it{hint}"
+            )
+    if kind == "shift" and measure == "positive_rate" and not 0 < threshold <= 1:
+        return f"a change of positive rate lies in (0, 1]; {threshold:g} is outside it"
+    if kind == "shift" and measure != "positive_rate" and threshold < 0:
+        return f"a PSI threshold is at least 0; {threshold:g} is below it"
+    return None
+
+
 # label-based measures an unsettled window has a projected value of (stats/projection.py)
 PROJECTED_MEASURES: tuple[str, ...] = tuple(PROJECTED)
 

@@ -9,10 +9,12 @@ from typing import Any
 from sqlalchemy import select
 from sqlalchemy.orm import Session
 
+from belated.alerts import catalog
 from belated.alerts.schemas import DEFAULTS, RuleRead, check_rule
 from belated.alerts.tables import Rule
 from belated.clock import clock
 from belated.errors import Conflict, NotFound, invalid_field
+from belated.store import tag_names
 from belated.store.tables import ModelRow
 from belated.timeutil import iso, to_utc
 
@@ -63,10 +65,36 @@ def _settings(fields: dict[str, Any]) -> dict[str, Any]:
     return out
 
 
+def check_tag_keys(
+    *, session: Session, model: ModelRow, segment_by: str | None, measure: str | None
+) -> None:
+    """Refuse a rule on a tag key the model has never seen (`segment_by`, `tag_psi:<key>`):
+    a 422 naming the field and the closest known keys."""
+    if segment_by is not None and (why := tag_names.unknown_rule_key(session, model, segment_by)):
+        raise invalid_field("segment_by", why)
+    if measure is not None and measure.startswith(TAG_PSI):
+        key = measure[len(TAG_PSI) :]
+        if why := tag_names.unknown_rule_key(session, model, key):
+            raise invalid_field("measure", why)
+
+
+TAG_PSI = "tag_psi:"
+
+
 def create_rule(
     *, session: Session, model: ModelRow, fields: dict[str, Any], now: datetime | None = None
 ) -> Rule:
     """Create a rule on a model, stamped `now` (the clock by default)."""
+    if why := catalog.check_threshold(
+        fields["kind"], fields.get("measure"), fields.get("threshold")
+    ):
+        raise invalid_field("threshold", why)
+    check_tag_keys(
+        session=session,
+        model=model,
+        segment_by=fields.get("segment_by"),
+        measure=fields.get("measure"),
+    )
     stamp = now or clock.now()
     rule = Rule(
         id="rul_" + secrets.token_hex(8),
@@ -115,6 +143,16 @@ def update_rule(
         text = str(exc)
         field = "early" if text.startswith("early:") else "measure" if "measure" in text else "rule"
         raise invalid_field(field, text) from None
+    if why := catalog.check_threshold(rule.kind, measure, merged.get("threshold")):
+        raise invalid_field("threshold", why)
+    model = session.get(ModelRow, rule.model_id)
+    if model is not None and ("segment_by" in fields or "measure" in fields):
+        check_tag_keys(
+            session=session,
+            model=model,
+            segment_by=fields.get("segment_by"),
+            measure=fields.get("measure"),
+        )
     rule.settings = merged
     rule.measure = measure
     if "granularity" in fields and fields["granularity"]:

@@ -1,13 +1,14 @@
-"""Routes for tokens: create (the secret is shown once) and revoke."""
+"""Routes for tokens: create (the secret is shown once), list and revoke."""
 
 from __future__ import annotations
 
 from fastapi import APIRouter, Request, Response
 
 from belated.api.deps import Admin, SessionDep
-from belated.api.schemas import KeyCreate, KeyRead
+from belated.api.schemas import KeyCreate, KeyInfo, KeyPage, KeyRead
 from belated.errors import Problem
 from belated.store import keys
+from belated.timeutil import to_utc
 
 router = APIRouter(prefix="/v1/keys", tags=["keys"])
 
@@ -24,6 +25,24 @@ def create_key(body: KeyCreate, who: Admin, session: SessionDep) -> KeyRead:
         name=row.name,
         created_at=row.created_at,
         token=secret,
+    )
+
+
+@router.get("", response_model=KeyPage)
+def list_keys(who: Admin, session: SessionDep, revoked: bool = False) -> KeyPage:
+    """The project's tokens without their secrets; `revoked=true` lists revoked ones too."""
+    rows = keys.list_(session=session, project_id=who.project_id, revoked=revoked)
+    return KeyPage(
+        items=[
+            KeyInfo(
+                id=r.id,
+                scopes=r.scopes.split(","),
+                name=r.name,
+                created_at=to_utc(r.created_at),
+                revoked_at=r.revoked_at and to_utc(r.revoked_at),
+            )
+            for r in rows
+        ]
     )
 
 

@@ -8,7 +8,6 @@ import orjson
 from fastapi import APIRouter, Query, Request, Response
 
 from belated.api.deps import ModelDep, NowDep, Read, SessionDep, SettingsDep
-from belated.errors import invalid_field
 from belated.metrics import delays, params, thresholds
 from belated.metrics.drift import parse_baseline
 from belated.metrics.windows import MeasureOptions, windows_of_range
@@ -18,6 +17,7 @@ router = APIRouter(prefix="/v1/models/{model}", tags=["history"])
 
 @router.get("/metrics")
 def get_metrics(
+    request: Request,
     _caller: Read,
     model: ModelDep,
     session: SessionDep,
@@ -33,7 +33,6 @@ def get_metrics(
     confidence: float = 0.95,
     resamples: int = 200,
     measures: str | None = None,
-    segment: list[str] | None = Query(None),
     baseline: str | None = Query(
         None,
         description=(
@@ -48,17 +47,21 @@ def get_metrics(
     """Windows with counts, coverage, settled, measures with intervals, estimates, bounds,
     drift.
 
-    Day and week windows start at midnight in the model's `time_zone` (weeks on Monday; a
-    local day lasts 23 or 25 hours at a daylight-saving change) and their `start` and `end`
-    carry the zone's offset; `start`/`end` with an offset are instants, without one wall
-    time in that zone. A rolling window's `start` is its first part's start. `drift` holds
-    `score_psi`, `score_js` (Jensen-Shannon distance, natural log) and
-    `positive_rate_change` against the model's reference or `baseline`, each null with the
-    `reason` when there is no reference or either side has fewer than 100 predictions."""
+    Filters are `tag.<key>=<value>` query parameters (one per key, ANDed); an unknown key,
+    or a value no prediction carries, is a 422 naming the closest known ones. Day and week
+    windows start at midnight in the model's `time_zone` (weeks on Monday; a local day lasts
+    23 or 25 hours at a daylight-saving change) and their `start` and `end` carry the zone's
+    offset; `start`/`end` with an offset are instants, without one wall time in that zone.
+    A rolling window's `start` is its first part's start. `drift` holds `score_psi`,
+    `score_js` (Jensen-Shannon distance, natural log) and `positive_rate_change` against the
+    model's reference or `baseline`, each null with the `reason` when there is no reference
+    or either side has fewer than 100 predictions."""
+    params.refuse_segment(request.query_params.keys())
     rng = params.parse_range(granularity, start, end, now, time_zone=model.time_zone)
     b = params.parse_beta(beta, precision_weight)
     params.check_interval(interval, confidence, resamples)
-    filters = params.parse_segments(segment)
+    filters = params.parse_tag_filters(request.query_params.multi_items())
+    params.check_known_tags(session, model, filters)
     wanted = params.parse_measures(measures, model.kind)
     span = parse_baseline(baseline, model.time_zone)
     opts = MeasureOptions(
@@ -77,7 +80,7 @@ def get_metrics(
         "granularity": granularity,
         "rolling": rolling,
         "beta": b,
-        "segment": [f"{k}:{v}" for k, v in filters],
+        "tags": dict(filters),
         "windows": windows,
     }
     return Response(
@@ -104,10 +107,7 @@ def get_thresholds(
 
     Without `start` and `end`: the settled days of the last 30 days. Filters are
     `tag.<key>=<value>` query parameters (one per key, ANDed)."""
-    if "segment" in request.query_params:
-        raise invalid_field(
-            "segment", "not a parameter of /thresholds; filter with tag.<key>=<value>"
-        )
+    params.refuse_segment(request.query_params.keys())
     settled_only = not start and not end
     if settled_only:
         rng = params.parse_range("day", None, None, now, default_windows=thresholds.DEFAULT_DAYS)

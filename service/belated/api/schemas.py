@@ -161,6 +161,23 @@ class KeyRead(BaseModel):
     token: str
 
 
+class KeyInfo(BaseModel):
+    """A token as listed: never its secret."""
+
+    id: str
+    scopes: list[str]
+    name: str | None
+    created_at: datetime
+    revoked_at: datetime | None
+
+
+class KeyPage(BaseModel):
+    """The project's tokens, oldest first."""
+
+    items: list[KeyInfo]
+    next_cursor: str | None = None
+
+
 class PredictionsAnswer(BaseModel):
     """Answer to a predictions batch."""
 

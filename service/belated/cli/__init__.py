@@ -1,10 +1,15 @@
 """The `belated` command.
 
 service.py   migrate, serve, worker, rebuild, demo (on the store, not through the API)
-keys.py      keys create
+keys.py      keys list|create|revoke (create also on the store, for the first token)
+models.py    models list|show|create|update|delete
+rules.py     rules list|create|delete
+alerts.py    alerts list|note
+markers.py   markers add|list|delete
 send.py      send predictions|labels FILE (files.py reads the file, sender.py sends it)
-windows.py   windows: the latest windows as a table
-options.py   the options and the exit the data commands share
+windows.py   windows: the latest windows as a table, CSV or JSON
+options.py   the options and the exit the data commands share; output.py prints answers
+helptext.py  help text without type artefacts
 """
 
 from __future__ import annotations
@@ -13,25 +18,42 @@ import sys
 
 import typer
 
-from belated.cli import service
+from belated.cli import helptext, service
+from belated.cli.alerts import alerts_app
 from belated.cli.keys import keys_app
+from belated.cli.markers import markers_app
+from belated.cli.models import models_app
+from belated.cli.rules import rules_app
 from belated.cli.send import send_app
 from belated.cli.windows import windows
+
+helptext.install()
 
 app = typer.Typer(
     help="belated: monitoring for classifiers whose labels arrive late.",
     no_args_is_help=True,
     add_completion=False,
 )
-app.add_typer(keys_app, name="keys")
 for command in (service.migrate, service.serve, service.worker, service.rebuild, service.demo):
     app.command()(command)
 
+GROUPS = {
+    "keys": keys_app,
+    "models": models_app,
+    "rules": rules_app,
+    "alerts": alerts_app,
+    "markers": markers_app,
+    "send": send_app,
+}
+
 
 def register(app: typer.Typer) -> None:
-    """Add `send` and `windows` to the `belated` app (a second call changes nothing)."""
-    if not any(g.name == "send" for g in app.registered_groups):
-        app.add_typer(send_app, name="send")
+    """Add the commands that talk to the API to the `belated` app (a second call changes
+    nothing)."""
+    have = {g.name for g in app.registered_groups}
+    for name, group in GROUPS.items():
+        if name not in have:
+            app.add_typer(group, name=name)
     if not any(
         (c.name or getattr(c.callback, "__name__", "")) == "windows"
         for c in app.registered_commands

@@ -80,7 +80,7 @@ def _run(
     from rich.progress import Progress
 
     console = Console(stderr=True)
-    with Client(url, token, batch_size=batch_size, retries=retries) as client:
+    with Client(url, token, batch_size=batch_size, retries=retries, refused_retries=0) as client:
         try:
             spec = _spec(client, model)
         except BelatedError as exc:  # unreachable after every retry

@@ -1,18 +1,23 @@
-"""`belated windows`: the latest windows of a model, printed as a table."""
+"""`belated windows`: the latest windows of a model, printed as a table, CSV or JSON."""
 
 from __future__ import annotations
 
+import json
 import sys
 from datetime import UTC, datetime
+from typing import Any
 
 import pandas as pd
 import typer
 
-from belated.cli.options import MODEL, TOKEN, URL, fail
-from belated.client import BelatedError, Client
+from belated.cli.options import FORMAT, MODEL, TOKEN, URL, ask, check_format, connect, fail
+from belated.client.windows import windows_frame
 
-SEGMENT = typer.Option(
-    None, "--segment", help="Only the predictions with this tag, key:value (repeatable)."
+TAG = typer.Option(
+    None,
+    "--tag",
+    metavar="KEY=VALUE",
+    help="Only the predictions with this tag (repeatable, ANDed): --tag region=north.",
 )
 
 
@@ -21,7 +26,13 @@ def _measure(frame: pd.DataFrame, name: str) -> str:
     for col in (name, f"{name}_macro"):
         if col in frame.columns:
             return col
-    known = [c for c in frame.columns if f"{c}_low" in frame.columns and "." not in c]
+    known = [
+        str(c)
+        for c in frame.columns
+        if f"{c}_low" in frame.columns
+        and "." not in str(c)
+        and not str(c).endswith(("_projected", "_low", "_high"))
+    ]
     raise fail(f"unknown measure {name!r}; choose from {', '.join(known)}", 2)
 
 
@@ -49,39 +60,75 @@ def _cell(row: pd.Series, col: str) -> str:
     return f"proj {shown} · labelled {labelled}{bounds}"
 
 
+def tag_params(tags: list[str] | None) -> dict[str, str]:
+    """--tag KEY=VALUE options as the API's tag.<key>=<value> parameters."""
+    out: dict[str, str] = {}
+    for item in tags or []:
+        key, sep, value = item.partition("=")
+        key = key.strip().removeprefix("tag.")
+        if not sep or not key or not value:
+            raise fail(f"--tag takes KEY=VALUE (for example region=north), not {item!r}", 2)
+        if f"tag.{key}" in out:
+            raise fail(f"--tag gives the key {key!r} twice; one value per key", 2)
+        out[f"tag.{key}"] = value
+    return out
+
+
 def windows(
     model: str = MODEL,
     url: str = URL,
     token: str = TOKEN,
-    granularity: str = typer.Option("day", help="hour, day or week (UTC)."),
+    granularity: str = typer.Option("day", help="hour, day or week."),
     last: int = typer.Option(14, min=1, max=1000, help="How many of the latest windows."),
+    start: str | None = typer.Option(None, help="From this time (RFC 3339); overrides --last."),
+    end: str | None = typer.Option(None, help="Up to this time (RFC 3339, exclusive)."),
+    beta: float | None = typer.Option(None, help="β of the F-beta measure (default 1)."),
     measures: str = typer.Option("precision,recall,fbeta", help="A comma list of measures."),
     rolling: int = typer.Option(1, min=1, help="Merge each window with the N-1 before it."),
-    segment: list[str] | None = SEGMENT,
+    tag: list[str] | None = TAG,
+    fmt: str = FORMAT,
 ) -> None:
     """Print the latest windows: counts, coverage, settled, and measures with intervals."""
-    from rich.console import Console
-    from rich.table import Table
-    from rich.text import Text
-
     from belated.timeutil import GRANULARITIES, window_step
 
     if granularity not in GRANULARITIES:
         raise fail(f"--granularity must be one of {', '.join(GRANULARITIES)}", 2)
-    # The service aligns `start` down and ends at its current window; ask for a little more
-    # than needed so that a small clock difference cannot cut the range short.
-    start = datetime.now(UTC) - (last + 1) * window_step(granularity)
-    with Client(url, token, retries=3) as client:
-        try:
-            frame = client.metrics(
-                model, granularity=granularity, start=start, rolling=rolling, segment=segment
-            )
-        except BelatedError as exc:
-            raise fail(f"refused: {exc}") from None
-    frame = frame.tail(last)
-    cols = [_measure(frame, m.strip()) for m in measures.split(",") if m.strip()]
+    check_format(fmt)
+    wanted = [m.strip() for m in measures.split(",") if m.strip()]
+    params: dict[str, Any] = {"granularity": granularity, "rolling": rolling, "beta": beta}
+    params.update(tag_params(tag))
+    if start is None and end is None:
+        # The service aligns `start` down and ends at its current window; ask for a little
+        # more than needed so that a small clock difference cannot cut the range short.
+        params["start"] = datetime.now(UTC) - (last + 1) * window_step(granularity)
+    else:
+        params.update(start=start, end=end)
+    with connect(url, token) as client:
+        answer = ask(lambda: client.metrics_json(model, **params))
+    if start is None and end is None:
+        answer["windows"] = answer["windows"][-last:]
+    frame = windows_frame(answer)
+    cols = [_measure(frame, m) for m in wanted]
+    if fmt == "json":
+        typer.echo(json.dumps(answer, indent=2, ensure_ascii=False))
+    elif fmt == "csv":
+        keep = ["start", "end", "closed", "settled", "predictions", "labelled", "coverage"]
+        for c in cols:
+            keep += [k for k in frame.columns if k == c or str(k).startswith(f"{c}_")]
+        typer.echo(
+            frame.loc[:, keep].to_csv(index=False, date_format="%Y-%m-%dT%H:%M:%SZ"), nl=False
+        )
+    else:
+        _table(frame, model, granularity, cols)
+
+
+def _table(frame: pd.DataFrame, model: str, granularity: str, cols: list[str]) -> None:
+    from rich.console import Console
+    from rich.table import Table
+    from rich.text import Text
+
     table = Table(
-        title=f"{model}: latest {len(frame)} {granularity} windows (UTC)",
+        title=f"{model}: {len(frame)} {granularity} windows (UTC)",
         caption=Text(
             "provisional: not settled, may change as labels arrive; its measures show first "
             "the projected value (what the window will read once its labels are in), then "

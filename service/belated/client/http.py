@@ -20,9 +20,10 @@ import httpx
 import orjson
 import pandas as pd
 
+from belated.client.admin import AdminCalls
 from belated.client.errors import MAYBE_SENT, NOT_SENT, BelatedError, Unreachable, retry_after
 from belated.client.rows import chunks, plain, rfc3339
-from belated.client.windows import BASE_COLUMNS, flatten_window
+from belated.client.windows import windows_frame
 
 DEFAULT_BATCH = 10_000
 ANSWER_KEYS = {
@@ -34,7 +35,7 @@ ANSWER_KEYS = {
 Progress = Callable[[int, dict[str, int]], None]
 
 
-class Client:
+class Client(AdminCalls):
     """The belated API over HTTP, with a bearer token and bounded retries."""
 
     def __init__(
@@ -49,11 +50,16 @@ class Client:
         timeout: float = 120.0,
         transport: httpx.BaseTransport | None = None,
         sleep: Callable[[float], None] = time.sleep,
+        refused_retries: int | None = None,
     ) -> None:
+        """`refused_retries`: retries of a connection refused before the service has
+        answered once (None: as many as `retries`; 0 fails at once when nothing listens)."""
         if batch_size < 1:
             raise ValueError("batch_size must be at least 1")
         self.batch_size = batch_size
         self.retries = retries
+        self.refused_retries = retries if refused_retries is None else refused_retries
+        self._answered = False
         self.backoff = backoff
         self.max_wait = max_wait
         self._sleep = sleep
@@ -98,12 +104,15 @@ class Client:
                     method, path, content=content, params=params, headers=headers
                 )
             except NOT_SENT + MAYBE_SENT as exc:
-                if last or (not repeatable and not isinstance(exc, NOT_SENT)):
+                refused = isinstance(exc, httpx.ConnectError) and not self._answered
+                never = refused and attempt >= self.refused_retries
+                if last or never or (not repeatable and not isinstance(exc, NOT_SENT)):
                     raise Unreachable(
-                        None, "Service unreachable", f"{self.http.base_url}: {exc!r}"
+                        None, "Service unreachable", f"{self.http.base_url}: {_reason(exc)}"
                     ) from exc
                 self._wait(attempt, None)
                 continue
+            self._answered = True
             if response.status_code == 503 and not last:
                 self._wait(attempt, retry_after(response))
                 continue
@@ -222,15 +231,7 @@ class Client:
         `m_bound_high`; multiclass per-class measures `<class>.m`. `start` and `end` are UTC
         timestamps; undefined values are NaN.
         """
-        answer = self.metrics_json(model, **params)
-        frame = pd.DataFrame(
-            [flatten_window(w) for w in answer["windows"]],
-            columns=None if answer["windows"] else list(BASE_COLUMNS),
-        )
-        for col in ("start", "end"):
-            frame[col] = pd.to_datetime(frame[col], utc=True)
-        frame.attrs.update({k: v for k, v in answer.items() if k != "windows"})
-        return frame
+        return windows_frame(self.metrics_json(model, **params))
 
     def thresholds(self, model: str, **params: Any) -> dict[str, Any]:
         """The threshold sweep and the recommended thresholds over a time range.
@@ -243,11 +244,39 @@ class Client:
             self.request("GET", f"/v1/models/{model}/thresholds", params=_query(params)),
         )
 
+    def markers(self, model: str, *, start: Any = None, end: Any = None) -> list[dict[str, Any]]:
+        """The model's markers (dated notes on its timeline) in [start, end), oldest first."""
+        params = _query({"start": start, "end": end})
+        return cast(
+            list[dict[str, Any]],
+            self.request("GET", f"/v1/models/{model}/markers", params=params)["items"],
+        )
+
+    def add_marker(self, model: str, at: Any, text: str) -> dict[str, Any]:
+        """Mark something that happened to the model at `at`; answers the marker."""
+        body = {"at": at if isinstance(at, str) else rfc3339(at), "text": text}
+        return cast(
+            dict[str, Any],
+            self.request("POST", f"/v1/models/{model}/markers", body=body, repeatable=False),
+        )
+
+    def delete_marker(self, model: str, marker_id: str) -> None:
+        """Remove a marker."""
+        self.request("DELETE", f"/v1/models/{model}/markers/{marker_id}")
+
     def delays(self, model: str, **params: Any) -> dict[str, Any]:
         """Label delay quantiles and coverage by window age."""
         return cast(
             dict[str, Any], self.request("GET", f"/v1/models/{model}/delays", params=_query(params))
         )
+
+
+def _reason(exc: Exception) -> str:
+    """A connection error in a few words ("connection refused", "timed out")."""
+    text = str(exc) or type(exc).__name__
+    if "refused" in text.lower():
+        return "connection refused (is the service running at this address?)"
+    return f"{type(exc).__name__}: {text}"
 
 
 def _query(params: dict[str, Any]) -> dict[str, Any]:

@@ -5,6 +5,7 @@ from __future__ import annotations
 from typing import Any
 
 import numpy as np
+import pandas as pd
 
 BASE_COLUMNS = (
     "start",
@@ -61,3 +62,15 @@ def flatten_window(window: dict[str, Any]) -> dict[str, Any]:
                 _value(m, "high"),
             )
     return row
+
+
+def windows_frame(answer: dict[str, Any]) -> pd.DataFrame:
+    """The metrics answer as a DataFrame, one flat row per window; the rest in `attrs`."""
+    frame = pd.DataFrame(
+        [flatten_window(w) for w in answer["windows"]],
+        columns=None if answer["windows"] else list(BASE_COLUMNS),
+    )
+    for col in ("start", "end"):
+        frame[col] = pd.to_datetime(frame[col], utc=True)
+    frame.attrs.update({k: v for k, v in answer.items() if k != "windows"})
+    return frame

@@ -2,20 +2,17 @@
 
 from __future__ import annotations
 
-import difflib
 from collections.abc import Iterable
 from dataclasses import dataclass
 from datetime import UTC, datetime, timedelta, tzinfo
 
-from sqlalchemy import select, text
 from sqlalchemy.orm import Session
 
 from belated.errors import Invalid, field_error
 from belated.stats.fbeta import resolve_beta
 from belated.stats.summary import check_measures
-from belated.store import segments
-from belated.store.dialect import is_postgres
-from belated.store.tables import ModelRow, Prediction
+from belated.store import tag_names
+from belated.store.tables import ModelRow
 from belated.timeutil import GRANULARITIES, parse_ts, window_step
 from belated.zones import DEFAULT_ZONE, floor_local, shift, zone
 
@@ -129,7 +126,8 @@ def parse_beta(beta: float | None, precision_weight: float | None) -> float:
 
 
 def parse_segments(values: list[str] | None) -> tuple[tuple[str, str], ...]:
-    """`key:value` filters; the same key twice is refused."""
+    """`key:value` filters of the dashboard's form; the same key twice is refused. (The API
+    takes `tag.<key>=<value>`, see parse_tag_filters.)"""
     out: list[tuple[str, str]] = []
     for raw in values or []:
         key, sep, value = raw.partition(":")
@@ -142,13 +140,11 @@ def parse_segments(values: list[str] | None) -> tuple[tuple[str, str], ...]:
 
 
 TAG_PREFIX = "tag."
-MAX_SUGGESTIONS = 3
-RAW_VALUES_SCANNED = 1000
 
 
 def parse_tag_filters(items: Iterable[tuple[str, str]]) -> tuple[tuple[str, str], ...]:
     """`tag.<key>=<value>` query parameters (other parameters are skipped): one value per
-    key, the filters ANDed; returned in the (key, value) form `parse_segments` gives."""
+    key, the filters ANDed; returned as (key, value) pairs."""
     out: list[tuple[str, str]] = []
     for name, value in items:
         if not name.startswith(TAG_PREFIX):
@@ -168,64 +164,17 @@ def check_known_tags(
     session: Session, model: ModelRow, filters: tuple[tuple[str, str], ...]
 ) -> None:
     """Refuse a filter whose key, or whose value for its key, no prediction of the model
-    carries: a 422 naming it and the closest known ones. Admitted keys and values (and
-    '(other)' for an admitted key) are known without reading raw rows."""
-    admitted = segments.admitted(session=session, model_id=model.id)
+    carries: a 422 naming it and the closest known ones."""
     for key, value in filters:
-        field = f"{TAG_PREFIX}{key}"
-        known_values = admitted.get(key)
-        if known_values is None and not _raw_exists(session, model, key, None):
-            near = _closest(key, sorted(set(admitted) | set(_raw_keys(session, model))))
-            raise _bad(field, f"no prediction of this model has the tag key {key!r}{near}")
-        if known_values is not None and (value in known_values or value == segments.OTHER):
-            continue
-        if not _raw_exists(session, model, key, value):
-            seen = sorted(set(known_values or []) | set(_raw_values(session, model, key)))
-            near = _closest(value, seen)
-            raise _bad(field, f"no prediction of this model has {key}={value!r}{near}")
+        reason = tag_names.unknown_filter(session, model, key, value)
+        if reason:
+            raise _bad(f"{TAG_PREFIX}{key}", reason)
 
 
-def _raw_exists(session: Session, model: ModelRow, key: str, value: str | None) -> bool:
-    expr = segments.tag_expr(key)
-    cond = expr.is_not(None) if value is None else expr == value
-    query = select(Prediction.row_id).where(Prediction.model_id == model.id, cond).limit(1)
-    return session.execute(query).first() is not None
-
-
-def _raw_keys(session: Session, model: ModelRow) -> list[str]:
-    """Up to RAW_VALUES_SCANNED tag keys the model's stored predictions carry."""
-    if is_postgres(session):
-        sql = (
-            "SELECT DISTINCT jsonb_object_keys(tags) AS k FROM predictions"
-            " WHERE model_id = :m AND tags IS NOT NULL LIMIT :n"
-        )
-    else:
-        sql = (
-            "SELECT DISTINCT j.key FROM predictions, json_each(predictions.tags) AS j"
-            " WHERE predictions.model_id = :m AND predictions.tags IS NOT NULL LIMIT :n"
-        )
-    rows = session.execute(text(sql), {"m": model.id, "n": RAW_VALUES_SCANNED})
-    return [str(r[0]) for r in rows]
-
-
-def _raw_values(session: Session, model: ModelRow, key: str) -> list[str]:
-    expr = segments.tag_expr(key)
-    query = (
-        select(expr)
-        .distinct()
-        .where(Prediction.model_id == model.id, expr.is_not(None))
-        .limit(RAW_VALUES_SCANNED)
-    )
-    return [str(v) for v in session.scalars(query)]
-
-
-def _closest(word: str, known: list[str]) -> str:
-    near = difflib.get_close_matches(word, known, n=MAX_SUGGESTIONS, cutoff=0.5)
-    if near:
-        return f"; closest known: {', '.join(near)}"
-    if known:
-        return f"; known: {', '.join(sorted(known)[:10])}{', ...' if len(known) > 10 else ''}"
-    return ""
+def refuse_segment(query: Iterable[str]) -> None:
+    """The old `segment=key:value` filter is gone: say what replaced it."""
+    if "segment" in query:
+        raise _bad("segment", "not a parameter any more; filter with tag.<key>=<value>")
 
 
 MULTICLASS_MEASURES = ("accuracy",) + tuple(

@@ -67,6 +67,14 @@ def create(
     return row, secret
 
 
+def list_(*, session: Session, project_id: int, revoked: bool = False) -> list[Token]:
+    """The project's tokens, oldest first; revoked ones only when asked for."""
+    query = select(Token).where(Token.project_id == project_id)
+    if not revoked:
+        query = query.where(Token.revoked_at.is_(None))
+    return list(session.scalars(query.order_by(Token.created_at, Token.id)))
+
+
 def resolve(*, session: Session, token: str) -> Principal | None:
     """The principal of a live token, or None.
 

@@ -15,6 +15,7 @@ _TABLES: list[type] = [
     t.DirtyBucket,
     t.LabelChange,
     t.ThresholdChange,
+    t.Marker,
     rt.Rollup,
     rt.SegmentValue,
     rt.SegmentKey,

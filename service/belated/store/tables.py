@@ -16,6 +16,7 @@ from sqlalchemy import (
     Integer,
     MetaData,
     String,
+    Text,
     UniqueConstraint,
     true,
 )
@@ -196,6 +197,19 @@ class LabelChange(Base):
     new_delay_h: Mapped[float | None] = mapped_column(Float, nullable=True)
 
 
+class Marker(Base):
+    """A dated note on a model's timeline ("supplier change in the north"), drawn on charts."""
+
+    __tablename__ = "markers"
+    __table_args__ = (Index("ix_markers_model_at", "model_id", "at"),)
+    id: Mapped[str] = mapped_column(String(32), primary_key=True)
+    model_id: Mapped[int] = mapped_column(ForeignKey("models.id", ondelete="CASCADE"))
+    at: Mapped[datetime] = mapped_column(UtcDateTime)
+    text: Mapped[str] = mapped_column(Text)
+    author: Mapped[str] = mapped_column(String(160))
+    created_at: Mapped[datetime] = mapped_column(UtcDateTime)
+
+
 class ServiceState(Base):
     """Small key/value facts the jobs leave for readers (last refresh, counters)."""
 
@@ -215,5 +229,6 @@ __all__ = [
     "Label",
     "PendingLabel",
     "DirtyBucket",
+    "Marker",
     "ServiceState",
 ]

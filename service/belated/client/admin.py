@@ -1,0 +1,78 @@
+"""The settings side of the API as client calls: models, rules, tokens."""
+
+from __future__ import annotations
+
+from typing import Any, cast
+
+from belated.client.rows import plain
+
+
+class AdminCalls:
+    """Calls on models, rules and tokens; `Client` supplies `request`."""
+
+    def request(
+        self,
+        method: str,
+        path: str,
+        *,
+        body: Any = None,
+        params: dict[str, Any] | None = None,
+        repeatable: bool = True,
+    ) -> Any:
+        """Send one request and answer the JSON body (defined by `Client`)."""
+        raise NotImplementedError
+
+    def _all(self, path: str, params: dict[str, Any] | None = None) -> list[dict[str, Any]]:
+        """Every item of a listing, following `next_cursor`."""
+        query: dict[str, Any] = dict(params or {})
+        out: list[dict[str, Any]] = []
+        while True:
+            page = self.request("GET", path, params=query)
+            out += page["items"]
+            if not page.get("next_cursor"):
+                return out
+            query["cursor"] = page["next_cursor"]
+
+    def models(self) -> list[dict[str, Any]]:
+        """Every model of the project, with its settings and stored counts."""
+        return self._all("/v1/models", {"limit": 500})
+
+    def update_model(self, name: str, **fields: Any) -> dict[str, Any]:
+        """Change a model's settings (PATCH); answers the model."""
+        return cast(dict[str, Any], self.request("PATCH", f"/v1/models/{name}", body=plain(fields)))
+
+    def delete_model(self, name: str) -> None:
+        """Delete a model with all its data."""
+        self.request("DELETE", f"/v1/models/{name}")
+
+    def rules(self, model: str, *, retired: bool = False) -> list[dict[str, Any]]:
+        """The model's rules (with the retired ones when `retired`)."""
+        return self._all(f"/v1/models/{model}/rules", {"retired": str(retired).lower()})
+
+    def create_rule(self, model: str, **fields: Any) -> dict[str, Any]:
+        """Create an alert rule (`kind`, `measure`, ... as in POST .../rules)."""
+        return cast(
+            dict[str, Any],
+            self.request("POST", f"/v1/models/{model}/rules", body=plain(fields), repeatable=False),
+        )
+
+    def delete_rule(self, model: str, rule_id: str) -> None:
+        """Retire a rule (its alerts and breaches stay)."""
+        self.request("DELETE", f"/v1/models/{model}/rules/{rule_id}")
+
+    def keys(self, *, revoked: bool = False) -> list[dict[str, Any]]:
+        """The project's tokens, without secrets (with revoked ones when `revoked`)."""
+        return self._all("/v1/keys", {"revoked": str(revoked).lower()})
+
+    def create_key(self, scopes: list[str], name: str | None = None) -> dict[str, Any]:
+        """Create a token of this project; the answer's `token` is shown this once."""
+        return cast(
+            dict[str, Any],
+            self.request(
+                "POST", "/v1/keys", body={"scopes": scopes, "name": name}, repeatable=False
+            ),
+        )
+
+    def revoke_key(self, key_id: str) -> None:
+        """Revoke a token of this project."""
+        self.request("DELETE", f"/v1/keys/{key_id}")
