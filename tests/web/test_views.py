@@ -125,6 +125,39 @@ def test_alerts_are_marked_at_their_first_breached_window_on_every_chart(
         assert "region:north" in text and "alert raised" in text
 
 
+def test_markers_are_marked_at_their_window_on_every_chart(shop: tuple[Tenant, str]) -> None:
+    tenant, name = shop
+    at = FIRST_DAY + timedelta(days=21, hours=9, minutes=30)  # the change, on a Monday
+    r = tenant.client.post(
+        f"/v1/models/{name}/markers",
+        json={"at": stamp(at), "text": "new sofa supplier in the north"},
+        headers=tenant.headers("admin"),
+    )
+    assert r.status_code == 201, r.text
+    marker = r.json()
+    html = _page(tenant, f"/models/{name}")
+    charts = re.findall(r'<svg class="chart (?:line|bars)[^"]*" id="(m-[^"]+|coverage)"', html)
+    assert len(charts) == 5
+    for cid in charts:
+        svg = re.search(rf'<svg [^>]*id="{cid}".*?</svg>', html, re.S)
+        assert svg
+        marks = re.findall(
+            r'<g class="mark marker" tabindex="0" data-kind="marker" data-window="([^"]+)" '
+            r'data-ref="([^"]+)"[^>]*><title>([^<]+)</title>',
+            svg.group(0),
+        )
+        assert len(marks) == 1, cid
+        window, ref, text = marks[0]
+        assert ref == marker["id"]
+        assert window.startswith(at.date().isoformat())
+        assert "new sofa supplier in the north" in text
+    # a marker outside the range shown is not drawn
+    html = _page(
+        tenant, f"/models/{name}", start=stamp(FIRST_DAY), end=stamp(at - timedelta(days=7))
+    )
+    assert 'class="mark marker"' not in html
+
+
 def _truth(data: list[regions.Order], region: str, day: int, beta: float) -> dict[str, float]:
     chosen = [o for o in data if o.region == region and o.day == day]
     y = [o.actual for o in chosen]

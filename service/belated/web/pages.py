@@ -14,7 +14,7 @@ from belated.metrics import delays as metric_delays
 from belated.metrics import params
 from belated.metrics import thresholds as metric_thresholds
 from belated.metrics.windows import MeasureOptions, windows_of_range
-from belated.store import model_registry
+from belated.store import markers, model_registry
 from belated.store.keys import Principal
 from belated.store.tables import ModelRow
 from belated.timeutil import parse_ts
@@ -190,7 +190,9 @@ def model_view(
         for r in alert_rules.list_rules(session=session, model=row)
     ]
     if view.start or view.end:
-        rng = params.parse_range(view.granularity, view.start or None, view.end or None, now)
+        rng = params.parse_range(
+            view.granularity, view.start or None, view.end or None, now, time_zone=row.time_zone
+        )
     else:
         rng = views.default_range(session, row, view.granularity, rules, now)
     windows = _windows(session, row, rng, now, max_values, filters, view.beta)
@@ -198,7 +200,9 @@ def model_view(
     alerts = alert_pages.with_rules(
         session, row, alert_pages.list_all(session, who, state=ACTIVE, model=row.name)
     )
-    marks = views.alert_marks(alerts, g)  # a model's markers join these when they exist
+    marks = views.alert_marks(alerts, g) + views.marker_marks(
+        markers.list_(session=session, model=row, start=rng.start, end=rng.end), g
+    )
     series = {m: _series(windows, m, g) for m in CHARTED[row.kind]}
     shared = [
         v

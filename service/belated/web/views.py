@@ -16,7 +16,7 @@ from sqlalchemy import func, select
 from sqlalchemy.orm import Session
 
 from belated.metrics import params
-from belated.store.tables import ModelRow, Prediction
+from belated.store.tables import Marker, ModelRow, Prediction
 from belated.timeutil import floor_window, from_db, iso, parse_ts
 from belated.web import charts
 
@@ -60,6 +60,20 @@ def default_range(
     begin = min(begin, settled_by)
     begin = max(begin, first, plain.end - timedelta(days=MAX_DAYS))
     return params.Range("day", min(begin, plain.end - plain.step), plain.end)
+
+
+def marker_marks(found: list[Marker], granularity: str) -> list[charts.Mark]:
+    """One mark per marker at the window (of the page's granularity) it falls in; its text
+    is the marker's, with its time and who set it."""
+    return [
+        charts.Mark(
+            key=iso(floor_window(from_db(m.at) or m.at, granularity)),
+            text=f"marker: {m.text} ({from_db(m.at) or m.at:%d %b %Y %H:%M} UTC, {m.author})",
+            kind="marker",
+            ref=m.id,
+        )
+        for m in found
+    ]
 
 
 def alert_marks(alerts: list[dict[str, Any]], granularity: str) -> list[charts.Mark]:
