@@ -235,6 +235,8 @@ def test_beta_control_names_f_beta_and_the_url_keeps_it(shop: tuple[Tenant, str]
         ({"segments": "regoin"}, "segments"),
         ({"sort": "colour"}, "sort"),
         ({"order": "sideways"}, "order"),
+        ({"segment": "region:nrth"}, "tag.region"),
+        ({"segment": "colour:red"}, "tag.colour"),
     ],
 )
 def test_bad_view_parameters_are_named_once(
@@ -246,6 +248,8 @@ def test_bad_view_parameters_are_named_once(
     assert r.text.count(f"{field}") >= 1
     if field == "segments":
         assert "closest stored keys: region" in r.text
+    if params.get("segment") == "region:nrth":  # a typo of a value: the closest one named
+        assert "north" in r.text
     body = re.search(r"<main>(.*)</main>", r.text, re.S)
     assert body
     lines = [x.strip() for x in re.sub(r"<[^>]+>", "\n", body.group(1)).splitlines() if x.strip()]

@@ -185,6 +185,7 @@ def model_view(
     """Everything the model page shows, for the asked range and segment."""
     filters = params.parse_segments(list(view.segment))
     row = model_registry.get(session=session, project_id=who.project_id, name=name)
+    params.check_known_tags(session, row, filters)  # a typo is a 422 page, not empty charts
     rules = [
         alert_rules.rule_read(r, row.name)
         for r in alert_rules.list_rules(session=session, model=row)
