@@ -23,7 +23,7 @@ from sqlalchemy import Engine
 from belated.clock import clock
 from belated.store import keys
 from belated.store.db import transaction
-from tests.support import create_model, rows, stamp, three_class_scores
+from tests.support import create_model, prediction, rows, send, stamp, three_class_scores
 from tests.support.shop import (
     DAYS,
     FIRST_DAY,
@@ -162,12 +162,14 @@ def test_another_projects_model_is_not_found(tenant: Any, sessions: Any, engine:
 
 def test_bad_parameters_are_named_and_text_is_escaped(tenant: Any, engine: Engine) -> None:
     name = create_model(tenant, engine).name
+    send(tenant.client, name, "predictions", [prediction(0, tags={"region": "north"})])
     r = tenant.client.get(f"/models/{name}?granularity=fortnight", headers=tenant.headers("read"))
     assert r.status_code == 422 and "granularity" in r.text
     r = tenant.client.get(
         f"/models/{name}", headers=tenant.headers("read"), params={"segment": 'region:<b id="x">'}
     )
-    assert r.status_code == 200
+    # no prediction carries that value: a 422 page that names it, escaped
+    assert r.status_code == 422 and "tag.region" in r.text and "north" in r.text
     assert '<b id="x">' not in r.text and "&lt;b id=&#34;x&#34;&gt;" in r.text
 
 
