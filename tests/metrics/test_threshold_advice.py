@@ -231,11 +231,11 @@ def test_default_range_takes_settled_days_only(tenant: Tenant, engine: Engine) -
     page = advice_text(tenant, model)
     assert "settled days of the last 30 days" in page
     assert f"with predictions {answer['range']['settled_days']} settled" in page
-    assert f"{answer['labelled']} labelled predictions" in page
-    assert f"{answer['labelled_positives']} positive" in page
-    assert f"Left out: {answer['unsettled_labelled']} labelled predictions" in page
+    assert f"{answer['labelled']:,} labelled predictions" in page
+    assert f"{answer['labelled_positives']:,} positive" in page
+    assert f"Left out: {answer['unsettled_labelled']:,} labelled predictions" in page
     chosen = advice_text(tenant, model, start=start.date().isoformat())
-    assert "range you chose" in chosen and f"{given['labelled']} labelled" in chosen
+    assert "range you chose" in chosen and f"{given['labelled']:,} labelled" in chosen
     assert f"{given['unsettled_labelled']} of these labelled predictions" in chosen
 
 
