@@ -158,6 +158,38 @@ def test_markers_are_marked_at_their_window_on_every_chart(shop: tuple[Tenant, s
     assert 'class="mark marker"' not in html
 
 
+def test_unsettled_windows_show_their_coverage_bounds_as_a_lighter_band(
+    shop: tuple[Tenant, str],
+) -> None:
+    tenant, name = shop
+    html = _page(tenant, f"/models/{name}")
+    start, end = _shown(html)
+    windows = tenant.client.get(
+        f"/v1/models/{name}/metrics", params={"granularity": "day", "start": start, "end": end}
+    ).json()["windows"]
+    want = {
+        w["start"]: w["bounds"]["precision"]
+        for w in windows
+        if not w["settled"] and (w.get("bounds") or {}).get("precision", {}).get("low") is not None
+    }
+    assert want  # the story's newest days are unsettled and partly labelled
+    svg = re.search(r'<svg [^>]*id="m-precision".*?</svg>', html, re.S)
+    assert svg
+    band = re.search(r'<g class="bounds">(.*?)</g>', svg.group(0), re.S)
+    assert band
+    drawn = dict(
+        re.findall(
+            r'<rect [^>]*data-window="([^"]+)"><title>[^<]*coverage bounds \[([^\]]+)\]',
+            band.group(1),
+        )
+    )
+    assert set(drawn) == set(want)  # unsettled windows only, every one with bounds
+    for key, text in drawn.items():
+        low, high = (float(x) for x in text.split(", "))
+        assert low == pytest.approx(want[key]["low"], rel=1e-5)
+        assert high == pytest.approx(want[key]["high"], rel=1e-5)
+
+
 def _truth(data: list[regions.Order], region: str, day: int, beta: float) -> dict[str, float]:
     chosen = [o for o in data if o.region == region and o.day == day]
     y = [o.actual for o in chosen]

@@ -33,6 +33,10 @@ class Point:
     # an unsettled window drawn at its projected value (what it will read once its labels
     # are in), not its labelled-only value
     projected: bool = False
+    # the coverage bounds of an unsettled window (the measure if every missing label went
+    # one way or the other): drawn as a lighter band behind the interval
+    bounds_low: float | None = None
+    bounds_high: float | None = None
 
 
 @dataclass(frozen=True)
@@ -212,7 +216,19 @@ def line_chart(
     )
     out = _open(cid, title, summary, f"line {css}")
     out += [_zones(fr, cid, [not p.settled for p in points]), _grid(fr, ticks)]
-    out.append('<g class="band">')
+    out.append('<g class="bounds">')
+    for i, p in enumerate(points):
+        if p.bounds_low is None or p.bounds_high is None:
+            continue
+        top = fr.y(min(hi, max(lo, p.bounds_high)))  # clipped to the axis, which they
+        bottom = fr.y(min(hi, max(lo, p.bounds_low)))  # do not stretch
+        out.append(
+            f'<rect x="{_f(fr.x(i) - 5)}" y="{_f(top)}" width="10" '
+            f'height="{_f(bottom - top)}" data-window="{escape(p.key)}">'
+            f"<title>{escape(f'{p.label}: coverage bounds [{_v(p.bounds_low)}, ')}"
+            f"{escape(f'{_v(p.bounds_high)}]')}</title></rect>"
+        )
+    out.append('</g><g class="band">')
     for a, b in _runs([p.low is not None and p.high is not None for p in points]):
         highs = [(fr.x(i), fr.y(points[i].high or 0.0)) for i in range(a, b + 1)]
         lows = [(fr.x(i), fr.y(points[i].low or 0.0)) for i in range(a, b + 1)]

@@ -152,10 +152,10 @@ def _series(
             reason = "nothing labelled yet"  # the cause, not the arithmetic's symptom
         note = reason or labelled_text(w)
         proj = (w.get("projected") or {}).get(measure) if section == "measures" else None
+        bounds = (w.get("bounds") or {}).get(measure) or {} if section == "measures" else {}
         if proj and proj.get("value") is not None:
             # the honest number first: what the window will read once its labels are in,
             # with the labelled-only value and the coverage bounds beside it
-            bounds = (w.get("bounds") or {}).get(measure) or {}
             beside = f"labelled only {num3(m.get('value'))} ({note})"
             if bounds.get("low") is not None:
                 beside += f"; coverage bounds [{num3(bounds['low'])}, {num3(bounds['high'])}]"
@@ -170,6 +170,8 @@ def _series(
                 settled=w["settled"],
                 note=note,
                 projected=m is proj,
+                bounds_low=None if w["settled"] else bounds.get("low"),
+                bounds_high=None if w["settled"] else bounds.get("high"),
             )
         )
     return out
