@@ -2,11 +2,12 @@
 
 from __future__ import annotations
 
-from typing import Annotated
+from typing import Annotated, Any
 from urllib.parse import quote, urlsplit
 
 from fastapi import APIRouter, Form, Query, Request
 from fastapi.responses import HTMLResponse, RedirectResponse, Response
+from sqlalchemy.orm import Session
 
 from belated.api.deps import SessionDep, caller_of
 from belated.clock import now
@@ -155,6 +156,23 @@ def _view(
     )
 
 
+def _model_data(
+    request: Request, session: Session, who: Principal, name: str, query: tuple[Any, ...]
+) -> dict[str, Any] | Response:
+    """What the model page shows for the view the query asks, or the error page."""
+    try:
+        return pages.model_view(
+            session=session,
+            who=who,
+            name=name,
+            view=_view(*query),
+            now=now(),
+            max_values=request.app.state.settings.max_segment_values,
+        )
+    except (Problem, DomainError) as problem:
+        return error_page(problem)
+
+
 @router.get("/models/{name}", response_class=HTMLResponse)
 def model_page(
     name: str,
@@ -173,18 +191,11 @@ def model_page(
     who = viewer(request, session)
     if isinstance(who, Response):
         return who
-    try:
-        view = _view(granularity, start, end, segment, beta, segments, sort, order)
-        page = pages.model_view(
-            session=session,
-            who=who,
-            name=name,
-            view=view,
-            now=now(),
-            max_values=request.app.state.settings.max_segment_values,
-        )
-    except (Problem, DomainError) as problem:
-        return error_page(problem)
+    page = _model_data(
+        request, session, who, name, (granularity, start, end, segment, beta, segments, sort, order)
+    )
+    if isinstance(page, Response):
+        return page
     return render("model.html", signed_in=True, section="models", **page)
 
 
@@ -209,18 +220,11 @@ def model_csv(
         return who
     if table not in export.TABLES:
         return error_page(Problem(404, f"No table {table!r}; one of {', '.join(export.TABLES)}."))
-    try:
-        view = _view(granularity, start, end, segment, beta, segments, sort, order)
-        page = pages.model_view(
-            session=session,
-            who=who,
-            name=name,
-            view=view,
-            now=now(),
-            max_values=request.app.state.settings.max_segment_values,
-        )
-    except (Problem, DomainError) as problem:
-        return error_page(problem)
+    page = _model_data(
+        request, session, who, name, (granularity, start, end, segment, beta, segments, sort, order)
+    )
+    if isinstance(page, Response):
+        return page
     return csv_download(export.model_table(page, table), f"{name}-{table}.csv")
 
 
