@@ -14,7 +14,7 @@ from __future__ import annotations
 
 from collections.abc import Iterable, Sequence
 
-from sqlalchemy import func, insert, select, text
+from sqlalchemy import insert, text
 from sqlalchemy.orm import Session
 
 from belated.clock import now
@@ -69,11 +69,3 @@ def mark(
         ],
     )
     return len(ordered)
-
-
-def count(*, session: Session, model_id: int | None = None) -> int:
-    """How many (model, hour) buckets are dirty."""
-    marks = select(DirtyBucket.model_id, DirtyBucket.hour).distinct()
-    if model_id is not None:
-        marks = marks.where(DirtyBucket.model_id == model_id)
-    return int(session.scalar(select(func.count()).select_from(marks.subquery())) or 0)

@@ -76,7 +76,6 @@ class GroupWriter:
         self.queue: queue.Queue[Batch] = queue.Queue(maxsize=max_queued)
         self._lock = threading.Lock()
         self._running: list[threading.Thread] = []
-        self.groups = 0
 
     def submit(self, batch: Batch) -> Future[dict[str, int]]:
         """Queue a batch; its future answers accepted and duplicates once committed."""
@@ -86,10 +85,6 @@ class GroupWriter:
             raise Busy from None
         self._ensure_threads()
         return batch.done
-
-    def queued(self) -> int:
-        """Batches waiting."""
-        return self.queue.qsize()
 
     def _ensure_threads(self) -> None:
         with self._lock:
@@ -119,7 +114,6 @@ class GroupWriter:
                     break
                 group.append(more)
                 rows += len(more.items)
-            self.groups += 1
             self._store(group)
 
     def _store(self, group: list[Batch]) -> None:
