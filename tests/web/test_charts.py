@@ -8,7 +8,7 @@ from __future__ import annotations
 
 import xml.etree.ElementTree as ET
 
-from belated.web import charts
+from belated.web import charts, panels
 from belated.web.charts import Point
 
 
@@ -140,7 +140,7 @@ def test_bars_count_gaps_hatching_and_reference() -> None:
     values = [1.0, 0.95, None, 0.4]
     points = [Point(key=str(i), label=str(i), value=v, settled=i < 2) for i, v in enumerate(values)]
     root = parse(
-        charts.bar_chart(
+        panels.bar_chart(
             points,
             title="Coverage",
             chart_id="cov",
@@ -164,7 +164,7 @@ def test_strip_chart_has_hollow_estimate_markers_only() -> None:
         ("estimated precision", series([0.6, None, 0.7])),
         ("estimated recall", series([0.5, 0.55, None])),
     ]
-    root = parse(charts.strip_chart(rows, title="Label-free estimates", chart_id="est"))
+    root = parse(panels.strip_chart(rows, title="Label-free estimates", chart_id="est"))
     pts = with_class(root, "pt")
     assert len(pts) == 4 and all("est" in (p.get("class") or "") for p in pts)
     assert with_class(root, "seg") == []  # markers, never a line paired with measured values
@@ -181,7 +181,7 @@ def test_sweep_marks_the_best_threshold() -> None:
         for k in range(100)
     ]
     root = parse(
-        charts.sweep_chart(
+        panels.sweep_chart(
             rows,
             title="Sweep",
             chart_id="sweep",

@@ -50,19 +50,19 @@ class Mark:
     ref: str = ""  # an id to find it by (data-ref)
 
 
-def _f(x: float) -> str:
+def xy(x: float) -> str:
     return f"{x:.1f}"
 
 
-def _v(x: float | None) -> str:
+def attr(x: float | None) -> str:
     return "" if x is None else f"{x:.6g}"
 
 
-def _pct(x: float | None) -> str:
+def pct_text(x: float | None) -> str:
     return "none" if x is None else f"{x:.1%}"
 
 
-def _safe_id(text: str) -> str:
+def safe_id(text: str) -> str:
     return re.sub(r"[^a-z0-9_-]+", "-", text.lower()).strip("-") or "chart"
 
 
@@ -87,7 +87,7 @@ def nice_domain(values: Sequence[float]) -> tuple[float, float, list[float]]:
 
 
 @dataclass(frozen=True)
-class _Frame:
+class Frame:
     n: int
     lo: float
     hi: float
@@ -104,7 +104,7 @@ class _Frame:
         return TOP + (self.hi - v) / ((self.hi - self.lo) or 1) * (self.height - TOP - BOTTOM)
 
 
-def _open(cid: str, title: str, summary: str, css: str, height: int = H) -> list[str]:
+def open_svg(cid: str, title: str, summary: str, css: str, height: int = H) -> list[str]:
     label = escape(f"{title}. {summary}")
     return [
         f'<svg class="chart {escape(css)}" id="{cid}" viewBox="0 0 {W} {height}" '
@@ -116,10 +116,10 @@ def _open(cid: str, title: str, summary: str, css: str, height: int = H) -> list
     ]
 
 
-def _grid(fr: _Frame, ticks: Sequence[float], as_pct: bool = False) -> str:
+def grid(fr: Frame, ticks: Sequence[float], as_pct: bool = False) -> str:
     parts = ['<g class="grid">']
     for t in ticks:
-        y = _f(fr.y(t))
+        y = xy(fr.y(t))
         text = f"{t:.0%}" if as_pct else f"{t:.2f}".rstrip("0").rstrip(".")
         parts.append(
             f'<line x1="{LEFT}" x2="{W - RIGHT}" y1="{y}" y2="{y}"/>'
@@ -129,18 +129,18 @@ def _grid(fr: _Frame, ticks: Sequence[float], as_pct: bool = False) -> str:
     return "".join(parts)
 
 
-def _xlabels(fr: _Frame, labels: Sequence[str]) -> str:
+def xlabels(fr: Frame, labels: Sequence[str]) -> str:
     every = max(1, math.ceil(len(labels) / 5))
-    y = _f(fr.height - BOTTOM + 22)
+    y = xy(fr.height - BOTTOM + 22)
     parts = ['<g class="xaxis">']
     for i, text in enumerate(labels):
         if i % every == 0:
-            parts.append(f'<text x="{_f(fr.x(i))}" y="{y}">{escape(text)}</text>')
+            parts.append(f'<text x="{xy(fr.x(i))}" y="{y}">{escape(text)}</text>')
     parts.append("</g>")
     return "".join(parts)
 
 
-def _runs(flags: Sequence[bool]) -> list[tuple[int, int]]:
+def runs(flags: Sequence[bool]) -> list[tuple[int, int]]:
     """[first, last] index pairs of the consecutive True stretches."""
     out: list[tuple[int, int]] = []
     for i, flag in enumerate(flags):
@@ -151,20 +151,20 @@ def _runs(flags: Sequence[bool]) -> list[tuple[int, int]]:
     return out
 
 
-def _zones(fr: _Frame, cid: str, unsettled: Sequence[bool]) -> str:
+def zones(fr: Frame, cid: str, unsettled: Sequence[bool]) -> str:
     """Hatched background behind the windows whose measures are still provisional."""
     parts = ['<g class="prov-zone">']
-    for a, b in _runs(unsettled):
+    for a, b in runs(unsettled):
         x0, x1 = fr.x(a) - fr.step / 2, fr.x(b) + fr.step / 2
         parts.append(
-            f'<rect x="{_f(x0)}" y="{TOP}" width="{_f(x1 - x0)}" '
+            f'<rect x="{xy(x0)}" y="{TOP}" width="{xy(x1 - x0)}" '
             f'height="{fr.height - TOP - BOTTOM}" fill="url(#{cid}-hatch)"/>'
         )
     parts.append("</g>")
     return "".join(parts)
 
 
-def _marks(fr: _Frame, keys: Sequence[str], marks: Sequence[Mark]) -> str:
+def marks_layer(fr: Frame, keys: Sequence[str], marks: Sequence[Mark]) -> str:
     """A flag above each marked window: a thin dashed stem and a small diamond the reader can
     hover or focus (tabindex) to read what it marks."""
     where = {k: i for i, k in enumerate(keys)}
@@ -179,15 +179,15 @@ def _marks(fr: _Frame, keys: Sequence[str], marks: Sequence[Mark]) -> str:
             f'<g class="mark {escape(m.kind)}" tabindex="0" data-kind="{escape(m.kind)}" '
             f'data-window="{escape(m.key)}" data-ref="{escape(m.ref)}" '
             f'aria-label="{escape(m.text)}"><title>{escape(m.text)}</title>'
-            f'<line x1="{_f(x)}" x2="{_f(x)}" y1="{_f(y)}" y2="{fr.height - BOTTOM}"/>'
-            f'<path d="M{_f(x)},{_f(y - 5)} L{_f(x + 5)},{_f(y)} L{_f(x)},{_f(y + 5)} '
-            f'L{_f(x - 5)},{_f(y)} Z"/></g>'
+            f'<line x1="{xy(x)}" x2="{xy(x)}" y1="{xy(y)}" y2="{fr.height - BOTTOM}"/>'
+            f'<path d="M{xy(x)},{xy(y - 5)} L{xy(x + 5)},{xy(y)} L{xy(x)},{xy(y + 5)} '
+            f'L{xy(x - 5)},{xy(y)} Z"/></g>'
         )
     parts.append("</g>")
     return "".join(parts)
 
 
-def _hover(p: Point, text: str) -> str:
+def hover(p: Point, text: str) -> str:
     state = "settled" if p.settled else "provisional"
     extra = f"; {p.note}" if p.note else ""
     return f"<title>{escape(f'{p.label}: {text} ({state}{extra})')}</title>"
@@ -205,17 +205,17 @@ def line_chart(
     """A measure over windows: a line, its interval as a band, settled points filled,
     provisional points hollow over a hatched zone; None values are gaps. `domain`: values to
     fit the y-axis to (shared by panels of the same measure), else this chart's own."""
-    cid = _safe_id(chart_id)
+    cid = safe_id(chart_id)
     known = [v for p in points for v in (p.value, p.low, p.high) if v is not None]
     lo, hi, ticks = nice_domain(list(domain) if domain else known)
-    fr = _Frame(len(points), lo, hi)
+    fr = Frame(len(points), lo, hi)
     defined = [p for p in points if p.value is not None]
     latest = next((p for p in reversed(points) if p.value is not None), None)
     summary = f"{len(points)} windows, {len(defined)} with a value" + (
-        f"; latest {latest.label}: {_v(latest.value)}" if latest else ""
+        f"; latest {latest.label}: {attr(latest.value)}" if latest else ""
     )
-    out = _open(cid, title, summary, f"line {css}")
-    out += [_zones(fr, cid, [not p.settled for p in points]), _grid(fr, ticks)]
+    out = open_svg(cid, title, summary, f"line {css}")
+    out += [zones(fr, cid, [not p.settled for p in points]), grid(fr, ticks)]
     out.append('<g class="bounds">')
     for i, p in enumerate(points):
         if p.bounds_low is None or p.bounds_high is None:
@@ -223,22 +223,22 @@ def line_chart(
         top = fr.y(min(hi, max(lo, p.bounds_high)))  # clipped to the axis, which they
         bottom = fr.y(min(hi, max(lo, p.bounds_low)))  # do not stretch
         out.append(
-            f'<rect x="{_f(fr.x(i) - 5)}" y="{_f(top)}" width="10" '
-            f'height="{_f(bottom - top)}" data-window="{escape(p.key)}">'
-            f"<title>{escape(f'{p.label}: coverage bounds [{_v(p.bounds_low)}, ')}"
-            f"{escape(f'{_v(p.bounds_high)}]')}</title></rect>"
+            f'<rect x="{xy(fr.x(i) - 5)}" y="{xy(top)}" width="10" '
+            f'height="{xy(bottom - top)}" data-window="{escape(p.key)}">'
+            f"<title>{escape(f'{p.label}: coverage bounds [{attr(p.bounds_low)}, ')}"
+            f"{escape(f'{attr(p.bounds_high)}]')}</title></rect>"
         )
     out.append('</g><g class="band">')
-    for a, b in _runs([p.low is not None and p.high is not None for p in points]):
+    for a, b in runs([p.low is not None and p.high is not None for p in points]):
         highs = [(fr.x(i), fr.y(points[i].high or 0.0)) for i in range(a, b + 1)]
         lows = [(fr.x(i), fr.y(points[i].low or 0.0)) for i in range(a, b + 1)]
         if a == b:  # a lone window: its interval as a short bar
             out.append(
-                f'<rect x="{_f(highs[0][0] - 3)}" y="{_f(highs[0][1])}" width="6" '
-                f'height="{_f(lows[0][1] - highs[0][1])}"/>'
+                f'<rect x="{xy(highs[0][0] - 3)}" y="{xy(highs[0][1])}" width="6" '
+                f'height="{xy(lows[0][1] - highs[0][1])}"/>'
             )
             continue
-        d = " L".join(f"{_f(px)},{_f(py)}" for px, py in highs + lows[::-1])
+        d = " L".join(f"{xy(px)},{xy(py)}" for px, py in highs + lows[::-1])
         out.append(f'<path d="M{d} Z"/>')
     out.append('</g><g class="trace">')
     for i in range(len(points) - 1):
@@ -247,187 +247,36 @@ def line_chart(
             continue
         cls = "seg" if p.settled and q.settled else "seg prov"
         out.append(
-            f'<line class="{cls}" x1="{_f(fr.x(i))}" y1="{_f(fr.y(p.value))}" '
-            f'x2="{_f(fr.x(i + 1))}" y2="{_f(fr.y(q.value))}"/>'
+            f'<line class="{cls}" x1="{xy(fr.x(i))}" y1="{xy(fr.y(p.value))}" '
+            f'x2="{xy(fr.x(i + 1))}" y2="{xy(fr.y(q.value))}"/>'
         )
     out.append('</g><g class="pts">')
     for i, p in enumerate(points):
         if p.value is None:
             out.append(
-                f'<line class="gap" data-window="{escape(p.key)}" x1="{_f(fr.x(i))}" '
-                f'x2="{_f(fr.x(i))}" y1="{_f(fr.height - BOTTOM - 6)}" '
-                f'y2="{_f(fr.height - BOTTOM)}">'
-                f"{_hover(p, 'no value')}</line>"
+                f'<line class="gap" data-window="{escape(p.key)}" x1="{xy(fr.x(i))}" '
+                f'x2="{xy(fr.x(i))}" y1="{xy(fr.height - BOTTOM - 6)}" '
+                f'y2="{xy(fr.height - BOTTOM)}">'
+                f"{hover(p, 'no value')}</line>"
             )
             continue
-        band = f" [{_v(p.low)}, {_v(p.high)}]" if p.low is not None else ""
+        band = f" [{attr(p.low)}, {attr(p.high)}]" if p.low is not None else ""
         cls = "pt" if p.settled else "pt prov proj" if p.projected else "pt prov"
         shape = (
-            f'<rect class="{cls}" x="{_f(fr.x(i) - 3.4)}" y="{_f(fr.y(p.value) - 3.4)}" '
+            f'<rect class="{cls}" x="{xy(fr.x(i) - 3.4)}" y="{xy(fr.y(p.value) - 3.4)}" '
             'width="6.8" height="6.8"'
             if p.projected  # a square: projected, not measured on labels
-            else f'<circle class="{cls}" cx="{_f(fr.x(i))}" cy="{_f(fr.y(p.value))}" r="3.6"'
+            else f'<circle class="{cls}" cx="{xy(fr.x(i))}" cy="{xy(fr.y(p.value))}" r="3.6"'
         )
         tag = "rect" if p.projected else "circle"
         out.append(
-            f'{shape} data-value="{_v(p.value)}" data-low="{_v(p.low)}" '
-            f'data-high="{_v(p.high)}" data-window="{escape(p.key)}" '
+            f'{shape} data-value="{attr(p.value)}" data-low="{attr(p.low)}" '
+            f'data-high="{attr(p.high)}" data-window="{escape(p.key)}" '
             f'data-settled="{str(p.settled).lower()}" '
             f'data-projected="{str(p.projected).lower()}">'
-            f"{_hover(p, f'{p.value:.3f}{band}')}</{tag}>"
+            f"{hover(p, f'{p.value:.3f}{band}')}</{tag}>"
         )
     out.append("</g>")
-    out += [_marks(fr, [p.key for p in points], marks), _xlabels(fr, [p.label for p in points])]
+    out += [marks_layer(fr, [p.key for p in points], marks), xlabels(fr, [p.label for p in points])]
     out.append("</svg>")
-    return Markup("".join(out))
-
-
-def strip_chart(
-    rows: Sequence[tuple[str, Sequence[Point]]], *, title: str, chart_id: str, css: str = ""
-) -> Markup:
-    """Small rows of hollow markers on a fixed 0..1 scale, one row per label-free estimate."""
-    cid = _safe_id(chart_id)
-    n = max((len(pts) for _, pts in rows), default=0)
-    height = TOP + ROW * max(len(rows), 1) + BOTTOM
-    total = sum(1 for _, pts in rows for p in pts if p.value is not None)
-    out = _open(
-        cid, title, f"{n} windows, {total} estimates, from scores alone", f"strip {css}", height
-    )
-    fr = _Frame(n, 0.0, 1.0, height)
-    for r, (name, pts) in enumerate(rows):
-        top = TOP + r * ROW
-        y0, y1 = top + ROW - 8, top + 26  # the row's 0 and 1
-
-        def ry(v: float, _y0: float = y0, _y1: float = y1) -> float:
-            return _y0 - v * (_y0 - _y1)
-
-        out.append(
-            f'<g class="row" data-row="{escape(name)}">'
-            f'<text x="{LEFT}" y="{_f(top + 14)}" class="rowlab">{escape(name)}</text>'
-        )
-        for t in (0.0, 0.5, 1.0):
-            label = (
-                ""
-                if t == 0.5
-                else (f'<text class="ylab" x="{LEFT - 6}" y="{_f(ry(t))}">{t:g}</text>')
-            )
-            out.append(
-                f'<line class="rule" x1="{LEFT}" x2="{W - RIGHT}" y1="{_f(ry(t))}" '
-                f'y2="{_f(ry(t))}"/>{label}'
-            )
-        for i, p in enumerate(pts):
-            if p.value is None:
-                continue
-            out.append(
-                f'<circle class="pt est" cx="{_f(fr.x(i))}" cy="{_f(ry(p.value))}" '
-                f'r="3.2" data-value="{_v(p.value)}" data-window="{escape(p.key)}">'
-                f"{_hover(p, f'{p.value:.3f}')}</circle>"
-            )
-        out.append("</g>")
-    labels = next((pts for _, pts in rows if pts), [])
-    out += [_xlabels(fr, [p.label for p in labels]), "</svg>"]
-    return Markup("".join(out))
-
-
-def bar_chart(
-    points: Sequence[Point],
-    *,
-    title: str,
-    chart_id: str,
-    reference: float | None = None,
-    reference_label: str = "",
-    css: str = "",
-    marks: Sequence[Mark] = (),
-) -> Markup:
-    """Shares in [0, 1] as bars (hatched when provisional), with an optional reference line."""
-    cid = _safe_id(chart_id)
-    fr = _Frame(len(points), 0.0, 1.0)
-    shown = sum(1 for p in points if p.value is not None)
-    out = _open(cid, title, f"{len(points)} bars, {shown} with a value", f"bars {css}")
-    out.append(_grid(fr, [0.0, 0.25, 0.5, 0.75, 1.0], as_pct=True))
-    out.append('<g class="pts">')
-    width = max(1.0, fr.step * 0.72)
-    for i, p in enumerate(points):
-        if p.value is None:
-            out.append(
-                f'<line class="gap" data-window="{escape(p.key)}" x1="{_f(fr.x(i))}" '
-                f'x2="{_f(fr.x(i))}" y1="{_f(H - BOTTOM - 6)}" y2="{_f(H - BOTTOM)}">'
-                f"{_hover(p, 'nothing to count')}</line>"
-            )
-            continue
-        y = fr.y(min(max(p.value, 0.0), 1.0))
-        fill = "" if p.settled else f' style="fill: url(#{cid}-hatch)"'
-        cls = "pt bar" if p.settled else "pt bar prov"
-        out.append(
-            f'<rect class="{cls}"{fill} x="{_f(fr.x(i) - width / 2)}" y="{_f(y)}" '
-            f'width="{_f(width)}" height="{_f(H - BOTTOM - y)}" '
-            f'data-value="{_v(p.value)}" data-window="{escape(p.key)}">'
-            f"{_hover(p, _pct(p.value))}</rect>"
-        )
-    out.append("</g>")
-    if reference is not None:
-        ry = _f(fr.y(reference))
-        out.append(
-            f'<g class="ref"><line x1="{LEFT}" x2="{W - RIGHT}" y1="{ry}" y2="{ry}"/>'
-            f'<text x="{W - RIGHT - 4}" y="{_f(fr.y(reference) - 5)}">'
-            f"{escape(reference_label)}</text></g>"
-        )
-    out.append(_marks(fr, [p.key for p in points], marks))
-    out += [_xlabels(fr, [p.label for p in points]), "</svg>"]
-    return Markup("".join(out))
-
-
-def _tx(t: float | None) -> float:
-    """x of a threshold on the sweep chart."""
-    return LEFT + float(t or 0.0) * (W - LEFT - RIGHT)
-
-
-def sweep_chart(
-    rows: Sequence[dict[str, float | None]],
-    *,
-    title: str,
-    chart_id: str,
-    best: float | None,
-    best_label: str,
-    current: float | None = None,
-    series: Sequence[str] = ("precision", "recall"),
-) -> Markup:
-    """Measures against the decision threshold, with the best-F-beta threshold marked."""
-    cid = _safe_id(chart_id)
-    fr = _Frame(1, 0.0, 1.0)
-    out = _open(cid, title, f"{len(rows)} thresholds; {best_label}", "sweep")
-    out.append(_grid(fr, [0.0, 0.25, 0.5, 0.75, 1.0]))
-    for name in series:
-        coords: list[tuple[float, float] | None] = []
-        for r in rows:
-            t, v = r.get("threshold"), r.get(name)
-            coords.append(None if t is None or v is None else (_tx(t), fr.y(v)))
-        out.append(f'<g class="s-{escape(name)}" data-series="{escape(name)}">')
-        for a, b in _runs([c is not None for c in coords]):
-            d = " L".join(f"{_f(c[0])},{_f(c[1])}" for c in coords[a : b + 1] if c)
-            out.append(f'<path class="seg" d="M{d}"/>')
-        for r, c in zip(rows, coords, strict=True):
-            if c is not None:
-                out.append(
-                    f'<circle class="pt" cx="{_f(c[0])}" cy="{_f(c[1])}" r="1.7" '
-                    f'data-value="{_v(r[name])}" data-threshold="{_v(r["threshold"])}"/>'
-                )
-        out.append("</g>")
-    for value, cls, text, y in (
-        (current, "in-use", "in use", H - BOTTOM - 8),
-        (best, "best", best_label, TOP + 14),
-    ):
-        if value is None:
-            continue
-        xx, right = _tx(value), value > 0.6
-        tx, anchor = (xx - 6, "end") if right else (xx + 6, "start")
-        out.append(
-            f'<g class="tmark {cls}" data-threshold="{_v(value)}"><line x1="{_f(xx)}" '
-            f'x2="{_f(xx)}" y1="{TOP}" y2="{H - BOTTOM}"/><text x="{_f(tx)}" y="{y}" '
-            f'text-anchor="{anchor}">{escape(text)}</text></g>'
-        )
-    out.append('<g class="xaxis">')
-    for t in (0.0, 0.25, 0.5, 0.75, 1.0):
-        out.append(f'<text x="{_f(_tx(t))}" y="{H - BOTTOM + 22}">{t:g}</text>')
-    out += ["</g>", "</svg>"]
     return Markup("".join(out))

@@ -18,7 +18,7 @@ from belated.store import markers, model_registry
 from belated.store.keys import Principal
 from belated.store.tables import ModelRow
 from belated.timeutil import parse_ts
-from belated.web import alert_pages, charts, segtable, views
+from belated.web import alert_pages, charts, panels, segtable, views
 from belated.web.alert_pages import alerts_view, all_alerts, baseline_text, describe_rule
 from belated.web.names import NAMES, labelled_text, name_of, num3, plural
 
@@ -270,7 +270,7 @@ def model_view(
         "charts": measure_charts,
         "marks": marks,
         "provisional": sum(1 for w in windows if not w["settled"]),
-        "coverage_svg": charts.bar_chart(
+        "coverage_svg": panels.bar_chart(
             coverage,
             title=f"Label coverage by {g}",
             chart_id="coverage",
@@ -325,12 +325,12 @@ def _binary_extras(
         for a in delays["coverage_by_age"]
     ]
     return {
-        "implied_svg": charts.strip_chart(
+        "implied_svg": panels.strip_chart(
             strips, title="Measures implied by the scores alone", chart_id="implied"
         ),
         "calibration_error": latest_cal,
         "delays": delays,
-        "delays_svg": charts.bar_chart(
+        "delays_svg": panels.bar_chart(
             ages,
             title="Label coverage by age of the predictions",
             chart_id="delays",
@@ -381,7 +381,7 @@ def _advice(
         "sweep": sweep,
         "best": best,
         "advice_range": (start, end),
-        "sweep_svg": charts.sweep_chart(
+        "sweep_svg": panels.sweep_chart(
             sweep["sweep"],
             title="Precision and recall against the threshold",
             chart_id="sweep",
