@@ -260,6 +260,23 @@ def test_the_model_page_shows_change_in_a_real_browser(
         rows = list(csv.DictReader(io.StringIO(target.read_text())))
         assert sorted(r["value"] for r in rows) == sorted(regions.REGIONS)
         assert [r["value"] for r in rows if r["breached"]] == ["north"]
+        # the drift chart: score PSI and the positive rate's change, points with values
+        for key in ("score_psi", "positive_rate_change"):
+            assert count(driver, f"svg#drift-{key} .pts .pt") >= 20, key
+        # the tag picker: filled from the stored values, the choice kept in the address
+        from selenium.webdriver.support.ui import Select
+
+        picker = Select(driver.find_element(By.CSS_SELECTOR, "select[name='tag.region']"))
+        assert [o.get_attribute("value") for o in picker.options] == [
+            "",
+            *sorted(regions.REGIONS),
+        ]
+        picker.select_by_value("north")
+        driver.find_element(By.CSS_SELECTOR, "form.range.sheet button[type='submit']").click()
+        WebDriverWait(driver, 20).until(ec.url_contains("tag.region=north"))
+        assert "only region north" in driver.find_element(By.ID, "shown").text
+        chosen = Select(driver.find_element(By.CSS_SELECTOR, "select[name='tag.region']"))
+        assert chosen.first_selected_option.get_attribute("value") == "north"
         assert console_errors(driver) == []
     finally:
         clock.set(None)

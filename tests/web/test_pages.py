@@ -166,11 +166,26 @@ def test_bad_parameters_are_named_and_text_is_escaped(tenant: Any, engine: Engin
     r = tenant.client.get(f"/models/{name}?granularity=fortnight", headers=tenant.headers("read"))
     assert r.status_code == 422 and "granularity" in r.text
     r = tenant.client.get(
-        f"/models/{name}", headers=tenant.headers("read"), params={"segment": 'region:<b id="x">'}
+        f"/models/{name}", headers=tenant.headers("read"), params={"tag.region": '<b id="x">'}
     )
     # no prediction carries that value: a 422 page that names it, escaped
     assert r.status_code == 422 and "tag.region" in r.text and "north" in r.text
     assert '<b id="x">' not in r.text and "&lt;b id=&#34;x&#34;&gt;" in r.text
+    # a key the model has never seen: named, with the stored ones
+    r = tenant.client.get(
+        f"/models/{name}", headers=tenant.headers("read"), params={"tag.regoin": "north"}
+    )
+    assert r.status_code == 422 and "tag.regoin" in r.text and "region" in r.text
+    # the old spelling says what replaced it
+    r = tenant.client.get(
+        f"/models/{name}", headers=tenant.headers("read"), params={"segment": "region:north"}
+    )
+    assert r.status_code == 422 and "tag.&lt;key&gt;" in r.text
+    # the picker's "all" (an empty value) is no filter
+    r = tenant.client.get(
+        f"/models/{name}", headers=tenant.headers("read"), params={"tag.region": ""}
+    )
+    assert r.status_code == 200 and 'name="tag.region"' in r.text
 
 
 def test_model_page_draws_what_the_orders_say(

@@ -267,8 +267,9 @@ def test_beta_control_names_f_beta_and_the_url_keeps_it(shop: tuple[Tenant, str]
         ({"segments": "regoin"}, "segments"),
         ({"sort": "colour"}, "sort"),
         ({"order": "sideways"}, "order"),
-        ({"segment": "region:nrth"}, "tag.region"),
-        ({"segment": "colour:red"}, "tag.colour"),
+        ({"tag.region": "nrth"}, "tag.region"),
+        ({"tag.colour": "red"}, "tag.colour"),
+        ({"segment": "region:north"}, "segment"),
     ],
 )
 def test_bad_view_parameters_are_named_once(
@@ -280,9 +281,93 @@ def test_bad_view_parameters_are_named_once(
     assert r.text.count(f"{field}") >= 1
     if field == "segments":
         assert "closest stored keys: region" in r.text
-    if params.get("segment") == "region:nrth":  # a typo of a value: the closest one named
+    if params.get("tag.region") == "nrth":  # a typo of a value: the closest one named
         assert "north" in r.text
     body = re.search(r"<main>(.*)</main>", r.text, re.S)
     assert body
     lines = [x.strip() for x in re.sub(r"<[^>]+>", "\n", body.group(1)).splitlines() if x.strip()]
     assert len(lines) == len(set(lines))  # each message once
+
+
+def test_the_drift_chart_draws_the_windows_drift_and_the_shift_rules_thresholds(
+    shop: tuple[Tenant, str],
+) -> None:
+    tenant, name = shop
+    for measure, threshold in (("score_psi", 0.25), ("positive_rate", 0.05)):
+        r = tenant.client.post(
+            f"/v1/models/{name}/rules",
+            json={
+                "kind": "shift",
+                "measure": measure,
+                "granularity": "day",
+                "threshold": threshold,
+            },
+            headers=tenant.headers("admin"),
+        )
+        assert r.status_code == 201, r.text
+    html = _page(tenant, f"/models/{name}")
+    start, end = _shown(html)
+    windows = tenant.client.get(
+        f"/v1/models/{name}/metrics",
+        params={"start": start, "end": end},
+        headers=tenant.headers("read"),
+    ).json()["windows"]
+    for key in ("score_psi", "positive_rate_change"):
+        svg = re.search(rf'<svg [^>]*id="drift-{key}".*?</svg>', html, re.S)
+        assert svg, key
+        drawn = {
+            w: float(v)
+            for v, w in re.findall(r'data-value="([^"]+)"[^>]*data-window="([^"]+)"', svg.group(0))
+        }
+        want = {w["start"]: w["drift"][key] for w in windows if w["drift"][key] is not None}
+        assert len(want) >= 20  # the reference period leaves most days with a value
+        assert drawn.keys() == want.keys()
+        assert all(drawn[k] == pytest.approx(want[k], rel=1e-5) for k in want)
+        refs = sorted(
+            float(v) for v in re.findall(r'<g class="ref" data-value="([^"]+)"', svg.group(0))
+        )
+        assert refs == ([0.25] if key == "score_psi" else [-0.05, 0.0, 0.05])
+    # the same values as CSV
+    r = tenant.client.get(
+        f"/models/{name}/drift.csv",
+        params={"start": start, "end": end},
+        headers=tenant.headers("read"),
+    )
+    rows = {x["start"]: x for x in csv.DictReader(io.StringIO(r.text))}
+    assert rows.keys() == {w["start"] for w in windows}
+    for w in windows:
+        got = rows[w["start"]]["score_psi"]
+        want_psi = w["drift"]["score_psi"]
+        assert (got == "") if want_psi is None else float(got) == pytest.approx(want_psi, rel=1e-5)
+
+
+def test_the_tag_picker_filters_the_page_by_the_stored_values(shop: tuple[Tenant, str]) -> None:
+    tenant, name = shop
+    html = _page(tenant, f"/models/{name}", **{"tag.region": "north"})
+    picker = re.search(r'<select id="tag-\d+" name="tag.region"[^>]*>(.*?)</select>', html, re.S)
+    assert picker
+    options = re.findall(r'<option value="([^"]*)"( selected)?>', picker.group(1))
+    assert [v for v, _ in options] == ["", *sorted(regions.REGIONS)]
+    assert [v for v, sel in options if sel] == ["north"]
+    start, end = _shown(html)
+    north = tenant.client.get(
+        f"/v1/models/{name}/metrics",
+        params={"start": start, "end": end, "tag.region": "north"},
+        headers=tenant.headers("read"),
+    ).json()["windows"]
+    svg = re.search(r'<svg [^>]*id="coverage".*?</svg>', html, re.S)
+    assert svg
+    found = re.findall(r'data-value="([^"]+)" data-window="([^"]+)"', svg.group(0))
+    drawn = {w: float(v) for v, w in found}
+    want = {w["start"]: w["coverage"] for w in north if w["coverage"] is not None}
+    assert want and drawn.keys() == want.keys()
+    assert all(drawn[k] == pytest.approx(want[k], rel=1e-5) for k in want)
+    # every count of the page is north's: the whole model has more predictions
+    every = tenant.client.get(
+        f"/v1/models/{name}/metrics",
+        params={"start": start, "end": end},
+        headers=tenant.headers("read"),
+    ).json()["windows"]
+    assert sum(w["predictions"] for w in north) < sum(w["predictions"] for w in every)
+    # links on the page keep the filter
+    assert "tag.region=north" in html

@@ -125,20 +125,6 @@ def parse_beta(beta: float | None, precision_weight: float | None) -> float:
         ) from None
 
 
-def parse_segments(values: list[str] | None) -> tuple[tuple[str, str], ...]:
-    """`key:value` filters of the dashboard's form; the same key twice is refused. (The API
-    takes `tag.<key>=<value>`, see parse_tag_filters.)"""
-    out: list[tuple[str, str]] = []
-    for raw in values or []:
-        key, sep, value = raw.partition(":")
-        if not sep or not key or not value or len(key) > 64 or len(value) > 64:
-            raise _bad("segment", f"{raw!r} is not key:value")
-        if any(k == key for k, _ in out):
-            raise _bad("segment", f"the key {key!r} is given twice")
-        out.append((key, value))
-    return tuple(out)
-
-
 TAG_PREFIX = "tag."
 
 

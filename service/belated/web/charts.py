@@ -72,7 +72,8 @@ def nice_domain(values: Sequence[float]) -> tuple[float, float, list[float]]:
         return 0.0, 1.0, [0.0, 0.25, 0.5, 0.75, 1.0]
     vmin, vmax = min(values), max(values)
     span = max(vmax - vmin, 0.08)
-    step = next(s for s in (0.02, 0.05, 0.1, 0.2, 0.25, 0.5, 1.0) if span / s <= 5)
+    steps = (0.02, 0.05, 0.1, 0.2, 0.25, 0.5, 1.0, 2.0, 5.0, 10.0)
+    step = next((s for s in steps if span / s <= 5), 10 ** math.ceil(math.log10(span / 5)))
     lo = math.floor((vmin - step / 4) / step) * step
     hi = math.ceil((vmax + step / 4) / step) * step
     if vmin >= 0:
@@ -187,6 +188,27 @@ def marks_layer(fr: Frame, keys: Sequence[str], marks: Sequence[Mark]) -> str:
     return "".join(parts)
 
 
+@dataclass(frozen=True)
+class Reference:
+    """A horizontal line across a chart at `value`, named by `label` (drawn at its right end)."""
+
+    value: float
+    label: str
+
+
+def reference_lines(fr: Frame, references: Sequence[Reference]) -> str:
+    """Dashed horizontal lines with their names, for thresholds and reference levels."""
+    parts = []
+    for r in references:
+        y = fr.y(r.value)
+        parts.append(
+            f'<g class="ref" data-value="{attr(r.value)}"><title>{escape(r.label)}</title>'
+            f'<line x1="{LEFT}" x2="{W - RIGHT}" y1="{xy(y)}" y2="{xy(y)}"/>'
+            f'<text x="{W - RIGHT - 4}" y="{xy(y - 5)}">{escape(r.label)}</text></g>'
+        )
+    return "".join(parts)
+
+
 def hover(p: Point, text: str) -> str:
     state = "settled" if p.settled else "provisional"
     extra = f"; {p.note}" if p.note else ""
@@ -201,12 +223,15 @@ def line_chart(
     css: str = "",
     marks: Sequence[Mark] = (),
     domain: Sequence[float] | None = None,
+    references: Sequence[Reference] = (),
 ) -> Markup:
     """A measure over windows: a line, its interval as a band, settled points filled,
     provisional points hollow over a hatched zone; None values are gaps. `domain`: values to
-    fit the y-axis to (shared by panels of the same measure), else this chart's own."""
+    fit the y-axis to (shared by panels of the same measure), else this chart's own.
+    `references`: horizontal lines (a rule's threshold, say), always inside the axis."""
     cid = safe_id(chart_id)
     known = [v for p in points for v in (p.value, p.low, p.high) if v is not None]
+    known += [r.value for r in references]
     lo, hi, ticks = nice_domain(list(domain) if domain else known)
     fr = Frame(len(points), lo, hi)
     defined = [p for p in points if p.value is not None]
@@ -277,6 +302,7 @@ def line_chart(
             f"{hover(p, f'{p.value:.3f}{band}')}</{tag}>"
         )
     out.append("</g>")
-    out += [marks_layer(fr, [p.key for p in points], marks), xlabels(fr, [p.label for p in points])]
+    out += [reference_lines(fr, references), marks_layer(fr, [p.key for p in points], marks)]
+    out.append(xlabels(fr, [p.label for p in points]))
     out.append("</svg>")
     return Markup("".join(out))

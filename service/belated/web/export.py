@@ -7,7 +7,7 @@ import io
 from collections.abc import Iterable, Sequence
 from typing import Any
 
-TABLES = ("windows", "segments", "rules", "alerts", "breaches")
+TABLES = ("windows", "segments", "drift", "rules", "alerts", "breaches")
 
 
 def _cell(v: Any) -> Any:
@@ -39,6 +39,18 @@ def model_table(page: dict[str, Any], table: str) -> str:
             (
                 [w["start"], w["end"], w["predictions"], w["labelled"], w["coverage"], w["settled"]]
                 + [(w.get("measures", {}).get(m) or {}).get("value") for m in measures]
+                for w in page["windows"]
+            ),
+        )
+    if table == "drift":
+        keys = ("score_psi", "score_js", "positive_rate_change")
+        return to_csv(
+            ["start", "end", "predictions", *keys, "against_start", "against_end", "reason"],
+            (
+                [w["start"], w["end"], w["predictions"]]
+                + [(w.get("drift") or {}).get(k) for k in keys]
+                + [((w.get("drift") or {}).get("against") or {}).get(k) for k in ("start", "end")]
+                + [(w.get("drift") or {}).get("reason")]
                 for w in page["windows"]
             ),
         )

@@ -18,7 +18,7 @@ from belated.store import markers, model_registry
 from belated.store.keys import Principal
 from belated.store.tables import ModelRow
 from belated.timeutil import parse_ts
-from belated.web import alert_pages, charts, panels, segtable, views
+from belated.web import alert_pages, charts, drift, panels, segtable, views
 from belated.web.alert_pages import alerts_view, all_alerts, baseline_text, describe_rule
 from belated.web.names import NAMES, labelled_text, name_of, num3, plural
 
@@ -57,7 +57,7 @@ class View:
     granularity: str = "day"
     start: str | None = None
     end: str | None = None
-    segment: tuple[str, ...] = field(default_factory=tuple)
+    tags: tuple[tuple[str, str], ...] = field(default_factory=tuple)  # tag.<key>=<value>
     beta: float = 1.0
     segkey: str | None = None  # the tag key of the segment table
     sort: str = "value"
@@ -69,12 +69,12 @@ class View:
             "granularity": self.granularity,
             "start": self.start,
             "end": self.end,
-            "segment": list(self.segment),
             "beta": f"{self.beta:g}" if self.beta != 1.0 else None,
             "segments": self.segkey,
             "sort": self.sort if self.sort != "value" else None,
             "order": "desc" if self.descending else None,
         }
+        out.update({f"{params.TAG_PREFIX}{k}": v for k, v in self.tags})
         out.update(change)
         return {k: v for k, v in out.items() if v not in (None, "", [])}
 
@@ -185,7 +185,7 @@ def model_view(
     *, session: Session, who: Principal, name: str, view: View, now: datetime, max_values: int
 ) -> dict[str, Any]:
     """Everything the model page shows, for the asked range and segment."""
-    filters = params.parse_segments(list(view.segment))
+    filters = view.tags
     row = model_registry.get(session=session, project_id=who.project_id, name=name)
     params.check_known_tags(session, row, filters)  # a typo is a 422 page, not empty charts
     rules = [
@@ -286,8 +286,12 @@ def model_view(
         "seg_rows": segtable.sort_rows(seg_rows, view.sort, view.descending),
         "implied_svg": None,
         "sweep": None,
+        "drift": [],
     }
     if row.kind == "binary":
+        page["drift"] = drift.drift_panels(
+            windows, rules, granularity=g, label=lambda s: _label(s, g), marks=marks
+        )
         page.update(_binary_extras(session, row, rng, windows, now, max_values))
         page.update(_advice(session, row, view, rng, filters, now, max_values))
     return page

@@ -18,6 +18,7 @@ from belated.web.charts import (
     H,
     Mark,
     Point,
+    Reference,
     W,
     attr,
     grid,
@@ -25,6 +26,7 @@ from belated.web.charts import (
     marks_layer,
     open_svg,
     pct_text,
+    reference_lines,
     runs,
     safe_id,
     xlabels,
@@ -116,12 +118,7 @@ def bar_chart(
         )
     out.append("</g>")
     if reference is not None:
-        ry = xy(fr.y(reference))
-        out.append(
-            f'<g class="ref"><line x1="{LEFT}" x2="{W - RIGHT}" y1="{ry}" y2="{ry}"/>'
-            f'<text x="{W - RIGHT - 4}" y="{xy(fr.y(reference) - 5)}">'
-            f"{escape(reference_label)}</text></g>"
-        )
+        out.append(reference_lines(fr, [Reference(reference, reference_label)]))
     out.append(marks_layer(fr, [p.key for p in points], marks))
     out += [xlabels(fr, [p.label for p in points]), "</svg>"]
     return Markup("".join(out))

@@ -5,7 +5,7 @@ from __future__ import annotations
 from typing import Annotated, Any
 from urllib.parse import quote, urlsplit
 
-from fastapi import APIRouter, Form, Query, Request
+from fastapi import APIRouter, Form, Request
 from fastapi.responses import HTMLResponse, RedirectResponse, Response
 from sqlalchemy.orm import Session
 
@@ -126,16 +126,19 @@ def overview(request: Request, session: SessionDep) -> Response:
 
 
 def _view(
+    request: Request,
     granularity: str,
     start: str | None,
     end: str | None,
-    segment: list[str] | None,
     beta: str | None,
     segments: str | None,
     sort: str,
     order: str | None,
 ) -> pages.View:
-    """The reader's view from the query; a bad β or order is a 422."""
+    """The reader's view from the query; a bad β, order or tag filter is a 422. The picker
+    sends `tag.<key>=` (empty) for a key left at "all": skipped."""
+    params.refuse_segment(request.query_params.keys())
+    tags = params.parse_tag_filters((k, v) for k, v in request.query_params.multi_items() if v)
     b = 1.0
     if beta:
         try:
@@ -148,7 +151,7 @@ def _view(
         granularity,
         start,
         end,
-        tuple(s for s in segment or [] if s.strip()),
+        tags=tags,
         beta=b,
         segkey=segments or None,
         sort=sort or "value",
@@ -165,7 +168,7 @@ def _model_data(
             session=session,
             who=who,
             name=name,
-            view=_view(*query),
+            view=_view(request, *query),
             now=now(),
             max_values=request.app.state.settings.max_segment_values,
         )
@@ -181,7 +184,6 @@ def model_page(
     granularity: str = "day",
     start: str | None = None,
     end: str | None = None,
-    segment: Annotated[list[str] | None, Query()] = None,
     beta: str | None = None,
     segments: str | None = None,
     sort: str = "value",
@@ -192,7 +194,7 @@ def model_page(
     if isinstance(who, Response):
         return who
     page = _model_data(
-        request, session, who, name, (granularity, start, end, segment, beta, segments, sort, order)
+        request, session, who, name, (granularity, start, end, beta, segments, sort, order)
     )
     if isinstance(page, Response):
         return page
@@ -208,7 +210,6 @@ def model_csv(
     granularity: str = "day",
     start: str | None = None,
     end: str | None = None,
-    segment: Annotated[list[str] | None, Query()] = None,
     beta: str | None = None,
     segments: str | None = None,
     sort: str = "value",
@@ -221,7 +222,7 @@ def model_csv(
     if table not in export.TABLES:
         return error_page(Problem(404, f"No table {table!r}; one of {', '.join(export.TABLES)}."))
     page = _model_data(
-        request, session, who, name, (granularity, start, end, segment, beta, segments, sort, order)
+        request, session, who, name, (granularity, start, end, beta, segments, sort, order)
     )
     if isinstance(page, Response):
         return page
