@@ -266,3 +266,36 @@ def test_received_time_is_stored_in_utc(tenant: Tenant, engine: Engine, model: M
     )[0]
     got = from_db(received)
     assert got is not None and before - timedelta(seconds=1) <= got <= datetime.now(UTC)
+
+
+def test_batches_past_the_small_size_keep_every_guarantee(
+    tenant: Tenant, engine: Engine, model: Model
+) -> None:
+    """Large batches take another way into the store on PostgreSQL (COPY straight into the
+    table, the staged insert when an id is already stored): the answers are the same."""
+    big = 450  # past the one-statement size of 200
+    sent = predictions(big, tags={"region": "north"})
+    waiting = sent[7]
+    r = tenant.client.post(
+        f"/v1/models/{model.name}/labels", json={"labels": [label(waiting["id"], 1)]}
+    )
+    assert r.json()["pending"] == 1
+    assert post(tenant, model, sent).json() == {"accepted": big, "duplicates": 0}
+    assert count(engine, "predictions", model.id) == big
+    assert prediction_row(engine, model.id, sent[3]["id"])["tags"] == {"region": "north"}
+    assert prediction_row(engine, model.id, waiting["id"])["actual"] == "1"
+    assert count(engine, "pending_labels", model.id) == 0
+    # resent whole, then half resent with new ones: duplicates counted, the new stored
+    assert post(tenant, model, sent).json() == {"accepted": 0, "duplicates": big}
+    mixed = sent[:300] + predictions(250, start=big)
+    assert post(tenant, model, mixed).json() == {"accepted": 250, "duplicates": 300}
+    assert count(engine, "predictions", model.id) == big + 250
+    # one stored id with other content among 400 new ones: 409, nothing of it stored
+    marks = dirty_marks(engine, model)
+    changed = dict(sent[5], score=0.01 if sent[5]["score"] > 0.5 else 0.99)
+    clash = predictions(400, prefix="late") + [changed]
+    r = post(tenant, model, clash)
+    assert r.status_code == 409 and r.json()["ids"] == [sent[5]["id"]]
+    assert count(engine, "predictions", model.id) == big + 250
+    assert count(engine, "predictions", model.id, "pid LIKE 'late%'") == 0
+    assert dirty_marks(engine, model) == marks

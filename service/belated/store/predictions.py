@@ -5,6 +5,9 @@ from __future__ import annotations
 from datetime import datetime
 from typing import Any
 
+import orjson
+import psycopg
+from psycopg.types.json import Jsonb
 from sqlalchemy import insert, select, text
 from sqlalchemy.orm import Session
 
@@ -167,9 +170,59 @@ def _insert_small_pg(
     return {r[0] for r in rows}, [r[0] for r in rows if r[1]]
 
 
+_DIRECT_COLUMNS = ("model_id", "pid", "ts", "hour", "score", "scores", "predicted", "tags")
+_DIRECT_TYPES = ("int4", "text", "timestamptz", "int4", "float8", "jsonb", "text", "jsonb")
+
+
+def _jsonb(value: Any) -> Jsonb | None:
+    return None if value is None else Jsonb(value, dumps=orjson.dumps)
+
+
+def _copy_direct_pg(
+    session: Session, model_id: int, new: list[PredictionIn], received: datetime
+) -> bool:
+    """COPY a batch straight into `predictions`, as a plain bulk load would; False, with
+    nothing written, when one of its ids is already stored (a resent batch).
+
+    Fresh batches are the common case, and a plain insert costs PostgreSQL about a third
+    less than INSERT ... ON CONFLICT from a staging table (the speculative insertion and
+    the staging). A unique violation undoes only the savepoint, and the caller falls back
+    to the staged insert, which sorts the new from the stored."""
+    raw = session.connection().connection.driver_connection
+    assert raw is not None
+    rows = (
+        (
+            model_id,
+            p.pid,
+            p.ts,
+            epoch_hour(p.ts),
+            p.score,
+            _jsonb(p.scores),
+            p.predicted,
+            _jsonb(p.tags),
+            received,
+        )
+        for p in new
+    )
+    try:
+        with raw.transaction():  # a savepoint inside the request's transaction
+            bulk.copy_rows(
+                session,
+                "predictions",
+                (*_DIRECT_COLUMNS, "received_at"),
+                rows,
+                types=(*_DIRECT_TYPES, "timestamptz"),
+            )
+    except psycopg.errors.UniqueViolation:
+        return False
+    return True
+
+
 def _insert_pg(
     session: Session, model_id: int, new: list[PredictionIn], received: datetime
 ) -> set[str]:
+    if _copy_direct_pg(session, model_id, new, received):
+        return {p.pid for p in new}
     bulk.temp_table(session, _STAGE, _STAGE_DDL)
     bulk.copy_rows(
         session,
