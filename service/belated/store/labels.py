@@ -82,8 +82,6 @@ def _targets(session: Session, model_id: int, ids: list[str]) -> dict[str, _Stor
     )
     for cond in bulk.id_filters(session, Prediction.pid, ids):
         query = select(*cols).where(Prediction.model_id == model_id, cond)
-        if is_postgres(session):  # concurrent corrections of one id apply one after another
-            query = query.order_by(Prediction.row_id).with_for_update()
         for row in session.execute(query):
             found[row.pid] = _Stored(row.row_id, to_utc(row.ts), row.hour, row.actual, row.delay_h)
     return found
