@@ -209,6 +209,15 @@ def reference_lines(fr: Frame, references: Sequence[Reference]) -> str:
     return "".join(parts)
 
 
+def gap_tick(fr: Frame, i: int, p: Point, text: str) -> str:
+    """A short tick on the axis where a window has no value (a gap, never a zero)."""
+    x, bottom = xy(fr.x(i)), fr.height - BOTTOM
+    return (
+        f'<line class="gap" data-window="{escape(p.key)}" x1="{x}" x2="{x}" '
+        f'y1="{xy(bottom - 6)}" y2="{xy(bottom)}">{hover(p, text)}</line>'
+    )
+
+
 def hover(p: Point, text: str) -> str:
     state = "settled" if p.settled else "provisional"
     extra = f"; {p.note}" if p.note else ""
@@ -278,12 +287,7 @@ def line_chart(
     out.append('</g><g class="pts">')
     for i, p in enumerate(points):
         if p.value is None:
-            out.append(
-                f'<line class="gap" data-window="{escape(p.key)}" x1="{xy(fr.x(i))}" '
-                f'x2="{xy(fr.x(i))}" y1="{xy(fr.height - BOTTOM - 6)}" '
-                f'y2="{xy(fr.height - BOTTOM)}">'
-                f"{hover(p, 'no value')}</line>"
-            )
+            out.append(gap_tick(fr, i, p, "no value"))
             continue
         band = f" [{attr(p.low)}, {attr(p.high)}]" if p.low is not None else ""
         cls = "pt" if p.settled else "pt prov proj" if p.projected else "pt prov"

@@ -21,6 +21,7 @@ from belated.web.charts import (
     Reference,
     W,
     attr,
+    gap_tick,
     grid,
     hover,
     marks_layer,
@@ -101,11 +102,7 @@ def bar_chart(
     width = max(1.0, fr.step * 0.72)
     for i, p in enumerate(points):
         if p.value is None:
-            out.append(
-                f'<line class="gap" data-window="{escape(p.key)}" x1="{xy(fr.x(i))}" '
-                f'x2="{xy(fr.x(i))}" y1="{xy(H - BOTTOM - 6)}" y2="{xy(H - BOTTOM)}">'
-                f"{hover(p, 'nothing to count')}</line>"
-            )
+            out.append(gap_tick(fr, i, p, "nothing to count"))
             continue
         y = fr.y(min(max(p.value, 0.0), 1.0))
         fill = "" if p.settled else f' style="fill: url(#{cid}-hatch)"'
