@@ -80,12 +80,10 @@ def _references(panel: Panel, rules: Sequence[Any]) -> list[charts.Reference]:
         if getattr(r, "retired_at", None) is not None or r.threshold in seen:
             continue
         seen.add(r.threshold)
-        text = f"{r.granularity} rule at {r.threshold:g}"
-        out.append(charts.Reference(float(r.threshold), text))
-        if panel.symmetric:
-            out.append(
-                charts.Reference(-float(r.threshold), f"{r.granularity} rule at -{r.threshold:g}")
-            )
+        per = f" per {r.segment_by}" if getattr(r, "segment_by", None) else ""
+        for sign in (1, -1) if panel.symmetric else (1,):
+            value = sign * float(r.threshold)
+            out.append(charts.Reference(value, f"{r.granularity} rule{per} at {value:g}"))
     if panel.symmetric:
         out.append(charts.Reference(0.0, "reference rate"))
     return out
