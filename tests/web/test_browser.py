@@ -153,7 +153,9 @@ def check_pages(
     days = by_day(orders)
     driver.get(f"{url}/models/{name}?start=2026-03-02")
     assert driver.title == f"{name} · belated"
-    assert count(driver, "svg[role='img']") == 8  # 4 measures, coverage, estimates, sweep, delays
+    # 4 measures, coverage, estimates, sweep, delays, and the two drift panels
+    assert count(driver, "svg[role='img']") == 10
+    assert count(driver, "svg[id^='drift-']") == 2
     # every day has orders and so a positive rate; the current day has none (a gap)
     assert count(driver, "svg#m-positive_rate circle.pt") == DAYS
     assert count(driver, "svg#m-positive_rate .gap") == WINDOWS - DAYS
