@@ -33,14 +33,12 @@ from datetime import datetime
 from functools import partial
 from typing import Any
 
-from sqlalchemy import insert
 from sqlalchemy.orm import Session, sessionmaker
 
 from belated.ingest.validate import PredictionIn
 from belated.store import bulk, dirty, labels, predictions
 from belated.store.db import transaction
 from belated.store.dialect import is_postgres
-from belated.store.tables import Prediction
 from belated.timeutil import to_utc
 
 log = logging.getLogger(__name__)
@@ -198,9 +196,8 @@ def _store_sqlite(
             elif not first[(m, pid)].same_as(stored[pid]):
                 raise _Regroup
     if new:
-        session.connection().execute(
-            insert(Prediction),
-            [predictions.row_of(k[0], first[k], group[owner[k]].received) for k in new],
+        predictions.insert_sqlite(
+            session, ((k[0], first[k], group[owner[k]].received) for k in new)
         )
     mine: dict[int, set[int]] = {}
     for m, pid in new:

@@ -6,14 +6,14 @@ from dataclasses import dataclass
 from datetime import datetime
 from typing import Any, NamedTuple
 
-from sqlalchemy import bindparam, delete, func, insert, select, text, update
+from sqlalchemy import delete, func, select, text
 from sqlalchemy.orm import Session
 
 from belated.clock import clock
 from belated.ingest.validate import LabelIn
 from belated.store import bulk, dirty
 from belated.store.dialect import is_postgres, upsert
-from belated.store.tables import Label, LabelChange, PendingLabel, Prediction
+from belated.store.tables import Label, PendingLabel, Prediction
 from belated.timeutil import to_utc
 
 _STAGE = "stage_labels"
@@ -72,18 +72,19 @@ def _targets(session: Session, model_id: int, ids: list[str]) -> dict[str, _Stor
         ):
             found[pid] = _Stored(row_id, to_utc(ts), hour, actual, delay_h)
         return found
-    cols = (
-        Prediction.pid,
-        Prediction.row_id,
-        Prediction.ts,
-        Prediction.hour,
-        Prediction.actual,
-        Prediction.delay_h,
-    )
-    for cond in bulk.id_filters(session, Prediction.pid, ids):
-        query = select(*cols).where(Prediction.model_id == model_id, cond)
-        for row in session.execute(query):
-            found[row.pid] = _Stored(row.row_id, to_utc(row.ts), row.hour, row.actual, row.delay_h)
+    raw = session.connection().connection.driver_connection
+    assert raw is not None
+    for start in range(0, len(ids), bulk.SQLITE_CHUNK):
+        chunk = ids[start : start + bulk.SQLITE_CHUNK]
+        marks = ", ".join("?" for _ in chunk)
+        for pid, row_id, ts, hour, actual, delay_h in raw.execute(
+            "SELECT pid, row_id, ts, hour, actual, delay_h FROM predictions"
+            f" WHERE model_id = ? AND pid IN ({marks})",
+            (model_id, *chunk),
+        ):
+            stored_ts = bulk.sqlite_read_time(ts)
+            assert stored_ts is not None
+            found[pid] = _Stored(row_id, stored_ts, hour, actual, delay_h)
     return found
 
 
@@ -188,13 +189,19 @@ def ingest_batches(
         for cond in bulk.id_filters(session, PendingLabel.pid, found):
             session.execute(delete(PendingLabel).where(PendingLabel.model_id == model_id, cond))
     if history:
+        cols = ("model_id", "pid", "actual", "ts", "change", "received_at")
         if is_postgres(session):  # one INSERT per row would cost more than the rest together
-            cols = ("model_id", "pid", "actual", "ts", "change", "received_at")
             bulk.insert_rows(
                 session, "labels", cols, HISTORY_TYPES, [[h[c] for c in cols] for h in history]
             )
         else:
-            session.execute(insert(Label), history)
+            bulk.sqlite_insert(
+                session,
+                "labels",
+                cols,
+                ([h[c] for c in cols] for h in history),
+                times=("ts", "received_at"),
+            )
     if new_pending:
         _upsert_pending(session, model_id, list(new_pending.values()))
     record_changes(session, changes)
@@ -274,7 +281,7 @@ def record_changes(session: Session, changes: list[Change]) -> None:
     if is_postgres(session):
         bulk.insert_rows(session, "label_changes", Change._fields, CHANGE_TYPES, changes)
     else:
-        session.execute(insert(LabelChange), [c._asdict() for c in changes])
+        bulk.sqlite_insert(session, "label_changes", Change._fields, changes)
 
 
 def _history(model_id: int, label: LabelIn, change: str, received: datetime) -> dict[str, Any]:
@@ -289,17 +296,12 @@ def _history(model_id: int, label: LabelIn, change: str, received: datetime) -> 
 
 
 def _update_sqlite(session: Session, rows: list[dict[str, Any]]) -> None:
-    table = Prediction.__table__
-    stmt = (
-        update(table)  # type: ignore[arg-type]
-        .where(table.c.row_id == bindparam("b_row_id"))
-        .values(
-            actual=bindparam("b_actual"),
-            label_ts=bindparam("b_label_ts"),
-            delay_h=bindparam("b_delay_h"),
-        )
+    bulk.sqlite_executemany(
+        session,
+        "UPDATE predictions SET actual = ?, label_ts = ?, delay_h = ? WHERE row_id = ?",
+        ((r["actual"], r["label_ts"], r["delay_h"], r["row_id"]) for r in rows),
+        times=(1,),
     )
-    session.connection().execute(stmt, [{f"b_{k}": v for k, v in r.items()} for r in rows])
 
 
 SMALL = 1000  # up to this many rows, arrays in one statement beat a staging table and COPY

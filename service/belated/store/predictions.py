@@ -2,13 +2,14 @@
 
 from __future__ import annotations
 
+from collections.abc import Iterable
 from datetime import datetime
 from typing import Any
 
 import orjson
 import psycopg
 from psycopg.types.json import Jsonb
-from sqlalchemy import insert, select, text
+from sqlalchemy import select, text
 from sqlalchemy.orm import Session
 
 from belated.clock import clock
@@ -105,25 +106,34 @@ def ingest(
     return {"accepted": len(new), "duplicates": batch_size - len(new)}
 
 
-def row_of(model_id: int, p: PredictionIn, received: datetime) -> dict[str, Any]:
-    """The predictions row of a validated item."""
-    return {
-        "model_id": model_id,
-        "pid": p.pid,
-        "ts": p.ts,
-        "hour": epoch_hour(p.ts),
-        "score": p.score,
-        "scores": p.scores,
-        "predicted": p.predicted,
-        "tags": p.tags,
-        "received_at": received,
-    }
-
-
 def _insert_sqlite(
     session: Session, model_id: int, new: list[PredictionIn], received: datetime
 ) -> None:
-    session.connection().execute(insert(Prediction), [row_of(model_id, p, received) for p in new])
+    insert_sqlite(session, ((model_id, p, received) for p in new))
+
+
+def insert_sqlite(session: Session, items: Iterable[tuple[int, PredictionIn, datetime]]) -> None:
+    """Insert (model id, prediction, time received) rows on SQLite through the DBAPI."""
+    bulk.sqlite_insert(
+        session,
+        "predictions",
+        (*_DIRECT_COLUMNS, "received_at"),
+        (
+            (
+                model_id,
+                p.pid,
+                p.ts,
+                epoch_hour(p.ts),
+                p.score,
+                bulk.sqlite_json(p.scores),
+                p.predicted,
+                bulk.sqlite_json(p.tags),
+                received,
+            )
+            for model_id, p, received in items
+        ),
+        times=("ts", "received_at"),
+    )
 
 
 # One statement for a small batch: insert the rows from arrays (no staging table; the arrays
