@@ -187,3 +187,64 @@ def test_labels_do_not_cross_models(tenant: Tenant, engine: Engine, model: Model
     assert prediction_row(engine, model.id, item["id"])["actual"] is None
     assert count(engine, "pending_labels", other.id) == 1
     assert count(engine, "pending_labels", model.id) == 0
+
+
+def label_state(engine: Engine, model: Model) -> dict[str, list[tuple[object, ...]]]:
+    """Everything labels write for one model, without row ids and receive times."""
+    queries = {
+        "predictions": "SELECT pid, actual, label_ts, delay_h FROM predictions"
+        " WHERE model_id = :m ORDER BY pid",
+        "history": "SELECT pid, actual, ts, change FROM labels WHERE model_id = :m"
+        " ORDER BY pid, row_id",
+        "pending": "SELECT pid, actual, ts FROM pending_labels WHERE model_id = :m ORDER BY pid",
+        "changes": "SELECT p.pid, c.hour, c.old_actual, c.old_delay_h, c.new_actual,"
+        " c.new_delay_h FROM label_changes c JOIN predictions p ON p.row_id = c.row_id"
+        " WHERE c.model_id = :m ORDER BY p.pid, c.row_id",
+    }
+    # sorted whole: one id's two changes (first label, then correction) share pid and row
+    return {
+        name: sorted((tuple(r) for r in rows(engine, sql, m=model.id)), key=repr)
+        for name, sql in queries.items()
+    }
+
+
+def test_a_large_batch_decides_exactly_as_small_batches_do(tenant: Tenant, engine: Engine) -> None:
+    """Past 1,000 distinct ids PostgreSQL matches labels as sets in one statement; its answers
+    and every row it writes equal those of the same labels sent 150 at a time."""
+    base = base_time() - timedelta(days=28)
+    items = predictions(1600, base=base)
+    ids = [p["id"] for p in items]
+    first = [label(ids[i], outcome_of(i), base + timedelta(hours=2 + i % 90)) for i in range(600)]
+    first += [label(f"early-{i}", "1", base) for i in range(40)]  # pending before the batch
+    big = (
+        [label(ids[i], outcome_of(i), base + timedelta(days=3)) for i in range(300)]  # unchanged
+        + [label(ids[i], "0" if outcome_of(i) == "1" else "1", base) for i in range(300, 600)]
+        + [label(ids[i], outcome_of(i), base + timedelta(hours=i % 500)) for i in range(600, 1500)]
+        + [label(ids[1500], "1", base - timedelta(hours=5))]  # before its prediction: delay 0
+        + [label(f"early-{i}", "1" if i < 20 else "0", base) for i in range(40)]
+        + [label(f"never-{i}", "0", base) for i in range(30)]
+    )
+    answers = []
+    models = [create_model(tenant, engine), create_model(tenant, engine)]
+    for model, size in zip(models, (len(big), 150), strict=True):
+        send(tenant.client, model.name, "predictions", items)
+        send(tenant.client, model.name, "labels", first)
+        got = [
+            send(tenant.client, model.name, "labels", big[i : i + size])
+            for i in range(0, len(big), size)
+        ]
+        answers.append({k: sum(a[k] for a in got) for k in got[0]})
+    assert (
+        answers[0]
+        == answers[1]
+        == {
+            "matched": 901,
+            "corrected": 300,
+            "unchanged": 300,
+            "pending": 70,
+        }
+    )
+    one, many = (label_state(engine, m) for m in models)
+    assert one == many
+    assert len(one["pending"]) == 70 and len(one["changes"]) == 600 + 1201
+    assert [r[3] for r in one["predictions"] if r[0] == ids[1500]] == [0.0]

@@ -107,10 +107,92 @@ def ingest(
 ) -> dict[str, int]:
     """Apply labels received `now` (the clock by default) in arrival order; the four counts
     add up to the batch size."""
-    answers, _ = ingest_batches(
-        session=session, model_id=model_id, batches=[(items, now or clock.now())]
-    )
+    received = now or clock.now()
+    if (
+        len(items) > SMALL
+        and is_postgres(session)
+        and len({label.pid for label in items}) == len(items)
+    ):
+        answer, hours = _ingest_set_pg(session, model_id, items, received)
+        dirty.mark(session=session, model_id=model_id, hours=hours, recompute=False, lock="shared")
+        return answer
+    answers, _ = ingest_batches(session=session, model_id=model_id, batches=[(items, received)])
     return answers[0]
+
+
+_IN_STAGE = "stage_labels_in"
+_IN_STAGE_DDL = "pid text, actual text, ts timestamptz"
+
+# A large batch of distinct ids matched and written as sets in one statement (PostgreSQL):
+# the same decisions as `ingest_batches` makes row by row, without carrying the stored rows
+# to Python and back. Predictions are locked in row order, as everywhere else; a delay is
+# never negative, as in `delay_hours`.
+_SET_WRITE = f"""
+WITH t AS MATERIALIZED (
+  SELECT s.pid, s.actual, s.ts AS label_ts, p.row_id, p.ts AS pred_ts, p.hour,
+    p.actual AS old_actual, p.delay_h AS old_delay_h
+  FROM {_IN_STAGE} s JOIN predictions p ON p.model_id = %(m)s AND p.pid = s.pid
+  ORDER BY p.row_id
+  FOR UPDATE OF p
+), ch AS MATERIALIZED (
+  SELECT t.*, greatest(0.0, extract(epoch FROM t.label_ts - t.pred_ts)::float8 / 3600.0)
+    AS delay_h
+  FROM t WHERE t.old_actual IS DISTINCT FROM t.actual
+), upd AS (
+  UPDATE predictions p SET actual = ch.actual, label_ts = ch.label_ts, delay_h = ch.delay_h
+  FROM ch WHERE p.row_id = ch.row_id
+), hist AS (
+  INSERT INTO labels (model_id, pid, actual, ts, change, received_at)
+  SELECT %(m)s, pid, actual, label_ts,
+    CASE WHEN old_actual IS NULL THEN 'first' ELSE 'correction' END, %(at)s
+  FROM ch
+), chg AS (
+  INSERT INTO label_changes (model_id, hour, row_id, old_actual, old_delay_h, new_actual,
+    new_delay_h)
+  SELECT %(m)s, hour, row_id, old_actual, old_delay_h, actual, delay_h FROM ch
+), gone AS (
+  DELETE FROM pending_labels WHERE model_id = %(m)s AND pid IN (SELECT pid FROM t)
+), un AS MATERIALIZED (
+  SELECT s.* FROM {_IN_STAGE} s WHERE NOT EXISTS (SELECT 1 FROM t WHERE t.pid = s.pid)
+), fresh AS MATERIALIZED (
+  SELECT un.* FROM un LEFT JOIN pending_labels q ON q.model_id = %(m)s AND q.pid = un.pid
+  WHERE q.actual IS DISTINCT FROM un.actual
+), waiting AS (
+  INSERT INTO pending_labels (model_id, pid, actual, ts, received_at)
+  SELECT %(m)s, pid, actual, ts, %(at)s FROM fresh
+  ON CONFLICT (model_id, pid) DO UPDATE
+  SET actual = excluded.actual, ts = excluded.ts, received_at = excluded.received_at
+), waiting_hist AS (
+  INSERT INTO labels (model_id, pid, actual, ts, change, received_at)
+  SELECT %(m)s, pid, actual, ts, 'pending', %(at)s FROM fresh
+)
+SELECT (SELECT count(*) FROM t), (SELECT count(*) FROM ch WHERE old_actual IS NULL),
+  (SELECT count(*) FROM ch WHERE old_actual IS NOT NULL), (SELECT count(*) FROM un),
+  (SELECT coalesce(array_agg(DISTINCT hour), '{{}}') FROM ch)
+"""
+
+
+def _ingest_set_pg(
+    session: Session, model_id: int, items: list[LabelIn], received: datetime
+) -> tuple[dict[str, int], set[int]]:
+    bulk.temp_table(session, _IN_STAGE, _IN_STAGE_DDL)
+    bulk.copy_rows(
+        session,
+        _IN_STAGE,
+        ("pid", "actual", "ts"),
+        ((label.pid, label.actual, label.ts) for label in items),
+        types=("text", "text", "timestamptz"),
+    )
+    found, matched, corrected, pending, hours = bulk.fetch_all(
+        session, _SET_WRITE, {"m": model_id, "at": received}
+    )[0]
+    answer = {
+        "matched": matched,
+        "pending": pending,
+        "corrected": corrected,
+        "unchanged": found - matched - corrected,
+    }
+    return answer, set(hours)
 
 
 def ingest_batches(
