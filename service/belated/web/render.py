@@ -68,7 +68,8 @@ def _span(start: str, end: str, zone: str | None = None) -> str:
         return f"{a:%d %b %Y %H:%M} {before}–{b:%H:%M} {after}"
     if tz is UTC or zones.offset_text(a, tz) == zones.offset_text(b, tz):
         return text
-    hours = (b - a) / timedelta(hours=1)
+    # between UTC instants: two times of one zone subtract as wall times (always 24 h)
+    hours = (b.astimezone(UTC) - a.astimezone(UTC)) / timedelta(hours=1)
     return f"{text} ({hours:g} h: {zones.offset_text(a, tz)} to {zones.offset_text(b, tz)})"
 
 
