@@ -199,3 +199,12 @@ def test_rules_decide_on_local_days_and_weeks_equal_to_the_metrics_windows(
             assert _instant(b["baseline"]["start"]) == _midnight(base_first, tz)
             assert _instant(b["baseline"]["end"]) == _midnight(base_end, tz)
             assert b["baseline"]["counts"] == dict(expected)
+    # the alert says its baseline's period in the model's local days
+    (mix,) = [
+        a
+        for a in tenant.client.get("/v1/alerts", params={"model": MODEL}).json()["items"]
+        if a["rule_id"] == ids["mix"]
+    ]
+    last = base_end - timedelta(days=1)
+    assert f"({base_first.day}–{last.day} {last:%b})" in mix["description"], mix["description"]
+    assert mix["time_zone"] == name

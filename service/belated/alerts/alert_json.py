@@ -111,7 +111,9 @@ def alert_dict(
             "retired": rule.retired_at is not None,
             "retired_at": iso(rule.retired_at) if rule.retired_at else None,
         },
-        "description": explain.sentence(cfg, alert.baseline, alert.segment, early=alert.early),
+        "description": explain.sentence(
+            cfg, alert.baseline, alert.segment, early=alert.early, time_zone=time_zone or "UTC"
+        ),
         "state": alert.state,
         # raised on early looks at projected values, not yet confirmed by a settled window
         "early": alert.early,
