@@ -292,7 +292,12 @@ def model_view(
     }
     if row.kind == "binary":
         page["drift"] = drift.drift_panels(
-            windows, rules, granularity=g, label=lambda s: _label(s, g), marks=marks
+            windows,
+            rules,
+            granularity=g,
+            label=lambda s: _label(s, g),
+            marks=marks,
+            time_zone=tz,
         )
         page.update(_binary_extras(session, row, rng, windows, now, max_values))
         page.update(_advice(session, row, view, rng, filters, now, max_values))
