@@ -115,3 +115,25 @@ def local_iso(dt: datetime, tz: tzinfo) -> str:
     if tz is UTC:
         return dt.astimezone(UTC).isoformat().replace("+00:00", "Z")
     return dt.astimezone(tz).isoformat()
+
+
+def offset_text(dt: datetime, tz: tzinfo) -> str:
+    """The zone's offset from UTC at the instant dt, as RFC 3339 writes it: "+01:00"."""
+    return _hours(dt.astimezone(tz).utcoffset() or timedelta(0))
+
+
+def wall_text(dt: datetime, tz: tzinfo, fmt: str = "%Y-%m-%d %H:%M") -> str:
+    """The instant dt as a person in the zone reads it: "2026-03-29 03:00 +02:00".
+
+    The offset follows a format with a time of day, so an hour is never ambiguous at a
+    daylight-saving change; a date alone is the local date, and in UTC the wall time alone
+    (callers keep their own way of saying UTC)."""
+    text = dt.astimezone(tz).strftime(fmt)
+    if tz is UTC or "%H" not in fmt:
+        return text
+    return f"{text} {offset_text(dt, tz)}"
+
+
+def is_utc(name: str | None) -> bool:
+    """Whether a model's zone setting is UTC (times are then shown as they always were)."""
+    return not name or name == DEFAULT_ZONE

@@ -370,9 +370,13 @@ def test_breach_baselines_read_as_words() -> None:
     from belated.web.pages import baseline_text
 
     assert baseline_text({"value": 0.8123, "drop": 0.1, "tolerance": 0.05, "low": None}) == (
-        "value 0.812; drop 0.1; tolerance 0.05"
+        "value 0.812; drop 0.100; tolerance 0.05"
+    )
+    # measured values keep three decimals whatever their digits; counts are whole
+    assert baseline_text({"value": 0.7, "change": -0.05, "predictions": 12000}) == (
+        "value 0.700; change -0.050; predictions 12,000"
     )
     assert baseline_text({"counts": {"north": 3, "south": 4}}) == "counts: 2 values"
     frozen = {"value": 0.74, "start": "2026-11-01T00:00:00Z", "windows": 7, "frozen": True}
-    assert baseline_text(frozen) == "value 0.74"
+    assert baseline_text(frozen) == "value 0.740"
     assert baseline_text(None) == "—"

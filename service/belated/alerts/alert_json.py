@@ -18,6 +18,7 @@ from belated.alerts.states import ACTIVE
 from belated.alerts.tables import Alert, AlertNote, Rule, RuleWindow
 from belated.store.tables import ModelRow
 from belated.timeutil import from_db, iso
+from belated.zones import DEFAULT_ZONE
 
 
 def _window(b: RuleWindow) -> dict[str, Any]:
@@ -57,11 +58,16 @@ def alert_dict(
     alert: Alert,
     model_name: str | None = None,
     public_url: str | None = None,
+    time_zone: str | None = None,
 ) -> dict[str, Any]:
     """An alert as the API and events show it: what fired and why, in words and numbers,
-    its notes, where to look, and its breaches."""
-    if model_name is None:
-        model_name = session.scalar(select(ModelRow.name).where(ModelRow.id == alert.model_id))
+    its notes, where to look, and its breaches. Times are UTC instants; `time_zone` is the
+    model's, whose local days and weeks the windows are."""
+    if model_name is None or time_zone is None:
+        found = session.execute(
+            select(ModelRow.name, ModelRow.time_zone).where(ModelRow.id == alert.model_id)
+        ).one()
+        model_name, time_zone = found[0], found[1]
     rule = session.get(Rule, alert.rule_id)
     assert rule is not None and model_name is not None
     cfg = stored_settings(rule.kind, rule.measure, rule.granularity, rule.settings)
@@ -92,6 +98,7 @@ def alert_dict(
         "number": alert.seq,
         "rule_id": alert.rule_id,
         "model": model_name,
+        "time_zone": time_zone or DEFAULT_ZONE,
         "segment": alert.segment or None,
         "kind": rule.kind,
         "measure": rule.measure,
@@ -104,7 +111,9 @@ def alert_dict(
             "retired": rule.retired_at is not None,
             "retired_at": iso(rule.retired_at) if rule.retired_at else None,
         },
-        "description": explain.sentence(cfg, alert.baseline, alert.segment, early=alert.early),
+        "description": explain.sentence(
+            cfg, alert.baseline, alert.segment, early=alert.early, time_zone=time_zone or "UTC"
+        ),
         "state": alert.state,
         # raised on early looks at projected values, not yet confirmed by a settled window
         "early": alert.early,

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import logging
 import math
+from bisect import bisect_right
 from datetime import datetime, timedelta
 
 from sqlalchemy import select
@@ -28,7 +29,8 @@ from belated.metrics.windows import Cohort, curves_of, settled_window, to_stats,
 from belated.store import segments
 from belated.store.tables import ModelRow
 from belated.store.totals import Totals
-from belated.timeutil import floor_window, from_db, iso, window_step
+from belated.timeutil import from_db, window_step
+from belated.zones import DEFAULT_ZONE, floor_local, local_iso, shift, zone
 
 log = logging.getLogger(__name__)
 MAX_EVALUATED = 120
@@ -52,19 +54,26 @@ def _span(model: ModelRow, rule: RuleSettings) -> tuple[int, int]:
     return evaluated, min(MAX_EVALUATED, rule.baseline.windows * 3 + 2)
 
 
-def _series_range(rule: RuleSettings, now: datetime, evaluated: int) -> Range:
-    """The windows a rule evaluates: the last `evaluated` ones up to the current one."""
-    step = window_step(rule.granularity)
-    end = floor_window(now, rule.granularity) + step
-    return Range(rule.granularity, end - evaluated * step, end)
+def zone_of(model: ModelRow) -> str:
+    """The IANA name of the zone a model's day and week windows start at midnight in."""
+    return model.time_zone or DEFAULT_ZONE
 
 
-def _baseline_range(rule: RuleSettings) -> Range | None:
-    """A fixed baseline's windows (None for a trailing baseline)."""
-    b, g = rule.baseline, rule.granularity
+def _series_range(rule: RuleSettings, now: datetime, evaluated: int, zone_name: str) -> Range:
+    """The windows a rule evaluates: the last `evaluated` ones up to the current one, the
+    same windows GET /metrics answers for the model (local days and weeks of its zone)."""
+    g, tz = rule.granularity, zone(zone_name)
+    end = shift(floor_local(now, g, tz), g, 1, tz)
+    return Range(g, shift(end, g, -evaluated, tz), end, zone_name)
+
+
+def _baseline_range(rule: RuleSettings, zone_name: str) -> Range | None:
+    """A fixed baseline's windows (None for a trailing baseline), aligned down to the
+    model's windows as GET /metrics aligns `start` and `end`."""
+    b, g, tz = rule.baseline, rule.granularity, zone(zone_name)
     if b.start is None or b.end is None:
         return None
-    return Range(g, floor_window(b.start, g), floor_window(b.end, g))
+    return Range(g, floor_local(b.start, g, tz), floor_local(b.end, g, tz), zone_name)
 
 
 def _window_rows(
@@ -114,38 +123,22 @@ def _inputs(
     """The windows of a range (and `lookback` before it) as a rule sees them. With
     `rule.early` and `looked` given (the early looks on record), closed unsettled windows
     not looked at yet carry their projection, and those looked at are marked so."""
-    g = rule.granularity
-    step = window_step(g)
     starts, rows = _window_rows(session, model, rng, lookback, segment, now)
+    ends = [*starts[1:], rng.end]  # a local day lasts 23, 24 or 25 hours
     accs = [_summed(r) for r in rows]
-    tag_counts: dict[int, dict[str, int]] = {}
     measure = rule.measure or ""
+    tag_counts: dict[int, dict[str, int]] = {}
     if measure.startswith("tag_psi:") and starts:
-        level = "h" if g == "hour" else "d"
-        raw = segment_counts(
-            session,
-            model,
-            key=measure.split(":", 1)[1],
-            level=level,
-            lo=epoch_hour(starts[0]),
-            hi=epoch_hour(rng.end),
-        )
-        span = int(step / timedelta(hours=1))
-        base = epoch_hour(starts[0])
-        for start, counts in raw.items():
-            i = (start - base) // span
-            bucket = tag_counts.setdefault(i, {})
-            for k, n in counts.items():
-                bucket[k] = bucket.get(k, 0) + n
+        tag_counts = _tag_counts(session, model, measure.split(":", 1)[1], [*starts, rng.end])
     looks = rule.early and looked is not None
     seen = looked or frozenset()
     out = []
-    for i, (s, a) in enumerate(zip(starts, accs, strict=True)):
-        closed = s + step <= now
-        settled = settled_window(a, s + step, model, now, curves)
+    for i, (s, e, a) in enumerate(zip(starts, ends, accs, strict=True)):
+        closed = e <= now
+        settled = settled_window(a, e, model, now, curves)
         w = WindowInput(
             start=s,
-            end=s + step,
+            end=e,
             closed=closed,
             settled=settled,
             stats=to_stats(a),
@@ -155,6 +148,26 @@ def _inputs(
         if looks and closed and not settled and s not in seen:
             w.projection = _projection(rule, rows[i], model, now, curves)
         out.append(w)
+    return out
+
+
+def _tag_counts(
+    session: Session, model: ModelRow, key: str, bounds: list[datetime]
+) -> dict[int, dict[str, int]]:
+    """Predictions per value of the tag `key` in each window between `bounds`, by window
+    index. Daily rows serve windows that start at UTC midnights; a window boundary at
+    another hour (a zoned model's local midnight) needs the hourly rows."""
+    hours = [epoch_hour(b) for b in bounds]
+    level = "d" if all(h % 24 == 0 for h in hours) else "h"
+    raw = segment_counts(session, model, key=key, level=level, lo=hours[0], hi=hours[-1])
+    out: dict[int, dict[str, int]] = {}
+    for start, counts in raw.items():
+        i = bisect_right(hours, start) - 1
+        if not 0 <= i < len(hours) - 1:
+            continue
+        bucket = out.setdefault(i, {})
+        for k, n in counts.items():
+            bucket[k] = bucket.get(k, 0) + n
     return out
 
 
@@ -169,7 +182,7 @@ def _series(
     curves: Curves | None,
     looked: frozenset[datetime] = frozenset(),
 ) -> list[WindowInput]:
-    rng = _series_range(rule, now, evaluated)
+    rng = _series_range(rule, now, evaluated, zone_of(model))
     return _inputs(session, model, rule, rng, lookback, segment, now, curves, looked)
 
 
@@ -183,7 +196,7 @@ def _fixed_baseline(
 ) -> Baseline | None:
     """A fixed range's baseline; it must be settled like a trailing one (closed, for a
     label-free measure): until it is, it carries the reason and no decision is made."""
-    rng = _baseline_range(rule)
+    rng = _baseline_range(rule, zone_of(model))
     if rng is None:
         return None
     windows = _inputs(session, model, rule, rng, 0, segment, now, curves)
@@ -194,9 +207,10 @@ def _fixed_baseline(
     reason = None
     if waiting:
         state = "settled" if label_based else "closed"
+        start, end = local_iso(rng.start, rng.tz), local_iso(rng.end, rng.tz)
         reason = (
             f"the baseline's {len(waiting)} of {len(windows)} windows from "
-            f"{iso(rng.start)} to {iso(rng.end)} are not {state} yet"
+            f"{start} to {end} are not {state} yet"
         )
     return pooled_baseline(windows, fixed=True, reason=reason)
 
@@ -246,9 +260,9 @@ def evaluate_rule(
     cfg = settings_of(rule)
     evaluated, lookback = _span(model, cfg)
     # bring the rule's ranges up to date once, here, for every segment below
-    series = _series_range(cfg, now, evaluated)
-    lo, hi = series.start - lookback * series.step, series.end
-    fixed_range = _baseline_range(cfg)
+    series = _series_range(cfg, now, evaluated, zone_of(model))
+    lo, hi = series.bounds(lookback)[0], series.end
+    fixed_range = _baseline_range(cfg, zone_of(model))
     if fixed_range is not None:
         lo, hi = min(lo, fixed_range.start), max(hi, fixed_range.end)
     ensure_fresh(session, model, epoch_hour(lo), epoch_hour(hi), max_values)

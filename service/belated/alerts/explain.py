@@ -9,12 +9,13 @@ rests on early looks alone).
 
 from __future__ import annotations
 
-from datetime import datetime, timedelta
+from datetime import UTC, datetime, timedelta, tzinfo
 from typing import Any
 from urllib.parse import quote, urlencode
 
 from belated.alerts.schemas import RuleSettings
 from belated.timeutil import iso, parse_ts, window_step
+from belated.zones import DEFAULT_ZONE, zone
 
 NAMES = {
     "precision": "Precision",
@@ -72,16 +73,18 @@ def where(segment: str | None) -> str:
     return f", in {key} {value}"
 
 
-def _against(rule: RuleSettings, baseline: dict[str, Any] | None) -> str:
-    """ "its baseline of 0.74 (1–7 Nov)", from the stored baseline or the rule's own."""
+def _against(rule: RuleSettings, baseline: dict[str, Any] | None, tz: tzinfo = UTC) -> str:
+    """ "its baseline of 0.74 (1–7 Nov)", from the stored baseline or the rule's own; the
+    period in the local days of the model's zone `tz`."""
     g = rule.granularity
     value = (baseline or {}).get("value")
     said = "its baseline" + (f" of {number(value)}" if isinstance(value, int | float) else "")
     if baseline and baseline.get("start") and baseline.get("end"):
-        return f"{said} ({period(parse_ts(baseline['start']), parse_ts(baseline['end']), g)})"
+        start, end = parse_ts(baseline["start"]), parse_ts(baseline["end"])
+        return f"{said} ({period(start.astimezone(tz), end.astimezone(tz), g)})"
     b = rule.baseline
     if b.start is not None and b.end is not None:
-        return f"{said} ({period(b.start, b.end, g)})"
+        return f"{said} ({period(b.start.astimezone(tz), b.end.astimezone(tz), g)})"
     return f"{said} (the {b.windows} {g}s before)"
 
 
@@ -94,15 +97,18 @@ def sentence(
     segment: str | None,
     *,
     early: bool = False,
+    time_zone: str = DEFAULT_ZONE,
 ) -> str:
     """One sentence saying what fired, per rule kind; an alert raised on early looks (not
-    yet confirmed by a settled window) says it is an early warning from projected values."""
+    yet confirmed by a settled window) says it is an early warning from projected values.
+    Baseline periods are said in the local days of the model's `time_zone`."""
+    tz = zone(time_zone)
     m = rule.measure or ""
     name = NAMES.get(m, m.replace("_", " ").capitalize())
     seg, alpha, g = where(segment), f"α = {number(rule.alpha)}", rule.granularity
     if rule.kind == "drop":
         by = f"more than {number(rule.tolerance)} " if rule.tolerance else ""
-        text = f"{name} fell {by}under {_against(rule, baseline)}, at {alpha}{seg}"
+        text = f"{name} fell {by}under {_against(rule, baseline, tz)}, at {alpha}{seg}"
     elif rule.kind == "floor":
         text = f"{name} fell under {number(rule.threshold)}"
         if rule.mode == "confident":
@@ -111,7 +117,7 @@ def sentence(
     elif rule.kind == "shift" and m == "positive_rate":
         text = (
             f"The predicted positive rate moved by {number(rule.threshold)} or more from "
-            f"{_against(rule, baseline)}, at {alpha}{seg}"
+            f"{_against(rule, baseline, tz)}, at {alpha}{seg}"
         )
     elif rule.kind == "shift":
         what = (
@@ -120,7 +126,7 @@ def sentence(
             else f"The mix of {m.partition(':')[2]} values"
         )
         text = (
-            f"{what} shifted from {_against(rule, baseline)}: "
+            f"{what} shifted from {_against(rule, baseline, tz)}: "
             f"PSI of {number(rule.threshold)} or more{seg}"
         )
     elif rule.kind == "traffic":

@@ -12,6 +12,7 @@ from belated.alerts.tables import Alert
 from belated.errors import NotFound, invalid_field
 from belated.store.tables import ModelRow
 from belated.timeutil import parse_ts
+from belated.zones import DEFAULT_ZONE
 
 
 def list_alerts(
@@ -29,7 +30,7 @@ def list_alerts(
 
     `state` is one state or a comma list of them (`raised,noted`: every active alert)."""
     query = (
-        select(Alert, ModelRow.name)
+        select(Alert, ModelRow.name, ModelRow.time_zone)
         .join(ModelRow, ModelRow.id == Alert.model_id)
         .where(Alert.project_id == project_id)
     )
@@ -52,7 +53,10 @@ def list_alerts(
     rows = session.execute(query.order_by(Alert.seq.desc()).limit(limit + 1)).all()
     more = len(rows) > limit
     rows = rows[:limit]
-    items = [lifecycle.alert_dict(session, a, name, public_url) for a, name in rows]
+    items = [
+        lifecycle.alert_dict(session, a, name, public_url, zone or DEFAULT_ZONE)
+        for a, name, zone in rows
+    ]
     return items, (rows[-1][0].seq if more and rows else None)
 
 

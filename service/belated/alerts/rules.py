@@ -17,6 +17,7 @@ from belated.errors import Conflict, NotFound, invalid_field
 from belated.store import tag_names
 from belated.store.tables import ModelRow
 from belated.timeutil import iso, to_utc
+from belated.zones import DEFAULT_ZONE, zone
 
 SETTING_KEYS = (
     "threshold",
@@ -54,11 +55,15 @@ def rule_read(rule: Rule, model_name: str, *, now: datetime | None = None) -> Ru
     )
 
 
-def _settings(fields: dict[str, Any]) -> dict[str, Any]:
+def _settings(fields: dict[str, Any], time_zone: str) -> dict[str, Any]:
+    """The stored settings of a rule. A baseline's start or end given without an offset (a
+    bare date, or a wall time) is read in the model's zone, as GET /metrics reads them, and
+    stored as the UTC instant it names."""
     out = {k: fields[k] for k in SETTING_KEYS if k in fields}
     if isinstance(out.get("baseline"), dict):
+        tz = zone(time_zone)
         out["baseline"] = {
-            k: (iso(v) if isinstance(v, datetime) else v)
+            k: (iso(v if v.tzinfo else v.replace(tzinfo=tz)) if isinstance(v, datetime) else v)
             for k, v in out["baseline"].items()
             if v is not None
         }
@@ -102,7 +107,7 @@ def create_rule(
         kind=fields["kind"],
         measure=fields.get("measure"),
         granularity=fields.get("granularity") or "day",
-        settings=_settings(fields),
+        settings=_settings(fields, model.time_zone or DEFAULT_ZONE),
         muted_until=fields.get("muted_until"),
         created_at=stamp,
         updated_at=stamp,
@@ -135,7 +140,9 @@ def update_rule(
     retired rule cannot be changed."""
     if rule.retired_at is not None:
         raise Conflict(f"the rule {rule.id!r} is retired; create a new rule instead")
-    merged = {**rule.settings, **_settings(fields)}
+    model = session.get(ModelRow, rule.model_id)
+    time_zone = (model.time_zone if model is not None else None) or DEFAULT_ZONE
+    merged = {**rule.settings, **_settings(fields, time_zone)}
     measure = fields.get("measure", rule.measure)
     try:
         check_rule(rule.kind, {**merged, "measure": measure})
@@ -145,7 +152,6 @@ def update_rule(
         raise invalid_field(field, text) from None
     if why := catalog.check_threshold(rule.kind, measure, merged.get("threshold")):
         raise invalid_field("threshold", why)
-    model = session.get(ModelRow, rule.model_id)
     if model is not None and ("segment_by" in fields or "measure" in fields):
         check_tag_keys(
             session=session,

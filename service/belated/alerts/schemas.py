@@ -70,7 +70,11 @@ class Baseline(BaseModel):
         fixed = self.start is not None or self.end is not None
         if fixed and self.windows is not None:
             raise ValueError("give windows or start/end, not both")
-        if fixed and (self.start is None or self.end is None or self.start >= self.end):
+        if fixed and (
+            self.start is None or self.end is None or to_utc(self.start) >= to_utc(self.end)
+        ):
+            # without an offset a time is the model's wall time, not known here: compared
+            # as UTC, and aligned in the model's zone when the rule is stored
             raise ValueError("a fixed baseline needs start before end")
         if not fixed and self.windows is None:
             self.windows = BASELINE_WINDOWS

@@ -81,6 +81,7 @@ def get_metrics(
         "rolling": rolling,
         "beta": b,
         "tags": dict(filters),
+        "time_zone": model.time_zone or "UTC",
         "windows": windows,
     }
     return Response(

@@ -2,10 +2,14 @@
 
 from __future__ import annotations
 
+from typing import Any
+
 import typer
 
 from belated.cli.options import FORMAT, TOKEN, URL, ask, check_format, connect
 from belated.cli.output import show, show_one
+from belated.timeutil import parse_ts
+from belated.zones import DEFAULT_ZONE, is_utc, local_iso, wall_text, zone
 
 alerts_app = typer.Typer(help="Alerts: list them, note one.", no_args_is_help=True)
 COLUMNS = ("id", "state", "model", "kind", "measure", "segment", "started_at", "description")
@@ -24,7 +28,20 @@ def alerts_list(
     check_format(fmt)
     with connect(url, token) as client:
         found = ask(lambda: client.alerts(state=state, model=model, since=since))
+    if fmt != "json":
+        found = [_local(a, fmt) for a in found]
     show(found, COLUMNS, fmt, f"{len(found)} alerts")
+
+
+def _local(alert: dict[str, Any], fmt: str) -> dict[str, Any]:
+    """A zoned model's alert with its start in the model's zone: wall time with the offset
+    in a table, RFC 3339 with the offset in CSV (a UTC model's alert as the API gives it)."""
+    name, started = alert.get("time_zone") or DEFAULT_ZONE, alert.get("started_at")
+    if is_utc(name) or not started:
+        return alert
+    at, tz = parse_ts(started), zone(name)
+    shown = local_iso(at, tz) if fmt == "csv" else wall_text(at, tz)
+    return {**alert, "started_at": shown}
 
 
 @alerts_app.command("note")

@@ -12,6 +12,7 @@ import typer
 
 from belated.cli.options import FORMAT, MODEL, TOKEN, URL, ask, check_format, connect, fail
 from belated.client.windows import windows_frame
+from belated.zones import DEFAULT_ZONE, is_utc, wall_text, zone
 
 TAG = typer.Option(
     None,
@@ -109,26 +110,34 @@ def windows(
         answer["windows"] = answer["windows"][-last:]
     frame = windows_frame(answer)
     cols = [_measure(frame, m) for m in wanted]
+    time_zone = str(answer.get("time_zone") or DEFAULT_ZONE)
     if fmt == "json":
         typer.echo(json.dumps(answer, indent=2, ensure_ascii=False))
     elif fmt == "csv":
         keep = ["start", "end", "closed", "settled", "predictions", "labelled", "coverage"]
         for c in cols:
             keep += [k for k in frame.columns if k == c or str(k).startswith(f"{c}_")]
-        typer.echo(
-            frame.loc[:, keep].to_csv(index=False, date_format="%Y-%m-%dT%H:%M:%SZ"), nl=False
-        )
+        out = frame.loc[:, keep]
+        if not is_utc(time_zone):
+            # a zoned model's windows as the API gives them: local time with its offset
+            out = out.assign(
+                start=[w["start"] for w in answer["windows"]],
+                end=[w["end"] for w in answer["windows"]],
+            )
+        typer.echo(out.to_csv(index=False, date_format="%Y-%m-%dT%H:%M:%SZ"), nl=False)
     else:
-        _table(frame, model, granularity, cols)
+        _table(frame, model, granularity, cols, time_zone)
 
 
-def _table(frame: pd.DataFrame, model: str, granularity: str, cols: list[str]) -> None:
+def _table(
+    frame: pd.DataFrame, model: str, granularity: str, cols: list[str], time_zone: str
+) -> None:
     from rich.console import Console
     from rich.table import Table
     from rich.text import Text
 
     table = Table(
-        title=f"{model}: {len(frame)} {granularity} windows (UTC)",
+        title=f"{model}: {len(frame)} {granularity} windows ({time_zone})",
         caption=Text(
             "provisional: not settled, may change as labels arrive; its measures show first "
             "the projected value (what the window will read once its labels are in), then "
@@ -139,11 +148,14 @@ def _table(frame: pd.DataFrame, model: str, granularity: str, cols: list[str]) -
     for head in ("start", "predictions", "labelled", "coverage", "state", *cols):
         table.add_column(head, justify="left" if head in ("start", "state") else "right")
     shape = "%Y-%m-%d %H:%M" if granularity == "hour" else "%Y-%m-%d"
+    tz = zone(time_zone)
+    if tz is not UTC:
+        shape = "%Y-%m-%d %H:%M"  # a local midnight with its offset (23 and 25-hour days)
     for _, row in frame.iterrows():
         state = "open" if not row["closed"] else "settled" if row["settled"] else "provisional"
         coverage = "-" if pd.isna(row["coverage"]) else f"{row['coverage']:.1%}"
         cells = [
-            row["start"].strftime(shape),
+            wall_text(row["start"].to_pydatetime(), tz, shape),
             str(row["predictions"]),
             str(row["labelled"]),
             coverage,

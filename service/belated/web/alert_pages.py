@@ -59,6 +59,19 @@ def describe_rule(rule: Any) -> str:
     return f"{text} (per {rule.granularity}{seg})"
 
 
+MEASURED = ("value", "drop", "change")  # measured on the data: always three decimals
+
+
+def _figure(key: str, value: float) -> str:
+    """A measured value with three decimals, so that a column of them lines up (0.100 beside
+    0.812); a count whole, with thousands separators; a setting as it was written (0.05)."""
+    if key in MEASURED:
+        return f"{value:.3f}"
+    if isinstance(value, int) or float(value).is_integer():
+        return f"{int(value):,}"
+    return f"{value:.3f}".rstrip("0").rstrip(".")
+
+
 def baseline_text(baseline: dict[str, Any] | None) -> str:
     """What a breach was compared with, in a few words (the period is in the sentence)."""
     parts = []
@@ -68,7 +81,7 @@ def baseline_text(baseline: dict[str, Any] | None) -> str:
         if isinstance(value, dict):
             parts.append(f"{key.replace('_', ' ')}: {len(value)} values")
         elif isinstance(value, int | float) and not isinstance(value, bool):
-            parts.append(f"{key.replace('_', ' ')} {value:.3f}".rstrip("0").rstrip("."))
+            parts.append(f"{key.replace('_', ' ')} {_figure(key, value)}")
         elif value is not None:
             parts.append(f"{key.replace('_', ' ')} {value}")
     return "; ".join(parts) or "—"

@@ -12,12 +12,14 @@ from __future__ import annotations
 
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
+from datetime import UTC, tzinfo
 from typing import Any
 
 from markupsafe import Markup
 
 from belated.timeutil import parse_ts
 from belated.web import charts
+from belated.zones import DEFAULT_ZONE, zone
 
 
 @dataclass(frozen=True)
@@ -42,22 +44,23 @@ PANELS = (
 )
 
 
-def _against(window: dict[str, Any]) -> str:
+def _against(window: dict[str, Any], tz: tzinfo = UTC) -> str:
+    """The period a window's drift is measured against, in the local dates of `tz`."""
     period = (window.get("drift") or {}).get("against") or {}
     if not period.get("start"):
         return ""
-    start, end = parse_ts(period["start"]), parse_ts(period["end"])
+    start, end = parse_ts(period["start"]).astimezone(tz), parse_ts(period["end"]).astimezone(tz)
     return f"against the {period.get('kind', 'reference')} {start:%d %b %Y} to {end:%d %b %Y}"
 
 
 def _points(
-    windows: Sequence[dict[str, Any]], key: str, label: Callable[[str], str]
+    windows: Sequence[dict[str, Any]], key: str, label: Callable[[str], str], tz: tzinfo = UTC
 ) -> list[charts.Point]:
     out = []
     for w in windows:
         drift = w.get("drift") or {}
         value = drift.get(key)
-        note = _against(w) if value is not None else str(drift.get("reason") or "no value")
+        note = _against(w, tz) if value is not None else str(drift.get("reason") or "no value")
         out.append(
             charts.Point(
                 key=w["start"],
@@ -96,11 +99,13 @@ def drift_panels(
     granularity: str,
     label: Callable[[str], str],
     marks: Sequence[charts.Mark],
+    time_zone: str = DEFAULT_ZONE,
 ) -> list[dict[str, Any]]:
-    """The drift panels of a page: each with its key, title, latest value and chart."""
+    """The drift panels of a page: each with its key, title, latest value and chart (dates
+    in the model's `time_zone`)."""
     out = []
     for panel in PANELS:
-        points = _points(windows, panel.key, label)
+        points = _points(windows, panel.key, label, zone(time_zone))
         refs = _references(panel, rules)
         latest = next((p for p in reversed(points) if p.value is not None), None)
         svg: Markup = charts.line_chart(

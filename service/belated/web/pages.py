@@ -17,7 +17,6 @@ from belated.metrics.windows import MeasureOptions, windows_of_range
 from belated.store import markers, model_registry
 from belated.store.keys import Principal
 from belated.store.tables import ModelRow
-from belated.timeutil import parse_ts
 from belated.web import alert_pages, charts, drift, panels, segtable, views
 from belated.web.alert_pages import alerts_view, all_alerts, baseline_text, describe_rule
 from belated.web.names import NAMES, labelled_text, name_of, num3, plural
@@ -80,7 +79,8 @@ class View:
 
 
 def _label(iso_start: str, granularity: str) -> str:
-    return parse_ts(iso_start).strftime(AXIS[granularity])
+    """An axis label in the window's own offset (a zoned model's windows carry theirs)."""
+    return datetime.fromisoformat(iso_start).strftime(AXIS[granularity])
 
 
 def _all_models(session: Session, project_id: int) -> list[ModelRow]:
@@ -128,6 +128,7 @@ def overview(*, session: Session, who: Principal, now: datetime, max_values: int
             {
                 "name": row.name,
                 "kind": row.kind,
+                "time_zone": row.time_zone or "UTC",
                 "alerts": active.get(row.name, {"raised": 0, "noted": 0}),
                 "stored": model_registry.counts(session=session, model=row),
                 "window": latest,
@@ -203,8 +204,9 @@ def model_view(
     alerts = alert_pages.with_rules(
         session, row, alert_pages.list_all(session, who, state=ACTIVE, model=row.name)
     )
-    marks = views.alert_marks(alerts, g) + views.marker_marks(
-        markers.list_(session=session, model=row, start=rng.start, end=rng.end), g
+    tz = row.time_zone or "UTC"
+    marks = views.alert_marks(alerts, g, tz) + views.marker_marks(
+        markers.list_(session=session, model=row, start=rng.start, end=rng.end), g, tz
     )
     series = {m: _series(windows, m, g) for m in CHARTED[row.kind]}
     shared = [
@@ -290,7 +292,12 @@ def model_view(
     }
     if row.kind == "binary":
         page["drift"] = drift.drift_panels(
-            windows, rules, granularity=g, label=lambda s: _label(s, g), marks=marks
+            windows,
+            rules,
+            granularity=g,
+            label=lambda s: _label(s, g),
+            marks=marks,
+            time_zone=tz,
         )
         page.update(_binary_extras(session, row, rng, windows, now, max_values))
         page.update(_advice(session, row, view, rng, filters, now, max_values))
@@ -361,7 +368,12 @@ def _advice(
         start, end = rng.start, rng.end
     else:
         days = params.parse_range(
-            "day", None, None, now, default_windows=metric_thresholds.DEFAULT_DAYS
+            "day",
+            None,
+            None,
+            now,
+            default_windows=metric_thresholds.DEFAULT_DAYS,
+            time_zone=row.time_zone or "UTC",
         )
         start, end = days.start, days.end
     sweep = metric_thresholds.over_range(

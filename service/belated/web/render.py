@@ -2,13 +2,14 @@
 
 from __future__ import annotations
 
-from datetime import datetime
+from datetime import UTC, datetime, time, timedelta
 from typing import Any
 from urllib.parse import urlencode
 
 from fastapi.responses import HTMLResponse, Response
 from jinja2 import Environment, PackageLoader
 
+from belated import zones
 from belated.api.problems import as_problem
 from belated.errors import DomainError, Problem
 from belated.timeutil import parse_ts
@@ -32,19 +33,44 @@ def _pct(value: Any, digits: int = 0) -> str:
     return f"{value:.{digits}%}" if isinstance(value, int | float) else "—"
 
 
-def _when(value: str | datetime | None, fmt: str = "%d %b %Y %H:%M UTC") -> str:
-    return "—" if value is None else parse_ts(value).strftime(fmt)
+UTC_SUFFIX = " UTC"
 
 
-def _span(start: str, end: str) -> str:
-    """A window as a reader says it: a day, a week, or an hour."""
-    a, b = parse_ts(start), parse_ts(end)
-    hours = (b - a).total_seconds() / 3600
-    if hours == 24 and a.hour == 0:
-        return a.strftime("%a %d %b %Y")
-    if hours == 24 * 7:
-        return a.strftime("week of %d %b %Y")
-    return f"{a:%d %b %Y %H:%M}–{b:%H:%M}"
+def _when(
+    value: str | datetime | None, fmt: str = "%d %b %Y %H:%M UTC", zone: str | None = None
+) -> str:
+    """A time as the page shows it: in UTC as `fmt` says, or, for a model with another
+    `zone`, its wall time there with the offset ("29 Mar 2026 03:00 +02:00")."""
+    if value is None:
+        return "—"
+    if zones.is_utc(zone):
+        return parse_ts(value).strftime(fmt)
+    assert zone is not None
+    return zones.wall_text(parse_ts(value), zones.zone(zone), fmt.removesuffix(UTC_SUFFIX))
+
+
+def _span(start: str, end: str, zone: str | None = None) -> str:
+    """A window as a reader says it: a day, a week, or an hour, in the model's zone (a
+    local day may last 23 or 25 hours; its midnights are then given with their offsets)."""
+    tz = zones.zone(zone) if not zones.is_utc(zone) else UTC
+    a, b = parse_ts(start).astimezone(tz), parse_ts(end).astimezone(tz)
+    midnights = a.time() == b.time() == time(0)
+    if midnights and b.date() - a.date() == timedelta(days=1):
+        text = a.strftime("%a %d %b %Y")
+    elif midnights and b.date() - a.date() == timedelta(days=7) and a.weekday() == 0:
+        text = a.strftime("week of %d %b %Y")
+    elif tz is UTC:
+        return f"{a:%d %b %Y %H:%M}–{b:%H:%M}"
+    else:
+        before, after = zones.offset_text(a, tz), zones.offset_text(b, tz)
+        if before == after:
+            return f"{a:%d %b %Y %H:%M}–{b:%H:%M} {after}"
+        return f"{a:%d %b %Y %H:%M} {before}–{b:%H:%M} {after}"
+    if tz is UTC or zones.offset_text(a, tz) == zones.offset_text(b, tz):
+        return text
+    # between UTC instants: two times of one zone subtract as wall times (always 24 h)
+    hours = (b.astimezone(UTC) - a.astimezone(UTC)) / timedelta(hours=1)
+    return f"{text} ({hours:g} h: {zones.offset_text(a, tz)} to {zones.offset_text(b, tz)})"
 
 
 def _hours(value: float | None) -> str:

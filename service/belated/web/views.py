@@ -17,8 +17,9 @@ from sqlalchemy.orm import Session
 
 from belated.metrics import params
 from belated.store.tables import Marker, ModelRow, Prediction
-from belated.timeutil import floor_window, from_db, iso, parse_ts
+from belated.timeutil import from_db, parse_ts
 from belated.web import charts
+from belated.zones import DEFAULT_ZONE, floor_local, is_utc, local_iso, wall_text, zone
 
 MAX_DAYS = 120
 SETTLED_SHOWN = 7  # days of settled windows the default range always reaches back to
@@ -44,41 +45,61 @@ def default_range(
     session: Session, model: ModelRow, granularity: str, rules: list[Any], now: datetime
 ) -> params.Range:
     """The range a page opens on when the reader chose none (see the module docstring)."""
-    plain = params.parse_range(granularity, None, None, now)
+    name = model.time_zone or DEFAULT_ZONE
+    tz = zone(name)
+    plain = params.parse_range(granularity, None, None, now, time_zone=name)
     first = first_prediction(session, model)
     if first is None:
         return plain
-    first = floor_window(first, granularity)
+    first = floor_local(first, granularity, tz)
     if granularity != "day":
         begin = max(plain.start, first)
-        return params.Range(granularity, begin, plain.end)
+        return params.Range(granularity, begin, plain.end, name)
     starts = [s for s in (_baseline_start(r, plain.end) for r in rules) if s is not None]
-    begin = floor_window(min(starts), "day") if starts else first
+    begin = floor_local(min(starts), "day", tz) if starts else first
     # reach back to the latest settled windows: a window settles at the latest
     # label_delay_days after it closes
     settled_by = plain.end - timedelta(days=model.label_delay_days + SETTLED_SHOWN)
     begin = min(begin, settled_by)
     begin = max(begin, first, plain.end - timedelta(days=MAX_DAYS))
-    return params.Range("day", min(begin, plain.end - plain.step), plain.end)
+    # a span of whole days counted back across a daylight-saving change ends off midnight
+    begin = floor_local(min(begin, plain.end - plain.step), "day", tz)
+    return params.Range("day", begin, plain.end, name)
 
 
-def marker_marks(found: list[Marker], granularity: str) -> list[charts.Mark]:
-    """One mark per marker at the window (of the page's granularity) it falls in; its text
-    is the marker's, with its time and who set it."""
-    return [
-        charts.Mark(
-            key=iso(floor_window(from_db(m.at) or m.at, granularity)),
-            text=f"marker: {m.text} ({from_db(m.at) or m.at:%d %b %Y %H:%M} UTC, {m.author})",
-            kind="marker",
-            ref=m.id,
+def _when(at: datetime, time_zone: str) -> str:
+    """A mark's time: UTC as it always was, or wall time with the offset in a model's zone."""
+    if is_utc(time_zone):
+        return f"{at:%d %b %Y %H:%M} UTC"
+    return wall_text(at, zone(time_zone), "%d %b %Y %H:%M")
+
+
+def marker_marks(
+    found: list[Marker], granularity: str, time_zone: str = DEFAULT_ZONE
+) -> list[charts.Mark]:
+    """One mark per marker at the window (of the page's granularity, in the model's zone)
+    it falls in; its text is the marker's, with its time and who set it."""
+    tz = zone(time_zone)
+    out = []
+    for m in found:
+        at = from_db(m.at) or m.at
+        out.append(
+            charts.Mark(
+                key=local_iso(floor_local(at, granularity, tz), tz),
+                text=f"marker: {m.text} ({_when(at, time_zone)}, {m.author})",
+                kind="marker",
+                ref=m.id,
+            )
         )
-        for m in found
-    ]
+    return out
 
 
-def alert_marks(alerts: list[dict[str, Any]], granularity: str) -> list[charts.Mark]:
-    """One mark per alert at the window (of the page's granularity) holding its first
-    breach; its text names the alert."""
+def alert_marks(
+    alerts: list[dict[str, Any]], granularity: str, time_zone: str = DEFAULT_ZONE
+) -> list[charts.Mark]:
+    """One mark per alert at the window (of the page's granularity, in the model's zone)
+    holding its first breach; its text names the alert."""
+    tz = zone(time_zone)
     out = []
     for a in alerts:
         breached = [b for b in a.get("breaches") or [] if b.get("breached")]
@@ -89,8 +110,8 @@ def alert_marks(alerts: list[dict[str, Any]], granularity: str) -> list[charts.M
         text = f"alert {a['state']}{where}: {a.get('description') or a.get('rule_text', '')}"
         out.append(
             charts.Mark(
-                key=iso(floor_window(first, granularity)),
-                text=f"{text} (first breach {first:%d %b %Y})",
+                key=local_iso(floor_local(first, granularity, tz), tz),
+                text=f"{text} (first breach {first.astimezone(tz):%d %b %Y})",
                 kind="alert",
                 ref=str(a["id"]),
             )
