@@ -26,7 +26,8 @@ differ anywhere and the window's score histogram reproduces its confusion counts
 threshold on a bin edge, unchanged over the window); else the strata of the class curves.
 
 A segment (one tag filter) uses its own curves when each class has at least 200 labels in
-the history used, else the whole model's; `Curves.source` says which ("segment" or
+the history used, else the whole model's (the band delays are kept for the whole model only,
+so a segment's own curves are one per class); `Curves.source` says which ("segment" or
 "model") and the window's `projected_curves` shows it.
 
 Fitting reads months of rollups; a dashboard page asks for the same curves several times,

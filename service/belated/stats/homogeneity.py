@@ -59,13 +59,18 @@ def logrank_reverse(hists: np.ndarray, ages_hours: np.ndarray) -> LogRank:
     h = np.asarray(hists, dtype=np.float64)
     if h.ndim != 3 or h.shape[0] < 2:
         raise ValueError("hists must be (groups >= 2, cohorts, bins)")
-    d, r = _risk_sets(h, ages_hours)
+    return logrank_of(*_risk_sets(h, ages_hours))
+
+
+def logrank_of(d: np.ndarray, r: np.ndarray) -> LogRank:
+    """The K-sample log-rank test from each group's events `d` and risk sets `r` (K, bins).
+    Both add up over cohorts and bands, so pooled groups are sums of their parts' rows."""
+    k = d.shape[0]
     d_all, r_all = d.sum(axis=0), r.sum(axis=0)
     use = (r_all > 1) & (d_all > 0)
-    d, r, d_all, r_all = d[:, use], r[:, use], d_all[use], r_all[use]
-    k = h.shape[0]
     if not use.any():
         return LogRank(0.0, k - 1, 1.0)
+    d, r, d_all, r_all = d[:, use], r[:, use], d_all[use], r_all[use]
     share = r / r_all  # (K, bins)
     observed_minus_expected = (d - d_all * share).sum(axis=1)
     spread = d_all * (r_all - d_all) / (r_all - 1.0)
@@ -98,7 +103,8 @@ def band_groups(
     """
     h = np.asarray(band_hists, dtype=np.float64)
     n_bands = h.shape[0]
-    seen_labels = _risk_sets(h, ages_hours)[0].sum(axis=1)
+    d, r = _risk_sets(h, ages_hours)  # per band; a group's are the sums of its bands'
+    seen_labels = d.sum(axis=1)
     if extra_labels is not None:
         seen_labels = seen_labels + np.asarray(extra_labels, dtype=np.float64)
     groups: list[list[int]] = []
@@ -109,14 +115,12 @@ def band_groups(
             groups.append([b])
     if len(groups) > 1 and seen_labels[groups[-1]].sum() < min_labels:
         groups[-2].extend(groups.pop())
-
-    def pooled(group: list[int]) -> np.ndarray:
-        out: np.ndarray = h[group].sum(axis=0)
-        return out
-
     while len(groups) > 1:
         p = [
-            logrank_reverse(np.stack([pooled(a), pooled(b)]), ages_hours).p_value
+            logrank_of(
+                np.stack([d[a].sum(axis=0), d[b].sum(axis=0)]),
+                np.stack([r[a].sum(axis=0), r[b].sum(axis=0)]),
+            ).p_value
             for a, b in zip(groups[:-1], groups[1:], strict=True)
         ]
         j = int(np.argmax(p))

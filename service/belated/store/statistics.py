@@ -316,6 +316,9 @@ HISTOGRAMS: tuple[Histogram, ...] = (
         lambda _t: "actual IS NOT NULL AND delay_h IS NOT NULL AND score IS NOT NULL",
         "label delays of explicit labels by actual class and score band (band arrival curves)",
         binary_only=True,
+        # a segment rarely has 200 labels of a class in two score bands: the whole model's
+        # bands only, which spares the refresh a GROUP BY of 9,240 cells per segment value
+        whole_model_only=True,
     ),
 )
 HISTOGRAM_BY_NAME = {h.name: h for h in HISTOGRAMS}
