@@ -96,6 +96,18 @@ def test_band_curves_correct_the_recall_that_score_dependent_delays_bias(
     assert delays.status_code == 200, delays.text
     by_band = delays.json()["arrival_by_band"]
     assert by_band["1"] is not None and len(by_band["1"]) >= 2, by_band  # positives' bands differ
+    for groups in (g for g in by_band.values() if g is not None):
+        edges = [(g["score_from"], g["score_to"]) for g in groups]
+        assert edges[0][0] == 0.0 and edges[-1][1] == 1.0, edges  # contiguous, all scores
+        assert all(a[1] == b[0] for a, b in zip(edges, edges[1:], strict=False)), edges
+        assert all(g["labels"] >= 200 and g["arrival"] for g in groups), groups
+    # the faster positives are the high-score ones: the top group's curve is ahead at 1 day
+    first, last = by_band["1"][0]["arrival"], by_band["1"][-1]["arrival"]
+    at_day = [
+        np.interp(24.0, [p["age_hours"] for p in c], [p["arrived"] for p in c])
+        for c in (first, last)
+    ]
+    assert at_day[1] > at_day[0] + 0.2, at_day
 
     # the class-curve projection of the same windows, in process, from the same rollups
     class_recall: dict[str, float | None] = {}
