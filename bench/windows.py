@@ -15,6 +15,17 @@ with COPY into a throwaway database, then measures in the same run:
 - peak memory (VmHWM) of the rebuild, refresh and server processes, at N and at N/10 rows.
 
     .venv/bin/python bench/windows.py [--rows 10000000] [--quick] [--explain] [--keep]
+
+With `--projections` it measures instead the same query with `projected` measures (issue 12):
+N rows (default 1,000,000) over the year up to the current hour, with the labels whose time
+(prediction + delay) is still to come left out, so the last weeks are unsettled; then
+`windows_of_range` in process for the 365 daily windows up to now (fresh session each run:
+the arrival curves are fitted every time, as every request does), split into the curve fit,
+the projections of the unsettled windows and the rest (the settled windows' work), against
+the same call with the curves left out (no projections: the plain alternative), and the HTTP
+p50 / p95 of the same query against `belated serve --no-jobs`.
+
+    .venv/bin/python bench/windows.py --projections [--rows 1000000]
 """
 
 from __future__ import annotations
@@ -436,6 +447,121 @@ def breakdown(res: dict[str, Any]) -> str:
     return markdown_table(["run", "statement kind", "calls", "seconds", "share"], rows)
 
 
+def run_projections(n: int, repeats: int = 7, requests: int = 30) -> None:
+    """The metrics query with projections, in process and over HTTP; prints a table."""
+    from datetime import UTC, timedelta
+
+    from sqlalchemy import select
+
+    import belated.metrics.windows as mw
+    from belated.metrics import arrival
+    from belated.metrics.params import Range
+    from belated.store.db import make_engine, make_sessionmaker
+    from belated.store.tables import ModelRow
+
+    now = datetime.now(UTC).replace(minute=0, second=0, microsecond=0)
+    end = now.replace(hour=0) + timedelta(days=1)
+    start = end - timedelta(days=365)
+    name = create_database("belated_bench_projections")
+    url = pg_url(name)
+    sa_url = url.replace("postgresql://", "postgresql+psycopg://")
+    try:
+        model_id, token = wd.setup_tenant(sa_url)
+        data = wd.generate(n)
+        data.ts = data.ts + (now.timestamp() - wd.YEAR_START.timestamp() - wd.YEAR_SECONDS)
+        to_come = np.flatnonzero(data.ts + data.delay_h * 3600 > now.timestamp())
+        data.late = np.union1d(data.late, to_come)
+        t0 = time.perf_counter()
+        wd.load(url, model_id, data)
+        rebuild, _ = run_child("rebuild", sa_url, model_id)
+        load_s = time.perf_counter() - t0
+        engine = make_engine(sa_url)
+        factory = make_sessionmaker(engine)
+        spent: dict[str, float] = {"fit": 0.0, "project": 0.0}
+        real_fit, real_projected, real_curves_of = arrival._fit_on, mw.projected, mw.curves_of
+
+        def timed(key: str, fn: Any) -> Any:
+            def run(*a: Any, **k: Any) -> Any:
+                t = time.perf_counter()
+                try:
+                    return fn(*a, **k)
+                finally:
+                    spent[key] += time.perf_counter() - t
+
+            return run
+
+        def no_curves(*_a: Any, **_k: Any) -> None:
+            return None
+
+        arrival._fit_on = timed("fit", real_fit)  # type: ignore[assignment]
+        mw.projected = timed("project", real_projected)  # type: ignore[assignment]
+        rng = Range("day", start, end)
+        runs: dict[str, list[dict[str, float]]] = {"with": [], "without": []}
+        n_projected = n_windows = 0
+        for i in range(repeats + 1):
+            for mode in ("with", "without"):
+                mw.curves_of = real_curves_of if mode == "with" else no_curves
+                spent.update(fit=0.0, project=0.0)
+                with factory() as session:
+                    model = session.scalars(select(ModelRow).where(ModelRow.id == model_id)).one()
+                    t = time.perf_counter()
+                    windows = mw.windows_of_range(
+                        session, model, rng, mw.MeasureOptions(), (), now, 100
+                    )
+                    total = time.perf_counter() - t
+                if i:  # the first round warms the memos and the pool
+                    runs[mode].append({"total": total, **spent})
+                if mode == "with":
+                    n_windows = len(windows)
+                    n_projected = sum(w["projected"] is not None for w in windows)
+        mw.curves_of, arrival._fit_on, mw.projected = real_curves_of, real_fit, real_projected
+        engine.dispose()
+        service = Service(sa_url, extra_env={"BELATED_LOG_FORMAT": "text"})
+        lat: list[float] = []
+        try:
+            service.wait_ready()
+            params = {"granularity": "day", "start": start.isoformat(), "end": end.isoformat()}
+            headers = {"Authorization": f"Bearer {token}"}
+            with httpx.Client(headers=headers, timeout=120) as client:
+                for i in range(requests + 3):
+                    t = time.perf_counter()
+                    resp = client.get(f"{service.url}/v1/models/{wd.MODEL}/metrics", params=params)
+                    resp.raise_for_status()
+                    if i >= 3:
+                        lat.append(time.perf_counter() - t)
+            http_projected = sum(w["projected"] is not None for w in resp.json()["windows"])
+        finally:
+            service.stop()
+    finally:
+        drop_database(name)
+
+    def med(mode: str, key: str) -> float:
+        return 1000 * statistics.median(r[key] for r in runs[mode])
+
+    with_total, without_total = med("with", "total"), med("without", "total")
+    fit, project = med("with", "fit"), med("with", "project")
+    rows = [
+        ["365 daily windows in process, with projections (median ms)", f"{with_total:.0f}"],
+        ["  fitting the arrival curves (once per request)", f"{fit:.0f}"],
+        [f"  projecting the {n_projected} unsettled windows", f"{project:.0f}"],
+        [
+            f"  the rest: the {n_windows - n_projected} settled windows' measures",
+            f"{with_total - fit - project:.0f}",
+        ],
+        ["the same without curves (no projections; plain alternative)", f"{without_total:.0f}"],
+        ["ratio with / without", f"{with_total / without_total:.2f}x"],
+        [f"over HTTP, p50 ({requests} requests, {http_projected} projected)", ""],
+        ["  p50 ms", f"{1000 * percentile(lat, 0.5):.0f}"],
+        ["  p95 ms", f"{1000 * percentile(lat, 0.95):.0f}"],
+    ]
+    print(
+        f"\n## Metrics with projections ({n:,} predictions, {len(to_come):,} labels still to"
+        f" come, load and rebuild {load_s:.0f} s, rebuild {rebuild['seconds']:.0f} s;"
+        f" {os.cpu_count()} cores, load average {os.getloadavg()[0]:.1f})\n"
+    )
+    print(markdown_table(["measure", "figure"], rows))
+
+
 def main() -> None:
     """Parse options, run both scales, print the tables."""
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
@@ -458,7 +584,15 @@ def main() -> None:
         action="store_true",
         help="also print EXPLAIN ANALYZE of the product's queries (main size)",
     )
+    ap.add_argument(
+        "--projections",
+        action="store_true",
+        help="time the query with projected measures instead (default 1,000,000 rows)",
+    )
     args = ap.parse_args()
+    if args.projections:
+        run_projections(args.rows if args.rows != 10_000_000 else 1_000_000)
+        return
     rows = 1_000_000 if args.quick else args.rows
     t0 = time.perf_counter()
     small = run_scale(args.compare_rows or rows // 10, args.recomputes, False)

@@ -30,13 +30,15 @@ def _bins(hours: np.ndarray) -> np.ndarray:
     )
 
 
-def _stored(engine: Engine, model_id: int, seg: tuple[str, str]) -> np.ndarray:
-    hist = HISTOGRAM_BY_NAME["delays_by_class"]
+def _stored(
+    engine: Engine, model_id: int, seg: tuple[str, str], name: str = "delays_by_class"
+) -> np.ndarray:
+    hist = HISTOGRAM_BY_NAME[name]
     total = np.zeros(hist.shape, np.int64)
     with engine.connect() as conn:
         for (blob,) in conn.execute(
             text(
-                "SELECT delays_by_class FROM rollups WHERE model_id = :m AND level = 'h'"
+                f"SELECT {name} FROM rollups WHERE model_id = :m AND level = 'h'"
                 " AND seg_key = :k AND seg_value = :v"
             ),
             {"m": model_id, "k": seg[0], "v": seg[1]},
@@ -66,3 +68,32 @@ def test_delays_by_class_equal_numpy_histograms_of_the_raw_delays(
         got = _stored(engine, model.id, seg)
         assert got.sum() == rows.sum() > 0
         assert np.array_equal(got, want), seg
+
+
+def test_delays_by_band_equal_numpy_histograms_of_the_raw_delays(
+    tenant: Tenant, engine: Engine, frozen: Any
+) -> None:
+    """The score band is the tenth of [0, 1] the score lies in (bins of 0.1, the last one
+    closed at 1), written here with numpy independently of the SQL."""
+    sc = breast_cancer()
+    model = create_model(tenant, engine)
+    ingest(tenant.client, model.name, sc, NOW)
+    r = tenant.client.get(f"/v1/models/{model.name}/delays")
+    assert r.status_code == 200, r.text
+    known = sc.known(NOW)
+    delays = (sc.label_at - sc.ts) / 3600
+    # the score bin k/100 as the service decides it (score >= k/100), then its tenth
+    bins = np.minimum(np.searchsorted(np.arange(101) / 100, sc.score, side="right") - 1, 99)
+    bands = bins // 10
+    n_bins = len(EDGES) - 1
+    want = np.zeros((2, 10, n_bins), np.int64)
+    for c, cls in enumerate((1, 0)):
+        for band in range(10):
+            sel = known & (sc.actual == cls) & (bands == band)
+            want[c, band] = np.bincount(_bins(delays[sel]), minlength=n_bins)
+    got = _stored(engine, model.id, ("", ""), "delays_by_band")
+    assert got.sum() == known.sum() > 0
+    assert len(np.flatnonzero(got.sum(axis=(0, 2)))) >= 3  # several bands are used
+    assert np.array_equal(got, want)
+    # kept for the whole model only (declared so): a segment's rows have none
+    assert not _stored(engine, model.id, ("region", "north"), "delays_by_band").any()

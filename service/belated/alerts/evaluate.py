@@ -266,7 +266,7 @@ def evaluate_rule(
     if fixed_range is not None:
         lo, hi = min(lo, fixed_range.start), max(hi, fixed_range.end)
     ensure_fresh(session, model, epoch_hour(lo), epoch_hour(hi), max_values)
-    curves = curves_of(session, model, now)  # settledness by class, for every segment
+    curves = curves_of(session, model, now)  # settledness by class, all traffic
     segs: list[Segment] = [None]
     if cfg.segment_by:
         admitted = segments.admitted(session=session, model_id=model.id)
@@ -276,7 +276,9 @@ def evaluate_rule(
     for seg in segs:
         key = f"{seg[0]}:{seg[1]}" if seg else ""
         looked = _looked(stored, key)
-        windows = _series(session, model, cfg, seg, now, evaluated, lookback, curves, looked)
+        # a segment with the labels for its own curves uses them (memoised per request)
+        own = curves if seg is None else curves_of(session, model, now, (seg,))
+        windows = _series(session, model, cfg, seg, now, evaluated, lookback, own, looked)
         fixed = _fixed_baseline(session, model, cfg, now, seg, curves)
         decisions[key] = decide(
             cfg,

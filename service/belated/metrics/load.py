@@ -74,7 +74,8 @@ def load_totals(
             Rollup.seg_value == seg[1],
         )
     )
-    skip = frozenset() if delays else frozenset({"delays"})
+    # the band delays serve the arrival curves only, which read their own rows
+    skip = frozenset({"delays_by_band"}) | (frozenset() if delays else frozenset({"delays"}))
     return {row.start: Totals.from_row(row, skip) for row in rows}
 
 
@@ -106,7 +107,8 @@ def load_hour_spans(
             Rollup.seg_value == seg[1],
         )
     )
-    skip = frozenset() if delays else frozenset({"delays"})
+    # the band delays serve the arrival curves only, which read their own rows
+    skip = frozenset({"delays_by_band"}) | (frozenset() if delays else frozenset({"delays"}))
     return {row.start: Totals.from_row(row, skip) for row in rows}
 
 

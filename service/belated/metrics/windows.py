@@ -152,14 +152,20 @@ def settled_window(
     return settled_by_class(totals, end, model, now, curves)
 
 
-def curves_of(session: Session, model: ModelRow, now: datetime) -> Curves | None:
+def curves_of(
+    session: Session,
+    model: ModelRow,
+    now: datetime,
+    filters: tuple[tuple[str, str], ...] = (),
+) -> Curves | None:
     """A binary model's arrival curves (None for a multiclass model). They are fitted on the
     rollups as the last refresh left them, not refreshed for the read: a curve is an estimate
     over months of cohorts, which the labels of the last minute do not move, and refreshing
-    its whole history would make every read pay for every write."""
+    its whole history would make every read pay for every write. One tag filter: the
+    segment's own curves when it has the labels for them (several filters: the model's)."""
     if model.kind != "binary":
         return None
-    return model_curves(session, model, now)
+    return model_curves(session, model, now, filters[0] if len(filters) == 1 else None)
 
 
 def windows_of_range(
@@ -180,7 +186,7 @@ def windows_of_range(
     lookback = opts.rolling - 1 + CALIBRATION_WINDOWS * 2
     lo, hi = epoch_hour(rng.bounds(lookback)[0]), epoch_hour(rng.end)
     ensure_fresh(session, model, lo, hi, max_values)
-    curves = curves_of(session, model, now)
+    curves = curves_of(session, model, now, filters)
     starts, rows = window_rows(session, model, rng, lookback, filters, now)
     ends = [*starts[1:], rng.end]
     base = [_sum(r) for r in rows]
@@ -239,8 +245,15 @@ def _late_labels(
     now: datetime,
     opts: MeasureOptions,
 ) -> dict[str, Any]:
-    """`projected`, `expected_final_coverage` and `settles_by` (null on settled windows)."""
-    empty: dict[str, Any] = {"projected": None, "expected_final_coverage": None, "settles_by": None}
+    """`projected`, `expected_final_coverage`, `settles_by` and `projected_curves` (whose
+    curves served: the segment's or the model's, per band or per class); null on settled
+    windows."""
+    empty: dict[str, Any] = {
+        "projected": None,
+        "expected_final_coverage": None,
+        "settles_by": None,
+        "projected_curves": None,
+    }
     if window["settled"] or curves is None or not window["predictions"]:
         return empty
     answer = projected(cohorts, curves, model, now, beta=opts.beta, confidence=opts.confidence)

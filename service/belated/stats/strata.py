@@ -63,22 +63,26 @@ class Strata:
         """F and its variance (H, S, 2) at every cohort's age plus `extra_hours`."""
         shape = (*self.predictions.shape, 2)
         f, v = np.zeros(shape), np.zeros(shape)
+        done: dict[int, tuple[np.ndarray, np.ndarray]] = {}  # strata share curves: once each
         for s, pair in enumerate(self.curves):
             for c, fit in enumerate(pair):
                 if fit.curve is not None:
-                    f[:, s, c], v[:, s, c] = cohort_arrival(
-                        fit.curve, self.ages_hours + extra_hours
-                    )
+                    if id(fit) not in done:
+                        done[id(fit)] = cohort_arrival(fit.curve, self.ages_hours + extra_hours)
+                    f[:, s, c], v[:, s, c] = done[id(fit)]
         return f, v
 
     def arrived(self, extra_hours: float = 0.0) -> np.ndarray:
         """F alone (H, S, 2) at every cohort's age plus `extra_hours` (no variance)."""
         f = np.zeros((*self.predictions.shape, 2))
         mid = np.maximum(self.ages_hours + extra_hours - 0.5, 0.0)  # as cohort_arrival
+        done: dict[int, np.ndarray] = {}
         for s, pair in enumerate(self.curves):
             for c, fit in enumerate(pair):
                 if fit.curve is not None:
-                    f[:, s, c] = fit.curve.at(mid)
+                    if id(fit) not in done:
+                        done[id(fit)] = fit.curve.at(mid)
+                    f[:, s, c] = done[id(fit)]
         return f
 
     def curve_index(self) -> tuple[np.ndarray, int]:
