@@ -37,6 +37,16 @@ def test_the_client_erases_in_batches_and_sums_the_answers(
         assert c.model(name)["counts"]["predictions"] == 5
     assert count(engine, "predictions", mid) == 5
     assert count(engine, "labels", mid) == 2
+    with Client(live.url, tenant.tokens["ingest"]) as c:
+        assert c.send_labels(name, [label(f"later-{k}", "0") for k in range(3)])["pending"] == 3
+    with Client(live.url, tenant.tokens["read"]) as c:
+        waiting = c.pending(name)
+    assert [p["id"] for p in waiting] == ["later-0", "later-1", "later-2"]
+    assert all(p["age_hours"] >= 0 and p["dropped_after"] > p["received_at"] for p in waiting)
+    with Client(live.url, tenant.tokens["admin"]) as c:
+        assert c.erase(name, ["later-1"])["erased"]["pending_labels"] == 1
+    with Client(live.url, tenant.tokens["read"]) as c:
+        assert [p["id"] for p in c.pending(name)] == ["later-0", "later-2"]
     with Client(live.url, tenant.tokens["read"]) as c, pytest.raises(BelatedError) as info:
         c.erase(name, ids[7:])
     assert info.value.status == 403

@@ -71,6 +71,11 @@ class AdminCalls:
             total["not_found"] += answer["not_found"]
         return total
 
+    def pending(self, model: str) -> list[dict[str, Any]]:
+        """Labels waiting for their prediction, oldest first, with `age_hours` and when the
+        jobs drop them (`dropped_after`, past the model's keep_raw_days)."""
+        return self._all(f"/v1/models/{model}/pending", {"limit": 1000})
+
     def rules(self, model: str, *, retired: bool = False) -> list[dict[str, Any]]:
         """The model's rules (with the retired ones when `retired`)."""
         return self._all(f"/v1/models/{model}/rules", {"retired": str(retired).lower()})
