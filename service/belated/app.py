@@ -15,12 +15,14 @@ from belated.api import (
     openapi,
     problems,
     routes_alerts,
+    routes_erasure,
     routes_health,
     routes_ingest,
     routes_keys,
     routes_markers,
     routes_metrics,
     routes_models,
+    routes_pending,
     routes_prometheus,
 )
 from belated.api.fastpath import SmallWrites
@@ -73,6 +75,8 @@ def create_app(
     for module in (  # the ingest routes first: they take the most requests, matched in order
         routes_ingest,
         routes_models,
+        routes_erasure,
+        routes_pending,
         routes_metrics,
         routes_alerts,
         routes_keys,

@@ -97,6 +97,13 @@ class ScrapeCollector:
             "Labels received by this process.",
             value=counters.get("labels", 0),
         )
+        if health.get("pending_labels_dropped") is not None:
+            yield CounterMetricFamily(
+                "belated_pending_labels_dropped_total",
+                "Pending labels dropped by the jobs after waiting longer than their model's"
+                " keep_raw_days for a prediction.",
+                value=health["pending_labels_dropped"],
+            )
         up = 1 if health.get("store") == "up" else 0
         yield _gauge("belated_store_up", "1 when the store answers.", up)
         leader = 1 if health.get("jobs", {}).get("leader") else 0

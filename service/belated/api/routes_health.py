@@ -27,6 +27,7 @@ def health(request: Request) -> dict[str, Any]:
         "dirty_buckets": None,
         "oldest_dirty_bucket": None,
         "outbox_backlog": None,
+        "pending_labels_dropped": None,
     }
     try:
         with state.engine.connect() as conn:
@@ -41,6 +42,7 @@ def health(request: Request) -> dict[str, Any]:
 
 @router.get("/healthz")
 def healthz(request: Request) -> JSONResponse:
-    """Store reachable, jobs leader, last refresh, refresh lag, oldest dirty bucket, backlog."""
+    """Store reachable, jobs leader, last refresh, refresh lag, oldest dirty bucket, backlog,
+    pending labels dropped past keep_raw_days."""
     answer = health(request)
     return JSONResponse(answer, status_code=200 if answer["store"] == "up" else 503)

@@ -11,7 +11,7 @@ from belated.api.deps import Admin, ModelDep, NowDep, Read, SessionDep, Settings
 from belated.api.schemas import ModelCreate, ModelPage, ModelRead, ModelUpdate
 from belated.errors import Problem
 from belated.metrics.load import ensure_fresh
-from belated.store import model_registry
+from belated.store import model_registry, retention
 from belated.store.tables import ModelRow
 from belated.timeutil import to_utc
 
@@ -32,6 +32,8 @@ def read_model(session: Any, model: ModelRow) -> ModelRead:
         segment_keys=model.segment_keys,
         reference=model.reference,
         time_zone=model.time_zone or "UTC",
+        keep_raw_days=retention.keep_raw_days(model),
+        keep_raw_days_default=model.keep_raw_days is None,
         created_at=to_utc(model.created_at),
         updated_at=to_utc(model.updated_at),
         **model_registry.counts(session=session, model=model),

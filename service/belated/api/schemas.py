@@ -55,6 +55,8 @@ class ModelSettings(BaseModel):
     segment_keys: list[str] | None = Field(None, max_length=8)
     reference: ReferenceRange | None = None
     time_zone: str | None = Field(None, max_length=64)
+    # null on PATCH: back to the default
+    keep_raw_days: float | None = Field(None, gt=0, le=36500, allow_inf_nan=False)
 
     @field_validator("time_zone")
     @classmethod
@@ -129,6 +131,8 @@ class ModelRead(BaseModel):
     segment_keys: list[str] | None
     reference: dict[str, str] | None = None
     time_zone: str = "UTC"
+    keep_raw_days: float = 0.0
+    keep_raw_days_default: bool = True
     created_at: datetime
     updated_at: datetime
     counts: ModelCounts
@@ -192,3 +196,36 @@ class LabelsAnswer(BaseModel):
     pending: int
     corrected: int
     unchanged: int
+
+
+class ErasedCounts(BaseModel):
+    """Rows removed by an erasure, by kind."""
+
+    predictions: int
+    labels: int
+    pending_labels: int
+
+
+class ErasureAnswer(BaseModel):
+    """Answer to DELETE /v1/models/{model}/predictions."""
+
+    erased: ErasedCounts
+    not_found: list[str]
+
+
+class PendingRead(BaseModel):
+    """A label waiting for its prediction."""
+
+    id: str
+    actual: str
+    ts: datetime
+    received_at: datetime
+    age_hours: float
+    dropped_after: datetime
+
+
+class PendingPage(BaseModel):
+    """A page of a model's pending labels, in the order they first arrived."""
+
+    items: list[PendingRead]
+    next_cursor: str | None

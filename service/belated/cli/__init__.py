@@ -8,6 +8,7 @@ alerts.py    alerts list|note
 markers.py   markers add|list|delete
 send.py      send predictions|labels FILE (files.py reads the file, sender.py sends it)
 windows.py   windows: the latest windows as a table, CSV or JSON
+erase.py     erase --model M FILE: predictions erased by id (ids one per line)
 options.py   the options and the exit the data commands share; output.py prints answers
 helptext.py  help text without type artefacts
 """
@@ -20,6 +21,7 @@ import typer
 
 from belated.cli import helptext, service
 from belated.cli.alerts import alerts_app
+from belated.cli.erase import erase
 from belated.cli.keys import keys_app
 from belated.cli.markers import markers_app
 from belated.cli.models import models_app
@@ -54,11 +56,11 @@ def register(app: typer.Typer) -> None:
     for name, group in GROUPS.items():
         if name not in have:
             app.add_typer(group, name=name)
-    if not any(
-        (c.name or getattr(c.callback, "__name__", "")) == "windows"
-        for c in app.registered_commands
-    ):
-        app.command("windows")(windows)
+    for name, command in (("windows", windows), ("erase", erase)):
+        if not any(
+            (c.name or getattr(c.callback, "__name__", "")) == name for c in app.registered_commands
+        ):
+            app.command(name)(command)
 
 
 register(app)

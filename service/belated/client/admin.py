@@ -2,9 +2,12 @@
 
 from __future__ import annotations
 
+from collections.abc import Iterable
 from typing import Any, cast
 
 from belated.client.rows import plain
+
+ERASE_BATCH = 10_000  # ids per request: the service's default BELATED_MAX_BATCH
 
 
 class AdminCalls:
@@ -44,6 +47,34 @@ class AdminCalls:
     def delete_model(self, name: str) -> None:
         """Delete a model with all its data."""
         self.request("DELETE", f"/v1/models/{name}")
+
+    def erase(
+        self, model: str, ids: Iterable[str | int], *, batch_size: int = ERASE_BATCH
+    ) -> dict[str, Any]:
+        """Erase predictions by id, with their labels, label history and pending labels,
+        in requests of `batch_size` ids (at most the service's BELATED_MAX_BATCH); answers
+        the summed counts removed and the ids of which nothing was stored. A request retried
+        after its answer was lost reports its ids as not found (they are gone either way)."""
+        wanted = [str(i) for i in ids]
+        total: dict[str, Any] = {
+            "erased": {"predictions": 0, "labels": 0, "pending_labels": 0},
+            "not_found": [],
+        }
+        for start in range(0, len(wanted), batch_size):
+            answer = self.request(
+                "DELETE",
+                f"/v1/models/{model}/predictions",
+                body={"ids": wanted[start : start + batch_size]},
+            )
+            for key in total["erased"]:
+                total["erased"][key] += int(answer["erased"][key])
+            total["not_found"] += answer["not_found"]
+        return total
+
+    def pending(self, model: str) -> list[dict[str, Any]]:
+        """Labels waiting for their prediction, oldest first, with `age_hours` and when the
+        jobs drop them (`dropped_after`, past the model's keep_raw_days)."""
+        return self._all(f"/v1/models/{model}/pending", {"limit": 1000})
 
     def rules(self, model: str, *, retired: bool = False) -> list[dict[str, Any]]:
         """The model's rules (with the retired ones when `retired`)."""

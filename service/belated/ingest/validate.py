@@ -323,3 +323,22 @@ def validate_labels(body: Any, spec: ModelSpec, *, now: datetime, max_batch: int
     if errors:
         raise Invalid(errors)
     return out
+
+
+def validate_ids(body: Any, *, max_batch: int) -> list[str]:
+    """Check an erasure request `{"ids": [...]}`: ids as a prediction takes them (strings,
+    or integers as their decimal string), at most `max_batch`; a repeat is erased once."""
+    items = _items(body, "ids", max_batch)
+    if not items:
+        raise Invalid([field_error(None, "ids", "at least one id is required")])
+    errors: list[dict[str, Any]] = []
+    out: list[str] = []
+    for i, value in enumerate(items):
+        if _too_many(errors):
+            break
+        pid = _check_id(i, {"id": value}, errors)
+        if pid is not None:
+            out.append(pid)
+    if errors:
+        raise Invalid(errors)
+    return list(dict.fromkeys(out))

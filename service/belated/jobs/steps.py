@@ -1,5 +1,6 @@
-"""The steps of one job run, in order: refresh the rollups, evaluate the alert rules, send
-due webhook deliveries, keep the figures /metrics serves.
+"""The steps of one job run, in order: refresh the rollups, drop pending labels past their
+model's keep_raw_days, evaluate the alert rules, send due webhook deliveries, keep the
+figures /metrics serves.
 
 A step receives what the run provides (`StepContext`) and answers a small summary, which
 the run records; a step that raises is logged and the next one still runs.
@@ -18,7 +19,7 @@ from belated.alerts.tables import Rule
 from belated.clock import now
 from belated.config import Settings
 from belated.metrics import figures
-from belated.store import refresh
+from belated.store import refresh, retention
 from belated.store.db import transaction
 from belated.store.tables import ModelRow
 
@@ -41,6 +42,13 @@ def refresh_step(run: StepContext) -> dict[str, Any]:
     marked = refresh.join_and_mark(run.sessions)
     done = refresh.refresh_all(run.sessions, max_values=run.settings.max_segment_values)
     return {"marked": marked, "buckets": done}
+
+
+def pending_step(run: StepContext) -> dict[str, Any]:
+    """Drop pending labels that have waited longer than their model's keep_raw_days."""
+    with transaction(run.sessions) as session:
+        dropped = retention.drop_old_pending(session=session, now=now())
+    return {"dropped": sum(dropped.values())}
 
 
 def evaluate_step(run: StepContext) -> dict[str, Any]:
@@ -87,6 +95,7 @@ def cache_step(run: StepContext) -> dict[str, Any]:
 # one declaration of the run: (name, step) in the order they run
 STEPS: tuple[tuple[str, Step], ...] = (
     ("refresh", refresh_step),
+    ("pending", pending_step),
     ("evaluate", evaluate_step),
     ("deliver", deliver_step),
     ("cache", cache_step),

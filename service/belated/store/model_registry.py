@@ -72,6 +72,9 @@ def create(
             "set it with PATCH once a settled period has labels",
         )
     values = {**DEFAULTS, **{k: v for k, v in fields.items() if v is not None}}
+    _check_keep(
+        values.get("keep_raw_days"), values["label_delay_days"], values["negative_after_days"]
+    )
     stamp = now or clock.now()
     model = ModelRow(project_id=project_id, created_at=stamp, updated_at=stamp, **values)
     session.add(model)
@@ -96,6 +99,11 @@ def update(
             **fields,
             "reference": _checked_reference(session, model, fields["reference"], stamp),
         }
+    _check_keep(
+        fields.get("keep_raw_days", model.keep_raw_days),
+        fields.get("label_delay_days", model.label_delay_days),
+        fields.get("negative_after_days", model.negative_after_days),
+    )
     reshape = any(
         key in _ROLLUP_SETTINGS and getattr(model, key) != value for key, value in fields.items()
     )
@@ -110,6 +118,14 @@ def update(
     if reshape:
         refresh.mark_model(session, model.id)
     return model
+
+
+def _check_keep(keep: float | None, label_delay_days: float, negative_after: float | None) -> None:
+    from belated.store import retention
+
+    problem = retention.too_short(keep, label_delay_days, negative_after)
+    if problem is not None:
+        raise invalid_field("keep_raw_days", problem)
 
 
 _ROLLUP_SETTINGS = ("negative_after_days", "segment_keys", "positive", "classes")

@@ -100,6 +100,25 @@ def refresh_batch(
     return claimed
 
 
+def refresh_model_hours(
+    session: Session, *, model: ModelRow, hours: list[int], max_values: int
+) -> list[Mark]:
+    """Hold these hours of a model exclusively until the end of the caller's transaction
+    and bring them up to date (every mark of theirs taken): an erasure's first step."""
+    taken = _take(session, [(model.id, h) for h in sorted(set(hours))])  # locks them all
+    if not taken:
+        return []
+    rollups.refresh_hours(
+        session=session,
+        model=model,
+        recompute=[m.hour for m in taken if m.recompute],
+        now=now(),
+        max_values=max_values,
+        fold=[m.hour for m in taken if not m.recompute],
+    )
+    return taken
+
+
 def refresh_all(
     factory: sessionmaker[Session],
     *,

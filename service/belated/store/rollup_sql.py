@@ -12,7 +12,9 @@ that without a label (an implied negative, counted apart).
 
 A scope aggregates either raw prediction rows or the logged label changes of its hours
 (`Scope.changes()`): each change contributes its old state with weight -1 and its new state
-with weight +1, so the result is the difference to add to the stored rollups.
+with weight +1, so the result is the difference to add to the stored rollups. An erasure
+(`Scope.erasing(row_ids)`) takes the same path with only the -1 side: each erased row in
+the state its hour's rollups hold it.
 """
 
 from __future__ import annotations
@@ -45,10 +47,16 @@ class Scope:
     cutoff: datetime | None
     filters: tuple[tuple[str, str], ...] = ()
     of_changes: bool = False
+    erased: tuple[int, ...] = ()
 
     def changes(self) -> Scope:
         """The same scope over the logged label changes of its hours."""
         return replace(self, of_changes=True)
+
+    def erasing(self, row_ids: Sequence[int]) -> Scope:
+        """The same scope over these prediction rows, each weighted -1: their contribution
+        to the stored rollups, to be taken out (they must have no unfolded changes)."""
+        return replace(self, of_changes=True, erased=tuple(sorted(set(row_ids))))
 
     def filtered(self, filters: tuple[tuple[str, str], ...]) -> Scope:
         """The same scope over the rows that carry every tag of `filters`."""
@@ -85,17 +93,30 @@ def _changed_rows(scope: Scope) -> str:
         "SELECT row_id, 1 AS w, new_actual AS actual, new_delay_h AS delay_h"
         f" FROM label_changes WHERE {hours}"
     )
-    # the cutoff by a lookup per row: with the change log not yet analysed, a join let
-    # PostgreSQL scan every hourly rollup row of the model for each change
-    cutoff = (
-        "(SELECT r.negative_cutoff FROM rollups r WHERE r.model_id = :m AND r.level = 'h'"
-        " AND r.start = p.hour AND r.seg_key = '' AND r.seg_value = '')"
-    )
     return (
         "(SELECT p.model_id, p.hour, p.ts, p.score, p.predicted, p.tags, c.actual,"
-        f" c.delay_h, c.w, {cutoff} AS negative_cutoff"
+        f" c.delay_h, c.w, {_CUTOFF} AS negative_cutoff"
         f" FROM ({old} UNION ALL {new}) AS c"
         " JOIN predictions p ON p.row_id = c.row_id) AS predictions"
+    )
+
+
+# The cutoff an hour was aggregated with, by a lookup per row: with the change log not yet
+# analysed, a join let PostgreSQL scan every hourly rollup row of the model for each change.
+_CUTOFF = (
+    "(SELECT r.negative_cutoff FROM rollups r WHERE r.model_id = :m AND r.level = 'h'"
+    " AND r.start = p.hour AND r.seg_key = '' AND r.seg_value = '')"
+)
+
+
+def _erased_rows(scope: Scope) -> str:
+    """Each erased prediction once, weighted -1, in its stored state (with the cutoff its
+    hour was aggregated with, as for a change's old state)."""
+    ids = ",".join(str(int(r)) for r in scope.erased) or "NULL"
+    return (
+        "(SELECT p.model_id, p.hour, p.ts, p.score, p.predicted, p.tags, p.actual,"
+        f" p.delay_h, -1 AS w, {_CUTOFF} AS negative_cutoff"
+        f" FROM predictions p WHERE p.model_id = :m AND p.row_id IN ({ids})) AS predictions"
     )
 
 
@@ -175,10 +196,14 @@ class _Query:
         return f":{param}"
 
     def source(self) -> str:
+        if self.scope.erased:
+            return _erased_rows(self.scope)
         return _changed_rows(self.scope) if self.scope.of_changes else "predictions"
 
     def where(self, part: Part) -> str:
-        conds = [_hours_sql(self.scope)]
+        # erased rows are named by row id already: a filter on their hours as well let
+        # SQLite scan every row of those hours through the hour index
+        conds = ["model_id = :m"] if self.scope.erased else [_hours_sql(self.scope)]
         for i, (key, value) in enumerate(self.scope.filters):  # several tags: raw rows
             self.params[f"filter_value_{i}"] = value
             conds.append(f"{self.tag(key, f'filter_key_{i}')} = :filter_value_{i}")

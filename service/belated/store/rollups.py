@@ -151,6 +151,39 @@ def refresh_hours(
     return len(set(raw_hours) | set(fold_hours))
 
 
+def take_out(
+    *,
+    session: Session,
+    model: ModelRow,
+    difference: dict[Key, Totals],
+    now: datetime,
+    max_values: int,
+) -> int:
+    """Add `difference` (erased rows weighted -1, computed before they were deleted) to the
+    hourly and daily rows; an hour that cannot take it is aggregated again from the raw
+    rows that remain. Returns the number of hours changed.
+
+    The caller holds the hours (store/dirty.py) and has refreshed them first, so that the
+    stored rows hold exactly the state the difference was computed from.
+    """
+    unfoldable, day_differences = _apply(session, model, difference)
+    fresh: dict[Key, Totals] = {}
+    raw_hours = sorted(unfoldable)
+    if raw_hours:
+        keys = segments.admit(session=session, model=model, hours=raw_hours, max_values=max_values)
+        scope = scope_of(model, raw_hours, now)
+        fresh = compute(session, scope, keys)
+        _replace(session, model.id, "h", raw_hours, fresh, dict.fromkeys(raw_hours, scope.cutoff))
+    days_to_sum = {h - h % 24 for h in raw_hours}
+    days_to_sum |= _add_to_days(
+        session, model.id, {k: v for k, v in day_differences.items() if k[0] not in days_to_sum}
+    )
+    refresh_days(
+        session=session, model_id=model.id, days=days_to_sum, known=fresh, known_hours=raw_hours
+    )
+    return len({k[0] for k in difference})
+
+
 def _fold_changes(
     session: Session, model: ModelRow, hours: list[int], now: datetime
 ) -> tuple[set[int], dict[Key, Totals]]:
@@ -161,6 +194,14 @@ def _fold_changes(
     """
     keys = segments.current(session=session, model=model)
     difference = compute(session, scope_of(model, hours, now).changes(), keys)
+    return _apply(session, model, difference)
+
+
+def _apply(
+    session: Session, model: ModelRow, difference: dict[Key, Totals]
+) -> tuple[set[int], dict[Key, Totals]]:
+    """Add a difference to the stored hourly rows; the hours that need a recompute
+    instead, and the per-day sums of the differences applied."""
     if not difference:
         return set(), {}
     stored: dict[Key, Totals] = {}
@@ -184,7 +225,7 @@ def _fold_changes(
                 unfoldable.add(key[0])  # cannot happen if the log is whole; recompute to be sure
     if unfoldable:
         log.warning(
-            "model %s: %d hours aggregated again instead of folding label changes",
+            "model %s: %d hours aggregated again instead of taking a difference",
             model.id,
             len(unfoldable),
         )
@@ -332,6 +373,7 @@ def _insert(
             **t.to_row(),
         }
         for (start, k, v), t in totals.items()
+        if not t.empty()  # every row of it taken out (an erasure): a recount has no row
     ]
     if not rows:
         return

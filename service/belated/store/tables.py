@@ -18,6 +18,7 @@ from sqlalchemy import (
     String,
     Text,
     UniqueConstraint,
+    text,
     true,
 )
 from sqlalchemy.dialects.postgresql import JSONB
@@ -90,6 +91,12 @@ class ModelRow(Base):
     # that leaves it out takes the server default, which is not read back at once (no
     # eager defaults), so rows written against older schemas, without it, still insert
     time_zone: Mapped[str] = mapped_column(String(64), server_default="UTC")
+    # days raw rows and pending labels are kept; None: the default (store/retention.py).
+    # A server default, as for time_zone: an insert that leaves it out is then written
+    # without it, so that rows written against older schemas still insert
+    keep_raw_days: Mapped[float | None] = mapped_column(
+        Float, nullable=True, server_default=text("NULL")
+    )
     created_at: Mapped[datetime] = mapped_column(UtcDateTime)
     updated_at: Mapped[datetime] = mapped_column(UtcDateTime)
 

@@ -108,6 +108,12 @@ class Totals:
             return False
         return all(v >= 0 for v in (self.cells or {}).values())
 
+    def empty(self) -> bool:
+        """No prediction counted: every count and histogram is zero (sums are remainders)."""
+        if self.scalar_counts.any() or any(c.any() for c in self.hist_counts.values()):
+            return False
+        return not any((self.cells or {}).values())
+
     def drop_remainders(self) -> None:
         """After differences were added: sums of empty groups are exactly 0, sums of
         non-negative terms are not below 0, empty histograms and maps are absent."""
