@@ -32,6 +32,7 @@ def read_model(session: Any, model: ModelRow) -> ModelRead:
         segment_keys=model.segment_keys,
         reference=model.reference,
         time_zone=model.time_zone or "UTC",
+        source=model.source or "http",
         created_at=to_utc(model.created_at),
         updated_at=to_utc(model.updated_at),
         **model_registry.counts(session=session, model=model),

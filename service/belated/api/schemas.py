@@ -80,6 +80,8 @@ class ModelCreate(ModelSettings):
 
     name: str = Field(pattern=NAME_PATTERN)
     kind: Literal["binary", "multiclass"] = "binary"
+    # "lake": rollup rows are uploaded (PUT .../rollups) instead of predictions and labels
+    source: Literal["http", "lake"] = "http"
     classes: list[str | int] | None = None
     positive: str | int | None = None
 
@@ -129,6 +131,7 @@ class ModelRead(BaseModel):
     segment_keys: list[str] | None
     reference: dict[str, str] | None = None
     time_zone: str = "UTC"
+    source: str = "http"
     created_at: datetime
     updated_at: datetime
     counts: ModelCounts

@@ -90,6 +90,8 @@ class ModelRow(Base):
     # that leaves it out takes the server default, which is not read back at once (no
     # eager defaults), so rows written against older schemas, without it, still insert
     time_zone: Mapped[str] = mapped_column(String(64), server_default="UTC")
+    # "http": raw rows posted to the API; "lake": rollup rows uploaded (belated.lake)
+    source: Mapped[str] = mapped_column(String(8), server_default="http")
     created_at: Mapped[datetime] = mapped_column(UtcDateTime)
     updated_at: Mapped[datetime] = mapped_column(UtcDateTime)
 
