@@ -12,48 +12,24 @@ from __future__ import annotations
 from pathlib import Path
 from typing import Any
 
-from sqlalchemy import Engine, select
+from sqlalchemy import Engine
 
-from belated.lake import LakeModel, build, build_totals
+from belated.lake import build, build_totals
 from belated.lake.schema import ARROW_STREAM, PARQUET, to_bytes
-from belated.store import refresh
-from belated.store.rollup_tables import Rollup
-from belated.store.totals import Totals
 from tests.conftest import Tenant
 from tests.support import create_model
 from tests.support.datasets import START, assert_close
-from tests.support.lake import CLASSES, NOW, assert_same_rollups, shop_logs
+from tests.support.lake import (
+    LAKE_MODEL,
+    NOW,
+    SETTINGS,
+    assert_same_rollups,
+    http_twin,
+    shop_logs,
+    stored,
+)
 
-SETTINGS: dict[str, Any] = {
-    "classes": CLASSES,
-    "positive": "returned",
-    "threshold": 0.4,
-    "negative_after_days": 10,
-}
 RANGE = {"start": START.isoformat(), "end": (NOW.replace(hour=0, minute=0)).isoformat()}
-
-
-def stored(engine: Engine, model_id: int, level: str = "h") -> dict[tuple[int, str, str], Totals]:
-    """The stored rollup rows of a model."""
-    with engine.connect() as conn:
-        rows = conn.execute(
-            select(Rollup.__table__).where(Rollup.model_id == model_id, Rollup.level == level)
-        ).all()
-    return {(r.start, r.seg_key, r.seg_value): Totals.from_row(r) for r in rows}
-
-
-def http_twin(tenant: Tenant, engine: Engine, sessions: Any, logs: Any) -> Any:
-    model = create_model(tenant, engine, **SETTINGS)
-    logs.send(tenant.client, model.name)
-    refresh.join_and_mark(sessions)
-    refresh.refresh_all(sessions, max_values=100)
-    return model
-
-
-def lake_model(tenant: Tenant) -> LakeModel:
-    r = tenant.client.get("/v1/models")
-    assert r.status_code == 200
-    return LakeModel.of({"kind": "binary", **SETTINGS})
 
 
 def test_duckdb_rows_equal_the_http_path(
@@ -63,7 +39,7 @@ def test_duckdb_rows_equal_the_http_path(
     twin = http_twin(tenant, engine, sessions, logs)
     want = stored(engine, twin.id)
     preds, labels = logs.write(tmp_path)
-    got = build_totals(preds, labels, lake_model(tenant), now=NOW, engine="duckdb")
+    got = build_totals(preds, labels, LAKE_MODEL, now=NOW, engine="duckdb")
     assert_same_rollups(got, want)
     # the data exercise what they claim to: implied negatives, segments, (other) not needed
     whole = [t for (h, k, v), t in want.items() if k == ""]
@@ -101,7 +77,7 @@ def test_a_lake_fed_model_answers_like_its_http_twin(
     twin = http_twin(tenant, engine, sessions, logs)
     lake = create_model(tenant, engine, source="lake", **SETTINGS)
     preds, labels = logs.write(tmp_path)
-    table = build(preds, labels, lake_model(tenant), now=NOW, engine="duckdb")
+    table = build(preds, labels, LAKE_MODEL, now=NOW, engine="duckdb")
     # two uploads, one per format, of halves of the hours
     hours = sorted(set(table.column("hour").to_pylist()))
     half = hours[len(hours) // 2]

@@ -24,15 +24,28 @@ from typing import Any
 import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
+from sqlalchemy import Engine, select
 
+from belated.lake import LakeModel
+from belated.store import refresh
+from belated.store.rollup_tables import Rollup
 from belated.store.totals import Totals
 from tests.support.builders import stamp
 from tests.support.datasets import START, _breast_cancer_scores
+from tests.support.models import Model, create_model
 from tests.support.sending import send
 
 NOW = START + timedelta(days=24, hours=7, minutes=30)
 CLASSES = ["kept", "returned"]
 LATE_SHARE = 0.05  # predictions posted after their labels (pending over HTTP)
+# the binary model of the equality tests: implied negatives after 10 days
+SETTINGS: dict[str, Any] = {
+    "classes": CLASSES,
+    "positive": "returned",
+    "threshold": 0.4,
+    "negative_after_days": 10,
+}
+LAKE_MODEL = LakeModel.of({"kind": "binary", **SETTINGS})
 
 
 @dataclass(frozen=True)
@@ -184,3 +197,22 @@ def assert_same_rollups(
             if name in g.hist_sums or name in w.hist_sums:
                 np.testing.assert_allclose(g.sums(name), w.sums(name), rtol=1e-9, atol=1e-12)
         assert (g.cells or {}) == (w.cells or {}), key
+
+
+def stored(engine: Engine, model_id: int, level: str = "h") -> dict[tuple[int, str, str], Totals]:
+    """The stored rollup rows of a model, hourly ('h') or daily ('d')."""
+    with engine.connect() as conn:
+        rows = conn.execute(
+            select(Rollup.__table__).where(Rollup.model_id == model_id, Rollup.level == level)
+        ).all()
+    return {(r.start, r.seg_key, r.seg_value): Totals.from_row(r) for r in rows}
+
+
+def http_twin(tenant: Any, engine: Engine, sessions: Any, logs: ShopLogs) -> Model:
+    """An HTTP-fed model of SETTINGS that received the logs over HTTP, refreshed (at the
+    frozen clock)."""
+    model = create_model(tenant, engine, **SETTINGS)
+    logs.send(tenant.client, model.name)
+    refresh.join_and_mark(sessions)
+    refresh.refresh_all(sessions, max_values=100)
+    return model

@@ -23,7 +23,7 @@ from __future__ import annotations
 
 import re
 from collections import defaultdict
-from collections.abc import Iterable, Sequence
+from collections.abc import Iterable
 from dataclasses import dataclass
 from datetime import datetime
 from typing import Any, Protocol
@@ -170,24 +170,44 @@ def _part_sql(
     part: Part,
     model: LakeModel,
     cutoff_us: int | None,
-    key: int | None,
-    values: Sequence[str],
+    admitted: list[list[str]],
 ) -> str:
-    if key is None:
-        segment, has_tag = "''", ""
-    else:
-        tag = engine.ident(_tag(key))
-        admitted = ", ".join(engine.literal(v) for v in values) or "NULL"
-        segment = f"(CASE WHEN {tag} IN ({admitted}) THEN {tag} ELSE {engine.literal(OTHER)} END)"
-        has_tag = f" AND {tag} IS NOT NULL"
-    where = part.where or "TRUE"
-    group = ", ".join(str(i + 1) for i in range(2 + len(part.group)))
-    lead = ", ".join(["hour", segment, *part.group])
+    """One scan for a part: the whole model and every tag key, by GROUPING SETS (the tag
+    keys left out for a part kept for the whole model only)."""
+    n = 0 if part.whole_model_only else len(admitted)
+    segments = []
+    for i in range(n):
+        tag = engine.ident(_tag(i))
+        listed = ", ".join(engine.literal(v) for v in admitted[i]) or "NULL"
+        segments.append(
+            f"(CASE WHEN {tag} IN ({listed}) THEN {tag}"
+            f" WHEN {tag} IS NOT NULL THEN {engine.literal(OTHER)} END) AS s{i}"
+        )
+    seg_cols = [f"s{i}" for i in range(n)]
+    group_cols = [f"g{i}" for i in range(len(part.group))]
+    inner = ", ".join(["*", *segments, *(f"{g} AS g{i}" for i, g in enumerate(part.group))])
+    sets = [["hour", *group_cols]] + [["hour", c, *group_cols] for c in seg_cols]
+    flags = [f"GROUPING({c}) AS m{i}" for i, c in enumerate(seg_cols)]
     sql = (
-        f"SELECT {lead}, {', '.join(part.values)} FROM joined"
-        f" WHERE {where}{has_tag} GROUP BY {group}"
+        f"SELECT {', '.join(['hour', *flags, *seg_cols, *group_cols, *part.values])}"
+        f" FROM (SELECT {inner} FROM joined WHERE {part.where or 'TRUE'}) AS j"
+        f" GROUP BY GROUPING SETS ({', '.join('(' + ', '.join(g) + ')' for g in sets)})"
     )
     return engine.portable(_bind(engine, sql, model, cutoff_us))
+
+
+def _segment_rows(rows: list[tuple[Any, ...]], tags: list[str], n: int) -> list[tuple[Any, ...]]:
+    """Grouping-set rows → (hour, segment key, value, *rest); rows of a key whose tag the
+    prediction lacks belong to no segment."""
+    out = []
+    for row in rows:
+        flags, values, rest = row[1 : 1 + n], row[1 + n : 1 + 2 * n], row[1 + 2 * n :]
+        grouped = [i for i in range(n) if not flags[i]]
+        if not grouped:
+            out.append((row[0], "", "", *rest))
+        elif values[grouped[0]] is not None:
+            out.append((row[0], tags[grouped[0]], values[grouped[0]], *rest))
+    return out
 
 
 def compute(
@@ -211,14 +231,11 @@ def compute(
     cutoff_us = None if cutoff is None else _epoch_us(cutoff)
     scope = Scope(0, model.binary, model.pos, model.neg, [], cutoff)
     totals: dict[Key, Totals] = defaultdict(Totals)
+    values = [admitted[k] for k in tags]
     for part in parts(Dialect(postgres=True), scope):
-        rows: list[tuple[Any, ...]] = []
-        for key in [None] if part.whole_model_only else [None, *range(len(tags))]:
-            values = admitted[tags[key]] if key is not None else []
-            name = "" if key is None else tags[key]
-            sql = _part_sql(engine, part, model, cutoff_us, key, values)
-            rows += [(r[0], name, *r[1:]) for r in engine.rows(sql)]
-        gather(totals, part, rows)
+        n = 0 if part.whole_model_only else len(tags)
+        sql = _part_sql(engine, part, model, cutoff_us, values)
+        gather(totals, part, _segment_rows(engine.rows(sql), tags, n))
     return dict(totals)
 
 

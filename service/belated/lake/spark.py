@@ -25,7 +25,8 @@ class SparkEngine:
                 .appName("belated-lake")
                 .config("spark.sql.session.timeZone", "UTC")
                 .config("spark.ui.enabled", "false")
-                .config("spark.sql.shuffle.partitions", "8")
+                .config("spark.sql.shuffle.partitions", "4")
+                .config("spark.ui.showConsoleProgress", "false")
                 .getOrCreate()
             )
         self.spark = session
