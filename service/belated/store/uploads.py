@@ -258,9 +258,10 @@ def _check_row(
     if cells is not None:
         if binary:
             raise _Bad(i, CELLS, "a binary model keeps its confusion in tp, fp, fn, tn: NULL")
-        _check_cells(i, cells, classes, v["n_labelled"])
-    elif not binary and v["n_labelled"]:
-        raise _Bad(i, CELLS, f"no confusion cells for {v['n_labelled']} labelled predictions")
+        # the cells count explicit labels (as the store's refresh does), not implied negatives
+        _check_cells(i, cells, classes, explicit)
+    elif not binary and explicit:
+        raise _Bad(i, CELLS, f"no confusion cells for {explicit} explicitly labelled predictions")
     assert hour_ns is not None
     return hour_ns // _HOUR_NS
 
@@ -281,7 +282,7 @@ def _check_cells(i: int, cells: str, classes: set[str], labelled: int) -> None:
     except (orjson.JSONDecodeError, AssertionError, ValueError, TypeError):
         raise _Bad(i, CELLS, 'not a JSON map {"[actual, predicted]": count}') from None
     if total != labelled:
-        raise _Bad(i, CELLS, f"cells add up to {total}, not n_labelled {labelled}")
+        raise _Bad(i, CELLS, f"cells add up to {total}, not the {labelled} explicit labels")
 
 
 def store(*, session: Session, model: ModelRow, table: pa.Table, max_values: int) -> dict[str, int]:
