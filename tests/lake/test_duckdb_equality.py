@@ -16,6 +16,7 @@ from sqlalchemy import Engine
 
 from belated.lake import build, build_totals
 from belated.lake.schema import ARROW_STREAM, PARQUET, to_bytes
+from belated.store import refresh
 from tests.conftest import Tenant
 from tests.support import create_model
 from tests.support.datasets import START, assert_close
@@ -92,6 +93,11 @@ def test_a_lake_fed_model_answers_like_its_http_twin(
         assert r.status_code == 200, r.text
     assert_same_rollups(stored(engine, lake.id), stored(engine, twin.id))
     assert_same_rollups(stored(engine, lake.id, "d"), stored(engine, twin.id, "d"))
+    # a rebuild recomputes from raw rows: a lake-fed model has none, and keeps its uploads
+    assert refresh.rebuild(sessions, max_values=100, model_id=lake.id) == 0
+    assert_same_rollups(stored(engine, lake.id), stored(engine, twin.id))
+    page = tenant.client.get(f"/models/{lake.name}")
+    assert page.status_code == 200 and lake.name in page.text
     got, want = _answers(tenant.client, lake.name), _answers(tenant.client, twin.name)
     assert got.keys() == want.keys()
     for key in want:

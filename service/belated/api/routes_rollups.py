@@ -12,23 +12,14 @@ from belated.store import uploads
 router = APIRouter(prefix="/v1/models/{model}", tags=["ingest"])
 
 
-@router.put(
-    "/rollups",
-    openapi_extra={
-        "requestBody": {
-            "required": True,
-            "content": {
-                "application/vnd.apache.arrow.stream": {"schema": {"type": "string"}},
-                "application/vnd.apache.parquet": {"schema": {"type": "string"}},
-            },
-        }
-    },
-)
+@router.put("/rollups")
 async def put_rollups(
     _caller: Ingest, model: ModelDep, session: SessionDep, settings: SettingsDep, request: Request
 ) -> dict[str, int]:
-    """Replace the rollup rows of the hours sent (a lake-fed model only): an Arrow IPC stream
-    or a Parquet file of rows in the format of `belated.lake.schema`, validated whole."""
+    """Replace the rollup rows of the hours sent (a lake-fed model only): the body is an
+    Arrow IPC stream (`application/vnd.apache.arrow.stream`) or a Parquet file
+    (`application/vnd.apache.parquet`) of rows in the format of `belated.lake.schema`,
+    validated whole; a bad row is a 422 naming it, and nothing is stored."""
     if model.source != "lake":
         raise Problem(
             409,
