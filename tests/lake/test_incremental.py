@@ -39,7 +39,13 @@ def stored(engine: Engine, model_id: int, level: str) -> dict[tuple[int, str, st
 
 
 def lake_run(
-    live: LiveServer, tenant: Tenant, model: str, preds: str, labels: str, *extra: str
+    live: LiveServer,
+    tenant: Tenant,
+    model: str,
+    preds: str,
+    labels: str,
+    *extra: str,
+    now: datetime = NOW,
 ) -> str:
     result = CliRunner().invoke(
         app,
@@ -55,7 +61,7 @@ def lake_run(
             "--engine",
             "duckdb",
             "--now",
-            NOW.isoformat(),
+            now.isoformat(),
             *extra,
         ],
         env={"BELATED_URL": live.url, "BELATED_TOKEN": tenant.tokens["admin,ingest,read"]},
@@ -100,13 +106,24 @@ def test_touched_hours_and_since_give_what_a_full_run_gives(
     touched = create_model(tenant, engine, source="lake", **SETTINGS)
     since = create_model(tenant, engine, source="lake", **SETTINGS)
     full = create_model(tenant, engine, source="lake", **SETTINGS)
+    # the first runs a day before: since then late labels came, and the hours of a day
+    # crossed negative_after_days (their unlabelled orders became implied negatives)
+    day_before = NOW - timedelta(days=1)
     for model in (touched, since):
-        lake_run(live, tenant, model.name, preds, first_labels)
+        lake_run(live, tenant, model.name, preds, first_labels, now=day_before)
     before = stored(engine, touched.id, "h")
-    said = lake_run(live, tenant, touched.name, preds, all_labels, "--touched-by", str(new))
-    assert f"of {len(chosen)} hours uploaded" in said, said
-    first_day = min(chosen) - min(chosen) % 24
-    since_day = datetime.fromtimestamp(first_day * 3600, UTC).strftime("%Y-%m-%d")
+    said = lake_run(
+        live, tenant, touched.name, preds, all_labels, "--touched-by", str(new), "--every", "24"
+    )
+    assert "hours uploaded" in said, said
+    crossed = set(
+        range(
+            epoch_hour(NOW - timedelta(days=SETTINGS["negative_after_days"] + 1)),
+            epoch_hour(NOW - timedelta(days=SETTINGS["negative_after_days"])) + 1,
+        )
+    )
+    first = min(min(chosen), min(crossed))
+    since_day = datetime.fromtimestamp((first - first % 24) * 3600, UTC).strftime("%Y-%m-%d")
     lake_run(live, tenant, since.name, preds, all_labels, "--since", since_day)
     lake_run(live, tenant, full.name, preds, all_labels)
     for level in ("h", "d"):
@@ -115,4 +132,5 @@ def test_touched_hours_and_since_give_what_a_full_run_gives(
         assert_same_rollups(stored(engine, since.id, level), want)
     after = stored(engine, touched.id, "h")
     changed = {k[0] for k in after if k not in before or after[k].to_row() != before[k].to_row()}
-    assert changed and changed <= chosen  # the new labels changed those hours, and only those
+    # the new labels and the moved cutoff changed those hours, and only those
+    assert changed & chosen and changed & crossed and changed <= chosen | crossed

@@ -38,6 +38,13 @@ NOW = typer.Option(
     "--now",
     help="The time implied negatives are judged at, RFC 3339 (default: now; for backfills).",
 )
+EVERY = typer.Option(
+    24.0,
+    "--every",
+    min=0.0,
+    help="Hours between incremental runs: --touched-by also recomputes the hours whose"
+    " predictions crossed negative_after_days in that time.",
+)
 MAX_VALUES = typer.Option(
     100, "--max-values", min=1, help="Values per tag key (the service's setting)."
 )
@@ -54,6 +61,7 @@ def run_command(
     out: Path | None = OUT,
     max_values: int = MAX_VALUES,
     now: str | None = NOW,
+    every: float = EVERY,
     url: str = URL,
     token: str = TOKEN,
 ) -> None:
@@ -91,6 +99,7 @@ def run_command(
                 touched_by=touched_by or None,
                 out=out,
                 max_values=max_values,
+                every_hours=every,
             )
         )
     where = f"written to {done['written']}" if "written" in done else "uploaded"

@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 from collections.abc import Iterator
-from datetime import datetime
+from datetime import datetime, timedelta
 from pathlib import Path
 from typing import Any
 
@@ -34,6 +34,16 @@ def chunks(table: pa.Table, rows: int = ROWS_PER_UPLOAD) -> Iterator[pa.Table]:
         start = end
 
 
+def crossed_hours(model: LakeModel, now: datetime, every_hours: float) -> set[int]:
+    """The hours whose unlabelled predictions became implied negatives since a run
+    `every_hours` ago (the cutoff moved past them): an incremental run computes them too."""
+    cutoff = model.cutoff(now)
+    if cutoff is None:
+        return set()
+    last = int((cutoff - timedelta(hours=every_hours)).timestamp()) // 3600
+    return set(range(last, int(cutoff.timestamp()) // 3600 + 1))
+
+
 def run(
     *,
     client: Any,
@@ -46,13 +56,18 @@ def run(
     touched_by: Any = None,
     out: Path | None = None,
     max_values: int = 100,
+    every_hours: float = 24.0,
 ) -> dict[str, Any]:
     """Compute the model's rollup rows (all hours, from `since_hour`, or the hours the
-    labels in `touched_by` are for) and upload them, or write them under `out`."""
+    labels in `touched_by` are for, with the hours whose predictions crossed
+    `negative_after_days` since a run `every_hours` ago) and upload them, or write them
+    under `out`."""
     model = LakeModel.of(client.model(model_name), max_values=max_values)
     hours = None
     if touched_by is not None:
-        hours = touched_hours(predictions, touched_by, engine=engine)
+        hours = touched_hours(predictions, touched_by, engine=engine) | crossed_hours(
+            model, now, every_hours
+        )
     table = build(
         predictions, labels, model, now=now, engine=engine, since_hour=since_hour, hours=hours
     )
