@@ -126,6 +126,9 @@ def test_touched_hours_and_since_give_what_a_full_run_gives(
     since_day = datetime.fromtimestamp((first - first % 24) * 3600, UTC).strftime("%Y-%m-%d")
     lake_run(live, tenant, since.name, preds, all_labels, "--since", since_day)
     lake_run(live, tenant, full.name, preds, all_labels)
+    said = lake_run(live, tenant, full.name, preds, all_labels, "--out", str(tmp_path / "out"))
+    written = pq.read_table(tmp_path / "out" / f"{full.name}-rollups.parquet")
+    assert written.num_rows == len(stored(engine, full.id, "h")), said
     for level in ("h", "d"):
         want = stored(engine, full.id, level)
         assert_same_rollups(stored(engine, touched.id, level), want)
