@@ -1,6 +1,6 @@
 #!/usr/bin/env bash
-# Make sure what the test suite talks to is there: PostgreSQL on 127.0.0.1:5432 and Debian's
-# chromium for the dashboard's browser tests. Safe to run again; does nothing when all is up.
+# Make sure what the test suite talks to is there: PostgreSQL on 127.0.0.1:5432, Debian's
+# chromium for the dashboard's browser tests and Java 17 for Spark. Safe to run again.
 set -euo pipefail
 
 if ! pg_isready -h 127.0.0.1 -p 5432 -q 2>/dev/null; then
@@ -16,6 +16,16 @@ if ! command -v chromium >/dev/null 2>&1 || ! command -v chromedriver >/dev/null
     apt-get update -qq && DEBIAN_FRONTEND=noninteractive apt-get install -y -qq chromium chromium-driver
   else
     echo "chromium and chromium-driver are missing: sudo apt-get install chromium chromium-driver" >&2
+    exit 1
+  fi
+fi
+
+# Java 17 for the lake job's Spark tests (pyspark in local mode)
+if ! command -v java >/dev/null 2>&1; then
+  if [ "$(id -u)" = 0 ]; then
+    apt-get update -qq && DEBIAN_FRONTEND=noninteractive apt-get install -y -qq openjdk-17-jre-headless
+  else
+    echo "Java is missing: sudo apt-get install openjdk-17-jre-headless" >&2
     exit 1
   fi
 fi

@@ -4,7 +4,7 @@ The default is the larger of label_delay_days and negative_after_days, plus 30 d
 jobs drop pending labels older than that.
 
 Revision ID: 0016_keep_raw_days
-Revises: 0014_decided_again
+Revises: 0015_delays_by_band
 Create Date: 2026-12-03 01:20:00
 """
 
@@ -14,7 +14,7 @@ import sqlalchemy as sa
 from alembic import op
 
 revision: str = "0016_keep_raw_days"
-down_revision: str | None = "0014_decided_again"
+down_revision: str | None = "0015_delays_by_band"
 branch_labels: str | Sequence[str] | None = None
 depends_on: str | Sequence[str] | None = None
 

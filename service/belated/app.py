@@ -24,6 +24,7 @@ from belated.api import (
     routes_models,
     routes_pending,
     routes_prometheus,
+    routes_rollups,
 )
 from belated.api.fastpath import SmallWrites
 from belated.api.limits import BodyLimit
@@ -74,6 +75,7 @@ def create_app(
     app.state.outbox_backlog = delivery.backlog
     for module in (  # the ingest routes first: they take the most requests, matched in order
         routes_ingest,
+        routes_rollups,
         routes_models,
         routes_erasure,
         routes_pending,

@@ -28,6 +28,7 @@ KNOWN = {
     ("DELETE", "/v1/models/{model}"),
     ("POST", "/v1/models/{model}/predictions"),
     ("POST", "/v1/models/{model}/labels"),
+    ("PUT", "/v1/models/{model}/rollups"),
     ("POST", "/v1/keys"),
     ("DELETE", "/v1/keys/{key_id}"),
 }
@@ -40,6 +41,8 @@ def required_scope(method: str, path: str) -> str:
     if method == "GET":
         return "read"
     if method == "POST" and path.endswith(("/predictions", "/labels")):
+        return "ingest"
+    if method == "PUT" and path.endswith("/rollups"):  # a lake-fed model's uploads
         return "ingest"
     return "admin"
 

@@ -162,6 +162,8 @@ def _scope_of(method: str, path: str) -> str:
         return "read"
     if method == "POST" and path.endswith(("/predictions", "/labels")):
         return "ingest"
+    if method == "PUT" and path.endswith("/rollups"):  # a lake-fed model's uploads
+        return "ingest"
     return "admin"
 
 

@@ -184,7 +184,7 @@ def _read_model_ref(request: Request, project_id: int, name: str) -> ModelRef:
 
     def load() -> ModelRef:
         row = model_registry.get(session=session, project_id=project_id, name=name)
-        return ModelRef(row.id, row.name, model_registry.spec_of(row))
+        return ModelRef(row.id, row.name, model_registry.spec_of(row), row.source or "http")
 
     session: Session = request.app.state.sessions()
     try:

@@ -68,7 +68,7 @@ class SmallWrites:
         if caller is None or "ingest" not in caller.scopes:
             return None
         model = lookups.models.peek((caller.project_id, model_name))
-        if model is None:
+        if model is None or model.source != "http":
             return None
         try:
             doc = orjson.loads(body)

@@ -49,7 +49,8 @@ class BodyLimit:
             chunks.append(chunk)
             more = message.get("more_body", False)
         body = b"".join(chunks)
-        if b"\\u0000" in body or b"\x00" in body:
+        binary = _binary(scope)  # Arrow and Parquet uploads hold NUL bytes by nature
+        if not binary and (b"\\u0000" in body or b"\x00" in body):
             where = _nul_path(body)  # PostgreSQL text cannot hold NUL; refuse it everywhere
             if where is not None:
                 await self._nul(send, where)
@@ -77,6 +78,15 @@ class BodyLimit:
             f"the request body exceeds {self.limit} bytes "
             "(BELATED_MAX_BODY_BYTES); nothing was stored",
         )
+
+
+_BINARY = (b"application/vnd.apache.arrow.stream", b"application/vnd.apache.parquet")
+
+
+def _binary(scope: Scope) -> bool:
+    """Whether the request declares a binary body (a rollup upload), not text."""
+    declared = dict(scope.get("headers") or []).get(b"content-type", b"")
+    return declared.split(b";")[0].strip().lower() in _BINARY
 
 
 def _nul_path(body: bytes) -> tuple[int | None, str] | None:

@@ -33,6 +33,7 @@ class ModelRef:
     id: int
     name: str
     spec: ModelSpec
+    source: str = "http"  # "lake": takes rollup uploads, no predictions or labels
 
 
 class Ttl(Generic[K, V]):

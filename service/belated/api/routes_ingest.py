@@ -57,7 +57,15 @@ async def ingest_call(
     settings: SettingsDep,
     now: NowDep,
 ) -> Call:
-    """Everything an ingest route needs, resolved once."""
+    """Everything an ingest route needs, resolved once; a lake-fed model takes none."""
+    if model.source == "lake":
+        raise Problem(
+            409,
+            f'model {model.name!r} is lake-fed (source "lake"): it takes no predictions or'
+            " labels over HTTP; upload its rollup rows with PUT"
+            f" /v1/models/{model.name}/rollups (belated lake run) instead",
+            title="Lake-fed model",
+        )
     return Call(body, model, settings, now)
 
 

@@ -34,6 +34,7 @@ def read_model(session: Any, model: ModelRow) -> ModelRead:
         time_zone=model.time_zone or "UTC",
         keep_raw_days=retention.keep_raw_days(model),
         keep_raw_days_default=model.keep_raw_days is None,
+        source=model.source or "http",
         created_at=to_utc(model.created_at),
         updated_at=to_utc(model.updated_at),
         **model_registry.counts(session=session, model=model),

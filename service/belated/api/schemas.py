@@ -82,6 +82,8 @@ class ModelCreate(ModelSettings):
 
     name: str = Field(pattern=NAME_PATTERN)
     kind: Literal["binary", "multiclass"] = "binary"
+    # "lake": rollup rows are uploaded (PUT .../rollups) instead of predictions and labels
+    source: Literal["http", "lake"] = "http"
     classes: list[str | int] | None = None
     positive: str | int | None = None
 
@@ -133,6 +135,7 @@ class ModelRead(BaseModel):
     time_zone: str = "UTC"
     keep_raw_days: float = 0.0
     keep_raw_days_default: bool = True
+    source: str = "http"
     created_at: datetime
     updated_at: datetime
     counts: ModelCounts

@@ -7,6 +7,7 @@ rules.py     rules list|create|delete
 alerts.py    alerts list|note
 markers.py   markers add|list|delete
 send.py      send predictions|labels FILE (files.py reads the file, sender.py sends it)
+lake.py      lake run: rollups of a lake-fed model computed on DuckDB or Spark, uploaded
 windows.py   windows: the latest windows as a table, CSV or JSON
 erase.py     erase --model M FILE: predictions erased by id (ids one per line)
 options.py   the options and the exit the data commands share; output.py prints answers
@@ -23,6 +24,7 @@ from belated.cli import helptext, service
 from belated.cli.alerts import alerts_app
 from belated.cli.erase import erase
 from belated.cli.keys import keys_app
+from belated.cli.lake import lake_app
 from belated.cli.markers import markers_app
 from belated.cli.models import models_app
 from belated.cli.rules import rules_app
@@ -46,6 +48,7 @@ GROUPS = {
     "alerts": alerts_app,
     "markers": markers_app,
     "send": send_app,
+    "lake": lake_app,
 }
 
 

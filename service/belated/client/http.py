@@ -93,10 +93,14 @@ class Client(AdminCalls):
         body: Any = None,
         params: dict[str, Any] | None = None,
         repeatable: bool = True,
+        raw: tuple[bytes, str] | None = None,
     ) -> Any:
-        """Send one request, retrying connection errors and 503; answer the JSON body."""
+        """Send one request, retrying connection errors and 503; answer the JSON body.
+        `raw` is a body that is not JSON, with its media type."""
         content = None if body is None else orjson.dumps(body)
         headers = {"Content-Type": "application/json"} if content is not None else None
+        if raw is not None:
+            content, headers = raw[0], {"Content-Type": raw[1]}
         for attempt in range(self.retries + 1):
             last = attempt == self.retries
             try:
@@ -126,6 +130,14 @@ class Client(AdminCalls):
         # A repeat of an ingest request is harmless: stored rows come back as duplicates.
         return cast(
             dict[str, Any], self.request("POST", f"/v1/models/{model}/{kind}", body={kind: items})
+        )
+
+    def put_rollups(self, model: str, body: bytes, media_type: str) -> dict[str, int]:
+        """Upload rollup rows of whole hours to a lake-fed model (belated.lake.schema);
+        a repeat replaces the same hours with the same rows."""
+        return cast(
+            dict[str, int],
+            self.request("PUT", f"/v1/models/{model}/rollups", raw=(body, media_type)),
         )
 
     def _send(

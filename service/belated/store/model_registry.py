@@ -24,6 +24,7 @@ DEFAULTS: dict[str, Any] = {
     "segment_keys": None,
     "reference": None,
     "time_zone": "UTC",
+    "source": "http",
 }
 
 

@@ -88,7 +88,8 @@ def refresh_batch(
     stamp = now()
     for mid in sorted(set(recompute) | set(fold)):
         model = session.get(ModelRow, mid)
-        if model is not None:
+        # a lake-fed model has no raw rows: its rollups are uploaded, never recomputed
+        if model is not None and model.source != "lake":
             rollups.refresh_hours(
                 session=session,
                 model=model,
@@ -223,7 +224,11 @@ def rebuild(factory: sessionmaker[Session], *, max_values: int, model_id: int | 
     from belated.store.rollup_tables import Rollup
 
     with transaction(factory) as session:
-        ids = [model_id] if model_id is not None else list(session.scalars(select(ModelRow.id)))
+        # a lake-fed model's rollups are uploaded: with no raw rows, a rebuild would lose them
+        http = select(ModelRow.id).where(ModelRow.source != "lake")
+        if model_id is not None:
+            http = http.where(ModelRow.id == model_id)
+        ids = list(session.scalars(http))
         for mid in ids:
             session.execute(delete(Rollup).where(Rollup.model_id == mid))
             mark_model(session, mid)

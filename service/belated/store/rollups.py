@@ -36,7 +36,7 @@ from sqlalchemy.orm import Session
 
 from belated.store import bulk, segments
 from belated.store.dialect import Dialect, is_postgres
-from belated.store.rollup_sql import Scope, aggregate_all_keys, aggregate_one_key, parts
+from belated.store.rollup_sql import Part, Scope, aggregate_all_keys, aggregate_one_key, parts
 from belated.store.rollup_tables import Rollup
 from belated.store.statistics import CELLS, HISTOGRAM_BY_NAME, pg_types
 from belated.store.tables import LabelChange, ModelRow
@@ -76,26 +76,34 @@ def compute(session: Session, scope: Scope, keys: dict[str, list[str]]) -> dict[
             for key in [None] if part.whole_model_only else [None, *keys]:
                 values = keys.get(key, []) if key else []
                 rows += aggregate_one_key(session, scope, part, key, values)
-        if part.name == "scalars":
-            for hour, skey, seg, *values in rows:
-                totals[(hour, skey, seg)].set_scalars(values)
-        elif part.name == CELLS:
-            for hour, skey, seg, actual, predicted, n in rows:
-                t = totals[(hour, skey, seg)]
-                t.cells = t.cells or {}
-                t.cells[cell_key(actual, predicted)] = int(n)
-        else:
-            _scatter(totals, part.name, len(part.group), rows)
+        gather(totals, part, rows)
     return totals
 
 
-def _scatter(totals: dict[Key, Totals], name: str, n_axes: int, rows: list[Any]) -> None:
+def gather(totals: dict[Key, Totals], part: Part, rows: Sequence[Sequence[Any]]) -> None:
+    """Rows of one part, (hour, segment key, value, *group columns, *values), into the
+    totals (also used by belated.lake, whose engines return rows of the same parts)."""
+    if part.name == "scalars":
+        for hour, skey, seg, *values in rows:
+            totals[(int(hour), skey, seg)].set_scalars(values)
+    elif part.name == CELLS:
+        for hour, skey, seg, actual, predicted, n in rows:
+            t = totals[(int(hour), skey, seg)]
+            t.cells = t.cells or {}
+            t.cells[cell_key(actual, predicted)] = int(n)
+    else:
+        _scatter(totals, part.name, len(part.group), rows)
+
+
+def _scatter(
+    totals: dict[Key, Totals], name: str, n_axes: int, rows: Sequence[Sequence[Any]]
+) -> None:
     """Histogram rows (hour, segment key, value, *cell index, count[, score sum]) into the
     totals, one numpy scatter per segment rather than one assignment per row."""
     hist = HISTOGRAM_BY_NAME[name]
     by_key: dict[Key, list[Any]] = defaultdict(list)
     for row in rows:
-        by_key[(row[0], row[1], row[2])].append(row[3:])
+        by_key[(int(row[0]), row[1], row[2])].append(row[3:])
     for key, group in by_key.items():
         cols = list(zip(*group, strict=True))
         flat = np.ravel_multi_index(
@@ -392,6 +400,17 @@ def _insert(
         return
     for i in range(0, len(rows), INSERT_CHUNK):
         session.execute(insert(Rollup), rows[i : i + INSERT_CHUNK])
+
+
+def replace_hours(
+    *, session: Session, model_id: int, hours: Sequence[int], totals: dict[Key, Totals]
+) -> None:
+    """Replace every row of `hours` with `totals` (rows uploaded for a lake-fed model), and
+    sum the daily rows above them again."""
+    days = {h - h % 24 for h in hours}
+    _lock_days(session, model_id, days)
+    _replace(session, model_id, "h", sorted(hours), totals)
+    refresh_days(session=session, model_id=model_id, days=days, known=totals, known_hours=hours)
 
 
 def refresh_days(

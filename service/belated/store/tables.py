@@ -97,6 +97,8 @@ class ModelRow(Base):
     keep_raw_days: Mapped[float | None] = mapped_column(
         Float, nullable=True, server_default=text("NULL")
     )
+    # "http": raw rows posted to the API; "lake": rollup rows uploaded (belated.lake)
+    source: Mapped[str] = mapped_column(String(8), server_default="http")
     created_at: Mapped[datetime] = mapped_column(UtcDateTime)
     updated_at: Mapped[datetime] = mapped_column(UtcDateTime)
 
