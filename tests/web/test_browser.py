@@ -196,6 +196,13 @@ def test_the_model_page_shows_change_in_a_real_browser(
             tenant = make_tenant(sessions, http)
             name = regions.send(tenant, engine, regions.orders())
             regions.raise_north(tenant, sessions, name)
+            change = regions.FIRST_DAY + timedelta(days=regions.CHANGE_DAY, hours=9)
+            r = tenant.client.post(
+                f"/v1/models/{name}/markers",
+                headers=tenant.headers("admin"),
+                json={"at": change.isoformat(), "text": "new sofa supplier in the north"},
+            )
+            assert r.status_code == 201, r.text
         driver, url = browser, live.url
         driver.get(f"{url}/signin")
         driver.find_element(By.ID, "token").send_keys(tenant.tokens["read"])
@@ -216,6 +223,14 @@ def test_the_model_page_shows_change_in_a_real_browser(
         assert focused == mark
         said = driver.execute_script("return arguments[0].querySelector('title').textContent", mark)
         assert "region:north" in said and "alert raised" in said
+        # the marker: on every chart over windows, named when focused
+        for cid in ("m-precision", "m-recall", "m-fbeta", "m-positive_rate", "coverage"):
+            assert count(driver, f"svg#{cid} g.mark.marker") == 1, cid
+        flag = driver.find_element(By.CSS_SELECTOR, "svg#m-recall g.mark.marker")
+        driver.execute_script("arguments[0].focus()", flag)
+        assert driver.execute_script("return document.activeElement") == flag
+        said = driver.execute_script("return arguments[0].querySelector('title').textContent", flag)
+        assert "new sofa supplier in the north" in said
         # the segment table: north marked; sorting by precision, then flipped
         table = driver.find_element(By.ID, "segment-table")
         assert table.get_attribute("data-key") == "region"
