@@ -149,3 +149,6 @@ def test_the_same_seed_raises_the_same_alerts_and_the_north_change_stays_raised(
     assert shift and change <= firsts[shift[0]] <= change + timedelta(days=1)
     precision = [x for x in alerts if x.startswith("alert: raised drop precision")]
     assert precision and firsts[precision[0]] >= change
+    # the change is marked on the model's charts, on its day
+    marker = [x for x in first if x.startswith("marker: ")]
+    assert marker == [f"marker: {change:%Y-%m-%d} new sofa supplier delivering in the north"]

@@ -118,3 +118,10 @@ def feed(base: str, token: str, days: int, seed: int, end: datetime, echo: Any) 
     for rule in rules(reference[0].isoformat(), reference[1].isoformat()):
         http.post(f"/v1/models/{MODEL}/rules", json=rule).raise_for_status()
     echo(f"sent {len(preds):,} orders and {len(labels):,} outcomes")
+    # what the shop knew on the day: a dated note on every chart of the model page
+    change = first + timedelta(days=shop.CHANGE_DAY)
+    note = "new sofa supplier delivering in the north"
+    http.post(
+        f"/v1/models/{MODEL}/markers", json={"at": change.isoformat(), "text": note}
+    ).raise_for_status()
+    echo(f"marker: {change:%Y-%m-%d} {note}")
