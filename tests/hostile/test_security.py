@@ -173,6 +173,7 @@ def _bodies() -> dict[tuple[str, str], Any]:
         ("POST", "/v1/models"): {"name": random_name("intruder")},
         ("PATCH", "/v1/models/{model}"): {"threshold": 0.1},
         ("POST", "/v1/models/{model}/predictions"): {"predictions": predictions(2, start=50)},
+        ("DELETE", "/v1/models/{model}/predictions"): {"ids": ["order-0", "order-1"]},
         ("POST", "/v1/models/{model}/labels"): {"labels": [label("order-0", "0")]},
         ("POST", "/v1/models/{model}/rules"): {"kind": "traffic", "low": 5},
         ("PATCH", "/v1/models/{model}/rules/{rule_id}"): {"clear_after": 7},
