@@ -28,8 +28,7 @@ def erase(
     token: str = TOKEN,
     fmt: str = FORMAT,
 ) -> None:
-    """Erase predictions by id with their labels and history (an admin token); the
-    windows are recounted without them."""
+    """Erase predictions by id, their labels and history (admin); windows recount without them."""
     check_format(fmt)
     ids = read_ids(file)
     if not ids:
