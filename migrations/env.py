@@ -9,6 +9,7 @@ import belated.alerts.tables  # noqa: F401  (registers the alert tables)
 import belated.store.rollup_tables  # noqa: F401  (registers the rollup tables)
 from belated.config import get_settings
 from belated.store.db import is_sqlite, make_engine
+from belated.store.partitions import include_object
 from belated.store.tables import Base
 
 config = context.config
@@ -30,6 +31,7 @@ def run_offline() -> None:
         literal_binds=True,
         compare_type=True,
         render_as_batch=is_sqlite(url),
+        include_object=include_object("sqlite" if is_sqlite(url) else "postgresql"),
     )
     with context.begin_transaction():
         context.run_migrations()
@@ -49,6 +51,7 @@ def run_online() -> None:
                 target_metadata=target_metadata,
                 compare_type=True,
                 render_as_batch=is_sqlite(url),
+                include_object=include_object("sqlite" if is_sqlite(url) else "postgresql"),
             )
             with context.begin_transaction():
                 context.run_migrations()

@@ -16,6 +16,7 @@ from sqlalchemy import MetaData, inspect
 
 import belated
 import belated.store.rollup_tables  # noqa: F401  (registers the rollup tables)
+from belated.store import partitions
 from belated.store.db import make_engine
 from belated.store.migrate import downgrade, upgrade
 from belated.store.tables import Base
@@ -48,23 +49,28 @@ def differences(url: str) -> list[Any]:
     engine = make_engine(url)
     try:
         with engine.connect() as conn:
-            context = MigrationContext.configure(conn, opts={"compare_type": True})
+            hook = partitions.include_object(conn.dialect.name)
+            context = MigrationContext.configure(
+                conn, opts={"compare_type": True, "include_object": hook}
+            )
             return list(compare_metadata(context, table_metadata()))
     finally:
         engine.dispose()
 
 
 def tables(url: str) -> set[str]:
-    """The tables present in the store."""
+    """The tables present in the store, the predictions' day partitions left out."""
     engine = make_engine(url)
     try:
-        return set(inspect(engine).get_table_names())
+        return {t for t in inspect(engine).get_table_names() if not partitions.is_partition(t)}
     finally:
         engine.dispose()
 
 
 def test_upgrade_downgrade_upgrade_matches_the_code(fresh_url: str) -> None:
     expected = set(table_metadata().tables)
+    if fresh_url.startswith("sqlite"):  # the id registry serves the partitioned layout only
+        expected.discard(partitions.REGISTRY)
     assert {"predictions", "labels", "pending_labels", "dirty_buckets", "rollups"} <= expected
     assert tables(fresh_url) == set()
     upgrade(fresh_url)

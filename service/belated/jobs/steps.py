@@ -1,4 +1,5 @@
-"""The steps of one job run, in order: refresh the rollups, drop pending labels past their
+"""The steps of one job run, in order: keep the day partitions ahead (PostgreSQL), refresh
+the rollups, drop pending labels past their
 model's keep_raw_days, evaluate the alert rules, send due webhook deliveries, keep the
 figures /metrics serves.
 
@@ -19,7 +20,7 @@ from belated.alerts.tables import Rule
 from belated.clock import now
 from belated.config import Settings
 from belated.metrics import figures
-from belated.store import refresh, retention
+from belated.store import partitions, refresh, retention
 from belated.store.db import transaction
 from belated.store.tables import ModelRow
 
@@ -35,6 +36,12 @@ class StepContext(Protocol):
 
 
 Step = Callable[[StepContext], dict[str, Any] | None]
+
+
+def partitions_step(run: StepContext) -> dict[str, Any]:
+    """PostgreSQL: day partitions ahead of time, and for rows that landed in the default."""
+    with transaction(run.sessions) as session:
+        return partitions.maintain(session, now())
 
 
 def refresh_step(run: StepContext) -> dict[str, Any]:
@@ -94,6 +101,7 @@ def cache_step(run: StepContext) -> dict[str, Any]:
 
 # one declaration of the run: (name, step) in the order they run
 STEPS: tuple[tuple[str, Step], ...] = (
+    ("partitions", partitions_step),
     ("refresh", refresh_step),
     ("pending", pending_step),
     ("evaluate", evaluate_step),

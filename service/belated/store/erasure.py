@@ -24,7 +24,14 @@ from sqlalchemy.orm import Session
 
 from belated.store import bulk, refresh, rollups, segments
 from belated.store.dialect import is_postgres
-from belated.store.tables import Label, LabelChange, ModelRow, PendingLabel, Prediction
+from belated.store.tables import (
+    Label,
+    LabelChange,
+    ModelRow,
+    PendingLabel,
+    Prediction,
+    PredictionId,
+)
 
 ROW_CHUNK = 5000  # row ids per DELETE
 
@@ -53,7 +60,8 @@ class Erased:
 _LOCK_PG = """
 SELECT p.pid, p.row_id, p.hour
 FROM unnest(%(ids)b::text[]) AS k(pid)
-JOIN predictions p ON p.model_id = %(m)s AND p.pid = k.pid
+JOIN prediction_ids r ON r.model_id = %(m)s AND r.pid = k.pid
+JOIN predictions p ON p.model_id = r.model_id AND p.pid = r.pid AND p.hour = r.hour
 ORDER BY p.row_id
 FOR UPDATE OF p
 """
@@ -111,9 +119,14 @@ def erase(
         # none are left after the refresh above; a change logged by a writer that raced
         # this one would point at a row that is gone
         session.execute(delete(LabelChange).where(LabelChange.row_id.in_(chunk)))
-        session.execute(
-            delete(Prediction).where(Prediction.model_id == model.id, Prediction.row_id.in_(chunk))
+        gone = delete(Prediction).where(
+            Prediction.model_id == model.id, Prediction.row_id.in_(chunk)
         )
+        if is_postgres(session):  # their hours name the day partitions to look in
+            gone = gone.where(Prediction.hour.in_(hours))
+        session.execute(gone)
+    if is_postgres(session):  # the registry: an erased id may be sent again as new
+        _delete_by_id(session, PredictionId, model.id, list(stored))
     out.predictions = len(row_ids)
     if difference:
         rollups.take_out(

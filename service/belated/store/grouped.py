@@ -36,7 +36,7 @@ from typing import Any
 from sqlalchemy.orm import Session, sessionmaker
 
 from belated.ingest.validate import PredictionIn
-from belated.store import bulk, dirty, labels, predictions
+from belated.store import bulk, dirty, labels, partitions, predictions
 from belated.store.db import transaction
 from belated.store.dialect import is_postgres
 from belated.timeutil import to_utc
@@ -242,14 +242,19 @@ def _answers(
 
 
 _GROUP_SQL = """
-WITH ins AS (
+WITH reg AS (
+  INSERT INTO prediction_ids (model_id, pid, hour)
+  SELECT * FROM unnest(%(m)b::int4[], %(pid)b::text[], %(hour)b::int4[])
+  ON CONFLICT (model_id, pid) DO NOTHING
+  RETURNING model_id, pid
+), ins AS (
   INSERT INTO predictions (model_id, pid, ts, hour, score, scores, predicted, tags, received_at)
   SELECT r.m, r.pid, r.ts, r.hour, r.score, r.scores::jsonb, r.predicted, r.tags::jsonb, r.at
   FROM unnest(%(m)b::int4[], %(pid)b::text[], %(ts)b::timestamptz[], %(hour)b::int4[],
     %(score)b::float8[], %(scores)b::text[], %(predicted)b::text[], %(tags)b::text[],
     %(at)b::timestamptz[])
     AS r(m, pid, ts, hour, score, scores, predicted, tags, at)
-  ON CONFLICT (model_id, pid) DO NOTHING
+  JOIN reg ON reg.model_id = r.m AND reg.pid = r.pid
   RETURNING model_id, pid, hour
 ), marks AS (
   INSERT INTO dirty_buckets (model_id, hour, marked_at, recompute)
@@ -262,8 +267,9 @@ SELECT ins.model_id, ins.pid, ins.hour, EXISTS (
 
 _STORED_SQL = """
 SELECT p.model_id, p.pid, p.ts, p.score, p.scores, p.predicted, p.tags
-FROM predictions p JOIN unnest(%(m)b::int4[], %(pid)b::text[]) AS k(m, pid)
-  ON p.model_id = k.m AND p.pid = k.pid
+FROM unnest(%(m)b::int4[], %(pid)b::text[]) AS k(m, pid)
+  JOIN prediction_ids r ON r.model_id = k.m AND r.pid = k.pid
+  JOIN predictions p ON p.model_id = r.model_id AND p.pid = r.pid AND p.hour = r.hour
 """
 
 
@@ -277,6 +283,7 @@ def _store_pg(
     keys = list(first)
     rows = [first[k] for k in keys]
     received = [group[owner[k]].received for k in keys]
+    partitions.ensure_hours(session, {predictions.epoch_hour(p.ts) for p in rows})
     raw = session.connection().connection.driver_connection
     assert raw is not None
     with raw.cursor() as cur:

@@ -13,11 +13,11 @@ from belated.clock import clock
 from belated.ingest.validate import LabelIn
 from belated.store import bulk, dirty
 from belated.store.dialect import is_postgres, upsert
-from belated.store.tables import Label, PendingLabel, Prediction
+from belated.store.tables import Label, PendingLabel, Prediction, PredictionId
 from belated.timeutil import to_utc
 
 _STAGE = "stage_labels"
-_STAGE_DDL = "row_id bigint, actual text, label_ts timestamptz, delay_h float8"
+_STAGE_DDL = "row_id bigint, hour integer, actual text, label_ts timestamptz, delay_h float8"
 DELETE_CHUNK = 5000  # pending rows per DELETE
 HISTORY_TYPES = ("int4", "text", "text", "timestamptz", "text", "timestamptz")
 CHANGE_TYPES = ("int4", "int4", "int8", "text", "float8", "text", "float8")
@@ -52,13 +52,15 @@ def delay_hours(pred_ts: datetime, label_ts: datetime) -> float:
 
 
 # The stored predictions of a batch's ids, locked in row order (concurrent corrections of one
-# id apply one after another). Driven by the ids, one unique-index probe each: with the
+# id apply one after another). Driven by the ids, one registry probe each and then the one
+# day partition that holds the row (store/partitions.py): with the
 # filter form `pid = ANY(...)` and statistics not yet caught up with a burst of inserts,
 # PostgreSQL scanned every row of the model through another index.
 _TARGETS_PG = """
 SELECT p.pid, p.row_id, p.ts, p.hour, p.actual, p.delay_h
 FROM unnest(%(ids)b::text[]) AS k(pid)
-JOIN predictions p ON p.model_id = %(m)s AND p.pid = k.pid
+JOIN prediction_ids r ON r.model_id = %(m)s AND r.pid = k.pid
+JOIN predictions p ON p.model_id = r.model_id AND p.pid = r.pid AND p.hour = r.hour
 ORDER BY p.row_id
 FOR UPDATE OF p
 """
@@ -131,7 +133,8 @@ _SET_WRITE = f"""
 WITH t AS MATERIALIZED (
   SELECT s.pid, s.actual, s.ts AS label_ts, p.row_id, p.ts AS pred_ts, p.hour,
     p.actual AS old_actual, p.delay_h AS old_delay_h
-  FROM {_IN_STAGE} s JOIN predictions p ON p.model_id = %(m)s AND p.pid = s.pid
+  FROM {_IN_STAGE} s JOIN prediction_ids r ON r.model_id = %(m)s AND r.pid = s.pid
+  JOIN predictions p ON p.model_id = r.model_id AND p.pid = r.pid AND p.hour = r.hour
   ORDER BY p.row_id
   FOR UPDATE OF p
 ), ch AS MATERIALIZED (
@@ -140,7 +143,7 @@ WITH t AS MATERIALIZED (
   FROM t WHERE t.old_actual IS DISTINCT FROM t.actual
 ), upd AS (
   UPDATE predictions p SET actual = ch.actual, label_ts = ch.label_ts, delay_h = ch.delay_h
-  FROM ch WHERE p.row_id = ch.row_id
+  FROM ch WHERE p.row_id = ch.row_id AND p.hour = ch.hour
 ), hist AS (
   INSERT INTO labels (model_id, pid, actual, ts, change, received_at)
   SELECT %(m)s, pid, actual, label_ts,
@@ -252,6 +255,7 @@ def ingest_batches(
         target.actual, target.delay_h = label.actual, delay
         updates[target.row_id] = {
             "row_id": target.row_id,
+            "hour": target.hour,
             "actual": label.actual,
             "label_ts": label.ts,
             "delay_h": delay,
@@ -297,9 +301,9 @@ def ingest_batches(
 _SMALL_WRITE = """
 WITH upd AS (
   UPDATE predictions p SET actual = u.actual, label_ts = u.label_ts, delay_h = u.delay_h
-  FROM unnest(%(u_row)b::int8[], %(u_actual)b::text[], %(u_ts)b::timestamptz[],
-    %(u_delay)b::float8[]) AS u(row_id, actual, label_ts, delay_h)
-  WHERE p.row_id = u.row_id
+  FROM unnest(%(u_row)b::int8[], %(u_hour)b::int4[], %(u_actual)b::text[],
+    %(u_ts)b::timestamptz[], %(u_delay)b::float8[]) AS u(row_id, hour, actual, label_ts, delay_h)
+  WHERE p.row_id = u.row_id AND p.hour = u.hour
 ), hist AS (
   INSERT INTO labels (model_id, pid, actual, ts, change, received_at)
   SELECT %(m)s, * FROM unnest(%(h_pid)b::text[], %(h_actual)b::text[],
@@ -335,6 +339,7 @@ def _write_small_pg(
             "m": model_id,
             "at": clock.now(),
             "u_row": [u["row_id"] for u in updates],
+            "u_hour": [u["hour"] for u in updates],
             "u_actual": [u["actual"] for u in updates],
             "u_ts": [u["label_ts"] for u in updates],
             "u_delay": [u["delay_h"] for u in updates],
@@ -394,23 +399,25 @@ def _update_pg(session: Session, rows: list[dict[str, Any]]) -> None:
         bulk.execute_binary(
             session,
             "UPDATE predictions p SET actual = u.actual, label_ts = u.label_ts,"
-            " delay_h = u.delay_h FROM unnest(%b::int8[], %b::text[], %b::timestamptz[],"
-            " %b::float8[]) AS u(row_id, actual, label_ts, delay_h) WHERE p.row_id = u.row_id",
-            [[r[c] for r in rows] for c in ("row_id", "actual", "label_ts", "delay_h")],
+            " delay_h = u.delay_h FROM unnest(%b::int8[], %b::int4[], %b::text[],"
+            " %b::timestamptz[], %b::float8[]) AS u(row_id, hour, actual, label_ts, delay_h)"
+            " WHERE p.row_id = u.row_id AND p.hour = u.hour",
+            [[r[c] for r in rows] for c in ("row_id", "hour", "actual", "label_ts", "delay_h")],
         )
         return
     bulk.temp_table(session, _STAGE, _STAGE_DDL)
     bulk.copy_rows(
         session,
         _STAGE,
-        ("row_id", "actual", "label_ts", "delay_h"),
-        ((r["row_id"], r["actual"], r["label_ts"], r["delay_h"]) for r in rows),
-        types=("int8", "text", "timestamptz", "float8"),
+        ("row_id", "hour", "actual", "label_ts", "delay_h"),
+        ((r["row_id"], r["hour"], r["actual"], r["label_ts"], r["delay_h"]) for r in rows),
+        types=("int8", "int4", "text", "timestamptz", "float8"),
     )
     session.execute(
         text(
             "UPDATE predictions p SET actual = s.actual, label_ts = s.label_ts,"
             f" delay_h = s.delay_h FROM {_STAGE} s WHERE p.row_id = s.row_id"
+            " AND p.hour = s.hour"
         )
     )
 
@@ -488,9 +495,19 @@ def join_pending(*, session: Session, model_id: int, ids: list[str] | None) -> s
         .where(PendingLabel.model_id == model_id)
     )
     if is_postgres(session):
-        # lock both rows, so that a label written meanwhile for this id (which deletes the
+        # found through the registry (one day partition each, store/partitions.py); lock
+        # both rows, so that a label written meanwhile for this id (which deletes the
         # pending row) is seen before deciding; in id order, as ingest locks predictions
-        query = query.order_by(Prediction.row_id).with_for_update()
+        query = (
+            query.join(
+                PredictionId,
+                (PredictionId.model_id == PendingLabel.model_id)
+                & (PredictionId.pid == PendingLabel.pid)
+                & (PredictionId.hour == Prediction.hour),
+            )
+            .order_by(Prediction.row_id)
+            .with_for_update(of=[PendingLabel, Prediction])
+        )
     conds = [None] if ids is None else list(bulk.id_filters(session, PendingLabel.pid, ids))
     rows: list[Any] = []
     for cond in conds:
@@ -511,7 +528,13 @@ def join_pending(*, session: Session, model_id: int, ids: list[str] | None) -> s
         label_ts = to_utc(r.label_ts)
         delay = delay_hours(to_utc(r.prediction_ts), label_ts)
         updates.append(
-            {"row_id": r.prediction_row, "actual": r.label, "label_ts": label_ts, "delay_h": delay}
+            {
+                "row_id": r.prediction_row,
+                "hour": r.hour,
+                "actual": r.label,
+                "label_ts": label_ts,
+                "delay_h": delay,
+            }
         )
         changes.append(
             Change(

@@ -15,9 +15,9 @@ from sqlalchemy.orm import Session
 from belated.clock import clock
 from belated.errors import Conflict
 from belated.ingest.validate import PredictionIn
-from belated.store import bulk, dirty, labels
+from belated.store import bulk, dirty, labels, partitions
 from belated.store.dialect import is_postgres
-from belated.store.tables import Prediction
+from belated.store.tables import Prediction, PredictionId
 from belated.timeutil import to_utc
 
 _STAGE = "stage_predictions"
@@ -45,10 +45,23 @@ def existing(*, session: Session, model_id: int, ids: list[str]) -> dict[str, Pr
         Prediction.predicted,
         Prediction.tags,
     )
-    for cond in bulk.id_filters(session, Prediction.pid, ids):
-        for pid, ts, score, scores, predicted, tags in session.execute(
-            select(*cols).where(Prediction.model_id == model_id, cond)
-        ):
+    pg = is_postgres(session)
+    for cond in bulk.id_filters(session, PredictionId.pid if pg else Prediction.pid, ids):
+        if pg:  # through the registry: one partition probed per id
+            query = (
+                select(*cols)
+                .select_from(PredictionId)
+                .join(
+                    Prediction,
+                    (Prediction.model_id == PredictionId.model_id)
+                    & (Prediction.pid == PredictionId.pid)
+                    & (Prediction.hour == PredictionId.hour),
+                )
+                .where(PredictionId.model_id == model_id, cond)
+            )
+        else:
+            query = select(*cols).where(Prediction.model_id == model_id, cond)
+        for pid, ts, score, scores, predicted, tags in session.execute(query):
             found[pid] = PredictionIn(pid, to_utc(ts), score, scores, predicted, tags or None)
     return found
 
@@ -78,6 +91,7 @@ def ingest(
     if is_postgres(session):
         # insert first (ON CONFLICT DO NOTHING) and compare only the ids already stored; a
         # conflict raises, and the request's transaction rolls the whole batch back
+        partitions.ensure_hours(session, {epoch_hour(p.ts) for p in preds})
         if not preds:
             inserted: set[str] = set()
         elif len(preds) <= SMALL_BATCH:
@@ -136,18 +150,25 @@ def insert_sqlite(session: Session, items: Iterable[tuple[int, PredictionIn, dat
     )
 
 
-# One statement for a small batch: insert the rows from arrays (no staging table; the arrays
-# are sent in binary, which costs a sixth of the text format) and answer
+# One statement for a small batch: register the ids (the registry keeps (model, id) unique
+# across the day partitions), insert the rows of those that were new from arrays (no
+# staging table; the arrays are sent in binary, which costs a sixth of the text format) and
+# answer
 # which ids were new and which of those have a label waiting for them.
 _SMALL_SQL = """
-WITH ins AS (
+WITH reg AS (
+  INSERT INTO prediction_ids (model_id, pid, hour)
+  SELECT %(m)b, r.pid, r.hour FROM unnest(%(pid)b::text[], %(hour)b::int4[]) AS r(pid, hour)
+  ON CONFLICT (model_id, pid) DO NOTHING
+  RETURNING pid
+), ins AS (
   INSERT INTO predictions (model_id, pid, ts, hour, score, scores, predicted, tags, received_at)
   SELECT %(m)b, r.pid, r.ts, r.hour, r.score, r.scores::jsonb, r.predicted, r.tags::jsonb,
     %(at)b
   FROM unnest(%(pid)b::text[], %(ts)b::timestamptz[], %(hour)b::int4[], %(score)b::float8[],
     %(scores)b::text[], %(predicted)b::text[], %(tags)b::text[])
     AS r(pid, ts, hour, score, scores, predicted, tags)
-  ON CONFLICT (model_id, pid) DO NOTHING
+  JOIN reg ON reg.pid = r.pid
   RETURNING pid
 )
 SELECT ins.pid, EXISTS (
@@ -216,6 +237,13 @@ def _copy_direct_pg(
     )
     try:
         with raw.transaction():  # a savepoint inside the request's transaction
+            bulk.copy_rows(  # the registry first: it refuses an id stored on any day
+                session,
+                partitions.REGISTRY,
+                ("model_id", "pid", "hour"),
+                ((model_id, p.pid, epoch_hour(p.ts)) for p in new),
+                types=("int4", "text", "int4"),
+            )
             bulk.copy_rows(
                 session,
                 "predictions",
@@ -255,10 +283,13 @@ def _insert_pg(
     )
     result = session.execute(
         text(
-            f"INSERT INTO predictions (model_id, pid, ts, hour, score, scores, predicted, tags,"
-            f" received_at) SELECT :m, pid, ts, hour, score, scores::jsonb, predicted,"
-            f" tags::jsonb, received_at FROM {_STAGE}"
-            " ON CONFLICT (model_id, pid) DO NOTHING RETURNING pid"
+            "WITH reg AS (INSERT INTO prediction_ids (model_id, pid, hour)"
+            f" SELECT :m, pid, hour FROM {_STAGE} ON CONFLICT (model_id, pid) DO NOTHING"
+            " RETURNING pid)"
+            " INSERT INTO predictions (model_id, pid, ts, hour, score, scores, predicted, tags,"
+            " received_at) SELECT :m, s.pid, ts, hour, score, scores::jsonb, predicted,"
+            f" tags::jsonb, received_at FROM {_STAGE} s JOIN reg ON reg.pid = s.pid"
+            " RETURNING pid"
         ),
         {"m": model_id},
     )

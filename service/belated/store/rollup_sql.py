@@ -86,18 +86,19 @@ def _changed_rows(scope: Scope) -> str:
     prediction, with the implied-negative cutoff its hour was aggregated with."""
     hours = _hours_sql(scope)
     old = (
-        "SELECT row_id, -1 AS w, old_actual AS actual, old_delay_h AS delay_h"
+        "SELECT row_id, hour, -1 AS w, old_actual AS actual, old_delay_h AS delay_h"
         f" FROM label_changes WHERE {hours}"
     )
     new = (
-        "SELECT row_id, 1 AS w, new_actual AS actual, new_delay_h AS delay_h"
+        "SELECT row_id, hour, 1 AS w, new_actual AS actual, new_delay_h AS delay_h"
         f" FROM label_changes WHERE {hours}"
     )
     return (
         "(SELECT p.model_id, p.hour, p.ts, p.score, p.predicted, p.tags, c.actual,"
         f" c.delay_h, c.w, {_CUTOFF} AS negative_cutoff"
         f" FROM ({old} UNION ALL {new}) AS c"
-        " JOIN predictions p ON p.row_id = c.row_id) AS predictions"
+        # the hour as well: on PostgreSQL it names the one day partition holding the row
+        " JOIN predictions p ON p.row_id = c.row_id AND p.hour = c.hour) AS predictions"
     )
 
 
@@ -109,14 +110,22 @@ _CUTOFF = (
 )
 
 
-def _erased_rows(scope: Scope) -> str:
+def _erased_rows(scope: Scope, postgres: bool) -> str:
     """Each erased prediction once, weighted -1, in its stored state (with the cutoff its
     hour was aggregated with, as for a change's old state)."""
     ids = ",".join(str(int(r)) for r in scope.erased) or "NULL"
+    # on PostgreSQL the hours prune the day partitions; on SQLite they let it scan every
+    # row of those hours through the hour index
+    hours = ""
+    if postgres and isinstance(scope.hours, range):
+        hours = f" AND p.hour >= {int(scope.hours.start)} AND p.hour < {int(scope.hours.stop)}"
+    elif postgres:
+        hours = f" AND p.hour IN ({','.join(str(int(h)) for h in scope.hours) or 'NULL'})"
     return (
         "(SELECT p.model_id, p.hour, p.ts, p.score, p.predicted, p.tags, p.actual,"
         f" p.delay_h, -1 AS w, {_CUTOFF} AS negative_cutoff"
-        f" FROM predictions p WHERE p.model_id = :m AND p.row_id IN ({ids})) AS predictions"
+        f" FROM predictions p WHERE p.model_id = :m AND p.row_id IN ({ids}){hours})"
+        " AS predictions"
     )
 
 
@@ -197,7 +206,7 @@ class _Query:
 
     def source(self) -> str:
         if self.scope.erased:
-            return _erased_rows(self.scope)
+            return _erased_rows(self.scope, self.dialect.postgres)
         return _changed_rows(self.scope) if self.scope.of_changes else "predictions"
 
     def where(self, part: Part) -> str:

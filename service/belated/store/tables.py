@@ -141,6 +141,21 @@ class Prediction(Base):
     received_at: Mapped[datetime] = mapped_column(UtcDateTime)
 
 
+class PredictionId(Base):
+    """PostgreSQL only: where each stored prediction is, by (model, id) (the id registry).
+
+    `predictions` is partitioned by day there, and a unique index within partitions cannot
+    see an id stored under another day; store/partitions.py explains the layout.
+    """
+
+    __tablename__ = "prediction_ids"
+    model_id: Mapped[int] = mapped_column(
+        ForeignKey("models.id", ondelete="CASCADE"), primary_key=True
+    )
+    pid: Mapped[str] = mapped_column(String(128), primary_key=True)
+    hour: Mapped[int] = mapped_column(Integer)
+
+
 class Label(Base):
     """Every label value that changed something, in arrival order (the correction history)."""
 

@@ -1,0 +1,233 @@
+"""The day-partitioned layout of PostgreSQL (store/partitions.py), and what both stores
+must answer alike: an id is stored once whatever time it is re-sent with, rows live in the
+partition of their day, rows that landed in the default partition are moved out by the jobs,
+and the migration from the flat table keeps every row and every window.
+
+Reference: the row counts and rows are read back with SQL; the windows before and after the
+migration are compared field by field (the same data, so they must be equal exactly).
+"""
+
+from __future__ import annotations
+
+from datetime import timedelta
+from pathlib import Path
+from typing import Any
+
+import pytest
+from fastapi.testclient import TestClient
+from sqlalchemy import Engine
+
+from belated.app import create_app
+from belated.clock import clock
+from belated.config import Settings
+from belated.store import partitions, refresh
+from belated.store.db import make_engine, make_sessionmaker, transaction
+from belated.store.migrate import downgrade, upgrade
+from tests.conftest import (
+    STORES,
+    Tenant,
+    create_pg_database,
+    drop_pg_database,
+    make_tenant,
+    pg_url,
+)
+from tests.support import (
+    base_time,
+    count,
+    create_model,
+    epoch_hour,
+    label,
+    prediction,
+    predictions,
+    rows,
+    send,
+    stamp,
+)
+
+
+def post(tenant: Tenant, name: str, items: list[dict[str, Any]]) -> Any:
+    """POST a predictions batch."""
+    return tenant.client.post(f"/v1/models/{name}/predictions", json={"predictions": items})
+
+
+@pytest.mark.parametrize("size", [1, 20, 300, 1500])  # small, grouped, staged, COPY paths
+def test_an_id_resent_with_another_time_is_never_stored_twice(
+    tenant: Tenant, engine: Engine, size: int
+) -> None:
+    model = create_model(tenant, engine)
+    base = base_time()
+    first = prediction(0, base=base)
+    assert post(tenant, model.name, [first]).json() == {"accepted": 1, "duplicates": 0}
+    for shift in (timedelta(days=1), -timedelta(days=365), timedelta(hours=30)):
+        moved = dict(first, ts=stamp(base + shift))
+        others = predictions(size - 1, start=1000, base=base + shift) if size > 1 else []
+        r = post(tenant, model.name, [*others, moved])
+        assert r.status_code == 409, r.text
+        assert r.json()["ids"] == [first["id"]]
+    # nothing of the refused batches, and the first row as it was
+    assert count(engine, "predictions", model.id) == 1
+    (hour,) = rows(engine, "SELECT hour FROM predictions WHERE model_id = :m", m=model.id)[0]
+    assert hour == epoch_hour(base)
+    # the same content again is a duplicate, never a second row
+    assert post(tenant, model.name, [first]).json() == {"accepted": 0, "duplicates": 1}
+    assert count(engine, "predictions", model.id) == 1
+
+
+def _where(engine: Engine, model_id: int) -> dict[str, str]:
+    """Each prediction's id → the table that holds it (SQLite has one)."""
+    table = "'predictions'" if engine.dialect.name == "sqlite" else "tableoid::regclass::text"
+    return {
+        pid: name
+        for pid, name in rows(
+            engine, f"SELECT pid, {table} FROM predictions WHERE model_id = :m", m=model_id
+        )
+    }
+
+
+def _home(engine: Engine, day: int) -> str:
+    """The table that must hold a prediction of `day`: its day partition on PostgreSQL."""
+    return "predictions" if engine.dialect.name == "sqlite" else partitions.day_name(day)
+
+
+def test_rows_live_in_the_partition_of_their_day(tenant: Tenant, engine: Engine) -> None:
+    model = create_model(tenant, engine)
+    base = base_time()
+    items = [prediction(n, base=base - timedelta(days=n * 17)) for n in range(6)]
+    send(tenant.client, model.name, "predictions", items)
+    where = _where(engine, model.id)
+    for n, item in enumerate(items):
+        day = epoch_hour(base - timedelta(days=n * 17) + timedelta(minutes=n)) // 24
+        assert where[item["id"]] == _home(engine, day)
+    if engine.dialect.name == "postgresql":  # one registry row per stored prediction
+        registry = rows(
+            engine, "SELECT pid, hour FROM prediction_ids WHERE model_id = :m", m=model.id
+        )
+        assert sorted(map(tuple, registry)) == sorted(
+            map(
+                tuple,
+                rows(engine, "SELECT pid, hour FROM predictions WHERE model_id = :m", m=model.id),
+            )
+        )
+
+
+def test_rows_in_the_default_partition_are_moved_out_by_the_jobs(
+    tenant: Tenant, engine: Engine, sessions: Any
+) -> None:
+    model = create_model(tenant, engine)
+    when = base_time() - timedelta(days=2000)  # a day no test has given a partition
+    day = epoch_hour(when) // 24
+    # as if creating the partition had failed: the process believes the day has one
+    partitions._known.setdefault(partitions._key(engine), set()).add(day)
+    items = predictions(3, base=when, prefix="late")
+    send(tenant.client, model.name, "predictions", items)
+    pg = engine.dialect.name == "postgresql"
+    assert set(_where(engine, model.id).values()) == {partitions.DEFAULT if pg else "predictions"}
+    with transaction(sessions) as session:
+        done = partitions.maintain(session, clock.now())
+    assert done["created"] >= 1 if pg else done["created"] == 0
+    assert set(_where(engine, model.id).values()) == {_home(engine, day)}
+    assert count(engine, "predictions", model.id) == 3
+    # the moved rows are found by id as before
+    answer = send(tenant.client, model.name, "labels", [label(i["id"], 1) for i in items])
+    assert answer["matched"] == 3
+
+
+def _snapshot(url: str, model_id: int) -> dict[str, Any]:
+    """Every prediction row and every rollup row of the model, read with SQL."""
+    engine = make_engine(url)
+    try:
+        preds = rows(
+            engine,
+            "SELECT row_id, pid, ts, hour, score, predicted, actual, label_ts, delay_h"
+            " FROM predictions WHERE model_id = :m ORDER BY row_id",
+            m=model_id,
+        )
+        return {
+            "predictions": [tuple(r) for r in preds],
+            "rollups": [
+                tuple(r)
+                for r in rows(
+                    engine,
+                    "SELECT * FROM rollups WHERE model_id = :m"
+                    " ORDER BY level, start, seg_key, seg_value",
+                    m=model_id,
+                )
+            ],
+        }
+    finally:
+        engine.dispose()
+
+
+def _windows(url: str, name: str, project_tokens: dict[str, str]) -> list[dict[str, Any]]:
+    """The model's daily windows over HTTP."""
+    settings = Settings(database_url=url, jobs=False)
+    engine = make_engine(url)
+    try:
+        with TestClient(create_app(settings, engine=engine, jobs=False)) as client:
+            client.headers["Authorization"] = f"Bearer {project_tokens['read']}"
+            r = client.get(
+                f"/v1/models/{name}/metrics",
+                params={"granularity": "day", "start": "2026-10-01", "end": "2026-10-09"},
+            )
+            assert r.status_code == 200, r.text
+            return list(r.json()["windows"])
+    finally:
+        engine.dispose()
+
+
+@pytest.mark.parametrize("kind", STORES)
+def test_migration_from_the_flat_table_keeps_every_row_and_window(
+    kind: str, tmp_path: Path
+) -> None:
+    name = None
+    if kind == "sqlite":
+        url = f"sqlite:///{tmp_path / 'flat.db'}"
+    else:
+        name = create_pg_database("belated_part")
+        url = pg_url(name)
+    try:
+        upgrade(url, "0017_model_source")  # the flat layout, populated through the service
+        upgrade(url)
+        engine = make_engine(url)
+        sessions = make_sessionmaker(engine)
+        settings = Settings(database_url=url, jobs=False, max_batch=10_000)
+        start = base_time().replace(year=2026, month=10, day=1, hour=0)
+        clock.set(start + timedelta(days=12))
+        with TestClient(create_app(settings, engine=engine, jobs=False)) as client:
+            tenant = make_tenant(sessions, client)
+            model = create_model(tenant, engine, label_delay_days=3)
+            items = [
+                prediction(n, base=start, tags={"region": "north" if n % 3 else "south"})
+                for n in range(0, 8 * 24 * 60, 7)
+            ]
+            send(client, model.name, "predictions", items)
+            labels = [label(i["id"], int(float(i["score"]) > 0.4)) for i in items[::2]]
+            send(client, model.name, "labels", labels)
+            refresh.refresh_all(sessions, max_values=settings.max_segment_values)
+        engine.dispose()
+        before = _snapshot(url, model.id)
+        windows = _windows(url, model.name, tenant.tokens)
+        assert len(before["predictions"]) == len(items)
+        downgrade(url, "0017_model_source")
+        assert _snapshot(url, model.id) == before  # the flat table, every row as it was
+        upgrade(url)
+        assert _snapshot(url, model.id) == before
+        assert _windows(url, model.name, tenant.tokens) == windows
+        if kind == "postgresql":
+            engine = make_engine(url)
+            try:
+                held = rows(engine, "SELECT DISTINCT tableoid::regclass::text FROM predictions")
+                first_day = epoch_hour(start) // 24
+                assert {r[0] for r in held} == {
+                    partitions.day_name(first_day + d) for d in range(8)
+                }
+                registry = rows(
+                    engine, "SELECT count(*) FROM prediction_ids WHERE model_id = :m", m=model.id
+                )
+                assert registry[0][0] == len(items)
+            finally:
+                engine.dispose()
+    finally:
+        clock.set(None)
+        if name is not None:
+            drop_pg_database(name)
