@@ -171,18 +171,37 @@ def _chunk(d: Data, model_id: int, lo: int, hi: int, labelled: np.ndarray) -> by
 
 
 def load(url: str, model_id: int, d: Data) -> None:
-    """Binary COPY of the rows into `predictions`, building its secondary indexes after."""
+    """Binary COPY of the rows into `predictions` (its day partitions made first, the id
+    registry filled after), building its secondary indexes after the load."""
+    from belated.store import partitions
+
     labelled = np.ones(d.n, dtype=bool)
     labelled[d.late] = False
+    hours = np.unique((d.ts // 3600).astype(np.int64))
     with psycopg.connect(url, autocommit=True) as conn:
+        with conn.transaction():
+            conn.execute("SELECT pg_advisory_xact_lock(%s)", (partitions._LOCK,))
+            have = {
+                r[0]
+                for r in conn.execute(
+                    "SELECT c.relname FROM pg_inherits i JOIN pg_class c ON c.oid = i.inhrelid"
+                    " WHERE i.inhparent = 'predictions'::regclass"
+                )
+            }
+            for day in sorted({int(h) // 24 for h in hours}):
+                name = partitions.day_name(day)
+                if name not in have:
+                    conn.execute(
+                        f"CREATE TABLE {name} PARTITION OF predictions"
+                        f" FOR VALUES FROM ({day * 24}) TO ({day * 24 + 24})"
+                    )
         # Index builds after the load are much faster than index upkeep during it.
         idx = conn.execute(
             "SELECT indexname, indexdef FROM pg_indexes WHERE tablename = 'predictions'"
-            " AND indexname LIKE 'ix_%'"
+            " AND indexname NOT LIKE 'pk_%'"
         ).fetchall()
         for name, _ in idx:
             conn.execute(f'DROP INDEX "{name}"')
-        conn.execute("ALTER TABLE predictions DROP CONSTRAINT uq_predictions_model_pid")
         with conn.transaction():
             conn.execute("SET LOCAL session_replication_role = replica")  # skip the FK trigger
             with conn.cursor().copy(
@@ -194,11 +213,14 @@ def load(url: str, model_id: int, d: Data) -> None:
                 copy.write(b"\xff\xff")  # trailer
         conn.execute("SET maintenance_work_mem = '1GB'")
         conn.execute(
-            "ALTER TABLE predictions ADD CONSTRAINT uq_predictions_model_pid UNIQUE (model_id, pid)"
+            "INSERT INTO prediction_ids (model_id, pid, hour)"
+            " SELECT model_id, pid, hour FROM predictions WHERE model_id = %s",
+            (model_id,),
         )
         for _, definition in idx:
             conn.execute(definition)
         conn.execute("VACUUM (ANALYZE) predictions")  # hint bits and statistics, as in steady state
+        conn.execute("VACUUM (ANALYZE) prediction_ids")
 
 
 def setup_tenant(sa_url: str) -> tuple[int, str]:

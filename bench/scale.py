@@ -1,0 +1,289 @@
+"""Costs as the PostgreSQL store grows: does the work of a day cost the same at every size?
+
+For each size (default 1M and 5M predictions; `--sizes 10000000,50000000` for the full run)
+a database of its own gets a year of the furniture shop's orders (bench/windows_data.py:
+2025-01-01 to 2026-01-01, 99% labelled), loaded by COPY into the day partitions, rollups
+built by `belated rebuild`'s code. Then, in the same run:
+
+- label matching: batches of 1,000 and of 20 random stored ids found the way label ingest
+  finds them (through the id registry, then one day partition) against the same look-up on a
+  flat copy of the table with UNIQUE (model, id) (the plain alternative), and by id alone
+  across every partition (what the registry avoids);
+- a day of new work over HTTP (`belated serve`, loopback): the next day's predictions in
+  bulk requests of 10,000, then 20-prediction requests from 8 threads for 10 s, then labels
+  for predictions of the last 60 days (as many as a day's predictions) in bulk requests;
+- the refresh of that day's work (a child process, as the jobs run it);
+- the metrics query for 365 daily windows, p50 and p95 of 30 requests;
+- disk: the database, the predictions (all partitions) and the registry;
+- then retention: the raw days older than `--keep-days` (90) before the new day are dropped
+  (their rollups stay), and disk and the metrics query are measured again.
+
+Run: `python -m bench.scale [--sizes 1000000,5000000] [--keep-days 90]`.
+"""
+
+from __future__ import annotations
+
+import argparse
+import statistics
+import threading
+import time
+from datetime import UTC, datetime, timedelta
+from typing import Any
+
+import httpx
+import numpy as np
+import psycopg
+
+from bench import windows_data as wd
+from bench.common import Service, create_database, drop_database, markdown_table, percentile, pg_url
+from bench.windows import latency, run_child
+
+NEW_DAY = datetime(2026, 1, 1, tzinfo=UTC)
+MATCH_REGISTRY = """
+SELECT p.pid, p.row_id, p.ts, p.hour, p.actual, p.delay_h
+FROM unnest(%(ids)s::text[]) AS k(pid)
+JOIN prediction_ids r ON r.model_id = %(m)s AND r.pid = k.pid
+JOIN predictions p ON p.model_id = r.model_id AND p.pid = r.pid AND p.hour = r.hour"""
+MATCH_FLAT = """
+SELECT p.pid, p.row_id, p.ts, p.hour, p.actual, p.delay_h
+FROM unnest(%(ids)s::text[]) AS k(pid) JOIN bench_flat p ON p.model_id = %(m)s AND p.pid = k.pid"""
+MATCH_SCAN = """
+SELECT p.pid, p.row_id, p.ts, p.hour, p.actual, p.delay_h
+FROM unnest(%(ids)s::text[]) AS k(pid) JOIN predictions p ON p.model_id = %(m)s AND p.pid = k.pid"""
+
+
+def disk(url: str) -> dict[str, float]:
+    """MiB used by the database, the predictions' partitions and the id registry."""
+    with psycopg.connect(url) as conn:
+        db = conn.execute("SELECT pg_database_size(current_database())").fetchone()[0]
+        parts = conn.execute(
+            "SELECT coalesce(sum(pg_total_relation_size(inhrelid)), 0) FROM pg_inherits"
+            " WHERE inhparent = 'predictions'::regclass"
+        ).fetchone()[0]
+        reg = conn.execute("SELECT pg_total_relation_size('prediction_ids')").fetchone()[0]
+    return {"db": db / 2**20, "predictions": float(parts) / 2**20, "registry": reg / 2**20}
+
+
+def match(url: str, model_id: int, n: int, seed: int = 11) -> dict[str, float]:
+    """Median ms per batch of finding stored ids: registry, flat copy, across partitions."""
+    rng = np.random.default_rng(seed)
+    with psycopg.connect(url, autocommit=True) as conn:
+        conn.execute(
+            "CREATE TABLE bench_flat AS SELECT model_id, pid, row_id, ts, hour, actual, delay_h"
+            " FROM predictions"
+        )
+        conn.execute("ALTER TABLE bench_flat ADD UNIQUE (model_id, pid)")
+        conn.execute("VACUUM (ANALYZE) bench_flat")
+        out: dict[str, float] = {}
+        for size, repeats in ((1000, 30), (20, 200)):
+            times: dict[str, list[float]] = {"registry": [], "flat": [], "scan": []}
+            for i in range(repeats):
+                ids = [wd.pid(int(j)) for j in rng.choice(n, size, replace=False)]
+                plan = (("registry", MATCH_REGISTRY), ("flat", MATCH_FLAT), ("scan", MATCH_SCAN))
+                for name, sql in plan if i % 2 else plan[::-1]:
+                    if name == "scan" and i >= 10:
+                        continue  # slow by design: a few repeats tell its cost
+                    t0 = time.perf_counter()
+                    got = conn.execute(sql, {"ids": ids, "m": model_id}).fetchall()
+                    times[name].append((time.perf_counter() - t0) * 1000)
+                    assert len(got) == len(ids), (name, len(got))
+            for name, values in times.items():
+                out[f"{name}_{size}"] = statistics.median(values)
+        conn.execute("DROP TABLE bench_flat")
+    return out
+
+
+def new_day(n: int, seed: int = 5) -> list[dict[str, Any]]:
+    """A day of new orders after the loaded year (the same generator's distributions)."""
+    d = wd.generate(max(n // 365, 1000), seed=seed)
+    start = NEW_DAY.timestamp() - wd.YEAR_START.timestamp()
+    return [
+        {
+            "id": f"new-{i}",
+            "ts": datetime.fromtimestamp(
+                wd.YEAR_START.timestamp() + start + float(d.ts[i] - d.ts[0]) / 365, UTC
+            ).isoformat(),
+            "score": float(d.score[i]),
+            "tags": {"channel": wd.CHANNELS[d.channel[i]], "region": wd.REGIONS[d.region[i]]},
+        }
+        for i in range(d.n)
+    ]
+
+
+def http_day(service: Service, token: str, n: int, day: list[dict[str, Any]]) -> dict[str, float]:
+    """Rows/s of the day's work over HTTP: bulk predictions, small requests, bulk labels."""
+    url = f"{service.url}/v1/models/{wd.MODEL}"
+    headers = {"Authorization": f"Bearer {token}"}
+    out: dict[str, float] = {}
+    with httpx.Client(headers=headers, timeout=300) as client:
+        t0 = time.perf_counter()
+        for lo in range(0, len(day), 10_000):
+            r = client.post(f"{url}/predictions", json={"predictions": day[lo : lo + 10_000]})
+            r.raise_for_status()
+        out["bulk_rows_s"] = len(day) / (time.perf_counter() - t0)
+    sent, stop = [0] * 8, time.monotonic() + 10.0
+
+    def writer(k: int) -> None:
+        with httpx.Client(headers=headers, timeout=60) as c:
+            i = 0
+            while time.monotonic() < stop:
+                batch = [
+                    dict(day[(i * 20 + j) % len(day)], id=f"small-{k}-{i}-{j}") for j in range(20)
+                ]
+                c.post(f"{url}/predictions", json={"predictions": batch}).raise_for_status()
+                sent[k] += 20
+                i += 1
+
+    threads = [threading.Thread(target=writer, args=(k,)) for k in range(8)]
+    t0 = time.perf_counter()
+    for t in threads:
+        t.start()
+    for t in threads:
+        t.join()
+    out["small_rows_s"] = sum(sent) / (time.perf_counter() - t0)
+    # labels for orders of the last 60 days of the year, as many as the day's predictions
+    rng = np.random.default_rng(3)
+    lo_i = int(n * (305 / 365))
+    picks = rng.choice(np.arange(lo_i, n), size=min(len(day), n - lo_i), replace=False)
+    items = [{"id": wd.pid(int(i)), "actual": "1" if i % 7 == 0 else "0"} for i in picks]
+    with httpx.Client(headers=headers, timeout=300) as client:
+        t0 = time.perf_counter()
+        for lo in range(0, len(items), 10_000):
+            r = client.post(f"{url}/labels", json={"labels": items[lo : lo + 10_000]})
+            r.raise_for_status()
+        out["label_rows_s"] = len(items) / (time.perf_counter() - t0)
+    return out
+
+
+def metrics_latency(sa_url: str, token: str) -> tuple[float, float]:
+    """p50 and p95 ms of the 365-day metrics query on a fresh service."""
+    service = Service(sa_url, extra_env={"BELATED_LOG_FORMAT": "text"})
+    try:
+        service.wait_ready()
+        times, _, _ = latency(service, token, n=30)
+    finally:
+        service.stop()
+    return percentile(times, 0.5) * 1000, percentile(times, 0.95) * 1000
+
+
+def ingest_token(sa_url: str) -> str:
+    """A token with the ingest scope for the bench's project."""
+    from belated.store import keys
+    from belated.store.db import make_engine, make_sessionmaker, transaction
+
+    engine = make_engine(sa_url)
+    with transaction(make_sessionmaker(engine)) as session:
+        project = keys.get_or_create_project(session=session, name="furniture-shop")
+        _, token = keys.create(session=session, project_id=project.id, scopes=["ingest"])
+    engine.dispose()
+    return token
+
+
+def drop_old_days(sa_url: str, model_id: int, keep_days: int) -> dict[str, Any]:
+    """Retention as the jobs run it, at the end of the new day."""
+    from belated.store import raw_retention  # type: ignore[attr-defined]
+    from belated.store.db import make_engine, make_sessionmaker, transaction
+    from belated.store.tables import ModelRow
+
+    engine = make_engine(sa_url)
+    with transaction(make_sessionmaker(engine)) as session:
+        model = session.get(ModelRow, model_id)
+        assert model is not None
+        model.keep_raw_days = float(keep_days)
+        session.flush()
+        done = raw_retention.drop_raw_days(
+            session=session, model=model, now=NEW_DAY + timedelta(days=1)
+        )
+    engine.dispose()
+    return dict(done)
+
+
+def run_size(n: int, keep_days: int) -> dict[str, Any]:
+    """Every measurement at one size, in a database of its own."""
+    res: dict[str, Any] = {"rows": n}
+    name = create_database("belated_bench_scale")
+    url = pg_url(name)
+    sa_url = url.replace("postgresql://", "postgresql+psycopg://")
+    try:
+        model_id, read_token = wd.setup_tenant(sa_url)
+        token = ingest_token(sa_url)
+        t0 = time.perf_counter()
+        data = wd.generate(n)
+        wd.load(url, model_id, data)
+        res["load_s"] = time.perf_counter() - t0
+        res["rebuild"], _ = run_child("rebuild", sa_url, model_id)
+        res["disk"] = disk(url)
+        res["match"] = match(url, model_id, n)
+        day = new_day(n)
+        service = Service(sa_url, extra_env={"BELATED_LOG_FORMAT": "text"})
+        try:
+            service.wait_ready()
+            res["http"] = http_day(service, token, n, day)
+        finally:
+            service.stop()
+        res["refresh"], _ = run_child("refresh", sa_url, model_id)
+        res["p50"], res["p95"] = metrics_latency(sa_url, read_token)
+        res["retention"] = drop_old_days(sa_url, model_id, keep_days)
+        with psycopg.connect(url, autocommit=True) as conn:
+            conn.execute("VACUUM (ANALYZE)")
+        res["disk_after"] = disk(url)
+        res["p50_after"], res["p95_after"] = metrics_latency(sa_url, read_token)
+    finally:
+        drop_database(name)
+    return res
+
+
+def table(results: list[dict[str, Any]]) -> str:
+    """The figures of every size, one row each, and the largest size against the smallest."""
+    head = [
+        "rows",
+        "load s",
+        "disk MiB (preds/registry)",
+        "match 1000 ms reg/flat (×)",
+        "match 20 ms reg/flat (×)",
+        "by id across partitions ms (1000)",
+        "HTTP bulk preds rows/s",
+        "HTTP 20-pred req rows/s",
+        "HTTP labels rows/s",
+        "refresh of the day s",
+        "metrics 365 d p50/p95 ms",
+        "after retention: disk MiB, p50/p95 ms",
+    ]
+    body = []
+    for r in results:
+        m, h, d, a = r["match"], r["http"], r["disk"], r["disk_after"]
+        body.append(
+            [
+                f"{r['rows']:,}",
+                f"{r['load_s']:.0f}",
+                f"{d['db']:,.0f} ({d['predictions']:,.0f}/{d['registry']:,.0f})",
+                f"{m['registry_1000']:.1f}/{m['flat_1000']:.1f} "
+                f"({m['registry_1000'] / m['flat_1000']:.2f}×)",
+                f"{m['registry_20']:.2f}/{m['flat_20']:.2f} "
+                f"({m['registry_20'] / m['flat_20']:.2f}×)",
+                f"{m['scan_1000']:.0f}",
+                f"{h['bulk_rows_s']:,.0f}",
+                f"{h['small_rows_s']:,.0f}",
+                f"{h['label_rows_s']:,.0f}",
+                f"{r['refresh']['seconds']:.1f}",
+                f"{r['p50']:.0f}/{r['p95']:.0f}",
+                f"{a['db']:,.0f}, {r['p50_after']:.0f}/{r['p95_after']:.0f}",
+            ]
+        )
+    return markdown_table(head, body)
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__.split("\n")[0])
+    parser.add_argument("--sizes", default="1000000,5000000")
+    parser.add_argument("--keep-days", type=int, default=90)
+    args = parser.parse_args()
+    results = []
+    for n in (int(s) for s in args.sizes.split(",")):
+        results.append(run_size(n, args.keep_days))
+        print(results[-1], flush=True)
+    print(table(results))
+
+
+if __name__ == "__main__":
+    main()
