@@ -106,6 +106,10 @@ def test_reads_answer_as_the_rollups_stand_with_their_staleness(
     assert health["read_only"] is True and health["staleness_seconds"] == 42.25
     assert health["jobs"] == {"enabled": False, "leader": False}
     assert rc.get("/healthz").headers["x-belated-staleness"] == "42.250"
+    head = rc.head(path)  # a read method too: the GET's status and headers, no body
+    assert head.status_code == 200 and head.content == b""
+    assert head.headers["x-belated-staleness"] == "42.250"
+    assert head.headers["content-length"] == r.headers["content-length"]
     scrape = rc.get("/metrics").text
     assert "belated_staleness_seconds 42.25" in scrape
     assert "belated_read_only 1.0" in scrape

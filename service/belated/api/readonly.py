@@ -90,12 +90,17 @@ class ReadOnly:
             await _refuse(send, scope["method"], headers)
             return
 
+        head = scope["method"] == "HEAD"
+
         async def stamped(message: dict[str, Any]) -> None:
             if message["type"] == "http.response.start" and headers:
                 message = {**message, "headers": [*message.get("headers", []), *headers]}
+            elif head and message["type"] == "http.response.body":
+                message = {**message, "body": b""}  # a HEAD is the GET without its body
             await send(message)
 
-        await self.app(scope, receive, stamped)
+        # the routes declare GET only; a HEAD is answered as its GET (RFC 9110, 9.3.2)
+        await self.app({**scope, "method": "GET"} if head else scope, receive, stamped)
 
     async def _staleness(self) -> list[tuple[bytes, bytes]]:
         state = self.freshness.peek()
