@@ -283,3 +283,30 @@ def test_read_only_sqlite_serves_reads_and_refuses_writes(tmp_path: Path) -> Non
         assert tenant.project_id > 0
     engine.dispose()
     assert "readonly" not in (tmp_path / "ro.log").read_text().lower()
+
+
+def test_several_read_only_processes_share_the_port(served: Served, tmp_path: Path) -> None:
+    """`--workers 2 --read-only`: each process builds its app from the environment, which
+    must carry the replica's address and the read-only mode."""
+    assert served.pair.standby is not None
+    standby_url = served.pair.standby.url("belated")
+    headers = {"Authorization": served.tenant.client.headers["Authorization"]}
+    before = _row_counts(served.primary_dsn)
+    with (
+        ServiceProcess(
+            served.pair.primary.url("belated"),
+            tmp_path / "workers.log",
+            args=("--read-only", "--workers", "2", "--database-url", standby_url),
+        ) as ro,
+        httpx.Client(base_url=ro.url, timeout=30, headers=headers) as c,
+    ):
+        for _ in range(6):  # connections land on either process
+            with httpx.Client(base_url=ro.url, timeout=30, headers=headers) as one:
+                health = one.get("/healthz").json()
+                assert health["read_only"] is True and health["standby"] is True
+                r = one.post("/v1/models", json={"name": "stools"})
+                assert r.status_code == 405 and r.headers["allow"] == "GET, HEAD"
+        assert c.get("/v1/models").status_code == 200
+    assert _row_counts(served.primary_dsn) == before
+    log = (tmp_path / "workers.log").read_text().lower()
+    assert "read-only transaction" not in log and "traceback" not in log
