@@ -1,4 +1,5 @@
-"""`belated serve --read-only` on a real streaming hot standby, and on SQLite.
+"""`belated serve --read-only` on a real streaming hot standby (SQLite: its neighbour
+test_read_only_sqlite.py).
 
 A private primary cluster and its `pg_basebackup -R` standby (tests/hostile/replica.py):
 the primary is migrated and served with its jobs on; the standby is served read-only. What
@@ -10,9 +11,6 @@ attempted (a hot standby answers "cannot execute ... in a read-only transaction"
 
 from __future__ import annotations
 
-import sqlite3
-import subprocess
-import sys
 from collections.abc import Iterator
 from dataclasses import dataclass
 from pathlib import Path
@@ -228,61 +226,6 @@ def test_the_replica_never_tries_a_write(served: Served) -> None:
     server_log = served.pair.standby.log.read_text()
     assert "read-only transaction" not in server_log
     assert "ERROR:" not in server_log, served.pair.standby.tail()
-
-
-def _serve(args: list[str], cwd: Path) -> subprocess.CompletedProcess[str]:
-    return subprocess.run(
-        [sys.executable, "-m", "belated", "serve", "--port", "0", *args],
-        capture_output=True,
-        text=True,
-        timeout=60,
-        cwd=cwd,
-        check=False,
-    )
-
-
-def test_read_only_sqlite_refuses_a_store_it_cannot_serve_before_listening(
-    tmp_path: Path,
-) -> None:
-    missing = tmp_path / "missing.db"
-    done = _serve(["--read-only", "--database-url", f"sqlite:///{missing}"], tmp_path)
-    assert done.returncode == 2
-    assert "--read-only" in done.stderr and "does not answer" in done.stderr
-    assert not missing.exists()  # a read-only start creates nothing
-    empty = tmp_path / "empty.db"
-    sqlite3.connect(empty).close()
-    done = _serve(["--read-only", "--database-url", f"sqlite:///{empty}"], tmp_path)
-    assert done.returncode == 2 and "no migration" in done.stderr
-    assert "belated migrate" in done.stderr
-    with sqlite3.connect(empty) as conn:  # nothing migrated it
-        assert conn.execute("SELECT count(*) FROM sqlite_master").fetchone() == (0,)
-
-
-def test_read_only_sqlite_serves_reads_and_refuses_writes(tmp_path: Path) -> None:
-    """A second process reads the SQLite file its writer serves (BELATED_READ_ONLY)."""
-    db = tmp_path / "shop.db"
-    url = f"sqlite:///{db}"
-    upgrade(url)
-    engine = make_engine(url)
-    with (
-        ServiceProcess(url, tmp_path / "ro.log", env={"BELATED_READ_ONLY": "true"}) as ro,
-        httpx.Client(base_url=ro.url, timeout=30) as c,
-    ):
-        tenant = make_tenant(make_sessionmaker(engine), c)
-        health = c.get("/healthz").json()
-        assert health["read_only"] is True and health["standby"] is False
-        assert health["staleness_seconds"] is None  # no refresh has completed yet
-        assert "x-belated-staleness" not in c.get("/healthz").headers
-        assert c.get("/v1/models").json()["items"] == []
-        r = c.post("/v1/models", json={"name": "sofas"})
-        assert r.status_code == 405 and r.headers["allow"] == "GET, HEAD"
-        with engine.connect() as conn:
-            from sqlalchemy import text
-
-            assert conn.execute(text("SELECT count(*) FROM models")).scalar_one() == 0
-        assert tenant.project_id > 0
-    engine.dispose()
-    assert "readonly" not in (tmp_path / "ro.log").read_text().lower()
 
 
 def test_several_read_only_processes_share_the_port(served: Served, tmp_path: Path) -> None:
