@@ -14,6 +14,7 @@ from belated.alerts import delivery
 from belated.api import (
     openapi,
     problems,
+    readonly,
     routes_alerts,
     routes_erasure,
     routes_health,
@@ -38,10 +39,14 @@ from belated.store.grouped import GroupWriter
 def create_app(
     settings: Settings | None = None, *, engine: Engine | None = None, jobs: bool | None = None
 ) -> Any:
-    """Build the ASGI app; `jobs` overrides BELATED_JOBS (the scheduler in this process)."""
+    """Build the ASGI app; `jobs` overrides BELATED_JOBS (the scheduler in this process).
+
+    With `settings.read_only` (a replica): read-only connections, no jobs, no refresh
+    before reads, writes answered 405 (api/readonly.py)."""
     settings = settings or get_settings()
-    engine = engine or make_engine(settings.database_url)
-    run_jobs = settings.jobs if jobs is None else jobs
+    read_only = settings.read_only
+    engine = engine or make_engine(settings.database_url, read_only=read_only)
+    run_jobs = (settings.jobs if jobs is None else jobs) and not read_only
 
     @asynccontextmanager
     async def lifespan(app: FastAPI) -> AsyncIterator[None]:
@@ -66,7 +71,7 @@ def create_app(
     )
     app.state.settings = settings
     app.state.engine = engine
-    app.state.sessions = make_sessionmaker(engine)
+    app.state.sessions = make_sessionmaker(engine, stale_ok=read_only)
     app.state.counters = Counters()
     app.state.lookups = Lookups()
     app.state.group_writer = GroupWriter(app.state.sessions)
@@ -89,6 +94,8 @@ def create_app(
         app.include_router(module.router)
     _optional_routers(app)
     openapi.install(app)
+    if read_only:
+        return readonly.wrap(app, BodyLimit(app, settings.max_body_bytes), engine)
     return BodyLimit(app, settings.max_body_bytes, SmallWrites(app.state))
 
 

@@ -19,6 +19,7 @@ class Settings(BaseSettings):
     host: str = "127.0.0.1"
     port: int = Field(8000, ge=0, le=65535)
     jobs: bool = True
+    read_only: bool = False  # serve stale-ok reads from a replica: no writes, no jobs
     log_format: Literal["text", "json"] = "text"
     max_batch: int = Field(10_000, ge=1, le=1_000_000)
     max_body_bytes: int = Field(16 * 1024 * 1024, ge=1024)

@@ -180,6 +180,7 @@ class ServiceProcess:
         env: dict[str, str] | None = None,
         port: int | None = None,
         set_port_setting: bool = True,
+        args: tuple[str, ...] = (),
     ) -> None:
         self.port = port or free_port()
         self.url = f"http://127.0.0.1:{self.port}"
@@ -197,6 +198,7 @@ class ServiceProcess:
                 self.env.pop(key, None)
         if set_port_setting:
             self.env["BELATED_PORT"] = str(self.port)
+        self.args = args  # more options of `serve` (for example --read-only)
         self.proc: subprocess.Popen[bytes] | None = None
         self._cwd = tempfile.mkdtemp(prefix="belated-cwd-")  # no stray .env is read
 
@@ -204,7 +206,7 @@ class ServiceProcess:
         """Start the process and wait until /healthz answers."""
         with open(self.log, "ab") as out:
             self.proc = subprocess.Popen(
-                [sys.executable, "-m", "belated", "serve", "--port", str(self.port)],
+                [sys.executable, "-m", "belated", "serve", "--port", str(self.port), *self.args],
                 stdout=out,
                 stderr=subprocess.STDOUT,
                 env=self.env,

@@ -62,6 +62,17 @@ HEALTH = (
         "belated_webhook_deliveries_pending",
         "Webhook deliveries not yet delivered.",
     ),
+    (
+        "staleness_seconds",
+        "belated_staleness_seconds",
+        "Age of the answers: 0 on a read-write service; on a read-only replica, seconds since"
+        " the start of the primary's last complete refresh.",
+    ),
+    (
+        "replay_lag_seconds",
+        "belated_replay_lag_seconds",
+        "On a read-only standby, seconds since the last transaction it replayed.",
+    ),
 )
 
 
@@ -108,6 +119,8 @@ class ScrapeCollector:
         yield _gauge("belated_store_up", "1 when the store answers.", up)
         leader = 1 if health.get("jobs", {}).get("leader") else 0
         yield _gauge("belated_jobs_leader", "1 when this process runs the scheduled jobs.", leader)
+        read_only = 1 if health.get("read_only") else 0
+        yield _gauge("belated_read_only", "1 when this process is a read-only replica.", read_only)
         for key, name, help_text in HEALTH:
             if health.get(key) is not None:
                 yield _gauge(name, help_text, float(health[key]))

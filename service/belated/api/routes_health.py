@@ -28,8 +28,14 @@ def health(request: Request) -> dict[str, Any]:
         "oldest_dirty_bucket": None,
         "outbox_backlog": None,
         "pending_labels_dropped": None,
+        # a read-write service refreshes before every read: its answers are never stale
+        "read_only": False,
+        "staleness_seconds": 0.0,
     }
+    freshness = getattr(state, "freshness", None)
     try:
+        if freshness is not None:  # a read-only replica (api/readonly.py)
+            answer.update(freshness.report())
         with state.engine.connect() as conn:
             store_health.ping(conn=conn)
             answer.update(store_health.refresh_state(conn=conn, now=clock.now()))
@@ -43,6 +49,6 @@ def health(request: Request) -> dict[str, Any]:
 @router.get("/healthz")
 def healthz(request: Request) -> JSONResponse:
     """Store reachable, jobs leader, last refresh, refresh lag, oldest dirty bucket, backlog,
-    pending labels dropped past keep_raw_days."""
+    pending labels dropped past keep_raw_days, read-only and staleness."""
     answer = health(request)
     return JSONResponse(answer, status_code=200 if answer["store"] == "up" else 503)

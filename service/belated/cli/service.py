@@ -5,7 +5,7 @@ from __future__ import annotations
 
 import typer
 
-from belated.config import get_settings
+from belated.config import Settings, get_settings
 
 
 def store_url(database_url: str | None) -> str:
@@ -34,6 +34,13 @@ def serve(
         help="API processes on the one port (PostgreSQL only); the jobs still run once, in"
         " whichever process holds the leader lock.",
     ),
+    read_only: bool = typer.Option(
+        False,
+        "--read-only",
+        help="Serve reads from a replica as they are, saying how stale (X-Belated-Staleness);"
+        " no jobs, no migrations, writes answered 405. Also BELATED_READ_ONLY.",
+    ),
+    database_url: str | None = typer.Option(None, help="Overrides BELATED_DATABASE_URL."),
 ) -> None:
     """Run the HTTP service (and the scheduled jobs unless --no-jobs)."""
     import os
@@ -45,9 +52,11 @@ def serve(
     from belated.store.db import is_sqlite
     from belated.store.migrate import upgrade
 
-    settings = get_settings()
+    settings = _serve_settings(database_url, read_only)
     setup_logging(settings.log_format)
-    if is_sqlite(settings.database_url):
+    if settings.read_only:
+        _check_replica(settings.database_url)
+    elif is_sqlite(settings.database_url):
         upgrade(settings.database_url)  # the embedded store migrates itself
     # the options become the settings, so the service knows its own address (webhooks
     # must never point back at it)
@@ -67,6 +76,8 @@ def serve(
             BELATED_HOST=settings.host,
             BELATED_PORT=str(settings.port),
             BELATED_JOBS="true" if settings.jobs and not no_jobs else "false",
+            BELATED_DATABASE_URL=settings.database_url,
+            BELATED_READ_ONLY="true" if settings.read_only else "false",
         )
         uvicorn.run(
             "belated.cli.service:api_process",
@@ -80,6 +91,32 @@ def serve(
         return
     asgi = create_app(settings, jobs=settings.jobs and not no_jobs)
     uvicorn.run(asgi, host=settings.host, port=settings.port, log_config=None, access_log=False)
+
+
+def _serve_settings(database_url: str | None, read_only: bool) -> Settings:
+    """The settings with serve's --database-url and --read-only applied (validated)."""
+    settings = get_settings()
+    update: dict[str, object] = {"read_only": settings.read_only or read_only}
+    if database_url is not None:
+        try:
+            update["database_url"] = Settings.model_validate(
+                {**settings.model_dump(), "database_url": database_url}
+            ).database_url
+        except ValueError as exc:
+            typer.echo(f"belated serve: {exc}", err=True)
+            raise typer.Exit(2) from None
+    return settings.model_copy(update=update)
+
+
+def _check_replica(url: str) -> None:
+    """A read-only service refuses to start, before anything listens, on a store it cannot
+    serve (it never migrates: a standby refuses writes)."""
+    from belated.store.migrate import not_current
+
+    reason = not_current(url)
+    if reason is not None:
+        typer.echo(f"belated serve --read-only: {reason}", err=True)
+        raise typer.Exit(2)
 
 
 def api_process() -> object:

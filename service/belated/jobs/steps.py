@@ -20,7 +20,7 @@ from belated.alerts.tables import Rule
 from belated.clock import now
 from belated.config import Settings
 from belated.metrics import figures
-from belated.store import partitions, refresh, retention
+from belated.store import partitions, refresh, retention, staleness
 from belated.store.db import transaction
 from belated.store.tables import ModelRow
 
@@ -46,8 +46,11 @@ def partitions_step(run: StepContext) -> dict[str, Any]:
 
 def refresh_step(run: StepContext) -> dict[str, Any]:
     """Join pending labels, mark crossed implied negatives, recompute dirty buckets."""
+    started = now()
     marked = refresh.join_and_mark(run.sessions)
     done = refresh.refresh_all(run.sessions, max_values=run.settings.max_segment_values)
+    # only once complete: a replica's staleness is counted from this start (store/staleness)
+    staleness.record_refreshed(run.sessions, started=started)
     return {"marked": marked, "buckets": done}
 
 

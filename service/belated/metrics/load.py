@@ -9,6 +9,7 @@ from sqlalchemy import and_, or_, select
 from sqlalchemy.orm import Session
 
 from belated.store import refresh, rollups, segments
+from belated.store.db import STALE_OK
 from belated.store.rollup_tables import Rollup
 from belated.store.tables import ModelRow
 from belated.store.totals import Totals
@@ -21,7 +22,12 @@ def epoch_hour(dt: datetime) -> int:
 
 def ensure_fresh(session: Session, model: ModelRow, lo: int, hi: int, max_values: int) -> None:
     """Read-your-writes: join raced pending labels, mark hours whose predictions crossed
-    `negative_after_days` by now, and refresh the model's dirty buckets in [lo, hi)."""
+    `negative_after_days` by now, and refresh the model's dirty buckets in [lo, hi).
+
+    Not in a stale-ok session (a read-only replica): a hot standby refuses the refresh's
+    locks and writes, and its answers say how stale they are instead."""
+    if session.info.get(STALE_OK):
+        return
     refresh.join_and_mark_model(session, model)
     # one transaction takes its locks in ascending hour order, as writers mark them, so a
     # read and a writer never wait on each other in a cycle

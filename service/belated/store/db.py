@@ -20,22 +20,26 @@ def is_sqlite(engine_or_url: Engine | str) -> bool:
     return url.startswith("sqlite")
 
 
-def make_engine(url: str, **kwargs: Any) -> Engine:
-    """Create an engine with the settings each store needs for concurrent use."""
+def make_engine(url: str, *, read_only: bool = False, **kwargs: Any) -> Engine:
+    """Create an engine with the settings each store needs for concurrent use; `read_only`
+    opens every connection read-only, so that a write fails loudly (`serve --read-only`)."""
     if is_sqlite(url):
         # JSON is written as UTF-8 (not ASCII escapes) so that json_extract paths match keys
         # such as 'région' as sent
         engine = create_engine(
-            url,
+            read_only_sqlite_url(url) if read_only else url,
             connect_args={"check_same_thread": False, "timeout": 30},
             json_serializer=lambda obj: orjson.dumps(obj).decode(),
             **kwargs,
         )
-        _configure_sqlite(engine)
+        _configure_sqlite(engine, read_only=read_only)
         return engine
     # per-row id lookups and updates want index plans; the default random_page_cost of 4
     # (spinning disks) makes the planner hash-join whole tables instead
-    kwargs.setdefault("connect_args", {"options": "-c random_page_cost=1.1"})
+    options = "-c random_page_cost=1.1"
+    if read_only:  # a hot standby refuses writes anyway; a primary must refuse them too
+        options += " -c default_transaction_read_only=on"
+    kwargs.setdefault("connect_args", {"options": options})
     kwargs.setdefault("pool_size", 10)
     kwargs.setdefault("max_overflow", 20)
     engine = create_engine(url, **kwargs)
@@ -72,19 +76,31 @@ def _ping_when_idle(engine: Engine) -> None:
             raise DisconnectionError("the pooled connection is gone")
 
 
-def _configure_sqlite(engine: Engine) -> None:
+def read_only_sqlite_url(url: str) -> str:
+    """The same SQLite file opened with `mode=ro`: a write fails, and no file is created."""
+    path = url.split(":///", 1)[1] if ":///" in url else ""
+    if not path or path.startswith(("file:", ":memory:")):
+        raise ValueError("a read-only SQLite store needs a file path (sqlite:///path/to.db)")
+    path, _, query = path.partition("?")
+    extra = f"&{query}" if query else ""
+    return f"sqlite:///file:{path}?mode=ro&uri=true{extra}"
+
+
+def _configure_sqlite(engine: Engine, *, read_only: bool = False) -> None:
     """WAL, a busy timeout, foreign keys, and BEGIN IMMEDIATE for every transaction.
 
     A deferred transaction that reads then writes fails with SQLITE_BUSY_SNAPSHOT whatever
     the timeout, so every transaction takes the write lock up front; SQLite serialises
-    writers anyway.
+    writers anyway. A read-only engine never writes: its deferred BEGIN leaves the write
+    lock to the process that writes.
     """
 
     @event.listens_for(engine, "connect")
     def _on_connect(dbapi_conn: Any, _record: Any) -> None:
         dbapi_conn.isolation_level = None  # we issue BEGIN ourselves
         cur = dbapi_conn.cursor()
-        cur.execute("PRAGMA journal_mode=WAL")
+        if not read_only:  # a reader takes the journal mode the writer chose
+            cur.execute("PRAGMA journal_mode=WAL")
         cur.execute("PRAGMA busy_timeout=30000")
         cur.execute("PRAGMA foreign_keys=ON")
         cur.execute("PRAGMA synchronous=NORMAL")
@@ -97,12 +113,16 @@ def _configure_sqlite(engine: Engine) -> None:
 
     @event.listens_for(engine, "begin")
     def _on_begin(conn: Any) -> None:
-        conn.exec_driver_sql("BEGIN IMMEDIATE")
+        conn.exec_driver_sql("BEGIN" if read_only else "BEGIN IMMEDIATE")
 
 
-def make_sessionmaker(engine: Engine) -> sessionmaker[Session]:
-    """Sessions that keep loaded objects usable after commit."""
-    return sessionmaker(bind=engine, expire_on_commit=False)
+def make_sessionmaker(engine: Engine, *, stale_ok: bool = False) -> sessionmaker[Session]:
+    """Sessions that keep loaded objects usable after commit; `stale_ok` sessions read the
+    rollups as they are, never refreshing first (a read-only replica, metrics/load.py)."""
+    return sessionmaker(bind=engine, expire_on_commit=False, info={STALE_OK: stale_ok})
+
+
+STALE_OK = "stale_ok"
 
 
 @contextmanager

@@ -43,3 +43,33 @@ def upgrade(url: str, revision: str = "head") -> None:
 def downgrade(url: str, revision: str = "base") -> None:
     """Take the store at `url` down to `revision`."""
     command.downgrade(alembic_config(url), revision)
+
+
+def not_current(url: str) -> str | None:
+    """Why the store at `url` cannot be served read-only (unreachable, or not migrated to
+    this version's head), or None when it can; opens it read-only and writes nothing."""
+    from alembic.runtime.migration import MigrationContext
+    from alembic.script import ScriptDirectory
+    from sqlalchemy.exc import SQLAlchemyError
+
+    from belated.store.db import make_engine
+
+    heads = set(ScriptDirectory.from_config(alembic_config(url)).get_heads())
+    try:
+        engine = make_engine(url, read_only=True)
+    except ValueError as exc:
+        return str(exc)
+    try:
+        with engine.connect() as conn:
+            current = set(MigrationContext.configure(conn).get_current_heads())
+    except SQLAlchemyError as exc:
+        return f"the store does not answer ({type(exc).__name__}: {str(exc).splitlines()[0]})"
+    finally:
+        engine.dispose()
+    if current != heads:
+        at = ", ".join(sorted(current)) or "no migration"
+        return (
+            f"the store is at {at}, this version needs {', '.join(sorted(heads))}: run"
+            " `belated migrate` against the primary (a replica is never migrated itself)"
+        )
+    return None
