@@ -11,7 +11,7 @@ from sqlalchemy.orm import Session
 
 from belated.clock import clock
 from belated.ingest.validate import LabelIn
-from belated.store import bulk, dirty
+from belated.store import bulk, dirty, partitions
 from belated.store.dialect import is_postgres, upsert
 from belated.store.tables import Label, PendingLabel, Prediction, PredictionId
 from belated.timeutil import to_utc
@@ -61,6 +61,7 @@ SELECT p.pid, p.row_id, p.ts, p.hour, p.actual, p.delay_h
 FROM unnest(%(ids)b::text[]) AS k(pid)
 JOIN prediction_ids r ON r.model_id = %(m)s AND r.pid = k.pid
 JOIN predictions p ON p.model_id = r.model_id AND p.pid = r.pid AND p.hour = r.hour
+WHERE p.hour = ANY(%(hours)b::int4[])
 ORDER BY p.row_id
 FOR UPDATE OF p
 """
@@ -69,8 +70,11 @@ FOR UPDATE OF p
 def _targets(session: Session, model_id: int, ids: list[str]) -> dict[str, _Stored]:
     found: dict[str, _Stored] = {}
     if is_postgres(session):
+        hours = partitions.hours_of(session, model_id, ids)
+        if not hours:
+            return found
         for pid, row_id, ts, hour, actual, delay_h in bulk.fetch_all(
-            session, _TARGETS_PG, {"ids": ids, "m": model_id}
+            session, _TARGETS_PG, {"ids": ids, "m": model_id, "hours": hours}
         ):
             found[pid] = _Stored(row_id, to_utc(ts), hour, actual, delay_h)
         return found
@@ -135,6 +139,7 @@ WITH t AS MATERIALIZED (
     p.actual AS old_actual, p.delay_h AS old_delay_h
   FROM {_IN_STAGE} s JOIN prediction_ids r ON r.model_id = %(m)s AND r.pid = s.pid
   JOIN predictions p ON p.model_id = r.model_id AND p.pid = r.pid AND p.hour = r.hour
+  WHERE p.hour = ANY(%(hours)s::int4[])
   ORDER BY p.row_id
   FOR UPDATE OF p
 ), ch AS MATERIALIZED (
@@ -143,7 +148,7 @@ WITH t AS MATERIALIZED (
   FROM t WHERE t.old_actual IS DISTINCT FROM t.actual
 ), upd AS (
   UPDATE predictions p SET actual = ch.actual, label_ts = ch.label_ts, delay_h = ch.delay_h
-  FROM ch WHERE p.row_id = ch.row_id AND p.hour = ch.hour
+  FROM ch WHERE p.row_id = ch.row_id AND p.hour = ch.hour AND p.hour = ANY(%(hours)s::int4[])
 ), hist AS (
   INSERT INTO labels (model_id, pid, actual, ts, change, received_at)
   SELECT %(m)s, pid, actual, label_ts,
@@ -186,8 +191,18 @@ def _ingest_set_pg(
         ((label.pid, label.actual, label.ts) for label in items),
         types=("text", "text", "timestamptz"),
     )
+    stored_hours = [
+        int(h)
+        for (h,) in session.execute(
+            text(
+                f"SELECT DISTINCT r.hour FROM {_IN_STAGE} s"
+                " JOIN prediction_ids r ON r.model_id = :m AND r.pid = s.pid"
+            ),
+            {"m": model_id},
+        )
+    ]
     found, matched, corrected, pending, hours = bulk.fetch_all(
-        session, _SET_WRITE, {"m": model_id, "at": received}
+        session, _SET_WRITE, {"m": model_id, "at": received, "hours": stored_hours}
     )[0]
     answer = {
         "matched": matched,
@@ -303,7 +318,7 @@ WITH upd AS (
   UPDATE predictions p SET actual = u.actual, label_ts = u.label_ts, delay_h = u.delay_h
   FROM unnest(%(u_row)b::int8[], %(u_hour)b::int4[], %(u_actual)b::text[],
     %(u_ts)b::timestamptz[], %(u_delay)b::float8[]) AS u(row_id, hour, actual, label_ts, delay_h)
-  WHERE p.row_id = u.row_id AND p.hour = u.hour
+  WHERE p.row_id = u.row_id AND p.hour = u.hour AND p.hour = ANY(%(hours)b::int4[])
 ), hist AS (
   INSERT INTO labels (model_id, pid, actual, ts, change, received_at)
   SELECT %(m)s, * FROM unnest(%(h_pid)b::text[], %(h_actual)b::text[],
@@ -401,8 +416,14 @@ def _update_pg(session: Session, rows: list[dict[str, Any]]) -> None:
             "UPDATE predictions p SET actual = u.actual, label_ts = u.label_ts,"
             " delay_h = u.delay_h FROM unnest(%b::int8[], %b::int4[], %b::text[],"
             " %b::timestamptz[], %b::float8[]) AS u(row_id, hour, actual, label_ts, delay_h)"
-            " WHERE p.row_id = u.row_id AND p.hour = u.hour",
-            [[r[c] for r in rows] for c in ("row_id", "hour", "actual", "label_ts", "delay_h")],
+            " WHERE p.row_id = u.row_id AND p.hour = u.hour AND p.hour = ANY(%b::int4[])",
+            [
+                *(
+                    [r[c] for r in rows]
+                    for c in ("row_id", "hour", "actual", "label_ts", "delay_h")
+                ),
+                sorted({r["hour"] for r in rows}),
+            ],
         )
         return
     bulk.temp_table(session, _STAGE, _STAGE_DDL)
@@ -417,8 +438,9 @@ def _update_pg(session: Session, rows: list[dict[str, Any]]) -> None:
         text(
             "UPDATE predictions p SET actual = s.actual, label_ts = s.label_ts,"
             f" delay_h = s.delay_h FROM {_STAGE} s WHERE p.row_id = s.row_id"
-            " AND p.hour = s.hour"
-        )
+            " AND p.hour = s.hour AND p.hour = ANY(:hours)"
+        ),
+        {"hours": sorted({r["hour"] for r in rows})},
     )
 
 
@@ -494,6 +516,11 @@ def join_pending(*, session: Session, model_id: int, ids: list[str] | None) -> s
         )
         .where(PendingLabel.model_id == model_id)
     )
+    if is_postgres(session) and ids is not None:  # only the day partitions of these ids
+        hours = partitions.hours_of(session, model_id, ids)
+        if not hours:
+            return set()
+        query = query.where(Prediction.hour.in_(hours))
     if is_postgres(session):
         # found through the registry (one day partition each, store/partitions.py); lock
         # both rows, so that a label written meanwhile for this id (which deletes the

@@ -182,3 +182,22 @@ def include_object(dialect: str) -> IncludeHook:
 # the per-table uniqueness of (model, id) is the registry's on PostgreSQL; the partitioned
 # table has a unique index of (model, id, hour) instead
 _PG_ONLY_OR_NOT = {"uq_predictions_model_pid", "uq_predictions_model_pid_hour"}
+
+
+_HOURS_SQL = """
+SELECT DISTINCT r.hour FROM unnest(%(ids)b::text[]) AS k(pid)
+JOIN prediction_ids r ON r.model_id = %(m)s AND r.pid = k.pid
+"""
+
+
+def hours_of(session: Session, model_id: int, ids: list[str]) -> list[int]:
+    """The hours of the stored predictions among `ids`, from the registry (PostgreSQL).
+
+    A query on `predictions` that names its hours as a parameter is planned over the day
+    partitions of those hours only: without them, planning alone visits every partition
+    (about 0.7 ms each on this machine, 250 ms for a year)."""
+    raw = session.connection().connection.driver_connection
+    assert raw is not None
+    with raw.cursor() as cur:
+        rows = cur.execute(_HOURS_SQL, {"ids": ids, "m": model_id}, prepare=True).fetchall()
+    return sorted(int(r[0]) for r in rows)

@@ -46,8 +46,11 @@ def existing(*, session: Session, model_id: int, ids: list[str]) -> dict[str, Pr
         Prediction.tags,
     )
     pg = is_postgres(session)
+    hours = partitions.hours_of(session, model_id, ids) if pg and ids else []
+    if pg and not hours:
+        return found
     for cond in bulk.id_filters(session, PredictionId.pid if pg else Prediction.pid, ids):
-        if pg:  # through the registry: one partition probed per id
+        if pg:  # through the registry, in the day partitions of those ids only
             query = (
                 select(*cols)
                 .select_from(PredictionId)
@@ -57,7 +60,7 @@ def existing(*, session: Session, model_id: int, ids: list[str]) -> dict[str, Pr
                     & (Prediction.pid == PredictionId.pid)
                     & (Prediction.hour == PredictionId.hour),
                 )
-                .where(PredictionId.model_id == model_id, cond)
+                .where(PredictionId.model_id == model_id, cond, Prediction.hour.in_(hours))
             )
         else:
             query = select(*cols).where(Prediction.model_id == model_id, cond)

@@ -74,11 +74,12 @@ class Part:
     whole_model_only: bool = False
 
 
-def _hours_sql(scope: Scope) -> str:
+def _hours_sql(scope: Scope, alias: str = "") -> str:
+    a = f"{alias}." if alias else ""
     if isinstance(scope.hours, range):
         lo, hi = scope.hours.start, scope.hours.stop
-        return f"model_id = :m AND hour >= {int(lo)} AND hour < {int(hi)}"
-    return f"model_id = :m AND hour IN ({','.join(str(int(h)) for h in scope.hours)})"
+        return f"{a}model_id = :m AND {a}hour >= {int(lo)} AND {a}hour < {int(hi)}"
+    return f"{a}model_id = :m AND {a}hour IN ({','.join(str(int(h)) for h in scope.hours)})"
 
 
 def _changed_rows(scope: Scope) -> str:
@@ -97,8 +98,10 @@ def _changed_rows(scope: Scope) -> str:
         "(SELECT p.model_id, p.hour, p.ts, p.score, p.predicted, p.tags, c.actual,"
         f" c.delay_h, c.w, {_CUTOFF} AS negative_cutoff"
         f" FROM ({old} UNION ALL {new}) AS c"
-        # the hour as well: on PostgreSQL it names the one day partition holding the row
-        " JOIN predictions p ON p.row_id = c.row_id AND p.hour = c.hour) AS predictions"
+        # the hour as well: on PostgreSQL it names the one day partition holding the row,
+        # and the scope's hours keep the plan to the day partitions of those hours
+        " JOIN predictions p ON p.row_id = c.row_id AND p.hour = c.hour"
+        f" WHERE {_hours_sql(scope, 'p')}) AS predictions"
     )
 
 
@@ -116,11 +119,7 @@ def _erased_rows(scope: Scope, postgres: bool) -> str:
     ids = ",".join(str(int(r)) for r in scope.erased) or "NULL"
     # on PostgreSQL the hours prune the day partitions; on SQLite they let it scan every
     # row of those hours through the hour index
-    hours = ""
-    if postgres and isinstance(scope.hours, range):
-        hours = f" AND p.hour >= {int(scope.hours.start)} AND p.hour < {int(scope.hours.stop)}"
-    elif postgres:
-        hours = f" AND p.hour IN ({','.join(str(int(h)) for h in scope.hours) or 'NULL'})"
+    hours = f" AND {_hours_sql(scope, 'p')}" if postgres and scope.hours else ""
     return (
         "(SELECT p.model_id, p.hour, p.ts, p.score, p.predicted, p.tags, p.actual,"
         f" p.delay_h, -1 AS w, {_CUTOFF} AS negative_cutoff"
