@@ -62,7 +62,7 @@ SELECT p.pid, p.row_id, p.hour
 FROM unnest(%(ids)b::text[]) AS k(pid)
 JOIN prediction_ids r ON r.model_id = %(m)s AND r.pid = k.pid
 JOIN predictions p ON p.model_id = r.model_id AND p.pid = r.pid AND p.hour = r.hour
-WHERE p.hour = ANY(%(hours)b::int4[])
+WHERE {hours}
 ORDER BY p.row_id
 FOR UPDATE OF p
 """
@@ -73,8 +73,9 @@ def _stored(session: Session, model_id: int, ids: list[str]) -> dict[str, tuple[
     found: dict[str, tuple[int, int]] = {}
     if is_postgres(session):
         hours = partitions.hours_of(session, model_id, ids)
-        params = {"ids": ids, "m": model_id, "hours": hours}
-        for pid, row_id, hour in bulk.fetch_all(session, _LOCK_PG, params) if hours else ():
+        sql = _LOCK_PG.format(hours=partitions.hours_clause(hours))
+        params = {"ids": ids, "m": model_id}
+        for pid, row_id, hour in bulk.fetch_all(session, sql, params) if hours else ():
             found[pid] = (int(row_id), int(hour))
         return found
     for cond in bulk.id_filters(session, Prediction.pid, ids):

@@ -270,7 +270,7 @@ SELECT p.model_id, p.pid, p.ts, p.score, p.scores, p.predicted, p.tags
 FROM unnest(%(m)b::int4[], %(pid)b::text[]) AS k(m, pid)
   JOIN prediction_ids r ON r.model_id = k.m AND r.pid = k.pid
   JOIN predictions p ON p.model_id = r.model_id AND p.pid = r.pid AND p.hour = r.hour
-WHERE p.hour = ANY(%(hours)b::int4[])
+WHERE {hours}
 """
 
 
@@ -308,18 +308,16 @@ def _store_pg(
         rest = [k for k in keys if k not in inserted]
         if rest:  # stored before this group: the same content, or a conflict
             for m, pid, ts, score, scores, predicted, tags in cur.execute(
-                _STORED_SQL,
-                {
-                    "m": [k[0] for k in rest],
-                    "pid": [k[1] for k in rest],
-                    "hours": sorted(
+                _STORED_SQL.format(
+                    hours=partitions.hours_clause(
                         h
                         for model in {k[0] for k in rest}
                         for h in partitions.hours_of(
                             session, model, [k[1] for k in rest if k[0] == model]
                         )
-                    ),
-                },
+                    )
+                ),
+                {"m": [k[0] for k in rest], "pid": [k[1] for k in rest]},
             ):
                 old = PredictionIn(pid, to_utc(ts), score, scores, predicted, tags or None)
                 if not first[(int(m), pid)].same_as(old):

@@ -61,7 +61,7 @@ SELECT p.pid, p.row_id, p.ts, p.hour, p.actual, p.delay_h
 FROM unnest(%(ids)b::text[]) AS k(pid)
 JOIN prediction_ids r ON r.model_id = %(m)s AND r.pid = k.pid
 JOIN predictions p ON p.model_id = r.model_id AND p.pid = r.pid AND p.hour = r.hour
-WHERE p.hour = ANY(%(hours)b::int4[])
+WHERE {hours}
 ORDER BY p.row_id
 FOR UPDATE OF p
 """
@@ -73,8 +73,9 @@ def _targets(session: Session, model_id: int, ids: list[str]) -> dict[str, _Stor
         hours = partitions.hours_of(session, model_id, ids)
         if not hours:
             return found
+        sql = _TARGETS_PG.format(hours=partitions.hours_clause(hours))
         for pid, row_id, ts, hour, actual, delay_h in bulk.fetch_all(
-            session, _TARGETS_PG, {"ids": ids, "m": model_id, "hours": hours}
+            session, sql, {"ids": ids, "m": model_id}
         ):
             found[pid] = _Stored(row_id, to_utc(ts), hour, actual, delay_h)
         return found
@@ -139,7 +140,7 @@ WITH t AS MATERIALIZED (
     p.actual AS old_actual, p.delay_h AS old_delay_h
   FROM {_IN_STAGE} s JOIN prediction_ids r ON r.model_id = %(m)s AND r.pid = s.pid
   JOIN predictions p ON p.model_id = r.model_id AND p.pid = r.pid AND p.hour = r.hour
-  WHERE p.hour = ANY(%(hours)s::int4[])
+  WHERE {{hours}}
   ORDER BY p.row_id
   FOR UPDATE OF p
 ), ch AS MATERIALIZED (
@@ -148,7 +149,7 @@ WITH t AS MATERIALIZED (
   FROM t WHERE t.old_actual IS DISTINCT FROM t.actual
 ), upd AS (
   UPDATE predictions p SET actual = ch.actual, label_ts = ch.label_ts, delay_h = ch.delay_h
-  FROM ch WHERE p.row_id = ch.row_id AND p.hour = ch.hour AND p.hour = ANY(%(hours)s::int4[])
+  FROM ch WHERE p.row_id = ch.row_id AND p.hour = ch.hour AND {{hours}}
 ), hist AS (
   INSERT INTO labels (model_id, pid, actual, ts, change, received_at)
   SELECT %(m)s, pid, actual, label_ts,
@@ -176,7 +177,7 @@ WITH t AS MATERIALIZED (
 )
 SELECT (SELECT count(*) FROM t), (SELECT count(*) FROM ch WHERE old_actual IS NULL),
   (SELECT count(*) FROM ch WHERE old_actual IS NOT NULL), (SELECT count(*) FROM un),
-  (SELECT coalesce(array_agg(DISTINCT hour), '{{}}') FROM ch)
+  (SELECT coalesce(array_agg(DISTINCT hour), '{{{{}}}}') FROM ch)
 """
 
 
@@ -202,7 +203,9 @@ def _ingest_set_pg(
         )
     ]
     found, matched, corrected, pending, hours = bulk.fetch_all(
-        session, _SET_WRITE, {"m": model_id, "at": received, "hours": stored_hours}
+        session,
+        _SET_WRITE.format(hours=partitions.hours_clause(stored_hours)),
+        {"m": model_id, "at": received},
     )[0]
     answer = {
         "matched": matched,
@@ -318,7 +321,7 @@ WITH upd AS (
   UPDATE predictions p SET actual = u.actual, label_ts = u.label_ts, delay_h = u.delay_h
   FROM unnest(%(u_row)b::int8[], %(u_hour)b::int4[], %(u_actual)b::text[],
     %(u_ts)b::timestamptz[], %(u_delay)b::float8[]) AS u(row_id, hour, actual, label_ts, delay_h)
-  WHERE p.row_id = u.row_id AND p.hour = u.hour AND p.hour = ANY(%(hours)b::int4[])
+  WHERE p.row_id = u.row_id AND p.hour = u.hour AND {hours}
 ), hist AS (
   INSERT INTO labels (model_id, pid, actual, ts, change, received_at)
   SELECT %(m)s, * FROM unnest(%(h_pid)b::text[], %(h_actual)b::text[],
@@ -349,7 +352,7 @@ def _write_small_pg(
 ) -> None:
     bulk.execute_binary(
         session,
-        _SMALL_WRITE,
+        _SMALL_WRITE.format(hours=partitions.hours_clause(u["hour"] for u in updates)),
         {
             "m": model_id,
             "at": clock.now(),
@@ -416,14 +419,9 @@ def _update_pg(session: Session, rows: list[dict[str, Any]]) -> None:
             "UPDATE predictions p SET actual = u.actual, label_ts = u.label_ts,"
             " delay_h = u.delay_h FROM unnest(%b::int8[], %b::int4[], %b::text[],"
             " %b::timestamptz[], %b::float8[]) AS u(row_id, hour, actual, label_ts, delay_h)"
-            " WHERE p.row_id = u.row_id AND p.hour = u.hour AND p.hour = ANY(%b::int4[])",
-            [
-                *(
-                    [r[c] for r in rows]
-                    for c in ("row_id", "hour", "actual", "label_ts", "delay_h")
-                ),
-                sorted({r["hour"] for r in rows}),
-            ],
+            " WHERE p.row_id = u.row_id AND p.hour = u.hour AND "
+            + partitions.hours_clause(r["hour"] for r in rows),
+            [[r[c] for r in rows] for c in ("row_id", "hour", "actual", "label_ts", "delay_h")],
         )
         return
     bulk.temp_table(session, _STAGE, _STAGE_DDL)
@@ -438,9 +436,8 @@ def _update_pg(session: Session, rows: list[dict[str, Any]]) -> None:
         text(
             "UPDATE predictions p SET actual = s.actual, label_ts = s.label_ts,"
             f" delay_h = s.delay_h FROM {_STAGE} s WHERE p.row_id = s.row_id"
-            " AND p.hour = s.hour AND p.hour = ANY(:hours)"
-        ),
-        {"hours": sorted({r["hour"] for r in rows})},
+            " AND p.hour = s.hour AND " + partitions.hours_clause(r["hour"] for r in rows)
+        )
     )
 
 
