@@ -193,12 +193,17 @@ class PredictionsAnswer(BaseModel):
 
 
 class LabelsAnswer(BaseModel):
-    """Answer to a labels batch; the four counts add up to the batch size."""
+    """Answer to a labels batch; the five counts add up to the batch size."""
 
     matched: int
     pending: int
     corrected: int
     unchanged: int
+    expired: int = Field(
+        0,
+        description="labels for ids whose raw rows retention dropped (keep_raw_days):"
+        " stored nowhere",
+    )
 
 
 class ErasedCounts(BaseModel):
@@ -214,6 +219,10 @@ class ErasureAnswer(BaseModel):
 
     erased: ErasedCounts
     not_found: list[str]
+    expired: list[str] = Field(
+        default_factory=list,
+        description="ids whose raw rows retention had already dropped (keep_raw_days)",
+    )
 
 
 class PendingRead(BaseModel):

@@ -1,6 +1,6 @@
-"""The steps of one job run, in order: refresh the rollups, drop pending labels past their
-model's keep_raw_days, evaluate the alert rules, send due webhook deliveries, keep the
-figures /metrics serves.
+"""The steps of one job run, in order: refresh the rollups, drop the settled raw days and
+the pending labels past their model's keep_raw_days, evaluate the alert rules, send due
+webhook deliveries, keep the figures /metrics serves.
 
 A step receives what the run provides (`StepContext`) and answers a small summary, which
 the run records; a step that raises is logged and the next one still runs.
@@ -19,7 +19,7 @@ from belated.alerts.tables import Rule
 from belated.clock import now
 from belated.config import Settings
 from belated.metrics import figures
-from belated.store import refresh, retention
+from belated.store import raw_retention, refresh, retention
 from belated.store.db import transaction
 from belated.store.tables import ModelRow
 
@@ -42,6 +42,37 @@ def refresh_step(run: StepContext) -> dict[str, Any]:
     marked = refresh.join_and_mark(run.sessions)
     done = refresh.refresh_all(run.sessions, max_values=run.settings.max_segment_values)
     return {"marked": marked, "buckets": done}
+
+
+def retention_step(run: StepContext) -> dict[str, Any]:
+    """Drop raw days past each model's keep_raw_days once settled (after the refresh, whose
+    marks they wait for); the rollups stay. One transaction per model."""
+    with run.sessions() as session:
+        ids = list(
+            session.scalars(
+                select(ModelRow.id).where(ModelRow.source == "http").order_by(ModelRow.id)
+            )
+        )
+    totals = {"models": 0, "days": 0, "rows": 0, "failed": 0}
+    for model_id in ids:
+        try:
+            with transaction(run.sessions) as session:
+                model = session.get(ModelRow, model_id)
+                if model is None:
+                    continue
+                got = raw_retention.drop_raw_days(session=session, model=model, now=now())
+        except raw_retention.Raced as exc:
+            raw_retention.log.info("%s; tried again next run", exc)
+            continue
+        except Exception:
+            raw_retention.log.exception("dropping raw days of model %s failed", model_id)
+            totals["failed"] += 1
+            continue
+        if got["rows"]:
+            totals["models"] += 1
+            totals["days"] += got["days"]
+            totals["rows"] += got["rows"]
+    return totals
 
 
 def pending_step(run: StepContext) -> dict[str, Any]:
@@ -95,6 +126,7 @@ def cache_step(run: StepContext) -> dict[str, Any]:
 # one declaration of the run: (name, step) in the order they run
 STEPS: tuple[tuple[str, Step], ...] = (
     ("refresh", refresh_step),
+    ("retention", retention_step),
     ("pending", pending_step),
     ("evaluate", evaluate_step),
     ("deliver", deliver_step),

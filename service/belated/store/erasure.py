@@ -11,6 +11,8 @@ removed, and their contribution taken out of the rollups by difference.
 
 Afterwards every window equals a recount without the erased rows, and an erased id may be
 sent again as a new prediction. Admitted segment values stay (a recount keeps them too).
+An id whose raw rows retention already dropped is reported `expired` and its entry in
+dropped_ids deleted; what it added to the rollups of its day stays, unnamed, in the sums.
 """
 
 from __future__ import annotations
@@ -24,7 +26,14 @@ from sqlalchemy.orm import Session
 
 from belated.store import bulk, refresh, rollups, segments
 from belated.store.dialect import is_postgres
-from belated.store.tables import Label, LabelChange, ModelRow, PendingLabel, Prediction
+from belated.store.tables import (
+    DroppedId,
+    Label,
+    LabelChange,
+    ModelRow,
+    PendingLabel,
+    Prediction,
+)
 
 ROW_CHUNK = 5000  # row ids per DELETE
 
@@ -37,6 +46,7 @@ class Erased:
     labels: int = 0
     pending_labels: int = 0
     not_found: list[str] = field(default_factory=list)
+    expired: list[str] = field(default_factory=list)  # past retention: raw rows dropped
 
     def answer(self) -> dict[str, Any]:
         """The API's answer."""
@@ -47,6 +57,7 @@ class Erased:
                 "pending_labels": self.pending_labels,
             },
             "not_found": self.not_found,
+            "expired": self.expired,
         }
 
 
@@ -119,6 +130,8 @@ def erase(
         rollups.take_out(
             session=session, model=model, difference=difference, now=now, max_values=max_values
         )
-    known = set(stored) | set(history) | set(waiting)
+    gone = set(_delete_by_id(session, DroppedId, model.id, ids))
+    out.expired = [i for i in ids if i in gone]
+    known = set(stored) | set(history) | set(waiting) | gone
     out.not_found = [i for i in ids if i not in known]
     return out
