@@ -1,0 +1,383 @@
+"""Retention with rollups kept, on both stores, each test on a store of its own (the jobs
+sweep every model of their store): the jobs drop a model's settled raw days past
+keep_raw_days, and every window answers field by field as before the drop; a rebuild
+afterwards changes nothing; the raw rows are gone (read with the database's own client,
+sqlite3 or psycopg) and the rollups are untouched; a late label for a dropped id is
+`expired` and stored nowhere; a back-fill before the retained days is a 422 naming the item
+and field with nothing stored; erasure of a dropped id reports it `expired`; a day with
+work outstanding is not dropped.
+
+The reference for "as before" is the service's own answers captured before the drop, and
+the rollup rows read before it; the row counts are those of the data this test sends.
+"""
+
+from __future__ import annotations
+
+import json
+import sqlite3
+from collections.abc import Iterator
+from datetime import UTC, datetime, timedelta
+from typing import Any
+
+import numpy as np
+import psycopg
+import pytest
+from prometheus_client.parser import text_string_to_metric_families
+from sqlalchemy import Engine
+
+from belated.clock import clock
+from belated.config import Settings
+from belated.jobs import JobRunner, steps
+from belated.store import refresh
+from belated.store.db import make_engine, make_sessionmaker
+from tests.conftest import STORES, Tenant
+from tests.support import counts, create_model, send, stamp, stored_rollups
+from tests.support.stores import fresh_store
+
+START = datetime(2026, 6, 1, tzinfo=UTC)  # a Monday
+DAYS = 100
+NOW = START + timedelta(days=DAYS, hours=12)
+KEEP = 35
+SETTINGS = {
+    "label_delay_days": 5,
+    "negative_after_days": 10,
+    "keep_raw_days": KEEP,
+    "segment_keys": ["region"],
+}
+
+
+@pytest.fixture(params=STORES)
+def store_url(request: pytest.FixtureRequest) -> Iterator[str]:
+    """A store of this test's own."""
+    with fresh_store(request.param, prefix="belated_ret") as url:
+        yield url
+
+
+@pytest.fixture()
+def engine(store_url: str) -> Iterator[Engine]:
+    """An engine on the test's own store."""
+    eng = make_engine(store_url)
+    yield eng
+    eng.dispose()
+
+
+@pytest.fixture()
+def runner(engine: Engine, store_url: str) -> Iterator[JobRunner]:
+    """The jobs on the test's store, run one tick at a time."""
+    jobs = JobRunner(engine=engine, settings=Settings(database_url=store_url))
+    yield jobs
+    jobs.leader.release()
+
+
+def direct(engine: Engine, sql: str, *params: Any) -> list[tuple[Any, ...]]:
+    """Rows of a query run with the database's own client (`?` placeholders)."""
+    url = engine.url
+    if url.get_backend_name() == "sqlite":
+        assert url.database
+        with sqlite3.connect(url.database) as conn:
+            return list(conn.execute(sql, params))
+    conninfo = f"host={url.host} port={url.port or 5432} user={url.username} dbname={url.database}"
+    with psycopg.connect(conninfo) as conn:
+        return list(conn.execute(sql.replace("?", "%s"), params).fetchall())
+
+
+def shop_data(seed: int) -> tuple[list[dict[str, Any]], list[dict[str, Any]]]:
+    """100 days of the furniture shop's return predictions (20 a day, three regions) and
+    the labels that have arrived by NOW (85% of them, 0 to 5 days late)."""
+    rng = np.random.default_rng(seed)
+    preds, labels = [], []
+    for day in range(DAYS):
+        for k in range(20):
+            ts = START + timedelta(days=day, seconds=int(rng.integers(0, 86400)))
+            score = float(rng.beta(2, 3))
+            pid = f"order-{day}-{k}"
+            region = ("north", "south", "east")[int(rng.integers(0, 3))]
+            preds.append({"id": pid, "ts": stamp(ts), "score": score, "tags": {"region": region}})
+            at = ts + timedelta(hours=float(rng.uniform(0, 120)))
+            if rng.random() < 0.85 and at <= NOW:
+                outcome = "1" if rng.random() < score else "0"
+                labels.append({"id": pid, "actual": outcome, "ts": stamp(at)})
+    return preds, labels
+
+
+def every_window(client: Any, model: str) -> dict[str, Any]:
+    """Every answer over the model's history: hourly, daily, weekly, rolling, by region,
+    thresholds and delays."""
+    end = START + timedelta(days=DAYS + 1)
+    asks = {
+        "day": {"granularity": "day", "start": stamp(START), "end": stamp(end)},
+        "week": {
+            "granularity": "week",
+            "start": stamp(START),
+            "end": stamp(START + timedelta(weeks=15)),
+        },
+        "hour-old": {
+            "granularity": "hour",
+            "start": stamp(START + timedelta(days=20)),
+            "end": stamp(START + timedelta(days=24)),
+        },
+        "hour-edge": {
+            "granularity": "hour",
+            "start": stamp(START + timedelta(days=62)),
+            "end": stamp(START + timedelta(days=68)),
+        },
+        "rolling": {"granularity": "day", "rolling": 7, "start": stamp(START), "end": stamp(end)},
+        "north": {
+            "granularity": "day",
+            "start": stamp(START),
+            "end": stamp(end),
+            "tag.region": "north",
+        },
+    }
+    out: dict[str, Any] = {}
+    for name, params in asks.items():
+        r = client.get(f"/v1/models/{model}/metrics", params=params)
+        assert r.status_code == 200, r.text
+        out[name] = r.json()
+    span = {"start": stamp(START), "end": stamp(end)}
+    for route in ("thresholds", "delays"):
+        r = client.get(f"/v1/models/{model}/{route}", params=span if route == "thresholds" else {})
+        assert r.status_code == 200, r.text
+        out[route] = r.json()
+    return out
+
+
+def differences(a: Any, b: Any, path: str = "", rel: float = 0.0) -> list[str]:
+    """Where two answers differ, field by field (paths), NaN equal to NaN; floats within
+    `rel` relative when given."""
+    if isinstance(a, dict) and isinstance(b, dict):
+        out = [f"{path}.{k}: only on one side" for k in set(a) ^ set(b)]
+        for k in sorted(set(a) & set(b)):
+            out += differences(a[k], b[k], f"{path}.{k}", rel)
+        return out
+    if isinstance(a, list) and isinstance(b, list):
+        if len(a) != len(b):
+            return [f"{path}: {len(a)} items, then {len(b)}"]
+        return [
+            d
+            for i, (x, y) in enumerate(zip(a, b, strict=True))
+            for d in differences(x, y, f"{path}[{i}]", rel)
+        ]
+    if rel and isinstance(a, float) and isinstance(b, float) and abs(a - b) <= rel * abs(a):
+        return []
+    same = a == b or (isinstance(a, float) and isinstance(b, float) and np.isnan(a) and np.isnan(b))
+    return [] if same else [f"{path}: {a!r}, then {b!r}"]
+
+
+def loaded(tenant: Tenant, engine: Engine, seed: int = 5) -> tuple[Any, list[dict[str, Any]]]:
+    """A model with the shop's 100 days sent at NOW and refreshed; its predictions."""
+    clock.set(NOW)
+    model = create_model(tenant, engine, **SETTINGS)
+    preds, labels = shop_data(seed)
+    assert send(tenant.client, model.name, "predictions", preds)["accepted"] == len(preds)
+    send(tenant.client, model.name, "labels", labels)
+    sessions = make_sessionmaker(engine)
+    refresh.join_and_mark(sessions)
+    refresh.refresh_all(sessions, max_values=100)
+    return model, preds
+
+
+# the first hour kept: the midnight of the day holding NOW - KEEP days
+FIRST_KEPT = int((NOW - timedelta(days=KEEP)).timestamp() // 3600) // 24 * 24
+
+
+def rollup_rows(engine: Engine, model_id: int) -> dict[tuple[Any, ...], dict[str, Any]]:
+    """Every rollup row of the model, histograms as plain lists, for exact comparison."""
+
+    def plain(value: Any) -> Any:
+        if isinstance(value, np.ndarray):
+            return value.tolist()
+        if isinstance(value, tuple):
+            return [plain(v) for v in value]
+        return json.loads(value) if isinstance(value, str) and value.startswith("{") else value
+
+    return {
+        k: {c: plain(v) for c, v in row.items()}
+        for k, row in stored_rollups(engine, model_id).items()
+    }
+
+
+def hour_of(item: dict[str, Any]) -> int:
+    """The epoch hour of a prediction item's time."""
+    return int(datetime.fromisoformat(item["ts"]).timestamp() // 3600)
+
+
+def test_dropping_raw_days_keeps_every_window_and_a_rebuild_changes_nothing(
+    tenant: Tenant, engine: Engine, runner: JobRunner
+) -> None:
+    model, preds = loaded(tenant, engine)
+    before = every_window(tenant.client, model.name)
+    rollups_before = rollup_rows(engine, model.id)
+    dropped = [p for p in preds if hour_of(p) < FIRST_KEPT]
+    assert 60 * 20 < len(dropped) < len(preds)
+    assert tenant.client.get("/healthz").json()["raw_rows_dropped"] == 0
+
+    runner.tick()
+    assert runner.last["retention"]["rows"] == len(dropped)
+    assert runner.last["retention"]["days"] == len({hour_of(p) // 24 for p in dropped})
+    (first,) = direct(engine, "SELECT raw_from_hour FROM models WHERE id = ?", model.id)
+    assert first == (FIRST_KEPT,)
+
+    # (c) raw rows of the dropped days gone, their ids recorded, the rollups untouched
+    ids = [p["id"] for p in dropped]
+    assert direct(engine, "SELECT count(*) FROM predictions WHERE model_id = ?", model.id) == [
+        (len(preds) - len(dropped),)
+    ]
+    assert direct(
+        engine,
+        "SELECT count(*) FROM predictions WHERE model_id = ? AND hour < ?",
+        model.id,
+        FIRST_KEPT,
+    ) == [(0,)]
+    history = {
+        pid for (pid,) in direct(engine, "SELECT pid FROM labels WHERE model_id = ?", model.id)
+    }
+    assert history and not history & set(ids)
+    # kept one more keep_raw_days: the ids of days older than that are forgotten at once
+    recorded = direct(engine, "SELECT pid FROM dropped_ids WHERE model_id = ?", model.id)
+    remembered = [p["id"] for p in dropped if hour_of(p) >= FIRST_KEPT - KEEP * 24]
+    assert 0 < len(remembered) < len(ids)
+    assert sorted(pid for (pid,) in recorded) == sorted(remembered)
+    assert rollup_rows(engine, model.id) == rollups_before
+
+    # (a) every window as before, field by field
+    after = every_window(tenant.client, model.name)
+    assert differences(before, after) == []
+    health = tenant.client.get("/healthz").json()
+    assert (health["raw_rows_dropped"], health["raw_days_dropped"]) == (
+        len(dropped),
+        runner.last["retention"]["days"],
+    )
+    scrape = tenant.client.get("/metrics", headers={"Authorization": ""}).text
+    found = {f.name: f.samples[0].value for f in text_string_to_metric_families(scrape)}
+    assert found["belated_raw_rows_dropped"] == len(dropped)
+
+    # (b) a rebuild rebuilds the retained days only, and changes nothing
+    sessions = make_sessionmaker(engine)
+    assert refresh.rebuild(sessions, max_values=100, model_id=model.id) > 0
+    # floats within 1e-9 relative: the retained hours are summed again in another order
+    assert differences(before, every_window(tenant.client, model.name), rel=1e-9) == []
+    rebuilt = rollup_rows(engine, model.id)
+    old = {k: v for k, v in rollups_before.items() if k[1] < FIRST_KEPT}
+    assert old and {k: v for k, v in rebuilt.items() if k[1] < FIRST_KEPT} == old
+    assert set(rebuilt) == set(rollups_before)
+
+    # a second run finds nothing more to drop
+    runner.tick()
+    assert runner.last["retention"]["rows"] == 0
+
+
+def test_a_label_for_a_dropped_id_is_expired_and_stored_nowhere(
+    tenant: Tenant, engine: Engine, runner: JobRunner
+) -> None:
+    model, preds = loaded(tenant, engine, seed=6)
+    runner.tick()
+    dropped = [p["id"] for p in preds if FIRST_KEPT - KEEP * 24 <= hour_of(p) < FIRST_KEPT]
+    kept = [p["id"] for p in preds if hour_of(p) >= FIRST_KEPT]
+    labelled = {x["id"]: x for x in shop_data(6)[1]}
+    same = [labelled[i] for i in kept if i in labelled][:400]  # unchanged: nothing written
+    assert len(dropped) + len(same) == 1100
+    tables = counts(engine, model.id)
+    rollups_before = rollup_rows(engine, model.id)
+    # small (grouped), then a large batch of distinct ids (set-based on PostgreSQL), then a
+    # large batch with a repeated id (row by row)
+    small = send(
+        tenant.client, model.name, "labels", [{"id": i, "actual": "1"} for i in dropped[:3]]
+    )
+    assert small == {"matched": 0, "pending": 0, "corrected": 0, "unchanged": 0, "expired": 3}
+    many = [{"id": i, "actual": "0"} for i in dropped] + same
+    r = tenant.client.post(f"/v1/models/{model.name}/labels", json={"labels": many})
+    assert r.status_code == 200, r.text
+    assert r.json()["expired"] == len(dropped) and r.json()["unchanged"] == len(same)
+    assert sum(r.json().values()) == len(many)
+    repeated = [{"id": i, "actual": "0"} for i in dropped[:250]] + [
+        {"id": dropped[0], "actual": "0"}
+    ]
+    r = tenant.client.post(f"/v1/models/{model.name}/labels", json={"labels": repeated})
+    assert r.status_code == 200, r.text
+    assert r.json()["expired"] == 251 and sum(r.json().values()) == 251
+    assert counts(engine, model.id) == tables
+    assert rollup_rows(engine, model.id) == rollups_before
+
+    # beside them, a retained id and an id never sent: the five counts add up
+    mixed = [
+        {"id": dropped[5], "actual": "1"},
+        {"id": kept[-1], "actual": "1"},
+        {"id": "order-never-sent", "actual": "1"},
+    ]
+    answer = send(tenant.client, model.name, "labels", mixed)
+    assert answer["expired"] == 1 and answer["pending"] == 1
+    assert answer["matched"] + answer["corrected"] + answer["unchanged"] == 1
+    waiting = direct(engine, "SELECT pid FROM pending_labels WHERE model_id = ?", model.id)
+    assert waiting == [("order-never-sent",)]
+
+
+def test_a_back_fill_before_the_retained_days_is_refused_with_nothing_stored(
+    tenant: Tenant, engine: Engine, runner: JobRunner
+) -> None:
+    model, _ = loaded(tenant, engine, seed=7)
+    runner.tick()
+    tables = counts(engine, model.id)
+    old = START + timedelta(days=3, hours=5)
+    new = NOW - timedelta(days=2)
+    fresh = {"id": "late-new", "ts": stamp(new), "score": 0.4, "tags": {"region": "east"}}
+    backfill = {"id": "late-old", "ts": stamp(old), "score": 0.7, "tags": {"region": "east"}}
+    # small batches go through the group writer; 300 take the bulk path
+    bulky = [{**fresh, "id": f"late-{k}"} for k in range(299)]
+    for batch, index in (([fresh, fresh, backfill], 2), ([*bulky, backfill], 299)):
+        r = tenant.client.post(f"/v1/models/{model.name}/predictions", json={"predictions": batch})
+        assert r.status_code == 422, r.text
+        problem = r.json()
+        assert problem["errors"][0]["index"] == index
+        assert problem["errors"][0]["field"] == "ts"
+        since = datetime.fromtimestamp(FIRST_KEPT * 3600, UTC).date()
+        assert since.isoformat() in problem["errors"][0]["reason"]
+        assert counts(engine, model.id) == tables
+    # a back-fill of a retained day is taken as ever
+    assert send(tenant.client, model.name, "predictions", [fresh])["accepted"] == 1
+
+
+def test_erasing_a_dropped_id_reports_it_expired_and_forgets_it(
+    tenant: Tenant, engine: Engine, runner: JobRunner
+) -> None:
+    model, preds = loaded(tenant, engine, seed=8)
+    runner.tick()
+    gone = next(p["id"] for p in preds if FIRST_KEPT - KEEP * 24 <= hour_of(p) < FIRST_KEPT)
+    r = tenant.client.request(
+        "DELETE", f"/v1/models/{model.name}/predictions", json={"ids": [gone, "order-unknown"]}
+    )
+    assert r.status_code == 200, r.text
+    assert r.json()["expired"] == [gone]
+    assert r.json()["not_found"] == ["order-unknown"]
+    assert direct(engine, "SELECT count(*) FROM dropped_ids WHERE pid = ?", gone) == [(0,)]
+    # nothing of it is left to name it: a label for it now waits like any unknown id
+    answer = send(tenant.client, model.name, "labels", [{"id": gone, "actual": "1"}])
+    assert answer["pending"] == 1 and answer["expired"] == 0
+
+
+def test_a_day_with_outstanding_work_is_not_dropped_until_refreshed(
+    tenant: Tenant, engine: Engine, runner: JobRunner
+) -> None:
+    model, preds = loaded(tenant, engine, seed=9)
+    # a correction of day 10, not yet folded in: days from day 10 on must wait
+    day10 = next(p for p in preds if START + timedelta(days=10) <= datetime.fromisoformat(p["ts"]))
+    for actual in ("1", "0"):  # at least one of the two changes its label
+        send(tenant.client, model.name, "labels", [{"id": day10["id"], "actual": actual}])
+    assert direct(engine, "SELECT count(*) FROM label_changes WHERE model_id = ?", model.id)[0][0]
+    sessions = make_sessionmaker(engine)
+    answer = steps.retention_step(runner)
+    day10_start = hour_of(day10) // 24 * 24
+    (first,) = direct(engine, "SELECT raw_from_hour FROM models WHERE id = ?", model.id)
+    assert first == (day10_start,)
+    assert answer["rows"] == len([p for p in preds if hour_of(p) < day10_start])
+    assert direct(
+        engine,
+        "SELECT count(*) FROM predictions WHERE model_id = ? AND hour >= ? AND hour < ?",
+        model.id,
+        day10_start,
+        FIRST_KEPT,
+    )[0][0] == len([p for p in preds if day10_start <= hour_of(p) < FIRST_KEPT])
+    refresh.refresh_all(sessions, max_values=100)
+    steps.retention_step(runner)
+    (first,) = direct(engine, "SELECT raw_from_hour FROM models WHERE id = ?", model.id)
+    assert first == (FIRST_KEPT,)
