@@ -30,6 +30,8 @@ from belated.config import Settings
 from belated.jobs import JobRunner, steps
 from belated.store import refresh
 from belated.store.db import make_engine, make_sessionmaker
+from belated.store.tables import ModelRow
+from belated.web import views
 from tests.conftest import STORES, Tenant
 from tests.support import counts, create_model, send, stamp, stored_rollups
 from tests.support.stores import fresh_store
@@ -239,6 +241,10 @@ def test_dropping_raw_days_keeps_every_window_and_a_rebuild_changes_nothing(
     assert 0 < len(remembered) < len(ids)
     assert sorted(pid for (pid,) in recorded) == sorted(remembered)
     assert rollup_rows(engine, model.id) == rollups_before
+
+    # the model page still opens on the first day, whose raw rows are gone
+    with make_sessionmaker(engine)() as session:
+        assert views.first_prediction(session, session.get_one(ModelRow, model.id)) == START
 
     # (a) every window as before, field by field
     after = every_window(tenant.client, model.name)
