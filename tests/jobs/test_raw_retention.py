@@ -14,6 +14,7 @@ the rollup rows read before it; the row counts are those of the data this test s
 from __future__ import annotations
 
 import json
+import logging
 import sqlite3
 from collections.abc import Iterator
 from datetime import UTC, datetime, timedelta
@@ -28,8 +29,8 @@ from sqlalchemy import Engine
 from belated.clock import clock
 from belated.config import Settings
 from belated.jobs import JobRunner, steps
-from belated.store import refresh
-from belated.store.db import make_engine, make_sessionmaker
+from belated.store import dirty, refresh
+from belated.store.db import make_engine, make_sessionmaker, transaction
 from belated.store.tables import ModelRow
 from belated.web import views
 from tests.conftest import STORES, Tenant
@@ -205,7 +206,7 @@ def hour_of(item: dict[str, Any]) -> int:
 
 
 def test_dropping_raw_days_keeps_every_window_and_a_rebuild_changes_nothing(
-    tenant: Tenant, engine: Engine, runner: JobRunner
+    tenant: Tenant, engine: Engine, runner: JobRunner, caplog: pytest.LogCaptureFixture
 ) -> None:
     model, preds = loaded(tenant, engine)
     before = every_window(tenant.client, model.name)
@@ -258,8 +259,19 @@ def test_dropping_raw_days_keeps_every_window_and_a_rebuild_changes_nothing(
     found = {f.name: f.samples[0].value for f in text_string_to_metric_families(scrape)}
     assert found["belated_raw_rows_dropped"] == len(dropped)
 
-    # (b) a rebuild rebuilds the retained days only, and changes nothing
+    # a recompute asked for a dropped hour is discarded, with a warning, the rollups kept
     sessions = make_sessionmaker(engine)
+    with transaction(sessions) as session:
+        dirty.mark(session=session, model_id=model.id, hours=[FIRST_KEPT - 30], lock=None)
+    with caplog.at_level(logging.WARNING, logger="belated.store.raw_retention"):
+        refresh.refresh_all(sessions, max_values=100)
+    assert "below raw_from_hour" in caplog.text
+    assert direct(engine, "SELECT count(*) FROM dirty_buckets WHERE model_id = ?", model.id) == [
+        (0,)
+    ]
+    assert rollup_rows(engine, model.id) == rollups_before
+
+    # (b) a rebuild rebuilds the retained days only, and changes nothing
     assert refresh.rebuild(sessions, max_values=100, model_id=model.id) > 0
     # floats within 1e-9 relative: the retained hours are summed again in another order
     assert differences(before, every_window(tenant.client, model.name), rel=1e-9) == []
