@@ -243,6 +243,10 @@ def test_dropping_raw_days_keeps_every_window_and_a_rebuild_changes_nothing(
     assert sorted(pid for (pid,) in recorded) == sorted(remembered)
     assert rollup_rows(engine, model.id) == rollups_before
 
+    got = tenant.client.get(f"/v1/models/{model.name}").json()
+    assert datetime.fromisoformat(got["raw_kept_from"]) == datetime.fromtimestamp(
+        FIRST_KEPT * 3600, UTC
+    )
     # the model page still opens on the first day, whose raw rows are gone
     with make_sessionmaker(engine)() as session:
         assert views.first_prediction(session, session.get_one(ModelRow, model.id)) == START

@@ -136,6 +136,11 @@ class ModelRead(BaseModel):
     keep_raw_days: float = 0.0
     keep_raw_days_default: bool = True
     source: str = "http"
+    raw_kept_from: datetime | None = Field(
+        None,
+        description="the first UTC day whose raw rows are kept (null: none dropped yet);"
+        " earlier days answer from their rollups, and predictions for them are refused",
+    )
     created_at: datetime
     updated_at: datetime
     counts: ModelCounts
