@@ -118,6 +118,7 @@ def test_an_accepted_erasure_answers_what_it_removed(
     assert r.json() == {
         "erased": {"predictions": 2, "labels": 2, "pending_labels": 1},
         "not_found": ["nobody"],
+        "expired": [],
     }
     after = counts(engine, mid)
     assert after["predictions"] == 38 and after["pending_labels"] == 0

@@ -45,7 +45,7 @@ def history(engine: Engine, model: Model, pid: str) -> list[tuple[str, str]]:
     ]
 
 
-def test_the_four_answers_add_up_to_the_batch_size(
+def test_the_five_answers_add_up_to_the_batch_size(
     tenant: Tenant, engine: Engine, model: Model
 ) -> None:
     items = predictions(6)
@@ -62,7 +62,7 @@ def test_the_four_answers_add_up_to_the_batch_size(
         label(ids[4], "1"),  # the same id again in the batch: unchanged
     ]
     answer = send(tenant.client, model.name, "labels", batch)
-    assert answer == {"matched": 3, "pending": 1, "corrected": 1, "unchanged": 2}
+    assert answer == {"matched": 3, "pending": 1, "corrected": 1, "unchanged": 2, "expired": 0}
     assert sum(answer.values()) == len(batch)
     labelled = rows(
         engine,
@@ -92,7 +92,7 @@ def test_corrections_apply_in_arrival_order_and_keep_history(
     answer = send(
         tenant.client, model.name, "labels", [label(pid, "0", ts=known - timedelta(hours=6))]
     )
-    assert answer == {"matched": 0, "pending": 0, "corrected": 1, "unchanged": 0}
+    assert answer == {"matched": 0, "pending": 0, "corrected": 1, "unchanged": 0, "expired": 0}
     assert (
         send(tenant.client, model.name, "labels", [label(pid, "1", ts=known + timedelta(hours=2))])[
             "corrected"
@@ -116,7 +116,7 @@ def test_the_same_actual_again_is_unchanged_whatever_its_time(
     marks = rows(engine, "SELECT hour, seq FROM dirty_buckets WHERE model_id = :m", m=model.id)
     for later in (known + timedelta(days=1), known - timedelta(hours=4), None):
         answer = send(tenant.client, model.name, "labels", [label(item["id"], "1", ts=later)])
-        assert answer == {"matched": 0, "pending": 0, "corrected": 0, "unchanged": 1}
+        assert answer == {"matched": 0, "pending": 0, "corrected": 0, "unchanged": 1, "expired": 0}
     assert prediction_row(engine, model.id, item["id"])["label_ts"] == known
     assert history(engine, model, item["id"]) == [("1", "first")]
     assert (
@@ -242,6 +242,7 @@ def test_a_large_batch_decides_exactly_as_small_batches_do(tenant: Tenant, engin
             "corrected": 300,
             "unchanged": 300,
             "pending": 70,
+            "expired": 0,
         }
     )
     one, many = (label_state(engine, m) for m in models)

@@ -52,7 +52,7 @@ def test_round_trip_of_5000_predictions_and_their_labels(
         r = http.post(f"/v1/models/{name}/predictions", json={"predictions": items[:BATCH]})
         assert r.json() == {"accepted": 0, "duplicates": BATCH}
         labelled = items[: TOTAL * 3 // 5]
-        answers = {"matched": 0, "pending": 0, "corrected": 0, "unchanged": 0}
+        answers = {"matched": 0, "pending": 0, "corrected": 0, "unchanged": 0, "expired": 0}
         sent = [label(p["id"], outcome_of(n)) for n, p in enumerate(labelled)]
         sent += [label(f"order-unknown-{n}", "0") for n in range(250)]
         for start in range(0, len(sent), BATCH):
@@ -60,7 +60,13 @@ def test_round_trip_of_5000_predictions_and_their_labels(
             assert r.status_code == 200, r.text
             for key, value in r.json().items():
                 answers[key] += value
-        assert answers == {"matched": len(labelled), "pending": 250, "corrected": 0, "unchanged": 0}
+        assert answers == {
+            "matched": len(labelled),
+            "pending": 250,
+            "corrected": 0,
+            "unchanged": 0,
+            "expired": 0,
+        }
         got = http.get(f"/v1/models/{name}").json()
         assert got["counts"] == {
             "predictions": TOTAL,

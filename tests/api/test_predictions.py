@@ -167,7 +167,7 @@ def test_pending_label_is_joined_when_its_prediction_arrives(
         f"/v1/models/{model.name}/labels",
         json={"labels": [label(item["id"], 1, ts=outcome_at), label("order-still-waiting", 0)]},
     )
-    assert r.json() == {"matched": 0, "pending": 2, "corrected": 0, "unchanged": 0}
+    assert r.json() == {"matched": 0, "pending": 2, "corrected": 0, "unchanged": 0, "expired": 0}
     assert count(engine, "pending_labels", model.id) == 2
     assert post(tenant, model, [item]).json() == {"accepted": 1, "duplicates": 0}
     got = tenant.client.get(f"/v1/models/{model.name}").json()

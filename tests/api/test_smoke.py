@@ -20,6 +20,6 @@ def test_round_trip_counts(tenant: Tenant) -> None:
         "/v1/models/returns-v2/labels",
         json={"labels": [{"id": "a", "actual": 1}, {"id": "zz", "actual": 0}]},
     )
-    assert r.json() == {"matched": 1, "pending": 1, "corrected": 0, "unchanged": 0}
+    assert r.json() == {"matched": 1, "pending": 1, "corrected": 0, "unchanged": 0, "expired": 0}
     got = c.get("/v1/models/returns-v2").json()
     assert got["counts"] == {"predictions": 2, "labelled": 1, "pending_labels": 1}

@@ -77,18 +77,21 @@ def test_frames_and_dicts_are_batched_and_answers_summed(
             "pending": 0,
             "corrected": 0,
             "unchanged": 0,
+            "expired": 0,
         }
         assert c.send_labels(model.name, unknown) == {
             "matched": 0,
             "pending": 150,
             "corrected": 0,
             "unchanged": 0,
+            "expired": 0,
         }
         assert c.send_labels(model.name, pd.concat([flipped, labels[300:400]])) == {
             "matched": 0,
             "pending": 0,
             "corrected": 300,
             "unchanged": 100,
+            "expired": 0,
         }
         assert c.model(model.name)["counts"] == {
             "predictions": 2_500,

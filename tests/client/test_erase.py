@@ -33,6 +33,7 @@ def test_the_client_erases_in_batches_and_sums_the_answers(
         assert answer == {
             "erased": {"predictions": 7, "labels": 4, "pending_labels": 0},
             "not_found": ["nobody"],
+            "expired": [],
         }
         assert c.model(name)["counts"]["predictions"] == 5
     assert count(engine, "predictions", mid) == 5

@@ -352,7 +352,7 @@ def test_unicode_ids_and_tags_are_stored_byte_for_byte(http: Tenant, engine: Eng
         f"/v1/models/{model.name}/labels",
         json={"labels": [label("e\u0301", "1"), label("🪑" * 128, "0")]},
     )
-    assert r.json() == {"matched": 2, "pending": 0, "corrected": 0, "unchanged": 0}
+    assert r.json() == {"matched": 2, "pending": 0, "corrected": 0, "unchanged": 0, "expired": 0}
     assert prediction_row(engine, model.id, "e\u0301")["actual"] == "1"
     assert prediction_row(engine, model.id, "\u00e9")["actual"] is None
     # a segment filter on a combining-mark value finds exactly these predictions (keys of
@@ -434,7 +434,9 @@ def test_sql_metacharacters_in_every_string_field_are_stored_as_sent(
             + [label("pending " + SQL_TEXTS[0], classes[0])]
         },
     )
-    assert r.json() == {"matched": 5, "pending": 1, "corrected": 0, "unchanged": 0}, r.text
+    assert r.json() == {"matched": 5, "pending": 1, "corrected": 0, "unchanged": 0, "expired": 0}, (
+        r.text
+    )
     assert _stored_bytes(engine, model, "pid") == sorted(t.encode() for t in SQL_TEXTS)
     for n, pid in enumerate(SQL_TEXTS):
         stored = prediction_row(engine, model.id, pid)
@@ -538,7 +540,7 @@ def test_ids_that_differ_only_by_case_or_whitespace_stay_distinct(
     r = c.post(
         f"/v1/models/{model.name}/labels", json={"labels": [label("a1", "1"), label("A1 ", "0")]}
     )
-    assert r.json() == {"matched": 1, "pending": 1, "corrected": 0, "unchanged": 0}
+    assert r.json() == {"matched": 1, "pending": 1, "corrected": 0, "unchanged": 0, "expired": 0}
     labelled = rows(
         engine, "SELECT pid FROM predictions WHERE model_id = :m AND actual IS NOT NULL", m=model.id
     )

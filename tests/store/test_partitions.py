@@ -186,7 +186,7 @@ def test_migration_from_the_flat_table_keeps_every_row_and_window(
         name = create_pg_database("belated_part")
         url = pg_url(name)
     try:
-        upgrade(url, "0017_model_source")  # the flat layout, populated through the service
+        upgrade(url, "0018_raw_retention")  # the flat layout, populated through the service
         upgrade(url)
         engine = make_engine(url)
         sessions = make_sessionmaker(engine)
@@ -208,7 +208,7 @@ def test_migration_from_the_flat_table_keeps_every_row_and_window(
         before = _snapshot(url, model.id)
         windows = _windows(url, model.name, tenant.tokens)
         assert len(before["predictions"]) == len(items)
-        downgrade(url, "0017_model_source")
+        downgrade(url, "0018_raw_retention")
         assert _snapshot(url, model.id) == before  # the flat table, every row as it was
         upgrade(url)
         assert _snapshot(url, model.id) == before

@@ -9,8 +9,9 @@
 
 The heavier scenario modules are imported by name, not from here: `datasets` (the breast
 cancer data scored and spread in time, with the scikit-learn reference for windows),
-`alert_days` (days of a returns model for the alert tests) and `shop` (the dashboard's
-two weeks of orders).
+`alert_days` (days of a returns model for the alert tests), `shop` (the dashboard's
+two weeks of orders) and `retention` (100 days of a returns model, for the raw-row
+retention tests).
 """
 
 from tests.support.builders import (

@@ -50,6 +50,18 @@ DRIFT = {
         "Predicted positive rate of the latest closed daily window minus the reference's.",
     ),
 }
+RAW_DROPPED = (
+    (
+        "raw_days_dropped",
+        "belated_raw_days_dropped_total",
+        "Days of raw rows dropped past their model's keep_raw_days (rollups kept).",
+    ),
+    (
+        "raw_rows_dropped",
+        "belated_raw_rows_dropped_total",
+        "Raw predictions dropped past their model's keep_raw_days (rollups kept).",
+    ),
+)
 HEALTH = (
     (
         "refresh_lag_seconds",
@@ -115,6 +127,9 @@ class ScrapeCollector:
                 " keep_raw_days for a prediction.",
                 value=health["pending_labels_dropped"],
             )
+        for key, name, help_text in RAW_DROPPED:
+            if health.get(key) is not None:
+                yield CounterMetricFamily(name, help_text, value=health[key])
         up = 1 if health.get("store") == "up" else 0
         yield _gauge("belated_store_up", "1 when the store answers.", up)
         leader = 1 if health.get("jobs", {}).get("leader") else 0

@@ -49,6 +49,7 @@ def health(request: Request) -> dict[str, Any]:
 @router.get("/healthz")
 def healthz(request: Request) -> JSONResponse:
     """Store reachable, jobs leader, last refresh, refresh lag, oldest dirty bucket, backlog,
-    pending labels dropped past keep_raw_days, read-only and staleness."""
+    pending labels dropped past keep_raw_days, raw days and rows dropped by retention,
+    read-only and staleness."""
     answer = health(request)
     return JSONResponse(answer, status_code=200 if answer["store"] == "up" else 503)

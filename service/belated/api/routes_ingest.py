@@ -30,7 +30,7 @@ from belated.api.deps import (
 from belated.api.lookups import ModelRef
 from belated.api.schemas import LabelsAnswer, PredictionsAnswer
 from belated.config import Settings
-from belated.errors import Problem
+from belated.errors import Invalid, Problem
 from belated.ingest.validate import validate_labels, validate_predictions
 from belated.store import grouped, labels, predictions
 from belated.store.keys import Principal
@@ -93,8 +93,34 @@ def _json(answer: dict[str, int]) -> Response:
 @router.post("/predictions", response_model=PredictionsAnswer)
 async def post_predictions(call: CallDep, request: Request) -> Response:
     """Store a batch of predictions; a repeat with the same content is a duplicate."""
-    body, model, settings, now = call.body, call.model, call.settings, call.now
+    body = call.body
     sent = body.get("predictions") if isinstance(body, dict) else None
+    try:
+        answer = await _store_predictions(call, request, sent)
+    except Invalid as exc:
+        raise _request_indices(exc, sent) from None
+    request.app.state.counters.add("predictions", answer["accepted"])
+    return _json(answer)
+
+
+def _request_indices(exc: Invalid, sent: Any) -> Invalid:
+    """The store names a refused prediction by its place among the batch's distinct ids
+    (store/raw_retention.py); the request's own index is that of its first copy."""
+    if not isinstance(sent, list) or not any("id" in e for e in exc.errors or []):
+        return exc
+    first: dict[str, int] = {}
+    for i, item in enumerate(sent):
+        pid = item.get("id") if isinstance(item, dict) else None
+        first.setdefault(str(pid), i)
+    errors = [
+        {**e, "index": first.get(str(e["id"]), e["index"])} if "id" in e else e
+        for e in exc.errors or []
+    ]
+    return Invalid(errors)
+
+
+async def _store_predictions(call: Call, request: Request, sent: Any) -> dict[str, int]:
+    body, model, settings, now = call.body, call.model, call.settings, call.now
     if isinstance(sent, list) and len(sent) <= grouped.SMALL_BATCH:
         items = validate_predictions(body, model.spec, now=now, max_batch=settings.max_batch)
         answer = await _grouped(request, grouped.Batch(model.id, items, len(sent), now))
@@ -111,8 +137,7 @@ async def post_predictions(call: CallDep, request: Request) -> Response:
             )
 
         answer = await in_transaction(request, work)
-    request.app.state.counters.add("predictions", answer["accepted"])
-    return _json(answer)
+    return answer
 
 
 @router.post("/labels", response_model=LabelsAnswer)

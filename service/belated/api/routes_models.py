@@ -11,7 +11,7 @@ from belated.api.deps import Admin, ModelDep, NowDep, Read, SessionDep, Settings
 from belated.api.schemas import ModelCreate, ModelPage, ModelRead, ModelUpdate
 from belated.errors import Problem
 from belated.metrics.load import ensure_fresh
-from belated.store import model_registry, retention
+from belated.store import model_registry, raw_retention, retention
 from belated.store.tables import ModelRow
 from belated.timeutil import to_utc
 
@@ -35,6 +35,9 @@ def read_model(session: Any, model: ModelRow) -> ModelRead:
         keep_raw_days=retention.keep_raw_days(model),
         keep_raw_days_default=model.keep_raw_days is None,
         source=model.source or "http",
+        raw_kept_from=None
+        if model.raw_from_hour is None
+        else raw_retention.day_of(model.raw_from_hour),
         created_at=to_utc(model.created_at),
         updated_at=to_utc(model.updated_at),
         **model_registry.counts(session=session, model=model),

@@ -136,6 +136,11 @@ class ModelRead(BaseModel):
     keep_raw_days: float = 0.0
     keep_raw_days_default: bool = True
     source: str = "http"
+    raw_kept_from: datetime | None = Field(
+        None,
+        description="the first UTC day whose raw rows are kept (null: none dropped yet);"
+        " earlier days answer from their rollups, and predictions for them are refused",
+    )
     created_at: datetime
     updated_at: datetime
     counts: ModelCounts
@@ -193,12 +198,17 @@ class PredictionsAnswer(BaseModel):
 
 
 class LabelsAnswer(BaseModel):
-    """Answer to a labels batch; the four counts add up to the batch size."""
+    """Answer to a labels batch; the five counts add up to the batch size."""
 
     matched: int
     pending: int
     corrected: int
     unchanged: int
+    expired: int = Field(
+        0,
+        description="labels for ids whose raw rows retention dropped (keep_raw_days):"
+        " stored nowhere",
+    )
 
 
 class ErasedCounts(BaseModel):
@@ -214,6 +224,10 @@ class ErasureAnswer(BaseModel):
 
     erased: ErasedCounts
     not_found: list[str]
+    expired: list[str] = Field(
+        default_factory=list,
+        description="ids whose raw rows retention had already dropped (keep_raw_days)",
+    )
 
 
 class PendingRead(BaseModel):

@@ -46,3 +46,5 @@ def erase(
     )
     for pid in answer["not_found"]:
         typer.echo(f"not found: {pid}")
+    for pid in answer.get("expired", []):
+        typer.echo(f"past retention (raw rows already dropped): {pid}")

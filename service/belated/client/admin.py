@@ -54,11 +54,13 @@ class AdminCalls:
         """Erase predictions by id, with their labels, label history and pending labels,
         in requests of `batch_size` ids (at most the service's BELATED_MAX_BATCH); answers
         the summed counts removed and the ids of which nothing was stored. A request retried
-        after its answer was lost reports its ids as not found (they are gone either way)."""
+        after its answer was lost reports its ids as not found (they are gone either way);
+        `expired` lists the ids whose raw rows retention had already dropped."""
         wanted = [str(i) for i in ids]
         total: dict[str, Any] = {
             "erased": {"predictions": 0, "labels": 0, "pending_labels": 0},
             "not_found": [],
+            "expired": [],
         }
         for start in range(0, len(wanted), batch_size):
             answer = self.request(
@@ -69,6 +71,7 @@ class AdminCalls:
             for key in total["erased"]:
                 total["erased"][key] += int(answer["erased"][key])
             total["not_found"] += answer["not_found"]
+            total["expired"] += answer.get("expired", [])
         return total
 
     def pending(self, model: str) -> list[dict[str, Any]]:

@@ -28,7 +28,7 @@ from belated.client.windows import windows_frame
 DEFAULT_BATCH = 10_000
 ANSWER_KEYS = {
     "predictions": ("accepted", "duplicates"),
-    "labels": ("matched", "pending", "corrected", "unchanged"),
+    "labels": ("matched", "pending", "corrected", "unchanged", "expired"),
 }
 
 
@@ -182,7 +182,8 @@ class Client(AdminCalls):
         batch_size: int | None = None,
         progress: Progress | None = None,
     ) -> dict[str, int]:
-        """Send labels in batches; answer the summed matched, pending, corrected, unchanged."""
+        """Send labels in batches; answer the summed matched, pending, corrected, unchanged
+        and expired."""
         return self._send(model, "labels", rows, batch_size, progress)
 
     def model(self, name: str) -> dict[str, Any]:

@@ -1,7 +1,7 @@
 """The steps of one job run, in order: keep the day partitions ahead (PostgreSQL), refresh
-the rollups, drop pending labels past their
-model's keep_raw_days, evaluate the alert rules, send due webhook deliveries, keep the
-figures /metrics serves.
+the rollups, drop the settled raw days and the pending labels past their model's
+keep_raw_days, evaluate the alert rules, send due webhook deliveries, keep the figures
+/metrics serves.
 
 A step receives what the run provides (`StepContext`) and answers a small summary, which
 the run records; a step that raises is logged and the next one still runs.
@@ -20,7 +20,7 @@ from belated.alerts.tables import Rule
 from belated.clock import now
 from belated.config import Settings
 from belated.metrics import figures
-from belated.store import partitions, refresh, retention, staleness
+from belated.store import partitions, raw_retention, refresh, retention, staleness
 from belated.store.db import transaction
 from belated.store.tables import ModelRow
 
@@ -52,6 +52,37 @@ def refresh_step(run: StepContext) -> dict[str, Any]:
     # only once complete: a replica's staleness is counted from this start (store/staleness)
     staleness.record_refreshed(run.sessions, started=started)
     return {"marked": marked, "buckets": done}
+
+
+def retention_step(run: StepContext) -> dict[str, Any]:
+    """Drop raw days past each model's keep_raw_days once settled (after the refresh, whose
+    marks they wait for); the rollups stay. One transaction per model."""
+    with run.sessions() as session:
+        ids = list(
+            session.scalars(
+                select(ModelRow.id).where(ModelRow.source == "http").order_by(ModelRow.id)
+            )
+        )
+    totals = {"models": 0, "days": 0, "rows": 0, "failed": 0}
+    for model_id in ids:
+        try:
+            with transaction(run.sessions) as session:
+                model = session.get(ModelRow, model_id)
+                if model is None:
+                    continue
+                got = raw_retention.drop_raw_days(session=session, model=model, now=now())
+        except raw_retention.Raced as exc:
+            raw_retention.log.info("%s; tried again next run", exc)
+            continue
+        except Exception:
+            raw_retention.log.exception("dropping raw days of model %s failed", model_id)
+            totals["failed"] += 1
+            continue
+        if got["rows"]:
+            totals["models"] += 1
+            totals["days"] += got["days"]
+            totals["rows"] += got["rows"]
+    return totals
 
 
 def pending_step(run: StepContext) -> dict[str, Any]:
@@ -106,6 +137,7 @@ def cache_step(run: StepContext) -> dict[str, Any]:
 STEPS: tuple[tuple[str, Step], ...] = (
     ("partitions", partitions_step),
     ("refresh", refresh_step),
+    ("retention", retention_step),
     ("pending", pending_step),
     ("evaluate", evaluate_step),
     ("deliver", deliver_step),

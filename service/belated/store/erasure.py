@@ -11,6 +11,8 @@ removed, and their contribution taken out of the rollups by difference.
 
 Afterwards every window equals a recount without the erased rows, and an erased id may be
 sent again as a new prediction. Admitted segment values stay (a recount keeps them too).
+An id whose raw rows retention already dropped is reported `expired` and its entry in
+dropped_ids deleted; what it added to the rollups of its day stays, unnamed, in the sums.
 """
 
 from __future__ import annotations
@@ -25,6 +27,7 @@ from sqlalchemy.orm import Session
 from belated.store import bulk, partitions, refresh, rollups, segments
 from belated.store.dialect import is_postgres
 from belated.store.tables import (
+    DroppedId,
     Label,
     LabelChange,
     ModelRow,
@@ -44,6 +47,7 @@ class Erased:
     labels: int = 0
     pending_labels: int = 0
     not_found: list[str] = field(default_factory=list)
+    expired: list[str] = field(default_factory=list)  # past retention: raw rows dropped
 
     def answer(self) -> dict[str, Any]:
         """The API's answer."""
@@ -54,6 +58,7 @@ class Erased:
                 "pending_labels": self.pending_labels,
             },
             "not_found": self.not_found,
+            "expired": self.expired,
         }
 
 
@@ -123,12 +128,12 @@ def erase(
         # none are left after the refresh above; a change logged by a writer that raced
         # this one would point at a row that is gone
         session.execute(delete(LabelChange).where(LabelChange.row_id.in_(chunk)))
-        gone = delete(Prediction).where(
+        rows = delete(Prediction).where(
             Prediction.model_id == model.id, Prediction.row_id.in_(chunk)
         )
         if is_postgres(session):  # their hours name the day partitions to look in
-            gone = gone.where(Prediction.hour.in_(hours))
-        session.execute(gone)
+            rows = rows.where(Prediction.hour.in_(hours))
+        session.execute(rows)
     if is_postgres(session):  # the registry: an erased id may be sent again as new
         _delete_by_id(session, PredictionId, model.id, list(stored))
     out.predictions = len(row_ids)
@@ -136,6 +141,8 @@ def erase(
         rollups.take_out(
             session=session, model=model, difference=difference, now=now, max_values=max_values
         )
-    known = set(stored) | set(history) | set(waiting)
+    gone = set(_delete_by_id(session, DroppedId, model.id, ids))
+    out.expired = [i for i in ids if i in gone]
+    known = set(stored) | set(history) | set(waiting) | gone
     out.not_found = [i for i in ids if i not in known]
     return out

@@ -36,7 +36,7 @@ from typing import Any
 from sqlalchemy.orm import Session, sessionmaker
 
 from belated.ingest.validate import PredictionIn
-from belated.store import bulk, dirty, labels, partitions, predictions
+from belated.store import bulk, dirty, labels, partitions, predictions, raw_retention
 from belated.store.db import transaction
 from belated.store.dialect import is_postgres
 from belated.timeutil import to_utc
@@ -120,6 +120,8 @@ class GroupWriter:
         try:
             with transaction(self.sessions) as session:
                 touched: dict[int, set[int]] = {}
+                # one too old for its model's raw days: batch by batch, so only its request is 422
+                raw_retention.refuse_each(session, [(b.model_id, b.items) for b in preds])
                 store = _store_pg if is_postgres(session) else _store_sqlite
                 answers = store(session, preds, touched) + _store_labels(session, marks, touched)
                 # the hours are held last (store/dirty.py): after every row lock this

@@ -7,7 +7,7 @@ from typing import Any
 
 from sqlalchemy import Connection, func, select, text
 
-from belated.store import retention
+from belated.store import raw_retention, retention
 from belated.store.tables import DirtyBucket, ServiceState
 from belated.timeutil import from_db, iso
 
@@ -19,7 +19,8 @@ def ping(*, conn: Connection) -> None:
 
 def refresh_state(*, conn: Connection, now: datetime) -> dict[str, Any]:
     """Dirty buckets, the oldest mark, the refresh lag as of `now`, the last refresh, and
-    the pending labels the jobs have dropped since the store was created."""
+    the pending labels, raw days and raw rows the jobs have dropped since the store was
+    created."""
     buckets = select(DirtyBucket.model_id, DirtyBucket.hour).distinct().subquery()
     n = conn.execute(select(func.count()).select_from(buckets)).scalar_one()
     oldest = conn.execute(select(func.min(DirtyBucket.marked_at))).scalar()
@@ -34,4 +35,6 @@ def refresh_state(*, conn: Connection, now: datetime) -> dict[str, Any]:
     if last:
         answer["last_refresh"] = last.get("at")
     answer["pending_labels_dropped"] = retention.dropped_total(conn=conn)
+    raw = raw_retention.dropped_totals(conn=conn)
+    answer["raw_days_dropped"], answer["raw_rows_dropped"] = raw["days"], raw["rows"]
     return answer

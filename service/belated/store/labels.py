@@ -11,7 +11,7 @@ from sqlalchemy.orm import Session
 
 from belated.clock import clock
 from belated.ingest.validate import LabelIn
-from belated.store import bulk, dirty, partitions
+from belated.store import bulk, dirty, partitions, raw_retention
 from belated.store.dialect import is_postgres, upsert
 from belated.store.tables import Label, PendingLabel, Prediction, PredictionId
 from belated.timeutil import to_utc
@@ -112,7 +112,7 @@ def _pending(session: Session, model_id: int, ids: list[str]) -> dict[str, str]:
 def ingest(
     *, session: Session, model_id: int, items: list[LabelIn], now: datetime | None = None
 ) -> dict[str, int]:
-    """Apply labels received `now` (the clock by default) in arrival order; the four counts
+    """Apply labels received `now` (the clock by default) in arrival order; the five counts
     add up to the batch size."""
     received = now or clock.now()
     if (
@@ -192,6 +192,8 @@ def _ingest_set_pg(
         ((label.pid, label.actual, label.ts) for label in items),
         types=("text", "text", "timestamptz"),
     )
+    # ids past retention (no prediction, raw rows dropped) are answered and stored nowhere
+    expired = raw_retention.take_expired_from_stage(session, model_id, _IN_STAGE)
     stored_hours = [
         int(h)
         for (h,) in session.execute(
@@ -212,6 +214,7 @@ def _ingest_set_pg(
         "pending": pending,
         "corrected": corrected,
         "unchanged": found - matched - corrected,
+        "expired": expired,
     }
     return answer, set(hours)
 
@@ -229,8 +232,12 @@ def ingest_batches(
     them last."""
     ids = list(dict.fromkeys(label.pid for items, _ in batches for label in items))
     targets = _targets(session, model_id, ids)
-    pending_now = _pending(session, model_id, [i for i in ids if i not in targets])
-    answers = [{"matched": 0, "pending": 0, "corrected": 0, "unchanged": 0} for _ in batches]
+    unmatched = [i for i in ids if i not in targets]
+    pending_now = _pending(session, model_id, unmatched)
+    expired = raw_retention.expired_ids(session, model_id, unmatched)
+    answers = [
+        {"matched": 0, "pending": 0, "corrected": 0, "unchanged": 0, "expired": 0} for _ in batches
+    ]
     updates: dict[int, dict[str, Any]] = {}
     history: list[dict[str, Any]] = []
     changes: list[Change] = []
@@ -242,6 +249,9 @@ def ingest_batches(
         for label in items
     ):
         target = targets.get(label.pid)
+        if target is None and label.pid in expired:
+            answer["expired"] += 1  # its raw rows were dropped: stored nowhere
+            continue
         if target is None:
             answer["pending"] += 1
             if pending_now.get(label.pid) != label.actual:

@@ -15,7 +15,7 @@ from sqlalchemy.orm import Session
 from belated.clock import clock
 from belated.errors import Conflict
 from belated.ingest.validate import PredictionIn
-from belated.store import bulk, dirty, labels, partitions
+from belated.store import bulk, dirty, labels, partitions, raw_retention
 from belated.store.dialect import is_postgres
 from belated.store.tables import Prediction, PredictionId
 from belated.timeutil import to_utc
@@ -90,6 +90,7 @@ def ingest(
     """Insert the new predictions received `now` (the clock by default); answer accepted and
     duplicate counts."""
     received = now or clock.now()
+    raw_retention.refuse_before(session=session, model_id=model_id, preds=preds)
     waiting: list[str] | None = None  # the new ids with a pending label; None: not known
     if is_postgres(session):
         # insert first (ON CONFLICT DO NOTHING) and compare only the ids already stored; a

@@ -19,7 +19,7 @@ from sqlalchemy import delete, select, tuple_
 from sqlalchemy.orm import Session, sessionmaker
 
 from belated.clock import now
-from belated.store import dirty, labels, rollups
+from belated.store import dirty, labels, raw_retention, rollups
 from belated.store.db import transaction
 from belated.store.tables import DirtyBucket, ModelRow, PendingLabel, Prediction, ServiceState
 
@@ -93,10 +93,10 @@ def refresh_batch(
             rollups.refresh_hours(
                 session=session,
                 model=model,
-                recompute=recompute[mid],
+                recompute=raw_retention.retained_hours(session, model, recompute[mid]),
                 now=stamp,
                 max_values=max_values,
-                fold=fold[mid],
+                fold=raw_retention.retained_hours(session, model, fold[mid]),
             )
     return claimed
 
@@ -112,10 +112,14 @@ def refresh_model_hours(
     rollups.refresh_hours(
         session=session,
         model=model,
-        recompute=[m.hour for m in taken if m.recompute],
+        recompute=raw_retention.retained_hours(
+            session, model, [m.hour for m in taken if m.recompute]
+        ),
         now=now(),
         max_values=max_values,
-        fold=[m.hour for m in taken if not m.recompute],
+        fold=raw_retention.retained_hours(
+            session, model, [m.hour for m in taken if not m.recompute]
+        ),
     )
     return taken
 
@@ -212,26 +216,34 @@ def record_run(factory: sessionmaker[Session], summary: dict[str, Any]) -> None:
 
 
 def mark_model(session: Session, model_id: int) -> int:
-    """Mark every hour of a model dirty (a rebuild, or a setting that changes rollups)."""
-    hours = list(
-        session.scalars(select(Prediction.hour).distinct().where(Prediction.model_id == model_id))
-    )
+    """Mark every retained hour of a model dirty (a rebuild, or a setting that changes
+    rollups); hours below raw_from_hour have no raw rows left to aggregate."""
+    query = select(Prediction.hour).distinct().where(Prediction.model_id == model_id)
+    first = session.scalar(select(ModelRow.raw_from_hour).where(ModelRow.id == model_id))
+    if first is not None:
+        query = query.where(Prediction.hour >= first)
+    hours = list(session.scalars(query))
     return dirty.mark(session=session, model_id=model_id, hours=hours, lock="exclusive")
 
 
 def rebuild(factory: sessionmaker[Session], *, max_values: int, model_id: int | None = None) -> int:
-    """Recompute every rollup (of one model, or all) from raw rows."""
+    """Recompute every rollup (of one model, or all) from raw rows; the rollups of days
+    whose raw rows retention dropped are kept as they are."""
     from belated.store.rollup_tables import Rollup
 
     with transaction(factory) as session:
         # a lake-fed model's rollups are uploaded: with no raw rows, a rebuild would lose them
-        http = select(ModelRow.id).where(ModelRow.source != "lake")
+        http = select(ModelRow).where(ModelRow.source != "lake")
         if model_id is not None:
             http = http.where(ModelRow.id == model_id)
-        ids = list(session.scalars(http))
-        for mid in ids:
-            session.execute(delete(Rollup).where(Rollup.model_id == mid))
-            mark_model(session, mid)
+        ids: list[int] = []
+        for model in session.scalars(http).all():
+            gone = delete(Rollup).where(Rollup.model_id == model.id)
+            if model.raw_from_hour is not None:  # a UTC midnight: hourly and daily rows alike
+                gone = gone.where(Rollup.start >= model.raw_from_hour)
+            session.execute(gone)
+            mark_model(session, model.id)
+            ids.append(model.id)
     total = 0
     for mid in ids:
         total += refresh_all(factory, max_values=max_values, model_id=mid)

@@ -99,6 +99,11 @@ class ModelRow(Base):
     )
     # "http": raw rows posted to the API; "lake": rollup rows uploaded (belated.lake)
     source: Mapped[str] = mapped_column(String(8), server_default="http")
+    # the epoch hour (a UTC midnight) below which raw rows were dropped by retention
+    # (store/raw_retention.py); None: none dropped. A server default, as for keep_raw_days
+    raw_from_hour: Mapped[int | None] = mapped_column(
+        Integer, nullable=True, server_default=text("NULL")
+    )
     created_at: Mapped[datetime] = mapped_column(UtcDateTime)
     updated_at: Mapped[datetime] = mapped_column(UtcDateTime)
 
@@ -221,6 +226,19 @@ class LabelChange(Base):
     new_delay_h: Mapped[float | None] = mapped_column(Float, nullable=True)
 
 
+class DroppedId(Base):
+    """An id whose raw rows retention dropped, kept for one more keep_raw_days so that a
+    late label for it is answered `expired` (store/raw_retention.py)."""
+
+    __tablename__ = "dropped_ids"
+    __table_args__ = (Index("ix_dropped_ids_model_hour", "model_id", "hour"),)
+    model_id: Mapped[int] = mapped_column(
+        ForeignKey("models.id", ondelete="CASCADE"), primary_key=True
+    )
+    pid: Mapped[str] = mapped_column(String(128), primary_key=True)
+    hour: Mapped[int] = mapped_column(Integer)
+
+
 class Marker(Base):
     """A dated note on a model's timeline ("supplier change in the north"), drawn on charts."""
 
@@ -253,6 +271,7 @@ __all__ = [
     "Label",
     "PendingLabel",
     "DirtyBucket",
+    "DroppedId",
     "Marker",
     "ServiceState",
 ]

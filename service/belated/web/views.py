@@ -9,13 +9,14 @@ added to `marks` with kind "marker": the charts draw any kind the same way.
 
 from __future__ import annotations
 
-from datetime import datetime, timedelta
+from datetime import UTC, datetime, timedelta
 from typing import Any
 
 from sqlalchemy import func, select
 from sqlalchemy.orm import Session
 
 from belated.metrics import params
+from belated.store.rollup_tables import Rollup
 from belated.store.tables import Marker, ModelRow, Prediction
 from belated.timeutil import from_db, parse_ts
 from belated.web import charts
@@ -26,7 +27,14 @@ SETTLED_SHOWN = 7  # days of settled windows the default range always reaches ba
 
 
 def first_prediction(session: Session, model: ModelRow) -> datetime | None:
-    """When the model's earliest stored prediction was made (None without any)."""
+    """When the model's earliest stored prediction was made (None without any); once
+    retention dropped raw days, the start of its earliest daily rollup."""
+    if model.raw_from_hour is not None:
+        day = session.scalar(
+            select(func.min(Rollup.start)).where(Rollup.model_id == model.id, Rollup.level == "d")
+        )
+        if day is not None:
+            return datetime.fromtimestamp(int(day) * 3600, UTC)
     first = session.scalar(select(func.min(Prediction.ts)).where(Prediction.model_id == model.id))
     return from_db(first)
 

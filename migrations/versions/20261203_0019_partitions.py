@@ -6,8 +6,8 @@ so an id re-sent with another time is still found (store/partitions.py explains 
 layout). Existing rows are copied into the new layout with their row ids. SQLite keeps its
 single table: nothing changes there.
 
-Revision ID: 0018_partitions
-Revises: 0017_model_source
+Revision ID: 0019_partitions
+Revises: 0018_raw_retention
 Create Date: 2026-12-03 06:40:00
 """
 
@@ -16,8 +16,8 @@ from collections.abc import Sequence
 from alembic import op
 from sqlalchemy import text
 
-revision: str = "0018_partitions"
-down_revision: str | None = "0017_model_source"
+revision: str = "0019_partitions"
+down_revision: str | None = "0018_raw_retention"
 branch_labels: str | Sequence[str] | None = None
 depends_on: str | Sequence[str] | None = None
 
