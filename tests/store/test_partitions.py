@@ -231,3 +231,35 @@ def test_migration_from_the_flat_table_keeps_every_row_and_window(
         clock.set(None)
         if name is not None:
             drop_pg_database(name)
+
+
+def test_retention_drops_whole_day_partitions_and_keeps_every_window(
+    tenant: Tenant, engine: Engine, sessions: Any
+) -> None:
+    from belated.store import raw_retention
+    from belated.store.tables import ModelRow
+
+    model = create_model(tenant, engine, label_delay_days=1, keep_raw_days=2)
+    start = base_time().replace(year=2001, month=3, day=1, hour=0)  # days no other test uses
+    items = [prediction(n, base=start, prefix="old") for n in range(0, 5 * 24 * 60, 90)]
+    send(tenant.client, model.name, "predictions", items)
+    send(tenant.client, model.name, "labels", [label(i["id"], n % 2) for n, i in enumerate(items)])
+    refresh.refresh_all(sessions, max_values=100)
+    query = {"granularity": "day", "start": "2001-03-01", "end": "2001-03-06"}
+    before = tenant.client.get(f"/v1/models/{model.name}/metrics", params=query).json()
+    with transaction(sessions) as session:
+        row = session.get(ModelRow, model.id)
+        assert row is not None
+        done = raw_retention.drop_raw_days(
+            session=session, model=row, now=start + timedelta(days=10)
+        )
+    assert done["rows"] == len(items) and done["days"] == 5
+    assert count(engine, "predictions", model.id) == 0
+    after = tenant.client.get(f"/v1/models/{model.name}/metrics", params=query).json()
+    assert after["windows"] == before["windows"]
+    if engine.dialect.name == "postgresql":  # the days' partitions are gone, not emptied
+        first = epoch_hour(start) // 24
+        for day in range(first, first + 5):
+            assert rows(engine, f"SELECT to_regclass('{partitions.day_name(day)}')")[0][0] is None
+        left = rows(engine, "SELECT count(*) FROM prediction_ids WHERE model_id = :m", m=model.id)
+        assert left[0][0] == 0
