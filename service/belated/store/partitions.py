@@ -37,7 +37,7 @@ REGISTRY = "prediction_ids"
 AHEAD_DAYS = 7  # the jobs keep partitions this many days ahead of today
 _NAME = re.compile(r"^predictions_(p\d{8}|default)$")
 _LOCK = 0x6265_6C61_7465_6470  # advisory key serialising partition changes
-_LOCK_TIMEOUT = "2s"
+LOCK_TIMEOUT = "2s"
 
 _known: dict[str, set[int]] = {}  # engine url → days known to have a partition
 _known_guard = threading.Lock()
@@ -121,7 +121,7 @@ def ensure_hours(session: Session, hours: Iterable[int]) -> None:
     try:
         if isinstance(bind, Engine):
             with bind.connect() as conn:
-                conn.execute(text(f"SET LOCAL lock_timeout = '{_LOCK_TIMEOUT}'"))
+                conn.execute(text(f"SET LOCAL lock_timeout = '{LOCK_TIMEOUT}'"))
                 create_days(conn, missing)
                 have = existing_days(conn)
                 conn.commit()
@@ -151,7 +151,7 @@ def maintain(session: Session, now: datetime) -> dict[str, int]:
         return {"created": 0}
     today = int(now.timestamp()) // 86400
     stray = {int(h) // 24 for (h,) in conn.execute(text(f"SELECT DISTINCT hour FROM {DEFAULT}"))}
-    conn.execute(text(f"SET LOCAL lock_timeout = '{_LOCK_TIMEOUT}'"))
+    conn.execute(text(f"SET LOCAL lock_timeout = '{LOCK_TIMEOUT}'"))
     created = create_days(conn, set(range(today, today + AHEAD_DAYS + 1)) | stray)
     return {"created": created, "moved_days": len(stray)}
 
@@ -222,61 +222,3 @@ def hours_clause(hours: Iterable[int], column: str = "p.hour") -> str:
     return (
         "(" + " OR ".join(f"({column} >= {a * 24} AND {column} < {b * 24})" for a, b in runs) + ")"
     )
-
-
-def drop_model_hours(session: Session, model_id: int, lo_hour: int, hi_hour: int) -> int:
-    """Retention on PostgreSQL: remove a model's raw predictions of hours [lo, hi) (whole
-    days; their label history and registry rows first); the number removed.
-
-    A day partition that holds no other model's rows is dropped whole (a catalogue change,
-    whatever its size, and its disk returned at once); otherwise the model's rows are
-    deleted from it. A drop that cannot take its lock in time falls back to the delete."""
-    conn = session.connection()
-    rows = f"model_id = :m AND hour >= {int(lo_hour)} AND hour < {int(hi_hour)}"
-    params = {"m": model_id}
-    conn.execute(
-        text(
-            "DELETE FROM labels WHERE model_id = :m AND pid IN"
-            f" (SELECT pid FROM {PARENT} WHERE {rows})"
-        ),
-        params,
-    )
-    conn.execute(
-        text(
-            f"DELETE FROM {REGISTRY} r USING {PARENT} p WHERE r.model_id = :m"
-            f" AND r.pid = p.pid AND p.model_id = :m AND p.hour >= {int(lo_hour)}"
-            f" AND p.hour < {int(hi_hour)}"
-        ),
-        params,
-    )
-    removed = 0
-    dropped_any = False
-    have = existing_days(conn)
-    for day in range(int(lo_hour) // 24, (int(hi_hour) + 23) // 24):
-        lo, hi = max(day * 24, int(lo_hour)), min(day * 24 + 24, int(hi_hour))
-        whole = lo == day * 24 and hi == day * 24 + 24 and day in have
-        if (
-            whole
-            and not conn.execute(
-                text(f"SELECT 1 FROM {day_name(day)} WHERE model_id <> :m LIMIT 1"), params
-            ).first()
-        ):
-            n = int(conn.execute(text(f"SELECT count(*) FROM {day_name(day)}")).scalar() or 0)
-            try:
-                with session.begin_nested():
-                    conn.execute(text(f"SET LOCAL lock_timeout = '{_LOCK_TIMEOUT}'"))
-                    conn.execute(text(f"DROP TABLE {day_name(day)}"))
-                removed += n
-                dropped_any = True
-                continue
-            except Exception as exc:  # busy: the delete below does the same, more slowly
-                log.warning("partition %s not dropped now (%s); its rows are deleted", day, exc)
-        result = conn.execute(
-            text(f"DELETE FROM {PARENT} WHERE model_id = :m AND hour >= {lo} AND hour < {hi}"),
-            params,
-        )
-        removed += int(getattr(result, "rowcount", 0) or 0)
-    if dropped_any:
-        bind = session.get_bind()
-        forget(bind if isinstance(bind, Engine) else bind.engine)
-    return removed

@@ -27,7 +27,7 @@ from sqlalchemy.orm import Session
 
 from belated.errors import Invalid, field_error
 from belated.ingest.validate import PredictionIn
-from belated.store import bulk, partitions
+from belated.store import bulk, partition_retention
 from belated.store.dialect import upsert
 from belated.store.retention import keep_raw_days
 from belated.store.tables import (
@@ -66,7 +66,7 @@ def delete_raw_hours(session: Session, model_id: int, lo_hour: int, hi_hour: int
     history, a day per DELETE; the number of predictions removed. The one place raw rows
     are removed by retention (a partition drop can take its place)."""
     if session.get_bind().dialect.name == "postgresql":  # day partitions dropped whole
-        return partitions.drop_model_hours(session, model_id, lo_hour, hi_hour)
+        return partition_retention.drop_model_hours(session, model_id, lo_hour, hi_hour)
     removed = 0
     for start in range(lo_hour, hi_hour, DELETE_HOURS):
         end = min(start + DELETE_HOURS, hi_hour)
