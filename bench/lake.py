@@ -40,12 +40,20 @@ from bench.lake_service import differences  # noqa: E402
 HEADERS = ["path", "run", "rows in", "rollup rows", "CPU-s", "wall s", "rows/s", "peak MiB"]
 
 
-def engine_run(engine: str, mode: str, prefix: str, data: Path) -> dict[str, Any]:
-    """One lake job run in a child process; its measures and its rollup table."""
+def engine_run(
+    engine: str, mode: str, prefix: str, data: Path, reuse: bool = False
+) -> dict[str, Any]:
+    """One lake job run in a child process (or, with `reuse`, the one an earlier invocation
+    measured on the same logs); its measures and its rollup table."""
     out = data / f"rollups-{engine}-{mode}-{prefix or 'all'}.parquet"
-    cmd = [sys.executable, "-m", "bench.lake_engine", engine, mode, prefix, str(data), str(out)]
-    done = subprocess.run(cmd, cwd=ROOT, stdout=subprocess.PIPE, text=True, check=True)
-    answer: dict[str, Any] = json.loads(done.stdout.strip().splitlines()[-1])
+    measured = out.with_suffix(".json")
+    if reuse and measured.exists():
+        answer: dict[str, Any] = json.loads(measured.read_text())
+    else:
+        cmd = [sys.executable, "-m", "bench.lake_engine", engine, mode, prefix, str(data), str(out)]
+        done = subprocess.run(cmd, cwd=ROOT, stdout=subprocess.PIPE, text=True, check=True)
+        answer = json.loads(done.stdout.strip().splitlines()[-1])
+        measured.write_text(json.dumps(answer))
     answer["table"] = pq.read_table(out)
     shown = {k: v for k, v in answer.items() if k != "table"}
     print(f"{engine} {mode} {prefix or 'all'}: {shown}", file=sys.stderr, flush=True)
@@ -75,6 +83,9 @@ def main() -> int:
     parser.add_argument("--data", type=Path, default=None)
     parser.add_argument("--no-spark", action="store_true")
     parser.add_argument("--no-http", action="store_true")
+    parser.add_argument(
+        "--reuse", action="store_true", help="take engine runs measured before on the same logs"
+    )
     args = parser.parse_args()
     from belated.lake.schema import to_totals
 
@@ -92,8 +103,8 @@ def main() -> int:
     engines = ["duckdb"] + ([] if args.no_spark else ["spark"])
     for eng in engines:
         name = {"duckdb": "DuckDB", "spark": "Spark local[*]"}[eng]
-        runs[eng] = engine_run(eng, "full", "", data)
-        runs[eng + "-day"] = engine_run(eng, "day", "", data)
+        runs[eng] = engine_run(eng, "full", "", data, args.reuse)
+        runs[eng + "-day"] = engine_run(eng, "day", "", data, args.reuse)
         rows.append(row(name, "full", full_in, runs[eng]))
         day = runs[eng + "-day"]
         rows.append(row(name, f"day ({n['labels-day']:,} new labels)", full_in, day))
