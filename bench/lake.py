@@ -16,7 +16,10 @@ in the last day, plus the hours whose predictions crossed 30 days during it):
 - the upload of the rollup rows (PUT /rollups, whole hours) of the full run and of the day.
 
     nice -n 19 .venv/bin/python bench/lake.py [--rows 10000000] [--http-rows 2000000]
-        [--data DIR] [--no-spark] [--no-http]
+        [--data DIR] [--no-spark] [--no-http] [--reuse]
+
+--reuse takes the engine runs an earlier invocation measured on the same --data logs (each
+run's measures are kept beside its rollup Parquet), so a failed HTTP step can be rerun alone.
 """
 
 from __future__ import annotations
