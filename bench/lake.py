@@ -1,244 +1,157 @@
-"""The lake job (issue 17): rollup rows of N predictions computed on DuckDB and on Spark
-local mode, and uploaded to a lake-fed model on PostgreSQL.
+"""The lake job (issue 17) against belated's own HTTP path, on the same logs in one run.
 
-Data (seeded numpy PCG64): N orders uniform over DAYS days, scores Beta(2, 5), two tag keys
-(region in four values, channel in two); 80% labelled after an exponential delay (mean
-72 h), 5% of those corrected later, 1% of labels for orders that never existed; Parquet
-files as a team's log would hold them. Measured in the same run:
-- a full run (every hour) on DuckDB, in this process: CPU-s (process user + system) and wall;
-- an incremental run: a second label batch correcting orders of 2% of the hours, only the
-  hours it touched (`--touched-by`), on DuckDB;
-- the same full and incremental runs on Spark local[*]: CPU-s of the JVM (/proc), wall,
-  and the session start apart; the rows must equal DuckDB's (counts exactly, sums 1e-9);
-- the upload of the full run's rows to `belated serve --no-jobs` on PostgreSQL (PUT
-  /rollups in pieces of whole hours): wall and the service's CPU-s.
+Logs (bench/lake_data.py, written once under --data and reused): N predictions over DAYS
+days, ~0.8 N labels with 5% corrections and 1% orphans, implied negatives after 30 days.
+Measured in the same run, each a full run and an incremental day (the labels that arrived
+in the last day, plus the hours whose predictions crossed 30 days during it):
+- DuckDB and Spark local[*] (bench/lake_engine.py, a child process each): CPU-s (Spark:
+  the JVM's too), wall, peak RSS; Spark's rows must equal DuckDB's, the day's rows the full
+  run's for the same hours;
+- the HTTP path: predictions and the labels up to yesterday POSTed to `belated serve
+  --no-jobs` on PostgreSQL over loopback (batches of 10,000, two clients), refreshed at
+  yesterday's clock, then the last day's labels and a refresh at today's: CPU-s of the
+  service, the refresh child and their PostgreSQL backends; on --http-rows predictions (a
+  stated subset, scaled per row in its own line), whose stored rollups must equal DuckDB's
+  over the same subset;
+- the upload of the rollup rows (PUT /rollups, whole hours) of the full run and of the day.
 
-    .venv/bin/python bench/lake.py [--rows 1000000] [--days 90] [--no-spark]
+    nice -n 19 .venv/bin/python bench/lake.py [--rows 10000000] [--http-rows 2000000]
+        [--data DIR] [--no-spark] [--no-http] [--reuse]
+
+--reuse takes the engine runs an earlier invocation measured on the same --data logs (each
+run's measures are kept beside its rollup Parquet), so a failed HTTP step can be rerun alone.
 """
 
 from __future__ import annotations
 
 import argparse
-import math
+import json
 import os
-import resource
+import subprocess
 import sys
-import tempfile
 import time
-from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
 
-import numpy as np
-import pyarrow as pa
 import pyarrow.parquet as pq
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
-from belated.client import Client  # noqa: E402
-from belated.lake import LakeModel, build_totals, touched_hours  # noqa: E402
-from belated.lake.run import chunks  # noqa: E402
-from belated.lake.schema import ARROW_STREAM, to_bytes, to_table  # noqa: E402
-from bench.common import (  # noqa: E402
-    Service,
-    code_version,
-    cpu_seconds,
-    create_database,
-    drop_database,
-    markdown_table,
-    pg_url,
-    setup_store,
-)
+from bench.common import ROOT, code_version, markdown_table  # noqa: E402
+from bench.lake_data import make_logs  # noqa: E402
+from bench.lake_service import differences  # noqa: E402
 
-NOW = datetime(2026, 12, 1, tzinfo=UTC)
-SETTINGS: dict[str, Any] = {
-    "kind": "binary",
-    "classes": ["kept", "returned"],
-    "positive": "returned",
-    "threshold": 0.4,
-    "negative_after_days": 30,
-}
+HEADERS = ["path", "run", "rows in", "rollup rows", "CPU-s", "wall s", "rows/s", "peak MiB"]
 
 
-def ts_array(us: np.ndarray) -> pa.Array:
-    return pa.array(us.astype("datetime64[us]"), pa.timestamp("us")).cast(pa.timestamp("us", "UTC"))
+def engine_run(
+    engine: str, mode: str, prefix: str, data: Path, reuse: bool = False
+) -> dict[str, Any]:
+    """One lake job run in a child process (or, with `reuse`, the one an earlier invocation
+    measured on the same logs); its measures and its rollup table."""
+    out = data / f"rollups-{engine}-{mode}-{prefix or 'all'}.parquet"
+    measured = out.with_suffix(".json")
+    if reuse and measured.exists():
+        answer: dict[str, Any] = json.loads(measured.read_text())
+    else:
+        cmd = [sys.executable, "-m", "bench.lake_engine", engine, mode, prefix, str(data), str(out)]
+        done = subprocess.run(cmd, cwd=ROOT, stdout=subprocess.PIPE, text=True, check=True)
+        answer = json.loads(done.stdout.strip().splitlines()[-1])
+        measured.write_text(json.dumps(answer))
+    answer["table"] = pq.read_table(out)
+    shown = {k: v for k, v in answer.items() if k != "table"}
+    print(f"{engine} {mode} {prefix or 'all'}: {shown}", file=sys.stderr, flush=True)
+    return answer
 
 
-def make_logs(rows: int, days: int, where: Path, seed: int = 17) -> dict[str, str]:
-    """Write predictions, labels and a late label batch as Parquet; their paths."""
-    rng = np.random.default_rng(seed)
-    end_us = int(NOW.timestamp() * 1e6)
-    ts = end_us - rng.integers(0, days * 86_400_000_000, rows)
-    score = rng.beta(2, 5, rows)
-    ids = np.char.add("o", np.arange(rows).astype(str))
-    pq.write_table(
-        pa.table(
-            {
-                "id": ids,
-                "ts": ts_array(ts),
-                "score": score,
-                "region": rng.choice(["north", "south", "east", "west"], rows),
-                "channel": rng.choice(["web", "store"], rows),
-            }
-        ),
-        where / "predictions.parquet",
-    )
-    labelled = np.flatnonzero(rng.random(rows) < 0.8)
-    outcome = np.where(rng.random(labelled.size) < score[labelled], "returned", "kept")
-    label_ts = ts[labelled] + rng.exponential(72 * 3.6e9, labelled.size).astype(np.int64)
-    keep = label_ts <= end_us
-    labelled, outcome, label_ts = labelled[keep], outcome[keep], label_ts[keep]
-    fix = rng.random(labelled.size) < 0.05
-    fixed_ts = np.minimum(label_ts[fix] + 3_600_000_000 * 24, end_us)
-    orphans = max(1, labelled.size // 100)
-    lab_ids = np.concatenate(
-        [ids[labelled], ids[labelled[fix]], np.char.add("ghost", np.arange(orphans).astype(str))]
-    )
-    lab_actual = np.concatenate(
-        [outcome, np.where(outcome[fix] == "kept", "returned", "kept"), np.full(orphans, "kept")]
-    )
-    lab_ts = np.concatenate([label_ts, fixed_ts, np.full(orphans, end_us - 3_600_000_000)])
-    pq.write_table(
-        pa.table({"id": lab_ids, "actual": lab_actual, "ts": ts_array(lab_ts)}),
-        where / "labels.parquet",
-    )
-    # the late batch: corrections of orders in 2% of the hours, at NOW
-    hours = ts // 3_600_000_000
-    distinct = np.unique(hours)
-    chosen = rng.choice(distinct, max(1, distinct.size // 50), replace=False)
-    late = np.flatnonzero(np.isin(hours, chosen))
-    late_ts = np.full(late.size, end_us)
-    late_actual = np.where(rng.random(late.size) < 0.5, "returned", "kept")
-    late_table = pa.table({"id": ids[late], "actual": late_actual, "ts": ts_array(late_ts)})
-    pq.write_table(late_table, where / "late.parquet")
-    all_labels = pa.concat_tables([pq.read_table(where / "labels.parquet"), late_table])
-    pq.write_table(all_labels, where / "labels-all.parquet")
-    return {k: str(where / f"{k}.parquet") for k in ("predictions", "labels", "late", "labels-all")}
-
-
-def self_cpu() -> float:
-    r = resource.getrusage(resource.RUSAGE_SELF)
-    return r.ru_utime + r.ru_stime
-
-
-def timed(run: Any, cpu: Any) -> tuple[Any, float, float]:
-    c0, w0 = cpu(), time.perf_counter()
-    out = run()
-    return out, cpu() - c0, time.perf_counter() - w0
-
-
-def same(a: dict[Any, Any], b: dict[Any, Any]) -> bool:
-    if sorted(a) != sorted(b):
-        return False
-    for k in a:
-        if a[k].scalar_counts.tolist() != b[k].scalar_counts.tolist():
-            return False
-        for x, y in zip(a[k].scalar_sums, b[k].scalar_sums, strict=True):
-            if not math.isclose(x, y, rel_tol=1e-9, abs_tol=1e-12):
-                return False
-    return True
+def row(path: str, run: str, rows_in: int, r: dict[str, Any], scale: float = 1.0) -> list[Any]:
+    """A table row from a measure (CPU and wall multiplied by `scale`)."""
+    wall = r["wall"] * scale
+    return [
+        path,
+        run,
+        f"{int(rows_in * scale):,}",
+        f"{r['rows']:,}" if "rows" in r else "",
+        f"{r['cpu'] * scale:.1f}",
+        f"{wall:.1f}",
+        f"{rows_in * scale / wall:,.0f}" if wall > 0 else "",
+        f"{r['peak_mib']:.0f}" if r.get("peak_mib") else "",
+    ]
 
 
 def main() -> int:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    parser.add_argument("--rows", type=int, default=1_000_000)
+    parser.add_argument("--rows", type=int, default=10_000_000)
     parser.add_argument("--days", type=int, default=90)
+    parser.add_argument("--http-rows", type=int, default=2_000_000)
+    parser.add_argument("--data", type=Path, default=None)
     parser.add_argument("--no-spark", action="store_true")
+    parser.add_argument("--no-http", action="store_true")
+    parser.add_argument(
+        "--reuse", action="store_true", help="take engine runs measured before on the same logs"
+    )
     args = parser.parse_args()
-    model = LakeModel.of(SETTINGS)
-    where = Path(tempfile.mkdtemp(prefix="belated_lake_"))
+    from belated.lake.schema import to_totals
+
+    http_rows = min(args.http_rows, args.rows)
+    data = args.data or Path(f"/tmp/belated_lake_{args.rows}")
+    load0 = os.getloadavg()
     w0 = time.perf_counter()
-    paths = make_logs(args.rows, args.days, where)
-    print(f"data written in {time.perf_counter() - w0:.1f} s to {where}", file=sys.stderr)
-    n_labels = pq.read_metadata(paths["labels"]).num_rows
-    n_late = pq.read_metadata(paths["late"]).num_rows
-    results: list[list[Any]] = []
+    info = make_logs(args.rows, args.days, http_rows, data)
+    print(f"logs ready in {time.perf_counter() - w0:.1f} s under {data}", file=sys.stderr)
+    n, nh = info["counts"]["full"], info["counts"]["http"]
+    full_in = n["predictions"] + n["labels"]
+    rows: list[list[Any]] = []
+    notes: list[str] = []
+    runs: dict[str, dict[str, Any]] = {}
+    engines = ["duckdb"] + ([] if args.no_spark else ["spark"])
+    for eng in engines:
+        name = {"duckdb": "DuckDB", "spark": "Spark local[*]"}[eng]
+        runs[eng] = engine_run(eng, "full", "", data, args.reuse)
+        runs[eng + "-day"] = engine_run(eng, "day", "", data, args.reuse)
+        rows.append(row(name, "full", full_in, runs[eng]))
+        day = runs[eng + "-day"]
+        rows.append(row(name, f"day ({n['labels-day']:,} new labels)", full_in, day))
+        full_t, day_t = to_totals(runs[eng]["table"]), to_totals(day["table"])
+        bad = differences(day_t, full_t, set(day_t))
+        notes.append(f"{name}: the day's {len(day_t):,} rows equal the full run's: {bad == 0}")
+        if eng == "spark":
+            bad = differences(full_t, to_totals(runs["duckdb"]["table"]))
+            notes.append(f"Spark's rows equal DuckDB's: {bad == 0} ({bad} differ)")
+            notes.append(f"Spark session start {runs[eng]['start']:.1f} s, apart")
+    if not args.no_http:
+        from bench.lake_service import http_and_upload
 
-    def run_engine(name: str, engine: Any, cpu: Any) -> dict[Any, Any]:
-        full, c, w = timed(
-            lambda: build_totals(
-                paths["predictions"], paths["labels"], model, now=NOW, engine=engine
-            ),
-            cpu,
+        sub = (
+            runs["duckdb"]
+            if http_rows == args.rows
+            else engine_run("duckdb", "full", "http-", data)
         )
-        results.append([name, "full", f"{args.rows:,}", len(full), f"{c:.1f}", f"{w:.1f}"])
-
-        def incremental() -> dict[Any, Any]:
-            hours = touched_hours(paths["predictions"], paths["late"], engine=engine)
-            return build_totals(
-                paths["predictions"],
-                paths["labels-all"],
-                model,
-                now=NOW,
-                engine=engine,
-                hours=hours,
-            )
-
-        part, c, w = timed(incremental, cpu)
-        results.append(
-            [
-                name,
-                f"incremental ({n_late:,} labels)",
-                f"{args.rows:,}",
-                len(part),
-                f"{c:.1f}",
-                f"{w:.1f}",
-            ]
-        )
-        return full
-
-    duck = run_engine("DuckDB", "duckdb", self_cpu)
-    spark_start = 0.0
-    if not args.no_spark:
-        from belated.lake.spark import SparkEngine
-
-        s0 = time.perf_counter()
-        eng = SparkEngine()
-        spark_start = time.perf_counter() - s0
-        jvm = eng.spark.sparkContext._gateway.proc.pid
-        spark = run_engine("Spark local[*]", eng, lambda: cpu_seconds(jvm) + self_cpu())
-        eng.close()
-        assert same(spark, duck), "Spark and DuckDB rows differ"
-    # the upload
-    dbname = create_database("belated_bench_lake")
-    service = None
-    try:
-        url = pg_url(dbname)
-        token, _ = setup_store(url)
-        service = Service(url)
-        service.wait_ready()
-        table = to_table(duck)
-        with Client(service.url, token) as client:
-            client.create_model(
-                name="returns-lake", source="lake", **{k: v for k, v in SETTINGS.items()}
-            )
-            bodies = [to_bytes(p, ARROW_STREAM) for p in chunks(table)]
-            c0, w0 = cpu_seconds(service.pid), time.perf_counter()
-            for body in bodies:
-                client.put_rollups("returns-lake", body, ARROW_STREAM)
-            up_wall, up_cpu = time.perf_counter() - w0, cpu_seconds(service.pid) - c0
-        results.append(
-            [
-                "upload (PUT /rollups)",
-                f"{len(bodies)} requests, {sum(map(len, bodies)) / 2**20:.1f} MiB",
-                "",
-                table.num_rows,
-                f"{up_cpu:.1f} (service)",
-                f"{up_wall:.1f}",
-            ]
-        )
-    finally:
-        if service is not None:
-            service.stop()
-        drop_database(dbname)
+        if http_rows != args.rows:
+            rows.append(row("DuckDB", "full, HTTP subset", nh["predictions"] + nh["labels"], sub))
+        got = http_and_upload(info, sub["table"], runs["duckdb"], runs["duckdb-day"])
+        scale = args.rows / http_rows
+        for r in got["rows"]:
+            rows.append(row(*r))
+        for label, key, rows_in in (
+            ("full", "full", nh["predictions"] + nh["labels-base"]),
+            ("day", "day", nh["labels-day"]),
+        ):
+            if scale != 1.0:
+                rows.append(
+                    row("HTTP", f"{label}, scaled ×{scale:g} per row", rows_in, got[key], scale)
+                )
+        rows.extend(got["uploads"])
+        notes.extend(got["notes"])
+    print(markdown_table(HEADERS, rows))
     print(
-        markdown_table(["engine", "run", "predictions", "rollup rows", "CPU-s", "wall s"], results)
+        f"\n{args.rows:,} predictions over {args.days} days, {n['labels']:,} labels (5%"
+        f" corrections, 1% orphans), {n['labels-day']:,} of them in the last day; HTTP on"
+        f" {http_rows:,} predictions and their {nh['labels']:,} labels; {os.cpu_count()} CPUs;"
+        f" load average {load0[0]:.1f} at the start, {os.getloadavg()[0]:.1f} at the end;"
+        f" code {code_version()}"
     )
-    print(
-        f"\n{args.rows:,} predictions over {args.days} days, {n_labels:,} labels"
-        f" (5% corrections, 1% orphans), two tag keys; Spark session start"
-        f" {spark_start:.1f} s (apart); {os.cpu_count()} CPUs; code {code_version()};"
-        f" rows equal between engines: {'yes' if not args.no_spark else 'not run'}"
-    )
+    for note in notes:
+        print(f"- {note}")
     return 0
 
 

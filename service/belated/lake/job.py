@@ -15,8 +15,15 @@ that relation is made from the team's logs:
   ends the prediction's history (a repeat of the same label changes nothing). Labels of
   ids without a prediction (orphans) count nowhere.
 
-Admitted segment values: each tag key keeps its `max_values` smallest values (sorted) in
-rollups; the others roll up under '(other)'.
+Admitted segment values: each tag key keeps its `max_values` smallest values (sorted) over
+all the predictions given; the others roll up under '(other)'. Over HTTP the store admits
+values as its refreshes first see them (each batch of up to 168 dirty hours, in hour order,
+admits its new values sorted until the key is full) and keeps that choice, so its set
+depends on when refreshes ran against when rows arrived, which no log records: the lake
+job cannot reproduce it. The two agree while a key has at most `max_values` values (all
+admitted, the usual case at 100), and they may differ past that. A lake run recomputes the
+set from the predictions it reads, so past the limit a new value that sorts first changes
+it: hours uploaded before keep the old set until they are run again.
 """
 
 from __future__ import annotations

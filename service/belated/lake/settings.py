@@ -15,7 +15,8 @@ class LakeModel:
     """A model's rollup settings: kind, classes, threshold, segment keys, implied negatives.
 
     `max_values` is the server's BELATED_MAX_SEGMENT_VALUES: each tag key keeps that many
-    values in rollups (in sorted order), the rest roll up under '(other)'.
+    values in rollups (the smallest, sorted; over HTTP the first a refresh sees: see
+    `belated.lake.job`), the rest roll up under '(other)'.
     """
 
     kind: str = "binary"
