@@ -39,17 +39,14 @@ from bench.common import Service, create_database, drop_database, markdown_table
 from bench.windows import latency, run_child
 
 NEW_DAY = datetime(2026, 1, 1, tzinfo=UTC)
-MATCH_REGISTRY = """
-SELECT p.pid, p.row_id, p.ts, p.hour, p.actual, p.delay_h
-FROM unnest(%(ids)s::text[]) AS k(pid)
-JOIN prediction_ids r ON r.model_id = %(m)s AND r.pid = k.pid
-JOIN predictions p ON p.model_id = r.model_id AND p.pid = r.pid AND p.hour = r.hour"""
 MATCH_FLAT = """
 SELECT p.pid, p.row_id, p.ts, p.hour, p.actual, p.delay_h
-FROM unnest(%(ids)s::text[]) AS k(pid) JOIN bench_flat p ON p.model_id = %(m)s AND p.pid = k.pid"""
+FROM unnest(%(ids)s::text[]) AS k(pid) JOIN bench_flat p ON p.model_id = %(m)s AND p.pid = k.pid
+ORDER BY p.row_id FOR UPDATE OF p"""
 MATCH_SCAN = """
 SELECT p.pid, p.row_id, p.ts, p.hour, p.actual, p.delay_h
-FROM unnest(%(ids)s::text[]) AS k(pid) JOIN predictions p ON p.model_id = %(m)s AND p.pid = k.pid"""
+FROM unnest(%(ids)s::text[]) AS k(pid) JOIN predictions p ON p.model_id = %(m)s AND p.pid = k.pid
+ORDER BY p.row_id FOR UPDATE OF p"""
 
 
 def disk(url: str) -> dict[str, float]:
@@ -64,32 +61,57 @@ def disk(url: str) -> dict[str, float]:
     return {"db": db / 2**20, "predictions": float(parts) / 2**20, "registry": reg / 2**20}
 
 
+def _registry(conn: psycopg.Connection[Any], ids: list[str], model_id: int) -> list[Any]:
+    """The label path's look-up: hours from the registry, then only those days' partitions."""
+    from belated.store import labels, partitions
+
+    params = {"ids": ids, "m": model_id}
+    hours = [
+        r[0] for r in conn.execute(partitions._HOURS_SQL.replace("%(ids)b", "%(ids)s"), params)
+    ]
+    sql = labels._TARGETS_PG.format(hours=partitions.hours_clause(hours))
+    return conn.execute(sql.replace("%(ids)b", "%(ids)s"), params).fetchall()
+
+
 def match(url: str, model_id: int, n: int, seed: int = 11) -> dict[str, float]:
-    """Median ms per batch of finding stored ids: registry, flat copy, across partitions."""
+    """Median ms per batch of finding (and locking) stored ids as label ingest does, through
+    the registry, against a flat copy with UNIQUE (model, id) and by id alone across every
+    partition; ids drawn from the last 60 days (where labels arrive) and from the whole
+    year."""
     rng = np.random.default_rng(seed)
-    with psycopg.connect(url, autocommit=True) as conn:
+    with psycopg.connect(url) as conn:
         conn.execute(
             "CREATE TABLE bench_flat AS SELECT model_id, pid, row_id, ts, hour, actual, delay_h"
             " FROM predictions"
         )
         conn.execute("ALTER TABLE bench_flat ADD UNIQUE (model_id, pid)")
-        conn.execute("VACUUM (ANALYZE) bench_flat")
+        conn.commit()
+        conn.execute("ANALYZE bench_flat")
+        conn.commit()
         out: dict[str, float] = {}
-        for size, repeats in ((1000, 30), (20, 200)):
-            times: dict[str, list[float]] = {"registry": [], "flat": [], "scan": []}
-            for i in range(repeats):
-                ids = [wd.pid(int(j)) for j in rng.choice(n, size, replace=False)]
-                plan = (("registry", MATCH_REGISTRY), ("flat", MATCH_FLAT), ("scan", MATCH_SCAN))
-                for name, sql in plan if i % 2 else plan[::-1]:
-                    if name == "scan" and i >= 10:
-                        continue  # slow by design: a few repeats tell its cost
-                    t0 = time.perf_counter()
-                    got = conn.execute(sql, {"ids": ids, "m": model_id}).fetchall()
-                    times[name].append((time.perf_counter() - t0) * 1000)
-                    assert len(got) == len(ids), (name, len(got))
-            for name, values in times.items():
-                out[f"{name}_{size}"] = statistics.median(values)
+        recent = int(n * 305 / 365)
+        for span, lo in (("60d", recent), ("year", 0)):
+            for size, repeats in ((1000, 20), (20, 100)):
+                times: dict[str, list[float]] = {"registry": [], "flat": [], "scan": []}
+                for i in range(repeats):
+                    ids = [wd.pid(int(j)) for j in lo + rng.choice(n - lo, size, replace=False)]
+                    ways = ("registry", "flat", "scan")
+                    for name in ways if i % 2 else ways[::-1]:
+                        if name == "scan" and i >= 5:
+                            continue  # slow by design: a few repeats tell its cost
+                        t0 = time.perf_counter()
+                        if name == "registry":
+                            got = _registry(conn, ids, model_id)
+                        else:
+                            sql = MATCH_FLAT if name == "flat" else MATCH_SCAN
+                            got = conn.execute(sql, {"ids": ids, "m": model_id}).fetchall()
+                        times[name].append((time.perf_counter() - t0) * 1000)
+                        conn.rollback()  # the locks go, as a request's would at its end
+                        assert len(got) == len(ids), (name, len(got))
+                for name, values in times.items():
+                    out[f"{name}_{size}_{span}"] = statistics.median(values)
         conn.execute("DROP TABLE bench_flat")
+        conn.commit()
     return out
 
 
@@ -211,19 +233,26 @@ def run_size(n: int, keep_days: int) -> dict[str, Any]:
         data = wd.generate(n)
         wd.load(url, model_id, data)
         res["load_s"] = time.perf_counter() - t0
+        print({k: v for k, v in res.items() if k != "rebuild"}, flush=True)
         res["rebuild"], _ = run_child("rebuild", sa_url, model_id)
         res["disk"] = disk(url)
+        print({k: v for k, v in res.items() if k != "rebuild"}, flush=True)
         res["match"] = match(url, model_id, n)
+        print({k: v for k, v in res.items() if k != "rebuild"}, flush=True)
         day = new_day(n)
         service = Service(sa_url, extra_env={"BELATED_LOG_FORMAT": "text"})
         try:
             service.wait_ready()
             res["http"] = http_day(service, token, n, day)
+            print(res["http"], flush=True)
         finally:
             service.stop()
         res["refresh"], _ = run_child("refresh", sa_url, model_id)
+        print({k: v for k, v in res.items() if k != "rebuild"}, flush=True)
         res["p50"], res["p95"] = metrics_latency(sa_url, read_token)
+        print({k: v for k, v in res.items() if k != "rebuild"}, flush=True)
         res["retention"] = drop_old_days(sa_url, model_id, keep_days)
+        print({k: v for k, v in res.items() if k != "rebuild"}, flush=True)
         with psycopg.connect(url, autocommit=True) as conn:
             conn.execute("VACUUM (ANALYZE)")
         res["disk_after"] = disk(url)
@@ -233,15 +262,21 @@ def run_size(n: int, keep_days: int) -> dict[str, Any]:
     return res
 
 
+def _ratio(m: dict[str, float], key: str) -> str:
+    reg, flat = m[f"registry_{key}"], m[f"flat_{key}"]
+    return f"{reg:.1f}/{flat:.1f} ({reg / flat:.1f}×)"
+
+
 def table(results: list[dict[str, Any]]) -> str:
     """The figures of every size, one row each, and the largest size against the smallest."""
     head = [
         "rows",
         "load s",
         "disk MiB (preds/registry)",
-        "match 1000 ms reg/flat (×)",
-        "match 20 ms reg/flat (×)",
-        "by id across partitions ms (1000)",
+        "match 1000 ids, last 60 d: ms reg/flat (×)",
+        "match 20 ids, last 60 d: ms reg/flat (×)",
+        "match 1000 / 20 ids, whole year: ms reg/flat (×)",
+        "by id across partitions, 1000 ids ms",
         "HTTP bulk preds rows/s",
         "HTTP 20-pred req rows/s",
         "HTTP labels rows/s",
@@ -257,11 +292,10 @@ def table(results: list[dict[str, Any]]) -> str:
                 f"{r['rows']:,}",
                 f"{r['load_s']:.0f}",
                 f"{d['db']:,.0f} ({d['predictions']:,.0f}/{d['registry']:,.0f})",
-                f"{m['registry_1000']:.1f}/{m['flat_1000']:.1f} "
-                f"({m['registry_1000'] / m['flat_1000']:.2f}×)",
-                f"{m['registry_20']:.2f}/{m['flat_20']:.2f} "
-                f"({m['registry_20'] / m['flat_20']:.2f}×)",
-                f"{m['scan_1000']:.0f}",
+                _ratio(m, "1000_60d"),
+                _ratio(m, "20_60d"),
+                f"{_ratio(m, '1000_year')}; {_ratio(m, '20_year')}",
+                f"{m['scan_1000_60d']:.0f}",
                 f"{h['bulk_rows_s']:,.0f}",
                 f"{h['small_rows_s']:,.0f}",
                 f"{h['label_rows_s']:,.0f}",
