@@ -24,7 +24,7 @@ from typing import Any
 from sqlalchemy import delete, select
 from sqlalchemy.orm import Session
 
-from belated.store import bulk, partitions, refresh, rollups, segments
+from belated.store import bulk, by_day, refresh, rollups, segments
 from belated.store.dialect import is_postgres
 from belated.store.tables import (
     DroppedId,
@@ -62,25 +62,13 @@ class Erased:
         }
 
 
-_LOCK_PG = """
-SELECT p.pid, p.row_id, p.hour
-FROM unnest(%(ids)b::text[]) AS k(pid)
-JOIN prediction_ids r ON r.model_id = %(m)s AND r.pid = k.pid
-JOIN predictions p ON p.model_id = r.model_id AND p.pid = r.pid AND p.hour = r.hour
-WHERE {hours}
-ORDER BY p.row_id
-FOR UPDATE OF p
-"""
-
-
 def _stored(session: Session, model_id: int, ids: list[str]) -> dict[str, tuple[int, int]]:
     """(row id, hour) of each stored prediction of `ids`, locked on PostgreSQL."""
     found: dict[str, tuple[int, int]] = {}
     if is_postgres(session):
-        hours = partitions.hours_of(session, model_id, ids)
-        sql = _LOCK_PG.format(hours=partitions.hours_clause(hours))
-        params = {"ids": ids, "m": model_id}
-        for pid, row_id, hour in bulk.fetch_all(session, sql, params) if hours else ():
+        # from their days' partitions only, locked (store/by_day.py)
+        columns = "p.pid, p.row_id, p.hour"
+        for pid, row_id, hour in by_day.fetch(session, model_id, ids, columns, lock=True):
             found[pid] = (int(row_id), int(hour))
         return found
     for cond in bulk.id_filters(session, Prediction.pid, ids):

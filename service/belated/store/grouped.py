@@ -39,7 +39,6 @@ from belated.ingest.validate import PredictionIn
 from belated.store import bulk, dirty, labels, partitions, predictions, raw_retention
 from belated.store.db import transaction
 from belated.store.dialect import is_postgres
-from belated.timeutil import to_utc
 
 log = logging.getLogger(__name__)
 SMALL_BATCH = 200  # batches up to this many predictions are grouped
@@ -267,14 +266,6 @@ SELECT ins.model_id, ins.pid, ins.hour, EXISTS (
 ) FROM ins
 """
 
-_STORED_SQL = """
-SELECT p.model_id, p.pid, p.ts, p.score, p.scores, p.predicted, p.tags
-FROM unnest(%(m)b::int4[], %(pid)b::text[]) AS k(m, pid)
-  JOIN prediction_ids r ON r.model_id = k.m AND r.pid = k.pid
-  JOIN predictions p ON p.model_id = r.model_id AND p.pid = r.pid AND p.hour = r.hour
-WHERE {hours}
-"""
-
 
 def _store_pg(
     session: Session, group: list[Batch], touched: dict[int, set[int]]
@@ -309,20 +300,10 @@ def _store_pg(
         inserted = {(int(m), pid) for m, pid, _, _ in stored}
         rest = [k for k in keys if k not in inserted]
         if rest:  # stored before this group: the same content, or a conflict
-            for m, pid, ts, score, scores, predicted, tags in cur.execute(
-                _STORED_SQL.format(
-                    hours=partitions.hours_clause(
-                        h
-                        for model in {k[0] for k in rest}
-                        for h in partitions.hours_of(
-                            session, model, [k[1] for k in rest if k[0] == model]
-                        )
-                    )
-                ),
-                {"m": [k[0] for k in rest], "pid": [k[1] for k in rest]},
-            ):
-                old = PredictionIn(pid, to_utc(ts), score, scores, predicted, tags or None)
-                if not first[(int(m), pid)].same_as(old):
+            for model in sorted({k[0] for k in rest}):
+                ids = [k[1] for k in rest if k[0] == model]
+                old = predictions.existing(session=session, model_id=model, ids=ids)
+                if any(not first[(model, pid)].same_as(p) for pid, p in old.items()):
                     raise _Regroup
     waiting: dict[int, list[str]] = {}
     for m, pid, hour, pending in stored:

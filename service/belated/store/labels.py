@@ -11,13 +11,11 @@ from sqlalchemy.orm import Session
 
 from belated.clock import clock
 from belated.ingest.validate import LabelIn
-from belated.store import bulk, dirty, partitions, raw_retention
+from belated.store import bulk, by_day, dirty, partitions, raw_retention
 from belated.store.dialect import is_postgres, upsert
 from belated.store.tables import Label, PendingLabel, Prediction, PredictionId
 from belated.timeutil import to_utc
 
-_STAGE = "stage_labels"
-_STAGE_DDL = "row_id bigint, hour integer, actual text, label_ts timestamptz, delay_h float8"
 DELETE_CHUNK = 5000  # pending rows per DELETE
 HISTORY_TYPES = ("int4", "text", "text", "timestamptz", "text", "timestamptz")
 CHANGE_TYPES = ("int4", "int4", "int8", "text", "float8", "text", "float8")
@@ -51,31 +49,16 @@ def delay_hours(pred_ts: datetime, label_ts: datetime) -> float:
     return max(0.0, (label_ts - pred_ts).total_seconds() / 3600.0)
 
 
-# The stored predictions of a batch's ids, locked in row order (concurrent corrections of one
-# id apply one after another). Driven by the ids, one registry probe each and then the one
-# day partition that holds the row (store/partitions.py): with the
-# filter form `pid = ANY(...)` and statistics not yet caught up with a burst of inserts,
-# PostgreSQL scanned every row of the model through another index.
-_TARGETS_PG = """
-SELECT p.pid, p.row_id, p.ts, p.hour, p.actual, p.delay_h
-FROM unnest(%(ids)b::text[]) AS k(pid)
-JOIN prediction_ids r ON r.model_id = %(m)s AND r.pid = k.pid
-JOIN predictions p ON p.model_id = r.model_id AND p.pid = r.pid AND p.hour = r.hour
-WHERE {hours}
-ORDER BY p.row_id
-FOR UPDATE OF p
-"""
+# The stored predictions of a batch's ids, locked (concurrent corrections of one id apply
+# one after another), read from their days' partitions only (store/by_day.py).
+_TARGET_COLUMNS = "p.pid, p.row_id, p.ts, p.hour, p.actual, p.delay_h"
 
 
 def _targets(session: Session, model_id: int, ids: list[str]) -> dict[str, _Stored]:
     found: dict[str, _Stored] = {}
     if is_postgres(session):
-        hours = partitions.hours_of(session, model_id, ids)
-        if not hours:
-            return found
-        sql = _TARGETS_PG.format(hours=partitions.hours_clause(hours))
-        for pid, row_id, ts, hour, actual, delay_h in bulk.fetch_all(
-            session, sql, {"ids": ids, "m": model_id}
+        for pid, row_id, ts, hour, actual, delay_h in by_day.fetch(
+            session, model_id, ids, _TARGET_COLUMNS, lock=True
         ):
             found[pid] = _Stored(row_id, to_utc(ts), hour, actual, delay_h)
         return found
@@ -135,22 +118,15 @@ _IN_STAGE_DDL = "pid text, actual text, ts timestamptz"
 # to Python and back. Predictions are locked in row order, as everywhere else; a delay is
 # never negative, as in `delay_hours`.
 _SET_WRITE = f"""
-WITH t AS MATERIALIZED (
+WITH {{reads}}, t AS MATERIALIZED (
   SELECT s.pid, s.actual, s.ts AS label_ts, p.row_id, p.ts AS pred_ts, p.hour,
     p.actual AS old_actual, p.delay_h AS old_delay_h
-  FROM {_IN_STAGE} s JOIN prediction_ids r ON r.model_id = %(m)s AND r.pid = s.pid
-  JOIN predictions p ON p.model_id = r.model_id AND p.pid = r.pid AND p.hour = r.hour
-  WHERE {{hours}}
-  ORDER BY p.row_id
-  FOR UPDATE OF p
+  FROM {_IN_STAGE} s JOIN ({{union}}) p ON p.pid = s.pid
 ), ch AS MATERIALIZED (
   SELECT t.*, greatest(0.0, extract(epoch FROM t.label_ts - t.pred_ts)::float8 / 3600.0)
     AS delay_h
   FROM t WHERE t.old_actual IS DISTINCT FROM t.actual
-), upd AS (
-  UPDATE predictions p SET actual = ch.actual, label_ts = ch.label_ts, delay_h = ch.delay_h
-  FROM ch WHERE p.row_id = ch.row_id AND p.hour = ch.hour AND {{hours}}
-), hist AS (
+), {{updates}}, hist AS (
   INSERT INTO labels (model_id, pid, actual, ts, change, received_at)
   SELECT %(m)s, pid, actual, label_ts,
     CASE WHEN old_actual IS NULL THEN 'first' ELSE 'correction' END, %(at)s
@@ -194,20 +170,21 @@ def _ingest_set_pg(
     )
     # ids past retention (no prediction, raw rows dropped) are answered and stored nowhere
     expired = raw_retention.take_expired_from_stage(session, model_id, _IN_STAGE)
-    stored_hours = [
-        int(h)
-        for (h,) in session.execute(
+    where = {
+        str(pid): int(h)
+        for pid, h in session.execute(
             text(
-                f"SELECT DISTINCT r.hour FROM {_IN_STAGE} s"
+                f"SELECT r.pid, r.hour FROM {_IN_STAGE} s"
                 " JOIN prediction_ids r ON r.model_id = :m AND r.pid = s.pid"
             ),
             {"m": model_id},
         )
-    ]
+    }
+    reads, union, params = by_day.read_sql(by_day.group(session, where), _TARGET_COLUMNS, lock=True)
+    updates = by_day.update_sql(session, where.values(), "ch") or ["upd0 AS (SELECT 1)"]
+    sql = _SET_WRITE.format(reads=", ".join(reads), union=union, updates=", ".join(updates))
     found, matched, corrected, pending, hours = bulk.fetch_all(
-        session,
-        _SET_WRITE.format(hours=partitions.hours_clause(stored_hours)),
-        {"m": model_id, "at": received},
+        session, sql, {"m": model_id, "at": received, **params}
     )[0]
     answer = {
         "matched": matched,
@@ -327,12 +304,7 @@ def ingest_batches(
 # labels set, their history, the changes for the refresh to fold, pending labels left by a
 # race dropped, and the touched hours marked dirty (their holds are taken by the caller).
 _SMALL_WRITE = """
-WITH upd AS (
-  UPDATE predictions p SET actual = u.actual, label_ts = u.label_ts, delay_h = u.delay_h
-  FROM unnest(%(u_row)b::int8[], %(u_hour)b::int4[], %(u_actual)b::text[],
-    %(u_ts)b::timestamptz[], %(u_delay)b::float8[]) AS u(row_id, hour, actual, label_ts, delay_h)
-  WHERE p.row_id = u.row_id AND p.hour = u.hour AND {hours}
-), hist AS (
+WITH {updates}, hist AS (
   INSERT INTO labels (model_id, pid, actual, ts, change, received_at)
   SELECT %(m)s, * FROM unnest(%(h_pid)b::text[], %(h_actual)b::text[],
     %(h_ts)b::timestamptz[], %(h_change)b::text[], %(h_at)b::timestamptz[])
@@ -351,6 +323,13 @@ SELECT 1
 """
 
 
+_SMALL_SOURCE = (
+    "(SELECT * FROM unnest(%(u_row)b::int8[], %(u_hour)b::int4[], %(u_actual)b::text[],"
+    " %(u_ts)b::timestamptz[], %(u_delay)b::float8[]) AS v(row_id, hour, actual, label_ts,"
+    " delay_h))"
+)
+
+
 def _write_small_pg(
     session: Session,
     model_id: int,
@@ -360,9 +339,12 @@ def _write_small_pg(
     changes: list[Change],
     hours: set[int],
 ) -> None:
+    changed = by_day.update_sql(session, (u["hour"] for u in updates), _SMALL_SOURCE) or [
+        "upd0 AS (SELECT 1)"
+    ]
     bulk.execute_binary(
         session,
-        _SMALL_WRITE.format(hours=partitions.hours_clause(u["hour"] for u in updates)),
+        _SMALL_WRITE.format(updates=", ".join(changed)),
         {
             "m": model_id,
             "at": clock.now(),
@@ -423,32 +405,7 @@ SMALL = 1000  # up to this many rows, arrays in one statement beat a staging tab
 
 
 def _update_pg(session: Session, rows: list[dict[str, Any]]) -> None:
-    if len(rows) <= SMALL:
-        bulk.execute_binary(
-            session,
-            "UPDATE predictions p SET actual = u.actual, label_ts = u.label_ts,"
-            " delay_h = u.delay_h FROM unnest(%b::int8[], %b::int4[], %b::text[],"
-            " %b::timestamptz[], %b::float8[]) AS u(row_id, hour, actual, label_ts, delay_h)"
-            " WHERE p.row_id = u.row_id AND p.hour = u.hour AND "
-            + partitions.hours_clause(r["hour"] for r in rows),
-            [[r[c] for r in rows] for c in ("row_id", "hour", "actual", "label_ts", "delay_h")],
-        )
-        return
-    bulk.temp_table(session, _STAGE, _STAGE_DDL)
-    bulk.copy_rows(
-        session,
-        _STAGE,
-        ("row_id", "hour", "actual", "label_ts", "delay_h"),
-        ((r["row_id"], r["hour"], r["actual"], r["label_ts"], r["delay_h"]) for r in rows),
-        types=("int8", "int4", "text", "timestamptz", "float8"),
-    )
-    session.execute(
-        text(
-            "UPDATE predictions p SET actual = s.actual, label_ts = s.label_ts,"
-            f" delay_h = s.delay_h FROM {_STAGE} s WHERE p.row_id = s.row_id"
-            " AND p.hour = s.hour AND " + partitions.hours_clause(r["hour"] for r in rows)
-        )
-    )
+    by_day.run_update(session, rows)  # each day's partition named (store/by_day.py)
 
 
 def _upsert_pending(session: Session, model_id: int, items: list[tuple[LabelIn, datetime]]) -> None:

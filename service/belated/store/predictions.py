@@ -15,9 +15,9 @@ from sqlalchemy.orm import Session
 from belated.clock import clock
 from belated.errors import Conflict
 from belated.ingest.validate import PredictionIn
-from belated.store import bulk, dirty, labels, partitions, raw_retention
+from belated.store import bulk, by_day, dirty, labels, partitions, raw_retention
 from belated.store.dialect import is_postgres
-from belated.store.tables import Prediction, PredictionId
+from belated.store.tables import Prediction
 from belated.timeutil import to_utc
 
 _STAGE = "stage_predictions"
@@ -45,25 +45,15 @@ def existing(*, session: Session, model_id: int, ids: list[str]) -> dict[str, Pr
         Prediction.predicted,
         Prediction.tags,
     )
-    pg = is_postgres(session)
-    hours = partitions.hours_of(session, model_id, ids) if pg and ids else []
-    if pg and not hours:
+    if is_postgres(session):  # from their days' partitions only (store/by_day.py)
+        columns = "p.pid, p.ts, p.score, p.scores, p.predicted, p.tags"
+        for pid, ts, score, scores, predicted, tags in by_day.fetch(
+            session, model_id, ids, columns, lock=False
+        ):
+            found[pid] = PredictionIn(pid, to_utc(ts), score, scores, predicted, tags or None)
         return found
-    for cond in bulk.id_filters(session, PredictionId.pid if pg else Prediction.pid, ids):
-        if pg:  # through the registry, in the day partitions of those ids only
-            query = (
-                select(*cols)
-                .select_from(PredictionId)
-                .join(
-                    Prediction,
-                    (Prediction.model_id == PredictionId.model_id)
-                    & (Prediction.pid == PredictionId.pid)
-                    & (Prediction.hour == PredictionId.hour),
-                )
-                .where(PredictionId.model_id == model_id, cond, Prediction.hour.in_(hours))
-            )
-        else:
-            query = select(*cols).where(Prediction.model_id == model_id, cond)
+    for cond in bulk.id_filters(session, Prediction.pid, ids):
+        query = select(*cols).where(Prediction.model_id == model_id, cond)
         for pid, ts, score, scores, predicted, tags in session.execute(query):
             found[pid] = PredictionIn(pid, to_utc(ts), score, scores, predicted, tags or None)
     return found
