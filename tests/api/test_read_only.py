@@ -14,7 +14,7 @@ from typing import Any
 
 import pytest
 from fastapi.testclient import TestClient
-from sqlalchemy import Engine, func, select
+from sqlalchemy import Engine, func, inspect, select
 from sqlalchemy.exc import DBAPIError
 
 from belated.app import create_app
@@ -66,10 +66,12 @@ def _fed(tenant: Tenant, engine: Engine, settings: Settings) -> tuple[str, int]:
 
 def _counts(engine: Engine) -> dict[str, int]:
     """Rows of every table of the store."""
+    present = set(inspect(engine).get_table_names())
     with engine.connect() as conn:
         return {
             t.name: int(conn.execute(select(func.count()).select_from(t)).scalar_one())
             for t in Base.metadata.sorted_tables
+            if t.name in present  # the id registry is PostgreSQL's only
         }
 
 
