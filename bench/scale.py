@@ -62,15 +62,31 @@ def disk(url: str) -> dict[str, float]:
 
 
 def _registry(conn: psycopg.Connection[Any], ids: list[str], model_id: int) -> list[Any]:
-    """The label path's look-up: hours from the registry, then only those days' partitions."""
-    from belated.store import labels, partitions
+    """The label path's look-up (store/by_day.py): each id's hour from the registry, then
+    its day's partition named, rows locked a day at a time."""
+    from belated.store import by_day, labels, partitions
 
     params = {"ids": ids, "m": model_id}
-    hours = [
-        r[0] for r in conn.execute(partitions._HOURS_SQL.replace("%(ids)b", "%(ids)s"), params)
-    ]
-    sql = labels._TARGETS_PG.format(hours=partitions.hours_clause(hours))
-    return conn.execute(sql.replace("%(ids)b", "%(ids)s"), params).fetchall()
+    where = dict(conn.execute(by_day._REGISTRY_SQL.replace("%(ids)b", "%(ids)s"), params))
+    have = {
+        int(
+            datetime.strptime(name[len("predictions_p") :], "%Y%m%d")
+            .replace(tzinfo=UTC)
+            .timestamp()
+        )
+        // 86400
+        for (name,) in conn.execute(
+            "SELECT c.relname FROM pg_inherits i JOIN pg_class c ON c.oid = i.inhrelid"
+            " WHERE i.inhparent = 'predictions'::regclass AND c.relname LIKE 'predictions_p%'"
+        )
+    }
+    by_table: dict[str, list[str]] = {}
+    for pid, hour in where.items():
+        day = int(hour) // 24
+        table = partitions.day_name(day) if day in have else partitions.DEFAULT
+        by_table.setdefault(table, []).append(pid)
+    ctes, union, more = by_day.read_sql(by_table, labels._TARGET_COLUMNS, lock=True)
+    return conn.execute(f"WITH {', '.join(ctes)} {union}", {"m": model_id, **more}).fetchall()
 
 
 def match(url: str, model_id: int, n: int, seed: int = 11) -> dict[str, float]:
