@@ -60,8 +60,11 @@ def _run_demo(cwd: Path, database_url: str | None) -> tuple[list[str], dict[str,
     args = [str(BELATED), "demo", "--days", str(DAYS), "--seed", str(SEED), "--port", "0"]
     if database_url:
         args += ["--database-url", database_url]
-    out = (cwd / f"demo-{time.monotonic_ns()}.out").open("w+")
-    proc = subprocess.Popen(args, stdout=out, stderr=subprocess.DEVNULL, env=_env(), cwd=cwd)
+    stamp = time.monotonic_ns()
+    out = (cwd / f"demo-{stamp}.out").open("w+")
+    err = cwd / f"demo-{stamp}.err"  # read when the demo ends early: the cause is there
+    errf = err.open("w")
+    proc = subprocess.Popen(args, stdout=out, stderr=errf, env=_env(), cwd=cwd)
     try:
         deadline = time.monotonic() + 1200
         text = ""
@@ -70,7 +73,7 @@ def _run_demo(cwd: Path, database_url: str | None) -> tuple[list[str], dict[str,
             text = out.read()
             if "serving until interrupted" in text:
                 break
-            assert proc.poll() is None, text
+            assert proc.poll() is None, text + err.read_text()[-4000:]
             time.sleep(1)
         lines = text.splitlines()
         printed = {}
@@ -84,6 +87,7 @@ def _run_demo(cwd: Path, database_url: str | None) -> tuple[list[str], dict[str,
         proc.terminate()
         proc.wait(60)
         out.close()
+        errf.close()
 
 
 def _check_tokens(printed: dict[str, str]) -> None:

@@ -92,6 +92,10 @@ def feed(base: str, token: str, days: int, seed: int, end: datetime, echo: Any) 
         json={
             "name": MODEL,
             "label_delay_days": 30,
+            # the story back-fills `days` of history at once: raw rows older than the
+            # default retention would be dropped by the jobs while later batches still
+            # arrive for those days (then refused as past retention)
+            "keep_raw_days": days + 30,
             "min_coverage": 0.9,
             "threshold": 0.3,
             "segment_keys": ["channel", "region"],
