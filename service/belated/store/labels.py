@@ -42,6 +42,7 @@ class _Stored:
     hour: int
     actual: str | None
     delay_h: float | None
+    at: str | None = None  # its address (ctid) while locked, PostgreSQL
 
 
 def delay_hours(pred_ts: datetime, label_ts: datetime) -> float:
@@ -51,16 +52,16 @@ def delay_hours(pred_ts: datetime, label_ts: datetime) -> float:
 
 # The stored predictions of a batch's ids, locked (concurrent corrections of one id apply
 # one after another), read from their days' partitions only (store/by_day.py).
-_TARGET_COLUMNS = "p.pid, p.row_id, p.ts, p.hour, p.actual, p.delay_h"
+_TARGET_COLUMNS = "p.pid, p.row_id, p.ts, p.hour, p.actual, p.delay_h, p.at"
 
 
 def _targets(session: Session, model_id: int, ids: list[str]) -> dict[str, _Stored]:
     found: dict[str, _Stored] = {}
     if is_postgres(session):
-        for pid, row_id, ts, hour, actual, delay_h in by_day.fetch(
+        for pid, row_id, ts, hour, actual, delay_h, at in by_day.fetch(
             session, model_id, ids, _TARGET_COLUMNS, lock=True
         ):
-            found[pid] = _Stored(row_id, to_utc(ts), hour, actual, delay_h)
+            found[pid] = _Stored(row_id, to_utc(ts), hour, actual, delay_h, at)
         return found
     raw = session.connection().connection.driver_connection
     assert raw is not None
@@ -115,7 +116,7 @@ _IN_STAGE_DDL = "pid text, actual text, ts timestamptz"
 
 # A large batch of distinct ids matched and written as sets in one statement (PostgreSQL):
 # the same decisions as `ingest_batches` makes row by row, without carrying the stored rows
-# to Python and back. Predictions are locked in row order, as everywhere else; a delay is
+# to Python and back. Predictions are locked in id order, as everywhere else; a delay is
 # never negative, as in `delay_hours`.
 _SET_WRITE = f"""
 WITH {{reads}}, t AS MATERIALIZED (
@@ -264,6 +265,7 @@ def ingest_batches(
             "actual": label.actual,
             "label_ts": label.ts,
             "delay_h": delay,
+            "at": target.at,
         }
         hours.add(target.hour)
     found = [pid for pid in ids if pid in targets]
@@ -339,9 +341,9 @@ def _write_small_pg(
     changes: list[Change],
     hours: set[int],
 ) -> None:
-    changed = by_day.update_sql(session, (u["hour"] for u in updates), _SMALL_SOURCE) or [
-        "upd0 AS (SELECT 1)"
-    ]
+    changed = by_day.update_sql(
+        session, (u["hour"] for u in updates), _SMALL_SOURCE, at="u_at"
+    ) or ["upd0 AS (SELECT 1)"]
     bulk.execute_binary(
         session,
         _SMALL_WRITE.format(updates=", ".join(changed)),
@@ -353,6 +355,7 @@ def _write_small_pg(
             "u_actual": [u["actual"] for u in updates],
             "u_ts": [u["label_ts"] for u in updates],
             "u_delay": [u["delay_h"] for u in updates],
+            "u_at": [u["at"] for u in updates],
             "h_pid": [h["pid"] for h in history],
             "h_actual": [h["actual"] for h in history],
             "h_ts": [h["ts"] for h in history],

@@ -23,6 +23,7 @@ from __future__ import annotations
 import logging
 import re
 import threading
+import time
 from collections.abc import Callable, Iterable
 from datetime import UTC, datetime, timedelta
 
@@ -39,8 +40,11 @@ _NAME = re.compile(r"^predictions_(p\d{8}|default)$")
 _LOCK = 0x6265_6C61_7465_6470  # advisory key serialising partition changes
 LOCK_TIMEOUT = "2s"
 
-_known: dict[str, set[int]] = {}  # engine url → days known to have a partition
+_known: dict[str, set[int]] = {}  # engine url → days given a partition, or tried
 _known_guard = threading.Lock()
+# engine url → (monotonic time read, days seen in the catalogue with a partition of their own)
+_seen: dict[str, tuple[float, set[int]]] = {}
+SEEN_SECONDS = 30.0  # how long a reading of the catalogue serves `have_partitions`
 
 
 def is_partition(name: str) -> bool:
@@ -138,9 +142,33 @@ def ensure_hours(session: Session, hours: Iterable[int]) -> None:
 
 
 def forget(engine: Engine) -> None:
-    """Drop the cache of known partitions (after a partition is dropped)."""
+    """Drop the caches of known partitions (after a partition is dropped)."""
     with _known_guard:
         _known.pop(_key(engine), None)
+        _seen.pop(_key(engine), None)
+
+
+def have_partitions(session: Session, days: set[int]) -> set[int]:
+    """Those of `days` that have a partition of their own, for statements that name them.
+
+    The catalogue is read only when a day is not among those it showed in the last
+    SEEN_SECONDS: reading it for every small labels batch cost a sixth of the writer's time
+    and a round trip twice a batch (bench/live.py). A day seen with a partition keeps it
+    until retention drops the day, and the drop deletes the registry rows that would lead a
+    statement there (store/partition_retention.py); another process's drop is seen here
+    within SEEN_SECONDS. A day without a partition is never cached: its rows are in the
+    default partition only until the jobs or a writer give it one."""
+    bind = session.get_bind()
+    key = _key(bind if isinstance(bind, Engine) else bind.engine)
+    stamp = time.monotonic()
+    with _known_guard:
+        read_at, seen = _seen.get(key, (0.0, set()))
+    if days <= seen and stamp - read_at < SEEN_SECONDS:
+        return set(days)
+    have = existing_days(session.connection())
+    with _known_guard:
+        _seen[key] = (stamp, have)
+    return days & have
 
 
 def maintain(session: Session, now: datetime) -> dict[str, int]:
@@ -184,9 +212,13 @@ def include_object(dialect: str) -> IncludeHook:
 _PG_ONLY_OR_NOT = {"uq_predictions_model_pid", "uq_predictions_model_pid_hour"}
 
 
-_HOURS_SQL = """
+# One probe of the registry's key per id, whatever the statistics say (store/by_day.py).
+REGISTRY_PROBE = (
+    f"(SELECT r.hour FROM {REGISTRY} r WHERE r.model_id = %(m)s AND r.pid = k.pid OFFSET 0)"
+)
+_HOURS_SQL = f"""
 SELECT DISTINCT r.hour FROM unnest(%(ids)b::text[]) AS k(pid)
-JOIN prediction_ids r ON r.model_id = %(m)s AND r.pid = k.pid
+CROSS JOIN LATERAL {REGISTRY_PROBE} r
 """
 
 
