@@ -14,7 +14,7 @@ from __future__ import annotations
 
 from collections.abc import Iterable, Sequence
 
-from sqlalchemy import insert, text
+from sqlalchemy import insert
 from sqlalchemy.orm import Session
 
 from belated.clock import now
@@ -31,13 +31,15 @@ def lock_hours(session: Session, model_id: int, hours: Sequence[int], mode: str)
     """Hold the hours of a model until the end of the transaction (PostgreSQL; ascending)."""
     if not hours or not is_postgres(session):
         return
-    session.execute(
-        text(
-            f"SELECT count({_LOCK[mode]}(:m, h)) FROM"
-            " (SELECT h FROM unnest(CAST(:hours AS int4[])) AS t(h) ORDER BY h) AS s"
-        ),
-        {"m": model_id, "hours": sorted(set(hours))},
-    )
+    raw = session.connection().connection.driver_connection  # prepared: once per write
+    assert raw is not None
+    with raw.cursor() as cur:
+        cur.execute(
+            f"SELECT count({_LOCK[mode]}(%(m)s, h)) FROM"
+            " (SELECT h FROM unnest(%(hours)b::int4[]) AS t(h) ORDER BY h) AS s",
+            {"m": model_id, "hours": sorted(set(hours))},
+            prepare=True,
+        )
 
 
 def mark(

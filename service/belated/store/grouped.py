@@ -119,8 +119,6 @@ class GroupWriter:
         try:
             with transaction(self.sessions) as session:
                 touched: dict[int, set[int]] = {}
-                # one too old for its model's raw days: batch by batch, so only its request is 422
-                raw_retention.refuse_each(session, [(b.model_id, b.items) for b in preds])
                 store = _store_pg if is_postgres(session) else _store_sqlite
                 answers = store(session, preds, touched) + _store_labels(session, marks, touched)
                 # the hours are held last (store/dirty.py): after every row lock this
@@ -184,6 +182,8 @@ def _store_sqlite(
 ) -> list[dict[str, int]]:
     """The whole group in a few statements (SQLite has one writer, BEGIN IMMEDIATE, so the
     look-up of stored ids is authoritative); answers per batch, or _Regroup."""
+    # one too old for its model's raw days: batch by batch, so only its request is 422
+    raw_retention.refuse_each(session, [(b.model_id, b.items) for b in group])
     first, owner = _first_of_each(group)
     by_model: dict[int, list[str]] = {}
     for m, pid in first:
@@ -242,20 +242,28 @@ def _answers(
     ]
 
 
+# One statement for the whole group. A row of an hour below its model's raw_from_hour (its
+# day's raw rows were dropped by retention) is stored nowhere and reported by a row of
+# NULLs: the group is then stored batch by batch, and that batch answered 422
+# (store/raw_retention.py), as `refuse_each` does on SQLite, without a round trip of its own.
 _GROUP_SQL = """
-WITH reg AS (
+WITH src AS MATERIALIZED (
+  SELECT * FROM unnest(%(m)b::int4[], %(pid)b::text[], %(ts)b::timestamptz[], %(hour)b::int4[],
+    %(score)b::float8[], %(scores)b::text[], %(predicted)b::text[], %(tags)b::text[],
+    %(at)b::timestamptz[])
+    AS r(m, pid, ts, hour, score, scores, predicted, tags, at)
+), too_old AS MATERIALIZED (
+  SELECT src.m, src.pid FROM src JOIN models x ON x.id = src.m WHERE src.hour < x.raw_from_hour
+), reg AS (
   INSERT INTO prediction_ids (model_id, pid, hour)
-  SELECT * FROM unnest(%(m)b::int4[], %(pid)b::text[], %(hour)b::int4[])
+  SELECT m, pid, hour FROM src
+  WHERE NOT EXISTS (SELECT 1 FROM too_old o WHERE o.m = src.m AND o.pid = src.pid)
   ON CONFLICT (model_id, pid) DO NOTHING
   RETURNING model_id, pid
 ), ins AS (
   INSERT INTO predictions (model_id, pid, ts, hour, score, scores, predicted, tags, received_at)
   SELECT r.m, r.pid, r.ts, r.hour, r.score, r.scores::jsonb, r.predicted, r.tags::jsonb, r.at
-  FROM unnest(%(m)b::int4[], %(pid)b::text[], %(ts)b::timestamptz[], %(hour)b::int4[],
-    %(score)b::float8[], %(scores)b::text[], %(predicted)b::text[], %(tags)b::text[],
-    %(at)b::timestamptz[])
-    AS r(m, pid, ts, hour, score, scores, predicted, tags, at)
-  JOIN reg ON reg.model_id = r.m AND reg.pid = r.pid
+  FROM src r JOIN reg ON reg.model_id = r.m AND reg.pid = r.pid
   RETURNING model_id, pid, hour
 ), marks AS (
   INSERT INTO dirty_buckets (model_id, hour, marked_at, recompute)
@@ -264,6 +272,8 @@ WITH reg AS (
 SELECT ins.model_id, ins.pid, ins.hour, EXISTS (
   SELECT 1 FROM pending_labels w WHERE w.model_id = ins.model_id AND w.pid = ins.pid
 ) FROM ins
+UNION ALL
+SELECT NULL, NULL, NULL, NULL WHERE EXISTS (SELECT 1 FROM too_old)
 """
 
 
@@ -297,6 +307,8 @@ def _store_pg(
             },
             prepare=True,
         ).fetchall()
+        if any(m is None for m, _, _, _ in stored):
+            raise _Regroup  # a row below its model's retained raw days: see _GROUP_SQL
         inserted = {(int(m), pid) for m, pid, _, _ in stored}
         rest = [k for k in keys if k not in inserted]
         if rest:  # stored before this group: the same content, or a conflict
