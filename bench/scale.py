@@ -61,14 +61,9 @@ def disk(url: str) -> dict[str, float]:
     return {"db": db / 2**20, "predictions": float(parts) / 2**20, "registry": reg / 2**20}
 
 
-def _registry(conn: psycopg.Connection[Any], ids: list[str], model_id: int) -> list[Any]:
-    """The label path's look-up (store/by_day.py): each id's hour from the registry, then
-    its day's partition named, rows locked a day at a time."""
-    from belated.store import by_day, labels, partitions
-
-    params = {"ids": ids, "m": model_id}
-    where = dict(conn.execute(by_day._REGISTRY_SQL.replace("%(ids)b", "%(ids)s"), params))
-    have = {
+def _days_with_partitions(conn: psycopg.Connection[Any]) -> set[int]:
+    """The days that have a partition (the service reads this at most every 30 s)."""
+    return {
         int(
             datetime.strptime(name[len("predictions_p") :], "%Y%m%d")
             .replace(tzinfo=UTC)
@@ -80,6 +75,17 @@ def _registry(conn: psycopg.Connection[Any], ids: list[str], model_id: int) -> l
             " WHERE i.inhparent = 'predictions'::regclass AND c.relname LIKE 'predictions_p%'"
         )
     }
+
+
+def _registry(
+    conn: psycopg.Connection[Any], ids: list[str], model_id: int, have: set[int]
+) -> list[Any]:
+    """The label path's look-up (store/by_day.py): each id's hour from the registry, then
+    its day's partition named, rows locked a day at a time."""
+    from belated.store import by_day, labels, partitions
+
+    params = {"ids": ids, "m": model_id}
+    where = dict(conn.execute(by_day._REGISTRY_SQL.replace("%(ids)b", "%(ids)s"), params))
     by_table: dict[str, list[str]] = {}
     for pid, hour in where.items():
         day = int(hour) // 24
@@ -105,6 +111,7 @@ def match(url: str, model_id: int, n: int, seed: int = 11) -> dict[str, float]:
         conn.execute("ANALYZE bench_flat")
         conn.commit()
         out: dict[str, float] = {}
+        have = _days_with_partitions(conn)
         recent = int(n * 305 / 365)
         for span, lo in (("60d", recent), ("year", 0)):
             for size, repeats in ((1000, 20), (20, 100)):
@@ -117,7 +124,7 @@ def match(url: str, model_id: int, n: int, seed: int = 11) -> dict[str, float]:
                             continue  # slow by design: a few repeats tell its cost
                         t0 = time.perf_counter()
                         if name == "registry":
-                            got = _registry(conn, ids, model_id)
+                            got = _registry(conn, ids, model_id, have)
                         else:
                             sql = MATCH_FLAT if name == "flat" else MATCH_SCAN
                             got = conn.execute(sql, {"ids": ids, "m": model_id}).fetchall()
@@ -236,8 +243,9 @@ def drop_old_days(sa_url: str, model_id: int, keep_days: int) -> dict[str, Any]:
     return dict(done)
 
 
-def run_size(n: int, keep_days: int) -> dict[str, Any]:
-    """Every measurement at one size, in a database of its own."""
+def run_size(n: int, keep_days: int, match_only: bool = False) -> dict[str, Any]:
+    """Every measurement at one size, in a database of its own (only the load and the label
+    look-ups with `match_only`)."""
     res: dict[str, Any] = {"rows": n}
     name = create_database("belated_bench_scale")
     url = pg_url(name)
@@ -255,6 +263,8 @@ def run_size(n: int, keep_days: int) -> dict[str, Any]:
         print({k: v for k, v in res.items() if k != "rebuild"}, flush=True)
         res["match"] = match(url, model_id, n)
         print({k: v for k, v in res.items() if k != "rebuild"}, flush=True)
+        if match_only:
+            return res
         day = new_day(n)
         service = Service(sa_url, extra_env={"BELATED_LOG_FORMAT": "text"})
         try:
@@ -327,12 +337,36 @@ def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     parser.add_argument("--sizes", default="1000000,5000000")
     parser.add_argument("--keep-days", type=int, default=90)
+    parser.add_argument(
+        "--match-only", action="store_true", help="load and measure the label look-ups only"
+    )
     args = parser.parse_args()
     results = []
     for n in (int(s) for s in args.sizes.split(",")):
-        results.append(run_size(n, args.keep_days))
+        results.append(run_size(n, args.keep_days, args.match_only))
         print(results[-1], flush=True)
-    print(table(results))
+    print(match_table(results) if args.match_only else table(results))
+
+
+def match_table(results: list[dict[str, Any]]) -> str:
+    """The label look-up figures of every size (`--match-only`)."""
+    head = ["rows", "load s", "disk MiB (preds/registry)"] + [
+        f"match {size} ids, {span}: ms reg/flat (×)"
+        for span in ("last 60 d", "whole year")
+        for size in (1000, 20)
+    ]
+    body = []
+    for r in results:
+        m, d = r["match"], r["disk"]
+        body.append(
+            [
+                f"{r['rows']:,}",
+                f"{r['load_s']:.0f}",
+                f"{d['db']:,.0f} ({d['predictions']:,.0f}/{d['registry']:,.0f})",
+                *(_ratio(m, f"{size}_{span}") for span in ("60d", "year") for size in (1000, 20)),
+            ]
+        )
+    return markdown_table(head, body)
 
 
 if __name__ == "__main__":
