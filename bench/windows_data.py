@@ -218,7 +218,9 @@ def load(url: str, model_id: int, d: Data) -> None:
             (model_id,),
         )
         for _, definition in idx:
-            conn.execute(definition)
+            # a partitioned parent's index reads "ON ONLY predictions", which builds no index
+            # on the partitions: without ONLY, each partition gets its own
+            conn.execute(definition.replace(" ON ONLY ", " ON "))
         conn.execute("VACUUM (ANALYZE) predictions")  # hint bits and statistics, as in steady state
         conn.execute("VACUUM (ANALYZE) prediction_ids")
 
