@@ -91,7 +91,7 @@ def _registry(
         day = int(hour) // 24
         table = partitions.day_name(day) if day in have else partitions.DEFAULT
         by_table.setdefault(table, []).append(pid)
-    ctes, union, more = by_day.read_sql(by_table, labels._TARGET_COLUMNS, lock=True)
+    ctes, union, more = by_day.read_sql(by_table, labels._TARGET_COLUMNS, lock=True, hours=where)
     return conn.execute(f"WITH {', '.join(ctes)} {union}", {"m": model_id, **more}).fetchall()
 
 

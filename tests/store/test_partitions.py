@@ -263,3 +263,71 @@ def test_retention_drops_whole_day_partitions_and_keeps_every_window(
             assert rows(engine, f"SELECT to_regclass('{partitions.day_name(day)}')")[0][0] is None
         left = rows(engine, "SELECT count(*) FROM prediction_ids WHERE model_id = :m", m=model.id)
         assert left[0][0] == 0
+
+
+@pytest.mark.parametrize("store_url", ["postgresql"], indirect=True)  # its layout alone
+def test_label_writes_fetch_the_locked_rows_by_address_and_probe_the_id_index(
+    tenant: Tenant, engine: Engine, sessions: Any
+) -> None:
+    """Common practice (PostgreSQL's planner): a day partition filled minutes ago has no
+    column statistics, and a join of the batch's rows to it was planned as a scan of the
+    day (measured: 4.8 ms to update 20 rows of 20,000). The update of the locked rows must
+    fetch them by address (a TID scan, whatever the statistics); the locked read must probe
+    the (model, id, hour) index once per id once the day has statistics (autovacuum's
+    analyse; before that the planner may take another index of the model's day). Without
+    the address the join was planned as a scan of the day."""
+    from belated.store import by_day, labels
+
+    model = create_model(tenant, engine)
+    when = base_time() - timedelta(days=1500)  # a day of its own, created now, not analysed
+    when = when.replace(hour=0, minute=0, second=0, microsecond=0)
+    items = [
+        {**prediction(i, prefix="young"), "ts": stamp(when + timedelta(seconds=i))}
+        for i in range(12_000)
+    ]
+    for start in range(0, len(items), 1000):
+        send(tenant.client, model.name, "predictions", items[start : start + 1000])
+    ids = [i["id"] for i in items[::600]]
+    with transaction(sessions) as session:
+        where = by_day.hours(session, model.id, ids)
+        assert len(where) == len(ids)
+        ctes, union, params = by_day.read_sql(
+            by_day.group(session, where), labels._TARGET_COLUMNS, lock=True, hours=where
+        )
+        read = f"WITH {', '.join(ctes)} {union}"
+        raw = session.connection().connection.driver_connection
+        with raw.cursor() as cur:
+            found = cur.execute(read, {"m": model.id, **params}).fetchall()
+            assert sorted(r[0] for r in found) == sorted(ids)
+            source = (
+                "(SELECT * FROM unnest(%(row)s::int8[], %(hour)s::int4[], %(a)s::text[],"
+                " %(ts)s::timestamptz[], %(d)s::float8[]) AS v(row_id, hour, actual, label_ts,"
+                " delay_h))"
+            )
+            upd = by_day.update_sql(session, (r[3] for r in found), source, at="at")
+            values = {
+                "row": [r[1] for r in found],
+                "hour": [r[3] for r in found],
+                "a": ["1"] * len(found),
+                "ts": [r[2] for r in found],
+                "d": [1.0] * len(found),
+                "at": [r[-1] for r in found],
+            }
+            plan = "\n".join(
+                r[0] for r in cur.execute(f"EXPLAIN WITH {', '.join(upd)} SELECT 1", values)
+            )
+            # by address, or one probe of the primary key per row: never the whole day
+            assert "Tid Scan" in plan or "_pkey" in plan, plan
+            assert "Seq Scan" not in plan and "Bitmap" not in plan, plan
+            cur.execute(f"WITH {', '.join(upd)} SELECT 1", values)
+            assert cur.execute(
+                "SELECT count(*) FROM predictions WHERE model_id = %s AND actual = '1'",
+                (model.id,),
+            ).fetchone() == (len(ids),)
+            cur.execute(f"ANALYZE {partitions.day_name(epoch_hour(when) // 24)}")
+            plan = "\n".join(
+                r[0] for r in cur.execute(f"EXPLAIN {read}", {"m": model.id, **params})
+            )
+            assert "model_id_pid_hour" in plan, plan
+            assert "Seq Scan" not in plan and "Bitmap" not in plan, plan
+        session.rollback()

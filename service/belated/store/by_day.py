@@ -19,7 +19,7 @@ this way.
 
 from __future__ import annotations
 
-from collections.abc import Iterable, Sequence
+from collections.abc import Iterable, Mapping, Sequence
 from typing import Any
 
 from sqlalchemy.orm import Session
@@ -60,18 +60,27 @@ def group(session: Session, where: dict[str, int]) -> dict[str, list[str]]:
 
 
 def read_sql(
-    by_table: dict[str, list[str]], columns: str, *, lock: bool, prefix: str = "d"
+    by_table: dict[str, list[str]],
+    columns: str,
+    *,
+    lock: bool,
+    hours: Mapping[str, int],
+    prefix: str = "d",
 ) -> tuple[list[str], str, dict[str, Any]]:
     """The CTEs reading the model's rows of these ids from each table (locked in id order
     when `lock`), the UNION ALL of them, and their parameters (`%(m)s` is the caller's)."""
-    ctes, params = [], {}
+    ctes: list[str] = []
+    params: dict[str, Any] = {}
     suffix = "FOR UPDATE" if lock else "OFFSET 0"
     for i, (table, ids) in enumerate(sorted(by_table.items())):
-        params[f"{prefix}{i}"] = sorted(ids)
+        ordered = sorted(ids)
+        params[f"{prefix}{i}"] = ordered
+        params[f"{prefix}{i}h"] = [hours[pid] for pid in ordered]
         ctes.append(
-            f"{prefix}{i} AS (SELECT {columns} FROM unnest(%({prefix}{i})s::text[]) AS k(pid)"
+            f"{prefix}{i} AS (SELECT {columns} FROM unnest(%({prefix}{i})s::text[],"
+            f" %({prefix}{i}h)s::int4[]) AS k(pid, hour)"
             f" CROSS JOIN LATERAL (SELECT *, ctid::text AS at FROM {table} p"
-            f" WHERE p.model_id = %(m)s AND p.pid = k.pid {suffix}) p)"
+            f" WHERE p.model_id = %(m)s AND p.pid = k.pid AND p.hour = k.hour {suffix}) p)"
         )
     if not ctes:
         ctes.append(f"{prefix}0 AS (SELECT {columns} FROM {partitions.DEFAULT} p WHERE FALSE)")
@@ -87,7 +96,7 @@ def fetch(
     where = hours(session, model_id, ids)
     if not where:
         return []
-    ctes, union, params = read_sql(group(session, where), columns, lock=lock)
+    ctes, union, params = read_sql(group(session, where), columns, lock=lock, hours=where)
     raw = session.connection().connection.driver_connection
     assert raw is not None
     with raw.cursor() as cur:

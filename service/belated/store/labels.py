@@ -181,7 +181,9 @@ def _ingest_set_pg(
             {"m": model_id},
         )
     }
-    reads, union, params = by_day.read_sql(by_day.group(session, where), _TARGET_COLUMNS, lock=True)
+    reads, union, params = by_day.read_sql(
+        by_day.group(session, where), _TARGET_COLUMNS, lock=True, hours=where
+    )
     updates = by_day.update_sql(session, where.values(), "ch") or ["upd0 AS (SELECT 1)"]
     sql = _SET_WRITE.format(reads=", ".join(reads), union=union, updates=", ".join(updates))
     found, matched, corrected, pending, hours = bulk.fetch_all(
