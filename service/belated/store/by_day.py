@@ -83,7 +83,10 @@ def read_sql(
             f" WHERE p.model_id = %(m)s AND p.pid = k.pid AND p.hour = k.hour {suffix}) p)"
         )
     if not ctes:
-        ctes.append(f"{prefix}0 AS (SELECT {columns} FROM {partitions.DEFAULT} p WHERE FALSE)")
+        ctes.append(
+            f"{prefix}0 AS (SELECT {columns} FROM"
+            f" (SELECT *, ctid::text AS at FROM {partitions.DEFAULT}) p WHERE FALSE)"
+        )
     union = " UNION ALL ".join(f"SELECT * FROM {prefix}{i}" for i in range(len(ctes)))
     return ctes, union, params
 
