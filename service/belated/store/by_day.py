@@ -9,12 +9,13 @@ of its own kind: a locked read (one CTE per day, rows locked in day then id orde
 update (one CTE per day). Rows of a day without a partition are in the default partition.
 
 Look-ups by id are written as one index probe per id (a LATERAL subquery the planner cannot
-flatten: FOR UPDATE or OFFSET 0 in it), not as `pid = ANY(ids)` or a join: a day's
-partition filled minutes ago has no statistics yet, and the planner, believing it nearly
-empty, scanned every row of the model in it for 20 ids (8 ms for 20 ids among 20,000 rows
-against 0.5 ms probed; the registry the same, 7.9 ms against 0.4; measured, PostgreSQL 15).
-Rows are locked in table then id order, the ids sorted, in every statement that locks them
-this way.
+flatten: FOR UPDATE or OFFSET 0 in it), keyed by (model, id, hour), not as `pid = ANY(ids)`
+or a join: a day's partition filled minutes ago has no statistics yet, and the planner,
+believing it nearly empty, scanned every row of the model in it (8 ms for 20 ids among
+20,000 rows against 0.5 ms probed; the registry the same, 7.9 ms against 0.4; measured,
+PostgreSQL 15). Until autovacuum has analysed such a day the planner may still take the
+(model, hour) index for the probe, which reads the id's hour rather than its day. Rows are
+locked in table then id order, the ids sorted, in every statement that locks them this way.
 """
 
 from __future__ import annotations
