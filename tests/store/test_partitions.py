@@ -338,3 +338,50 @@ def test_label_writes_fetch_the_locked_rows_by_address_and_probe_the_id_index(
             assert "model_id_pid_hour" in plan, plan
             assert "Seq Scan" not in plan and "Bitmap" not in plan, plan
         session.rollback()
+
+
+@pytest.mark.parametrize("store_url", ["postgresql"], indirect=True)
+def test_a_label_leaves_its_prediction_on_its_page(tenant: Tenant, engine: Engine) -> None:
+    """Common practice (PostgreSQL heap-only tuples): an update whose new row version fits
+    on the page of the old one touches no index. The day partitions leave a fifth of each
+    page free (the migration sets it on the default partition and every existing day, new
+    days are created with it), so a label's update keeps each prediction on its page;
+    on pages filled to the brim (PostgreSQL's default) every one of these rows moved."""
+    model = create_model(tenant, engine)
+    when = base_time() - timedelta(days=1400)
+    when = when.replace(hour=0, minute=0, second=0, microsecond=0)
+    items = [
+        {**prediction(i, prefix="page"), "ts": stamp(when + timedelta(seconds=i))}
+        for i in range(3000)
+    ]
+    for start in range(0, len(items), 1000):
+        send(tenant.client, model.name, "predictions", items[start : start + 1000])
+    ids = [i["id"] for i in items[::6]]
+    block_sql = (
+        "SELECT pid, (ctid::text::point)[0] FROM predictions WHERE model_id = %(m)s"
+        " AND pid = ANY(%(ids)s)"
+    )
+    with engine.connect() as conn:
+        before = dict(conn.exec_driver_sql(block_sql, {"m": model.id, "ids": ids}).all())
+    assert len(before) == len(ids)
+    for start in range(0, len(ids), 20):  # the small path of a live system
+        send(tenant.client, model.name, "labels", [label(p, 1) for p in ids[start : start + 20]])
+    with engine.connect() as conn:
+        after = dict(conn.exec_driver_sql(block_sql, {"m": model.id, "ids": ids}).all())
+        labelled = conn.exec_driver_sql(
+            "SELECT count(*) FROM predictions WHERE model_id = %(m)s AND actual = '1'",
+            {"m": model.id},
+        ).scalar()
+        options = conn.exec_driver_sql(
+            "SELECT c.relname, c.reloptions FROM pg_inherits i JOIN pg_class c"
+            " ON c.oid = i.inhrelid WHERE i.inhparent = 'predictions'::regclass"
+        ).all()
+    assert labelled == len(ids)
+    moved = [p for p in ids if after[p] != before[p]]
+    assert not moved, f"{len(moved)} of {len(ids)} rows left their page"
+    assert {n for n, _ in options} >= {
+        partitions.DEFAULT,
+        partitions.day_name(epoch_hour(when) // 24),
+    }
+    for name, opts in options:
+        assert f"fillfactor={partitions.FILLFACTOR}" in (opts or []), (name, opts)
