@@ -11,6 +11,7 @@ from datetime import UTC, datetime
 from typing import Any
 
 import orjson
+from psycopg.pq import TransactionStatus
 from sqlalchemy import ColumnElement, String, any_, bindparam
 from sqlalchemy.dialects.postgresql import ARRAY
 from sqlalchemy.orm import InstrumentedAttribute, Session
@@ -86,6 +87,18 @@ def execute_binary(session: Session, sql: str, params: Sequence[Any] | Mapping[s
     assert raw is not None
     with raw.cursor() as cur:
         cur.execute(sql, params, prepare=True)
+
+
+def execute_opening(cur: Any, sql: str, params: Mapping[str, Any]) -> Any:
+    """Run `sql` (prepared) on a psycopg cursor; when it opens the transaction, its BEGIN
+    goes in the same round trip (pipeline mode) rather than one of its own. The rows are
+    read from the cursor afterwards, as usual."""
+    conn = cur.connection
+    if conn.info.transaction_status == TransactionStatus.IDLE and not conn.autocommit:
+        with conn.pipeline():
+            cur.execute(sql, params, prepare=True)
+        return cur
+    return cur.execute(sql, params, prepare=True)
 
 
 def fetch_all(session: Session, sql: str, params: Mapping[str, Any]) -> list[Any]:

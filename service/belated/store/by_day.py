@@ -28,7 +28,7 @@ from typing import Any
 
 from sqlalchemy.orm import Session
 
-from belated.store import partitions
+from belated.store import bulk, partitions
 
 _REGISTRY_SQL = f"""
 SELECT k.pid, r.hour FROM unnest(%(ids)b::text[]) AS k(pid)
@@ -40,8 +40,8 @@ def hours(session: Session, model_id: int, ids: Sequence[str]) -> dict[str, int]
     """id → hour of the stored predictions among `ids`, from the registry."""
     raw = session.connection().connection.driver_connection
     assert raw is not None
-    with raw.cursor() as cur:
-        rows = cur.execute(_REGISTRY_SQL, {"ids": list(ids), "m": model_id}, prepare=True)
+    with raw.cursor() as cur:  # often a group's first statement: BEGIN rides with it
+        rows = bulk.execute_opening(cur, _REGISTRY_SQL, {"ids": list(ids), "m": model_id})
         return {str(pid): int(hour) for pid, hour in rows.fetchall()}
 
 

@@ -12,7 +12,7 @@ writer (BEGIN IMMEDIATE) and needs none of this.
 
 from __future__ import annotations
 
-from collections.abc import Iterable, Sequence
+from collections.abc import Iterable, Mapping, Sequence
 
 from sqlalchemy import insert
 from sqlalchemy.orm import Session
@@ -27,6 +27,13 @@ _LOCK = {
 }
 
 
+def _lock_sql(mode: str) -> str:
+    return (
+        f"SELECT count({_LOCK[mode]}(%(m)s, h)) FROM"
+        " (SELECT h FROM unnest(%(hours)b::int4[]) AS t(h) ORDER BY h) AS s"
+    )
+
+
 def lock_hours(session: Session, model_id: int, hours: Sequence[int], mode: str) -> None:
     """Hold the hours of a model until the end of the transaction (PostgreSQL; ascending)."""
     if not hours or not is_postgres(session):
@@ -34,12 +41,26 @@ def lock_hours(session: Session, model_id: int, hours: Sequence[int], mode: str)
     raw = session.connection().connection.driver_connection  # prepared: once per write
     assert raw is not None
     with raw.cursor() as cur:
-        cur.execute(
-            f"SELECT count({_LOCK[mode]}(%(m)s, h)) FROM"
-            " (SELECT h FROM unnest(%(hours)b::int4[]) AS t(h) ORDER BY h) AS s",
-            {"m": model_id, "hours": sorted(set(hours))},
-            prepare=True,
-        )
+        cur.execute(_lock_sql(mode), {"m": model_id, "hours": sorted(set(hours))}, prepare=True)
+
+
+def hold_and_commit(session: Session, touched: Mapping[int, Iterable[int]]) -> None:
+    """Hold the writer's hours shared (ascending by model, then hour) and commit, in one
+    round trip on PostgreSQL (pipeline mode: the holds are granted before the COMMIT runs,
+    as if sent one by one); SQLite has no holds and commits as usual. An error of either
+    is raised here, with the transaction rolled back by the server."""
+    if not is_postgres(session):
+        session.commit()
+        return
+    raw = session.connection().connection.driver_connection
+    assert raw is not None
+    with raw.cursor() as cur, raw.pipeline():
+        for model_id in sorted(touched):
+            hours = sorted(set(touched[model_id]))
+            if hours:
+                cur.execute(_lock_sql("shared"), {"m": model_id, "hours": hours}, prepare=True)
+        cur.execute("COMMIT")
+    session.commit()  # the transaction is over: this only closes the session's own
 
 
 def mark(

@@ -122,9 +122,8 @@ class GroupWriter:
                 store = _store_pg if is_postgres(session) else _store_sqlite
                 answers = store(session, preds, touched) + _store_labels(session, marks, touched)
                 # the hours are held last (store/dirty.py): after every row lock this
-                # transaction takes, in one ascending pass
-                for model_id in sorted(touched):
-                    dirty.lock_hours(session, model_id, sorted(touched[model_id]), "shared")
+                # transaction takes, in one ascending pass, and committed with them
+                dirty.hold_and_commit(session, touched)
         except Exception:  # each batch alone, for an answer of its own
             log.debug("a group of %d batches is stored batch by batch", len(group), exc_info=True)
             for batch in group:
@@ -291,7 +290,8 @@ def _store_pg(
     raw = session.connection().connection.driver_connection
     assert raw is not None
     with raw.cursor() as cur:
-        stored = cur.execute(
+        stored = bulk.execute_opening(
+            cur,
             _GROUP_SQL,
             {
                 "m": [k[0] for k in keys],
@@ -305,7 +305,6 @@ def _store_pg(
                 "at": received,
                 "marked": max(received),
             },
-            prepare=True,
         ).fetchall()
         if any(m is None for m, _, _, _ in stored):
             raise _Regroup  # a row below its model's retained raw days: see _GROUP_SQL

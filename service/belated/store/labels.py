@@ -79,10 +79,24 @@ def _targets(session: Session, model_id: int, ids: list[str]) -> dict[str, _Stor
     return found
 
 
+# Pending labels are looked up one index probe per id (store/by_day.py says why): as
+# `pid = ANY(ids)`, a pending_labels table grown since its last analyse was read whole,
+# 9.9 ms a look-up with 30,000 pending labels (bench/live.py, measured).
+_PENDING_PROBE = """
+SELECT k.pid, w.actual FROM unnest(%(ids)b::text[]) AS k(pid) CROSS JOIN LATERAL
+  (SELECT w.actual FROM pending_labels w WHERE w.model_id = %(m)s AND w.pid = k.pid OFFSET 0) w
+"""
+
+
 def _pending(session: Session, model_id: int, ids: list[str]) -> dict[str, str]:
     found: dict[str, str] = {}
     if not ids:
         return found
+    if is_postgres(session):
+        return {
+            str(p): str(a)
+            for p, a in bulk.fetch_all(session, _PENDING_PROBE, {"ids": ids, "m": model_id})
+        }
     for cond in bulk.id_filters(session, PendingLabel.pid, ids):
         for pid, actual in session.execute(
             select(PendingLabel.pid, PendingLabel.actual).where(
@@ -318,7 +332,9 @@ WITH {updates}, hist AS (
   SELECT %(m)s, * FROM unnest(%(c_hour)b::int4[], %(c_row)b::int8[], %(c_old)b::text[],
     %(c_old_delay)b::float8[], %(c_new)b::text[], %(c_new_delay)b::float8[])
 ), gone AS (
-  DELETE FROM pending_labels WHERE model_id = %(m)s AND pid = ANY(%(found)b::text[])
+  DELETE FROM pending_labels WHERE row_id = ANY(ARRAY(
+    SELECT w.row_id FROM unnest(%(found)b::text[]) AS k(pid) CROSS JOIN LATERAL (SELECT row_id
+      FROM pending_labels w WHERE w.model_id = %(m)s AND w.pid = k.pid OFFSET 0) w))
 ), marks AS (
   INSERT INTO dirty_buckets (model_id, hour, marked_at, recompute)
   SELECT %(m)s, h, %(at)s, false FROM unnest(%(hours)b::int4[]) AS t(h)
@@ -413,7 +429,31 @@ def _update_pg(session: Session, rows: list[dict[str, Any]]) -> None:
     by_day.run_update(session, rows)  # each day's partition named (store/by_day.py)
 
 
+_PENDING_UPSERT = """
+INSERT INTO pending_labels (model_id, pid, actual, ts, received_at)
+SELECT %(m)s, * FROM unnest(%(pid)b::text[], %(actual)b::text[], %(ts)b::timestamptz[],
+  %(at)b::timestamptz[])
+ON CONFLICT (model_id, pid) DO UPDATE
+SET actual = excluded.actual, ts = excluded.ts, received_at = excluded.received_at
+"""
+
+
 def _upsert_pending(session: Session, model_id: int, items: list[tuple[LabelIn, datetime]]) -> None:
+    """Store labels that wait for their predictions (one per id: `items` has distinct ids),
+    replacing an earlier one of the same id."""
+    if is_postgres(session):  # one statement, not one a row
+        bulk.execute_binary(
+            session,
+            _PENDING_UPSERT,
+            {
+                "m": model_id,
+                "pid": [i.pid for i, _ in items],
+                "actual": [i.actual for i, _ in items],
+                "ts": [i.ts for i, _ in items],
+                "at": [received for _, received in items],
+            },
+        )
+        return
     stmt = upsert(session, PendingLabel)
     stmt = stmt.on_conflict_do_update(
         index_elements=["model_id", "pid"],
