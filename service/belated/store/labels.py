@@ -80,8 +80,8 @@ def _targets(session: Session, model_id: int, ids: list[str]) -> dict[str, _Stor
 
 
 # Pending labels are looked up one index probe per id (store/by_day.py says why): as
-# `pid = ANY(ids)`, a pending_labels table grown since its last analyse was read whole,
-# 9.9 ms a look-up with 30,000 pending labels (bench/live.py, measured).
+# `pid = ANY(ids)` the id was a filter over every pending label of the model, not an index
+# key (9.9 ms a look-up with 30,000 pending labels in bench/live.py, measured).
 _PENDING_PROBE = """
 SELECT k.pid, w.actual FROM unnest(%(ids)b::text[]) AS k(pid) CROSS JOIN LATERAL
   (SELECT w.actual FROM pending_labels w WHERE w.model_id = %(m)s AND w.pid = k.pid OFFSET 0) w
