@@ -426,3 +426,38 @@ def test_pending_labels_are_probed_by_id_however_many_wait(
     # the pending labels are joined when their predictions arrive, as before
     send(tenant.client, model.name, "predictions", [prediction(0, prefix="early")])
     assert count(engine, "pending_labels", model.id) == 12_000 - 1
+
+
+@pytest.mark.parametrize("store_url", ["postgresql"], indirect=True)
+def test_a_large_label_batch_probes_the_registry_by_id(
+    tenant: Tenant, engine: Engine, sessions: Any
+) -> None:
+    """Common practice (PostgreSQL's planner): a join of a staged batch to the id registry
+    was planned as a hash of the whole registry (146 ms a batch of 10,000 labels against
+    400,000 ids, measured in bench/ingest.py), a cost that grows with the store. The hours of
+    a large batch's ids must come from one index probe per id."""
+    from sqlalchemy import text
+
+    from belated.store import bulk, labels
+
+    model = create_model(tenant, engine)
+    send(tenant.client, model.name, "predictions", predictions(3000, prefix="reg"))
+    with engine.begin() as conn:
+        conn.exec_driver_sql("ANALYZE prediction_ids")
+    with transaction(sessions) as session:
+        bulk.temp_table(session, labels._IN_STAGE, labels._IN_STAGE_DDL)
+        bulk.copy_rows(
+            session,
+            labels._IN_STAGE,
+            ("pid", "actual", "ts"),
+            ((f"reg-{i}", "1", base_time()) for i in range(0, 3000, 3)),
+            types=("text", "text", "timestamptz"),
+        )
+        sql = text(labels._STAGE_REGISTRY_SQL)
+        assert len(session.execute(sql, {"m": model.id}).all()) == 1000
+        plan = "\n".join(
+            r[0] for r in session.execute(text(f"EXPLAIN {sql.text}"), {"m": model.id})
+        )
+        assert any("Index Cond" in ln and "k.pid" in ln for ln in plan.splitlines()), plan
+        assert "Seq Scan on prediction_ids" not in plan and "Hash" not in plan, plan
+        session.rollback()
