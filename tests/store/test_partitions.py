@@ -45,6 +45,11 @@ from tests.support import (
 )
 
 
+def probes_by_id(plan: str) -> bool:
+    """Whether an EXPLAIN output has the batch's id (`k.pid`) as an index key."""
+    return any("Index Cond" in ln and "k.pid" in ln for ln in plan.splitlines())
+
+
 def post(tenant: Tenant, name: str, items: list[dict[str, Any]]) -> Any:
     """POST a predictions batch."""
     return tenant.client.post(f"/v1/models/{name}/predictions", json={"predictions": items})
@@ -414,13 +419,13 @@ def test_pending_labels_are_probed_by_id_however_many_wait(
                 )
             )
             # the id is an index key, not a filter over the model's every pending label
-            assert any("Index Cond" in ln and "k.pid" in ln for ln in plan.splitlines()), plan
+            assert probes_by_id(plan), plan
             assert "Seq Scan" not in plan and "Filter" not in plan, plan
             gone = labels._SMALL_WRITE.split("gone AS (")[1].split("), marks AS")[0]
             plan = "\n".join(
                 r[0] for r in cur.execute(f"EXPLAIN {gone}", {"found": ids, "m": model.id})
             )
-            assert any("Index Cond" in ln and "k.pid" in ln for ln in plan.splitlines()), plan
+            assert probes_by_id(plan), plan
             assert "Seq Scan" not in plan, plan
         session.rollback()
     # the pending labels are joined when their predictions arrive, as before
@@ -436,8 +441,6 @@ def test_a_large_label_batch_probes_the_registry_by_id(
     was planned as a hash of the whole registry (146 ms a batch of 10,000 labels against
     400,000 ids, measured in bench/ingest.py), a cost that grows with the store. The hours of
     a large batch's ids must come from one index probe per id."""
-    from sqlalchemy import text
-
     from belated.store import bulk, labels
 
     model = create_model(tenant, engine)
@@ -453,11 +456,9 @@ def test_a_large_label_batch_probes_the_registry_by_id(
             ((f"reg-{i}", "1", base_time()) for i in range(0, 3000, 3)),
             types=("text", "text", "timestamptz"),
         )
-        sql = text(labels._STAGE_REGISTRY_SQL)
-        assert len(session.execute(sql, {"m": model.id}).all()) == 1000
-        plan = "\n".join(
-            r[0] for r in session.execute(text(f"EXPLAIN {sql.text}"), {"m": model.id})
-        )
-        assert any("Index Cond" in ln and "k.pid" in ln for ln in plan.splitlines()), plan
+        sql = labels._STAGE_REGISTRY_SQL
+        assert len(bulk.fetch_all(session, sql, {"m": model.id})) == 1000
+        plan = "\n".join(r[0] for r in bulk.fetch_all(session, f"EXPLAIN {sql}", {"m": model.id}))
+        assert probes_by_id(plan), plan
         assert "Seq Scan on prediction_ids" not in plan and "Hash" not in plan, plan
         session.rollback()

@@ -6,7 +6,7 @@ from dataclasses import dataclass
 from datetime import datetime
 from typing import Any, NamedTuple
 
-from sqlalchemy import delete, func, select, text
+from sqlalchemy import delete, func, select
 from sqlalchemy.orm import Session
 
 from belated.clock import clock
@@ -175,8 +175,7 @@ SELECT (SELECT count(*) FROM t), (SELECT count(*) FROM ch WHERE old_actual IS NU
 # The staged ids' hours, one registry probe per id: as a join, the planner hashed the whole
 # registry (146 ms a batch of 10,000 against 400,000 ids, measured; it grows with the store).
 _STAGE_REGISTRY_SQL = (
-    f"SELECT k.pid, r.hour FROM {_IN_STAGE} k CROSS JOIN LATERAL (SELECT r.hour"
-    " FROM prediction_ids r WHERE r.model_id = :m AND r.pid = k.pid OFFSET 0) r"
+    f"SELECT k.pid, r.hour FROM {_IN_STAGE} k CROSS JOIN LATERAL {partitions.REGISTRY_PROBE} r"
 )
 
 
@@ -194,11 +193,7 @@ def _ingest_set_pg(
     # ids past retention (no prediction, raw rows dropped) are answered and stored nowhere
     expired = raw_retention.take_expired_from_stage(session, model_id, _IN_STAGE)
     where = {
-        str(pid): int(h)
-        for pid, h in session.execute(
-            text(_STAGE_REGISTRY_SQL),
-            {"m": model_id},
-        )
+        str(pid): int(h) for pid, h in bulk.fetch_all(session, _STAGE_REGISTRY_SQL, {"m": model_id})
     }
     reads, union, params = by_day.read_sql(
         by_day.group(session, where), _TARGET_COLUMNS, lock=True, hours=where
