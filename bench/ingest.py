@@ -2,11 +2,12 @@
 
 Sends N binary predictions (score and two tags: an online furniture shop predicting returns,
 tagged by channel and region) in batches over HTTP to a `belated serve --no-jobs` subprocess,
-then writes the same rows into tables of the same shape (same columns, unique key, indexes
-and foreign key) with psycopg COPY and with executemany; then the same for N labels (the HTTP
-labels endpoint, COPY into a staging table + UPDATE ... FROM, executemany UPDATE). Every path
-commits once per batch and runs with the same number of concurrent clients (forked processes,
-each with its own connection). JSON bodies and row tuples are built before the clock starts.
+then writes the same rows into tables of the same shape (same columns, unique key and
+indexes; no foreign key, like the service's) with psycopg COPY and with executemany; then
+the same for N labels (the HTTP labels endpoint, COPY into a staging table + UPDATE ... FROM,
+executemany UPDATE). Every path commits once per batch and runs with the same number of
+concurrent clients (forked processes, each with its own connection). JSON bodies and row
+tuples are built before the clock starts.
 
     .venv/bin/python bench/ingest.py [--rows 1000000] [--batch 10000] [--clients 2]
         [--random-page-cost 1.1] [--profile DIR]   (py-spy collapsed stacks of the service)
@@ -304,11 +305,7 @@ def make_tables(db_url: str) -> None:
             conn.execute(f"CREATE TABLE {t} (LIKE predictions INCLUDING ALL)")
             conn.execute(f"CREATE SEQUENCE {t}_seq OWNED BY {t}.row_id")
             conn.execute(f"ALTER TABLE {t} ALTER COLUMN row_id SET DEFAULT nextval('{t}_seq')")
-            # LIKE leaves foreign keys out; the service's table checks one on every row.
-            conn.execute(
-                f"ALTER TABLE {t} ADD FOREIGN KEY (model_id) REFERENCES models (id)"
-                " ON DELETE CASCADE"
-            )
+            # no foreign key, as the service's table since migration 0021
 
 
 def report(results: list[dict[str, Any]], kind: str) -> str:
@@ -499,7 +496,7 @@ def main() -> int:
         )
         print(
             "- COPY / executemany write into tables shaped like `predictions` (columns, "
-            "unique (model_id, pid), indexes, foreign key); labels update those rows"
+            "unique (model_id, pid), indexes; no foreign key); labels update those rows"
         )
         print(
             f"- service peak RSS (VmHWM): {rss['predictions']:.0f} MiB after predictions, "

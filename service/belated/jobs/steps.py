@@ -1,7 +1,7 @@
-"""The steps of one job run, in order: keep the day partitions ahead (PostgreSQL), refresh
-the rollups, drop the settled raw days and the pending labels past their model's
-keep_raw_days, evaluate the alert rules, send due webhook deliveries, keep the figures
-/metrics serves.
+"""The steps of one job run, in order: keep the day partitions ahead (PostgreSQL), sweep the
+rows of deleted models that racing writes left (store/purge.py), refresh the rollups, drop
+the settled raw days and the pending labels past their model's keep_raw_days, evaluate the
+alert rules, send due webhook deliveries, keep the figures /metrics serves.
 
 A step receives what the run provides (`StepContext`) and answers a small summary, which
 the run records; a step that raises is logged and the next one still runs.
@@ -20,7 +20,7 @@ from belated.alerts.tables import Rule
 from belated.clock import now
 from belated.config import Settings
 from belated.metrics import figures
-from belated.store import partitions, raw_retention, refresh, retention, staleness
+from belated.store import partitions, purge, raw_retention, refresh, retention, staleness
 from belated.store.db import transaction
 from belated.store.tables import ModelRow
 
@@ -42,6 +42,11 @@ def partitions_step(run: StepContext) -> dict[str, Any]:
     """PostgreSQL: day partitions ahead of time, and for rows that landed in the default."""
     with transaction(run.sessions) as session:
         return partitions.maintain(session, now())
+
+
+def sweep_step(run: StepContext) -> dict[str, Any]:
+    """Delete rows that writes racing a model's deletion committed after it (store/purge.py)."""
+    return purge.sweep(run.sessions)
 
 
 def refresh_step(run: StepContext) -> dict[str, Any]:
@@ -136,6 +141,7 @@ def cache_step(run: StepContext) -> dict[str, Any]:
 # one declaration of the run: (name, step) in the order they run
 STEPS: tuple[tuple[str, Step], ...] = (
     ("partitions", partitions_step),
+    ("sweep", sweep_step),
     ("refresh", refresh_step),
     ("retention", retention_step),
     ("pending", pending_step),

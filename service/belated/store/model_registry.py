@@ -12,6 +12,7 @@ from sqlalchemy.orm import Session
 from belated.clock import clock
 from belated.errors import Conflict, NotFound, invalid_field
 from belated.ingest.validate import ModelSpec
+from belated.store.dialect import is_postgres
 from belated.store.rollup_tables import Rollup
 from belated.store.tables import ModelRow, PendingLabel, Prediction, ThresholdChange
 from belated.timeutil import from_db, iso, to_utc
@@ -78,6 +79,13 @@ def create(
     )
     stamp = now or clock.now()
     model = ModelRow(project_id=project_id, created_at=stamp, updated_at=stamp, **values)
+    if not is_postgres(session):
+        # SQLite hands out the largest row id plus one again after a deletion: never an
+        # id whose rows a racing write may still leave behind (store/purge.py)
+        from belated.store import purge
+
+        last = session.scalar(select(func.max(ModelRow.id))) or 0
+        model.id = max(last, purge.highest_tombstoned_id(session)) + 1
     session.add(model)
     session.flush()
     session.add(ThresholdChange(model_id=model.id, threshold=model.threshold, changed_at=stamp))
@@ -164,6 +172,7 @@ def delete(*, session: Session, model: ModelRow) -> None:
     from belated.store import purge
 
     purge.model_data(session=session, model_id=model.id)
+    purge.bury(session=session, model_id=model.id)
     session.execute(sql_delete(ModelRow).where(ModelRow.id == model.id))
 
 

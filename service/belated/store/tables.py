@@ -118,6 +118,13 @@ class ThresholdChange(Base):
     changed_at: Mapped[datetime] = mapped_column(UtcDateTime)
 
 
+# The tables a write fills row by row (predictions, prediction_ids, labels, pending_labels,
+# dirty_buckets, label_changes) keep `model_id` without a foreign key: checking it cost
+# PostgreSQL a look-up and a FOR KEY SHARE lock of the model row for every row inserted,
+# after the statement (migration 0021). A model's rows are deleted table by table, and rows
+# that a write racing the deletion commits afterwards are swept by the jobs (store/purge.py).
+
+
 class Prediction(Base):
     """One scored item with its current label (the label history is in `labels`).
 
@@ -132,7 +139,7 @@ class Prediction(Base):
         Index("ix_predictions_model_ts", "model_id", "ts"),
     )
     row_id: Mapped[int] = mapped_column(BigId, primary_key=True, autoincrement=True)
-    model_id: Mapped[int] = mapped_column(ForeignKey("models.id", ondelete="CASCADE"))
+    model_id: Mapped[int] = mapped_column(Integer)  # no foreign key (above)
     pid: Mapped[str] = mapped_column(String(128))
     ts: Mapped[datetime] = mapped_column(UtcDateTime)
     hour: Mapped[int] = mapped_column(Integer)
@@ -154,9 +161,7 @@ class PredictionId(Base):
     """
 
     __tablename__ = "prediction_ids"
-    model_id: Mapped[int] = mapped_column(
-        ForeignKey("models.id", ondelete="CASCADE"), primary_key=True
-    )
+    model_id: Mapped[int] = mapped_column(Integer, primary_key=True)  # no foreign key (above)
     pid: Mapped[str] = mapped_column(String(128), primary_key=True)
     hour: Mapped[int] = mapped_column(Integer)
 
@@ -167,7 +172,7 @@ class Label(Base):
     __tablename__ = "labels"
     __table_args__ = (Index("ix_labels_model_pid", "model_id", "pid"),)
     row_id: Mapped[int] = mapped_column(BigId, primary_key=True, autoincrement=True)
-    model_id: Mapped[int] = mapped_column(ForeignKey("models.id", ondelete="CASCADE"))
+    model_id: Mapped[int] = mapped_column(Integer)  # no foreign key (above)
     pid: Mapped[str] = mapped_column(String(128))
     actual: Mapped[str] = mapped_column(String(128))
     ts: Mapped[datetime] = mapped_column(UtcDateTime)
@@ -181,7 +186,7 @@ class PendingLabel(Base):
     __tablename__ = "pending_labels"
     __table_args__ = (UniqueConstraint("model_id", "pid", name="uq_pending_labels_model_pid"),)
     row_id: Mapped[int] = mapped_column(BigId, primary_key=True, autoincrement=True)
-    model_id: Mapped[int] = mapped_column(ForeignKey("models.id", ondelete="CASCADE"))
+    model_id: Mapped[int] = mapped_column(Integer)  # no foreign key (above)
     pid: Mapped[str] = mapped_column(String(128))
     actual: Mapped[str] = mapped_column(String(128))
     ts: Mapped[datetime] = mapped_column(UtcDateTime)
@@ -201,7 +206,7 @@ class DirtyBucket(Base):
     __tablename__ = "dirty_buckets"
     __table_args__ = (Index("ix_dirty_buckets_model_hour", "model_id", "hour"),)
     seq: Mapped[int] = mapped_column(BigId, primary_key=True, autoincrement=True)
-    model_id: Mapped[int] = mapped_column(ForeignKey("models.id", ondelete="CASCADE"))
+    model_id: Mapped[int] = mapped_column(Integer)  # no foreign key (above)
     hour: Mapped[int] = mapped_column(Integer)
     marked_at: Mapped[datetime] = mapped_column(UtcDateTime)
     recompute: Mapped[bool] = mapped_column(Boolean, default=True, server_default=true())
@@ -217,7 +222,7 @@ class LabelChange(Base):
     __tablename__ = "label_changes"
     __table_args__ = (Index("ix_label_changes_model_hour", "model_id", "hour"),)
     id: Mapped[int] = mapped_column(BigId, primary_key=True, autoincrement=True)
-    model_id: Mapped[int] = mapped_column(ForeignKey("models.id", ondelete="CASCADE"))
+    model_id: Mapped[int] = mapped_column(Integer)  # no foreign key (above)
     hour: Mapped[int] = mapped_column(Integer)
     row_id: Mapped[int] = mapped_column(BigInteger)
     old_actual: Mapped[str | None] = mapped_column(String(128), nullable=True)
