@@ -156,7 +156,8 @@ def _client(k: int) -> dict[str, Any]:
             base_url=job["url"], timeout=300.0, headers={"Authorization": f"Bearer {job['token']}"}
         )
     else:
-        conn = psycopg.connect(job["db_url"])
+        # the service's session settings (store/db.py): neither side pays for JIT
+        conn = psycopg.connect(job["db_url"], options="-c jit=off")
         if method == "copy" and kind == "labels":
             conn.execute(STAGE_DDL)
             conn.commit()

@@ -178,6 +178,21 @@ def test_a_pending_label_can_be_corrected_before_its_prediction_arrives(
     assert count(engine, "pending_labels", model.id) == 0
 
 
+@pytest.mark.parametrize("size", [20, 1500])  # the grouped path and the bulk (COPY) path
+def test_labels_waiting_are_joined_when_their_predictions_arrive_in_any_batch_size(
+    tenant: Tenant, engine: Engine, model: Model, size: int
+) -> None:
+    items = predictions(size, base=base_time() - timedelta(days=2))
+    early = items[:: max(1, size // 25)]  # labelled before their predictions arrive
+    marks = [label(p["id"], outcome_of(i)) for i, p in enumerate(early)]
+    assert send(tenant.client, model.name, "labels", marks)["pending"] == len(early)
+    send(tenant.client, model.name, "predictions", items)
+    assert count(engine, "pending_labels", model.id) == 0
+    for i, p in enumerate(early):
+        assert prediction_row(engine, model.id, p["id"])["actual"] == outcome_of(i)
+    assert count(engine, "predictions", model.id, "actual IS NOT NULL") == len(early)
+
+
 def test_labels_do_not_cross_models(tenant: Tenant, engine: Engine, model: Model) -> None:
     other = create_model(tenant, engine)
     item = prediction(0)

@@ -88,6 +88,13 @@ SELECT k.pid, w.actual FROM unnest(%(ids)b::text[]) AS k(pid) CROSS JOIN LATERAL
 """
 
 
+def waiting_for(session: Session, model_id: int, ids: list[str]) -> list[str]:
+    """Those of `ids` with a label waiting for their prediction (one index probe per id on
+    PostgreSQL: with no label waiting, a batch of 10,000 new predictions costs 10,000
+    probes of an empty index rather than a join of its ids to their partitions)."""
+    return list(_pending(session, model_id, ids))
+
+
 def _pending(session: Session, model_id: int, ids: list[str]) -> dict[str, str]:
     found: dict[str, str] = {}
     if not ids:

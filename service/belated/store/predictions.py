@@ -107,9 +107,10 @@ def ingest(
             _insert_sqlite(session, model_id, new, received)
     if new:
         hours = {epoch_hour(p.ts) for p in new}
-        ids = [p.pid for p in new] if waiting is None else waiting
-        if ids:
-            hours |= labels.join_pending(session=session, model_id=model_id, ids=ids)
+        if waiting is None:
+            waiting = labels.waiting_for(session, model_id, [p.pid for p in new])
+        if waiting:
+            hours |= labels.join_pending(session=session, model_id=model_id, ids=waiting)
         dirty.mark(session=session, model_id=model_id, hours=hours)
     return {"accepted": len(new), "duplicates": batch_size - len(new)}
 
