@@ -462,3 +462,43 @@ def test_a_large_label_batch_probes_the_registry_by_id(
         assert probes_by_id(plan), plan
         assert "Seq Scan on prediction_ids" not in plan and "Hash" not in plan, plan
         session.rollback()
+
+
+@pytest.mark.parametrize("store_url", ["postgresql"], indirect=True)
+def test_a_large_label_batch_updates_its_rows_by_address_in_every_day(
+    tenant: Tenant, engine: Engine, sessions: Any
+) -> None:
+    """Common practice (PostgreSQL's planner): in the one statement that applies a large
+    labels batch, the batch's size was overestimated (the staged rows joined to the locked
+    reads: 259,200 rows estimated for 10,000) and each day's update became a scan of its
+    partition (6 ms a day of 14,000 rows, 60 days a batch in bench/scale.py at 5M
+    predictions: a cost that grows with the store). Each day's rows must be fetched by
+    address (a TID scan), analysed or not."""
+    from belated.store import bulk, labels
+
+    model = create_model(tenant, engine)
+    base = (base_time() - timedelta(days=400)).replace(hour=0, minute=0, second=0, microsecond=0)
+    items = predictions(2880, base=base)  # two whole days of their own, a minute apart
+    for start in range(0, len(items), 960):
+        send(tenant.client, model.name, "predictions", items[start : start + 960])
+    days = {partitions.day_name(epoch_hour(base) // 24 + d) for d in (0, 1)}
+    with engine.begin() as conn:
+        for day in days:  # with statistics the seq scan looked cheapest
+            conn.exec_driver_sql(f"ANALYZE {day}")
+    picked = [p["id"] for p in items[::2]]
+    with transaction(sessions) as session:
+        bulk.temp_table(session, labels._IN_STAGE, labels._IN_STAGE_DDL)
+        bulk.copy_rows(
+            session,
+            labels._IN_STAGE,
+            ("pid", "actual", "ts"),
+            ((pid, "1", base + timedelta(days=3)) for pid in picked),
+            types=("text", "text", "timestamptz"),
+        )
+        sql, params = labels.set_write(session, model.id, base + timedelta(days=4))
+        plan = "\n".join(r[0] for r in bulk.fetch_all(session, f"EXPLAIN {sql}", params))
+        assert plan.count("Tid Scan on predictions_p") >= len(days), plan
+        assert "Seq Scan on predictions_p" not in plan, plan
+        found, matched, corrected, _pending, _hours = bulk.fetch_all(session, sql, params)[0]
+        assert (found, matched + corrected) == (len(picked), len(picked))
+        session.rollback()

@@ -112,23 +112,34 @@ def fetch(
 
 
 def update_sql(
-    session: Session, hours_of_rows: Iterable[int], source: str, at: str | None = None
+    session: Session,
+    hours_of_rows: Iterable[int],
+    source: str,
+    at: str | None = None,
+    *,
+    at_column: bool = False,
 ) -> list[str]:
     """One UPDATE CTE per table of these hours, setting the label columns from `source` (a
     relation with row_id, hour, actual, label_ts, delay_h) for the rows it names.
 
     `at` names a text[] parameter with the rows' `at` (ctid) as read locked in this
-    transaction (by `read_sql`): the rows are then fetched by address, whatever the
-    statistics (a join on row_id scanned a young partition whole, 4.8 ms for 20 rows of
-    20,000); the row_id join still decides which rows are set."""
+    transaction (by `read_sql`); `at_column` says `source` has them as a column `at` (read
+    locked earlier in the same statement). The rows are then fetched by address, whatever
+    the statistics (a join on row_id scanned a young partition whole, 4.8 ms for 20 rows of
+    20,000; in a statement over 60 days the batch's estimated size made every day's update
+    a scan of its partition, a cost that grows with the store: 6 ms a day of 14,000 rows);
+    the row_id join still decides which rows are set."""
     table_of = tables(session, {h // 24 for h in hours_of_rows})
     by_table: dict[str, list[int]] = {}
     for day, table in table_of.items():
         by_table.setdefault(table, []).append(day)
     out = []
-    by_address = f" AND p.ctid = ANY(%({at})s::text[]::tid[])" if at else ""
     for i, (table, days) in enumerate(sorted(by_table.items())):
         days_in = partitions.hours_clause((d * 24 for d in days), "u.hour")
+        by_address = f" AND p.ctid = ANY(%({at})s::text[]::tid[])" if at else ""
+        if at_column:
+            mine = partitions.hours_clause((d * 24 for d in days), "a.hour")
+            by_address += f" AND p.ctid = ANY(ARRAY(SELECT a.at::tid FROM {source} a WHERE {mine}))"
         out.append(
             f"upd{i} AS (UPDATE {table} p SET actual = u.actual, label_ts = u.label_ts,"
             f" delay_h = u.delay_h FROM {source} u WHERE p.row_id = u.row_id"

@@ -142,7 +142,7 @@ _IN_STAGE_DDL = "pid text, actual text, ts timestamptz"
 _SET_WRITE = f"""
 WITH {{reads}}, t AS MATERIALIZED (
   SELECT s.pid, s.actual, s.ts AS label_ts, p.row_id, p.ts AS pred_ts, p.hour,
-    p.actual AS old_actual, p.delay_h AS old_delay_h
+    p.actual AS old_actual, p.delay_h AS old_delay_h, p.at
   FROM {_IN_STAGE} s JOIN ({{union}}) p ON p.pid = s.pid
 ), ch AS MATERIALIZED (
   SELECT t.*, greatest(0.0, extract(epoch FROM t.label_ts - t.pred_ts)::float8 / 3600.0)
@@ -186,6 +186,21 @@ _STAGE_REGISTRY_SQL = (
 )
 
 
+def set_write(session: Session, model_id: int, received: datetime) -> tuple[str, dict[str, Any]]:
+    """The statement applying the staged labels batch (PostgreSQL), and its parameters."""
+    where = {
+        str(pid): int(h) for pid, h in bulk.fetch_all(session, _STAGE_REGISTRY_SQL, {"m": model_id})
+    }
+    reads, union, params = by_day.read_sql(
+        by_day.group(session, where), _TARGET_COLUMNS, lock=True, hours=where
+    )
+    updates = by_day.update_sql(session, where.values(), "ch", at_column=True) or [
+        "upd0 AS (SELECT 1)"
+    ]
+    sql = _SET_WRITE.format(reads=", ".join(reads), union=union, updates=", ".join(updates))
+    return sql, {"m": model_id, "at": received, **params}
+
+
 def _ingest_set_pg(
     session: Session, model_id: int, items: list[LabelIn], received: datetime
 ) -> tuple[dict[str, int], set[int]]:
@@ -199,17 +214,8 @@ def _ingest_set_pg(
     )
     # ids past retention (no prediction, raw rows dropped) are answered and stored nowhere
     expired = raw_retention.take_expired_from_stage(session, model_id, _IN_STAGE)
-    where = {
-        str(pid): int(h) for pid, h in bulk.fetch_all(session, _STAGE_REGISTRY_SQL, {"m": model_id})
-    }
-    reads, union, params = by_day.read_sql(
-        by_day.group(session, where), _TARGET_COLUMNS, lock=True, hours=where
-    )
-    updates = by_day.update_sql(session, where.values(), "ch") or ["upd0 AS (SELECT 1)"]
-    sql = _SET_WRITE.format(reads=", ".join(reads), union=union, updates=", ".join(updates))
-    found, matched, corrected, pending, hours = bulk.fetch_all(
-        session, sql, {"m": model_id, "at": received, **params}
-    )[0]
+    sql, params = set_write(session, model_id, received)
+    found, matched, corrected, pending, hours = bulk.fetch_all(session, sql, params)[0]
     answer = {
         "matched": matched,
         "pending": pending,
