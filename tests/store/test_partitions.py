@@ -50,6 +50,20 @@ def probes_by_id(plan: str) -> bool:
     return any("Index Cond" in ln and "k.pid" in ln for ln in plan.splitlines())
 
 
+def stage_labels(session: Any, items: list[tuple[str, str, Any]]) -> None:
+    """Stage a labels batch (id, actual, time) as the set path does (PostgreSQL)."""
+    from belated.store import bulk, labels
+
+    bulk.temp_table(session, labels._IN_STAGE, labels._IN_STAGE_DDL)
+    bulk.copy_rows(
+        session,
+        labels._IN_STAGE,
+        ("pid", "actual", "ts"),
+        items,
+        types=("text", "text", "timestamptz"),
+    )
+
+
 def post(tenant: Tenant, name: str, items: list[dict[str, Any]]) -> Any:
     """POST a predictions batch."""
     return tenant.client.post(f"/v1/models/{name}/predictions", json={"predictions": items})
@@ -448,14 +462,7 @@ def test_a_large_label_batch_probes_the_registry_by_id(
     with engine.begin() as conn:
         conn.exec_driver_sql("ANALYZE prediction_ids")
     with transaction(sessions) as session:
-        bulk.temp_table(session, labels._IN_STAGE, labels._IN_STAGE_DDL)
-        bulk.copy_rows(
-            session,
-            labels._IN_STAGE,
-            ("pid", "actual", "ts"),
-            ((f"reg-{i}", "1", base_time()) for i in range(0, 3000, 3)),
-            types=("text", "text", "timestamptz"),
-        )
+        stage_labels(session, [(f"reg-{i}", "1", base_time()) for i in range(0, 3000, 3)])
         sql = labels._STAGE_REGISTRY_SQL
         assert len(bulk.fetch_all(session, sql, {"m": model.id})) == 1000
         plan = "\n".join(r[0] for r in bulk.fetch_all(session, f"EXPLAIN {sql}", {"m": model.id}))
@@ -487,14 +494,7 @@ def test_a_large_label_batch_updates_its_rows_by_address_in_every_day(
             conn.exec_driver_sql(f"ANALYZE {day}")
     picked = [p["id"] for p in items[::2]]
     with transaction(sessions) as session:
-        bulk.temp_table(session, labels._IN_STAGE, labels._IN_STAGE_DDL)
-        bulk.copy_rows(
-            session,
-            labels._IN_STAGE,
-            ("pid", "actual", "ts"),
-            ((pid, "1", base + timedelta(days=3)) for pid in picked),
-            types=("text", "text", "timestamptz"),
-        )
+        stage_labels(session, [(pid, "1", base + timedelta(days=3)) for pid in picked])
         sql, params = labels.set_write(session, model.id, base + timedelta(days=4))
         plan = "\n".join(r[0] for r in bulk.fetch_all(session, f"EXPLAIN {sql}", params))
         assert plan.count("Tid Scan on predictions_p") >= len(days), plan
