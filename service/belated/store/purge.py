@@ -63,7 +63,8 @@ def bury(*, session: Session, model_id: int) -> None:
 
 
 def tombstoned_ids(session: Session) -> list[int]:
-    """The ids of the models deleted within the last SWEEP_SECONDS (and not yet swept)."""
+    """The ids of the deleted models whose tombstone stands (a sweep drops it once it is
+    older than SWEEP_SECONDS)."""
     values = session.scalars(
         select(t.ServiceState.value).where(t.ServiceState.key.startswith(TOMBSTONE))
     )
