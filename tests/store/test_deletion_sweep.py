@@ -18,10 +18,20 @@ from sqlalchemy import Engine
 from belated.clock import clock
 from belated.ingest.validate import LabelIn, PredictionIn
 from belated.jobs.steps import STEPS
-from belated.store import labels, predictions, purge
+from belated.store import labels, purge
+from belated.store import predictions as stored_predictions
 from belated.store.db import transaction
 from tests.conftest import Tenant
-from tests.support import MODEL_TABLES, base_time, counts, create_model, rows, utcnow
+from tests.support import (
+    MODEL_TABLES,
+    base_time,
+    counts,
+    create_model,
+    label,
+    predictions,
+    rows,
+    utcnow,
+)
 
 DATA_TABLES = tuple(t for t in MODEL_TABLES if t != "threshold_changes")
 
@@ -35,7 +45,9 @@ def stale_write(sessions: Any, model_id: int, during: Any) -> None:
         for i in range(5)
     ]
     with transaction(sessions) as session:
-        got = predictions.ingest(session=session, model_id=model_id, preds=preds, batch_size=5)
+        got = stored_predictions.ingest(
+            session=session, model_id=model_id, preds=preds, batch_size=5
+        )
         assert got == {"accepted": 5, "duplicates": 0}
         items = [LabelIn("order-0", "1", base + timedelta(days=1)), LabelIn("late", "0", base)]
         labels.ingest(session=session, model_id=model_id, items=items)
@@ -98,18 +110,9 @@ def test_rows_a_racing_write_commits_after_the_deletion_are_swept(
 def test_a_deletion_leaves_no_row_in_any_data_table(tenant: Tenant, engine: Engine) -> None:
     model = create_model(tenant, engine)
     url = f"/v1/models/{model.name}"
-    items = [
-        {
-            "id": f"o-{i}",
-            "ts": (base_time() + timedelta(minutes=i)).isoformat(),
-            "score": 0.5,
-            "predicted": "1",
-        }
-        for i in range(30)
-    ]
+    items = predictions(30, prefix="o")
     assert tenant.client.post(f"{url}/predictions", json={"predictions": items}).status_code == 200
-    marks = [{"id": f"o-{i}", "actual": "1"} for i in range(0, 30, 2)]
-    marks.append({"id": "not-yet", "actual": "0"})
+    marks = [label(f"o-{i}", "1") for i in range(0, 30, 2)] + [label("not-yet", "0")]
     assert tenant.client.post(f"{url}/labels", json={"labels": marks}).status_code == 200
     assert all(counts(engine, model.id)[t] > 0 for t in DATA_TABLES)
     assert registry_rows(engine, model.id) == (30 if engine.dialect.name == "postgresql" else 0)
