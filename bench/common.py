@@ -138,6 +138,38 @@ def cpu_seconds(pid: int) -> float:
     return (int(fields[11]) + int(fields[12])) / os.sysconf("SC_CLK_TCK")
 
 
+def process_tree(pid: int) -> list[int]:
+    """A process and its descendants (the API processes of `serve --workers N`)."""
+    parent: dict[int, int] = {}
+    for stat in Path("/proc").glob("[0-9]*/stat"):
+        try:
+            fields = stat.read_text().rsplit(")", 1)[1].split()
+        except OSError:  # gone meanwhile
+            continue
+        parent[int(stat.parent.name)] = int(fields[1])
+    tree, frontier = [pid], [pid]
+    while frontier:
+        frontier = [c for c, p in parent.items() if p in frontier]
+        tree += frontier
+    return tree
+
+
+def tree_cpu_seconds(pid: int) -> float:
+    """`cpu_seconds` summed over a process and its live descendants."""
+    total = 0.0
+    for p in process_tree(pid):
+        try:
+            total += cpu_seconds(p)
+        except OSError:
+            pass
+    return total
+
+
+def tree_peak_rss_mib(pid: int) -> float:
+    """Peak RSS (VmHWM) summed over a process and its live descendants, in MiB."""
+    return sum(peak_rss_mib(p) for p in process_tree(pid))
+
+
 def backend_pids(dbname: str) -> list[int]:
     """PostgreSQL server processes connected to `dbname` (readable when the server is local)."""
     with psycopg.connect(PG_ADMIN, autocommit=True) as conn:

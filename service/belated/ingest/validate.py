@@ -132,9 +132,29 @@ def _finite_prob(value: Any) -> float | None:
     return v if math.isfinite(v) and 0.0 <= v <= 1.0 else None
 
 
+# Tag sets repeat (a few channels times a few regions): a set of string tags seen valid is
+# answered from here, the same dict for every row that sends it (nothing changes it later).
+# Only all-string sets are kept: 1 and 1.0 (and True) hash alike but are stored differently.
+_TAGS_SEEN: dict[tuple[tuple[str, str], ...], dict[str, str] | None] = {}
+_TAGS_SEEN_MAX = 4096
+
+
 def _check_tags(i: int, value: Any, errors: list[dict[str, Any]]) -> dict[str, str] | None:
     if value is None:
         return None
+    key = None
+    if type(value) is dict and all(type(v) is str for v in value.values()):
+        key = tuple(value.items())
+        if key in _TAGS_SEEN:
+            return _TAGS_SEEN[key]
+    n_err = len(errors)
+    tags = _tags_of(i, value, errors)
+    if key is not None and len(errors) == n_err and len(_TAGS_SEEN) < _TAGS_SEEN_MAX:
+        _TAGS_SEEN[key] = tags
+    return tags
+
+
+def _tags_of(i: int, value: Any, errors: list[dict[str, Any]]) -> dict[str, str] | None:
     if not isinstance(value, dict):
         errors.append(field_error(i, "tags", "must be an object of strings"))
         return None
@@ -213,6 +233,7 @@ def _predicted(
     score: float | None,
     scores: dict[str, float] | None,
     errors: list[dict[str, Any]],
+    pos_neg: tuple[str, str],
 ) -> str | None:
     raw = item.get("predicted")
     if raw is not None:
@@ -225,9 +246,14 @@ def _predicted(
         return value
     if scores is not None:
         return max(spec.classes, key=lambda c: (scores[c], -spec.classes.index(c)))
-    positive = spec.positive or spec.classes[-1]
-    negative = next(c for c in spec.classes if c != positive)
+    positive, negative = pos_neg
     return positive if score is not None and score >= spec.threshold else negative
+
+
+def _positive_negative(spec: ModelSpec) -> tuple[str, str]:
+    """A binary model's positive and negative class (a multiclass model's are not used)."""
+    positive = spec.positive or spec.classes[-1]
+    return positive, next((c for c in spec.classes if c != positive), positive)
 
 
 def _too_many(errors: list[dict[str, Any]]) -> bool:
@@ -242,6 +268,7 @@ def validate_predictions(
     errors: list[dict[str, Any]] = []
     out: list[PredictionIn] = []
     seen: dict[str, int] = {}
+    pos_neg = _positive_negative(spec)
     for i, item in enumerate(items):
         if _too_many(errors):
             break
@@ -252,7 +279,7 @@ def validate_predictions(
         pid = _check_id(i, item, errors)
         ts = _check_ts(i, item.get("ts"), now, errors, required=True)
         score, scores, ok = _check_scores(i, item, spec, errors)
-        predicted = _predicted(i, item, spec, score, scores, errors) if ok else None
+        predicted = _predicted(i, item, spec, score, scores, errors, pos_neg) if ok else None
         tags = _check_tags(i, item.get("tags"), errors)
         if len(errors) > n_err or pid is None or ts is None or predicted is None:
             continue

@@ -85,13 +85,14 @@ def ingest(
     if is_postgres(session):
         # insert first (ON CONFLICT DO NOTHING) and compare only the ids already stored; a
         # conflict raises, and the request's transaction rolls the whole batch back
-        partitions.ensure_hours(session, {epoch_hour(p.ts) for p in preds})
+        hours = [epoch_hour(p.ts) for p in preds]  # once: three uses below
+        partitions.ensure_hours(session, set(hours))
         if not preds:
             inserted: set[str] = set()
         elif len(preds) <= SMALL_BATCH:
-            inserted, waiting = _insert_small_pg(session, model_id, preds, received)
+            inserted, waiting = _insert_small_pg(session, model_id, preds, hours, received)
         else:
-            inserted = _insert_pg(session, model_id, preds, received)
+            inserted = _insert_pg(session, model_id, preds, hours, received)
         rest = [p for p in preds if p.pid not in inserted]
     else:
         inserted, rest = set(), preds
@@ -106,12 +107,12 @@ def ingest(
         if new:
             _insert_sqlite(session, model_id, new, received)
     if new:
-        hours = {epoch_hour(p.ts) for p in new}
+        touched = {epoch_hour(p.ts) for p in new}
         if waiting is None:
             waiting = labels.waiting_for(session, model_id, [p.pid for p in new])
         if waiting:
-            hours |= labels.join_pending(session=session, model_id=model_id, ids=waiting)
-        dirty.mark(session=session, model_id=model_id, hours=hours)
+            touched |= labels.join_pending(session=session, model_id=model_id, ids=waiting)
+        dirty.mark(session=session, model_id=model_id, hours=touched)
     return {"accepted": len(new), "duplicates": batch_size - len(new)}
 
 
@@ -174,7 +175,7 @@ SMALL_BATCH = 200
 
 
 def _insert_small_pg(
-    session: Session, model_id: int, new: list[PredictionIn], received: datetime
+    session: Session, model_id: int, new: list[PredictionIn], hours: list[int], received: datetime
 ) -> tuple[set[str], list[str]]:
     """Insert a small batch in one round trip; the ids stored and those of them with a
     pending label."""
@@ -185,7 +186,7 @@ def _insert_small_pg(
         "at": received,
         "pid": [p.pid for p in new],
         "ts": [p.ts for p in new],
-        "hour": [epoch_hour(p.ts) for p in new],
+        "hour": hours,
         "score": [p.score for p in new],
         "scores": [bulk.json_text(p.scores) for p in new],
         "predicted": [p.predicted for p in new],
@@ -205,7 +206,7 @@ def _jsonb(value: Any) -> Jsonb | None:
 
 
 def _copy_direct_pg(
-    session: Session, model_id: int, new: list[PredictionIn], received: datetime
+    session: Session, model_id: int, new: list[PredictionIn], hours: list[int], received: datetime
 ) -> bool:
     """COPY a batch straight into `predictions`, as a plain bulk load would; False, with
     nothing written, when one of its ids is already stored (a resent batch).
@@ -221,14 +222,14 @@ def _copy_direct_pg(
             model_id,
             p.pid,
             p.ts,
-            epoch_hour(p.ts),
+            hour,
             p.score,
             _jsonb(p.scores),
             p.predicted,
             _jsonb(p.tags),
             received,
         )
-        for p in new
+        for p, hour in zip(new, hours, strict=True)
     )
     try:
         with raw.transaction():  # a savepoint inside the request's transaction
@@ -236,7 +237,7 @@ def _copy_direct_pg(
                 session,
                 partitions.REGISTRY,
                 ("model_id", "pid", "hour"),
-                ((model_id, p.pid, epoch_hour(p.ts)) for p in new),
+                ((model_id, p.pid, hour) for p, hour in zip(new, hours, strict=True)),
                 types=("int4", "text", "int4"),
             )
             bulk.copy_rows(
@@ -252,9 +253,9 @@ def _copy_direct_pg(
 
 
 def _insert_pg(
-    session: Session, model_id: int, new: list[PredictionIn], received: datetime
+    session: Session, model_id: int, new: list[PredictionIn], hours: list[int], received: datetime
 ) -> set[str]:
-    if _copy_direct_pg(session, model_id, new, received):
+    if _copy_direct_pg(session, model_id, new, hours, received):
         return {p.pid for p in new}
     bulk.temp_table(session, _STAGE, _STAGE_DDL)
     bulk.copy_rows(
@@ -265,14 +266,14 @@ def _insert_pg(
             (
                 p.pid,
                 p.ts,
-                epoch_hour(p.ts),
+                hour,
                 p.score,
                 bulk.json_text(p.scores),
                 p.predicted,
                 bulk.json_text(p.tags),
                 received,
             )
-            for p in new
+            for p, hour in zip(new, hours, strict=True)
         ),
         types=_TYPES,  # binary COPY: a ninth of the text format's cost in this process
     )
