@@ -318,6 +318,8 @@ def test_a_tag_set_seen_valid_is_not_taken_for_one_that_compares_equal() -> None
         assert raised.errors is not None and raised.errors[0]["field"] == "tags.size"
         raised = refusal(predictions, [changed(P, tags={"a:b": "x"})], BINARY)
         assert raised.errors is not None and raised.errors[0]["field"] == "tags.a:b"
+        raised = refusal(predictions, [changed(P, tags={"size": ["1"]})], BINARY)
+        assert raised.errors is not None and raised.errors[0]["field"] == "tags.size"
 
 
 @pytest.mark.parametrize(

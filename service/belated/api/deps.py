@@ -15,6 +15,7 @@ from sqlalchemy.orm import Session
 
 from belated.alerts import rules
 from belated.alerts.tables import Rule
+from belated.api.fastpath import PARSED_BODY
 from belated.api.lookups import Lookups, ModelRef
 from belated.clock import clock
 from belated.config import Settings
@@ -224,7 +225,10 @@ NowDep = Annotated[datetime, Depends(request_now)]
 
 
 async def json_body(request: Request) -> Any:
-    """Parse the body as JSON; a body that is not JSON is a 400."""
+    """Parse the body as JSON (or take it as api/fastpath.py parsed it); a body that is not
+    JSON is a 400."""
+    if PARSED_BODY in request.scope:
+        return request.scope[PARSED_BODY]
     raw = await request.body()
     try:
         return orjson.loads(raw)

@@ -143,13 +143,22 @@ def _check_tags(i: int, value: Any, errors: list[dict[str, Any]]) -> dict[str, s
     if value is None:
         return None
     key = None
-    if type(value) is dict and all(type(v) is str for v in value.values()):
+    if type(value) is dict:
         key = tuple(value.items())
-        if key in _TAGS_SEEN:
+        try:  # a kept set has strings only, and no number or boolean equals a string
             return _TAGS_SEEN[key]
+        except KeyError:
+            pass
+        except TypeError:  # a list or an object among the values: not hashable
+            key = None
     n_err = len(errors)
     tags = _tags_of(i, value, errors)
-    if key is not None and len(errors) == n_err and len(_TAGS_SEEN) < _TAGS_SEEN_MAX:
+    if (
+        key is not None
+        and len(errors) == n_err
+        and len(_TAGS_SEEN) < _TAGS_SEEN_MAX
+        and all(type(v) is str for v in value.values())
+    ):
         _TAGS_SEEN[key] = tags
     return tags
 

@@ -18,6 +18,7 @@ from sqlalchemy import insert
 from sqlalchemy.orm import Session
 
 from belated.clock import now
+from belated.store import bulk
 from belated.store.dialect import is_postgres
 from belated.store.tables import DirtyBucket
 
@@ -84,6 +85,15 @@ def mark(
     if lock is not None:
         lock_hours(session, model_id, ordered, lock)
     stamp = now()
+    if is_postgres(session):  # the ORM's executemany cost a bulk batch ~5% of its time
+        bulk.insert_rows(
+            session,
+            "dirty_buckets",
+            ("model_id", "hour", "marked_at", "recompute"),
+            ("int4", "int4", "timestamptz", "bool"),
+            [(model_id, h, stamp, recompute) for h in ordered],
+        )
+        return len(ordered)
     session.execute(
         insert(DirtyBucket),
         [
