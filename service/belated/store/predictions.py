@@ -8,7 +8,6 @@ from typing import Any
 
 import orjson
 import psycopg
-from psycopg.types.json import Jsonb
 from sqlalchemy import select, text
 from sqlalchemy.orm import Session
 
@@ -82,10 +81,11 @@ def ingest(
     received = now or clock.now()
     raw_retention.refuse_before(session=session, model_id=model_id, preds=preds)
     waiting: list[str] | None = None  # the new ids with a pending label; None: not known
+    hours: list[int] = []  # each prediction's hour (PostgreSQL)
     if is_postgres(session):
         # insert first (ON CONFLICT DO NOTHING) and compare only the ids already stored; a
         # conflict raises, and the request's transaction rolls the whole batch back
-        hours = [epoch_hour(p.ts) for p in preds]  # once: three uses below
+        hours = [epoch_hour(p.ts) for p in preds]  # once: the uses below
         partitions.ensure_hours(session, set(hours))
         if not preds:
             inserted: set[str] = set()
@@ -107,7 +107,10 @@ def ingest(
         if new:
             _insert_sqlite(session, model_id, new, received)
     if new:
-        touched = {epoch_hour(p.ts) for p in new}
+        if hours and len(new) == len(preds):  # PostgreSQL, every prediction new
+            touched = set(hours)
+        else:
+            touched = {epoch_hour(p.ts) for p in new}
         if waiting is None:
             waiting = labels.waiting_for(session, model_id, [p.pid for p in new])
         if waiting:
@@ -198,11 +201,24 @@ def _insert_small_pg(
 
 
 _DIRECT_COLUMNS = ("model_id", "pid", "ts", "hour", "score", "scores", "predicted", "tags")
-_DIRECT_TYPES = ("int4", "text", "timestamptz", "int4", "float8", "jsonb", "text", "jsonb")
 
 
-def _jsonb(value: Any) -> Jsonb | None:
-    return None if value is None else Jsonb(value, dumps=orjson.dumps)
+# jsonb's binary form is a version byte (1) and the JSON text. COPY reads each field with the
+# column's own receive function, so these bytes are sent as they are (declared bytea to the
+# client): one JSON encoding per tag set of a batch rather than a wrapper and an encoding
+# per row (validation hands the rows of one tag set the same dict).
+_COPY_TYPES = ("int4", "text", "timestamptz", "int4", "float8", "bytea", "text", "bytea")
+
+
+def _jsonb_copy(value: Any, done: dict[int, bytes]) -> bytes | None:
+    """The binary jsonb of a value (None stays NULL), encoded once per object of a batch;
+    `done` lives as long as the batch, so an object's id is not reused meanwhile."""
+    if value is None:
+        return None
+    found = done.get(id(value))
+    if found is None:
+        found = done[id(value)] = b"\x01" + orjson.dumps(value)
+    return found
 
 
 def _copy_direct_pg(
@@ -217,6 +233,7 @@ def _copy_direct_pg(
     to the staged insert, which sorts the new from the stored."""
     raw = session.connection().connection.driver_connection
     assert raw is not None
+    done: dict[int, bytes] = {}
     rows = (
         (
             model_id,
@@ -224,9 +241,9 @@ def _copy_direct_pg(
             p.ts,
             hour,
             p.score,
-            _jsonb(p.scores),
+            _jsonb_copy(p.scores, done),
             p.predicted,
-            _jsonb(p.tags),
+            _jsonb_copy(p.tags, done),
             received,
         )
         for p, hour in zip(new, hours, strict=True)
@@ -245,7 +262,7 @@ def _copy_direct_pg(
                 "predictions",
                 (*_DIRECT_COLUMNS, "received_at"),
                 rows,
-                types=(*_DIRECT_TYPES, "timestamptz"),
+                types=(*_COPY_TYPES, "timestamptz"),
             )
     except psycopg.errors.UniqueViolation:
         return False
