@@ -123,6 +123,8 @@ def _check_ts(
 
 
 def _finite_prob(value: Any) -> float | None:
+    if type(value) is float and 0.0 <= value <= 1.0:  # the common case (NaN fails the test)
+        return value
     if isinstance(value, bool) or not isinstance(value, int | float):
         return None
     try:
