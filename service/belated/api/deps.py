@@ -227,8 +227,9 @@ NowDep = Annotated[datetime, Depends(request_now)]
 async def json_body(request: Request) -> Any:
     """Parse the body as JSON (or take it as api/fastpath.py parsed it); a body that is not
     JSON is a 400."""
-    if PARSED_BODY in request.scope:
-        return request.scope[PARSED_BODY]
+    state = request.scope.get("state") or {}
+    if PARSED_BODY in state:
+        return state[PARSED_BODY]
     raw = await request.body()
     try:
         return orjson.loads(raw)
