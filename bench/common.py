@@ -51,7 +51,9 @@ def free_port() -> int:
 class Service:
     """`belated serve --no-jobs` in a subprocess, on loopback, against `database_url`."""
 
-    def __init__(self, database_url: str, extra_env: dict[str, str] | None = None) -> None:
+    def __init__(
+        self, database_url: str, extra_env: dict[str, str] | None = None, workers: int = 1
+    ) -> None:
         self.port = free_port()
         self.url = f"http://127.0.0.1:{self.port}"
         # A directory of its own, so no stray .env or SQLite file is picked up or left behind.
@@ -65,7 +67,9 @@ class Service:
         }
         self._log = self.log_path.open("wb")
         self.proc = subprocess.Popen(
-            [str(BELATED), "serve", "--host", "127.0.0.1", "--port", str(self.port), "--no-jobs"],
+            [str(BELATED), "serve", "--host", "127.0.0.1", "--port", str(self.port), "--no-jobs"]
+            # `serve` reads its process count from the command line only
+            + (["--workers", str(workers)] if workers > 1 else []),
             cwd=self.workdir,
             env=env,
             stdout=self._log,
@@ -166,8 +170,15 @@ def tree_cpu_seconds(pid: int) -> float:
 
 
 def tree_peak_rss_mib(pid: int) -> float:
-    """Peak RSS (VmHWM) summed over a process and its live descendants, in MiB."""
-    return sum(peak_rss_mib(p) for p in process_tree(pid))
+    """Peak RSS (VmHWM) summed over a process and its live descendants, in MiB: an upper
+    bound (the peaks need not coincide, and shared pages count once per process)."""
+    total = 0.0
+    for p in process_tree(pid):
+        try:
+            total += peak_rss_mib(p)
+        except (OSError, RuntimeError):  # gone meanwhile
+            pass
+    return total
 
 
 def backend_pids(dbname: str) -> list[int]:

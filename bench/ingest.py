@@ -429,8 +429,7 @@ def main() -> int:
             rpc = conn.execute("SHOW random_page_cost").fetchone()[0]  # type: ignore[index]
         load0 = os.getloadavg()
         token, _project = setup_store(db_url)
-        extra = {"BELATED_WORKERS": str(args.workers)} if args.workers > 1 else {}
-        service = Service(db_url, extra)
+        service = Service(db_url, workers=args.workers)
         service.wait_ready()
         resp = httpx.post(
             service.url + "/v1/models",

@@ -263,8 +263,9 @@ def run_store(kind: str, args: argparse.Namespace, rows: int) -> list[list[Any]]
     theirs: list[dict[str, Any]] = []
     try:
         token, _ = setup_store(urls[0])
-        extra = {"BELATED_WORKERS": str(args.workers)} if args.workers > 1 else {}
-        service = Service(urls[0].replace("postgresql://", "postgresql+psycopg://", 1), extra)
+        service = Service(
+            urls[0].replace("postgresql://", "postgresql+psycopg://", 1), workers=args.workers
+        )
         plain = Plain(urls[1], args.workers)
         try:
             service.wait_ready()

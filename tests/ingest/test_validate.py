@@ -304,13 +304,20 @@ def test_tags_numbers_become_strings_and_no_tags_is_none() -> None:
     assert predictions([changed(P, tags=longest)])[0].tags == longest
 
 
-def test_a_tag_set_seen_valid_is_not_taken_for_one_that_compares_equal() -> None:
+def test_a_tag_set_seen_valid_is_not_taken_for_one_that_compares_equal(
+    monkeypatch: pytest.MonkeyPatch,
+) -> None:
     """Valid string tag sets are remembered across batches; 1, 1.0 and True hash and compare
     alike in Python but are stored as "1", "1.0" and refused, so a remembered set must
     never answer for them, and a refused set is refused every time."""
+    from belated.ingest import validate
+
+    seen: dict[Any, Any] = {}
+    monkeypatch.setattr(validate, "_TAGS_SEEN", seen)  # empty, whatever ran before
     for _ in range(2):  # the second batch is answered from what the first left
         out = predictions([changed(good_prediction(n), tags={"size": "1"}) for n in range(3)])
         assert [p.tags for p in out] == [{"size": "1"}] * 3
+        assert seen == {(("size", "1"),): {"size": "1"}}  # remembered, and only it
     assert predictions([changed(P, tags={"size": 1})])[0].tags == {"size": "1"}
     assert predictions([changed(P, tags={"size": 1.0})])[0].tags == {"size": "1.0"}
     for _ in range(2):

@@ -27,7 +27,7 @@ from belated.ingest.validate import validate_labels, validate_predictions
 from belated.store import grouped
 from belated.store.keys import hash_token
 
-PARSED_BODY = "belated.parsed_body"  # the scope key of a body parsed here
+PARSED_BODY = "belated.parsed_body"  # the key of a body parsed here, in the request's state
 _PATH = re.compile(r"^/v1/models/([^/]+)/(predictions|labels)$")
 _HEADERS = [(b"content-type", b"application/json")]
 

@@ -87,11 +87,11 @@ def _changed_rows(scope: Scope, tables: dict[str, list[int]] | None = None) -> s
     """Each logged change as two weighted rows (old state -1, new state +1) joined to its
     prediction, with the implied-negative cutoff its hour was aggregated with.
 
-    `tables` (PostgreSQL) names the day partition holding each hour's predictions: each
-    partition is joined on its own. Joined through the parent, every change paid for the
-    run-time choice of its partition (about 30 µs a change against 2 µs for the probe of
-    the partition's key, at 5M predictions in bench/scale.py), a cost that grew with the
-    changes a refresh folds."""
+    `tables` (PostgreSQL) names the day partition holding each hour's predictions (or the
+    parent, for a day without one): each partition is joined on its own. Joined through
+    the parent, every change paid for the run-time choice of its partition (about 30 µs a
+    change against 2 µs for the probe of the partition's key, at 5M predictions in
+    bench/scale.py), a cost that grew with the changes a refresh folds."""
     if not tables:
         return f"({_changed_from(scope, scope.hours, 'predictions')}) AS predictions"
     joins = [_changed_from(scope, hours, table) for table, hours in sorted(tables.items())]
@@ -233,12 +233,16 @@ class _Query:
         return _changed_rows(self.scope, self._tables() if self.dialect.postgres else None)
 
     def _tables(self) -> dict[str, list[int]]:
-        """The scope's hours by the table holding their predictions (PostgreSQL)."""
+        """The scope's hours by the day partition holding their predictions (PostgreSQL).
+
+        Hours of a day without a partition of its own go through the parent: the jobs or a
+        writer may give that day a partition, moving its rows out of the default one,
+        between this reading of the catalogue and the statement."""
         hours = sorted(self.scope.hours)
         have = partitions.have_partitions(self.session, {h // 24 for h in hours})
         tables: dict[str, list[int]] = {}
         for h in hours:
-            name = partitions.day_name(h // 24) if h // 24 in have else partitions.DEFAULT
+            name = partitions.day_name(h // 24) if h // 24 in have else partitions.PARENT
             tables.setdefault(name, []).append(h)
         return tables
 
