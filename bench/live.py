@@ -8,7 +8,8 @@ and drives each with the same client: `--writers` threads spread over `--procs` 
 each thread with its own keep-alive connection, posting `--rows` predictions a request
 (an online furniture shop scoring orders for return risk; ids unique, timestamps now) for
 `--seconds` in all, split into `--rounds` alternating rounds. Latency is per request, client
-side; rates are the median of the rounds; server CPU is the serving process's own.
+side; rates are the median of the rounds; server CPU is that of the serving processes
+(every one of --workers).
 
     .venv/bin/python bench/live.py [--seconds 60] [--writers 16] [--rows 1,20]
         [--stores postgresql,sqlite] [--procs 4] [--workers 1]
@@ -48,6 +49,7 @@ from bench.common import (  # noqa: E402
     percentile,
     pg_url,
     setup_store,
+    tree_cpu_seconds,
 )
 
 MODEL = "returns-live"
@@ -220,9 +222,9 @@ def _store_cpu(dbname: str | None) -> dict[int, float]:
 def _phase(
     target: Any, pid: int, dbname: str | None, token: str, rows: int, args: argparse.Namespace
 ) -> dict[str, Any]:
-    cpu0, store0 = cpu_seconds(pid), _store_cpu(dbname)
+    cpu0, store0 = tree_cpu_seconds(pid), _store_cpu(dbname)  # every API process of --workers
     m = drive(target, token, args.kind, rows, args.seconds / args.rounds, args.writers, args.procs)
-    m["cpu"] = cpu_seconds(pid) - cpu0
+    m["cpu"] = tree_cpu_seconds(pid) - cpu0
     m["store_cpu"] = sum(v - store0.get(k, 0.0) for k, v in _store_cpu(dbname).items())
     return m
 

@@ -46,6 +46,8 @@ def _connection() -> Any:
             import psycopg
 
             conn = psycopg.connect(DSN)
+            # the API processes of --workers start together: IF NOT EXISTS alone races
+            conn.execute("SELECT pg_advisory_xact_lock(7270)")
             conn.execute(DDL.format(ts="timestamptz", json="jsonb"))
         conn.commit()
     _local.conn = conn

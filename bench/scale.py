@@ -9,7 +9,8 @@ built by `belated rebuild`'s code. Then, in the same run:
   finds them (through the id registry, then one day partition) against the same look-up on a
   flat copy of the table with UNIQUE (model, id) (the plain alternative), and by id alone
   across every partition (what the registry avoids);
-- a day of new work over HTTP (`belated serve`, loopback): the next day's predictions in
+- a day of new work over HTTP (`belated serve`, loopback), the same at every size (a day of the
+  10M store, 27,397 orders): the next day's predictions in
   bulk requests of 10,000, then 20-prediction requests from 8 threads for 10 s, then labels
   for predictions of the last 60 days (as many as a day's predictions) in bulk requests;
 - the refresh of that day's work (a child process, as the jobs run it);
@@ -138,9 +139,14 @@ def match(url: str, model_id: int, n: int, seed: int = 11) -> dict[str, float]:
     return out
 
 
-def new_day(n: int, seed: int = 5) -> list[dict[str, Any]]:
-    """A day of new orders after the loaded year (the same generator's distributions)."""
-    d = wd.generate(max(n // 365, 1000), seed=seed)
+DAY_ROWS = 10_000_000 // 365  # a day of the 10M store: the same day's work at every size
+
+
+def new_day(rows: int = DAY_ROWS, seed: int = 5) -> list[dict[str, Any]]:
+    """A day of new orders after the loaded year (the same generator's distributions). Its
+    size is fixed, not a share of the store, so that every size does the same day's work and
+    a cost that grows between sizes grows with the store."""
+    d = wd.generate(rows, seed=seed)
     start = NEW_DAY.timestamp() - wd.YEAR_START.timestamp()
     return [
         {
@@ -266,7 +272,7 @@ def run_size(n: int, keep_days: int, match_only: bool = False) -> dict[str, Any]
         print({k: v for k, v in res.items() if k != "rebuild"}, flush=True)
         if match_only:
             return res
-        day = new_day(n)
+        day = new_day()
         service = Service(sa_url, extra_env={"BELATED_LOG_FORMAT": "text"})
         try:
             service.wait_ready()
