@@ -325,6 +325,16 @@ def test_label_writes_fetch_the_locked_rows_by_address_and_probe_the_id_index(
             assert "model_id_pid_hour" in plan and "model_id_hour_idx" not in plan, plan
             found = cur.execute(read, {"m": model.id, **params}).fetchall()
             assert sorted(r[0] for r in found) == sorted(ids)
+            # a day holding one id of the batch is probed by equality: the same index
+            one = ids[3]
+            c1, u1, p1 = by_day.read_sql(
+                {day: [one]}, labels._TARGET_COLUMNS, lock=True, hours={one: where[one]}
+            )
+            single = f"WITH {', '.join(c1)} {u1}"
+            plan = "\n".join(r[0] for r in cur.execute(f"EXPLAIN {single}", {"m": model.id, **p1}))
+            assert "model_id_pid_hour" in plan and "model_id_hour_idx" not in plan, plan
+            (alone,) = cur.execute(single, {"m": model.id, **p1}).fetchall()
+            assert alone == next(r for r in found if r[0] == one)
             source = (
                 "(SELECT * FROM unnest(%(row)s::int8[], %(hour)s::int4[], %(a)s::text[],"
                 " %(ts)s::timestamptz[], %(d)s::float8[]) AS v(row_id, hour, actual, label_ts,"
