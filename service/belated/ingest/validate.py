@@ -11,6 +11,7 @@ from dataclasses import dataclass
 from datetime import datetime, timedelta
 from typing import Any, cast
 
+from belated.classes import negative_class, positive_class
 from belated.errors import Invalid, Problem, field_error
 from belated.timeutil import parse_ts
 
@@ -219,7 +220,7 @@ def _check_scores(
             return None, None, False
         vals = {k: v / total for k, v in vals.items()}
         if spec.kind == "binary":
-            return vals[spec.positive or spec.classes[-1]], None, True
+            return vals[positive_class(spec.positive, spec.classes)], None, True
         return max(vals.values()), vals, True
     if "score" not in item or item["score"] is None:
         if spec.kind == "multiclass":
@@ -263,8 +264,10 @@ def _predicted(
 
 def _positive_negative(spec: ModelSpec) -> tuple[str, str]:
     """A binary model's positive and negative class (a multiclass model's are not used)."""
-    positive = spec.positive or spec.classes[-1]
-    return positive, next((c for c in spec.classes if c != positive), positive)
+    return (
+        positive_class(spec.positive, spec.classes),
+        negative_class(spec.positive, spec.classes),
+    )
 
 
 def _too_many(errors: list[dict[str, Any]]) -> bool:

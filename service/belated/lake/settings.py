@@ -7,6 +7,7 @@ from dataclasses import dataclass
 from datetime import datetime, timedelta
 from typing import Any
 
+from belated.classes import negative_class, positive_class
 from belated.store.segments import MAX_KEYS
 
 
@@ -49,12 +50,12 @@ class LakeModel:
     @property
     def pos(self) -> str:
         """The positive class (as the store's refresh picks it)."""
-        return self.positive or self.classes[-1]
+        return positive_class(self.positive, self.classes)
 
     @property
     def neg(self) -> str:
         """The negative class of a binary model."""
-        return next((c for c in self.classes if c != self.pos), "")
+        return negative_class(self.positive, self.classes)
 
     def cutoff(self, now: datetime) -> datetime | None:
         """Predictions at or before this time without a label are implied negatives."""

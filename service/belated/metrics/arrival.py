@@ -47,6 +47,7 @@ import numpy as np
 from sqlalchemy import select
 from sqlalchemy.orm import Session
 
+from belated.classes import negative_class, positive_class
 from belated.stats.arrival import MIN_LABELS, CurveFit, cohort_arrival, fit_arrival
 from belated.stats.delays import delay_bin
 from belated.stats.homogeneity import band_groups
@@ -279,18 +280,19 @@ def curves_answer(curves: Curves, model: ModelRow) -> dict[str, Any]:
     why a class has no curve, and `arrival_by_band` per class its groups of score bands
     whose delays differ (`score_from`, `score_to`, `labels`, `arrival`), or null when one
     curve serves every score (the bands do not differ, or there are too few labels)."""
-    pos = model.positive or model.classes[-1]
+    pos = positive_class(model.positive, model.classes)
+    neg = negative_class(model.positive, model.classes)
     arrival: dict[str, Any] = {}
     labels: dict[str, int] = {}
     reasons: dict[str, str] = {}
-    for name, fit in ((pos, curves.positive), (_negative(model), curves.negative)):
+    for name, fit in ((pos, curves.positive), (neg, curves.negative)):
         arrival[name] = None if fit.curve is None else fit.curve.points()
         labels[name] = fit.n_labels
         if fit.curve is None:
             reasons[name] = f"{fit.reason} ({fit.n_labels} labels)"
-    by_band: dict[str, Any] = {pos: None, _negative(model): None}
+    by_band: dict[str, Any] = {pos: None, neg: None}
     if curves.bands is not None and curves.band_groups is not None:
-        for name, c in ((pos, 1), (_negative(model), 0)):
+        for name, c in ((pos, 1), (neg, 0)):
             groups = curves.band_groups["positive" if c else "negative"]
             if len(groups) < 2:
                 continue
@@ -311,11 +313,6 @@ def curves_answer(curves: Curves, model: ModelRow) -> dict[str, Any]:
         "arrival_reasons": reasons,
         "arrival_by_band": by_band,
     }
-
-
-def _negative(model: ModelRow) -> str:
-    pos = model.positive or model.classes[-1]
-    return next((c for c in model.classes if c != pos), "0")
 
 
 def settled_by_class(

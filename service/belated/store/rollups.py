@@ -34,6 +34,7 @@ from psycopg.types.json import Jsonb
 from sqlalchemy import delete, insert, select, text, tuple_
 from sqlalchemy.orm import Session
 
+from belated.classes import negative_class, positive_class
 from belated.store import bulk, segments
 from belated.store.dialect import Dialect, is_postgres
 from belated.store.rollup_sql import Part, Scope, aggregate_all_keys, aggregate_one_key, parts
@@ -53,8 +54,8 @@ _PG_TYPES = pg_types()
 
 def scope_of(model: ModelRow, hours: Sequence[int] | range, now: datetime) -> Scope:
     """The query scope of a model's hours at time `now` (over raw rows)."""
-    pos = model.positive or model.classes[-1]
-    neg = next((c for c in model.classes if c != pos), "")
+    pos = positive_class(model.positive, model.classes)
+    neg = negative_class(model.positive, model.classes)
     cutoff = None
     if model.negative_after_days is not None:
         cutoff = now - timedelta(days=model.negative_after_days)
