@@ -134,9 +134,11 @@ class Totals:
         row: dict[str, Any] = {n: int(v) for n, v in zip(COUNTS, self.scalar_counts, strict=True)}
         row.update({n: float(v) for n, v in zip(SUMS, self.scalar_sums, strict=True)})
         for hist in HISTOGRAMS:
+            if not self.has(hist.name):  # absent or all zeros: no blob, and no zeros made
+                row[hist.name] = None
+                continue
             sums = self.sums(hist.name) if hist.score_sums else None
-            has = self.has(hist.name)
-            row[hist.name] = packing.pack(self.counts(hist.name), sums) if has else None
+            row[hist.name] = packing.pack(self.hist_counts[hist.name], sums)
         row[CELLS] = self.cells or None
         return row
 
