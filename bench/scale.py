@@ -121,8 +121,12 @@ def warm(url: str, model_id: int, n: int, flat: bool) -> float:
                 " OR c.oid IN (SELECT indexrelid FROM pg_index WHERE indrelid = %s::regclass)",
                 (table, table),
             )
+        # the ids' index pages and rows (ids follow time: a range), read through the index
+        # so that its pages are the ones warmed, whatever the planner would prefer
+        conn.execute("SET enable_seqscan = off")
+        conn.execute("SET enable_bitmapscan = off")
         for table in ("prediction_ids", "bench_flat") if flat else ("prediction_ids",):
-            conn.execute(  # the ids' index pages and rows (ids follow time: a range)
+            conn.execute(
                 f"SELECT sum(hour) FROM {table} WHERE model_id = %s AND pid >= %s",
                 (model_id, first),
             )
