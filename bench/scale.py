@@ -97,6 +97,12 @@ def _registry(
     return conn.execute(f"WITH {', '.join(ctes)} {union}", {"m": model_id, **more}).fetchall()
 
 
+def recent_start(n: int) -> int:
+    """The first row of the last 60 days of the loaded year (rows follow time), where labels
+    arrive: the look-ups, the warm step and the HTTP labels all draw from here on."""
+    return int(n * 305 / 365)
+
+
 def warm(url: str, model_id: int, n: int, flat: bool) -> float:
     """Read the last 60 days (where labels arrive) into the operating system's cache, as a
     service receiving labels all day keeps them: those days' partitions and indexes, their
@@ -104,7 +110,7 @@ def warm(url: str, model_id: int, n: int, flat: bool) -> float:
     larger than the machine's memory with the flat copy beside it (50M: 17 GB and 6 GB
     against 23 GB) is measured cold for one side and warm for the other. Seconds taken."""
     t0 = time.perf_counter()
-    first = wd.pid(int(n * 305 / 365))
+    first = wd.pid(recent_start(n))
     with psycopg.connect(url, autocommit=True) as conn:
         conn.execute("CREATE EXTENSION IF NOT EXISTS pg_prewarm")
         recent = [
@@ -150,7 +156,7 @@ def match(url: str, model_id: int, n: int, seed: int = 11) -> dict[str, float]:
         conn.commit()
         out: dict[str, float] = {"warm_s": warm(url, model_id, n, flat=True)}
         have = _days_with_partitions(conn)
-        recent = int(n * 305 / 365)
+        recent = recent_start(n)
         for span, lo in (("60d", recent), ("year", 0)):
             for size, repeats in ((1000, 20), (20, 100)):
                 times: dict[str, list[float]] = {"registry": [], "flat": [], "scan": []}
@@ -231,7 +237,7 @@ def http_day(service: Service, token: str, n: int, day: list[dict[str, Any]]) ->
     out["small_rows_s"] = sum(sent) / (time.perf_counter() - t0)
     # labels for orders of the last 60 days of the year, as many as the day's predictions
     rng = np.random.default_rng(3)
-    lo_i = int(n * (305 / 365))
+    lo_i = recent_start(n)
     picks = rng.choice(np.arange(lo_i, n), size=min(len(day), n - lo_i), replace=False)
     items = [{"id": wd.pid(int(i)), "actual": "1" if i % 7 == 0 else "0"} for i in picks]
     with httpx.Client(headers=headers, timeout=300) as client:
