@@ -10,6 +10,13 @@ GRANULARITIES = ("hour", "day", "week")
 
 def parse_ts(value: object) -> datetime:
     """Parse RFC 3339 / ISO 8601 (or Unix seconds); a value without an offset is UTC."""
+    if type(value) is str:  # the common case, a UTC time with a Z: parsed as it is
+        try:
+            fast = datetime.fromisoformat(value)
+        except ValueError:
+            fast = None
+        if fast is not None and fast.tzinfo is UTC:
+            return fast
     if isinstance(value, datetime):
         dt = value
     elif isinstance(value, bool):
