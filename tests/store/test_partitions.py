@@ -591,3 +591,48 @@ def test_the_fold_reads_a_day_without_a_partition_through_the_parent(
     assert sum(r[4] for r in folded if r[1] == "") == 90  # every label folded in
     refresh.rebuild(sessions, max_values=100, model_id=model.id)
     assert [tuple(r) for r in rows(engine, counts, m=model.id)] == folded
+
+
+@pytest.mark.parametrize("store_url", ["postgresql"], indirect=True)
+def test_a_small_batch_is_read_and_locked_by_the_function_as_by_the_statement(
+    tenant: Tenant, engine: Engine, sessions: Any
+) -> None:
+    """belated_label_targets (migration 0022) answers a small labels batch's look-up: the
+    same rows, columns and addresses as the statement with a part per day (by_day.fetch),
+    from day partitions and from the default partition, ids it does not know left out;
+    rows come in table then id order (byte order), and each is locked for the transaction."""
+    import psycopg
+
+    from belated.store import by_day, labels
+
+    model = create_model(tenant, engine)
+    base = (base_time() - timedelta(days=40)).replace(hour=5)
+    items = [  # 30 predictions over 15 days, ids not in time order, one with a capital
+        dict(prediction(i, prefix="small"), id=f"{'Zq' if i == 7 else 'sm'}-{(i * 7) % 30:03d}")
+        | {"ts": stamp(base + timedelta(hours=12 * i + (i % 3)))}
+        for i in range(30)
+    ]
+    dflt = base_time() - timedelta(days=2200)  # a day believed to have a partition
+    partitions._known.setdefault(partitions._key(engine), set()).add(epoch_hour(dflt) // 24)
+    extra = predictions(3, base=dflt, prefix="dflt")
+    send(tenant.client, model.name, "predictions", items + extra)
+    assert {_where(engine, model.id)[p["id"]] for p in extra} == {partitions.DEFAULT}
+    ids = [p["id"] for p in items + extra] + ["never-sent", "small-999"]
+    with transaction(sessions) as session:
+        by_fn = by_day.label_targets(session, model.id, ids)
+        by_statement = by_day.fetch(session, model.id, ids, labels._TARGET_COLUMNS, lock=True)
+        assert len(by_fn) == len(items) + len(extra)
+        assert sorted(by_fn) == sorted(tuple(r) for r in by_statement)
+        table = _where(engine, model.id)
+        order = [(table[r[0]].encode(), r[0].encode()) for r in by_fn]
+        assert order == sorted(order)
+        assert by_day.label_targets(session, model.id, []) == []
+        locked = by_fn[0][0]
+        url = engine.url.set(drivername="postgresql").render_as_string(hide_password=False)
+        with psycopg.connect(url, autocommit=True) as other:
+            with pytest.raises(psycopg.errors.LockNotAvailable):
+                other.execute(
+                    "SELECT 1 FROM predictions WHERE model_id = %s AND pid = %s FOR UPDATE NOWAIT",
+                    (model.id, locked),
+                )
+        session.rollback()
