@@ -83,15 +83,10 @@ def _registry(
     conn: psycopg.Connection[Any], ids: list[str], model_id: int, have: set[int]
 ) -> list[Any]:
     """The label path's look-up (store/by_day.py): each id's hour from the registry, then
-    its day's partition named, rows locked a day at a time; a small batch in one call of
-    the server-side function that does both (belated_label_targets)."""
+    its day's partition named, rows locked a day at a time."""
     from belated.store import by_day, labels, partitions
 
     params = {"ids": ids, "m": model_id}
-    if len(ids) <= by_day.BY_FUNCTION:
-        return conn.execute(
-            "SELECT * FROM belated_label_targets(%(m)s, %(ids)s)", params
-        ).fetchall()
     where = dict(conn.execute(by_day._REGISTRY_SQL.replace("%(ids)b", "%(ids)s"), params))
     by_table: dict[str, list[str]] = {}
     for pid, hour in where.items():

@@ -45,28 +45,6 @@ def hours(session: Session, model_id: int, ids: Sequence[str]) -> dict[str, int]
         return {str(pid): int(hour) for pid, hour in rows.fetchall()}
 
 
-# Up to this many ids, a locked read of label targets goes through the server-side function
-# belated_label_targets (migration 0022): the registry probe and one probe per id in its
-# day's partition, planned for that table alone, in one call. 20 ids of the last 60 days
-# cost 4.7 ms against 7.7 ms for the two statements below (flat table 2.1 ms; 1M
-# predictions, PostgreSQL 15, median of 200); past a few hundred ids the statement with a
-# part per day wins (1,000 ids: 44 against 80 ms).
-BY_FUNCTION = 200
-_TARGETS_SQL = "SELECT * FROM belated_label_targets(%(m)b, %(ids)b::text[])"
-
-
-def label_targets(session: Session, model_id: int, ids: Sequence[str]) -> list[Any]:
-    """pid, row_id, ts, hour, actual, delay_h and address (ctid as text) of the stored
-    predictions among `ids` (at most BY_FUNCTION), locked in table then id order."""
-    if not ids:
-        return []
-    raw = session.connection().connection.driver_connection
-    assert raw is not None
-    with raw.cursor() as cur:  # often a request's first statement: BEGIN rides with it
-        rows = bulk.execute_opening(cur, _TARGETS_SQL, {"m": model_id, "ids": list(ids)})
-        return list(rows.fetchall())
-
-
 def tables(session: Session, days: Iterable[int]) -> dict[int, str]:
     """day → the table holding its rows: its partition, or the default partition."""
     wanted = set(days)

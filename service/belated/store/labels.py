@@ -58,12 +58,9 @@ _TARGET_COLUMNS = "p.pid, p.row_id, p.ts, p.hour, p.actual, p.delay_h, p.at"
 def _targets(session: Session, model_id: int, ids: list[str]) -> dict[str, _Stored]:
     found: dict[str, _Stored] = {}
     if is_postgres(session):
-        rows = (
-            by_day.label_targets(session, model_id, ids)
-            if len(ids) <= by_day.BY_FUNCTION
-            else by_day.fetch(session, model_id, ids, _TARGET_COLUMNS, lock=True)
-        )
-        for pid, row_id, ts, hour, actual, delay_h, at in rows:
+        for pid, row_id, ts, hour, actual, delay_h, at in by_day.fetch(
+            session, model_id, ids, _TARGET_COLUMNS, lock=True
+        ):
             found[pid] = _Stored(row_id, to_utc(ts), hour, actual, delay_h, at)
         return found
     raw = session.connection().connection.driver_connection
