@@ -10,29 +10,25 @@ GRANULARITIES = ("hour", "day", "week")
 
 def parse_ts(value: object) -> datetime:
     """Parse RFC 3339 / ISO 8601 (or Unix seconds); a value without an offset is UTC."""
-    if type(value) is str:  # the common case, a UTC time with a Z: parsed as it is
-        try:
-            fast = datetime.fromisoformat(value)
+    if isinstance(value, str):  # first: what clients send
+        try:  # as it is, a Z included; padding or a lower-case z below
+            dt = datetime.fromisoformat(value)
         except ValueError:
-            fast = None
-        if fast is not None and fast.tzinfo is UTC:
-            return fast
-    if isinstance(value, datetime):
+            text = value.strip()
+            if text.endswith(("Z", "z")):
+                text = text[:-1] + "+00:00"
+            dt = datetime.fromisoformat(text)
+    elif isinstance(value, datetime):
         dt = value
     elif isinstance(value, bool):
         raise ValueError("not a timestamp")
     elif isinstance(value, int | float):
         dt = datetime.fromtimestamp(float(value), UTC)
-    elif isinstance(value, str):
-        text = value.strip()
-        if text.endswith(("Z", "z")):
-            text = text[:-1] + "+00:00"
-        dt = datetime.fromisoformat(text)
     else:
         raise ValueError("not a timestamp")
     if dt.tzinfo is None:
         dt = dt.replace(tzinfo=UTC)
-    return dt.astimezone(UTC)
+    return dt if dt.tzinfo is UTC else dt.astimezone(UTC)
 
 
 def to_utc(dt: datetime) -> datetime:
