@@ -20,7 +20,11 @@ built by `belated rebuild`'s code. Then, in the same run:
 - then retention: the raw days older than `--keep-days` (90) before the new day are dropped
   (their rollups stay), and disk and the metrics query are measured again.
 
-Run: `python -m bench.scale [--sizes 1000000,5000000] [--keep-days 90]`.
+Run: `python -m bench.scale [--sizes 1000000,5000000] [--keep-days 90] [--label-rows N]`.
+`--label-rows N` draws the HTTP labels from the last N orders instead of the last 60 days:
+the same N at every size keeps the labels as dense in the table as at the smaller size
+(at 50M the last 60 days hold five times the rows, so the same number of labels touches
+more pages). `BELATED_BENCH_PG_ADMIN` points it at another PostgreSQL server.
 """
 
 from __future__ import annotations
@@ -204,8 +208,11 @@ def new_day(rows: int = DAY_ROWS, seed: int = 5) -> list[dict[str, Any]]:
     ]
 
 
-def http_day(service: Service, token: str, n: int, day: list[dict[str, Any]]) -> dict[str, float]:
-    """Rows/s of the day's work over HTTP: bulk predictions, small requests, bulk labels."""
+def http_day(
+    service: Service, token: str, n: int, day: list[dict[str, Any]], label_rows: int = 0
+) -> dict[str, float]:
+    """Rows/s of the day's work over HTTP: bulk predictions, small requests, bulk labels (for
+    orders of the last 60 days, or of the last `label_rows` orders)."""
     url = f"{service.url}/v1/models/{wd.MODEL}"
     headers = {"Authorization": f"Bearer {token}"}
     out: dict[str, float] = {}
@@ -237,7 +244,7 @@ def http_day(service: Service, token: str, n: int, day: list[dict[str, Any]]) ->
     out["small_rows_s"] = sum(sent) / (time.perf_counter() - t0)
     # labels for orders of the last 60 days of the year, as many as the day's predictions
     rng = np.random.default_rng(3)
-    lo_i = recent_start(n)
+    lo_i = n - label_rows if label_rows else recent_start(n)
     picks = rng.choice(np.arange(lo_i, n), size=min(len(day), n - lo_i), replace=False)
     items = [{"id": wd.pid(int(i)), "actual": "1" if i % 7 == 0 else "0"} for i in picks]
     with httpx.Client(headers=headers, timeout=300) as client:
@@ -292,7 +299,9 @@ def drop_old_days(sa_url: str, model_id: int, keep_days: int) -> dict[str, Any]:
     return dict(done)
 
 
-def run_size(n: int, keep_days: int, match_only: bool = False) -> dict[str, Any]:
+def run_size(
+    n: int, keep_days: int, match_only: bool = False, label_rows: int = 0
+) -> dict[str, Any]:
     """Every measurement at one size, in a database of its own (only the load and the label
     look-ups with `match_only`)."""
     res: dict[str, Any] = {"rows": n}
@@ -320,7 +329,7 @@ def run_size(n: int, keep_days: int, match_only: bool = False) -> dict[str, Any]
         service = Service(sa_url, extra_env={"BELATED_LOG_FORMAT": "text"})
         try:
             service.wait_ready()
-            res["http"] = http_day(service, token, n, day)
+            res["http"] = http_day(service, token, n, day, label_rows)
             print(res["http"], flush=True)
         finally:
             service.stop()
@@ -391,10 +400,17 @@ def main() -> None:
     parser.add_argument(
         "--match-only", action="store_true", help="load and measure the label look-ups only"
     )
+    parser.add_argument(
+        "--label-rows",
+        type=int,
+        default=0,
+        help="draw the HTTP labels from the last N orders instead of the last 60 days (the"
+        " same N at every size keeps the labels as dense in the table: a label a page)",
+    )
     args = parser.parse_args()
     results = []
     for n in (int(s) for s in args.sizes.split(",")):
-        results.append(run_size(n, args.keep_days, args.match_only))
+        results.append(run_size(n, args.keep_days, args.match_only, args.label_rows))
         print(results[-1], flush=True)
     print(match_table(results) if args.match_only else table(results))
 
