@@ -242,7 +242,8 @@ def http_day(
     for t in threads:
         t.join()
     out["small_rows_s"] = sum(sent) / (time.perf_counter() - t0)
-    # labels for orders of the last 60 days of the year, as many as the day's predictions
+    # labels for orders of the last 60 days of the year (or the last label_rows orders), as
+    # many as the day's predictions
     rng = np.random.default_rng(3)
     lo_i = n - label_rows if label_rows else recent_start(n)
     picks = rng.choice(np.arange(lo_i, n), size=min(len(day), n - lo_i), replace=False)
@@ -405,7 +406,7 @@ def main() -> None:
         type=int,
         default=0,
         help="draw the HTTP labels from the last N orders instead of the last 60 days (the"
-        " same N at every size keeps the labels as dense in the table: a label a page)",
+        " same N at every size keeps the labels as dense in the table)",
     )
     args = parser.parse_args()
     results = []
