@@ -245,7 +245,7 @@ def http_day(
     # labels for orders of the last 60 days of the year (or the last label_rows orders), as
     # many as the day's predictions
     rng = np.random.default_rng(3)
-    lo_i = n - label_rows if label_rows else recent_start(n)
+    lo_i = max(0, n - label_rows) if label_rows else recent_start(n)
     picks = rng.choice(np.arange(lo_i, n), size=min(len(day), n - lo_i), replace=False)
     items = [{"id": wd.pid(int(i)), "actual": "1" if i % 7 == 0 else "0"} for i in picks]
     with httpx.Client(headers=headers, timeout=300) as client:
