@@ -99,6 +99,26 @@ def create_app(
     return BodyLimit(app, settings.max_body_bytes, SmallWrites(app.state))
 
 
+def settle_heap() -> None:
+    """Tune the cyclic garbage collector for a server process, once its app is built.
+
+    Called by `belated serve` only, not by create_app: a process that builds many apps (the
+    tests) would keep every frozen cycle it later drops.
+
+    Everything alive at startup (modules, the app, the mappers: about 200,000 objects) moves
+    to the permanent generation, so the collections that large request bodies trigger no
+    longer walk it; and the youngest generation holds 50,000 objects before a collection
+    rather than 700. The objects a request makes are freed by reference counting as before;
+    only cycles wait longer. Measured on a 10,000-prediction request: the service's CPU fell
+    from about 72 to about 43 ms (docs/benchmarks.md).
+    """
+    import gc
+
+    gc.collect()  # what is garbage now is not frozen
+    gc.freeze()
+    gc.set_threshold(50_000, 20, 10)
+
+
 def _optional_routers(app: FastAPI) -> None:
     """Routers of later capabilities, mounted when their modules exist."""
     import importlib

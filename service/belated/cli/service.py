@@ -47,7 +47,7 @@ def serve(
 
     import uvicorn
 
-    from belated.app import create_app
+    from belated.app import create_app, settle_heap
     from belated.logs import setup_logging
     from belated.store.db import is_sqlite
     from belated.store.migrate import upgrade
@@ -90,6 +90,7 @@ def serve(
         )
         return
     asgi = create_app(settings, jobs=settings.jobs and not no_jobs)
+    settle_heap()
     uvicorn.run(asgi, host=settings.host, port=settings.port, log_config=None, access_log=False)
 
 
@@ -121,12 +122,14 @@ def _check_replica(url: str) -> None:
 
 def api_process() -> object:
     """The app of one of several API processes (`serve --workers N`), from the environment."""
-    from belated.app import create_app
+    from belated.app import create_app, settle_heap
     from belated.logs import setup_logging
 
     settings = get_settings()
     setup_logging(settings.log_format)
-    return create_app(settings)
+    app = create_app(settings)
+    settle_heap()
+    return app
 
 
 def worker() -> None:
