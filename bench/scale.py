@@ -83,22 +83,13 @@ def _days_with_partitions(conn: psycopg.Connection[Any]) -> set[int]:
     }
 
 
-def _registry(
-    conn: psycopg.Connection[Any], ids: list[str], model_id: int, have: set[int]
-) -> list[Any]:
-    """The label path's look-up (store/by_day.py): each id's hour from the registry, then
-    its day's partition named, rows locked a day at a time."""
-    from belated.store import by_day, labels, partitions
+def _registry(conn: psycopg.Connection[Any], ids: list[str], model_id: int) -> list[Any]:
+    """The label path's look-up (store/labels.py): one call of the store's function that
+    reads each id's hour from the registry and locks the rows in their days' partitions."""
+    from belated.store import labels
 
-    params = {"ids": ids, "m": model_id}
-    where = dict(conn.execute(by_day._REGISTRY_SQL.replace("%(ids)b", "%(ids)s"), params))
-    by_table: dict[str, list[str]] = {}
-    for pid, hour in where.items():
-        day = int(hour) // 24
-        table = partitions.day_name(day) if day in have else partitions.DEFAULT
-        by_table.setdefault(table, []).append(pid)
-    ctes, union, more = by_day.read_sql(by_table, labels._TARGET_COLUMNS, lock=True, hours=where)
-    return conn.execute(f"WITH {', '.join(ctes)} {union}", {"m": model_id, **more}).fetchall()
+    sql = labels._TARGETS_SQL.replace("%(m)b", "%(m)s").replace("%(ids)b", "%(ids)s")
+    return conn.execute(sql, {"ids": ids, "m": model_id}).fetchall()
 
 
 def recent_start(n: int) -> int:
@@ -159,7 +150,6 @@ def match(url: str, model_id: int, n: int, seed: int = 11) -> dict[str, float]:
         conn.execute("ANALYZE bench_flat")
         conn.commit()
         out: dict[str, float] = {"warm_s": warm(url, model_id, n, flat=True)}
-        have = _days_with_partitions(conn)
         recent = recent_start(n)
         for span, lo in (("60d", recent), ("year", 0)):
             for size, repeats in ((1000, 20), (20, 100)):
@@ -172,7 +162,7 @@ def match(url: str, model_id: int, n: int, seed: int = 11) -> dict[str, float]:
                             continue  # slow by design: a few repeats tell its cost
                         t0 = time.perf_counter()
                         if name == "registry":
-                            got = _registry(conn, ids, model_id, have)
+                            got = _registry(conn, ids, model_id)
                         else:
                             sql = MATCH_FLAT if name == "flat" else MATCH_SCAN
                             got = conn.execute(sql, {"ids": ids, "m": model_id}).fetchall()

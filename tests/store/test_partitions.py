@@ -370,6 +370,75 @@ def test_label_writes_fetch_the_locked_rows_by_address_and_probe_the_id_index(
 
 
 @pytest.mark.parametrize("store_url", ["postgresql"], indirect=True)
+def test_the_label_look_up_locks_each_row_in_its_own_table_by_id(
+    tenant: Tenant, engine: Engine, sessions: Any
+) -> None:
+    """The labels path finds its predictions with one call of `label_targets` (migration
+    0022): each id's hour from the registry, then its day's partition by name (the default
+    partition for a day without one), rows locked in table then id order, the order every
+    other statement that locks predictions by id keeps (store/by_day.py). A young day has
+    no statistics: the rows must still be found by the id index, not by reading the hour
+    (common practice: pg_stat_xact_user_tables counts this transaction's reads)."""
+    import psycopg
+
+    from belated.store import labels
+
+    model = create_model(tenant, engine)
+    when = base_time() - timedelta(days=1600)  # a day of its own, created now, not analysed
+    when = when.replace(hour=0, minute=0, second=0, microsecond=0)
+    young = [  # all in one hour, as a live system's young day is
+        {**prediction(i, prefix="Young"), "ts": stamp(when + timedelta(milliseconds=250 * i))}
+        for i in range(6000)
+    ]
+    for start in range(0, len(young), 1000):
+        send(tenant.client, model.name, "predictions", young[start : start + 1000])
+    stray_when = base_time() - timedelta(days=2100)  # a day without a partition
+    stray_day = epoch_hour(stray_when) // 24
+    partitions._known.setdefault(partitions._key(engine), set()).add(stray_day)
+    stray = predictions(3, base=stray_when, prefix="stray-")
+    send(tenant.client, model.name, "predictions", stray)
+    others = [prediction(n, base=base_time() - timedelta(days=n * 9), prefix="o_") for n in (2, 3)]
+    send(tenant.client, model.name, "predictions", others)
+    ids = [i["id"] for i in young[::500]] + [i["id"] for i in stray + others] + ["absent"]
+    day = partitions.day_name(epoch_hour(when) // 24)
+    with transaction(sessions) as session:
+        raw = session.connection().connection.driver_connection
+        reads = "SELECT seq_scan, idx_tup_fetch FROM pg_stat_xact_user_tables WHERE relname = %s"
+        with raw.cursor() as cur:  # reads not yet reported count too: the difference
+            seq0, fetched0 = cur.execute(reads, (day,)).fetchone()
+        found = labels._targets(session, model.id, ids)
+        with raw.cursor() as cur:
+            seq1, fetched1 = cur.execute(reads, (day,)).fetchone()
+            seq, fetched = seq1 - seq0, fetched1 - fetched0
+            order = [
+                (r[-1], r[0]) for r in cur.execute(labels._TARGETS_SQL, {"m": model.id, "ids": ids})
+            ]
+        assert set(found) == set(ids) - {"absent"}
+        where = _where(engine, model.id)
+        for pid, stored in found.items():
+            assert stored.table == where[pid], pid
+        assert {found[i["id"]].table for i in stray} == {partitions.DEFAULT}
+        # the young day: one index fetch per id, no scan of the hour's 6,000 rows
+        assert seq == 0 and fetched == len(young[::500]), (seq, fetched)
+        # locked: another connection cannot take these rows meanwhile
+        plain_url = pg_url(str(engine.url.database)).replace("+psycopg", "")
+        with psycopg.connect(plain_url, autocommit=True) as other:
+            for pid in (young[0]["id"], stray[1]["id"], others[0]["id"]):
+                with pytest.raises(psycopg.errors.LockNotAvailable):
+                    other.execute(
+                        "SELECT 1 FROM predictions WHERE model_id = %s AND pid = %s"
+                        " FOR UPDATE NOWAIT",
+                        (model.id, pid),
+                    )
+        # tables, then ids, in code-point order (Python's sort, the other lockers' order)
+        assert order == sorted(order)
+        session.rollback()
+    answer = send(tenant.client, model.name, "labels", [label(i, 1) for i in ids])
+    assert answer["matched"] == len(ids) - 1 and answer["pending"] == 1
+    assert count(engine, "predictions", model.id, "actual = '1'") == len(ids) - 1
+
+
+@pytest.mark.parametrize("store_url", ["postgresql"], indirect=True)
 def test_a_label_leaves_its_prediction_on_its_page(tenant: Tenant, engine: Engine) -> None:
     """Common practice (PostgreSQL heap-only tuples): an update whose new row version fits
     on the page of the old one touches no index. The day partitions leave a fifth of each

@@ -133,6 +133,7 @@ def update_sql(
     at: str | None = None,
     *,
     at_column: bool = False,
+    known: Mapping[int, str] | None = None,
 ) -> list[str]:
     """One UPDATE CTE per table of these hours, setting the label columns from `source` (a
     relation with row_id, hour, actual, label_ts, delay_h) for the rows it names.
@@ -143,8 +144,12 @@ def update_sql(
     the statistics (a join on row_id scanned a young partition whole, 4.8 ms for 20 rows of
     20,000; in a statement over 60 days the batch's estimated size made every day's update
     a scan of its partition, a cost that grows with the store: 6 ms a day of 14,000 rows);
-    the row_id join still decides which rows are set."""
-    table_of = tables(session, {h // 24 for h in hours_of_rows})
+    the row_id join still decides which rows are set. `known` (day → table) names the
+    tables the rows were read and locked from, which then hold them."""
+    wanted = {h // 24 for h in hours_of_rows}
+    table_of = (
+        {d: known[d] for d in wanted} if known is not None and wanted <= known.keys() else None
+    ) or tables(session, wanted)
     by_table: dict[str, list[int]] = {}
     for day, table in table_of.items():
         by_table.setdefault(table, []).append(day)
@@ -163,8 +168,11 @@ def update_sql(
     return out
 
 
-def run_update(session: Session, rows: list[dict[str, Any]]) -> None:
-    """Set the label columns of stored rows (row_id, hour, actual, label_ts, delay_h)."""
+def run_update(
+    session: Session, rows: list[dict[str, Any]], known: Mapping[int, str] | None = None
+) -> None:
+    """Set the label columns of stored rows (row_id, hour, actual, label_ts, delay_h), in
+    the tables `known` names for their days when given."""
     if not rows:
         return
     source = (
@@ -172,7 +180,7 @@ def run_update(session: Session, rows: list[dict[str, Any]]) -> None:
         " %(ts)s::timestamptz[], %(delay)s::float8[])"
         " AS v(row_id, hour, actual, label_ts, delay_h))"
     )
-    ctes = update_sql(session, (r["hour"] for r in rows), source)
+    ctes = update_sql(session, (r["hour"] for r in rows), source, known=known)
     raw = session.connection().connection.driver_connection
     assert raw is not None
     params = {

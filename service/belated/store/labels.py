@@ -43,6 +43,7 @@ class _Stored:
     actual: str | None
     delay_h: float | None
     at: str | None = None  # its address (ctid) while locked, PostgreSQL
+    table: str | None = None  # the partition it was read from, PostgreSQL
 
 
 def delay_hours(pred_ts: datetime, label_ts: datetime) -> float:
@@ -53,15 +54,20 @@ def delay_hours(pred_ts: datetime, label_ts: datetime) -> float:
 # The stored predictions of a batch's ids, locked (concurrent corrections of one id apply
 # one after another), read from their days' partitions only (store/by_day.py).
 _TARGET_COLUMNS = "p.pid, p.row_id, p.ts, p.hour, p.actual, p.delay_h, p.at"
+# one round trip: the registry, then each day's partition by name, rows locked in partition
+# then id order (the function is migrations/versions/20261204_0022_label_targets.py)
+_TARGETS_SQL = "SELECT * FROM label_targets(%(m)b, %(ids)b::text[])"
 
 
 def _targets(session: Session, model_id: int, ids: list[str]) -> dict[str, _Stored]:
     found: dict[str, _Stored] = {}
     if is_postgres(session):
-        for pid, row_id, ts, hour, actual, delay_h, at in by_day.fetch(
-            session, model_id, ids, _TARGET_COLUMNS, lock=True
-        ):
-            found[pid] = _Stored(row_id, to_utc(ts), hour, actual, delay_h, at)
+        raw = session.connection().connection.driver_connection
+        assert raw is not None
+        with raw.cursor() as cur:  # often a group's first statement: BEGIN rides with it
+            rows = bulk.execute_opening(cur, _TARGETS_SQL, {"m": model_id, "ids": ids}).fetchall()
+        for pid, row_id, ts, hour, actual, delay_h, at, table in rows:
+            found[pid] = _Stored(row_id, to_utc(ts), hour, actual, delay_h, at, table)
         return found
     raw = session.connection().connection.driver_connection
     assert raw is not None
@@ -302,6 +308,7 @@ def ingest_batches(
             "label_ts": label.ts,
             "delay_h": delay,
             "at": target.at,
+            "table": target.table,
         }
         hours.add(target.hour)
     found = [pid for pid in ids if pid in targets]
@@ -380,7 +387,7 @@ def _write_small_pg(
     hours: set[int],
 ) -> None:
     changed = by_day.update_sql(
-        session, (u["hour"] for u in updates), _SMALL_SOURCE, at="u_at"
+        session, (u["hour"] for u in updates), _SMALL_SOURCE, at="u_at", known=_read_from(updates)
     ) or ["upd0 AS (SELECT 1)"]
     bulk.execute_binary(
         session,
@@ -446,7 +453,13 @@ SMALL = 1000  # up to this many rows, arrays in one statement beat a staging tab
 
 
 def _update_pg(session: Session, rows: list[dict[str, Any]]) -> None:
-    by_day.run_update(session, rows)  # each day's partition named (store/by_day.py)
+    # each day's partition named (store/by_day.py): the one its rows were locked in
+    by_day.run_update(session, rows, _read_from(rows))
+
+
+def _read_from(rows: list[dict[str, Any]]) -> dict[int, str]:
+    """day → the table the rows of that day were read (and locked) from."""
+    return {r["hour"] // 24: r["table"] for r in rows if r.get("table")}
 
 
 _PENDING_UPSERT = """
