@@ -19,6 +19,10 @@ hour) one and the planner took it, reading the whole hour for each id (0.7 to 1.
 labels when a live system's predictions share an hour, measured); on (model, id) only the
 unique index is a two-column match. Rows are locked in table then id order, the ids
 sorted, in every statement that locks them this way.
+
+Labels batches up to 1,000 find their rows with one call of the server-side function
+`label_targets` instead (migrations/versions/20261204_0022_label_targets.py): the same
+per-day statements, planned one by one inside PostgreSQL, in one round trip.
 """
 
 from __future__ import annotations
