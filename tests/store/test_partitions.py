@@ -284,6 +284,24 @@ def test_retention_drops_whole_day_partitions_and_keeps_every_window(
         assert left[0][0] == 0
 
 
+def _young_day(
+    tenant: Tenant, model: str, days_back: int, n: int, prefix: str
+) -> tuple[Any, list[dict[str, Any]]]:
+    """Send n predictions in one hour of a day of their own, `days_back` before the test
+    time: its partition is created now and has no statistics, as a live system's young
+    day. Answers the day's start and the predictions."""
+    when = (base_time() - timedelta(days=days_back)).replace(
+        hour=0, minute=0, second=0, microsecond=0
+    )
+    items = [
+        {**prediction(i, prefix=prefix), "ts": stamp(when + timedelta(milliseconds=250 * i))}
+        for i in range(n)
+    ]
+    for start in range(0, n, 1000):
+        send(tenant.client, model, "predictions", items[start : start + 1000])
+    return when, items
+
+
 @pytest.mark.parametrize("store_url", ["postgresql"], indirect=True)  # its layout alone
 def test_label_writes_fetch_the_locked_rows_by_address_and_probe_the_id_index(
     tenant: Tenant, engine: Engine, sessions: Any
@@ -298,15 +316,8 @@ def test_label_writes_fetch_the_locked_rows_by_address_and_probe_the_id_index(
     from belated.store import by_day, labels
 
     model = create_model(tenant, engine)
-    when = base_time() - timedelta(days=1500)  # a day of its own, created now, not analysed
-    when = when.replace(hour=0, minute=0, second=0, microsecond=0)
-    items = [  # all in one hour, as a live system's young day is
-        {**prediction(i, prefix="young"), "ts": stamp(when + timedelta(milliseconds=250 * i))}
-        for i in range(12_000)
-    ]
+    when, items = _young_day(tenant, model.name, 1500, 12_000, "young")
     day = partitions.day_name(epoch_hour(when) // 24)
-    for start in range(0, len(items), 1000):
-        send(tenant.client, model.name, "predictions", items[start : start + 1000])
     ids = [i["id"] for i in items[::600]]
     with transaction(sessions) as session:
         where = by_day.hours(session, model.id, ids)
@@ -384,14 +395,7 @@ def test_the_label_look_up_locks_each_row_in_its_own_table_by_id(
     from belated.store import labels
 
     model = create_model(tenant, engine)
-    when = base_time() - timedelta(days=1600)  # a day of its own, created now, not analysed
-    when = when.replace(hour=0, minute=0, second=0, microsecond=0)
-    young = [  # all in one hour, as a live system's young day is
-        {**prediction(i, prefix="Young"), "ts": stamp(when + timedelta(milliseconds=250 * i))}
-        for i in range(6000)
-    ]
-    for start in range(0, len(young), 1000):
-        send(tenant.client, model.name, "predictions", young[start : start + 1000])
+    when, young = _young_day(tenant, model.name, 1600, 6000, "Young")
     stray_when = base_time() - timedelta(days=2100)  # a day without a partition
     stray_day = epoch_hour(stray_when) // 24
     partitions._known.setdefault(partitions._key(engine), set()).add(stray_day)
