@@ -20,7 +20,8 @@ labels when a live system's predictions share an hour, measured); on (model, id)
 unique index is a two-column match. Rows are locked in table then id order, the ids
 sorted, in every statement that locks them this way.
 
-Labels batches up to 1,000 find their rows with one call of the server-side function
+Labels that are not staged (batches up to 1,000, the grouped writer's groups, larger
+batches that repeat an id) find their rows with one call of the server-side function
 `label_targets` instead (migrations/versions/20261204_0022_label_targets.py): the same
 per-day statements, planned one by one inside PostgreSQL, in one round trip.
 """
