@@ -152,9 +152,10 @@ def update_sql(
     the row_id join still decides which rows are set. `known` (day → table) names the
     tables the rows were read and locked from, which then hold them."""
     wanted = {h // 24 for h in hours_of_rows}
-    table_of = (
-        {d: known[d] for d in wanted} if known is not None and wanted <= known.keys() else None
-    ) or tables(session, wanted)
+    if known and wanted <= known.keys():
+        table_of = {d: known[d] for d in wanted}
+    else:
+        table_of = tables(session, wanted)
     by_table: dict[str, list[int]] = {}
     for day, table in table_of.items():
         by_table.setdefault(table, []).append(day)
